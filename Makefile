@@ -1,0 +1,52 @@
+# labeler: two commands from a fresh checkout.
+#   make test   builds or reuses .venv/, installs everything, runs the whole test suite
+#   make demo   builds or reuses .venv/, installs everything, builds and shows a demo project
+SHELL := /bin/bash
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+APT_PACKAGES := xvfb xdotool x11-apps imagemagick
+SUDO := $(shell [ "$$(id -u)" = 0 ] || echo sudo)
+# torch/torchvision releases that lie on this machine's disk (a range resolves to them)
+TORCH_PINS := torch==2.14.1 torchvision==0.29.1
+
+.PHONY: test demo install system-packages lint bench clean-venv
+
+install: $(STAMP)
+
+system-packages:
+	@missing=""; \
+	command -v Xvfb >/dev/null || missing="$$missing xvfb"; \
+	command -v xdotool >/dev/null || missing="$$missing xdotool"; \
+	command -v xwd >/dev/null || missing="$$missing x11-apps"; \
+	command -v convert >/dev/null || missing="$$missing imagemagick"; \
+	if [ -n "$$missing" ]; then \
+	  echo "installing system packages:$$missing"; \
+	  $(SUDO) apt-get update -qq && \
+	  DEBIAN_FRONTEND=noninteractive $(SUDO) apt-get install -y -qq --no-install-recommends $$missing; \
+	fi
+
+$(STAMP): pyproject.toml
+	@$(MAKE) --no-print-directory system-packages
+	@test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install -q --upgrade pip
+	$(BIN)/python -m pip install -q $(TORCH_PINS)
+	$(BIN)/python -m pip install -q -e '.[dev]'
+	@touch $(STAMP)
+
+test: $(STAMP)
+	@$(MAKE) --no-print-directory system-packages
+	$(BIN)/python -m pytest
+
+demo: $(STAMP)
+	$(BIN)/labeler demo
+
+lint: $(STAMP)
+	$(BIN)/ruff check .
+
+bench: $(STAMP)
+	@for b in benchmarks/*.py; do echo "== $$b"; $(BIN)/python $$b || exit 1; done
+
+clean-venv:
+	rm -rf $(VENV)

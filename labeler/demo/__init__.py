@@ -1,0 +1,1 @@
+"""The invented demo scenario and the simulated annotator."""

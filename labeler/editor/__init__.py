@@ -1,0 +1,1 @@
+"""The mask editor: ``state`` (pure numpy) and ``window`` (the OpenCV shell)."""

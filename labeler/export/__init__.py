@@ -1,0 +1,1 @@
+"""GeoJSON, PNG masks, manifest and reports out; import of masks back in."""

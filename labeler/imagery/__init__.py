@@ -1,0 +1,1 @@
+"""Reading images and GeoTIFFs, georeferencing, tiling and stitching."""

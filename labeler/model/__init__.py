@@ -1,0 +1,1 @@
+"""The only room that imports torch: encoder, head, feature cache, training, prediction."""

@@ -1,0 +1,1 @@
+"""Persistence: the only room that talks to the database (SQLAlchemy Core)."""

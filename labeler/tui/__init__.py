@@ -1,0 +1,1 @@
+"""The Textual terminal queue (the only room that imports textual)."""
