@@ -16,7 +16,15 @@ import numpy as np
 
 from labeler.classes import UNLABELLED
 
-__all__ = ["Window", "axis_starts", "tile_grid", "cut", "stitch", "nearest_tile_index"]
+__all__ = [
+    "Window",
+    "axis_starts",
+    "tile_grid",
+    "cut",
+    "stitch",
+    "nearest_tile_index",
+    "owner_map",
+]
 
 
 @dataclass(frozen=True, order=True)
@@ -196,3 +204,24 @@ def stitch(
                 out[rs, cs][hole] = m[hole]
                 covered[rs, cs] |= hole
     return out
+
+
+def owner_map(windows: Sequence[Window], *, shape: tuple[int, int]) -> np.ndarray:
+    """Index of the tile that :func:`stitch` takes each pixel from.
+
+    Parameters
+    ----------
+    windows : sequence of Window
+        The tiles (a grid, as :func:`tile_grid` makes).
+    shape : (int, int)
+        ``(height, width)`` of the image.
+
+    Returns
+    -------
+    owner : ndarray, shape ``shape``, int32
+        Position in ``windows`` of the owning tile; -1 where no tile covers the pixel.
+    """
+    index = [np.full((w.height, w.width), k, np.int32) for k, w in enumerate(windows)]
+    if not index:
+        return np.full(shape, -1, np.int32)
+    return stitch(index, windows, shape=shape, fill=-1)
