@@ -112,7 +112,9 @@ class ClassSchema:
             if "index" not in spec:
                 raise ValueError(f"classes.{name}: expected an 'index' entry, got {dict(spec)!r}")
             colour = spec.get("colour")
-            out.append(LabelClass(int(spec["index"]), str(name), None if colour is None else str(colour)))
+            out.append(
+                LabelClass(int(spec["index"]), str(name), None if colour is None else str(colour))
+            )
         return cls(out)
 
     # -- queries ----------------------------------------------------------------------
@@ -162,7 +164,9 @@ class ClassSchema:
         for c in self._classes:
             if c.name == name:
                 return c
-        raise KeyError(f"class {name!r} is not in the schema; known classes: {', '.join(self.names)}")
+        raise KeyError(
+            f"class {name!r} is not in the schema; known classes: {', '.join(self.names)}"
+        )
 
     def by_index(self, index: int) -> LabelClass:
         """The class with mask value ``index``."""
@@ -189,7 +193,9 @@ class ClassSchema:
                 has[c.index] = True
         return colours, has
 
-    def check_mask(self, mask: np.ndarray, *, name: str = "mask", allow_unlabelled: bool = True) -> None:
+    def check_mask(
+        self, mask: np.ndarray, *, name: str = "mask", allow_unlabelled: bool = True
+    ) -> None:
         """Raise ``ValueError`` unless ``mask`` is a 2-D uint8 array of known values."""
         if mask.ndim != 2 or mask.dtype != np.uint8:
             raise ValueError(

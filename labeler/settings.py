@@ -226,7 +226,16 @@ def _coerce(section: str, option: str, value: object, target: type) -> object:
     if target is bool:
         if isinstance(value, bool):
             return value
-        if isinstance(value, str) and value.lower() in ("1", "true", "yes", "on", "0", "false", "no", "off"):
+        if isinstance(value, str) and value.lower() in (
+            "1",
+            "true",
+            "yes",
+            "on",
+            "0",
+            "false",
+            "no",
+            "off",
+        ):
             return value.lower() in ("1", "true", "yes", "on")
         raise ValueError(f"{where}: expected true or false, got {value!r}")
     if target is int:
@@ -254,8 +263,7 @@ def _section_from(name: str, raw: Mapping[str, object], env: Mapping[str, str]) 
     unknown = set(raw) - set(kinds)
     if unknown:
         raise ValueError(
-            f"[{name}]: unknown option(s) {', '.join(sorted(unknown))}; "
-            f"known: {', '.join(kinds)}"
+            f"[{name}]: unknown option(s) {', '.join(sorted(unknown))}; known: {', '.join(kinds)}"
         )
     values: dict[str, object] = {}
     for option, kind in kinds.items():
@@ -268,7 +276,9 @@ def _section_from(name: str, raw: Mapping[str, object], env: Mapping[str, str]) 
     return cls(**values)
 
 
-def load_settings(project: str | os.PathLike[str], *, environ: Mapping[str, str] | None = None) -> Settings:
+def load_settings(
+    project: str | os.PathLike[str], *, environ: Mapping[str, str] | None = None
+) -> Settings:
     """Read the settings of the project folder ``project``.
 
     Parameters
@@ -292,7 +302,9 @@ def load_settings(project: str | os.PathLike[str], *, environ: Mapping[str, str]
         try:
             raw = tomllib.loads(path.read_text(encoding="utf-8"))
         except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-            raise ValueError(f"{path}: not valid TOML ({exc}); fix the file or delete it for defaults") from None
+            raise ValueError(
+                f"{path}: not valid TOML ({exc}); fix the file or delete it for defaults"
+            ) from None
     unknown = set(raw) - set(_SECTIONS) - {"classes"}
     if unknown:
         raise ValueError(

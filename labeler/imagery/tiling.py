@@ -165,9 +165,7 @@ def stitch(
     mask : ndarray, shape ``shape``, dtype of the first mask (uint8 when empty)
     """
     if len(masks) != len(windows):
-        raise ValueError(
-            f"masks: expected one mask per window ({len(windows)}), got {len(masks)}"
-        )
+        raise ValueError(f"masks: expected one mask per window ({len(windows)}), got {len(masks)}")
     height, width = shape
     dtype = masks[0].dtype if masks else np.uint8
     out = np.full((height, width), fill, dtype=dtype)

@@ -40,7 +40,8 @@ def png_bytes(array: np.ndarray) -> bytes:
     a = np.asarray(array)
     if a.dtype != np.uint8 or not (a.ndim == 2 or (a.ndim == 3 and a.shape[2] in (3, 4))):
         raise ValueError(
-            f"array: expected uint8 of shape (H, W), (H, W, 3) or (H, W, 4), got {a.dtype} {a.shape}"
+            "array: expected uint8 of shape (H, W), (H, W, 3) or (H, W, 4), "
+            f"got {a.dtype} {a.shape}"
         )
     if a.size == 0:
         raise ValueError(f"array: expected a non-empty image, got shape {a.shape}")
@@ -96,8 +97,17 @@ def write_geotiff(
     target.parent.mkdir(parents=True, exist_ok=True)
     h, w = a.shape[:2]
     profile = dict(
-        driver="GTiff", height=h, width=w, count=3, dtype="uint8", crs=crs,
-        transform=transform, tiled=True, blockxsize=256, blockysize=256, photometric="RGB",
+        driver="GTiff",
+        height=h,
+        width=w,
+        count=3,
+        dtype="uint8",
+        crs=crs,
+        transform=transform,
+        tiled=True,
+        blockxsize=256,
+        blockysize=256,
+        photometric="RGB",
     )
     if compress == "jpeg":
         profile.update(compress="jpeg", photometric="YCBCR", jpeg_quality=jpeg_quality)

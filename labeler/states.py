@@ -1,0 +1,79 @@
+"""Tile life cycle (DESIGN section 3): state names and the allowed moves.
+
+``unseen`` (no proposal) -> ``proposed`` (a model version proposed a mask) -> ``held``
+(an annotator has it open) -> ``accepted`` (proposal kept unchanged) or ``amended``
+(corrected) -> optionally ``contested`` (annotators disagree beyond the project's
+threshold) -> ``settled`` (a reviewer decided). ``parked`` = set aside by an annotator.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "UNSEEN",
+    "PROPOSED",
+    "HELD",
+    "ACCEPTED",
+    "AMENDED",
+    "CONTESTED",
+    "SETTLED",
+    "PARKED",
+    "STATES",
+    "SAVED_STATES",
+    "ANNOTATION_STATES",
+    "ANNOTATION_KINDS",
+    "can_move",
+    "check_move",
+]
+
+UNSEEN = "unseen"
+PROPOSED = "proposed"
+HELD = "held"
+ACCEPTED = "accepted"
+AMENDED = "amended"
+CONTESTED = "contested"
+SETTLED = "settled"
+PARKED = "parked"
+
+#: Every tile state, in life-cycle order.
+STATES = (UNSEEN, PROPOSED, HELD, ACCEPTED, AMENDED, CONTESTED, SETTLED, PARKED)
+#: States of a tile that has a saved full mask.
+SAVED_STATES = (ACCEPTED, AMENDED, CONTESTED, SETTLED)
+#: States an annotation row records (``imported`` = read from a file by ``labeler import``;
+#: ``weak`` = scribbles only).
+ANNOTATION_STATES = (ACCEPTED, AMENDED, SETTLED, "imported", "weak")
+#: Kinds of annotation masks.
+ANNOTATION_KINDS = ("full", "scribble")
+
+_MOVES: dict[str, frozenset[str]] = {
+    UNSEEN: frozenset({PROPOSED, HELD, ACCEPTED, AMENDED, PARKED, CONTESTED}),
+    PROPOSED: frozenset({PROPOSED, HELD, ACCEPTED, AMENDED, PARKED, CONTESTED}),
+    HELD: frozenset({PROPOSED, UNSEEN, HELD, ACCEPTED, AMENDED, PARKED, CONTESTED}),
+    ACCEPTED: frozenset({HELD, ACCEPTED, AMENDED, CONTESTED, SETTLED, PROPOSED}),
+    AMENDED: frozenset({HELD, ACCEPTED, AMENDED, CONTESTED, SETTLED, PROPOSED}),
+    CONTESTED: frozenset({SETTLED, CONTESTED, HELD}),
+    SETTLED: frozenset({HELD, AMENDED, ACCEPTED, CONTESTED, SETTLED}),
+    PARKED: frozenset({HELD, PROPOSED, ACCEPTED, AMENDED, PARKED, UNSEEN}),
+}
+
+
+def can_move(state_from: str, state_to: str) -> bool:
+    """True if a tile may move from ``state_from`` to ``state_to``.
+
+    A saved tile that gets a new proposal stays saved (the caller keeps the state);
+    moving it back to ``proposed`` is allowed only for an explicit reset.
+    """
+    if state_from not in _MOVES or state_to not in _MOVES:
+        return False
+    return state_to in _MOVES[state_from]
+
+
+def check_move(state_from: str, state_to: str, *, tile: object = "tile") -> None:
+    """Raise ``ValueError`` naming the tile and both states unless the move is allowed."""
+    for s in (state_from, state_to):
+        if s not in _MOVES:
+            raise ValueError(f"state: expected one of {', '.join(STATES)}, got {s!r}")
+    if not can_move(state_from, state_to):
+        raise ValueError(
+            f"{tile}: cannot move from {state_from!r} to {state_to!r}; "
+            f"allowed from {state_from!r}: {', '.join(sorted(_MOVES[state_from]))}"
+        )

@@ -1,0 +1,208 @@
+"""Plain records the store returns (no SQL objects leave the store)."""
+
+from __future__ import annotations
+
+import io
+from dataclasses import dataclass, field
+from datetime import datetime
+
+import numpy as np
+
+from labeler.imagery.tiling import Window
+from labeler.imagery.write import png_decode
+
+__all__ = [
+    "ImageRecord",
+    "TileRecord",
+    "AnnotationRecord",
+    "DraftRecord",
+    "ModelVersionRecord",
+    "ProposalRecord",
+    "RankingItem",
+    "EventRecord",
+    "decode_mask",
+    "npy_bytes",
+    "npy_decode",
+]
+
+
+def decode_mask(data: bytes, *, shape: tuple[int, int], what: str) -> np.ndarray:
+    """Decode a stored PNG mask and check it against the tile's ``shape``.
+
+    Raises
+    ------
+    ValueError
+        Naming ``what`` (e.g. "annotation 12 of tile 3") when the bytes are not a PNG
+        or the mask's shape is not the tile's.
+    """
+    try:
+        mask = png_decode(data)
+    except Exception as exc:  # noqa: BLE001 - any decoder failure is one clear error
+        raise ValueError(f"{what}: stored mask is not a readable PNG ({exc})") from None
+    if mask.ndim != 2 or mask.shape != tuple(shape):
+        raise ValueError(
+            f"{what}: stored mask has shape {mask.shape}, but the tile is {tuple(shape)}; "
+            "the row is damaged or belongs to another tile"
+        )
+    return mask
+
+
+def npy_bytes(array: np.ndarray) -> bytes:
+    """Serialise an array as ``.npy`` bytes (no pickle)."""
+    buf = io.BytesIO()
+    np.save(buf, np.ascontiguousarray(array), allow_pickle=False)
+    return buf.getvalue()
+
+
+def npy_decode(data: bytes | None) -> np.ndarray | None:
+    """Inverse of :func:`npy_bytes`; ``None`` stays ``None``."""
+    if data is None:
+        return None
+    return np.load(io.BytesIO(data), allow_pickle=False)
+
+
+@dataclass(frozen=True)
+class ImageRecord:
+    id: int
+    name: str
+    path: str
+    sha256: str
+    width: int
+    height: int
+    bands: int
+    dtype: str
+    crs: str | None
+    transform: tuple[float, ...] | None  # affine a, b, c, d, e, f (pixel corners)
+    georef_source: str | None
+    added_at: datetime
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return (self.height, self.width)
+
+
+@dataclass(frozen=True)
+class TileRecord:
+    id: int
+    image_id: int
+    row: int
+    col: int
+    height: int
+    width: int
+    state: str
+    overlap: bool
+    held_by: str | None
+    updated_at: datetime
+
+    @property
+    def window(self) -> Window:
+        return Window(self.row, self.col, self.height, self.width)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return (self.height, self.width)
+
+
+@dataclass(frozen=True)
+class AnnotationRecord:
+    id: int
+    tile_id: int
+    version: int
+    parent_version: int | None
+    annotator: str
+    kind: str
+    state: str
+    height: int
+    width: int
+    seconds: float
+    actions: int
+    source: str
+    proposal_id: int | None
+    created_at: datetime
+    mask_png: bytes = field(repr=False)
+
+    def mask(self) -> np.ndarray:
+        """The mask (H, W) uint8, checked against the tile's shape."""
+        return decode_mask(
+            self.mask_png,
+            shape=(self.height, self.width),
+            what=f"annotation v{self.version} of tile {self.tile_id}",
+        )
+
+
+@dataclass(frozen=True)
+class DraftRecord:
+    tile_id: int
+    annotator: str
+    parent_version: int | None
+    seconds: float
+    actions: int
+    saved_at: datetime
+    mask: np.ndarray = field(repr=False)
+    scribbles: np.ndarray | None = field(repr=False)
+
+
+@dataclass(frozen=True)
+class ModelVersionRecord:
+    id: int
+    kind: str
+    name: str
+    encoder_version: str | None
+    checkpoint: str | None
+    n_train_tiles: int
+    val_iou: dict[str, float | None] | None
+    miou: float | None
+    details: dict | None
+    created_at: datetime
+
+
+@dataclass(frozen=True)
+class ProposalRecord:
+    id: int
+    tile_id: int
+    model_version_id: int
+    height: int
+    width: int
+    mean_entropy: float | None
+    mean_margin: float | None
+    mean_bald: float | None
+    class_fractions: list[float] | None
+    created_at: datetime
+    mask_png: bytes = field(repr=False)
+    uncertainty_npy: bytes | None = field(repr=False, default=None)
+    embedding_npy: bytes | None = field(repr=False, default=None)
+
+    def mask(self) -> np.ndarray:
+        """The proposed mask (H, W) uint8, checked against the tile's shape."""
+        return decode_mask(
+            self.mask_png,
+            shape=(self.height, self.width),
+            what=f"proposal {self.id} of tile {self.tile_id}",
+        )
+
+    def uncertainty(self) -> np.ndarray | None:
+        """Downsampled uncertainty maps (3, h, w) float16: entropy, margin, BALD."""
+        return npy_decode(self.uncertainty_npy)
+
+    def embedding(self) -> np.ndarray | None:
+        """Pooled encoder embedding (D,) float32 for the picker."""
+        return npy_decode(self.embedding_npy)
+
+
+@dataclass(frozen=True)
+class RankingItem:
+    tile_id: int
+    rank: int
+    score: float
+    reason: str
+    in_batch: bool
+
+
+@dataclass(frozen=True)
+class EventRecord:
+    id: int
+    at: datetime
+    kind: str
+    tile_id: int | None
+    annotator: str | None
+    detail: dict | None

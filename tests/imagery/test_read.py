@@ -1,0 +1,157 @@
+"""Reading images: formats, bit depths, grey/alpha, EXIF orientation, bad input."""
+
+import numpy as np
+import pytest
+import rasterio
+from affine import Affine
+from PIL import Image
+
+from labeler.errors import InputError
+from labeler.imagery.read import inspect_image, open_image, read_image, sniff_format, to_rgb8
+from labeler.imagery.tiling import Window
+from labeler.imagery.write import write_geotiff
+
+
+@pytest.fixture
+def rgb():
+    return np.random.default_rng(1).integers(0, 256, (40, 60, 3), dtype=np.uint8)
+
+
+def test_png_jpeg_tiff_read_as_rgb(tmp_path, rgb):
+    Image.fromarray(rgb).save(tmp_path / "a.png")
+    np.testing.assert_array_equal(read_image(tmp_path / "a.png"), rgb)
+    Image.fromarray(rgb).save(tmp_path / "a.jpg", quality=95)
+    jpg = read_image(tmp_path / "a.jpg")
+    assert jpg.shape == rgb.shape and jpg.dtype == np.uint8
+    write_geotiff(
+        tmp_path / "a.tif", rgb, transform=Affine(0.01, 0, 500000, 0, -0.01, 10), crs="EPSG:32631"
+    )
+    with open_image(tmp_path / "a.tif") as r:
+        np.testing.assert_array_equal(r.read(Window(5, 7, 10, 20)), rgb[5:15, 7:27])
+        assert r.info.georef.source == "geotiff"
+        assert rasterio.crs.CRS.from_wkt(r.info.georef.crs).to_epsg() == 32631
+
+
+def test_format_by_content_not_name(tmp_path, rgb):
+    Image.fromarray(rgb).save(tmp_path / "x.png")
+    (tmp_path / "x.png").rename(tmp_path / "x.jpg")
+    assert sniff_format(tmp_path / "x.jpg") == "png"
+
+
+def test_sixteen_bit_rule():
+    # 16-bit scaled by the declared bit depth: out = round(v * 255 / (2**nbits - 1))
+    data = np.array([[[0, 4095, 2048, 65535]]], np.uint16)
+    np.testing.assert_array_equal(to_rgb8(data, nbits=12)[0, :, 0], [0, 255, 128, 255])
+    np.testing.assert_array_equal(to_rgb8(data, nbits=16)[0, :, 0], [0, 16, 8, 255])
+
+
+def test_sixteen_bit_tiff_with_nbits(tmp_path):
+    data = (np.arange(12, dtype=np.uint16).reshape(1, 3, 4) * 300).clip(0, 4095)
+    path = tmp_path / "g12.tif"
+    with rasterio.open(
+        path, "w", driver="GTiff", width=4, height=3, count=1, dtype="uint16", nbits=12
+    ) as dst:
+        dst.write(data)
+    out = read_image(path)
+    expected = np.rint(data[0].astype(np.float64) * 255 / 4095).astype(np.uint8)
+    np.testing.assert_array_equal(out[..., 0], expected)
+    np.testing.assert_array_equal(out[..., 1], expected)
+
+
+def test_grey_and_alpha(tmp_path, rgb):
+    grey = rgb[..., 0]
+    Image.fromarray(grey).save(tmp_path / "g.png")
+    out = read_image(tmp_path / "g.png")
+    np.testing.assert_array_equal(out, np.repeat(grey[..., None], 3, axis=2))
+    rgba = np.dstack([rgb, np.full(rgb.shape[:2], 7, np.uint8)])
+    Image.fromarray(rgba).save(tmp_path / "a.png")
+    np.testing.assert_array_equal(read_image(tmp_path / "a.png"), rgb)
+
+
+def test_exif_orientation_applied(tmp_path, rgb):
+    # EXIF tag 274 = 6: the stored pixels must be turned 90 degrees clockwise to display
+    im = Image.fromarray(rgb)
+    exif = im.getexif()
+    exif[274] = 6
+    im.save(tmp_path / "o.jpg", exif=exif, quality=100, subsampling=0)
+    out = read_image(tmp_path / "o.jpg")
+    assert out.shape == (60, 40, 3)
+    stored = np.asarray(Image.open(tmp_path / "o.jpg"))
+    np.testing.assert_array_equal(out, np.rot90(stored, k=-1))
+    assert inspect_image(tmp_path / "o.jpg").shape == (60, 40)
+
+
+@pytest.mark.parametrize(
+    ("content", "match"),
+    [
+        (b"", "empty"),
+        (b"GIF89a......", "unsupported file type"),
+        (b"\x89PNG\r\n\x1a\n" + b"\x00" * 30, "damaged, truncated or unreadable PNG"),
+    ],
+)
+def test_bad_files(tmp_path, content, match):
+    p = tmp_path / "bad.png"
+    p.write_bytes(content)
+    with pytest.raises(InputError, match=match) as info:
+        read_image(p)
+    assert "bad.png" in str(info.value)
+
+
+def test_missing_and_folder(tmp_path):
+    with pytest.raises(InputError, match="no such file"):
+        read_image(tmp_path / "none.png")
+    with pytest.raises(InputError, match="is a folder"):
+        read_image(tmp_path)
+
+
+def test_truncated_jpeg_and_tiff(tmp_path, rgb):
+    Image.fromarray(rgb).save(tmp_path / "a.jpg")
+    data = (tmp_path / "a.jpg").read_bytes()
+    (tmp_path / "t.jpg").write_bytes(data[: len(data) // 2])
+    with pytest.raises(InputError, match="t.jpg: damaged, truncated"):
+        read_image(tmp_path / "t.jpg")
+    write_geotiff(tmp_path / "a.tif", rgb, transform=Affine(1, 0, 0, 0, -1, 0), crs="EPSG:32631")
+    data = (tmp_path / "a.tif").read_bytes()
+    (tmp_path / "t.tif").write_bytes(data[: len(data) // 2])
+    with pytest.raises(InputError, match="t.tif"):
+        read_image(tmp_path / "t.tif")
+
+
+def test_float_raster_refused(tmp_path):
+    path = tmp_path / "f.tif"
+    with rasterio.open(
+        path, "w", driver="GTiff", width=4, height=3, count=1, dtype="float32"
+    ) as dst:
+        dst.write(np.zeros((1, 3, 4), np.float32))
+    with pytest.raises(InputError, match="floating-point"):
+        read_image(path)
+
+
+def test_window_outside(tmp_path, rgb):
+    Image.fromarray(rgb).save(tmp_path / "a.png")
+    with open_image(tmp_path / "a.png") as r, pytest.raises(InputError, match="leaves the image"):
+        r.read(Window(30, 0, 20, 10))
+
+
+def test_too_large_png_refused(tmp_path, monkeypatch):
+    import labeler.imagery.read as read_mod
+
+    monkeypatch.setattr(read_mod, "MAX_DECODED_PIXELS", 100)
+    Image.fromarray(np.zeros((20, 20), np.uint8)).save(tmp_path / "big.png")
+    with pytest.raises(InputError, match="too large to decode whole.*tiled GeoTIFF"):
+        read_image(tmp_path / "big.png")
+
+
+def test_world_file_and_prj_for_png(tmp_path, rgb):
+    from rasterio.crs import CRS
+
+    Image.fromarray(rgb).save(tmp_path / "p.png")
+    (tmp_path / "p.pgw").write_text("0.01\n0\n0\n-0.01\n1000.005\n2000.995\n")
+    (tmp_path / "p.prj").write_text(CRS.from_epsg(32632).to_wkt())
+    g = inspect_image(tmp_path / "p.png").georef
+    assert g.source == "worldfile"
+    assert (g.transform.c, g.transform.f) == (pytest.approx(1000.0), pytest.approx(2001.0))
+    assert CRS.from_wkt(g.crs).to_epsg() == 32632
+    (tmp_path / "p.pgw").write_text("garbage\n")
+    with pytest.raises(InputError, match="p.pgw"):
+        inspect_image(tmp_path / "p.png")

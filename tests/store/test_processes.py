@@ -1,0 +1,134 @@
+"""Crash and race safety of saves, with real processes (DESIGN section 7)."""
+
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+
+import numpy as np
+
+from labeler.store.store import Store
+from tests.common import REPO
+from tests.store.conftest import make_store
+
+WRITER = textwrap.dedent(
+    """
+    import sys, numpy as np
+    from labeler.store.store import Store
+    store = Store(sys.argv[1])
+    tile = store.tiles()[0]
+    rng = np.random.default_rng(0)
+    parent = store.lineage_head(tile.id, "ines")
+    v = 0
+    while True:
+        v += 1
+        # a mask that is costly to encode, so the kill often lands inside a save
+        mask = (rng.random(tile.shape) < 0.5).astype(np.uint8) * (v % 4)
+        mask[0, 0] = v % 4
+        rec = store.save_annotation(tile.id, "ines", mask, parent_version=parent)
+        parent = rec.version
+        print(rec.version, int(mask.sum()), flush=True)
+    """
+)
+
+
+def _env():
+    env = dict(os.environ)
+    env["PYTHONPATH"] = str(REPO) + os.pathsep + env.get("PYTHONPATH", "")
+    return env
+
+
+def test_sigkill_during_saves_loses_nothing_committed(tmp_path):
+    db = tmp_path / "labeler.db"
+    make_store(db).close()
+    url = f"sqlite:///{db}"
+    proc = subprocess.Popen(
+        [sys.executable, "-c", WRITER, url], stdout=subprocess.PIPE, text=True, env=_env()
+    )
+    committed = {}
+    deadline = time.monotonic() + 60
+    try:
+        while len(committed) < 15 and time.monotonic() < deadline:
+            line = proc.stdout.readline()
+            if not line:
+                break
+            version, total = map(int, line.split())
+            committed[version] = total
+    finally:
+        proc.send_signal(signal.SIGKILL)  # in the middle of the next save
+        proc.wait(10)
+        proc.stdout.close()
+    assert len(committed) >= 15, "the writer did not get going"
+    store = Store(url)
+    assert store.integrity_check() == "ok"  # SQLite PRAGMA integrity_check
+    tile = store.tiles()[0]
+    history = {a.version: a for a in store.annotation_history(tile.id)}
+    for version, total in committed.items():
+        assert version in history, f"committed version {version} was lost"
+        assert int(history[version].mask().sum()) == total  # intact, decodes to the same mask
+    # the store stays usable: the next save from the newest version works
+    head = max(history)
+    assert (
+        store.save_annotation(
+            tile.id, "tomas", np.zeros(tile.shape, np.uint8), parent_version=head
+        ).version
+        == head + 1
+    )
+    store.close()
+
+
+RACER = textwrap.dedent(
+    """
+    import os, sys, time, numpy as np
+    from labeler.errors import ConflictError
+    from labeler.store.store import Store
+    url, name, value, go = sys.argv[1], sys.argv[2], int(sys.argv[3]), sys.argv[4]
+    store = Store(url)
+    tile = store.tiles()[0]
+    mask = np.full(tile.shape, value, np.uint8)
+    parent = store.lineage_head(tile.id, name)   # both read the same parent (none)
+    while not os.path.exists(go):
+        time.sleep(0.001)
+    try:
+        store.save_annotation(tile.id, name, mask, parent_version=parent)
+        print("saved")
+    except ConflictError as exc:
+        # what the editor does: keep the work as a draft, never overwrite
+        store.save_draft(tile.id, name, mask, parent_version=parent)
+        print("conflict", exc.current_version)
+    """
+)
+
+
+def test_two_processes_same_parent_exactly_one_wins(tmp_path):
+    db = tmp_path / "labeler.db"
+    make_store(db).close()
+    url = f"sqlite:///{db}"
+    go = tmp_path / "go"
+    procs = [
+        subprocess.Popen(
+            [sys.executable, "-c", RACER, url, name, str(v), str(go)],
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            text=True,
+            env=_env(),
+        )
+        for name, v in (("ines", 1), ("tomas", 2))
+    ]
+    time.sleep(2.0)  # both have read their parent (none) and wait for the start
+    go.write_text("go")
+    outs = [p.communicate(timeout=60) for p in procs]
+    results = [o[0].split()[0] if o[0] else o[1] for o in outs]
+    assert sorted(results) == ["conflict", "saved"], outs
+    winner, loser = ("ines", "tomas") if results[0] == "saved" else ("tomas", "ines")
+    store = Store(url)
+    tile = store.tiles()[0]
+    history = store.annotation_history(tile.id)
+    assert [a.annotator for a in history] == [winner]  # exactly one save landed
+    values = {"ines": 1, "tomas": 2}
+    assert (history[0].mask() == values[winner]).all()
+    draft = store.load_draft(tile.id, loser)  # the loser's mask is kept, not lost
+    assert draft is not None and (draft.mask == values[loser]).all()
+    store.close()
