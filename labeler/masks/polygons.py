@@ -1,0 +1,425 @@
+"""Class masks to polygons and polygons back to class masks (pure: arrays in, arrays out).
+
+Coordinates
+-----------
+Polygons live in continuous pixel space with ``x = column`` and ``y = row`` of pixel
+CORNERS: pixel ``(r, c)`` is the unit square ``[c, c + 1] x [r, r + 1]``. This is the
+pixel-corner convention of rasterio and GDAL, so an ``affine.Affine`` image transform maps
+these coordinates straight to map coordinates. Inside this module everything else is in
+row/column order.
+
+Outlines are exact
+------------------
+:func:`mask_to_polygons` traces the pixel-edge outline of each connected region, so
+before simplification the polygon area equals the region's pixel count exactly and
+:func:`polygons_to_mask` gives the region back pixel for pixel. The tracing runs OpenCV's
+border following on a doubled grid: grid point ``(2r + 2, 2c + 2)`` is the centre of pixel
+``(r, c)``, odd grid points are pixel corners, and each region pixel sets its closed 3 x 3
+block. The border of that grid set runs through pixel corners and edge midpoints only;
+the one place where the 8-connected border following cuts a corner (a concave corner,
+one diagonal grid step) is put back by inserting the corner point, then only the corner
+points where the outline turns are kept.
+
+Connectivity and validity
+-------------------------
+``connectivity=8`` (default) joins pixels that touch only at a corner into one region;
+such a region is returned as a :class:`shapely.MultiPolygon` whose parts touch at those
+corner points (valid by the OGC simple-features rules: parts of a multipolygon may touch
+at finitely many points). With ``connectivity=4`` such pixels are separate regions, each
+its own polygon. In both cases a hole may touch its shell, or another hole, at a single
+corner point, which is also valid. Any outline the tracer cannot express as a valid
+polygon goes through :func:`shapely.make_valid`, keeping the polygonal parts only.
+
+Simplification
+--------------
+Outlines are simplified with the topology-preserving Douglas-Peucker algorithm
+(:func:`shapely.simplify` with ``preserve_topology=True``) at ``simplify_tolerance_px``.
+A region's area may change by at most ``max_change`` (2 %) of its pixel count; a region
+that would change more is retried at half and a quarter of the tolerance and finally kept
+exact. Douglas-Peucker keeps every removed vertex within the tolerance of the new
+outline, so at 0.5 px a simplified outline can move a pixel centre across the edge:
+pass ``simplify_tolerance_px=0`` for a lossless round trip. Simplification is per region: neighbouring regions of different
+classes may then overlap or leave slivers of less than the tolerance between them.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+
+import cv2
+import numpy as np
+import shapely
+from rasterio.features import rasterize
+
+from labeler.imagery.tiling import Window
+
+__all__ = ["Region", "mask_to_polygons", "polygons_to_mask", "outline_region"]
+
+Geometry = shapely.Polygon | shapely.MultiPolygon
+
+_BLOCK = np.ones((3, 3), np.uint8)
+
+
+@dataclass(frozen=True, eq=False)
+class Region:
+    """One connected region of one class and its outline.
+
+    Attributes
+    ----------
+    geometry : shapely.Polygon or shapely.MultiPolygon
+        Outline in pixel-corner coordinates (x = column, y = row); a MultiPolygon only
+        for an 8-connected region whose pixels touch at corners.
+    class_index : int
+        Mask value of the region.
+    label : int
+        Region number within its class, 1..n in raster scan order of the region's
+        top-left-most pixel (the numbering of the connected-component labelling).
+    area_px : int
+        Number of pixels of the region (the exact, unsimplified area).
+    window : Window
+        Bounding box of the region in row/column order.
+    pixels : ndarray, shape (window.height, window.width), bool
+        The region's pixels inside ``window``.
+    """
+
+    geometry: Geometry
+    class_index: int
+    label: int
+    area_px: int
+    window: Window
+    pixels: np.ndarray
+
+
+def _check_mask(mask: np.ndarray, name: str = "mask") -> np.ndarray:
+    m = np.asarray(mask)
+    if m.ndim != 2 or m.dtype != np.uint8:
+        raise ValueError(
+            f"{name}: expected a 2-D uint8 class-index array (H, W), got shape {m.shape} "
+            f"dtype {m.dtype}; convert with mask.astype(np.uint8)"
+        )
+    return m
+
+
+def _grid_contours(pixels: np.ndarray) -> tuple[list[np.ndarray], np.ndarray]:
+    """OpenCV border following of one region on the doubled grid (see module docstring).
+
+    Returns the contours (each (n, 2) int32 grid x, y) and the parent of each contour
+    (-1 for an outer border, else the index of the outer border a hole belongs to).
+    """
+    h, w = pixels.shape
+    grid = np.zeros((2 * h + 3, 2 * w + 3), np.uint8)
+    grid[2 : 2 * h + 2 : 2, 2 : 2 * w + 2 : 2] = pixels
+    grid = cv2.dilate(grid, _BLOCK)
+    contours, hierarchy = cv2.findContours(grid, cv2.RETR_CCOMP, cv2.CHAIN_APPROX_NONE)
+    return list(contours), hierarchy.reshape(-1, 4)[:, 3]
+
+
+def _rings_from_contours(
+    points: np.ndarray, ring_of_point: np.ndarray, n_rings: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Turn traced grid borders into pixel-corner rings, for all rings at once.
+
+    Parameters
+    ----------
+    points : ndarray, shape (N, 2), int64
+        Grid points (x, y) of all contours, one contour after the other; consecutive
+        points of a contour are 4- or 8-neighbours, the last joins the first.
+    ring_of_point : ndarray, shape (N,), int64
+        Contour number of each point, non-decreasing, every number in 0..n_rings-1 used.
+
+    Returns
+    -------
+    corners : ndarray, shape (M, 2), int64
+        Grid points (both coordinates odd) where the outline turns, ring after ring.
+    ring_of_corner : ndarray, shape (M,), int64
+    """
+    n = len(points)
+    starts = np.searchsorted(ring_of_point, np.arange(n_rings))
+    ends = np.append(starts[1:], n)
+    nxt_index = np.arange(1, n + 1)
+    nxt_index[ends - 1] = starts
+    nxt = points[nxt_index]
+    step = nxt - points
+    diagonal = (step[:, 0] != 0) & (step[:, 1] != 0)
+    if diagonal.any():
+        # a diagonal step cuts a concave corner: put back the corner (both coords odd)
+        cand_a = np.column_stack([nxt[:, 0], points[:, 1]])
+        cand_b = np.column_stack([points[:, 0], nxt[:, 1]])
+        use_a = ((cand_a[:, 0] & 1) & (cand_a[:, 1] & 1)).astype(bool)
+        inserted = np.where(use_a[:, None], cand_a, cand_b)[diagonal]
+        shift = np.concatenate([[0], np.cumsum(diagonal)[:-1]])
+        pos = np.arange(n) + shift
+        full = np.empty((n + len(inserted), 2), np.int64)
+        rings = np.empty(n + len(inserted), np.int64)
+        full[pos] = points
+        rings[pos] = ring_of_point
+        full[pos[diagonal] + 1] = inserted
+        rings[pos[diagonal] + 1] = ring_of_point[diagonal]
+        points, ring_of_point = full, rings
+    corner = ((points[:, 0] & 1) & (points[:, 1] & 1)).astype(bool)
+    points, ring_of_point = points[corner], ring_of_point[corner]
+    m = len(points)
+    starts = np.searchsorted(ring_of_point, np.arange(n_rings))
+    ends = np.append(starts[1:], m)
+    nxt_index = np.arange(1, m + 1)
+    nxt_index[ends - 1] = starts
+    prev_index = np.arange(-1, m - 1)
+    prev_index[starts] = ends - 1
+    d_in = points - points[prev_index]
+    d_out = points[nxt_index] - points
+    turn = d_in[:, 0] * d_out[:, 1] - d_in[:, 1] * d_out[:, 0] != 0
+    return points[turn], ring_of_point[turn]
+
+
+def _trace_regions(crops: Sequence[tuple[int, int, np.ndarray]]) -> np.ndarray:
+    """Exact outlines of regions given as ``(row0, col0, pixels)`` crops.
+
+    Returns an object array of Polygon/MultiPolygon, one per crop, in image pixel-corner
+    coordinates.
+    """
+    out = np.empty(len(crops), dtype=object)
+    if not crops:
+        return out
+    pts: list[np.ndarray] = []
+    ring_len: list[int] = []
+    ring_offset: list[tuple[int, int]] = []
+    ring_polygon: list[int] = []
+    polygon_region: list[int] = []
+    for j, (r0, c0, crop) in enumerate(crops):
+        contours, parent = _grid_contours(crop)
+        if len(contours) == 1:  # the common case: one outline, no hole
+            polygon_region.append(j)
+            pts.append(contours[0].reshape(-1, 2))
+            ring_len.append(len(contours[0]))
+            ring_offset.append((c0, r0))
+            ring_polygon.append(len(polygon_region) - 1)
+            continue
+        for k in np.flatnonzero(parent < 0):
+            poly = len(polygon_region)
+            polygon_region.append(j)
+            for q in (k, *np.flatnonzero(parent == k)):
+                c = contours[q]
+                pts.append(c.reshape(-1, 2))
+                ring_len.append(len(c))
+                ring_offset.append((c0, r0))
+                ring_polygon.append(poly)
+    n_rings = len(ring_len)
+    points = np.concatenate(pts).astype(np.int64)
+    ring_of_point = np.repeat(np.arange(n_rings), ring_len)
+    corners, ring_of_corner = _rings_from_contours(points, ring_of_point, n_rings)
+    offsets = np.asarray(ring_offset, np.float64)[ring_of_corner]
+    coords = (corners - 1) / 2.0 + offsets
+    rings = shapely.linearrings(coords, indices=ring_of_corner)
+    polys = shapely.polygons(rings, indices=np.asarray(ring_polygon))
+    # Rings that meet at a corner (pixels touching only at a corner) may make an invalid
+    # polygon: a ring visiting a vertex twice, or holes whose corner contacts cut off part
+    # of the interior. Only polygons with a vertex used twice are checked.
+    poly_of_corner = np.asarray(ring_polygon)[ring_of_corner]
+    span_x = int(corners[:, 0].max()) + 1
+    span_y = int(corners[:, 1].max()) + 1
+    if len(polys) * span_x * span_y < 2**62:
+        key = (poly_of_corner * span_y + corners[:, 1]) * span_x + corners[:, 0]
+        uniq, counts = np.unique(key, return_counts=True)
+        suspects = np.unique(uniq[counts > 1] // (span_x * span_y))
+    else:  # huge crops and many polygons: slower row-wise unique
+        rows = np.column_stack([poly_of_corner, corners])
+        uniq, counts = np.unique(rows, axis=0, return_counts=True)
+        suspects = np.unique(uniq[counts > 1, 0])
+    bad_polygons = set(suspects[~shapely.is_valid(polys[suspects])].tolist())
+    polygon_region_arr = np.asarray(polygon_region)
+    per_region = np.bincount(polygon_region_arr, minlength=len(crops))
+    first = np.searchsorted(polygon_region_arr, np.arange(len(crops)))
+    single = per_region == 1
+    out[single] = polys[first[single]]
+    for j in np.flatnonzero(~single):
+        out[j] = shapely.MultiPolygon(list(polys[first[j] : first[j] + per_region[j]]))
+    for j in sorted({int(polygon_region_arr[b]) for b in bad_polygons}):
+        out[j] = _polygonal(shapely.make_valid(out[j]))
+    return out
+
+
+def outline_region(pixels: np.ndarray) -> Geometry:
+    """Exact pixel-edge outline of one connected set of pixels.
+
+    Parameters
+    ----------
+    pixels : ndarray, shape (h, w), bool
+        The pixels of ONE region (8- or 4-connected), e.g. a bounding-box crop.
+
+    Returns
+    -------
+    geometry : shapely.Polygon or shapely.MultiPolygon
+        In pixel-corner coordinates of the crop (x = column, y = row); its area is
+        ``pixels.sum()``. Empty polygon when ``pixels`` has no True value.
+    """
+    p = np.asarray(pixels)
+    if p.ndim != 2:
+        raise ValueError(f"pixels: expected a 2-D boolean array, got shape {p.shape}")
+    p = p.astype(bool)
+    if not p.any():
+        return shapely.Polygon()
+    return _trace_regions([(0, 0, p)])[0]
+
+
+def _polygonal(geom: shapely.Geometry) -> Geometry:
+    """The polygonal parts of a geometry (make_valid may add lines or points)."""
+    if isinstance(geom, shapely.Polygon | shapely.MultiPolygon):
+        return geom
+    parts = [
+        g for g in shapely.get_parts(geom) if isinstance(g, shapely.Polygon | shapely.MultiPolygon)
+    ]
+    polys: list[shapely.Polygon] = []
+    for g in parts:
+        polys.extend(shapely.get_parts(g) if isinstance(g, shapely.MultiPolygon) else [g])
+    if not polys:
+        return shapely.Polygon()
+    return polys[0] if len(polys) == 1 else shapely.MultiPolygon(polys)
+
+
+def _simplify(
+    exact: np.ndarray, areas: np.ndarray, *, tolerance: float, max_change: float
+) -> np.ndarray:
+    """Topology-preserving simplification within the area budget (see module docstring)."""
+    out = exact.copy()
+    if tolerance <= 0 or len(exact) == 0:
+        return out
+    todo = np.arange(len(exact))
+    for tol in (tolerance, tolerance / 2.0, tolerance / 4.0):
+        simple = shapely.simplify(exact[todo], tol, preserve_topology=True)
+        change = np.abs(shapely.area(simple) - areas[todo])
+        ok = (change <= max_change * areas[todo]) & ~shapely.is_empty(simple)
+        out[todo[ok]] = simple[ok]
+        todo = todo[~ok]
+        if len(todo) == 0:
+            break
+    return out  # regions still in ``todo`` keep their exact outline
+
+
+def mask_to_polygons(
+    mask: np.ndarray,
+    *,
+    class_index: int,
+    simplify_tolerance_px: float = 0.5,
+    min_area_px: float = 8,
+    connectivity: int = 8,
+    max_change: float = 0.02,
+) -> list[Region]:
+    """Outline every connected region of one class.
+
+    Parameters
+    ----------
+    mask : ndarray, shape (H, W), uint8
+        Class-index mask (255 = unlabelled is just another value here).
+    class_index : int
+        The class to outline, 0..255.
+    simplify_tolerance_px : float
+        Douglas-Peucker tolerance in pixels; 0 keeps the exact pixel-edge outline.
+    min_area_px : float
+        Regions with fewer pixels are dropped (specks).
+    connectivity : {8, 4}
+        Pixel neighbourhood that makes a region (see module docstring).
+    max_change : float
+        Largest relative change of a region's area that simplification may cause
+        (0.02 = 2 %).
+
+    Returns
+    -------
+    regions : list of Region
+        In label order (raster scan of each region's first pixel). Empty when the class
+        is absent or every region is a speck.
+    """
+    m = _check_mask(mask)
+    if not isinstance(class_index, int | np.integer) or not 0 <= int(class_index) <= 255:
+        raise ValueError(f"class_index: expected an integer 0..255, got {class_index!r}")
+    if connectivity not in (4, 8):
+        raise ValueError(f"connectivity: expected 4 or 8, got {connectivity!r}")
+    if simplify_tolerance_px < 0:
+        raise ValueError(
+            f"simplify_tolerance_px: expected >= 0 pixels, got {simplify_tolerance_px}; "
+            "use 0 for exact outlines"
+        )
+    if not 0 <= max_change <= 1:
+        raise ValueError(f"max_change: expected a share in [0, 1], got {max_change}")
+    if m.size == 0:
+        return []
+    binary = (m == class_index).astype(np.uint8)
+    if not binary.any():
+        return []
+    n, labels, stats, _ = cv2.connectedComponentsWithStats(
+        binary, connectivity=connectivity, ltype=cv2.CV_32S
+    )
+    keep = np.flatnonzero(stats[1:, cv2.CC_STAT_AREA] >= min_area_px) + 1
+    windows: list[Window] = []
+    crops: list[np.ndarray] = []
+    for k in keep:
+        c0, r0, w, h = (int(v) for v in stats[k, :4])
+        crops.append(labels[r0 : r0 + h, c0 : c0 + w] == k)
+        windows.append(Window(r0, c0, h, w))
+    regions_geom = _trace_regions([(w.row, w.col, c) for w, c in zip(windows, crops, strict=True)])
+    areas = stats[keep, cv2.CC_STAT_AREA].astype(np.float64)
+    final = _simplify(
+        regions_geom, areas, tolerance=float(simplify_tolerance_px), max_change=max_change
+    )
+    return [
+        Region(final[j], int(class_index), int(k), int(areas[j]), windows[j], crops[j])
+        for j, k in enumerate(keep)
+    ]
+
+
+def polygons_to_mask(
+    polygons_with_classes: Iterable[tuple[Geometry, int] | Region],
+    *,
+    shape: tuple[int, int],
+    fill: int = 255,
+) -> np.ndarray:
+    """Rasterise polygons into a class-index mask by pixel centres.
+
+    Pixel ``(r, c)`` takes a polygon's class when its centre ``(x, y) = (c + 0.5, r + 0.5)``
+    lies inside the polygon (holes excluded). Polygons are drawn in the given order, so a
+    later polygon overwrites an earlier one where they overlap. A centre exactly on an
+    edge is decided by GDAL's scan-line rule (``rasterio.features.rasterize``); exact
+    outlines from :func:`mask_to_polygons` never pass through pixel centres.
+
+    Parameters
+    ----------
+    polygons_with_classes : iterable of (geometry, class_index) or Region
+        Polygons or multipolygons in pixel-corner coordinates (x = column, y = row) and
+        their mask value 0..255. Empty geometries are skipped.
+    shape : (int, int)
+        ``(height, width)`` of the mask.
+    fill : int
+        Value of pixels no polygon covers: 255 (unlabelled) for a weak label, 0 (soil)
+        when the polygons cover everything that is not background.
+
+    Returns
+    -------
+    mask : ndarray, shape ``shape``, uint8
+    """
+    if (
+        len(shape) != 2
+        or not all(isinstance(s, int | np.integer) and s >= 0 for s in shape)
+    ):
+        raise ValueError(f"shape: expected (height, width) of non-negative ints, got {shape!r}")
+    if not isinstance(fill, int | np.integer) or not 0 <= int(fill) <= 255:
+        raise ValueError(f"fill: expected an integer 0..255 (255 = unlabelled), got {fill!r}")
+    height, width = int(shape[0]), int(shape[1])
+    items: list[tuple[Geometry, int]] = []
+    for k, item in enumerate(polygons_with_classes):
+        geom, value = (item.geometry, item.class_index) if isinstance(item, Region) else item
+        if not isinstance(geom, shapely.Polygon | shapely.MultiPolygon):
+            raise ValueError(
+                f"polygons_with_classes[{k}]: expected a shapely Polygon or MultiPolygon, "
+                f"got {type(geom).__name__}"
+            )
+        if not isinstance(value, int | np.integer) or not 0 <= int(value) <= 255:
+            raise ValueError(
+                f"polygons_with_classes[{k}]: class index must be an integer 0..255, "
+                f"got {value!r}"
+            )
+        if not geom.is_empty:
+            items.append((geom, int(value)))
+    out = np.full((height, width), int(fill), np.uint8)
+    if not items or height == 0 or width == 0:
+        return out
+    return rasterize(items, out=out, all_touched=False)
