@@ -356,9 +356,9 @@ def class_rarity(
     """Rarity of each class, 1 for the rarest, from its share in a reference set of tiles.
 
     With ``s_k`` the share of class ``k`` among all reference pixels
-    (``sum_m f_mk / sum_mk f_mk``; uniform when every fraction is 0), the smoothed share is
-    ``s'_k = (s_k + smoothing) / (1 + K * smoothing)``, the raw rarity
-    ``r_k = s'_k ** -power``, and the result ``r_k / max_j r_j``.
+    (``sum_m f_mk / sum_mk f_mk``; uniform when every fraction is 0), the raw rarity is
+    ``r_k = (s_k + smoothing) ** -power`` and the result ``r_k / max_j r_j`` (so any
+    renormalisation of the smoothed shares would cancel).
 
     Parameters
     ----------
@@ -386,8 +386,7 @@ def class_rarity(
     totals = f.sum(axis=0)
     grand = totals.sum()
     share = totals / grand if grand > 0 else np.full(k, 1.0 / k)
-    smoothed = (share + smoothing) / (1.0 + k * smoothing)
-    raw = smoothed ** (-float(power))
+    raw = (share + smoothing) ** (-float(power))
     return raw / raw.max()
 
 
@@ -692,7 +691,7 @@ def covering_radius(
         return 0.0
     xp = x[p]
     d2 = _min_sq_dist(xp, _sq_norms(xp), x[c], _sq_norms(x[c]))
-    return float(np.sqrt(d2.max(dtype=np.float64)))
+    return math.sqrt(float(d2.max()))
 
 
 # -- batch selection -----------------------------------------------------------------------
@@ -747,10 +746,12 @@ class CandidatePool:
     agreement: np.ndarray | None = None
 
     def __post_init__(self) -> None:
-        ids = np.asarray(self.ids)
-        if ids.ndim != 1:
-            ids = np.empty(len(self.ids), object)
-            ids[:] = list(self.ids)
+        if isinstance(self.ids, np.ndarray) and self.ids.ndim == 1:
+            ids = self.ids
+        else:  # keep the caller's objects as they are (no conversion of ints to text)
+            items = list(self.ids)
+            ids = np.empty(len(items), object)
+            ids[:] = items
         n = ids.shape[0]
         if len(set(ids.tolist())) != n:
             values, counts = np.unique(ids.astype(str), return_counts=True)
@@ -802,6 +803,11 @@ class CandidatePool:
                 f"values at row(s) {np.flatnonzero(lonely)[:5].tolist()}; agreement needs two"
             )
         set_(self, "agreement", agr)
+        for name in ("ids", "embeddings", "entropy", "margin", "least_confidence", "bald",
+                     "class_fractions", "annotators", "agreement"):
+            view = getattr(self, name).view()
+            view.flags.writeable = False  # the pool is validated once; keep it as checked
+            set_(self, name, view)
 
     def __len__(self) -> int:
         return int(self.ids.shape[0])
@@ -827,7 +833,7 @@ class CandidatePool:
                 f"tiles: expected {len(ids)} TileUncertainty like ids, got {len(tiles)}"
             )
         return cls(
-            ids=np.asarray(ids) if len(ids) else np.zeros(0, object),
+            ids=ids if isinstance(ids, np.ndarray) else list(ids),
             embeddings=embeddings,
             entropy=np.array([t.entropy for t in tiles], float),
             margin=np.array([t.margin for t in tiles], float),
