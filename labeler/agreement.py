@@ -478,11 +478,21 @@ def fleiss_kappa(counts: np.ndarray) -> float:
     sum_sq = 0.0
     col_sums = np.zeros(n_cat, np.float64)
     step = max(_CHUNK // n_cat, 1)
+    whole = c.dtype.kind in "ui"
     for start in range(0, n_subjects, step):
-        cf = c[start : start + step].astype(np.float64)
-        if not np.all(np.isfinite(cf)) or np.any(cf < 0) or np.any(cf != np.round(cf)):
-            raise ValueError("counts: expected non-negative whole numbers of raters")
-        rows = cf.sum(axis=1)
+        if whole:
+            cf = c[start : start + step].astype(np.int64)
+            if c.dtype.kind == "i" and np.any(cf < 0):
+                raise ValueError("counts: expected non-negative whole numbers of raters")
+        else:
+            cf = c[start : start + step].astype(np.float64)
+            if not np.all(np.isfinite(cf)) or np.any(cf < 0) or np.any(cf != np.round(cf)):
+                raise ValueError("counts: expected non-negative whole numbers of raters")
+        # column by column: reductions along a short last axis are slow in numpy
+        columns = [cf[:, j] for j in range(n_cat)]
+        rows = columns[0].copy()
+        for col in columns[1:]:
+            rows += col
         if n is None:
             n = float(rows[0])
         if np.any(rows != n):
@@ -492,8 +502,9 @@ def fleiss_kappa(counts: np.ndarray) -> float:
                 f"{n:g}, row {bad} to {float(c[bad].sum()):g}; drop subjects with missing "
                 "ratings or use krippendorff_alpha"
             )
-        sum_sq += float(np.sum(cf * cf))
-        col_sums += cf.sum(axis=0)
+        for j, col in enumerate(columns):
+            sum_sq += float(np.dot(col, col))
+            col_sums[j] += float(col.sum())
     if n < 2:
         raise ValueError(f"counts: expected at least 2 raters per subject, got {n:g}")
     return _fleiss_from_sums(n, float(n_subjects), sum_sq, col_sums)
