@@ -1,0 +1,307 @@
+"""Weak labels to full masks: random walker from scribbles, superpixel snapping, GrabCut.
+
+Pure array work (numpy, scipy, scikit-image; OpenCV only for the GrabCut maths). Masks are
+``(H, W)`` uint8 class indices; a scribble mask holds a class index on scribbled pixels and
+255 (:data:`labeler.classes.UNLABELLED`) elsewhere. Images are ``(H, W, 3)`` uint8 RGB.
+
+Refinement is local: only a band of ``band_px`` pixels around the scribbles is decided
+again; outside it the mask is kept, and the band's outer rim acts as seeds carrying the
+current mask's classes, so the new boundary joins the old mask smoothly.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import cv2
+import numpy as np
+from scipy import ndimage as ndi
+from skimage.segmentation import random_walker, slic
+
+from labeler.classes import UNLABELLED
+
+__all__ = [
+    "scribble_band",
+    "refine_random_walker",
+    "snap_to_superpixels",
+    "grabcut_box",
+]
+
+#: Largest number of undecided pixels solved directly ('bf'); larger systems use 'cg_j'.
+DIRECT_SOLVE_MAX = 100_000
+
+
+def _check_image(image: np.ndarray) -> np.ndarray:
+    a = np.asarray(image)
+    if a.ndim != 3 or a.shape[2] != 3 or a.dtype != np.uint8 or a.shape[0] < 1 or a.shape[1] < 1:
+        raise ValueError(
+            f"image: expected a (H, W, 3) uint8 RGB tile, got shape {a.shape} dtype {a.dtype}"
+        )
+    return a
+
+
+def _check_like(arr: np.ndarray, image: np.ndarray, name: str) -> np.ndarray:
+    a = np.asarray(arr)
+    if a.shape != image.shape[:2] or a.dtype != np.uint8:
+        raise ValueError(
+            f"{name}: expected a uint8 array of shape {image.shape[:2]} like image, got shape "
+            f"{a.shape} dtype {a.dtype}; pass the mask of the same tile"
+        )
+    return a
+
+
+def scribble_band(scribbles: np.ndarray, *, band_px: float) -> np.ndarray:
+    """Pixels within ``band_px`` (Euclidean) of a scribbled pixel, scribbles included.
+
+    Parameters
+    ----------
+    scribbles : ndarray, shape (H, W), uint8
+        Class index on scribbled pixels, 255 elsewhere.
+    band_px : float
+        Band half-width in pixels, at least 0.
+
+    Returns
+    -------
+    band : ndarray, shape (H, W), bool
+        All False when there is no scribble.
+    """
+    s = np.asarray(scribbles)
+    if s.ndim != 2:
+        raise ValueError(f"scribbles: expected a 2-D array, got shape {s.shape}")
+    if not np.isfinite(band_px) or band_px < 0:
+        raise ValueError(f"band_px: expected a width of at least 0 pixels, got {band_px}")
+    have = s != UNLABELLED
+    if not have.any():
+        return np.zeros(s.shape, bool)
+    return ndi.distance_transform_edt(~have) <= band_px
+
+
+def _bbox(sel: np.ndarray, pad: int) -> tuple[slice, slice]:
+    rows = np.flatnonzero(sel.any(axis=1))
+    cols = np.flatnonzero(sel.any(axis=0))
+    h, w = sel.shape
+    return (
+        slice(max(int(rows[0]) - pad, 0), min(int(rows[-1]) + pad + 1, h)),
+        slice(max(int(cols[0]) - pad, 0), min(int(cols[-1]) + pad + 1, w)),
+    )
+
+
+def refine_random_walker(
+    image: np.ndarray,
+    mask: np.ndarray,
+    scribbles: np.ndarray,
+    *,
+    band_px: float = 24.0,
+    beta: float = 130.0,
+    mode: str = "auto",
+    snap: bool = False,
+    n_segments: int = 400,
+    compactness: float = 10.0,
+) -> np.ndarray:
+    """Turn scribbles plus the current mask into a full mask by random walker.
+
+    Inside the band around the scribbles every pixel is decided again by the random
+    walker of Grady (2006), ``skimage.segmentation.random_walker(data, labels,
+    beta=beta, mode=..., channel_axis=-1)``: scribbled pixels are seeds of their class,
+    the rim just outside the band is seeded with the current mask, and the remaining band
+    pixels are unknown. Outside the band the mask is returned unchanged; scribbled pixels
+    always end with their scribble's class.
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W, 3), uint8
+        The RGB tile.
+    mask : ndarray, shape (H, W), uint8
+        Current class mask (the proposal or the edited mask). Rim pixels of value 255
+        carry no seed.
+    scribbles : ndarray, shape (H, W), uint8
+        Class index on scribbled pixels, 255 elsewhere.
+    band_px : float
+        Half-width of the band that is decided again.
+    beta : float
+        Edge penalty of the random walker (scikit-image's default 130).
+    mode : {"auto", "cg_j", "bf", "cg"}
+        Solver. ``"auto"`` solves directly ("bf") up to ``DIRECT_SOLVE_MAX`` unknown
+        pixels, which keeps the time predictable, and uses Jacobi-preconditioned
+        conjugate gradients ("cg_j") above.
+    snap : bool
+        Snap the result to SLIC superpixels (:func:`snap_to_superpixels`).
+    n_segments, compactness
+        SLIC options when ``snap`` is true.
+
+    Returns
+    -------
+    refined : ndarray, shape (H, W), uint8
+        A new array; equal to ``mask`` when there is no scribble.
+    """
+    img = _check_image(image)
+    m = _check_like(mask, img, "mask")
+    s = _check_like(scribbles, img, "scribbles")
+    if mode not in ("auto", "cg_j", "bf", "cg"):
+        raise ValueError(f"mode: expected 'auto', 'cg_j', 'bf' or 'cg', got {mode!r}")
+    out = m.copy()
+    band = scribble_band(s, band_px=band_px)
+    if not band.any():
+        return out
+    rs, cs = _bbox(band, 1)
+    b = band[rs, cs]
+    sub_s = s[rs, cs]
+    sub_m = m[rs, cs]
+    seeded = sub_s != UNLABELLED
+    rim = ndi.binary_dilation(b) & ~b
+    rim_ok = rim & (sub_m != UNLABELLED)
+    classes = np.unique(np.concatenate([sub_s[seeded], sub_m[rim_ok]]))
+    if len(classes) == 1:
+        # one class among all seeds: the whole band takes it
+        out[rs, cs][b] = classes[0]
+        return out
+    lut = np.zeros(256, np.int32)
+    lut[classes] = np.arange(1, len(classes) + 1, dtype=np.int32)
+    labels = np.full(b.shape, -1, np.int32)  # -1: outside band and rim, left out of the graph
+    labels[b] = 0
+    labels[rim_ok] = lut[sub_m[rim_ok]]
+    labels[seeded] = lut[sub_s[seeded]]
+    unknown = int((labels == 0).sum())
+    if unknown == 0:
+        out[rs, cs][seeded] = sub_s[seeded]
+        return out
+    solver = mode
+    if mode == "auto":
+        solver = "bf" if unknown <= DIRECT_SOLVE_MAX else "cg_j"
+    with warnings.catch_warnings():
+        # the iterative solvers stop at tol=1e-3, so probabilities may leave [0, 1] by a
+        # little; only their argmax is used, which that does not change in practice
+        warnings.filterwarnings("ignore", message="The probability range is outside")
+        warnings.filterwarnings("ignore", message="Conjugate gradient convergence")
+        # pixels cut off from every seed by the band's shape stay as they were
+        warnings.filterwarnings("ignore", message="All unlabeled pixels are isolated")
+        walked = random_walker(
+            img[rs, cs], labels, beta=beta, mode=solver, channel_axis=-1
+        )
+    decided = b & (walked > 0)
+    result = sub_m.copy()
+    result[decided] = classes[walked[decided] - 1]
+    if snap:
+        result = snap_to_superpixels(
+            img[rs, cs], result, region=b, n_segments=n_segments, compactness=compactness
+        )
+    result[seeded] = sub_s[seeded]
+    out[rs, cs] = np.where(b, result, sub_m)
+    return out
+
+
+def snap_to_superpixels(
+    image: np.ndarray,
+    mask: np.ndarray,
+    *,
+    region: np.ndarray,
+    n_segments: int = 400,
+    compactness: float = 10.0,
+) -> np.ndarray:
+    """Give every SLIC superpixel the majority class of its pixels inside ``region``.
+
+    SLIC superpixels (Achanta et al. 2012, ``skimage.segmentation.slic``) follow colour
+    edges, so snapping moves a boundary onto the nearest edge. Only pixels in ``region``
+    change; ties go to the smaller class index.
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W, 3), uint8
+    mask : ndarray, shape (H, W), uint8
+    region : ndarray, shape (H, W), bool
+        Pixels allowed to change (and voting).
+    n_segments : int
+        Approximate number of superpixels over the image.
+    compactness : float
+        SLIC trade-off between colour and space (larger = rounder superpixels).
+
+    Returns
+    -------
+    snapped : ndarray, shape (H, W), uint8
+    """
+    img = _check_image(image)
+    m = _check_like(mask, img, "mask")
+    reg = np.asarray(region, bool)
+    if reg.shape != m.shape:
+        raise ValueError(f"region: expected shape {m.shape} like mask, got {reg.shape}")
+    if n_segments < 1:
+        raise ValueError(f"n_segments: expected at least 1, got {n_segments}")
+    out = m.copy()
+    if not reg.any():
+        return out
+    segments = slic(
+        img, n_segments=n_segments, compactness=compactness, start_label=0, channel_axis=-1
+    )
+    n_seg = int(segments.max()) + 1
+    votes = np.zeros((n_seg, 256), np.int64)
+    np.add.at(votes, (segments[reg], m[reg]), 1)
+    winner = votes.argmax(axis=1).astype(np.uint8)
+    out[reg] = winner[segments[reg]]
+    return out
+
+
+def grabcut_box(
+    image: np.ndarray,
+    box: tuple[int, int, int, int],
+    *,
+    iterations: int = 5,
+    margin_px: int = 16,
+) -> np.ndarray:
+    """Foreground inside a box by GrabCut (Rother, Kolmogorov & Blake 2004; OpenCV).
+
+    Runs ``cv2.grabCut(img, mask, rect, bgd, fgd, iterations, cv2.GC_INIT_WITH_RECT)``
+    with empty colour models ``np.zeros((1, 65))`` on the box plus a margin of the tile
+    around it (the margin gives the background model its samples).
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W, 3), uint8
+        The RGB tile.
+    box : (int, int, int, int)
+        ``(row0, col0, row1, col1)``, half-open pixel box; at least 2 x 2 pixels, and the
+        tile must have pixels outside it.
+    iterations : int
+        GrabCut iterations, at least 1.
+    margin_px : int
+        Background context taken around the box (clipped to the tile).
+
+    Returns
+    -------
+    foreground : ndarray, shape (H, W), bool
+        True for pixels GrabCut calls (probable) foreground; always False outside the box.
+    """
+    img = _check_image(image)
+    h, w = img.shape[:2]
+    if len(box) != 4:
+        raise ValueError(f"box: expected (row0, col0, row1, col1), got {box!r}")
+    r0, c0, r1, c1 = (int(v) for v in box)
+    r0, c0 = max(r0, 0), max(c0, 0)
+    r1, c1 = min(r1, h), min(c1, w)
+    if r1 - r0 < 2 or c1 - c0 < 2:
+        raise ValueError(
+            f"box: expected at least 2 x 2 pixels inside the tile, got rows {r0}..{r1} "
+            f"cols {c0}..{c1}; drag a larger box"
+        )
+    if r0 == 0 and c0 == 0 and r1 == h and c1 == w:
+        raise ValueError(
+            "box: covers the whole tile, so GrabCut has no background to learn from; "
+            "draw the box around one plant"
+        )
+    if iterations < 1:
+        raise ValueError(f"iterations: expected at least 1, got {iterations}")
+    pad = max(int(margin_px), 1)
+    cr0, cc0 = max(r0 - pad, 0), max(c0 - pad, 0)
+    cr1, cc1 = min(r1 + pad, h), min(c1 + pad, w)
+    crop = np.ascontiguousarray(img[cr0:cr1, cc0:cc1, ::-1])  # OpenCV works in BGR
+    gc_mask = np.zeros(crop.shape[:2], np.uint8)
+    bgd = np.zeros((1, 65), np.float64)
+    fgd = np.zeros((1, 65), np.float64)
+    # OpenCV's rect is (x, y, width, height): columns first, at this boundary only
+    rect = (c0 - cc0, r0 - cr0, c1 - c0, r1 - r0)
+    cv2.grabCut(crop, gc_mask, rect, bgd, fgd, int(iterations), cv2.GC_INIT_WITH_RECT)
+    fg = (gc_mask == cv2.GC_FGD) | (gc_mask == cv2.GC_PR_FGD)
+    out = np.zeros((h, w), bool)
+    out[cr0:cr1, cc0:cc1] = fg
+    inside = np.zeros((h, w), bool)
+    inside[r0:r1, c0:c1] = True
+    return out & inside
