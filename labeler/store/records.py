@@ -166,6 +166,7 @@ class ProposalRecord:
     mean_entropy: float | None
     mean_margin: float | None
     mean_bald: float | None
+    mean_least_confidence: float | None
     class_fractions: list[float] | None
     created_at: datetime
     mask_png: bytes = field(repr=False)

@@ -145,6 +145,7 @@ proposals = sa.Table(
     sa.Column("mean_entropy", sa.Float, nullable=True),
     sa.Column("mean_margin", sa.Float, nullable=True),
     sa.Column("mean_bald", sa.Float, nullable=True),
+    sa.Column("mean_least_confidence", sa.Float, nullable=True),
     sa.Column("class_fractions", sa.JSON, nullable=True),  # list aligned with class indices
     sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
 )

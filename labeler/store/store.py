@@ -100,6 +100,7 @@ class NewProposal:
     mean_entropy: float | None = None
     mean_margin: float | None = None
     mean_bald: float | None = None
+    mean_least_confidence: float | None = None
     class_fractions: Sequence[float] | None = None
 
 
@@ -1011,6 +1012,7 @@ class Store:
                     mean_entropy=p.mean_entropy,
                     mean_margin=p.mean_margin,
                     mean_bald=p.mean_bald,
+                    mean_least_confidence=p.mean_least_confidence,
                     class_fractions=None
                     if p.class_fractions is None
                     else [float(v) for v in p.class_fractions],
@@ -1045,6 +1047,7 @@ class Store:
             mean_entropy=r.mean_entropy,
             mean_margin=r.mean_margin,
             mean_bald=r.mean_bald,
+            mean_least_confidence=r.mean_least_confidence,
             class_fractions=r.class_fractions,
             created_at=_utc(r.created_at),
             mask_png=r.mask_png,

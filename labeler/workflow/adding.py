@@ -1,9 +1,4 @@
-"""The loop: add -> propose -> pick -> annotate -> retrain -> export.
-
-Each function takes an open :class:`labeler.project.Project`, calls the rooms that own
-the work (store, imagery, masks, model, picker, agreement, export) and returns plain
-results for the CLI or the terminal queue to show. Nothing here prints.
-"""
+"""Adding images to a project, and its status."""
 
 from __future__ import annotations
 

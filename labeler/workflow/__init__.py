@@ -1,0 +1,34 @@
+"""The loop: add -> propose -> pick -> annotate -> retrain -> export.
+
+Each function takes an open :class:`labeler.project.Project`, calls the rooms that own
+the work (store, imagery, masks, model, picker, agreement, export) and returns plain
+results for the CLI or the terminal queue to show. Nothing here prints.
+"""
+
+from labeler.workflow.adding import AddResult, Progress, ProjectStatus, add_images, project_status
+from labeler.workflow.annotating import (
+    QueueRow,
+    accept_tile,
+    after_save,
+    next_tile,
+    park_tile,
+    queue_rows,
+    save_tile_mask,
+)
+from labeler.workflow.picking import rank_tiles
+
+__all__ = [
+    "Progress",
+    "AddResult",
+    "add_images",
+    "ProjectStatus",
+    "project_status",
+    "QueueRow",
+    "accept_tile",
+    "after_save",
+    "next_tile",
+    "park_tile",
+    "queue_rows",
+    "save_tile_mask",
+    "rank_tiles",
+]

@@ -1,0 +1,250 @@
+"""Saving annotations, accepting and parking tiles, the queue, contested tiles."""
+
+from __future__ import annotations
+
+import itertools
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from labeler.agreement import tile_agreement
+from labeler.errors import LabelerError, NotFoundError
+from labeler.project import Project
+from labeler.states import ACCEPTED, AMENDED, CONTESTED, PARKED, SETTLED
+from labeler.store.records import AnnotationRecord
+
+__all__ = [
+    "save_tile_mask",
+    "accept_tile",
+    "park_tile",
+    "after_save",
+    "overlap_agreement",
+    "QueueRow",
+    "queue_rows",
+    "next_tile",
+]
+
+
+def save_tile_mask(
+    project: Project,
+    tile_id: int,
+    annotator: str,
+    mask: np.ndarray,
+    *,
+    parent_version: int | None,
+    kind: str = "full",
+    seconds: float = 0.0,
+    actions: int = 0,
+    source: str = "editor",
+    proposal_id: int | None = None,
+    settling: bool = False,
+) -> AnnotationRecord:
+    """Save a mask of a tile and update its state.
+
+    The annotation state is ``settled`` for a reviewer's decision, ``weak`` for
+    scribbles, ``accepted`` when a full mask equals the proposal it started from, else
+    ``amended``. After the save an overlap tile whose annotators all saved is checked
+    for agreement (:func:`after_save`).
+
+    Raises
+    ------
+    labeler.errors.ConflictError
+        When ``parent_version`` is stale; nothing is written.
+    """
+    store = project.store
+    if kind == "scribble":
+        state = "weak"
+    elif settling:
+        state = SETTLED
+    else:
+        state = AMENDED
+        if proposal_id is not None:
+            prop = store.proposal(proposal_id)
+            if np.array_equal(prop.mask(), mask):
+                state = ACCEPTED
+    rec = store.save_annotation(
+        tile_id,
+        annotator,
+        mask,
+        parent_version=parent_version,
+        kind=kind,
+        state=state,
+        seconds=seconds,
+        actions=actions,
+        source=source,
+        proposal_id=proposal_id,
+    )
+    if kind == "full" and not settling:
+        after_save(project, tile_id)
+    return rec
+
+
+def accept_tile(
+    project: Project, tile_id: int, annotator: str, *, seconds: float = 0.0, source: str = "queue"
+) -> AnnotationRecord:
+    """Keep the tile's newest proposal unchanged as ``annotator``'s mask (``accepted``).
+
+    Raises
+    ------
+    LabelerError
+        If the tile has no proposal yet (run ``labeler propose``) or is contested or
+        settled (a reviewer decides those).
+    """
+    store = project.store
+    tile = store.tile(tile_id)
+    if tile.state in (CONTESTED, SETTLED):
+        raise LabelerError(f"tile {tile_id} is {tile.state}; a reviewer settles it in the editor")
+    prop = store.latest_proposal(tile_id)
+    if prop is None:
+        raise LabelerError(f"tile {tile_id} has no proposal yet; run 'labeler propose' first")
+    parent = store.lineage_head(tile_id, annotator)
+    return save_tile_mask(
+        project,
+        tile_id,
+        annotator,
+        prop.mask(),
+        parent_version=parent,
+        seconds=seconds,
+        actions=1,
+        source=source,
+        proposal_id=prop.id,
+    )
+
+
+def park_tile(project: Project, tile_id: int, annotator: str) -> None:
+    """Set a tile aside (``parked``); it returns to the queue when someone opens it."""
+    project.store.set_state(tile_id, PARKED, annotator=annotator, reason="parked by annotator")
+
+
+def overlap_agreement(project: Project, tile_id: int) -> float | None:
+    """Lowest pairwise agreement of the newest full masks on an overlap tile.
+
+    ``None`` when fewer than two annotators have saved; NaN when they share no
+    labelled pixel. The metric (kappa or IoU) is the project setting.
+    """
+    store = project.store
+    savers = store.savers(tile_id)
+    if len(savers) < 2:
+        return None
+    masks = [store.latest_annotation(tile_id, annotator=a).mask() for a in savers]
+    n_classes = project.settings.classes.n_values
+    metric = project.settings.agreement.metric
+    values = [
+        tile_agreement(a, b, n_classes=n_classes, metric=metric)
+        for a, b in itertools.combinations(masks, 2)
+    ]
+    finite = [v for v in values if not math.isnan(v)]
+    return min(finite) if finite else math.nan
+
+
+def after_save(project: Project, tile_id: int) -> float | None:
+    """Move an overlap tile to ``contested`` when its annotators disagree.
+
+    Once the configured number of annotators has saved, the lowest pairwise agreement
+    is compared with the project threshold; below it, the tile becomes ``contested``
+    (a reviewer settles it). Returns the agreement (None when not yet comparable).
+    """
+    store = project.store
+    tile = store.tile(tile_id)
+    if not tile.overlap or tile.state == SETTLED:
+        return None
+    need = project.settings.agreement.annotators_per_tile
+    if len(store.savers(tile_id)) < need:
+        return None
+    value = overlap_agreement(project, tile_id)
+    threshold = project.settings.agreement.threshold
+    if (
+        value is not None
+        and not math.isnan(value)
+        and value < threshold
+        and tile.state != CONTESTED
+    ):
+        store.set_state(
+            tile_id,
+            CONTESTED,
+            reason=f"{project.settings.agreement.metric} {value:.3f} below threshold {threshold}",
+        )
+    return value
+
+
+@dataclass(frozen=True)
+class QueueRow:
+    """One line of the annotators' queue."""
+
+    rank: int | None
+    tile_id: int
+    image: str
+    row: int
+    col: int
+    score: float | None
+    reason: str | None
+    class_fractions: tuple[float, ...] | None
+    state: str
+    held_by: str | None
+    saved_by: tuple[str, ...]
+    overlap: bool
+    agreement: float | None
+    in_batch: bool
+
+
+def queue_rows(project: Project) -> list[QueueRow]:
+    """Every tile in queue order: the newest ranking first, then unranked tiles by id."""
+    store = project.store
+    images = {im.id: im.name for im in store.images()}
+    ranking = {item.tile_id: item for item in store.latest_ranking()}
+    proposals = store.latest_proposals()
+    savers: dict[int, set[str]] = {}
+    for a in store.annotations(kind="full"):
+        if a.state != SETTLED:
+            savers.setdefault(a.tile_id, set()).add(a.annotator)
+    rows = []
+    for t in store.tiles():
+        item = ranking.get(t.id)
+        prop = proposals.get(t.id)
+        agreement = None
+        if t.overlap and len(savers.get(t.id, ())) >= 2:
+            agreement = overlap_agreement(project, t.id)
+        rows.append(
+            QueueRow(
+                rank=None if item is None else item.rank,
+                tile_id=t.id,
+                image=images[t.image_id],
+                row=t.row,
+                col=t.col,
+                score=None if item is None else item.score,
+                reason=None if item is None else item.reason,
+                class_fractions=None
+                if prop is None or prop.class_fractions is None
+                else tuple(prop.class_fractions),
+                state=t.state,
+                held_by=t.held_by,
+                saved_by=tuple(sorted(savers.get(t.id, ()))),
+                overlap=t.overlap,
+                agreement=agreement,
+                in_batch=False if item is None else item.in_batch,
+            )
+        )
+    rows.sort(key=lambda r: (r.rank is None, r.rank if r.rank is not None else 0, r.tile_id))
+    return rows
+
+
+def next_tile(project: Project, annotator: str) -> int:
+    """The first tile in queue order that ``annotator`` may be handed.
+
+    Raises
+    ------
+    NotFoundError
+        When nothing is left for this annotator.
+    """
+    per_tile = project.settings.agreement.annotators_per_tile
+    available = set(project.store.available_for(annotator, per_overlap_tile=per_tile))
+    for row in queue_rows(project):
+        if row.tile_id in available and row.state != PARKED:
+            return row.tile_id
+    for row in queue_rows(project):
+        if row.tile_id in available:
+            return row.tile_id
+    raise NotFoundError(
+        f"no tile is left for annotator {annotator!r}; everything is saved or handed out"
+    )

@@ -1,0 +1,159 @@
+"""Ranking the queue with the active-learning picker (``labeler pick``)."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from labeler.errors import LabelerError
+from labeler.picker import CandidatePool, select_batch
+from labeler.project import Project
+from labeler.states import SETTLED
+from labeler.store.records import RankingItem
+from labeler.workflow.adding import Progress, _no_progress
+from labeler.workflow.annotating import overlap_agreement
+
+__all__ = ["RankResult", "rank_tiles"]
+
+
+@dataclass(frozen=True)
+class RankResult:
+    """What ``labeler pick`` did."""
+
+    strategy: str  # the strategy used (cold-start proposals carry no uncertainty: coreset)
+    requested: str
+    k: int
+    items: list[RankingItem]
+    unranked: int  # tiles without a proposal (not ranked)
+    note: str = ""
+
+
+def _fractions(mask: np.ndarray, indices: tuple[int, ...]) -> np.ndarray:
+    counts = np.bincount(mask.ravel(), minlength=256)
+    sel = counts[list(indices)].astype(np.float64)
+    total = sel.sum()
+    return sel / total if total else sel
+
+
+def rank_tiles(
+    project: Project,
+    *,
+    strategy: str | None = None,
+    k: int | None = None,
+    seed: int | None = None,
+    progress: Progress = _no_progress,
+) -> RankResult:
+    """Rank every proposed tile and write the queue order to the store.
+
+    Parameters
+    ----------
+    project : Project
+    strategy : str, optional
+        One of random, entropy, margin, bald, coreset, mixed (default: the setting).
+    k : int, optional
+        Batch size (default: the setting); the whole pool is ranked, the first k are
+        the batch.
+    seed : int, optional
+        Seed for ``random`` (default: the setting).
+
+    Raises
+    ------
+    LabelerError
+        If no tile has a proposal with an embedding yet (run ``labeler propose``).
+    """
+    ps = project.settings.picker
+    strategy = ps.strategy if strategy is None else strategy
+    k = ps.k if k is None else k
+    seed = ps.seed if seed is None else seed
+    store = project.store
+    schema = project.settings.classes
+    tiles = store.tiles()
+    proposals = store.latest_proposals()
+    progress(0, 3, "reading proposals")
+    savers: dict[int, set[str]] = {}
+    for a in store.annotations(kind="full"):
+        if a.state != SETTLED:
+            savers.setdefault(a.tile_id, set()).add(a.annotator)
+    ids, emb, ent, mar, lc, bald, frac, ann, agr = [], [], [], [], [], [], [], [], []
+    have_uncertainty = False
+    for t in tiles:
+        p = proposals.get(t.id)
+        if p is None or p.embedding_npy is None:
+            continue
+        e = p.embedding()
+        n_saved = len(savers.get(t.id, ()))
+        if t.state == SETTLED:
+            n_saved = 1
+        fr = np.asarray(
+            p.class_fractions if p.class_fractions is not None else np.zeros(len(schema)),
+            np.float64,
+        )
+        if n_saved >= 1:
+            latest = store.latest_annotation(t.id)
+            if latest is not None:
+                fr = _fractions(latest.mask(), schema.indices)
+        a_val = math.nan
+        if n_saved >= 2:
+            v = overlap_agreement(project, t.id)
+            a_val = math.nan if v is None else v
+        if p.mean_entropy is not None:
+            have_uncertainty = True
+        ids.append(t.id)
+        emb.append(e)
+        ent.append(p.mean_entropy or 0.0)
+        mar.append(1.0 if p.mean_margin is None else p.mean_margin)
+        lc.append(p.mean_least_confidence or 0.0)
+        bald.append(math.nan if p.mean_bald is None else p.mean_bald)
+        frac.append(fr)
+        ann.append(n_saved)
+        agr.append(a_val)
+    if not ids:
+        raise LabelerError(
+            "no tile has a proposal with an embedding yet; run 'labeler propose' first"
+        )
+    progress(1, 3, "scoring")
+    used = strategy
+    note = ""
+    if not have_uncertainty and strategy not in ("random", "coreset"):
+        used = "coreset"
+        note = (
+            "the proposals come from the cold start and carry no model uncertainty, so tiles are "
+            "ranked for diversity (coreset) until a model is trained"
+        )
+    pool = CandidatePool(
+        ids=ids,
+        embeddings=np.stack(emb).astype(np.float32),
+        entropy=np.array(ent),
+        margin=np.array(mar),
+        least_confidence=np.array(lc),
+        class_fractions=np.stack(frac),
+        bald=np.array(bald),
+        annotators=np.array(ann),
+        agreement=np.array(agr),
+    )
+    sel = select_batch(
+        pool,
+        strategy=used,
+        k=k,
+        seed=seed,
+        agreement_threshold=project.settings.agreement.threshold,
+    )
+    items = [
+        RankingItem(
+            tile_id=int(tid), rank=r, score=float(sc), reason=str(rs), in_batch=r < sel.n_chosen
+        )
+        for r, (tid, sc, rs) in enumerate(zip(sel.ids, sel.scores, sel.reasons, strict=True))
+    ]
+    progress(2, 3, "writing the queue")
+    store.write_ranking(strategy=used, k=k, seed=seed, items=items)
+    progress(3, 3, "done")
+    return RankResult(
+        strategy=used,
+        requested=strategy,
+        k=k,
+        items=items,
+        unranked=len(tiles) - len(ids),
+        note=note,
+    )

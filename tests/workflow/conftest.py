@@ -1,0 +1,70 @@
+"""A small project with one image of 2 x 3 tiles and a fake proposer (no model)."""
+
+import numpy as np
+import pytest
+from affine import Affine
+
+from labeler.imagery.write import write_geotiff
+from labeler.project import init_project
+from labeler.store.store import NewProposal
+from labeler.workflow import add_images
+
+
+def fake_proposals(project, *, seed=0, with_uncertainty=True):
+    """Store seeded proposals: random masks, embeddings and uncertainty scalars."""
+    rng = np.random.default_rng(seed)
+    store = project.store
+    mv = store.add_model_version(kind="head" if with_uncertainty else "cold_start", name="fake")
+    items = []
+    for t in store.tiles():
+        mask = rng.integers(0, 4, t.shape).astype(np.uint8)
+        fr = np.bincount(mask.ravel(), minlength=4) / mask.size
+        items.append(
+            NewProposal(
+                t.id,
+                mask,
+                embedding=rng.normal(size=16).astype(np.float32),
+                mean_entropy=float(rng.random()) if with_uncertainty else None,
+                mean_margin=float(rng.random()) if with_uncertainty else None,
+                mean_least_confidence=float(rng.random()) if with_uncertainty else None,
+                mean_bald=float(rng.random()) if with_uncertainty else None,
+                class_fractions=fr.tolist(),
+            )
+        )
+    store.add_proposals(mv.id, items)
+    return mv
+
+
+@pytest.fixture
+def project(tmp_path):
+    rgb = np.random.default_rng(2).integers(0, 256, (300, 500, 3), dtype=np.uint8)
+    write_geotiff(
+        tmp_path / "east-block.tif",
+        rgb,
+        transform=Affine(0.004, 0, 431000, 0, -0.004, 5712000),
+        crs="EPSG:32631",
+    )
+    p = init_project(tmp_path / "proj")
+    add_images(p, [tmp_path / "east-block.tif"])
+    yield p
+    p.close()
+
+
+@pytest.fixture
+def overlap_project(tmp_path):
+    rgb = np.random.default_rng(2).integers(0, 256, (300, 500, 3), dtype=np.uint8)
+    write_geotiff(
+        tmp_path / "east-block.tif",
+        rgb,
+        transform=Affine(0.004, 0, 431000, 0, -0.004, 5712000),
+        crs="EPSG:32631",
+    )
+    root = tmp_path / "proj"
+    init_project(root).close()
+    (root / "labeler.toml").write_text("[agreement]\noverlap_share = 1.0\nthreshold = 0.6\n")
+    from labeler.project import open_project
+
+    p = open_project(root)
+    add_images(p, [tmp_path / "east-block.tif"])
+    yield p
+    p.close()

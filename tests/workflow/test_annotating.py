@@ -1,0 +1,104 @@
+"""Accept, park, save with state, contested overlap tiles, queue order."""
+
+import numpy as np
+import pytest
+
+from labeler.agreement import cohen_kappa, confusion_matrix
+from labeler.errors import ConflictError, LabelerError, NotFoundError
+from labeler.workflow import accept_tile, next_tile, park_tile, queue_rows, save_tile_mask
+from labeler.workflow.annotating import overlap_agreement
+from tests.workflow.conftest import fake_proposals
+
+
+def test_accept_needs_a_proposal(project):
+    tid = project.store.tiles()[0].id
+    with pytest.raises(LabelerError, match="no proposal yet; run 'labeler propose'"):
+        accept_tile(project, tid, "ines")
+
+
+def test_accept_keeps_proposal_as_accepted(project):
+    fake_proposals(project)
+    tid = project.store.tiles()[0].id
+    rec = accept_tile(project, tid, "ines")
+    assert rec.state == "accepted" and project.store.tile(tid).state == "accepted"
+    np.testing.assert_array_equal(rec.mask(), project.store.latest_proposal(tid).mask())
+    # a second accept from the same stale parent would conflict; accept reads the head itself
+    again = accept_tile(project, tid, "ines")
+    assert again.version == rec.version + 1
+
+
+def test_save_state_accepted_or_amended(project):
+    fake_proposals(project)
+    store = project.store
+    t0, t1 = store.tiles()[:2]
+    p0 = store.latest_proposal(t0.id)
+    same = save_tile_mask(project, t0.id, "ines", p0.mask(), parent_version=None, proposal_id=p0.id)
+    assert same.state == "accepted"
+    p1 = store.latest_proposal(t1.id)
+    changed = p1.mask().copy()
+    changed[0, 0] = (changed[0, 0] + 1) % 4
+    rec = save_tile_mask(project, t1.id, "ines", changed, parent_version=None, proposal_id=p1.id)
+    assert rec.state == "amended"
+    with pytest.raises(ConflictError):
+        save_tile_mask(project, t1.id, "tomas", changed, parent_version=None, proposal_id=p1.id)
+
+
+def test_park(project):
+    tid = project.store.tiles()[0].id
+    park_tile(project, tid, "ines")
+    assert project.store.tile(tid).state == "parked"
+
+
+def test_disagreeing_overlap_tile_becomes_contested(overlap_project):
+    project = overlap_project
+    fake_proposals(project)
+    t = project.store.tiles()[0]
+    a = np.zeros(t.shape, np.uint8)
+    a[:, :128] = 1
+    b = np.zeros(t.shape, np.uint8)
+    b[:128, :] = 2  # a very different opinion
+    save_tile_mask(project, t.id, "ines", a, parent_version=None)
+    assert project.store.tile(t.id).state == "amended"  # one annotator: not comparable yet
+    save_tile_mask(project, t.id, "tomas", b, parent_version=None)
+    # Cohen's kappa of the two masks, computed independently of the workflow
+    kappa = cohen_kappa(confusion_matrix(a, b, n_classes=4))
+    assert overlap_agreement(project, t.id) == pytest.approx(kappa, abs=1e-12)
+    assert kappa < 0.6
+    assert project.store.tile(t.id).state == "contested"
+    with pytest.raises(LabelerError, match="contested; a reviewer settles it"):
+        accept_tile(project, t.id, "kai")
+
+
+def test_agreeing_overlap_tile_stays(overlap_project):
+    project = overlap_project
+    t = project.store.tiles()[0]
+    a = np.zeros(t.shape, np.uint8)
+    a[:, :128] = 1
+    b = a.copy()
+    b[0, :3] = 0
+    save_tile_mask(project, t.id, "ines", a, parent_version=None)
+    save_tile_mask(project, t.id, "tomas", b, parent_version=None)
+    assert project.store.tile(t.id).state == "amended"
+
+
+def test_queue_order_and_next(project):
+    fake_proposals(project)
+    from labeler.workflow import rank_tiles
+
+    result = rank_tiles(project, strategy="entropy", k=2)
+    rows = queue_rows(project)
+    assert [r.tile_id for r in rows] == [i.tile_id for i in result.items]
+    ent = {t: project.store.latest_proposal(t).mean_entropy for t in [r.tile_id for r in rows]}
+    assert [ent[r.tile_id] for r in rows] == sorted(ent.values(), reverse=True)
+    first = next_tile(project, "ines")
+    assert first == rows[0].tile_id
+    accept_tile(project, first, "ines")
+    assert next_tile(project, "ines") == rows[1].tile_id
+
+
+def test_next_when_nothing_left(project):
+    fake_proposals(project)
+    for t in project.store.tiles():
+        accept_tile(project, t.id, "ines")
+    with pytest.raises(NotFoundError, match="no tile is left"):
+        next_tile(project, "tomas")

@@ -1,0 +1,38 @@
+"""labeler pick through the workflow: ranking written to the store, fallbacks."""
+
+import pytest
+
+from labeler.errors import LabelerError
+from labeler.picker import REASONS
+from labeler.workflow import accept_tile, rank_tiles
+from tests.workflow.conftest import fake_proposals
+
+
+def test_needs_proposals(project):
+    with pytest.raises(LabelerError, match="run 'labeler propose' first"):
+        rank_tiles(project)
+
+
+def test_mixed_ranking_written_with_reasons(project):
+    fake_proposals(project)
+    result = rank_tiles(project, k=3)
+    assert result.strategy == "mixed" and len(result.items) == 6
+    stored = project.store.latest_ranking()
+    assert [i.tile_id for i in stored] == [i.tile_id for i in result.items]
+    assert sum(i.in_batch for i in stored) == 3
+    assert all(i.reason in REASONS for i in stored)
+
+
+def test_labelled_tiles_leave_the_pool(project):
+    fake_proposals(project)
+    tid = project.store.tiles()[0].id
+    accept_tile(project, tid, "ines")
+    result = rank_tiles(project, strategy="margin", k=2)
+    assert tid not in [i.tile_id for i in result.items]
+
+
+def test_cold_start_falls_back_to_diversity(project):
+    fake_proposals(project, with_uncertainty=False)
+    result = rank_tiles(project, strategy="entropy", k=2)
+    assert (result.requested, result.strategy) == ("entropy", "coreset")
+    assert "cold start" in result.note
