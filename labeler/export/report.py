@@ -126,7 +126,7 @@ def overlay_mask(
     schema : ClassSchema
     opacity : float
         Weight of the class colour, 0..1: ``out = (1 - opacity) * rgb + opacity *
-        colour``, rounded to the nearest integer (half to even).
+        colour``, rounded to the nearest integer (halves up).
 
     Returns
     -------
@@ -150,7 +150,9 @@ def overlay_mask(
     sel = has[idx] & (m >= 0) & (m <= 255)
     out = img.copy()
     blend = (1.0 - opacity) * img[sel].astype(np.float64) + opacity * colours[idx[sel]]
-    out[sel] = np.clip(np.rint(blend), 0, 255).astype(np.uint8)
+    # half up, with a little slack so that 158.49999999999997 (from 0.55 * 100 + 0.45 *
+    # 230 in floating point) rounds like the exact 158.5
+    out[sel] = np.clip(np.floor(blend + 0.5 + 1e-9), 0, 255).astype(np.uint8)
     return out
 
 
@@ -351,7 +353,8 @@ def _plot_over_time(summary: AgreementSummary) -> bytes:
     else:
         ax.text(0.5, 0.5, "no comparison yet", ha="center", va="center",
                 transform=ax.transAxes)
-    ax.set_ylim(min(0.0, *(d.kappa for d in summary.days if not math.isnan(d.kappa))), 1.05)
+    lowest = min([0.0, *(d.kappa for d in summary.days if not math.isnan(d.kappa))])
+    ax.set_ylim(lowest - 0.05 if lowest < 0 else 0.0, 1.05)
     ax.set_ylabel("agreement")
     ax.set_title("Agreement by day of the later save (all pairs pooled)", fontsize=9)
     return _png_of(fig)
