@@ -118,7 +118,8 @@ def stroke_patch(
     Consecutive samples are joined by straight segments and every pixel within
     ``radius`` of a segment is taken (the union of capsules), so a fast drag whose
     samples lie far apart still leaves a continuous line: there is no gap to
-    interpolate. With ``radius >= 0.5`` the footprint of one stroke is 8-connected.
+    interpolate. The pixel under each sample is taken too (a dab between pixel centres
+    is never empty). With ``radius >= 0.5`` the footprint of one stroke is 8-connected.
 
     Parameters
     ----------
@@ -163,6 +164,10 @@ def stroke_patch(
         rr = np.arange(sr0, sr1, dtype=np.float64)[:, None]
         cc = np.arange(sc0, sc1, dtype=np.float64)[None, :]
         out[sr0 - r0 : sr1 - r0, sc0 - c0 : sc1 - c0] |= _segment_distance(rr, cc, a, b) <= lim
+    # the pixel under each sample is always taken, so a click between centres paints
+    under = np.floor(p + 0.5).astype(np.int64)
+    keep = (under[:, 0] >= r0) & (under[:, 0] < r1) & (under[:, 1] >= c0) & (under[:, 1] < c1)
+    out[under[keep, 0] - r0, under[keep, 1] - c0] = True
     return Patch(r0, c0, out)
 
 
