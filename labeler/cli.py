@@ -12,6 +12,7 @@ from pathlib import Path
 
 from labeler import __version__
 from labeler.errors import LabelerError
+from labeler.settings import STRATEGIES
 
 __all__ = ["main", "build_parser"]
 
@@ -174,6 +175,72 @@ def cmd_demo(args) -> int:
     return 0
 
 
+def cmd_pick(args) -> int:
+    from labeler.project import open_project
+    from labeler.workflow import rank_tiles
+
+    with open_project(args.dir) as project, _Bar("ranking") as bar:
+        result = rank_tiles(project, strategy=args.strategy, k=args.k, seed=args.seed, progress=bar)
+        images = {t.id: t for t in project.store.tiles()}
+        names = {im.id: im.name for im in project.store.images()}
+    if result.note:
+        print(f"note: {result.note}")
+    print(
+        f"ranked {len(result.items)} tiles with strategy {result.strategy}; the next batch of {result.k}:"
+    )
+    rows = []
+    for item in result.items[: result.k]:
+        t = images[item.tile_id]
+        rows.append(
+            (
+                item.rank + 1,
+                item.tile_id,
+                names[t.image_id],
+                f"{t.row},{t.col}",
+                f"{item.score:.4f}",
+                item.reason,
+            )
+        )
+    print(_table(["rank", "tile", "image", "row,col", "score", "why"], rows))
+    if result.unranked:
+        print(
+            f"{result.unranked} tiles have no proposal yet and are not ranked (run 'labeler propose')"
+        )
+    return 0
+
+
+def _parse_since(text: str | None):
+    if text is None:
+        return None
+    from datetime import UTC, date, datetime
+
+    try:
+        if len(text) == 10:
+            return date.fromisoformat(text)
+        value = datetime.fromisoformat(text)
+        return value if value.tzinfo else value.replace(tzinfo=UTC)
+    except ValueError:
+        raise LabelerError(
+            f"--since: expected a date like 2027-05-14 (or an ISO date-time), got {text!r}"
+        ) from None
+
+
+def cmd_agreement(args) -> int:
+    from labeler.export.report import format_agreement_table
+    from labeler.project import open_project
+    from labeler.workflow import write_agreement
+
+    since = _parse_since(args.since)
+    with open_project(args.dir) as project, _Bar("agreement") as bar:
+        out = Path(args.out) if args.out else project.root / "reports" / "agreement"
+        summary, files = write_agreement(project, out, since=since, progress=bar)
+        print(format_agreement_table(summary, schema=project.settings.classes))
+    print()
+    print(f"report: {files.html}")
+    print(f"figures: {files.csv}")
+    return 0
+
+
 # -- parser -----------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
@@ -240,13 +307,60 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.set_defaults(func=cmd_demo)
 
-    for extra in _EXTRA_COMMANDS:
-        extra(sub)
+    p = sub.add_parser(
+        "pick",
+        help="order the queue: most informative tiles first",
+        description="Rank every proposed tile with the active-learning picker and write the "
+        "queue order (with each tile's score and reason) to the store.",
+    )
+    p.add_argument("dir", metavar="DIR", help="project folder")
+    p.add_argument(
+        "--strategy",
+        choices=STRATEGIES,
+        default=None,
+        help="random, entropy, margin, bald, coreset or mixed (default: the project setting, mixed)",
+    )
+    p.add_argument(
+        "--k",
+        type=_positive_int,
+        default=None,
+        metavar="N",
+        help="batch size (default: the setting, 20)",
+    )
+    p.add_argument(
+        "--seed", type=int, default=None, help="seed for the random strategy (default: the setting)"
+    )
+    p.set_defaults(func=cmd_pick)
+
+    p = sub.add_parser(
+        "agreement",
+        help="how well annotators agree: table, HTML report, CSV",
+        description="Compare the masks of annotators who labelled the same images: Cohen's kappa "
+        "with its Landis & Koch band and IoU per annotator pair and class. Writes an HTML report "
+        "with plots and a CSV of every figure.",
+    )
+    p.add_argument("dir", metavar="DIR", help="project folder")
+    p.add_argument(
+        "--since", default=None, metavar="DATE", help="only saves on or after DATE (YYYY-MM-DD)"
+    )
+    p.add_argument(
+        "--out",
+        default=None,
+        metavar="FOLDER",
+        help="report folder (default: DIR/reports/agreement)",
+    )
+    p.set_defaults(func=cmd_agreement)
     return parser
 
 
-#: Functions adding further sub-commands (filled in by later parts of the package).
-_EXTRA_COMMANDS: list = []
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected at least 1, got {value}")
+    return value
 
 
 def main(argv: Sequence[str] | None = None) -> int:

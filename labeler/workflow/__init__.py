@@ -6,6 +6,12 @@ results for the CLI or the terminal queue to show. Nothing here prints.
 """
 
 from labeler.workflow.adding import AddResult, Progress, ProjectStatus, add_images, project_status
+from labeler.workflow.agreeing import (
+    agreement_summary,
+    compared_images,
+    contested_tiles,
+    write_agreement,
+)
 from labeler.workflow.annotating import (
     QueueRow,
     accept_tile,
@@ -15,7 +21,7 @@ from labeler.workflow.annotating import (
     queue_rows,
     save_tile_mask,
 )
-from labeler.workflow.picking import rank_tiles
+from labeler.workflow.picking import RankResult, rank_tiles
 
 __all__ = [
     "Progress",
@@ -30,5 +36,10 @@ __all__ = [
     "park_tile",
     "queue_rows",
     "save_tile_mask",
+    "RankResult",
     "rank_tiles",
+    "agreement_summary",
+    "compared_images",
+    "contested_tiles",
+    "write_agreement",
 ]

@@ -1,0 +1,109 @@
+"""Inter-annotator agreement of a project (``labeler agreement``) and contested tiles."""
+
+from __future__ import annotations
+
+import os
+from collections import defaultdict
+from datetime import date, datetime
+from pathlib import Path
+
+import numpy as np
+
+from labeler.agreement import AgreementSummary, ComparedImage, summarise_agreement
+from labeler.export.report import OverlaySource, ReportFiles, write_agreement_report
+from labeler.imagery.read import open_image
+from labeler.imagery.tiling import stitch
+from labeler.project import Project
+from labeler.states import CONTESTED, SETTLED
+from labeler.workflow.adding import Progress, _no_progress
+from labeler.workflow.annotating import QueueRow, queue_rows
+
+__all__ = ["compared_images", "agreement_summary", "write_agreement", "contested_tiles"]
+
+
+def compared_images(project: Project) -> list[ComparedImage]:
+    """Every image that two or more annotators labelled, with their stitched masks.
+
+    Each annotator's mask of an image is stitched from their newest full mask of every
+    tile they saved (imported masks count like any other; a reviewer's settled masks
+    do not, they are decisions, not opinions). Pixels of tiles an annotator did not
+    save are unlabelled (255) in that annotator's mask, so pair figures pool exactly
+    the image pixels both labelled, each once.
+    """
+    store = project.store
+    tiles = {t.id: t for t in store.tiles()}
+    newest: dict[tuple[int, str], object] = {}
+    for a in store.annotations(kind="full"):
+        if a.state == SETTLED:
+            continue
+        newest[(a.tile_id, a.annotator)] = a  # oldest first: the last one wins
+    per_image: dict[int, dict[str, list]] = defaultdict(lambda: defaultdict(list))
+    for (tile_id, who), ann in newest.items():
+        per_image[tiles[tile_id].image_id][who].append(ann)
+    out = []
+    for image in store.images():
+        by_who = per_image.get(image.id, {})
+        if len(by_who) < 2:
+            continue
+        masks, saved_at, tile_windows = {}, {}, {}
+        for who, anns in by_who.items():
+            windows = [tiles[a.tile_id].window for a in anns]
+            masks[who] = stitch([a.mask() for a in anns], windows, shape=image.shape)
+            saved_at[who] = max(a.created_at for a in anns)
+            for a in anns:
+                tile_windows[str(a.tile_id)] = tiles[a.tile_id].window
+        out.append(
+            ComparedImage(image=image.name, masks=masks, saved_at=saved_at, tiles=tile_windows)
+        )
+    return out
+
+
+def agreement_summary(
+    project: Project, *, since: date | datetime | None = None, progress: Progress = _no_progress
+) -> AgreementSummary:
+    """Agreement figures of the project: per annotator pair, class, image, tile and day."""
+    items = compared_images(project)
+    return summarise_agreement(
+        items,
+        schema=project.settings.classes,
+        metric=project.settings.agreement.metric,
+        since=since,
+        progress=lambda done, total: progress(done, total, "comparing masks"),
+    )
+
+
+def write_agreement(
+    project: Project,
+    out_dir: str | os.PathLike[str],
+    *,
+    since: date | datetime | None = None,
+    least: int = 10,
+    progress: Progress = _no_progress,
+) -> tuple[AgreementSummary, ReportFiles]:
+    """Compute the summary and write the HTML report, plots and CSV into ``out_dir``."""
+    items = compared_images(project)
+    summary = summarise_agreement(
+        items,
+        schema=project.settings.classes,
+        metric=project.settings.agreement.metric,
+        since=since,
+        progress=lambda done, total: progress(done, total, "comparing masks"),
+    )
+    wanted = {e.image for e in summary.least_agreed(least)}
+    by_name = {im.name: im for im in project.store.images()}
+    overlays = {}
+    for item in items:
+        if item.image in wanted:
+            with open_image(project.image_path(by_name[item.image])) as reader:
+                overlays[item.image] = OverlaySource(rgb=reader.read(), masks=dict(item.masks))
+    files = write_agreement_report(
+        summary, Path(out_dir), schema=project.settings.classes, overlays=overlays, least=least
+    )
+    return summary, files
+
+
+def contested_tiles(project: Project) -> list[QueueRow]:
+    """Queue rows of the tiles a reviewer must settle, least agreed first."""
+    rows = [r for r in queue_rows(project) if r.state == CONTESTED]
+    rows.sort(key=lambda r: (np.inf if r.agreement is None else r.agreement, r.tile_id))
+    return rows
