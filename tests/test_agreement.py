@@ -175,9 +175,9 @@ def test_confusion_matrix_matches_sklearn_and_loop(seed, h, w, k):
 
 
 @PROPS
-@given(seed=st.integers(0, 2**32 - 1), k=st.integers(1, 14), odd=st.booleans())
+@given(seed=st.integers(0, 2**32 - 1), k=st.integers(1, 17), odd=st.booleans())
 def test_confusion_fast_path_equals_general_path(seed, k, odd):
-    # the byte fast path (uint8, ignore 255) against the int64 path of int16 input;
+    # the byte fast path (uint8, ignore 255, K <= 15) against the int64 path of int16 input;
     # 70001 / 70000 pixels exercise the two-pixels-per-element counting and its odd tail
     a, b = random_masks(seed, (70000 + int(odd),), k)
     fast = ag.confusion_matrix(a, b, n_classes=k)
@@ -196,6 +196,13 @@ def test_confusion_matrix_across_chunks():
     keep = (a != 255) & (b != 255)
     ref = np.bincount(a[keep].astype(np.int64) * 4 + b[keep], minlength=16).reshape(4, 4)
     np.testing.assert_array_equal(fast, ref)
+
+
+def test_confusion_matrix_bad_value_in_a_late_chunk():
+    a, b = random_masks(8, (1_100_000,), 3)
+    b[-1] = 200
+    with pytest.raises(ValueError, match=r"mask_test: holds values \[200\]"):
+        ag.confusion_matrix(a, b, n_classes=3)
 
 
 def test_confusion_matrix_other_ignore_and_none():
