@@ -951,11 +951,12 @@ def staple(
         weight = pattern_count[codes_used].astype(np.float64)
         inverse = None
     else:
-        all_codes = np.stack(
-            [np.where(flat[j] == g, k, flat[j]).astype(np.int64) for j in range(r)]
-        ) if g is not None else flat.astype(np.int64)
+        # Many raters: the code table would be too large; find the patterns directly.
+        symbols = flat.astype(np.int64)
+        if g is not None:
+            symbols[symbols == g] = k
         patterns_arr, inverse, counts_u = np.unique(
-            all_codes, axis=1, return_inverse=True, return_counts=True
+            symbols, axis=1, return_inverse=True, return_counts=True
         )
         inverse = inverse.reshape(-1)
         weight = counts_u.astype(np.float64)
