@@ -1,0 +1,696 @@
+"""Class masks as RFC 7946 GeoJSON FeatureCollections; writing and reading the files.
+
+Each connected region of a class becomes one Feature. The path from a stitched image
+mask to the file is:
+
+1. outline the regions in pixel-corner coordinates (x = column, y = row), see
+   :mod:`labeler.masks.polygons`;
+2. map the outlines through the image's affine transform into its CRS (easting,
+   northing), and take the area in square metres there (for a geographic CRS, in a
+   Lambert azimuthal equal-area projection centred on the image);
+3. reproject every vertex to WGS 84 longitude/latitude with rasterio (RFC 7946
+   sections 3.1.1 and 4: positions are ``[longitude, latitude]``, no ``"crs"`` member);
+4. orient the rings AFTER reprojection, exterior counterclockwise and holes clockwise
+   (RFC 7946 section 3.1.6; image rows point down, so the orientation in pixel space
+   says nothing about the orientation on the ground);
+5. round positions to as many decimals as keep every vertex within a tenth of a pixel
+   (see :func:`coordinate_decimals`; RFC 7946 section 11.2: 6 decimals are about 10 cm)
+   and give the collection and each feature a ``bbox`` ``[west, south, east, north]``
+   (RFC 7946 section 5).
+
+Feature properties: ``class`` (name), ``class_index``, ``image``, ``tiles`` (ids of the
+tiles the region's pixels come from), ``annotators``, ``states`` (tile states),
+``model_version``, ``source`` (``"annotation"``, or ``"proposal"`` as soon as one of the
+region's tiles holds an unreviewed proposal), ``area_m2`` and ``area_px``. The feature
+``id`` is the string ``"<image>:<class>:<n>"``.
+
+Soil (index 0) is the background and is not exported unless asked for with
+``classes=``; 255 (unlabelled) is never a class.
+
+Images without georeferencing can be written in pixel coordinates only on request
+(``pixel_coordinates=True``): such a file is NOT RFC 7946 GeoJSON, a
+:class:`NotRFC7946Warning` says so, and the file carries the top-level member
+``"labeler:coordinates": "pixel"`` so that the import can tell.
+
+Caution: polygons exported here are decision support. Where they drive a field
+operation (spot spraying, fungicide timing), local regulations and licensed agronomic
+advice come first.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import warnings
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import shapely
+from affine import Affine
+from rasterio.crs import CRS
+from rasterio.errors import CRSError
+from rasterio.warp import transform as warp_transform
+
+from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
+from labeler.errors import InputError
+from labeler.imagery.tiling import Window, owner_map
+from labeler.imagery.write import atomic_write_bytes
+from labeler.masks.polygons import Region, mask_to_polygons
+
+__all__ = [
+    "COORDINATES_MEMBER",
+    "WGS84",
+    "TILE_STATES",
+    "NotRFC7946Warning",
+    "TileInfo",
+    "as_crs",
+    "reprojector",
+    "ground_sampling_distance",
+    "coordinate_decimals",
+    "geometry_to_geojson",
+    "geometry_from_geojson",
+    "image_feature_collection",
+    "merge_feature_collections",
+    "write_geojson",
+    "read_geojson",
+]
+
+#: Top-level member that marks a file in pixel coordinates (not RFC 7946).
+COORDINATES_MEMBER = "labeler:coordinates"
+#: WGS 84 longitude/latitude (rasterio keeps the longitude-first order).
+WGS84 = CRS.from_epsg(4326)
+#: Tile states of DESIGN section 3, in life-cycle order.
+TILE_STATES = (
+    "unseen", "proposed", "held", "accepted", "amended", "contested", "settled", "parked"
+)
+_SOURCES = ("annotation", "proposal")
+#: Metres per degree of latitude, upper bound (at the poles; 110.6 km at the equator).
+_METRES_PER_DEGREE = 111_700.0
+
+
+class NotRFC7946Warning(UserWarning):
+    """A file written in pixel coordinates: valid JSON, but not RFC 7946 GeoJSON."""
+
+
+@dataclass(frozen=True)
+class TileInfo:
+    """What the store knows about one tile, aligned with the tile windows.
+
+    Parameters
+    ----------
+    tile_id : int or str
+        The tile's id in the store.
+    state : str
+        Tile state (DESIGN section 3), e.g. ``"accepted"``.
+    annotator : str or None
+        Who saved the mask used for export; None for a proposal nobody reviewed.
+    model_version : int, str or None
+        Model version that proposed the tile's mask, if any.
+    source : {"annotation", "proposal"}
+        Whether the exported mask is a saved annotation or a model proposal.
+    """
+
+    tile_id: int | str
+    state: str
+    annotator: str | None = None
+    model_version: int | str | None = None
+    source: str = "annotation"
+
+    def __post_init__(self) -> None:
+        if self.state not in TILE_STATES:
+            raise ValueError(
+                f"state: expected one of {', '.join(TILE_STATES)}, got {self.state!r}"
+            )
+        if self.source not in _SOURCES:
+            raise ValueError(f"source: expected 'annotation' or 'proposal', got {self.source!r}")
+
+
+# -- georeferencing helpers -----------------------------------------------------------
+
+
+def as_crs(crs: CRS | str, *, name: str = "crs") -> CRS:
+    """A :class:`rasterio.crs.CRS` from a CRS, ``"EPSG:32631"``, WKT or PROJ string."""
+    if isinstance(crs, CRS):
+        return crs
+    try:
+        return CRS.from_user_input(crs)
+    except (CRSError, TypeError, ValueError) as err:
+        raise ValueError(
+            f"{name}: could not read {crs!r} as a coordinate reference system ({err}); "
+            "pass e.g. 'EPSG:32631'"
+        ) from None
+
+
+def _affine_coords(transform: Affine) -> Callable[[np.ndarray], np.ndarray]:
+    a, b, c, d, e, f = transform.a, transform.b, transform.c, transform.d, transform.e, transform.f
+
+    def apply(xy: np.ndarray) -> np.ndarray:
+        x, y = xy[:, 0], xy[:, 1]
+        return np.column_stack([a * x + b * y + c, d * x + e * y + f])
+
+    return apply
+
+
+def reprojector(src: CRS | str, dst: CRS | str) -> Callable[[np.ndarray], np.ndarray]:
+    """A function mapping (N, 2) x, y arrays from ``src`` to ``dst`` (rasterio/PROJ).
+
+    Longitude comes first for geographic CRSs (rasterio's traditional GIS order).
+    """
+    src, dst = as_crs(src, name="src"), as_crs(dst, name="dst")
+
+    def apply(xy: np.ndarray) -> np.ndarray:
+        if len(xy) == 0:
+            return xy
+        xs, ys = warp_transform(src, dst, xy[:, 0], xy[:, 1])
+        return np.column_stack([np.asarray(xs, np.float64), np.asarray(ys, np.float64)])
+
+    return apply
+
+
+def _local_equal_area(lon: float, lat: float) -> CRS:
+    """Lambert azimuthal equal-area projection centred on ``(lon, lat)`` (WGS 84, metres)."""
+    return CRS.from_proj4(
+        f"+proj=laea +lat_0={lat:.9f} +lon_0={lon:.9f} +x_0=0 +y_0=0 +datum=WGS84 +units=m"
+    )
+
+
+def ground_sampling_distance(
+    transform: Affine, crs: CRS | str, *, shape: tuple[int, int]
+) -> float:
+    """Ground size of a pixel at the image centre, in metres (the shorter pixel side).
+
+    The centre pixel's corners are reprojected to WGS 84 and then to a local equal-area
+    projection, so projected and geographic CRSs are treated alike.
+    """
+    src = as_crs(crs)
+    r, c = shape[0] // 2, shape[1] // 2
+    corners = np.array([[c, r], [c + 1, r], [c, r + 1]], np.float64)
+    lonlat = reprojector(src, WGS84)(_affine_coords(transform)(corners))
+    local = reprojector(WGS84, _local_equal_area(*lonlat[0]))(lonlat)
+    side_x = float(np.hypot(*(local[1] - local[0])))
+    side_y = float(np.hypot(*(local[2] - local[0])))
+    gsd = min(side_x, side_y)
+    if not gsd > 0 or not math.isfinite(gsd):
+        raise ValueError(
+            f"transform: expected pixels of positive ground size, got {gsd} m from {transform!r}"
+        )
+    return gsd
+
+
+def coordinate_decimals(
+    gsd_m: float | None, *, fraction: float = 0.1, pixel: bool = False
+) -> int:
+    """Decimals of longitude/latitude that keep rounding below ``fraction`` of a pixel.
+
+    Rounding to ``d`` decimals moves each coordinate by at most ``0.5 * 10**-d`` degrees,
+    a vertex by at most ``sqrt(2) * 0.5 * 10**-d * 111.7 km`` (a degree of latitude is
+    at most 111.7 km, a degree of longitude at most 111.3 km). The smallest ``d`` that
+    keeps this below ``fraction * gsd_m`` is returned: 6 for 1 m pixels (RFC 7946
+    section 11.2: 6 decimals are about 10 cm), 8 for 1 cm, 9 for 1 mm.
+
+    Parameters
+    ----------
+    gsd_m : float or None
+        Ground sampling distance in metres; ignored when ``pixel``.
+    fraction : float
+        Largest vertex displacement, as a share of a pixel.
+    pixel : bool
+        Coordinates are pixels (x = column, y = row) rather than degrees.
+
+    Returns
+    -------
+    decimals : int, in 0..15
+    """
+    if not 0 < fraction <= 1:
+        raise ValueError(f"fraction: expected a share of a pixel in (0, 1], got {fraction}")
+    if pixel:
+        unit_per_pixel = 1.0
+        scale = 1.0
+    else:
+        if gsd_m is None or not gsd_m > 0:
+            raise ValueError(f"gsd_m: expected a positive ground sampling distance, got {gsd_m}")
+        unit_per_pixel = float(gsd_m)
+        scale = _METRES_PER_DEGREE
+    bound = fraction * unit_per_pixel / (0.5 * math.sqrt(2.0) * scale)  # 10**-d must be below
+    d = max(0, math.ceil(-math.log10(bound)))
+    while 10.0**-d >= bound:  # floating-point edges of the logarithm
+        d += 1
+    while d > 0 and 10.0 ** -(d - 1) < bound:
+        d -= 1
+    return int(min(max(d, 0), 15))
+
+
+# -- geometry <-> GeoJSON ----------------------------------------------------------
+
+
+def _ring_positions(ring: shapely.LinearRing, decimals: int | None) -> list[list[float]]:
+    xy = shapely.get_coordinates(ring)
+    if decimals is not None:
+        xy = np.round(xy, decimals) + 0.0  # + 0.0 turns -0.0 into 0.0
+    return xy.tolist()
+
+
+def _polygon_positions(poly: shapely.Polygon, decimals: int | None) -> list:
+    rings = [_ring_positions(poly.exterior, decimals)]
+    rings.extend(_ring_positions(r, decimals) for r in poly.interiors)
+    return rings
+
+
+def geometry_to_geojson(
+    geometry: shapely.Polygon | shapely.MultiPolygon,
+    *,
+    decimals: int | None = None,
+    orient: bool = True,
+) -> dict:
+    """GeoJSON geometry object of a polygon or multipolygon.
+
+    Parameters
+    ----------
+    geometry : shapely.Polygon or shapely.MultiPolygon
+        Non-empty; in the coordinates the file will hold.
+    decimals : int or None
+        Round positions to this many decimals (None keeps full precision).
+    orient : bool
+        Orient rings by RFC 7946 section 3.1.6 (exterior counterclockwise, holes
+        clockwise) in the given coordinates first.
+
+    Returns
+    -------
+    geometry : dict
+        ``{"type": "Polygon" | "MultiPolygon", "coordinates": [...]}``, closed rings.
+    """
+    if not isinstance(geometry, shapely.Polygon | shapely.MultiPolygon) or geometry.is_empty:
+        raise ValueError(
+            f"geometry: expected a non-empty Polygon or MultiPolygon, got {geometry.geom_type}"
+        )
+    if orient:
+        geometry = shapely.orient_polygons(geometry, exterior_cw=False)
+    if isinstance(geometry, shapely.Polygon):
+        return {"type": "Polygon", "coordinates": _polygon_positions(geometry, decimals)}
+    return {
+        "type": "MultiPolygon",
+        "coordinates": [_polygon_positions(p, decimals) for p in geometry.geoms],
+    }
+
+
+def _ring_from_positions(positions: object, where: str) -> np.ndarray:
+    if not isinstance(positions, list):
+        raise ValueError(f"{where}: expected a list of positions, got {type(positions).__name__}")
+    if len(positions) < 4:
+        raise ValueError(
+            f"{where}: a linear ring needs at least 4 positions (RFC 7946 section 3.1.6), "
+            f"got {len(positions)}"
+        )
+    rows = []
+    for k, p in enumerate(positions):
+        if (
+            not isinstance(p, list)
+            or len(p) < 2
+            or not all(isinstance(v, int | float) and not isinstance(v, bool) for v in p)
+        ):
+            raise ValueError(f"{where}, position {k}: expected [x, y] numbers, got {p!r}")
+        rows.append((float(p[0]), float(p[1])))
+    xy = np.asarray(rows, np.float64)
+    if not np.isfinite(xy).all():
+        raise ValueError(f"{where}: positions must be finite numbers")
+    if not np.array_equal(xy[0], xy[-1]):
+        raise ValueError(
+            f"{where}: ring is not closed, first position {positions[0]!r} differs from the "
+            f"last {positions[-1]!r} (RFC 7946 section 3.1.6)"
+        )
+    return xy
+
+
+def _polygon_from_positions(rings: object, where: str) -> shapely.Polygon:
+    if not isinstance(rings, list) or not rings:
+        raise ValueError(f"{where}: expected a non-empty list of linear rings, got {rings!r}")
+    parts = [_ring_from_positions(r, f"{where}, ring {k}") for k, r in enumerate(rings)]
+    return shapely.Polygon(parts[0], parts[1:])
+
+
+def geometry_from_geojson(geometry: object, *, where: str = "geometry") -> shapely.Geometry:
+    """Shapely Polygon or MultiPolygon from a GeoJSON geometry object.
+
+    Checks the structure of RFC 7946 section 3.1: a ``type`` of Polygon or MultiPolygon,
+    closed rings of at least 4 positions, numeric positions (a third coordinate is
+    dropped). Ring orientation is not checked (section 3.1.6: parsers should not reject
+    the other order). Validity in the OGC sense is left to the caller
+    (:func:`shapely.is_valid_reason`).
+
+    Raises
+    ------
+    ValueError
+        Naming ``where`` and the problem.
+    """
+    if not isinstance(geometry, Mapping):
+        raise ValueError(f"{where}: expected a GeoJSON geometry object, got {geometry!r}")
+    kind = geometry.get("type")
+    coords = geometry.get("coordinates")
+    if kind == "Polygon":
+        return _polygon_from_positions(coords, where)
+    if kind == "MultiPolygon":
+        if not isinstance(coords, list) or not coords:
+            raise ValueError(f"{where}: MultiPolygon needs a non-empty list of polygons")
+        return shapely.MultiPolygon(
+            [_polygon_from_positions(p, f"{where}, polygon {k}") for k, p in enumerate(coords)]
+        )
+    raise ValueError(
+        f"{where}: expected geometry type Polygon or MultiPolygon, got {kind!r}; "
+        "masks are areas, so points and lines cannot be read"
+    )
+
+
+def _bbox_of(positions_xy: np.ndarray) -> list[float]:
+    lo = positions_xy.min(axis=0)
+    hi = positions_xy.max(axis=0)
+    return [float(lo[0]), float(lo[1]), float(hi[0]), float(hi[1])]
+
+
+def _feature_bbox(geometry: Mapping) -> list[float]:
+    coords = geometry["coordinates"]
+    polys = [coords] if geometry["type"] == "Polygon" else coords
+    xy = np.concatenate([np.asarray(ring, np.float64) for p in polys for ring in p])
+    return _bbox_of(xy[:, :2])
+
+
+def _collection_bbox(features: Sequence[Mapping]) -> list[float] | None:
+    boxes = np.asarray([f["bbox"] for f in features if "bbox" in f], np.float64)
+    if len(boxes) == 0:
+        return None
+    return [
+        float(boxes[:, 0].min()), float(boxes[:, 1].min()),
+        float(boxes[:, 2].max()), float(boxes[:, 3].max()),
+    ]
+
+
+# -- building collections ---------------------------------------------------------------
+
+
+def _distinct(values: Iterable, order: Sequence | None = None) -> list:
+    seen: list = []
+    for v in values:
+        if v is not None and v not in seen:
+            seen.append(v)
+    if order is not None:
+        seen.sort(key=order.index)
+    else:
+        seen.sort(key=lambda v: (str(type(v)), v))
+    return seen
+
+
+def _check_windows(
+    windows: Sequence[Window] | None, tiles: Sequence[TileInfo] | None, shape: tuple[int, int]
+) -> None:
+    if (windows is None) != (tiles is None):
+        raise ValueError(
+            "windows/tiles: pass both (one TileInfo per tile window) or neither, got "
+            f"windows={'None' if windows is None else len(windows)} and "
+            f"tiles={'None' if tiles is None else len(tiles)}"
+        )
+    if windows is None or tiles is None:
+        return
+    if len(windows) != len(tiles):
+        raise ValueError(
+            f"tiles: expected one TileInfo per window ({len(windows)}), got {len(tiles)}"
+        )
+    for k, (w, t) in enumerate(zip(windows, tiles, strict=True)):
+        if not isinstance(t, TileInfo):
+            raise ValueError(f"tiles[{k}]: expected a TileInfo, got {type(t).__name__}")
+        if w.row < 0 or w.col < 0 or w.row + w.height > shape[0] or w.col + w.width > shape[1]:
+            raise ValueError(
+                f"windows[{k}]: {w} reaches outside the {shape[0]} x {shape[1]} image mask"
+            )
+
+
+def image_feature_collection(
+    mask: np.ndarray,
+    *,
+    image: str,
+    transform: Affine | None = None,
+    crs: CRS | str | None = None,
+    windows: Sequence[Window] | None = None,
+    tiles: Sequence[TileInfo] | None = None,
+    schema: ClassSchema = DEFAULT_SCHEMA,
+    classes: Iterable[int] | None = None,
+    source: str = "annotation",
+    pixel_coordinates: bool = False,
+    simplify_tolerance_px: float = 0.5,
+    min_area_px: float = 8,
+    connectivity: int = 8,
+    progress: Callable[[int, int], None] | None = None,
+) -> dict:
+    """One image's class mask as a GeoJSON FeatureCollection (see module docstring).
+
+    Parameters
+    ----------
+    mask : ndarray, shape (H, W), uint8
+        The stitched image mask (tile seams already merged by
+        :func:`labeler.imagery.tiling.stitch`, so a region cut by a tile border is one
+        region here). Values are schema indices or 255.
+    image : str
+        Image name, stored in each feature's ``image`` property and its ``id``.
+    transform : affine.Affine or None
+        Pixel-corner transform of the image (``transform * (col, row)`` = map x, y).
+    crs : rasterio CRS, str or None
+        The image's coordinate reference system.
+    windows, tiles : sequences or None
+        The tile windows the mask was stitched from and one :class:`TileInfo` per window
+        (same order); they give the ``tiles``, ``annotators``, ``states``,
+        ``model_version`` and ``source`` properties. Without them these are empty and
+        ``source`` is used.
+    schema : ClassSchema
+    classes : iterable of int or None
+        Classes to export; default every schema class except the background 0.
+    source : {"annotation", "proposal"}
+        ``source`` property when no tiles are given.
+    pixel_coordinates : bool
+        Write pixel coordinates (x = column, y = row of pixel corners) instead of
+        longitude/latitude; required when the image has no georeferencing. Emits
+        :class:`NotRFC7946Warning`.
+    simplify_tolerance_px, min_area_px, connectivity
+        Passed to :func:`labeler.masks.polygons.mask_to_polygons`.
+    progress : callable(done, total) or None
+        Called after each class.
+
+    Returns
+    -------
+    collection : dict
+        A FeatureCollection with ``bbox`` (absent when there is no feature).
+
+    Raises
+    ------
+    labeler.errors.InputError
+        The image has no georeferencing and ``pixel_coordinates`` is False.
+    ValueError
+        Bad mask, classes, windows or tiles.
+    """
+    m = np.asarray(mask)
+    schema.check_mask(m, name="mask")
+    if not isinstance(image, str) or not image:
+        raise ValueError(f"image: expected a non-empty image name, got {image!r}")
+    if source not in _SOURCES:
+        raise ValueError(f"source: expected 'annotation' or 'proposal', got {source!r}")
+    _check_windows(windows, tiles, m.shape)
+    if classes is None:
+        wanted = [c.index for c in schema.classes if c.index != 0]
+    else:
+        wanted = [int(c) for c in classes]
+        for c in wanted:
+            if c == UNLABELLED:
+                raise ValueError("classes: 255 means unlabelled and is never exported as a class")
+            if c not in schema.indices:
+                raise ValueError(
+                    f"classes: {c} is not a class index of the schema {schema.indices}"
+                )
+    georeferenced = transform is not None and crs is not None
+    if pixel_coordinates:
+        warnings.warn(
+            f"image {image!r}: writing pixel coordinates (x = column, y = row); the result is "
+            "not RFC 7946 GeoJSON and GIS software will not place it on a map",
+            NotRFC7946Warning,
+            stacklevel=2,
+        )
+    elif not georeferenced:
+        missing = " and ".join(n for n, v in (("transform", transform), ("crs", crs)) if v is None)
+        raise InputError(
+            f"image {image!r}: no georeferencing ({missing} missing), so RFC 7946 GeoJSON "
+            "cannot be written; add a world file or GeoTIFF tags, export PNG masks instead, "
+            "or pass pixel_coordinates=True for a pixel-coordinate file (not RFC 7946)"
+        )
+
+    regions: list[Region] = []
+    for k, ci in enumerate(wanted):
+        regions.extend(
+            mask_to_polygons(
+                m,
+                class_index=ci,
+                simplify_tolerance_px=simplify_tolerance_px,
+                min_area_px=min_area_px,
+                connectivity=connectivity,
+            )
+        )
+        if progress is not None:
+            progress(k + 1, len(wanted))
+
+    geoms = np.empty(len(regions), dtype=object)
+    geoms[:] = [r.geometry for r in regions]
+    area_m2: np.ndarray | None = None
+    if pixel_coordinates:
+        decimals = coordinate_decimals(None, pixel=True)
+        out_geoms = geoms
+    else:
+        src = as_crs(crs)
+        decimals = coordinate_decimals(ground_sampling_distance(transform, src, shape=m.shape))
+        mapped = shapely.transform(geoms, _affine_coords(transform))
+        lonlat = shapely.transform(mapped, reprojector(src, WGS84))
+        if src.is_projected:
+            unit = float(src.linear_units_factor[1])
+            area_m2 = shapely.area(mapped) * unit * unit
+        else:
+            centre = reprojector(src, WGS84)(
+                _affine_coords(transform)(np.array([[m.shape[1] / 2.0, m.shape[0] / 2.0]]))
+            )[0]
+            local = shapely.transform(
+                lonlat, reprojector(WGS84, _local_equal_area(*centre))
+            )
+            area_m2 = shapely.area(local)
+        out_geoms = lonlat
+
+    owner = owner_map(windows, shape=m.shape) if windows else None
+    features = []
+    for k, region in enumerate(regions):
+        touched: list[int] = []
+        if owner is not None:
+            ids = np.unique(owner[region.window.slices][region.pixels])
+            touched = [int(i) for i in ids if i >= 0]
+        infos = [tiles[i] for i in touched] if tiles is not None else []
+        versions = _distinct(t.model_version for t in infos)
+        if infos:
+            src_prop = "proposal" if any(t.source == "proposal" for t in infos) else "annotation"
+        else:
+            src_prop = source
+        geometry = geometry_to_geojson(out_geoms[k], decimals=decimals, orient=True)
+        name = schema.by_index(region.class_index).name
+        features.append(
+            {
+                "type": "Feature",
+                "id": f"{image}:{name}:{region.label}",
+                "bbox": _feature_bbox(geometry),
+                "geometry": geometry,
+                "properties": {
+                    "class": name,
+                    "class_index": region.class_index,
+                    "image": image,
+                    "tiles": [t.tile_id for t in infos],
+                    "annotators": _distinct(t.annotator for t in infos),
+                    "states": _distinct((t.state for t in infos), order=TILE_STATES),
+                    "model_version": (
+                        None if not versions else versions[0] if len(versions) == 1 else versions
+                    ),
+                    "source": src_prop,
+                    "area_m2": None if area_m2 is None else float(f"{area_m2[k]:.12g}"),
+                    "area_px": region.area_px,
+                },
+            }
+        )
+    collection: dict = {"type": "FeatureCollection"}
+    if pixel_coordinates:
+        collection[COORDINATES_MEMBER] = "pixel"
+    box = _collection_bbox(features)
+    if box is not None:
+        collection["bbox"] = box
+    collection["features"] = features
+    return collection
+
+
+def merge_feature_collections(collections: Iterable[Mapping]) -> dict:
+    """One FeatureCollection holding the features of several (e.g. per image).
+
+    Raises
+    ------
+    ValueError
+        When a feature ``id`` occurs twice, or pixel-coordinate collections are mixed
+        with longitude/latitude ones.
+    """
+    features: list = []
+    modes: set[str] = set()
+    seen: set = set()
+    for k, col in enumerate(collections):
+        if not isinstance(col, Mapping) or col.get("type") != "FeatureCollection":
+            raise ValueError(f"collections[{k}]: expected a FeatureCollection dict")
+        modes.add(str(col.get(COORDINATES_MEMBER, "lonlat")))
+        for f in col.get("features", []):
+            fid = f.get("id")
+            if fid is not None:
+                if fid in seen:
+                    raise ValueError(
+                        f"collections[{k}]: feature id {fid!r} occurs twice; give each image "
+                        "a distinct name"
+                    )
+                seen.add(fid)
+            features.append(f)
+    if len(modes) > 1:
+        raise ValueError(
+            "collections: cannot merge pixel-coordinate collections with longitude/latitude "
+            "ones; export the images without georeferencing separately"
+        )
+    out: dict = {"type": "FeatureCollection"}
+    if modes == {"pixel"}:
+        out[COORDINATES_MEMBER] = "pixel"
+    box = _collection_bbox(features)
+    if box is not None:
+        out["bbox"] = box
+    out["features"] = features
+    return out
+
+
+# -- files ---------------------------------------------------------------------------
+
+
+def write_geojson(path: str | os.PathLike[str], collection: Mapping) -> Path:
+    """Write a FeatureCollection (or Feature) as UTF-8 JSON, atomically.
+
+    Raises
+    ------
+    ValueError
+        When ``collection`` is not a GeoJSON object or holds NaN/infinite numbers.
+    """
+    if not isinstance(collection, Mapping) or collection.get("type") not in (
+        "FeatureCollection", "Feature"
+    ):
+        raise ValueError("collection: expected a GeoJSON FeatureCollection or Feature dict")
+    try:
+        text = json.dumps(collection, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
+    except ValueError as err:
+        raise ValueError(f"collection: cannot be written as JSON ({err})") from None
+    return atomic_write_bytes(path, (text + "\n").encode("utf-8"))
+
+
+def _reject_constant(name: str) -> float:
+    raise ValueError(f"{name} is not a JSON number")
+
+
+def read_geojson(path: str | os.PathLike[str]) -> dict:
+    """Read a GeoJSON file into a dict (JSON syntax and a top-level ``type`` checked).
+
+    Raises
+    ------
+    OSError
+        When the file cannot be read.
+    ValueError
+        Naming the file: not UTF-8, not JSON, NaN/Infinity, or no GeoJSON ``type``.
+    """
+    p = Path(path)
+    data = p.read_bytes()
+    try:
+        obj = json.loads(data.decode("utf-8-sig"), parse_constant=_reject_constant)
+    except UnicodeDecodeError:
+        raise ValueError(f"{p}: not UTF-8 text (RFC 7946 section 1: GeoJSON is UTF-8)") from None
+    except ValueError as err:
+        raise ValueError(f"{p}: not valid JSON ({err})") from None
+    if not isinstance(obj, dict) or not isinstance(obj.get("type"), str):
+        raise ValueError(f"{p}: not a GeoJSON object (no top-level 'type' member)")
+    return obj
