@@ -1,0 +1,145 @@
+"""Saving and loading trained heads: state dict + metadata, atomic, safe to load.
+
+A checkpoint is one ``torch.save`` file holding only plain data: the head's state dict
+(tensors), its :class:`~labeler.model.head.HeadConfig` as a dict, the schema class
+indices, the encoder version the head was trained on, the per-class validation IoU and
+optional extra scalars. It is written atomically (temporary file + ``os.replace``) and
+read with ``torch.load(..., weights_only=True)``, which refuses any pickled object that
+is not plain data, so a tampered file cannot run code.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import os
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from labeler.model._files import write_atomic
+from labeler.model.head import HeadConfig, ProposalHead
+
+__all__ = ["CheckpointMeta", "save_checkpoint", "load_checkpoint", "FORMAT"]
+
+#: Format tag stored in every checkpoint.
+FORMAT = "labeler-head"
+_FORMAT_VERSION = 1
+
+
+@dataclass(frozen=True)
+class CheckpointMeta:
+    """What a checkpoint says about its head.
+
+    Attributes
+    ----------
+    config : HeadConfig
+    encoder_version : str
+        The encoder whose features the head was trained on.
+    val_iou : tuple of float
+        Per-class validation IoU (NaN where a class was absent), in head channel order.
+    extra : dict
+        Extra scalars (str, int, float, bool) the caller stored.
+    """
+
+    config: HeadConfig
+    encoder_version: str
+    val_iou: tuple[float, ...]
+    extra: dict[str, object] = field(default_factory=dict)
+
+    @property
+    def class_indices(self) -> tuple[int, ...]:
+        return self.config.class_indices
+
+
+def save_checkpoint(
+    path: str | os.PathLike[str],
+    head: ProposalHead,
+    *,
+    encoder_version: str,
+    val_iou: Sequence[float] | np.ndarray,
+    extra: Mapping[str, object] | None = None,
+) -> Path:
+    """Write ``head`` and its metadata to ``path`` atomically.
+
+    Raises
+    ------
+    ValueError
+        If ``val_iou`` does not have one value per class or ``extra`` holds anything but
+        str/int/float/bool values.
+    """
+    k = head.config.n_classes
+    iou = [float(v) for v in np.asarray(val_iou, np.float64).ravel()]
+    if len(iou) != k:
+        raise ValueError(f"val_iou: expected {k} values (one per class), got {len(iou)}")
+    plain: dict[str, object] = {}
+    for name, value in (extra or {}).items():
+        if not isinstance(value, str | int | float | bool):
+            raise ValueError(
+                f"extra[{name!r}]: expected a str, int, float or bool, got {type(value).__name__}"
+            )
+        plain[str(name)] = value
+    payload = {
+        "format": FORMAT,
+        "format_version": _FORMAT_VERSION,
+        "config": head.config.as_dict(),
+        "encoder_version": str(encoder_version),
+        "val_iou": iou,
+        "extra": plain,
+        "state_dict": {k_: v.detach().cpu().contiguous() for k_, v in head.state_dict().items()},
+    }
+    buf = io.BytesIO()
+    torch.save(payload, buf)
+    return write_atomic(path, buf.getvalue())
+
+
+def load_checkpoint(path: str | os.PathLike[str]) -> tuple[ProposalHead, CheckpointMeta]:
+    """Read a head written by :func:`save_checkpoint` (``weights_only=True``).
+
+    Returns
+    -------
+    head : ProposalHead
+        In eval mode.
+    meta : CheckpointMeta
+
+    Raises
+    ------
+    ValueError
+        If the file is missing, not a checkpoint, holds objects other than plain data
+        (refused by ``weights_only``), or its state does not fit its config; the message
+        names the file.
+    """
+    p = Path(path)
+    try:
+        obj = torch.load(p, map_location="cpu", weights_only=True)
+    except FileNotFoundError:
+        raise ValueError(f"{p}: no such checkpoint file") from None
+    except Exception as exc:  # UnpicklingError, RuntimeError, EOFError, ...
+        raise ValueError(
+            f"{p}: refused, not a plain-data head checkpoint ({type(exc).__name__}: "
+            f"{str(exc).splitlines()[0] if str(exc) else ''}); retrain to write a new one"
+        ) from None
+    if not isinstance(obj, dict) or obj.get("format") != FORMAT:
+        raise ValueError(f"{p}: not a labeler head checkpoint (no format tag {FORMAT!r})")
+    if obj.get("format_version") != _FORMAT_VERSION:
+        raise ValueError(
+            f"{p}: checkpoint format version {obj.get('format_version')!r}, this labeler reads "
+            f"{_FORMAT_VERSION}; retrain the head"
+        )
+    try:
+        config = HeadConfig.from_dict(obj["config"])
+        head = ProposalHead(config)
+        head.load_state_dict(obj["state_dict"], strict=True)
+        meta = CheckpointMeta(
+            config=config,
+            encoder_version=str(obj["encoder_version"]),
+            val_iou=tuple(float(v) if v == v else math.nan for v in obj["val_iou"]),
+            extra=dict(obj.get("extra", {})),
+        )
+    except (KeyError, TypeError, ValueError, RuntimeError) as exc:
+        raise ValueError(f"{p}: damaged checkpoint ({type(exc).__name__}: {exc})") from None
+    head.eval()
+    return head, meta

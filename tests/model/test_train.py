@@ -1,0 +1,202 @@
+"""Head training: partial cross-entropy, class weights, joint augmentation, early stopping."""
+
+import numpy as np
+import pytest
+import torch
+import torch.nn.functional as F
+from torchvision import tv_tensors
+
+from labeler.errors import InputError
+from labeler.model.encoder import encode_tiles
+from labeler.model.train import (
+    RandomQuarterTurn,
+    _loss,
+    class_weights,
+    dihedral,
+    image_augmentation,
+    train_head,
+)
+from labeler.settings import ModelSettings
+from tests.common import zoo_four_classes
+from tests.model.conftest import disk_tiles
+
+TINY = ModelSettings(epochs=2, batch_size=2, min_labelled_tiles=3, val_share=0.34, seed=0)
+
+
+@pytest.fixture(scope="module")
+def tiles(encoder):
+    images, masks = disk_tiles(3, size=64, seed=0)
+    return images, masks, encode_tiles(encoder, images)
+
+
+def test_class_weights_follow_the_formula():
+    counts = np.array([840, 120, 40, 0])
+    f = counts[:3] / 1000
+    # inverse sqrt frequency scaled to mean weight 1 per labelled pixel (common practice, no source)
+    want = f**-0.5 / np.sqrt(f).sum()
+    got = class_weights(counts)
+    np.testing.assert_allclose(got[:3], want, rtol=1e-12)
+    assert got[3] == 1.0
+    assert float((f * got[:3]).sum()) == pytest.approx(1.0, abs=1e-12)
+    # a rare class: 1e4 / (1 + 1e-4) before clipping to 10; the common one stays ~1
+    np.testing.assert_allclose(class_weights(np.array([10**8, 1])), [1 / (1 + 1e-4), 10.0])
+    np.testing.assert_array_equal(class_weights(np.zeros(3)), np.ones(3))
+
+
+def test_partial_cross_entropy_ignores_unlabelled_pixels():
+    rng = np.random.default_rng(0)
+    logits = torch.from_numpy(rng.normal(size=(1, 3, 2, 3)))
+    target = torch.tensor([[[0, 255, 2], [1, 255, 255]]])
+    w = torch.tensor([1.0, 2.0, 0.5], dtype=torch.float64)
+    # slow reference: sum_i w[y_i] * -log softmax(x_i)[y_i] / sum_i w[y_i] over labelled i
+    num = den = 0.0
+    for r in range(2):
+        for c in range(3):
+            y = int(target[0, r, c])
+            if y == 255:
+                continue
+            logp = F.log_softmax(logits[0, :, r, c], dim=0)[y]
+            num += float(w[y] * -logp)
+            den += float(w[y])
+    assert float(_loss(logits, target, w)) == pytest.approx(num / den, rel=1e-12)
+    assert _loss(logits, torch.full_like(target, 255), w) is None
+
+
+def test_dihedral_matches_numpy():
+    a = np.arange(12).reshape(3, 4)  # asymmetric
+    t = torch.from_numpy(a)
+    for code in range(8):
+        want = np.rot90(a, code % 4)
+        if code >= 4:
+            want = np.fliplr(want)
+        np.testing.assert_array_equal(dihedral(t, code).numpy(), want)
+    sq = torch.arange(9).reshape(3, 3)
+    assert len({tuple(dihedral(sq, c).flatten().tolist()) for c in range(8)}) == 8
+
+
+def test_augmentation_moves_image_and_mask_together_without_interpolation():
+    torch.manual_seed(0)
+    rng = np.random.default_rng(1)
+    mask = np.kron(zoo_four_classes(), np.ones((2, 2), np.uint8))  # 16 x 16, four quadrants
+    mask[0, 0] = 255
+    image = np.zeros((3, 16, 16), np.uint8)
+    image[1] = mask * 40  # green channel encodes the class
+    image[0] = rng.integers(0, 50, (16, 16))
+    aug = image_augmentation()
+    for _ in range(12):
+        im, mk = aug(
+            tv_tensors.Image(torch.from_numpy(image)), tv_tensors.Mask(torch.from_numpy(mask))
+        )
+        assert isinstance(mk, tv_tensors.Mask) and mk.dtype == torch.uint8
+        m = mk.numpy()
+        # the mask is only moved: same multiset of values, no interpolated values
+        np.testing.assert_array_equal(np.sort(m.ravel()), np.sort(mask.ravel()))
+        # it moved exactly like the image: one of the 8 flips/turns of the original
+        options = [np.rot90(mask, k) for k in range(4)] + [
+            np.fliplr(np.rot90(mask, k)) for k in range(4)
+        ]
+        assert any(np.array_equal(m, o) for o in options)
+
+
+def test_quarter_turn_keeps_non_square_shapes():
+    torch.manual_seed(3)
+    turn = RandomQuarterTurn()
+    mask = tv_tensors.Mask(torch.arange(6, dtype=torch.uint8).reshape(2, 3))
+    for _ in range(8):
+        assert tuple(turn(mask).shape) == (2, 3)
+
+
+def test_too_few_labelled_tiles_is_a_clear_error(tiles):
+    images, masks, feats = tiles
+    empty = [masks[0], masks[1], np.full_like(masks[2], 255)]  # third tile unlabelled
+    with pytest.raises(
+        InputError, match=r"at least 3 labelled tiles \(model.min_labelled_tiles\), got 2"
+    ):
+        train_head(empty, class_indices=(0, 1), features=feats, settings=TINY)
+
+
+def test_training_on_features_returns_head_and_val_iou(tiles):
+    images, masks, feats = tiles
+    seen = []
+    res = train_head(
+        masks,
+        class_indices=(0, 1, 2),
+        features=feats,
+        settings=TINY,
+        mode="features",
+        progress=lambda e, n, m: seen.append((e, n, sorted(m))),
+    )
+    assert res.mode == "features" and res.n_train == 2 and res.n_val == 1
+    assert [s[:2] for s in seen] == [(1, 2), (2, 2)]
+    assert seen[0][2] == ["epoch", "train_loss", "val_loss", "val_miou"]
+    assert res.val_iou.shape == (3,)
+    assert np.isfinite(res.val_iou[:2]).all() and np.isnan(res.val_iou[2])  # no weed in validation
+    assert 1 <= res.best_epoch <= 2 and not res.head.training
+
+
+def test_scribbles_train_and_auto_picks_image_mode(tiles, encoder):
+    images, masks, feats = tiles
+    scribbles = []
+    for m in masks:  # keep only every fourth row: a weak label
+        s = np.full_like(m, 255)
+        s[::4] = m[::4]
+        scribbles.append(s)
+    res = train_head(scribbles, class_indices=(0, 1), images=images, encoder=encoder, settings=TINY)
+    assert res.mode == "images"
+    assert np.isfinite(res.history[-1]["train_loss"])
+
+
+def test_training_is_repeatable(tiles):
+    images, masks, feats = tiles
+    a = train_head(masks, class_indices=(0, 1), features=feats, settings=TINY, mode="features")
+    b = train_head(masks, class_indices=(0, 1), features=feats, settings=TINY, mode="features")
+    for (ka, va), (kb, vb) in zip(
+        a.head.state_dict().items(), b.head.state_dict().items(), strict=True
+    ):
+        assert ka == kb
+        torch.testing.assert_close(va, vb, rtol=0, atol=0)
+
+
+def test_early_stopping_keeps_the_best_epoch(tiles):
+    images, masks, feats = tiles
+    s = ModelSettings(epochs=12, batch_size=2, val_share=0.34, seed=0)
+    res = train_head(
+        masks, class_indices=(0, 1), features=feats, settings=s, mode="features", patience=1
+    )
+    losses = [h["val_loss"] for h in res.history]
+    assert res.best_epoch == int(np.argmin(losses)) + 1
+    # stopped one epoch after the first epoch that did not improve, unless it ran out
+    assert len(losses) == 12 or losses[-1] >= losses[res.best_epoch - 1]
+
+
+def test_learns_the_invented_disk_scene(tiles):
+    images, masks, feats = tiles
+    s = ModelSettings(epochs=15, batch_size=2, val_share=0.34, seed=0)
+    res = train_head(masks, class_indices=(0, 1), features=feats, settings=s, mode="features")
+    assert res.val_iou[1] > 0.5  # green disks on brown soil: an easy scene
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "match"),
+    [
+        ({"mode": "sideways"}, "mode: expected 'auto', 'features' or 'images', got 'sideways'"),
+        ({"mode": "images"}, "mode: 'images' needs both images and encoder"),
+        ({"patience": 0}, "patience: expected at least 1 epoch, got 0"),
+        ({"class_indices": (0, 2)}, r"masks: tile 0 holds values \[1\] that are not head classes"),
+    ],
+)
+def test_bad_options_are_refused(tiles, kwargs, match):
+    images, masks, feats = tiles
+    args = {"class_indices": (0, 1), "features": feats, "settings": TINY} | kwargs
+    with pytest.raises(ValueError, match=match):
+        train_head(masks, **args)
+
+
+def test_features_of_other_tiles_are_refused(tiles):
+    images, masks, feats = tiles
+    big = [np.zeros((128, 128), np.uint8)] * 3
+    with pytest.raises(
+        ValueError,
+        match=r"features: tile 0 has stride-4 features 16 x 16 but its mask is \(128, 128\)",
+    ):
+        train_head(big, class_indices=(0, 1), features=feats, settings=TINY, mode="features")
