@@ -292,7 +292,7 @@ def detect_rows(
     max_spacing_px: float | None = None,
     half_width_px: float | None = None,
     band_level: float = 0.12,
-    min_periodicity: float = 0.15,
+    min_periodicity: float = 0.3,
     fit_bow: bool = True,
 ) -> RowPattern | None:
     """Find crop rows on a vegetation mask.
@@ -302,7 +302,7 @@ def detect_rows(
     vegetation : ndarray, shape (H, W), bool
         Plant pixels of a whole image (a single tile may be too small to show rows).
     min_spacing_px, max_spacing_px : float
-        Range of row spacings to consider; ``max_spacing_px`` defaults to 0.6 times the
+        Range of row spacings to consider; ``max_spacing_px`` defaults to 0.4 times the
         image extent across the rows.
     half_width_px : float, optional
         Band half-width; default: estimated from the data (see ``band_level``).
@@ -375,12 +375,11 @@ def detect_rows(
     veg_t = t[m]
     veg_s = s[m]
     bow = (0.0, 0.0)
-    offsets = _refine_offsets(centres, veg_t, spacing)
+    offsets = _refine_offsets(centres, t, m, spacing)
     if fit_bow:
         for _ in range(2):
             bow = _fit_bow(veg_t, veg_s, offsets, bow, spacing, s_mid, s_scale)
-            u = veg_t - _bow_at(veg_s, bow, s_mid, s_scale)
-            offsets = _refine_offsets(offsets, u, spacing)
+            offsets = _refine_offsets(offsets, t - _bow_at(s, bow, s_mid, s_scale), m, spacing)
 
     # 4. band half-width from the mean cross-row profile
     u_all = t - _bow_at(s, bow, s_mid, s_scale)
@@ -410,7 +409,7 @@ def _spacing_phase(m, t, t_lo, min_spacing, max_spacing):
     valid = n >= 0.25 * np.median(n[n > 0])
     density = np.where(valid, hv / np.maximum(n, 1), 0.0)
     length = int(valid.sum())
-    hi = 0.6 * length if max_spacing is None else float(max_spacing)
+    hi = 0.4 * length if max_spacing is None else float(max_spacing)
     lo = float(min_spacing)
     if hi <= lo or length < 2 * lo:
         return None, 0.0, 0.0, density, valid
@@ -436,40 +435,67 @@ def _spacing_phase(m, t, t_lo, min_spacing, max_spacing):
     spacing = float(first + np.clip(shift, -0.5, 0.5))
     periodicity = float(min(1.0, y1))
     # refine the spacing from the positions of the later autocorrelation peaks
+    # (rows repeat: where two spacings fit in the profile, the periodicity is the smaller
+    # of the autocorrelations at one and at two spacings, which random clumps rarely share)
     multiples = [spacing]
     for j in range(2, 6):
         target = j * spacing
         a, b = int(target - spacing / 4), int(target + spacing / 4) + 1
-        if b >= ac.size - 1:
+        if b >= ac.size - 1 or b > valid.sum() * 0.75:
             break
         k = a + int(np.argmax(ac[a:b]))
+        if j == 2:
+            periodicity = min(periodicity, float(ac[k]))
         if ac[k] < 0.5 * periodicity:
             break
         multiples.append(k / j)
     spacing = float(np.mean(multiples)) if len(multiples) > 1 else spacing
     # phase: comb of the spacing that collects the most density
-    grid = np.arange(smooth.size, dtype=np.float64)
+    # (a matched smoothing of a sixth of a spacing makes flat-topped rows peak mid-row)
+    comb = ndimage.gaussian_filter1d(np.where(valid, density, 0.0), spacing / 6.0)
+    weight = ndimage.gaussian_filter1d(valid.astype(np.float64), spacing / 6.0)
+    comb = np.where(weight > 0.5, comb / np.maximum(weight, 1e-9), 0.0)
+    grid = np.arange(comb.size, dtype=np.float64)
     best_phase, best_sum = 0.0, -np.inf
-    for phase in np.arange(0.0, spacing, 0.5):
-        pos = np.arange(phase, smooth.size, spacing)
-        total = np.interp(pos, grid, np.where(valid, smooth, 0.0)).sum() / max(pos.size, 1)
+    for phase in np.arange(0.0, spacing, 0.25):
+        pos = np.arange(phase, comb.size, spacing)
+        inside = np.interp(pos, grid, weight) > 0.5
+        if not inside.any():
+            continue
+        total = np.interp(pos[inside], grid, comb).mean()
         if total > best_sum:
             best_phase, best_sum = float(phase), total
     return spacing, t_lo + best_phase + 0.5, periodicity, density, valid
 
 
-def _refine_offsets(centres: np.ndarray, veg_u: np.ndarray, spacing: float) -> np.ndarray:
-    """Move each row offset to the mean of the vegetation within a third of a spacing."""
+def _refine_offsets(
+    centres: np.ndarray, u_all: np.ndarray, m: np.ndarray, spacing: float
+) -> np.ndarray:
+    """Move each row offset to the centroid of the vegetation density within a third of a
+    spacing. Density (vegetation share per 1 px bin of ``u``) rather than counts, so a row
+    cut by the image edge is not pulled inwards."""
+    u = u_all.ravel()
+    lo = math.floor(float(u.min()))
+    idx = np.floor(u - lo).astype(np.int64)
+    n = np.bincount(idx).astype(np.float64)
+    hv = np.bincount(idx, weights=m.ravel().astype(np.float64), minlength=n.size)
+    valid = n >= 0.1 * np.median(n[n > 0])
+    dens = np.where(valid, hv / np.maximum(n, 1), 0.0)
+    pos = lo + np.arange(n.size) + 0.5
     out = np.asarray(centres, np.float64).copy()
-    order = np.argsort(veg_u)
-    su = veg_u[order]
-    for k, c in enumerate(out):
+    for k, start in enumerate(out):
+        c = float(start)
         for _ in range(3):
-            a = np.searchsorted(su, c - spacing / 3.0)
-            b = np.searchsorted(su, c + spacing / 3.0)
-            if b - a < 10:
+            near = np.abs(pos - c) <= spacing / 3.0
+            window = 2 * int(spacing / 3.0)
+            if int((near & valid).sum()) < window:
+                break  # a row cut by the image edge keeps its comb position
+            sel = near & valid
+            mass = dens[sel].sum()
+            if mass <= 0:
                 break
-            c = float(np.clip(su[a:b].mean(), out[k] - spacing / 4, out[k] + spacing / 4))
+            c = float(np.clip((pos[sel] * dens[sel]).sum() / mass,
+                              start - spacing / 4, start + spacing / 4))
         out[k] = c
     return out
 
@@ -494,16 +520,18 @@ def _fit_bow(veg_t, veg_s, offsets, bow, spacing, s_mid, s_scale):
     n_seg = int(np.clip((2 * s_scale) // max(spacing, 1.0), 3, 12))
     edges = np.linspace(s_mid - s_scale, s_mid + s_scale, n_seg + 1)
     seg = np.clip(np.searchsorted(edges, veg_s, side="right") - 1, 0, n_seg - 1)
-    xs, ys, ws = [], [], []
-    for j in range(n_seg):
-        sel = close & (seg == j)
-        cnt = int(sel.sum())
-        if cnt < 30:
-            continue
-        xs.append(((edges[j] + edges[j + 1]) / 2 - s_mid) / s_scale)
-        ys.append(float(resid[sel].mean()))
-        ws.append(math.sqrt(cnt))
-    if len(xs) < 3:
+    # one centroid per (row, segment); pieces cut by the image edge hold fewer pixels
+    # and are left out, so they cannot pull the curve
+    key = (nearest * n_seg + seg)[close]
+    cnt = np.bincount(key, minlength=offs.size * n_seg).astype(np.float64)
+    tot = np.bincount(key, weights=resid[close], minlength=offs.size * n_seg)
+    used = cnt >= max(30.0, 0.7 * float(np.median(cnt[cnt > 0]))) if (cnt > 0).any() else cnt > 0
+    groups = np.flatnonzero(used)
+    seg_of = groups % n_seg
+    xs = ((edges[seg_of] + edges[seg_of + 1]) / 2 - s_mid) / s_scale
+    ys = tot[groups] / cnt[groups]
+    ws = np.sqrt(cnt[groups])
+    if np.unique(seg_of).size < 3:
         return bow
     x = np.asarray(xs)
     y = np.asarray(ys)
@@ -531,7 +559,7 @@ def _band_half_width(m, u_all, offsets, spacing, level):
     n = np.bincount(idx).astype(np.float64)
     hv = np.bincount(idx, weights=m.ravel()[keep].astype(np.float64), minlength=n.size)
     prof = np.where(n > 0, hv / np.maximum(n, 1), 0.0)
-    prof = ndimage.gaussian_filter1d(prof, 1.5, mode="nearest")
+    prof = ndimage.gaussian_filter1d(prof, 0.5, mode="nearest")
     outer = prof[int(0.38 * spacing) :]
     floor = float(np.median(outer)) if outer.size else 0.0
     peak = float(prof.max())
