@@ -180,5 +180,8 @@ def keys_markdown(schema: ClassSchema = DEFAULT_SCHEMA) -> str:
         "",
         "In a question (discard unsaved work? restore a draft?) `y` answers yes and `n` or "
         "`Esc` answers no.",
+        "",
+        "Masks drawn in the editor are decision support only: before they drive spraying or "
+        "fungicide timing, local regulations and licensed agronomic advice come first.",
     ]
     return "\n".join(rows) + "\n"

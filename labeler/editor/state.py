@@ -45,7 +45,7 @@ from labeler.editor.keys import TOOL_NAMES
 from labeler.masks.edits import Patch, polygon_patch, region_at, stroke_patch
 from labeler.masks.refine import grabcut_box, refine_random_walker
 
-__all__ = ["ViewTransform", "EditorState", "STROKE_KINDS", "PANE_GAP"]
+__all__ = ["ViewTransform", "EditorState", "fit_view_shape", "STROKE_KINDS", "PANE_GAP"]
 
 #: What a stroke writes: the active class into the mask, the proposal back, or a scribble.
 STROKE_KINDS = ("brush", "erase", "scribble")
@@ -147,6 +147,42 @@ class ViewTransform:
         return ViewTransform(
             self.zoom, self.origin_row - d_rows / self.zoom, self.origin_col - d_cols / self.zoom
         )
+
+
+def fit_view_shape(
+    tile_shape: tuple[int, int],
+    *,
+    max_shape: tuple[int, int] = (900, 1200),
+    max_zoom: int = 8,
+) -> tuple[int, int]:
+    """A view size for a tile: the largest whole zoom (1..``max_zoom``) that fits in
+    ``max_shape``, or the tile scaled down to fit when it is larger than that.
+
+    Parameters
+    ----------
+    tile_shape : (int, int)
+        ``(H, W)`` of the tile.
+    max_shape : (int, int)
+        Largest ``(rows, cols)`` of the view (leave room for the status strip).
+    max_zoom : int
+        Largest whole zoom.
+
+    Returns
+    -------
+    (rows, cols) : (int, int)
+        At least 8 x 8.
+    """
+    h, w = int(tile_shape[0]), int(tile_shape[1])
+    mr, mc = int(max_shape[0]), int(max_shape[1])
+    if min(h, w, mr, mc) < 1 or max_zoom < 1:
+        raise ValueError(
+            f"tile_shape, max_shape, max_zoom: expected positive sizes, got {tile_shape}, "
+            f"{max_shape}, {max_zoom}"
+        )
+    scale = min(mr / h, mc / w)
+    if scale >= 1:
+        scale = float(min(int(scale), int(max_zoom)))
+    return max(int(h * scale), 8), max(int(w * scale), 8)
 
 
 @dataclass(frozen=True)
@@ -301,6 +337,7 @@ class EditorState:
         self._base_dirty = True
         self._view_dirty = True
         self._changed_cache: tuple[int, bool] | None = None
+        self._scrib_cache: tuple[int, bool] | None = None
         self.active_class = self._default_class() if active_class is None else active_class
         self.tool = tool
         self.radius = radius
@@ -359,7 +396,10 @@ class EditorState:
 
     @property
     def has_scribbles(self) -> bool:
-        return bool((self._scrib != UNLABELLED).any())
+        """True when any pixel is scribbled."""
+        if self._scrib_cache is None or self._scrib_cache[0] != self._revision:
+            self._scrib_cache = (self._revision, bool((self._scrib != UNLABELLED).any()))
+        return self._scrib_cache[1]
 
     @property
     def changed(self) -> bool:

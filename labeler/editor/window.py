@@ -19,6 +19,10 @@ Never losing work:
     * a save refused as a conflict never overwrites: both masks are shown side by side,
       the work is kept as a draft and the user is told so;
     * any exception inside the loop first writes a draft, then propagates.
+
+Caution: a mask made here may end up driving a field operation (spot spraying, fungicide
+timing). Masks are decision support only; local regulations and licensed agronomic advice
+come first.
 """
 
 from __future__ import annotations

@@ -12,8 +12,8 @@ from skimage import data, filters
 
 from labeler.classes import DEFAULT_SCHEMA, ClassSchema, LabelClass
 from labeler.editor.backend import Draft, EditorBackend, MemoryBackend
-from labeler.editor.keys import keys_markdown
-from labeler.editor.state import EditorState, ViewTransform
+from labeler.editor.keys import BINDINGS, TOOLS, class_for, command_for, keys_markdown
+from labeler.editor.state import EditorState, ViewTransform, fit_view_shape
 from labeler.editor.window import STATUS_ROWS, EditorSession, require_display, run_editor
 from labeler.errors import LabelerError
 from labeler.masks.edits import stroke_mask
@@ -372,3 +372,21 @@ def test_xvfb_conflict_keeps_draft_then_a_crash_loses_nothing(display, tmp_path)
     (saved,) = xdrive.read_saves(folder)
     np.testing.assert_array_equal(saved["mask"], expected)
     assert saved["state"] == "amended"
+
+
+def test_key_table_binds_every_tool_and_digits_pick_classes():
+    for tool in TOOLS:
+        assert command_for(ord(tool.key)) == f"tool:{tool.name}"
+    assert command_for(13) == "save" and command_for(27) == "leave" and command_for(65505) is None
+    codes = [c for b in BINDINGS for c in b.codes]
+    assert len(codes) == len(set(codes))  # no key does two things
+    assert class_for(ord("2")) == 2 and class_for(ord("7")) is None and class_for(ord("x")) is None
+    assert "licensed agronomic advice" in keys_markdown()
+
+
+def test_fit_view_shape():
+    assert fit_view_shape((256, 256)) == (768, 768)  # whole zoom 3 fits 900 x 1200
+    assert fit_view_shape((64, 64)) == (512, 512)  # capped at zoom 8
+    assert fit_view_shape((1024, 2048)) == (600, 1200)  # scaled down to fit
+    with pytest.raises(ValueError, match="expected positive sizes"):
+        fit_view_shape((0, 5))
