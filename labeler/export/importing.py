@@ -423,7 +423,9 @@ def _map_values(
     mapped = lut[raw]
     if (mapped < 0).any():
         unknown, counts = np.unique(raw[mapped < 0], return_counts=True)
-        listed = ", ".join(f"{int(v)} ({int(n)} px)" for v, n in zip(unknown[:5], counts[:5], strict=True))
+        listed = ", ".join(
+            f"{int(v)} ({int(n)} px)" for v, n in zip(unknown[:5], counts[:5], strict=True)
+        )
         raise MaskImportError(
             f"{name}: {what} {listed}{' ...' if len(unknown) > 5 else ''} are not in the "
             "given table; add them to it"

@@ -142,7 +142,9 @@ def test_area_for_a_geographic_crs_agrees_with_utm():
     m[5:35, 8:30] = 1
     fc = collection(m, transform=t, crs="EPSG:4326", simplify_tolerance_px=0)
     lonlat = shapely.geometry.shape(fc["features"][0]["geometry"])
-    utm = shapely.geometry.shape(transform_geom("EPSG:4326", UTM31, shapely.geometry.mapping(lonlat)))
+    utm = shapely.geometry.shape(
+        transform_geom("EPSG:4326", UTM31, shapely.geometry.mapping(lonlat))
+    )
     assert fc["features"][0]["properties"]["area_m2"] == pytest.approx(utm.area, rel=2e-3)
 
 
@@ -284,7 +286,9 @@ def test_geometry_errors():
     with pytest.raises(ValueError, match="expected geometry type Polygon or MultiPolygon"):
         geometry_from_geojson({"type": "Point", "coordinates": [1, 2]})
     with pytest.raises(ValueError, match="ring is not closed"):
-        geometry_from_geojson({"type": "Polygon", "coordinates": [[[0, 0], [1, 0], [1, 1], [0, 1]]]})
+        geometry_from_geojson(
+            {"type": "Polygon", "coordinates": [[[0, 0], [1, 0], [1, 1], [0, 1]]]}
+        )
     with pytest.raises(ValueError, match="at least 4 positions"):
         geometry_from_geojson({"type": "Polygon", "coordinates": [[[0, 0], [1, 0], [0, 0]]]})
     with pytest.raises(ValueError, match=r"position 1: expected \[x, y\] numbers"):

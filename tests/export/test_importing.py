@@ -213,7 +213,7 @@ def test_lonlat_errors():
         features_to_mask(fc, shape=(10, 10), transform=T_UTM @ Affine.translation(50, 0),
                          crs=UTM31)
     wrong = dict(fc, crs={"type": "name", "properties": {"name": "urn:ogc:def:crs:EPSG::3857"}})
-    with pytest.raises(MaskImportError, match="wrong CRS: the file names 'urn:ogc:def:crs:EPSG::3857'"):
+    with pytest.raises(MaskImportError, match="wrong CRS: the file names 'urn:ogc:def:crs:EPSG::"):
         features_to_mask(wrong, shape=(10, 10), transform=T_UTM, crs=UTM31)
     old_style = dict(fc, crs={"type": "name",
                               "properties": {"name": "urn:ogc:def:crs:OGC:1.3:CRS84"}})
@@ -269,7 +269,8 @@ def test_png_errors(tmp_path):
     save(path, rgb)
     with pytest.raises(MaskImportError, match="an RGB mask needs a colour table"):
         read_png_mask(path, shape=(4, 4))
-    with pytest.raises(MaskImportError, match=r"1 colour\(s\) are not in the colour table: \(0, 0, 255\)"):
+    unknown_blue = r"1 colour\(s\) are not in the colour table: \(0, 0, 255\)"
+    with pytest.raises(MaskImportError, match=unknown_blue):
         read_png_mask(path, shape=(4, 4), colours={(0, 0, 0): 0})
     with pytest.raises(MaskImportError, match="colours table maps .* to 9"):
         read_png_mask(path, shape=(4, 4), colours={(0, 0, 0): 9})
