@@ -284,9 +284,9 @@ def simulate_scribbles(
 ) -> np.ndarray:
     """A weak label: a few strokes inside each class, 255 (unlabelled) elsewhere.
 
-    Strokes keep ``width_px / 2`` pixels away from the class's edge where the region is
-    wide enough (thin regions get strokes along their middle), so every stroke pixel
-    carries its true class.
+    Every stroke pixel carries its true class. Where a region is wide enough, strokes
+    keep off its edge pixels (stroke centres lie ``width_px / 2 + 2`` px inside); thin
+    regions get strokes along their middle.
 
     Parameters
     ----------
@@ -337,7 +337,7 @@ def simulate_scribbles(
             part = np.pad(labels[box] == k, 1)
             depth = ndimage.distance_transform_edt(part)[1:-1, 1:-1]
             # thin regions: their deepest pixels; wide ones keep the stroke off the edge
-            inside = depth >= min(float(depth.max()), radius + 1.0)
+            inside = depth >= min(float(depth.max()), radius + 2.0)
             rr, cc = np.nonzero(inside)
             j = int(g.integers(rr.size))
             length = length_px * g.uniform(0.5, 1.5)

@@ -118,7 +118,9 @@ def cold_start(
             f"no_rows_class: expected {CROP} (crop) or {WEED} (weed), got {no_rows_class!r}"
         )
     if len(origin) != 2:
-        raise ValueError(f"origin: expected (row, col) of the tile's top-left pixel, got {origin!r}")
+        raise ValueError(
+            f"origin: expected (row, col) of the tile's top-left pixel, got {origin!r}"
+        )
     veg = image_vegetation(rgb, settings=settings)
     if rows is None and detect:
         rows = detect_rows(veg)

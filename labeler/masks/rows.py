@@ -403,7 +403,7 @@ def detect_rows(
 
 def _spacing_phase(m, t, t_lo, min_spacing, max_spacing):
     """Row spacing (autocorrelation), comb phase and periodicity of the profile."""
-    idx = np.floor(t - t_lo).astype(np.int64).ravel()
+    idx = np.floor(t - t_lo + 0.5).astype(np.int64).ravel()  # bin k holds t_lo + k
     n = np.bincount(idx).astype(np.float64)
     hv = np.bincount(idx, weights=m.ravel().astype(np.float64), minlength=n.size)
     valid = n >= 0.25 * np.median(n[n > 0])
@@ -465,7 +465,7 @@ def _spacing_phase(m, t, t_lo, min_spacing, max_spacing):
         total = np.interp(pos[inside], grid, comb).mean()
         if total > best_sum:
             best_phase, best_sum = float(phase), total
-    return spacing, t_lo + best_phase + 0.5, periodicity, density, valid
+    return spacing, t_lo + best_phase, periodicity, density, valid
 
 
 def _refine_offsets(
@@ -476,12 +476,12 @@ def _refine_offsets(
     cut by the image edge is not pulled inwards."""
     u = u_all.ravel()
     lo = math.floor(float(u.min()))
-    idx = np.floor(u - lo).astype(np.int64)
+    idx = np.floor(u - lo + 0.5).astype(np.int64)  # bin k holds lo + k
     n = np.bincount(idx).astype(np.float64)
     hv = np.bincount(idx, weights=m.ravel().astype(np.float64), minlength=n.size)
     valid = n >= 0.1 * np.median(n[n > 0])
     dens = np.where(valid, hv / np.maximum(n, 1), 0.0)
-    pos = lo + np.arange(n.size) + 0.5
+    pos = lo + np.arange(n.size, dtype=np.float64)
     out = np.asarray(centres, np.float64).copy()
     for k, start in enumerate(out):
         c = float(start)
@@ -555,7 +555,7 @@ def _band_half_width(m, u_all, offsets, spacing, level):
         d = np.minimum(np.abs(u - offs[k - 1]), np.abs(u - offs[k]))
     half = spacing / 2.0
     keep = d <= half
-    idx = np.floor(d[keep]).astype(np.int64)
+    idx = np.floor(d[keep] + 0.5).astype(np.int64)  # bin j holds distance j
     n = np.bincount(idx).astype(np.float64)
     hv = np.bincount(idx, weights=m.ravel()[keep].astype(np.float64), minlength=n.size)
     prof = np.where(n > 0, hv / np.maximum(n, 1), 0.0)
@@ -571,9 +571,9 @@ def _band_half_width(m, u_all, offsets, spacing, level):
     if below.size == 0:
         return half
     j = top + int(below[0])
-    # linear interpolation between bins j-1 and j (bin centres at j + 0.5)
+    # linear interpolation between bins j-1 and j (bin j at distance j)
     if j > top:
         y0, y1 = prof[j - 1], prof[j]
         frac = (y0 - cut) / (y0 - y1) if y0 != y1 else 0.0
-        return float(min(half, j - 0.5 + frac))
-    return float(min(half, j + 0.5))
+        return float(min(half, j - 1 + frac))
+    return float(min(half, j))

@@ -14,6 +14,12 @@ from tests.common import REPO
 
 DEMO = REPO / "demo_fields"
 
+def _load(path, mode: str | None = None) -> np.ndarray:
+    """Pixels of an image file (closed again at once)."""
+    with Image.open(path) as im:
+        return np.asarray(im if mode is None else im.convert(mode)).copy()
+
+
 
 def _bands(shape, angle_deg, spacing, half_width, phase=7.0):
     """Straight bands ``|t - (phase + k spacing)| <= half_width`` (module convention)."""
@@ -30,7 +36,13 @@ def _angle_error(a, b):
 
 @pytest.mark.parametrize(
     ("angle", "spacing", "half_width"),
-    [(0.0, 30.0, 5.0), (20.0, 40.0, 6.0), (90.0, 50.0, 8.0), (135.0, 37.5, 6.0), (172.0, 60.0, 9.0)],
+    [
+        (0.0, 30.0, 5.0),
+        (20.0, 40.0, 6.0),
+        (90.0, 50.0, 8.0),
+        (135.0, 37.5, 6.0),
+        (172.0, 60.0, 9.0),
+    ],
 )
 def test_straight_bands_give_their_angle_spacing_and_offsets(angle, spacing, half_width):
     # hand-made bands with an exact answer (common practice, no source)
@@ -57,7 +69,9 @@ def test_band_mask_covers_the_bands():
     rows = detect_rows(m)
     band = rows.band_mask()
     assert (band & m).sum() / m.sum() >= 0.98
-    assert (band & ~m).sum() / (~m).sum() <= 0.05
+    # the estimated half-width may exceed a sharp band's by up to a pixel (band_level)
+    assert rows.half_width_px - 7.0 <= 1.0
+    assert (band & ~m).sum() / (~m).sum() <= 2 * 1.0 / (45.0 - 14.0)
 
 
 def test_gaps_in_rows_do_not_hide_them():
@@ -149,7 +163,7 @@ def test_rows_of_the_committed_demo_plots():
     # the demo generator records each plot's true row angle and spacing (invented data)
     manifest = json.loads((DEMO / "scenario.json").read_text())
     for entry in manifest["plots"][:3]:
-        truth = np.asarray(Image.open(DEMO / entry["truth"]))
+        truth = _load(DEMO / entry["truth"])
         rows = detect_rows(truth == 1)
         assert _angle_error(rows.angle_deg, entry["row_angle_deg"]) <= 1.0
         assert abs(rows.spacing_px - entry["row_spacing_px"]) <= 2.0

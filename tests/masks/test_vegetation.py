@@ -33,6 +33,12 @@ PUBLISHED = [
     ((60, 120, 40), 0.6364, -0.1636, 0.8, -36.67255),
 ]
 
+def _load(path, mode: str | None = None) -> np.ndarray:
+    """Pixels of an image file (closed again at once)."""
+    with Image.open(path) as im:
+        return np.asarray(im if mode is None else im.convert(mode)).copy()
+
+
 
 def _pixel(rgb, dtype=np.uint8) -> np.ndarray:
     return np.array(rgb, dtype=dtype).reshape(1, 1, 3)
@@ -192,8 +198,8 @@ def test_excess_green_minus_red_finds_plants_in_open_field_photos(name, floor_io
     # Floors sit below what this copy gave when the test was written (IoU 0.68 and 0.81,
     # ROC AUC 0.96 and 0.97); no published figure for ExGR on this dataset.
     folder = require_dataset(PEANUT)
-    img = np.asarray(Image.open(folder / "images" / f"{name}.jpg").convert("RGB"))
-    label = np.asarray(Image.open(folder / "labels" / f"{name}.png").convert("RGB"))
+    img = _load(folder / "images" / f"{name}.jpg", "RGB")
+    label = _load(folder / "labels" / f"{name}.png", "RGB")
     plants = label.any(axis=2)  # (0,255,0) crop and (255,0,0) weed; black background
     veg = vegetation_mask(img)
     iou = (veg & plants).sum() / (veg | plants).sum()
