@@ -15,7 +15,9 @@ tile's top-left pixel::
                                    origin=(window.row, window.col))
 
 The proposal is a starting point for an annotator, not a field map: weeds growing inside
-the row are proposed as crop, and crop leaves reaching beyond the band as weed.
+the row are proposed as crop, and crop leaves reaching beyond the band as weed. Masks
+are decision support only; where one would drive spot spraying or other treatment,
+local regulations and licensed agronomic advice come first.
 """
 
 from __future__ import annotations
