@@ -246,17 +246,46 @@ def coordinate_decimals(
 # -- geometry <-> GeoJSON ----------------------------------------------------------
 
 
-def _ring_positions(ring: shapely.LinearRing, decimals: int | None) -> list[list[float]]:
-    xy = shapely.get_coordinates(ring)
+def _encode(
+    geoms: np.ndarray, *, decimals: int | None, orient: bool
+) -> tuple[list[dict], np.ndarray]:
+    """GeoJSON geometry objects and bboxes of many polygons/multipolygons at once.
+
+    Returns the geometry dicts and an (n, 4) array of ``[west, south, east, north]``
+    computed from the written (rounded) positions.
+    """
+    n = len(geoms)
+    if n == 0:
+        return [], np.zeros((0, 4))
+    if orient:
+        geoms = shapely.orient_polygons(geoms, exterior_cw=False)
+    types = shapely.get_type_id(geoms)
+    parts, part_geom = shapely.get_parts(geoms, return_index=True)
+    rings, ring_part = shapely.get_rings(parts, return_index=True)
+    coords, coord_ring = shapely.get_coordinates(rings, return_index=True)
     if decimals is not None:
-        xy = np.round(xy, decimals) + 0.0  # + 0.0 turns -0.0 into 0.0
-    return xy.tolist()
-
-
-def _polygon_positions(poly: shapely.Polygon, decimals: int | None) -> list:
-    rings = [_ring_positions(poly.exterior, decimals)]
-    rings.extend(_ring_positions(r, decimals) for r in poly.interiors)
-    return rings
+        coords = np.round(coords, decimals) + 0.0  # + 0.0 turns -0.0 into 0.0
+    coord_geom = part_geom[ring_part[coord_ring]]
+    geom_start = np.searchsorted(coord_geom, np.arange(n))
+    lo = np.minimum.reduceat(coords, geom_start, axis=0)
+    hi = np.maximum.reduceat(coords, geom_start, axis=0)
+    bbox = np.column_stack([lo, hi])
+    positions = coords.tolist()
+    ring_bounds = np.searchsorted(coord_ring, np.arange(len(rings) + 1)).tolist()
+    ring_lists = [positions[a:b] for a, b in zip(ring_bounds[:-1], ring_bounds[1:], strict=True)]
+    part_bounds = np.searchsorted(ring_part, np.arange(len(parts) + 1)).tolist()
+    part_lists = [
+        ring_lists[a:b] for a, b in zip(part_bounds[:-1], part_bounds[1:], strict=True)
+    ]
+    geom_bounds = np.searchsorted(part_geom, np.arange(n + 1)).tolist()
+    out = []
+    for k in range(n):
+        a, b = geom_bounds[k], geom_bounds[k + 1]
+        if types[k] == 3:  # Polygon
+            out.append({"type": "Polygon", "coordinates": part_lists[a]})
+        else:
+            out.append({"type": "MultiPolygon", "coordinates": part_lists[a:b]})
+    return out, bbox
 
 
 def geometry_to_geojson(
@@ -286,14 +315,9 @@ def geometry_to_geojson(
         raise ValueError(
             f"geometry: expected a non-empty Polygon or MultiPolygon, got {geometry.geom_type}"
         )
-    if orient:
-        geometry = shapely.orient_polygons(geometry, exterior_cw=False)
-    if isinstance(geometry, shapely.Polygon):
-        return {"type": "Polygon", "coordinates": _polygon_positions(geometry, decimals)}
-    return {
-        "type": "MultiPolygon",
-        "coordinates": [_polygon_positions(p, decimals) for p in geometry.geoms],
-    }
+    arr = np.empty(1, dtype=object)
+    arr[0] = geometry
+    return _encode(arr, decimals=decimals, orient=orient)[0][0]
 
 
 def _ring_from_positions(positions: object, where: str) -> np.ndarray:
@@ -369,13 +393,6 @@ def _bbox_of(positions_xy: np.ndarray) -> list[float]:
     return [float(lo[0]), float(lo[1]), float(hi[0]), float(hi[1])]
 
 
-def _feature_bbox(geometry: Mapping) -> list[float]:
-    coords = geometry["coordinates"]
-    polys = [coords] if geometry["type"] == "Polygon" else coords
-    xy = np.concatenate([np.asarray(ring, np.float64) for p in polys for ring in p])
-    return _bbox_of(xy[:, :2])
-
-
 def _collection_bbox(features: Sequence[Mapping]) -> list[float] | None:
     boxes = np.asarray([f["bbox"] for f in features if "bbox" in f], np.float64)
     if len(boxes) == 0:
@@ -423,6 +440,24 @@ def _check_windows(
             raise ValueError(
                 f"windows[{k}]: {w} reaches outside the {shape[0]} x {shape[1]} image mask"
             )
+
+
+def _tile_properties(infos: Sequence[TileInfo], default_source: str) -> dict:
+    """Feature properties that come from the tiles a region's pixels come from."""
+    versions = _distinct(t.model_version for t in infos)
+    if infos:
+        source = "proposal" if any(t.source == "proposal" for t in infos) else "annotation"
+    else:
+        source = default_source
+    return {
+        "tiles": [t.tile_id for t in infos],
+        "annotators": _distinct(t.annotator for t in infos),
+        "states": _distinct((t.state for t in infos), order=TILE_STATES),
+        "model_version": (
+            None if not versions else versions[0] if len(versions) == 1 else list(versions)
+        ),
+        "source": source,
+    }
 
 
 def image_feature_collection(
@@ -559,38 +594,41 @@ def image_feature_collection(
             area_m2 = shapely.area(local)
         out_geoms = lonlat
 
+    geometries, boxes = _encode(out_geoms, decimals=decimals, orient=True)
     owner = owner_map(windows, shape=m.shape) if windows else None
+    tile_props: dict[tuple[int, ...], dict] = {}  # the same tile set recurs: build once
+    names = {c.index: c.name for c in schema.classes}
     features = []
     for k, region in enumerate(regions):
-        touched: list[int] = []
+        touched: tuple[int, ...] = ()
         if owner is not None:
             ids = np.unique(owner[region.window.slices][region.pixels])
-            touched = [int(i) for i in ids if i >= 0]
-        infos = [tiles[i] for i in touched] if tiles is not None else []
-        versions = _distinct(t.model_version for t in infos)
-        if infos:
-            src_prop = "proposal" if any(t.source == "proposal" for t in infos) else "annotation"
-        else:
-            src_prop = source
-        geometry = geometry_to_geojson(out_geoms[k], decimals=decimals, orient=True)
-        name = schema.by_index(region.class_index).name
+            touched = tuple(int(i) for i in ids if i >= 0)
+        props = tile_props.get(touched)
+        if props is None:
+            props = tile_props[touched] = _tile_properties(
+                [tiles[i] for i in touched] if tiles is not None else [], source
+            )
+        name = names[region.class_index]
         features.append(
             {
                 "type": "Feature",
                 "id": f"{image}:{name}:{region.label}",
-                "bbox": _feature_bbox(geometry),
-                "geometry": geometry,
+                "bbox": boxes[k].tolist(),
+                "geometry": geometries[k],
                 "properties": {
                     "class": name,
                     "class_index": region.class_index,
                     "image": image,
-                    "tiles": [t.tile_id for t in infos],
-                    "annotators": _distinct(t.annotator for t in infos),
-                    "states": _distinct((t.state for t in infos), order=TILE_STATES),
+                    "tiles": list(props["tiles"]),
+                    "annotators": list(props["annotators"]),
+                    "states": list(props["states"]),
                     "model_version": (
-                        None if not versions else versions[0] if len(versions) == 1 else versions
+                        list(props["model_version"])
+                        if isinstance(props["model_version"], list)
+                        else props["model_version"]
                     ),
-                    "source": src_prop,
+                    "source": props["source"],
                     "area_m2": None if area_m2 is None else float(f"{area_m2[k]:.12g}"),
                     "area_px": region.area_px,
                 },
