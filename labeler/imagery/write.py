@@ -15,7 +15,14 @@ import rasterio
 from affine import Affine
 from PIL import Image
 
-__all__ = ["atomic_write_bytes", "write_geotiff", "write_png", "png_bytes", "png_decode"]
+__all__ = ["file_mode", "atomic_write_bytes", "write_geotiff", "write_png", "png_bytes", "png_decode"]
+
+
+def file_mode() -> int:
+    """Permission bits of a new file under the current umask (``0o666 & ~umask``)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
 
 
 def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
@@ -28,6 +35,7 @@ def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
+        os.chmod(tmp, file_mode())  # mkstemp makes 0600; give the file the usual mode
         os.replace(tmp, target)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
@@ -118,6 +126,7 @@ def write_geotiff(
     try:
         with rasterio.open(tmp, "w", **profile) as dst:
             dst.write(np.moveaxis(a, 2, 0))
+        os.chmod(tmp, file_mode())
         os.replace(tmp, target)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
