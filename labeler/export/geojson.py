@@ -9,7 +9,11 @@ mask to the file is:
    northing), and take the area in square metres there (for a geographic CRS, in a
    Lambert azimuthal equal-area projection centred on the image);
 3. reproject every vertex to WGS 84 longitude/latitude with rasterio (RFC 7946
-   sections 3.1.1 and 4: positions are ``[longitude, latitude]``, no ``"crs"`` member);
+   sections 3.1.1 and 4: positions are ``[longitude, latitude]``, no ``"crs"`` member).
+   All vertices go through one ``rasterio.warp.transform`` call, which gives the same
+   positions as ``rasterio.warp.transform_geom`` geometry by geometry. Edges are not
+   densified (straight in longitude/latitude, which is exact enough at field scale)
+   and features crossing the antimeridian are not split;
 4. orient the rings AFTER reprojection, exterior counterclockwise and holes clockwise
    (RFC 7946 section 3.1.6; image rows point down, so the orientation in pixel space
    says nothing about the orientation on the ground);
@@ -30,7 +34,9 @@ Soil (index 0) is the background and is not exported unless asked for with
 Images without georeferencing can be written in pixel coordinates only on request
 (``pixel_coordinates=True``): such a file is NOT RFC 7946 GeoJSON, a
 :class:`NotRFC7946Warning` says so, and the file carries the top-level member
-``"labeler:coordinates": "pixel"`` so that the import can tell.
+``"labeler:coordinates": "pixel"`` so that the import can tell. Its rings are oriented
+counterclockwise in the numeric x/y frame of the pixel coordinates (which looks clockwise
+on screen, where rows point down).
 
 Caution: polygons exported here are decision support. Where they drive a field
 operation (spot spraying, fungicide timing), local regulations and licensed agronomic

@@ -360,3 +360,41 @@ def test_argument_errors():
         coordinate_decimals(0.0)
     with pytest.raises(ValueError, match=r"fraction: expected a share of a pixel in \(0, 1\]"):
         coordinate_decimals(1.0, fraction=0)
+
+
+def test_vectorised_encoding_matches_shapely_mapping_per_geometry():
+    # slow reference: shapely.geometry.mapping of each oriented geometry, rounded
+    from labeler.export.geojson import _encode
+
+    rng = np.random.default_rng(4)
+    geoms = []
+    for _ in range(12):
+        x, y = rng.uniform(0, 50, 2)
+        shell = shapely.box(x, y, x + rng.uniform(3, 9), y + rng.uniform(3, 9), ccw=False)
+        if rng.random() < 0.5:
+            hole = shapely.box(x + 1, y + 1, x + 2, y + 2).exterior
+            shell = shapely.Polygon(shell.exterior, [hole])
+        if rng.random() < 0.3:
+            shell = shapely.MultiPolygon([shell, shapely.box(x + 20, y, x + 21.37, y + 1.5)])
+        geoms.append(shell)
+    arr = np.empty(len(geoms), dtype=object)
+    arr[:] = geoms
+    got, boxes = _encode(arr, decimals=3, orient=True)
+    for g, out, box in zip(geoms, got, boxes, strict=True):
+        ref = shapely.geometry.mapping(shapely.orient_polygons(g, exterior_cw=False))
+        polys = [ref["coordinates"]] if ref["type"] == "Polygon" else ref["coordinates"]
+        rounded = [[[[round(v, 3) + 0.0 for v in p] for p in ring] for ring in poly]
+                   for poly in polys]
+        assert out["type"] == ref["type"]
+        assert out["coordinates"] == (rounded[0] if ref["type"] == "Polygon" else rounded)
+        xy = np.array([p for poly in rounded for ring in poly for p in ring])
+        assert box.tolist() == [*xy.min(axis=0), *xy.max(axis=0)]
+
+
+def test_more_argument_errors():
+    with pytest.raises(ValueError, match="transform: expected pixels of positive ground size"):
+        ground_sampling_distance(Affine(0.0, 0.0, 500_000.0, 0.0, 0.0, 0.0), UTM31, shape=(4, 4))
+    with pytest.raises(ValueError, match="crs: could not read"):
+        collection(zoo_square(), crs=12.5)
+    with pytest.raises(ValueError, match="MultiPolygon needs a non-empty list of polygons"):
+        geometry_from_geojson({"type": "MultiPolygon", "coordinates": []})

@@ -382,3 +382,29 @@ def test_match_mask_to_image():
     with pytest.raises(MaskImportError, match="expected a mask file ending in .png"):
         match_mask_to_image("north-01.tif", stems)
 
+
+
+def test_more_png_and_table_errors(tmp_path):
+    m = zoo_four_classes()
+    rgba = np.concatenate([np.zeros((8, 8, 3), np.uint8), np.full((8, 8, 1), 255, np.uint8)],
+                          axis=2)
+    path = save(tmp_path / "rgba.png", rgba)
+    with pytest.raises(MaskImportError, match="an RGBA mask needs a colour table"):
+        read_png_mask(path, shape=(8, 8))
+    assert (read_png_mask(path, shape=(8, 8), colours={(0, 0, 0): 2}) == 2).all()
+    grey = save(tmp_path / "grey.png", m)
+    with pytest.raises(MaskImportError, match="values table key -1 is not a grey value"):
+        read_png_mask(grey, shape=(8, 8), values={-1: 0})
+    with pytest.raises(MaskImportError, match="values table maps 3 to 8"):
+        read_png_mask(grey, shape=(8, 8), values={0: 0, 1: 1, 2: 2, 3: 8})
+    with pytest.raises(MaskImportError, match="grey values 3 \\(16 px\\) are not in the given"):
+        read_png_mask(grey, shape=(8, 8), values={0: 0, 1: 1, 2: 2})
+    la = np.stack([m, np.full_like(m, 255)], axis=2)
+    la[0, 0, 1] = 10
+    Image.fromarray(la, mode="LA").save(tmp_path / "la.png")
+    with pytest.raises(MaskImportError, match="transparent pixels"):
+        read_png_mask(tmp_path / "la.png", shape=(8, 8))
+    with pytest.raises(MaskImportError, match="colours table key \\(0, 0\\) is not an"):
+        read_png_mask(path, shape=(8, 8), colours={(0, 0): 1})
+    with pytest.raises(MaskImportError, match="<collection>: not a GeoJSON object"):
+        features_to_mask([1, 2], shape=(4, 4))
