@@ -526,6 +526,8 @@ def read_png_mask(
         raise
     except FileNotFoundError:
         raise MaskImportError(f"{name}: no such file") from None
+    except Image.DecompressionBombError as err:
+        raise MaskImportError(f"{name}: image too large to read safely ({err})") from None
     except (UnidentifiedImageError, OSError, SyntaxError, ValueError) as err:
         raise MaskImportError(f"{name}: not a readable PNG image ({err})") from None
     width, height = size

@@ -408,3 +408,11 @@ def test_more_png_and_table_errors(tmp_path):
         read_png_mask(path, shape=(8, 8), colours={(0, 0): 1})
     with pytest.raises(MaskImportError, match="<collection>: not a GeoJSON object"):
         features_to_mask([1, 2], shape=(4, 4))
+
+
+def test_oversized_png_is_refused(tmp_path, monkeypatch):
+    # Pillow refuses images above twice Image.MAX_IMAGE_PIXELS (its bomb guard)
+    path = save(tmp_path / "big.png", zoo_four_classes())
+    monkeypatch.setattr(Image, "MAX_IMAGE_PIXELS", 10)
+    with pytest.raises(MaskImportError, match="big.png: image too large to read safely"):
+        read_png_mask(path, shape=(8, 8))
