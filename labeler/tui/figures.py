@@ -1,0 +1,113 @@
+"""Texts of the agreement and model screens (plain Python; no textual here)."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+
+from labeler.agreement import AgreementSummary, landis_koch_band
+from labeler.classes import ClassSchema
+from labeler.store.records import ModelVersionRecord
+from labeler.tui.rows import format_number, format_who
+from labeler.workflow.annotating import QueueRow
+
+__all__ = [
+    "AGREEMENT_COLUMNS",
+    "CONTESTED_COLUMNS",
+    "agreement_cells",
+    "contested_cells",
+    "model_columns",
+    "model_cells",
+    "format_iou",
+    "miou_series",
+]
+
+#: Column headings of the agreement table.
+AGREEMENT_COLUMNS = ("pair", "class", "kappa", "band", "IoU", "images")
+#: Column headings of the contested tiles table.
+CONTESTED_COLUMNS = ("tile", "image", "at", "agreement", "saved by")
+
+
+def agreement_cells(summary: AgreementSummary, *, schema: ClassSchema) -> list[tuple[str, ...]]:
+    """Rows of the agreement table, in :data:`AGREEMENT_COLUMNS` order.
+
+    One block per annotator pair, then one for all pairs pooled: first a row for all
+    classes (Cohen's kappa of the pooled confusion matrix, its Landis & Koch band, mean
+    IoU), then one row per class (one-vs-rest kappa, IoU). Figures have 3 decimals;
+    undefined ones are ``"-"``. The pair name is written on the block's first row only.
+
+    Raises
+    ------
+    ValueError
+        If the summary was made with other classes than ``schema``.
+    """
+    if tuple(summary.class_indices) != tuple(schema.indices):
+        raise ValueError(
+            f"schema: classes {schema.indices} differ from the summary's "
+            f"{tuple(summary.class_indices)}; pass the project's schema"
+        )
+    out: list[tuple[str, ...]] = []
+    blocks = [(p.label, p) for p in summary.pairs]
+    if summary.pairs:
+        blocks.append(("all pairs", summary.overall))
+    for label, p in blocks:
+        out.append(
+            (label, "all", format_number(p.kappa), p.band, format_number(p.mean_iou),
+             str(p.images_compared))
+        )
+        for c in schema:
+            kappa = float(p.class_kappa[c.index])
+            out.append(
+                ("", c.name, format_number(kappa), landis_koch_band(kappa),
+                 format_number(float(p.iou[c.index])), str(p.images_compared))
+            )
+    return out
+
+
+def contested_cells(row: QueueRow) -> tuple[str, ...]:
+    """One row of the contested tiles table, in :data:`CONTESTED_COLUMNS` order."""
+    return (
+        str(row.tile_id),
+        row.image,
+        f"r{row.row} c{row.col}",
+        format_number(row.agreement),
+        format_who(row),
+    )
+
+
+def model_columns(schema: ClassSchema) -> tuple[str, ...]:
+    """Column headings of the model table: one validation IoU column per class."""
+    return ("version", "kind", "made", "tiles", *(f"{n} IoU" for n in schema.names), "mIoU")
+
+
+def model_cells(version: ModelVersionRecord, *, schema: ClassSchema) -> tuple[str, ...]:
+    """One row of the model table, in :func:`model_columns` order.
+
+    Classes missing from ``val_iou`` (or ``None`` there: absent from the validation
+    tiles) show ``"-"``, as do versions without validation figures (cold start).
+    """
+    iou = version.val_iou or {}
+    made = version.created_at.strftime("%Y-%m-%d %H:%M") if version.created_at else "-"
+    return (
+        version.name,
+        version.kind,
+        made,
+        str(version.n_train_tiles),
+        *(format_number(iou.get(n)) for n in schema.names),
+        format_number(version.miou),
+    )
+
+
+def format_iou(val_iou: Mapping[str, float | None] | None, *, names: Sequence[str]) -> str:
+    """``"crop 0.812 · weed 0.433 · symptom -"`` in the order of ``names``."""
+    iou = val_iou or {}
+    return " · ".join(f"{n} {format_number(iou.get(n))}" for n in names)
+
+
+def miou_series(versions: Sequence[ModelVersionRecord]) -> list[float]:
+    """mIoU of every version that has one, oldest first (for the trend line)."""
+    out = []
+    for v in versions:
+        if v.miou is not None and not math.isnan(float(v.miou)):
+            out.append(float(v.miou))
+    return out

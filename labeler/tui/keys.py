@@ -1,0 +1,69 @@
+"""The keys of the terminal queue, in one table: footer bindings and the help screen."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from textual.binding import Binding
+
+__all__ = ["Key", "APP_KEYS", "QUEUE_KEYS", "AGREEMENT_KEYS", "SUBSCREEN_KEYS", "bindings"]
+
+
+@dataclass(frozen=True)
+class Key:
+    """One key: what it runs, its short footer label and the sentence the help shows."""
+
+    key: str
+    action: str
+    label: str
+    explain: str
+    shown: bool = True
+    display: str = ""
+
+    @property
+    def shown_as(self) -> str:
+        """How the help screen writes the key."""
+        return self.display or self.key
+
+
+#: Keys that work on every screen.
+APP_KEYS: tuple[Key, ...] = (
+    Key("g", "agreement", "agreement",
+        "open the agreement screen: annotator pairs, classes and contested tiles"),
+    Key("m", "models", "models",
+        "open the model screen: every model version with its validation IoU per class"),
+    Key("question_mark", "help", "help", "show this list of keys", display="?"),
+    Key("q", "quit", "quit", "leave the queue; every saved mask is already in the store"),
+)
+
+#: Keys of the queue screen.
+QUEUE_KEYS: tuple[Key, ...] = (
+    Key("e", "edit", "edit",
+        "open the selected tile in the mask editor window (needs a display)"),
+    Key("a", "accept", "accept",
+        "keep the proposal shown in the preview, unchanged, as your mask of the tile"),
+    Key("p", "park", "park", "set the selected tile aside for later"),
+    Key("n", "next", "next", "jump to the next tile you may take"),
+    Key("r", "rerank", "re-rank", "ask the picker for a new queue order (runs in the background)"),
+    Key("t", "retrain", "retrain",
+        "train the model on the saved masks (runs in the background), then show its IoU"),
+    Key("slash", "find", "find", "type a tile id in the search box and press Enter",
+        shown=False, display="/"),
+)
+
+#: Keys of the agreement screen.
+AGREEMENT_KEYS: tuple[Key, ...] = (
+    Key("s", "settle", "settle",
+        "open the selected contested tile in the editor with both masks, to decide it"),
+    Key("u", "update", "update", "compute the figures again from the store"),
+)
+
+#: Keys of the agreement and model screens.
+SUBSCREEN_KEYS: tuple[Key, ...] = (
+    Key("escape", "back", "back", "return to the queue", display="Esc"),
+)
+
+
+def bindings(keys: tuple[Key, ...]) -> list[Binding]:
+    """Textual bindings of ``keys`` (footer label = ``Key.label``)."""
+    return [Binding(k.key, k.action, k.label, show=k.shown) for k in keys]

@@ -1,0 +1,73 @@
+"""The model screen: every model version with its validation IoU, and the mIoU trend."""
+
+from __future__ import annotations
+
+from textual import work
+from textual.app import ComposeResult
+from textual.screen import Screen
+from textual.widgets import DataTable, Footer, Header, Label, Sparkline, Static
+from textual.worker import get_current_worker
+
+from labeler.tui.figures import miou_series, model_cells, model_columns
+from labeler.tui.keys import SUBSCREEN_KEYS, bindings
+
+__all__ = ["ModelScreen"]
+
+
+class ModelScreen(Screen):
+    """Model versions, oldest first, and how their validation mIoU moved."""
+
+    BINDINGS = bindings(SUBSCREEN_KEYS)
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.loads = 0
+        self.series: list[float] = []
+
+    def compose(self) -> ComposeResult:
+        yield Header()
+        yield Label("Model versions, oldest first (validation IoU per class)", classes="title")
+        yield DataTable(id="model-table", cursor_type="row", zebra_stripes=True)
+        yield Label("Validation mIoU over versions", classes="title")
+        yield Sparkline([], id="miou-trend")
+        yield Static("", id="miou-caption")
+        yield Footer()
+
+    def on_mount(self) -> None:
+        schema = self.app.project.settings.classes
+        self.query_one("#model-table", DataTable).add_columns(*model_columns(schema))
+        self._load()
+
+    @work(thread=True, exclusive=True, group="models", exit_on_error=False)
+    def _load(self) -> None:
+        worker = get_current_worker()
+        try:
+            versions = self.app.project.store.model_versions()
+        except Exception as exc:  # noqa: BLE001 - shown to the user
+            self.app.call_from_thread(self.app.report_error, exc, doing="reading model versions")
+            return
+        if not worker.is_cancelled:
+            self.app.call_from_thread(self._apply, versions)
+
+    def _apply(self, versions) -> None:
+        schema = self.app.project.settings.classes
+        table = self.query_one("#model-table", DataTable)
+        table.clear()
+        for v in versions:
+            table.add_row(*model_cells(v, schema=schema), key=str(v.id))
+        self.series = miou_series(versions)
+        self.query_one("#miou-trend", Sparkline).data = self.series
+        caption = self.query_one("#miou-caption", Static)
+        if not versions:
+            caption.update("no model version yet: propose or retrain first")
+        elif not self.series:
+            caption.update("no version has validation figures yet (cold start only)")
+        else:
+            caption.update(
+                f"{len(self.series)} version(s) with figures: first {self.series[0]:.3f}, "
+                f"latest {self.series[-1]:.3f}, best {max(self.series):.3f}"
+            )
+        self.loads += 1
+
+    def action_back(self) -> None:
+        self.app.pop_screen()

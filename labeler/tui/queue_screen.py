@@ -1,0 +1,415 @@
+"""The queue screen: tiles in picker order, filters, the preview and the annotator's keys.
+
+Every store or model call runs in a worker thread; results come back to the interface
+through ``App.call_from_thread``. The screen decides nothing itself: accepting, parking,
+the next tile, the queue order and retraining are :mod:`labeler.workflow` functions.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+from textual import on, work
+from textual.app import ComposeResult
+from textual.containers import Horizontal, Vertical
+from textual.screen import Screen
+from textual.widgets import DataTable, Footer, Header, Input, Label, Select, Static
+from textual.worker import get_current_worker
+
+import labeler.workflow as workflow
+from labeler.imagery.read import open_image
+from labeler.states import STATES
+from labeler.tui.figures import format_iou
+from labeler.tui.keys import QUEUE_KEYS, bindings
+from labeler.tui.rows import NOBODY, QUEUE_COLUMNS, RowFilter, filter_rows, queue_cells
+from labeler.tui.widgets import TilePreview, WorkBar, palette_legend
+from labeler.workflow.annotating import QueueRow
+
+__all__ = ["QueueScreen"]
+
+
+class QueueScreen(Screen):
+    """Annotators work through the tiles here; managers watch the states change."""
+
+    BINDINGS = bindings(QUEUE_KEYS)
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.rows: list[QueueRow] = []
+        self.shown_rows: list[QueueRow] = []
+        self.row_filter = RowFilter()
+        self.long_work: str | None = None
+        self.loads = 0  # completed row loads (tests and the status line use it)
+        self._preview_tile: int | None = None
+        self._annotators: tuple[str, ...] = ()
+
+    # -- layout -------------------------------------------------------------------------
+    @property
+    def project(self):
+        return self.app.project
+
+    @property
+    def schema(self):
+        return self.app.project.settings.classes
+
+    def compose(self) -> ComposeResult:
+        yield Header()
+        with Horizontal(id="filters"):
+            yield Select(
+                [(s, s) for s in STATES], prompt="every state", id="state-filter"
+            )
+            yield Select(
+                [(c.name, c.name) for c in self.schema if c.index != 0],
+                prompt="any class",
+                id="class-filter",
+            )
+            yield Select([(NOBODY, NOBODY)], prompt="anyone", id="person-filter")
+            yield Input(placeholder="tile id, Enter", type="integer", id="tile-search")
+        with Horizontal(id="body"):
+            yield DataTable(id="queue", cursor_type="row", zebra_stripes=True)
+            with Vertical(id="side"):
+                yield Label("", id="preview-caption")
+                yield TilePreview(
+                    schema=self.schema,
+                    opacity=self.project.settings.editor.opacity,
+                    id="preview",
+                )
+                yield Static(palette_legend(self.schema), id="legend")
+        yield WorkBar(id="work")
+        yield Static("", id="status")
+        yield Footer()
+
+    def on_mount(self) -> None:
+        table = self.query_one("#queue", DataTable)
+        table.add_columns(*QUEUE_COLUMNS)
+        table.focus()
+        self.reload()
+
+    # -- rows ---------------------------------------------------------------------------
+    def selected_tile(self) -> int | None:
+        """Id of the tile under the table cursor, or None when the table is empty."""
+        table = self.query_one("#queue", DataTable)
+        if table.row_count == 0:
+            return None
+        row_key, _ = table.coordinate_to_cell_key(table.cursor_coordinate)
+        return int(row_key.value)
+
+    def table_order(self) -> list[int]:
+        """Tile ids in the order the table shows them."""
+        table = self.query_one("#queue", DataTable)
+        return [int(r.key.value) for r in table.ordered_rows]
+
+    def reload(self, *, select: int | None = None) -> None:
+        """Read the queue from the store again (in a worker) and redraw the table."""
+        self._load_rows(select)
+
+    @work(thread=True, exclusive=True, group="rows", exit_on_error=False)
+    def _load_rows(self, select: int | None) -> None:
+        worker = get_current_worker()
+        try:
+            rows = workflow.queue_rows(self.project)
+            people = tuple(self.project.store.annotators())
+        except Exception as exc:  # noqa: BLE001 - shown to the user, the queue keeps running
+            self.app.call_from_thread(self.app.report_error, exc, doing="reading the queue")
+            return
+        if not worker.is_cancelled:
+            self.app.call_from_thread(self._apply_rows, rows, people, select)
+
+    def _apply_rows(
+        self, rows: list[QueueRow], people: Sequence[str], select: int | None
+    ) -> None:
+        self.rows = rows
+        if tuple(people) != self._annotators:
+            self._annotators = tuple(people)
+            person = self.query_one("#person-filter", Select)
+            current = person.value
+            options = [(p, p) for p in people] + [(NOBODY, NOBODY)]
+            person.set_options(options)
+            if current is not Select.NULL and current in dict(options):
+                person.value = current
+        self.loads += 1
+        self._refill(select=select, force_preview=True)
+
+    def _refill(self, *, select: int | None = None, force_preview: bool = False) -> None:
+        table = self.query_one("#queue", DataTable)
+        keep = select if select is not None else self.selected_tile()
+        self.shown_rows = filter_rows(self.rows, self.row_filter, schema=self.schema)
+        table.clear()
+        for r in self.shown_rows:
+            table.add_row(*queue_cells(r, schema=self.schema), key=str(r.tile_id))
+        ids = [r.tile_id for r in self.shown_rows]
+        if keep in ids:
+            table.move_cursor(row=ids.index(keep), animate=False)
+        self._update_status()
+        tile = self.selected_tile()
+        if tile is None:
+            self._preview_tile = None
+            self.query_one("#preview-caption", Label).update("")
+            self.query_one(TilePreview).show_message(
+                "no tile matches the filters" if self.rows else "the project has no tiles yet"
+            )
+        elif force_preview or tile != self._preview_tile:
+            self._show_preview(tile)
+
+    def _update_status(self) -> None:
+        counts: dict[str, int] = {}
+        for r in self.rows:
+            counts[r.state] = counts.get(r.state, 0) + 1
+        states = "  ".join(f"{s} {counts[s]}" for s in STATES if counts.get(s))
+        who = self.app.annotator
+        self.query_one("#status", Static).update(
+            f"{len(self.shown_rows)} of {len(self.rows)} tiles shown · {states or 'no tiles'}"
+            f" · working as {who}"
+        )
+
+    # -- filters and search ---------------------------------------------------------------
+    @on(Select.Changed)
+    def _filter_changed(self, event: Select.Changed) -> None:
+        def value(widget_id: str) -> str | None:
+            v = self.query_one(widget_id, Select).value
+            return None if v is Select.NULL else str(v)
+
+        self.row_filter = RowFilter(
+            state=value("#state-filter"),
+            class_name=value("#class-filter"),
+            annotator=value("#person-filter"),
+        )
+        self._refill()
+
+    def clear_filters(self) -> None:
+        """Show every tile again."""
+        for widget_id in ("#state-filter", "#class-filter", "#person-filter"):
+            self.query_one(widget_id, Select).clear()
+        self.row_filter = RowFilter()
+
+    def select_tile(self, tile_id: int) -> bool:
+        """Move the cursor to ``tile_id``, clearing the filters if they hide it.
+
+        Returns False (and says so) when the project has no such tile.
+        """
+        if tile_id not in {r.tile_id for r in self.rows}:
+            self.app.tell(
+                f"tile {tile_id} is not in this project; tile ids are in the 'tile' column",
+                severity="warning",
+            )
+            return False
+        if tile_id not in {r.tile_id for r in self.shown_rows}:
+            self.clear_filters()
+        self._refill(select=tile_id)
+        self.query_one("#queue", DataTable).focus()
+        return True
+
+    @on(Input.Submitted, "#tile-search")
+    def _search(self, event: Input.Submitted) -> None:
+        text = event.value.strip()
+        if not text:
+            return
+        try:
+            tile_id = int(text)
+        except ValueError:
+            self.app.tell(f"tile id: expected a whole number, got {text!r}", severity="warning")
+            return
+        if self.select_tile(tile_id):
+            event.input.clear()
+
+    def action_find(self) -> None:
+        self.query_one("#tile-search", Input).focus()
+
+    # -- preview ------------------------------------------------------------------------
+    @on(DataTable.RowHighlighted, "#queue")
+    def _highlighted(self, event: DataTable.RowHighlighted) -> None:
+        tile = int(event.row_key.value)
+        if tile != self._preview_tile:
+            self._show_preview(tile)
+
+    def _show_preview(self, tile_id: int) -> None:
+        self._preview_tile = tile_id
+        self.query_one("#preview-caption", Label).update(f"tile {tile_id}: reading ...")
+        self._load_preview(tile_id)
+
+    @work(thread=True, exclusive=True, group="preview", exit_on_error=False)
+    def _load_preview(self, tile_id: int) -> None:
+        worker = get_current_worker()
+        store = self.project.store
+        try:
+            tile = store.tile(tile_id)
+            image = store.image(tile.image_id)
+            with open_image(self.project.image_path(image)) as reader:
+                rgb = reader.read(tile.window)
+            saved = store.latest_annotation(tile_id)
+            proposal = store.latest_proposal(tile_id)
+            if saved is not None:
+                mask = saved.mask()
+                what = f"saved by {saved.annotator} (v{saved.version}, {saved.state})"
+            elif proposal is not None:
+                mask = proposal.mask()
+                names = {m.id: m.name for m in store.model_versions()}
+                what = f"proposal of {names.get(proposal.model_version_id, 'a model')}"
+            else:
+                mask = None
+                what = "no proposal yet"
+            caption = f"tile {tile_id} · {image.name} r{tile.row} c{tile.col} · {what}"
+        except Exception as exc:  # noqa: BLE001 - shown in the preview, not fatal
+            if not worker.is_cancelled:
+                self.app.call_from_thread(self._preview_failed, tile_id, str(exc))
+            return
+        if not worker.is_cancelled:
+            self.app.call_from_thread(self._preview_ready, tile_id, rgb, mask, caption)
+
+    def _preview_ready(self, tile_id, rgb, mask, caption: str) -> None:
+        if tile_id != self._preview_tile:
+            return
+        self.query_one("#preview-caption", Label).update(caption)
+        self.query_one(TilePreview).show(tile_id, rgb, mask)
+
+    def _preview_failed(self, tile_id: int, message: str) -> None:
+        if tile_id != self._preview_tile:
+            return
+        self.query_one("#preview-caption", Label).update(f"tile {tile_id}")
+        self.query_one(TilePreview).show_message(message, tile_id=tile_id)
+
+    # -- the annotator's keys -------------------------------------------------------------
+    def _tile_or_say(self) -> int | None:
+        tile = self.selected_tile()
+        if tile is None:
+            self.app.tell("no tile is selected; clear the filters or re-rank", severity="warning")
+        return tile
+
+    def action_accept(self) -> None:
+        tile = self._tile_or_say()
+        if tile is not None:
+            self._accept(tile)
+
+    @work(thread=True, group="saves", exit_on_error=False)
+    def _accept(self, tile_id: int) -> None:
+        who = self.app.annotator
+        try:
+            rec = workflow.accept_tile(self.project, tile_id, who)
+        except Exception as exc:  # noqa: BLE001
+            self.app.call_from_thread(self.app.report_error, exc, doing=f"accepting tile {tile_id}")
+            return
+        self.app.call_from_thread(
+            self._saved, tile_id, f"tile {tile_id}: proposal kept as {who}'s mask "
+            f"(version {rec.version}, {rec.state})"
+        )
+
+    def action_park(self) -> None:
+        tile = self._tile_or_say()
+        if tile is not None:
+            self._park(tile)
+
+    @work(thread=True, group="saves", exit_on_error=False)
+    def _park(self, tile_id: int) -> None:
+        try:
+            workflow.park_tile(self.project, tile_id, self.app.annotator)
+        except Exception as exc:  # noqa: BLE001
+            self.app.call_from_thread(self.app.report_error, exc, doing=f"parking tile {tile_id}")
+            return
+        self.app.call_from_thread(self._saved, tile_id, f"tile {tile_id} parked")
+
+    def _saved(self, tile_id: int, message: str) -> None:
+        self.app.tell(message)
+        self.reload(select=tile_id)
+
+    def action_next(self) -> None:
+        self._next()
+
+    @work(thread=True, group="saves", exit_on_error=False)
+    def _next(self) -> None:
+        try:
+            tile_id = workflow.next_tile(self.project, self.app.annotator)
+        except Exception as exc:  # noqa: BLE001
+            self.app.call_from_thread(self.app.report_error, exc, doing="finding the next tile")
+            return
+        self.app.call_from_thread(self.select_tile, tile_id)
+
+    def action_edit(self) -> None:
+        tile = self._tile_or_say()
+        if tile is not None:
+            self.app.open_editor(tile, on_done=lambda: self.reload(select=tile))
+
+    # -- long work ------------------------------------------------------------------------
+    def _begin(self, label: str) -> bool:
+        if self.long_work is not None:
+            self.app.tell(
+                f"{self.long_work} is still running; wait for it to finish", severity="warning"
+            )
+            return False
+        self.long_work = label
+        self.query_one(WorkBar).start(label)
+        return True
+
+    def _end(self) -> None:
+        self.long_work = None
+        self.query_one(WorkBar).stop()
+
+    def _progress(self, done: int, total: int, label: str = "") -> None:
+        """Progress callback for the workflow; called from the worker thread."""
+        self.app.call_from_thread(self._step, done, total, label)
+
+    def _step(self, done: int, total: int, label: str) -> None:
+        self.query_one(WorkBar).step(done, total, label)
+
+    def _failed(self, exc: BaseException, doing: str) -> None:
+        self._end()
+        self.app.report_error(exc, doing=doing)
+
+    def action_rerank(self) -> None:
+        if self._begin("re-ranking the queue"):
+            self._rerank()
+
+    @work(thread=True, group="long", exit_on_error=False)
+    def _rerank(self) -> None:
+        try:
+            result = workflow.rank_tiles(self.project, progress=self._progress)
+        except Exception as exc:  # noqa: BLE001
+            self.app.call_from_thread(self._failed, exc, "re-ranking")
+            return
+        self.app.call_from_thread(self._reranked, result)
+
+    def _reranked(self, result) -> None:
+        self._end()
+        batch = sum(1 for i in result.items if i.in_batch)
+        message = (
+            f"queue re-ranked ({result.strategy}): {len(result.items)} tiles, the first "
+            f"{batch} form the batch"
+        )
+        if result.unranked:
+            message += f"; {result.unranked} without a proposal stay at the end"
+        if result.note:
+            message += f". {result.note}"
+        self.app.tell(message)
+        first = result.items[0].tile_id if result.items else None
+        self.reload(select=first)
+
+    def action_retrain(self) -> None:
+        if getattr(workflow, "retrain", None) is None:
+            self.app.tell(
+                "retraining is not available in this installation (labeler.workflow.retrain "
+                "is missing); update labeler",
+                severity="error",
+            )
+            return
+        if self._begin("retraining the model"):
+            self._retrain()
+
+    @work(thread=True, group="long", exit_on_error=False)
+    def _retrain(self) -> None:
+        try:
+            result = workflow.retrain(self.project, progress=self._progress)
+        except Exception as exc:  # noqa: BLE001
+            self.app.call_from_thread(self._failed, exc, "retraining")
+            return
+        self.app.call_from_thread(self._retrained, result)
+
+    def _retrained(self, result) -> None:
+        self._end()
+        mv = result.model_version
+        miou = "-" if mv.miou is None else f"{mv.miou:.3f}"
+        self.app.tell(
+            f"model {mv.name} trained on {mv.n_train_tiles} tiles. Validation IoU: "
+            f"{format_iou(mv.val_iou, names=self.schema.names)} · mIoU {miou}",
+            title="retrained",
+            timeout=30,
+        )
+        self.reload()

@@ -1,0 +1,201 @@
+"""What the queue table shows: cell texts of a queue row and the row filters.
+
+Plain Python over :class:`labeler.workflow.QueueRow` (no textual here), so the screens
+stay thin and these rules are tested on their own.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+
+from labeler.classes import ClassSchema
+from labeler.states import STATES
+from labeler.workflow.annotating import QueueRow
+
+__all__ = [
+    "QUEUE_COLUMNS",
+    "NOBODY",
+    "MIN_CLASS_SHARE",
+    "RowFilter",
+    "keep_row",
+    "filter_rows",
+    "format_shares",
+    "format_number",
+    "format_who",
+    "queue_cells",
+]
+
+#: Column headings of the queue table, in order.
+QUEUE_COLUMNS = (
+    "rank",
+    "tile",
+    "image",
+    "state",
+    "who",
+    "predicted",
+    "agreement",
+    "score",
+    "reason",
+)
+
+#: Annotator filter value for tiles nobody holds or has saved.
+NOBODY = "(nobody yet)"
+
+#: Smallest predicted share of a class for the class filter to count the tile.
+MIN_CLASS_SHARE = 0.01
+
+
+@dataclass(frozen=True)
+class RowFilter:
+    """Which queue rows to show; ``None`` in a field means "do not filter on this".
+
+    Attributes
+    ----------
+    state : str or None
+        Keep rows in this tile state (one of :data:`labeler.states.STATES`).
+    class_name : str or None
+        Keep rows whose proposal predicts at least ``min_share`` of this class.
+        Rows without a proposal are dropped by this filter.
+    annotator : str or None
+        Keep rows held or saved by this annotator; :data:`NOBODY` keeps rows that no
+        one holds or has saved.
+    min_share : float
+        Threshold of the class filter, 0..1.
+    """
+
+    state: str | None = None
+    class_name: str | None = None
+    annotator: str | None = None
+    min_share: float = MIN_CLASS_SHARE
+
+    def __post_init__(self) -> None:
+        if self.state is not None and self.state not in STATES:
+            raise ValueError(
+                f"state: expected one of {', '.join(STATES)} or None, got {self.state!r}"
+            )
+        if not 0.0 <= self.min_share <= 1.0:
+            raise ValueError(f"min_share: expected a share in 0..1, got {self.min_share}")
+
+
+def _class_share(row: QueueRow, class_name: str, schema: ClassSchema) -> float | None:
+    if row.class_fractions is None:
+        return None
+    position = schema.names.index(class_name)
+    if position >= len(row.class_fractions):
+        return None
+    return float(row.class_fractions[position])
+
+
+def keep_row(row: QueueRow, flt: RowFilter, *, schema: ClassSchema) -> bool:
+    """True if ``row`` passes every set field of ``flt``.
+
+    Raises
+    ------
+    KeyError
+        If ``flt.class_name`` is not a class of ``schema`` (the message lists them).
+    """
+    if flt.state is not None and row.state != flt.state:
+        return False
+    if flt.class_name is not None:
+        schema.by_name(flt.class_name)  # raises naming the known classes
+        share = _class_share(row, flt.class_name, schema)
+        if share is None or share < flt.min_share:
+            return False
+    if flt.annotator is not None:
+        people = set(row.saved_by) | ({row.held_by} if row.held_by else set())
+        if flt.annotator == NOBODY:
+            return not people
+        return flt.annotator in people
+    return True
+
+
+def filter_rows(
+    rows: Iterable[QueueRow], flt: RowFilter, *, schema: ClassSchema
+) -> list[QueueRow]:
+    """The rows that pass ``flt``, in their given (queue) order."""
+    return [r for r in rows if keep_row(r, flt, schema=schema)]
+
+
+def format_shares(
+    fractions: Sequence[float] | None,
+    *,
+    schema: ClassSchema,
+    skip_background: bool = True,
+    top: int = 3,
+) -> str:
+    """Compact predicted class shares, largest first: ``"crop 41% weed 7%"``.
+
+    Parameters
+    ----------
+    fractions : sequence of float or None
+        Share of each class in schema index order (the proposal's class fractions).
+        ``None`` (no proposal) gives ``"-"``.
+    schema : ClassSchema
+    skip_background : bool
+        Leave out index 0 (soil): what is left of 100 % is soil.
+    top : int
+        At most this many classes; shares that round to 0 % are left out.
+
+    Returns
+    -------
+    str
+        ``"-"`` without fractions, ``"none"`` when no listed class reaches 0.5 %.
+    """
+    if fractions is None:
+        return "-"
+    if len(fractions) != len(schema):
+        raise ValueError(
+            f"fractions: expected {len(schema)} shares (one per class of {schema!r}), "
+            f"got {len(fractions)}"
+        )
+    pairs = [
+        (float(f), c.name)
+        for f, c in zip(fractions, schema.classes, strict=True)
+        if not (skip_background and c.index == 0)
+    ]
+    pairs.sort(key=lambda p: -p[0])
+    parts = [f"{name} {round(100 * f):d}%" for f, name in pairs[:top] if round(100 * f) > 0]
+    return " ".join(parts) if parts else "none"
+
+
+def format_number(value: float | None, digits: int = 3) -> str:
+    """``value`` with ``digits`` decimals; ``None`` and NaN give ``"-"``."""
+    if value is None or math.isnan(float(value)):
+        return "-"
+    return f"{float(value):.{digits}f}"
+
+
+def format_who(row: QueueRow) -> str:
+    """Who holds the tile and who saved it: ``"ana (open) bo"``; ``""`` for no one."""
+    parts = []
+    if row.held_by:
+        parts.append(f"{row.held_by} (open)")
+    parts += [name for name in row.saved_by if name != row.held_by]
+    if row.held_by and row.held_by in row.saved_by:
+        parts[0] = f"{row.held_by} (open, saved)"
+    return " ".join(parts)
+
+
+def queue_cells(row: QueueRow, *, schema: ClassSchema) -> tuple[str, ...]:
+    """The texts of one table row, in :data:`QUEUE_COLUMNS` order.
+
+    The rank is counted from 1 (``"-"``: not ranked yet); the agreement column is empty
+    for tiles with one annotator, ``"overlap"`` for an overlap tile still waiting for its
+    second mask. The tile's position in its image is in the preview caption.
+    """
+    agreement = format_number(row.agreement) if row.overlap else ""
+    if row.overlap and row.agreement is None:
+        agreement = "overlap"
+    return (
+        "-" if row.rank is None else str(row.rank + 1),
+        str(row.tile_id),
+        row.image,
+        row.state,
+        format_who(row),
+        format_shares(row.class_fractions, schema=schema),
+        agreement,
+        format_number(row.score),
+        row.reason or "",
+    )

@@ -1,0 +1,195 @@
+"""The app's shared duties: the editor process, the no-display message, errors, retraining."""
+
+import subprocess
+import sys
+from types import SimpleNamespace
+
+import pytest
+from textual.widgets._toast import Toast
+
+import labeler.workflow as workflow
+from labeler.errors import LabelerError
+from labeler.tui.app import QueueApp, run_queue
+from labeler.tui.widgets import WorkBar
+from tests.tui.helpers import SIZE, idle
+from tests.workflow.conftest import fake_proposals
+
+
+class FakeEditor:
+    """Records the editor commands instead of starting a window."""
+
+    def __init__(self, returncode=0, stderr=""):
+        self.commands = []
+        self.returncode = returncode
+        self.stderr = stderr
+
+    def __call__(self, command):
+        self.commands.append(list(command))
+        return subprocess.CompletedProcess(command, self.returncode, "", self.stderr)
+
+
+def _toast_texts(app):
+    return [str(t.render()) for t in app.screen.query(Toast)]
+
+
+@pytest.mark.skipif(sys.platform.startswith(("win", "darwin")), reason="desktops need no DISPLAY")
+async def test_no_display_says_so_and_starts_nothing(project, monkeypatch):
+    monkeypatch.delenv("DISPLAY", raising=False)
+    fake_proposals(project)
+    editor = FakeEditor()
+    app = QueueApp(project, annotator="ana", editor_runner=editor)
+    async with app.run_test(size=SIZE, notifications=True) as pilot:
+        await idle(pilot)
+        tile = app.screen.selected_tile()
+        await pilot.press("e")
+        await idle(pilot)
+        assert editor.commands == []
+        notice = app.notices[-1]
+        assert notice.severity == "warning"
+        assert notice.message.startswith(f"No display here (DISPLAY is not set), so the editor "
+                                         f"window for tile {tile} cannot open.")
+        assert "Accept the proposal from the preview with 'a'" in notice.message
+        assert any("No display here" in t for t in _toast_texts(app))
+
+
+async def test_editor_runs_with_a_display_and_refreshes(project, monkeypatch):
+    monkeypatch.setenv("DISPLAY", ":99")
+    fake_proposals(project)
+    editor = FakeEditor()
+    app = QueueApp(project, annotator="ana", editor_runner=editor)
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        await pilot.press("down")
+        await idle(pilot)
+        tile = app.screen.selected_tile()
+        loads = app.screen.loads
+        await pilot.press("e")
+        await idle(pilot)
+        assert editor.commands == [[sys.executable, "-m", "labeler.cli", "edit",
+                                    str(project.root), str(tile), "--annotator", "ana"]]
+        assert app.editing is None
+        assert app.screen.loads == loads + 1  # the queue was read again after the editor
+        assert app.screen.selected_tile() == tile
+
+
+async def test_editor_failure_shows_its_error(project, monkeypatch):
+    monkeypatch.setenv("DISPLAY", ":99")
+    fake_proposals(project)
+    editor = FakeEditor(returncode=1, stderr="labeler: error: tile 1 is held by bo\n")
+    app = QueueApp(project, annotator="ana", editor_runner=editor)
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        await pilot.press("e")
+        await idle(pilot)
+        assert app.notices[-1].severity == "error"
+        assert app.notices[-1].message == "editor on tile 1 failed: tile 1 is held by bo"
+
+
+async def test_worker_error_becomes_a_notification(project):
+    # no proposals yet: the picker refuses, and the queue shows its message
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE, notifications=True) as pilot:
+        await idle(pilot)
+        await pilot.press("r")
+        await idle(pilot)
+        with pytest.raises(LabelerError) as info:
+            workflow.rank_tiles(project)
+        notice = app.notices[-1]
+        assert notice.severity == "error" and notice.message == str(info.value)
+        assert "run 'labeler propose' first" in notice.message
+        assert any("labeler propose" in t for t in _toast_texts(app))
+        assert app.screen.long_work is None
+        assert not app.screen.query_one(WorkBar).has_class("busy")
+        assert app.is_running
+
+
+async def test_accept_without_proposal_is_a_notification(project):
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        tile = app.screen.selected_tile()
+        await pilot.press("a")
+        await idle(pilot)
+        assert app.notices[-1].message == (
+            f"tile {tile} has no proposal yet; run 'labeler propose' first"
+        )
+        assert project.store.latest_annotation(tile) is None
+
+
+async def test_retrain_shows_progress_and_iou(project, monkeypatch):
+    fake_proposals(project)
+    steps = []
+    monkeypatch.setattr(WorkBar, "step", lambda self, d, t, label="": steps.append((d, t, label)))
+
+    def fake_retrain(project_, *, progress):
+        progress(0, 2, "training the head")
+        progress(2, 2, "proposing")
+        mv = project_.store.add_model_version(
+            kind="head", name="head-7", n_train_tiles=5,
+            val_iou={"soil": 0.9, "crop": 0.8123, "weed": 0.4333, "symptom": None}, miou=0.7152,
+        )
+        return SimpleNamespace(model_version=mv)
+
+    monkeypatch.setattr(workflow, "retrain", fake_retrain, raising=False)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        await pilot.press("t")
+        await idle(pilot)
+        assert steps == [(0, 2, "training the head"), (2, 2, "proposing")]
+        notice = app.notices[-1]
+        assert notice.title == "retrained"
+        assert "model head-7 trained on 5 tiles" in notice.message
+        assert "soil 0.900 · crop 0.812 · weed 0.433 · symptom -" in notice.message
+        assert notice.message.endswith("mIoU 0.715")
+        assert app.screen.long_work is None
+
+
+async def test_retrain_error_and_busy_guard(project, monkeypatch):
+    def failing(project_, *, progress):
+        raise LabelerError("labels: retraining needs at least 3 labelled tiles, got 0")
+
+    monkeypatch.setattr(workflow, "retrain", failing, raising=False)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        app.screen.long_work = "re-ranking the queue"  # as if the picker were still running
+        await pilot.press("t")
+        assert app.notices[-1].message == (
+            "re-ranking the queue is still running; wait for it to finish"
+        )
+        app.screen.long_work = None
+        await pilot.press("t")
+        await idle(pilot)
+        assert app.notices[-1].severity == "error"
+        assert app.notices[-1].message == (
+            "labels: retraining needs at least 3 labelled tiles, got 0"
+        )
+
+
+async def test_retrain_missing_from_the_workflow(project, monkeypatch):
+    monkeypatch.delattr(workflow, "retrain", raising=False)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        await pilot.press("t")
+        assert "retraining is not available" in app.notices[-1].message
+        assert app.screen.long_work is None
+
+
+def test_unexpected_error_message(project):
+    app = QueueApp(project, annotator="ana")
+    app.notify = lambda *a, **k: None  # not running: only the wording is checked here
+    app.report_error(ZeroDivisionError("division by zero"), doing="re-ranking")
+    assert app.notices[-1].message == (
+        "re-ranking failed unexpectedly: ZeroDivisionError: division by zero"
+    )
+
+
+def test_run_queue_errors(tmp_path, project):
+    with pytest.raises(LabelerError, match="--annotator: expected a name"):
+        run_queue(project.root, annotator="  ")
+    with pytest.raises(LabelerError, match="no such project folder"):
+        run_queue(tmp_path / "nowhere", annotator="ana")
+    with pytest.raises(LabelerError, match="--annotator: expected a name"):
+        QueueApp(project, annotator="")

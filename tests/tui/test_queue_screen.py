@@ -1,0 +1,194 @@
+"""The queue screen through Textual's Pilot on the small project with the fake proposer."""
+
+import numpy as np
+from textual.widgets import DataTable, Select
+
+from labeler.imagery.read import open_image
+from labeler.store.store import NewProposal
+from labeler.tui.app import QueueApp
+from labeler.tui.preview import half_block_text, tile_picture
+from labeler.tui.rows import QUEUE_COLUMNS
+from labeler.tui.widgets import TilePreview, WorkBar
+from labeler.workflow import park_tile, queue_rows, rank_tiles
+from tests.tui.helpers import SIZE, idle, svg_text
+from tests.workflow.conftest import fake_proposals
+
+
+def _state_column(table):
+    col = QUEUE_COLUMNS.index("state")
+    return [str(table.get_row_at(i)[col]) for i in range(table.row_count)]
+
+
+async def test_queue_shows_picker_order_and_screenshot(project, artefacts):
+    fake_proposals(project)
+    rank_tiles(project, seed=0)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        screen = app.screen
+        ranking = [i.tile_id for i in project.store.latest_ranking()]
+        assert screen.table_order() == ranking
+        table = screen.query_one("#queue", DataTable)
+        assert [str(c.label) for c in table.columns.values()] == list(QUEUE_COLUMNS)
+        first = table.get_row_at(0)
+        assert str(first[0]) == "1" and str(first[1]) == str(ranking[0])
+        path = app.save_screenshot(filename="queue.svg", path=str(artefacts))
+    svg = svg_text(path)
+    for heading in (*QUEUE_COLUMNS, "every state", "any class", "anyone", "labeler queue",
+                    "re-rank", "accept", "crop", "weed", "symptom"):
+        assert heading in svg, heading
+
+
+async def test_state_class_and_person_filters(project):
+    fake_proposals(project)
+    tiles = [t.id for t in project.store.tiles()]
+    park_tile(project, tiles[1], "ana")
+    park_tile(project, tiles[4], "bo")
+    # a newer proposal for one tile predicts no weed at all
+    shape = project.store.tile(tiles[2]).shape
+    no_weed = np.zeros(shape, np.uint8)
+    no_weed[:, : shape[1] // 2] = 1
+    mv = project.store.add_model_version(kind="head", name="fake-2")
+    project.store.add_proposals(mv.id, [NewProposal(
+        tiles[2], no_weed, embedding=np.zeros(16, np.float32), class_fractions=[0.5, 0.5, 0, 0],
+    )])
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        screen = app.screen
+        table = screen.query_one("#queue", DataTable)
+        screen.query_one("#state-filter", Select).value = "parked"
+        await idle(pilot)
+        assert screen.table_order() == [tiles[1], tiles[4]]
+        assert set(_state_column(table)) == {"parked"}
+        screen.query_one("#state-filter", Select).clear()
+        screen.query_one("#class-filter", Select).value = "weed"
+        await idle(pilot)
+        # expected from the stored proposal masks themselves: weed on at least 1 % of pixels
+        expected = [
+            r.tile_id for r in queue_rows(project)
+            if np.mean(project.store.latest_proposal(r.tile_id).mask() == 2) >= 0.01
+        ]
+        assert tiles[2] not in expected
+        assert screen.table_order() == expected
+        screen.query_one("#class-filter", Select).clear()
+        await idle(pilot)
+        assert screen.table_order() == tiles
+
+
+async def test_moving_the_cursor_updates_the_preview(project):
+    fake_proposals(project)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        screen = app.screen
+        preview = screen.query_one(TilePreview)
+        first = preview.tile_id
+        assert first == screen.table_order()[0]
+        before = preview.render().plain
+        await pilot.press("down")
+        await idle(pilot)
+        second = screen.table_order()[1]
+        assert screen.selected_tile() == second and preview.tile_id == second
+        # the picture is the tile read from its image with its proposal, fitted to the widget
+        tile = project.store.tile(second)
+        image = project.store.image(tile.image_id)
+        with open_image(project.image_path(image)) as reader:
+            rgb = reader.read(tile.window)
+        mask = project.store.latest_proposal(second).mask()
+        size = preview.content_size
+        expected = half_block_text(tile_picture(
+            rgb, mask, schema=project.settings.classes, opacity=0.45, cols=size.width,
+            rows=size.height,
+        ))
+        shown = preview.render()
+        assert shown.plain == expected.plain and shown.plain != ""
+        assert shown.spans == expected.spans
+        assert before.count("\n") == shown.plain.count("\n")
+        caption = str(screen.query_one("#preview-caption").render())
+        assert f"tile {second}" in caption and "proposal of fake" in caption
+
+
+async def test_accept_from_the_preview_saves_the_proposal(project):
+    fake_proposals(project)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        await pilot.press("down")
+        await idle(pilot)
+        tile = app.screen.selected_tile()
+        await pilot.press("a")
+        await idle(pilot)
+        saved = project.store.latest_annotation(tile, annotator="ana")
+        assert saved is not None and saved.state == "accepted" and saved.annotator == "ana"
+        np.testing.assert_array_equal(saved.mask(), project.store.latest_proposal(tile).mask())
+        table = app.screen.query_one("#queue", DataTable)
+        row = table.get_row(str(tile))
+        assert str(row[QUEUE_COLUMNS.index("state")]) == "accepted"
+        assert str(row[QUEUE_COLUMNS.index("who")]) == "ana"
+        assert app.screen.selected_tile() == tile
+        assert any("proposal kept as ana's mask" in n.message for n in app.notices)
+
+
+async def test_park_key(project):
+    fake_proposals(project)
+    app = QueueApp(project, annotator="bo")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        tile = app.screen.selected_tile()
+        await pilot.press("p")
+        await idle(pilot)
+        assert project.store.tile(tile).state == "parked"
+        row = app.screen.query_one("#queue", DataTable).get_row(str(tile))
+        assert str(row[QUEUE_COLUMNS.index("state")]) == "parked"
+
+
+async def test_rerank_updates_the_order(project):
+    fake_proposals(project, seed=4)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        assert project.store.latest_ranking() == []
+        assert app.screen.table_order() == [t.id for t in project.store.tiles()]
+        await pilot.press("r")
+        await idle(pilot)
+        ranking = [i.tile_id for i in project.store.latest_ranking()]
+        assert len(ranking) == 6
+        assert app.screen.table_order() == ranking
+        assert app.screen.long_work is None
+        assert not app.screen.query_one(WorkBar).has_class("busy")
+        assert any(n.message.startswith("queue re-ranked") for n in app.notices)
+
+
+async def test_next_selects_the_next_tile_and_clears_filters(project):
+    fake_proposals(project)
+    rank_tiles(project, seed=0)
+    first = project.store.latest_ranking()[0].tile_id
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        app.screen.query_one("#state-filter", Select).value = "parked"  # hides every tile
+        await idle(pilot)
+        assert app.screen.table_order() == []
+        await pilot.press("n")
+        await idle(pilot)
+        # nothing is saved or held yet, so the next tile is the first in picker order
+        assert app.screen.selected_tile() == first
+        assert app.screen.query_one("#state-filter", Select).value is Select.NULL
+
+
+async def test_search_by_tile_id(project):
+    fake_proposals(project)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        await pilot.press("slash")
+        await pilot.press("5", "enter")
+        await idle(pilot)
+        assert app.screen.selected_tile() == 5
+        assert app.screen.query_one(TilePreview).tile_id == 5
+        await pilot.press("slash")
+        await pilot.press("9", "9", "enter")
+        await idle(pilot)
+        assert app.notices[-1].severity == "warning"
+        assert app.notices[-1].message.startswith("tile 99 is not in this project")

@@ -1,0 +1,97 @@
+"""Cell texts of the queue table and the row filters, on hand-made rows."""
+
+import pytest
+
+from labeler.classes import DEFAULT_SCHEMA
+from labeler.tui.rows import (
+    NOBODY,
+    QUEUE_COLUMNS,
+    RowFilter,
+    filter_rows,
+    format_number,
+    format_shares,
+    format_who,
+    keep_row,
+    queue_cells,
+)
+from labeler.workflow.annotating import QueueRow
+
+
+def _row(tile_id, *, state="proposed", fractions=(0.52, 0.41, 0.07, 0.0), held_by=None,
+         saved_by=(), overlap=False, agreement=None, rank=0, score=0.5, reason="uncertain"):
+    return QueueRow(
+        rank=rank, tile_id=tile_id, image="north-strip", row=0, col=224, score=score,
+        reason=reason, class_fractions=fractions, state=state, held_by=held_by,
+        saved_by=tuple(saved_by), overlap=overlap, agreement=agreement, in_batch=True,
+    )
+
+
+def test_format_shares_largest_first_without_soil():
+    assert format_shares((0.52, 0.41, 0.07, 0.0), schema=DEFAULT_SCHEMA) == "crop 41% weed 7%"
+    assert format_shares((0.1, 0.2, 0.3, 0.4), schema=DEFAULT_SCHEMA) == (
+        "symptom 40% weed 30% crop 20%"
+    )
+    assert format_shares((0.1, 0.2, 0.3, 0.4), schema=DEFAULT_SCHEMA, top=1) == "symptom 40%"
+    assert format_shares((0.9, 0.1, 0.0, 0.0), schema=DEFAULT_SCHEMA,
+                         skip_background=False) == "soil 90% crop 10%"
+
+
+def test_format_shares_edge_cases():
+    assert format_shares(None, schema=DEFAULT_SCHEMA) == "-"
+    assert format_shares((0.996, 0.004, 0.0, 0.0), schema=DEFAULT_SCHEMA) == "none"
+    with pytest.raises(ValueError, match="fractions: expected 4 shares .* got 3"):
+        format_shares((0.5, 0.5, 0.0), schema=DEFAULT_SCHEMA)
+
+
+def test_format_number_and_who():
+    assert format_number(0.123456) == "0.123"
+    assert format_number(None) == "-" and format_number(float("nan")) == "-"
+    assert format_who(_row(1)) == ""
+    assert format_who(_row(1, held_by="ana")) == "ana (open)"
+    assert format_who(_row(1, saved_by=("bo", "cy"))) == "bo cy"
+    assert format_who(_row(1, held_by="ana", saved_by=("ana", "bo"))) == "ana (open, saved) bo"
+
+
+def test_queue_cells_exact():
+    cells = queue_cells(_row(7, rank=2, score=1.5), schema=DEFAULT_SCHEMA)
+    assert len(cells) == len(QUEUE_COLUMNS)
+    assert cells == ("3", "7", "north-strip", "proposed", "", "crop 41% weed 7%", "", "1.500",
+                     "uncertain")
+    unranked = queue_cells(_row(8, rank=None, score=None, reason=None, overlap=True),
+                           schema=DEFAULT_SCHEMA)
+    assert unranked[0] == "-" and unranked[7] == "-" and unranked[8] == ""
+    assert unranked[QUEUE_COLUMNS.index("agreement")] == "overlap"
+    agreed = queue_cells(_row(9, overlap=True, agreement=0.4321), schema=DEFAULT_SCHEMA)
+    assert agreed[QUEUE_COLUMNS.index("agreement")] == "0.432"
+
+
+def test_filters():
+    rows = [
+        _row(1, state="proposed"),
+        _row(2, state="accepted", saved_by=("ana",)),
+        _row(3, state="parked", fractions=(0.995, 0.005, 0.0, 0.0)),
+        _row(4, state="held", held_by="bo", fractions=None),
+        _row(5, state="amended", saved_by=("bo",), fractions=(0.5, 0.0, 0.5, 0.0)),
+    ]
+    schema = DEFAULT_SCHEMA
+    ids = lambda flt: [r.tile_id for r in filter_rows(rows, flt, schema=schema)]  # noqa: E731
+    assert ids(RowFilter()) == [1, 2, 3, 4, 5]
+    assert ids(RowFilter(state="accepted")) == [2]
+    assert ids(RowFilter(state="unseen")) == []
+    # class filter: at least 1 % predicted; rows without a proposal drop out
+    assert ids(RowFilter(class_name="crop")) == [1, 2]
+    assert ids(RowFilter(class_name="crop", min_share=0.005)) == [1, 2, 3]
+    assert ids(RowFilter(class_name="weed")) == [1, 2, 5]
+    assert ids(RowFilter(annotator="bo")) == [4, 5]
+    assert ids(RowFilter(annotator=NOBODY)) == [1, 3]
+    assert ids(RowFilter(state="amended", annotator="bo", class_name="weed")) == [5]
+    assert ids(RowFilter(state="amended", annotator="ana")) == []
+
+
+def test_filter_errors():
+    with pytest.raises(ValueError, match="state: expected one of unseen, proposed"):
+        RowFilter(state="finished")
+    with pytest.raises(ValueError, match="min_share: expected a share in 0..1, got 2"):
+        RowFilter(min_share=2)
+    with pytest.raises(KeyError, match="class 'grass' is not in the schema"):
+        keep_row(_row(1), RowFilter(class_name="grass"), schema=DEFAULT_SCHEMA)
