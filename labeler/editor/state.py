@@ -515,6 +515,20 @@ class EditorState:
         self._show_heat = bool(value)
         self._base_dirty = True
 
+    def set_uncertainty(self, uncertainty: np.ndarray | None) -> None:
+        """Replace the uncertainty map, (h, w) float at any resolution (None removes it)."""
+        if uncertainty is None:
+            self._uncertainty = None
+            self._show_heat = False
+        else:
+            u = np.asarray(uncertainty, np.float64)
+            if u.ndim != 2 or u.size == 0 or not np.isfinite(u).all():
+                raise ValueError(
+                    f"uncertainty: expected a finite 2-D (h, w) map, got shape {u.shape}"
+                )
+            self._uncertainty = u
+        self._base_dirty = True
+
     @property
     def show_overlay(self) -> bool:
         return self._show_overlay

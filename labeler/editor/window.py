@@ -107,9 +107,18 @@ class Gui(Protocol):
 
     def wait(self, ms: int) -> int: ...
 
+    def after_wheel(self) -> None: ...
+
     def closed(self) -> bool: ...
 
     def close(self) -> None: ...
+
+
+def _highgui_is_qt() -> bool:
+    for line in cv2.getBuildInformation().splitlines():
+        if line.strip().startswith("GUI:"):
+            return "QT" in line.upper()
+    return False
 
 
 class HighGuiWindow:
@@ -119,11 +128,22 @@ class HighGuiWindow:
     ----------
     title : str
         Window name and title (``xdotool search --name`` finds it by this).
+
+    Notes
+    -----
+    The Qt build of HighGUI zooms its own view on every wheel notch up (by 1.1, on top of
+    the editor's zoom) and then pans that view on left-button drags, which would fight the
+    brush. Nothing in OpenCV's Python API resets that view, so after a wheel event
+    :meth:`after_wheel` opens the window afresh at the same place (one flicker per notch);
+    the editor's own zoom is unaffected. Other builds need no such step.
     """
 
     def __init__(self, title: str) -> None:
         self.title = title
         self._open = False
+        self._qt = _highgui_is_qt()
+        self._on_mouse: Callable[[int, int, int, int], None] | None = None
+        self._shape: tuple[int, int] | None = None
 
     def open(self, frame_shape: tuple[int, int],
              on_mouse: Callable[[int, int, int, int], None]) -> None:
@@ -131,6 +151,22 @@ class HighGuiWindow:
         cv2.namedWindow(self.title, cv2.WINDOW_AUTOSIZE | cv2.WINDOW_GUI_NORMAL)
         cv2.setMouseCallback(self.title, lambda ev, x, y, flags, _p: on_mouse(ev, x, y, flags))
         self._open = True
+        self._on_mouse = on_mouse
+        self._shape = frame_shape
+
+    def after_wheel(self) -> None:
+        """Undo the Qt build's own wheel zoom by opening the window afresh (see Notes)."""
+        if not (self._qt and self._open and self._on_mouse is not None):
+            return
+        try:
+            x, y, _w, _h = cv2.getWindowImageRect(self.title)
+        except cv2.error:
+            x = y = None
+        cv2.destroyWindow(self.title)
+        cv2.waitKey(1)
+        self.open(self._shape, self._on_mouse)
+        if x is not None and x >= 0 and y >= 0:
+            cv2.moveWindow(self.title, int(x), int(y))
 
     def show(self, frame: np.ndarray) -> None:
         cv2.imshow(self.title, frame)
@@ -262,6 +298,7 @@ class EditorSession:
         self._draft_kept = False
         self._last_autosave = clock()
         self._error: BaseException | None = None
+        self.wheel_turned = False  # set on a wheel event; the loop tells the window
 
     # -------------------------------------------------------------- shape and state
     @property
@@ -552,6 +589,7 @@ class EditorSession:
         elif event in (cv2.EVENT_RBUTTONUP, cv2.EVENT_MBUTTONUP):
             self._pan_last = None
         elif event == cv2.EVENT_MOUSEWHEEL and in_view:
+            self.wheel_turned = True
             delta = int(flags) >> 16  # what C++ getMouseWheelDelta does; signed
             if delta:
                 s.zoom_at((row, col), _ZOOM_STEP if delta > 0 else 1.0 / _ZOOM_STEP)
@@ -650,6 +688,9 @@ def run_editor(
             gui.show(session.frame())
             code = gui.wait(poll_ms)
             session.raise_pending()
+            if session.wheel_turned:
+                session.wheel_turned = False
+                getattr(gui, "after_wheel", lambda: None)()
             session.on_key(code)
             if not session.done and gui.closed():
                 session.on_closed()

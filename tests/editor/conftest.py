@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import pytest
 
-from tests.editor.xdrive import XServer, start_xvfb, stop_xvfb
+from tests.editor.xdrive import XServer, reap_children, start_xvfb, stop_xvfb
 
 
 @pytest.fixture(scope="session")
@@ -23,9 +23,13 @@ def xserver():
 
 
 @pytest.fixture
-def display(xserver: XServer, monkeypatch: pytest.MonkeyPatch) -> XServer:
-    """The session's Xvfb server, with DISPLAY pointing at it for this test."""
+def display(xserver: XServer, monkeypatch: pytest.MonkeyPatch):
+    """The session's Xvfb server, with DISPLAY pointing at it for this test; editor
+    processes the test left running are killed afterwards."""
     if xserver.process.poll() is not None:
         pytest.fail(f"Xvfb {xserver.display} has stopped (exit code {xserver.process.returncode})")
     monkeypatch.setenv("DISPLAY", xserver.display)
-    return xserver
+    try:
+        yield xserver
+    finally:
+        reap_children()

@@ -438,6 +438,11 @@ def test_heat_map_needs_an_uncertainty_map():
     assert (plain != heat).any()
     with pytest.raises(ValueError, match="uncertainty: expected a finite 2-D"):
         _state(uncertainty=np.zeros(3))
+    h.set_uncertainty(None)
+    assert not h.show_heat
+    np.testing.assert_array_equal(h.render(), plain)
+    with pytest.raises(ValueError, match="uncertainty: expected a finite 2-D"):
+        h.set_uncertainty(np.full((2, 2), np.nan))
 
 
 def test_side_by_side_shows_the_other_mask_in_the_right_pane():

@@ -80,9 +80,9 @@ def _drag(points):
     return steps
 
 
-def _expected_stroke(points_xy, shape=(64, 64)):
+def _expected_stroke(points_xy, shape=(64, 64), transform=None):
     """Tile pixels a drag through window points (x, y) must paint, by the view transform."""
-    t = ViewTransform.fit(shape, VIEW)
+    t = ViewTransform.fit(shape, VIEW) if transform is None else transform
     pts = [tuple(float(v) for v in t.view_to_tile(y, x)) for x, y in points_xy]
     return stroke_mask(pts, radius=RADIUS, shape=shape)
 
@@ -356,9 +356,17 @@ def test_xvfb_conflict_keeps_draft_then_a_crash_loses_nothing(display, tmp_path)
     child, win = _launch(display, folder, "labeler-test-conflict-2", autosave_seconds=0.3)
     xdrive.press_keys(display, "y")  # restore the draft
     xdrive.press_keys(display, "3")
+    # one wheel notch up (X button 4) at window point (x 300, y 120) zooms 1.25x about it
+    xdrive.xdo(display, "mousemove", "--window", win, 300, 120)
+    xdrive.xdo(display, "click", 4)
+    time.sleep(0.3)
+    # the Qt build reopens its window after a wheel event (HighGuiWindow.after_wheel)
+    win = xdrive.wait_window(display, "labeler-test-conflict-2",
+                             size=(VIEW[1], VIEW[0] + STATUS_ROWS), child=child)
+    zoomed = ViewTransform.fit((64, 64), VIEW).zoomed(1.25, at=(120.0, 300.0))
     second = [(300, 100), (450, 100)]
     xdrive.drag(display, win, second)
-    expected[_expected_stroke(second)] = 3
+    expected[_expected_stroke(second, transform=zoomed)] = 3
 
     def draft_has_second_stroke():
         d = xdrive.read_draft(folder)

@@ -47,6 +47,7 @@ __all__ = [
     "write_tile",
     "launch_child",
     "stop_child",
+    "reap_children",
     "read_saves",
     "read_draft",
     "read_outcome",
@@ -101,7 +102,8 @@ def start_xvfb(*, screen: str = "1280x1024x24", timeout: float = 10.0) -> XServe
         )
     read_fd, write_fd = os.pipe()
     proc = subprocess.Popen(
-        ["Xvfb", "-displayfd", str(write_fd), "-screen", "0", screen, "-nolisten", "tcp"],
+        ["Xvfb", "-displayfd", str(write_fd), "-screen", "0", screen, "-nolisten", "tcp",
+         "-noreset"],  # no server reset when the last client leaves (between editors)
         pass_fds=(write_fd,), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
     )
     os.close(write_fd)
@@ -160,7 +162,7 @@ def _geometry(server: XServer, window: str) -> tuple[int, int] | None:
 
 
 def wait_window(server: XServer, title: str, *, size: tuple[int, int] | None = None,
-                timeout: float = 20.0, child: subprocess.Popen | None = None) -> str:
+                timeout: float = 30.0, child: subprocess.Popen | None = None) -> str:
     """Id of the window called ``title``, once mapped (and ``size`` = (width, height))."""
 
     def found():
@@ -314,13 +316,38 @@ def write_tile(folder: Path, image: np.ndarray, proposal: np.ndarray, *, title: 
     return spec
 
 
-def launch_child(server: XServer, spec: Path) -> subprocess.Popen:
-    """Start ``python -m tests.editor.xdrive SPEC`` on the server (stderr to a log)."""
+def launch_child(server: XServer, spec: Path, *,
+                 command: Sequence[str] | None = None) -> subprocess.Popen:
+    """Start an editor process on the server, from the repository root, output to
+    ``child.log`` beside ``spec``.
+
+    The default command is ``python -m tests.editor.xdrive SPEC`` (a :class:`FolderBackend`
+    editor); pass ``command`` to run another one (e.g. an editor over the real store).
+    """
     log = open(spec.parent / "child.log", "ab")  # noqa: SIM115 - closed by stop_child
-    proc = subprocess.Popen([sys.executable, "-m", "tests.editor.xdrive", str(spec)],
-                            cwd=REPO, env=server.env(), stdout=log, stderr=log)
+    argv = list(command) if command is not None else [
+        sys.executable, "-m", "tests.editor.xdrive", str(spec)]
+    proc = subprocess.Popen(argv, cwd=REPO, env=server.env(), stdout=log, stderr=log)
     proc._log = log  # type: ignore[attr-defined]
+    _LIVE.append(proc)
     return proc
+
+
+_LIVE: list[subprocess.Popen] = []
+
+
+def reap_children() -> int:
+    """Kill editor processes a failed test left running and close their logs; returns how
+    many were still running."""
+    alive = 0
+    while _LIVE:
+        proc = _LIVE.pop()
+        if proc.poll() is None:
+            alive += 1
+            proc.kill()
+            proc.wait(5)
+        proc._log.close()  # type: ignore[attr-defined]
+    return alive
 
 
 def stop_child(proc: subprocess.Popen, *, timeout: float = 20.0, kill: bool = False) -> int:
