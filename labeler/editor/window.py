@@ -570,7 +570,8 @@ class EditorSession:
                 s.hover((row, col))
             else:
                 s.leave_view()
-        elif event == cv2.EVENT_LBUTTONDOWN:
+        elif event in (cv2.EVENT_LBUTTONDOWN, cv2.EVENT_LBUTTONDBLCLK):
+            # a quick second click arrives as a double-click instead of a press (Qt, GTK)
             if self.question is None and in_view:
                 s.notice = ""
                 self._left_down = True

@@ -398,3 +398,20 @@ def test_fit_view_shape():
     assert fit_view_shape((1024, 2048)) == (600, 1200)  # scaled down to fit
     with pytest.raises(ValueError, match="expected positive sizes"):
         fit_view_shape((0, 5))
+
+
+def test_quick_second_click_arrives_as_double_click_and_still_counts():
+    state = _state()
+    session = EditorSession(state, backend=MemoryBackend(), title="t")
+    session.on_key(ord("v"))  # polygon
+    t = state.transform
+    clicks = [(2, 2), (2, 40), (40, 40), (40, 2)]
+    events = [cv2.EVENT_LBUTTONDOWN, cv2.EVENT_LBUTTONDBLCLK] * 2
+    for (r, c), ev in zip(clicks, events, strict=True):
+        vr, vc = t.tile_to_view(r, c)
+        session.on_mouse(ev, int(round(vc)), int(round(vr)), 0)
+        session.on_mouse(cv2.EVENT_LBUTTONUP, int(round(vc)), int(round(vr)), 0)
+    session.raise_pending()
+    assert len(state.polygon_vertices) == 4
+    session.on_key(ord(" "))
+    assert state.changed and state.actions == 5
