@@ -21,7 +21,7 @@ from labeler.tui.figures import (
     agreement_cells,
     contested_cells,
 )
-from labeler.tui.keys import AGREEMENT_KEYS, SUBSCREEN_KEYS, bindings
+from labeler.tui.keys import AGREEMENT_KEYS, HEADER_ICON, SUBSCREEN_KEYS, bindings
 
 __all__ = ["AgreementScreen"]
 
@@ -38,9 +38,9 @@ class AgreementScreen(Screen):
         self.contested = []
 
     def compose(self) -> ComposeResult:
-        yield Header()
+        yield Header(icon=HEADER_ICON)
         yield Label("Agreement between annotators (pooled over shared tiles)", classes="title")
-        yield DataTable(id="pair-table", cursor_type="row", zebra_stripes=True)
+        yield DataTable(id="pair-table", cursor_type="none", zebra_stripes=True)
         yield Static("", id="agreement-note")
         yield Label("Contested tiles, least agreed first (a reviewer settles them)",
                     classes="title")
@@ -52,7 +52,9 @@ class AgreementScreen(Screen):
 
     def on_mount(self) -> None:
         self.query_one("#pair-table", DataTable).add_columns(*AGREEMENT_COLUMNS)
-        self.query_one("#contested-table", DataTable).add_columns(*CONTESTED_COLUMNS)
+        contested = self.query_one("#contested-table", DataTable)
+        contested.add_columns(*CONTESTED_COLUMNS)
+        contested.focus()
         self.query_one("#agreement-note", Static).update("computing ...")
         self.action_update()
 

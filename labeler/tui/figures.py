@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from datetime import UTC
 from collections.abc import Mapping, Sequence
 
 from labeler.agreement import AgreementSummary, landis_koch_band
@@ -77,7 +78,7 @@ def contested_cells(row: QueueRow) -> tuple[str, ...]:
 
 def model_columns(schema: ClassSchema) -> tuple[str, ...]:
     """Column headings of the model table: one validation IoU column per class."""
-    return ("version", "kind", "made", "tiles", *(f"{n} IoU" for n in schema.names), "mIoU")
+    return ("version", "kind", "made (UTC)", "tiles", *(f"{n} IoU" for n in schema.names), "mIoU")
 
 
 def model_cells(version: ModelVersionRecord, *, schema: ClassSchema) -> tuple[str, ...]:
@@ -87,7 +88,12 @@ def model_cells(version: ModelVersionRecord, *, schema: ClassSchema) -> tuple[st
     tiles) show ``"-"``, as do versions without validation figures (cold start).
     """
     iou = version.val_iou or {}
-    made = version.created_at.strftime("%Y-%m-%d %H:%M") if version.created_at else "-"
+    made = "-"
+    if version.created_at is not None:
+        when = version.created_at
+        if when.tzinfo is not None:
+            when = when.astimezone(UTC)
+        made = when.strftime("%Y-%m-%d %H:%M")
     return (
         version.name,
         version.kind,

@@ -6,7 +6,18 @@ from dataclasses import dataclass
 
 from textual.binding import Binding
 
-__all__ = ["Key", "APP_KEYS", "QUEUE_KEYS", "AGREEMENT_KEYS", "SUBSCREEN_KEYS", "bindings"]
+__all__ = [
+    "HEADER_ICON",
+    "Key",
+    "APP_KEYS",
+    "QUEUE_KEYS",
+    "AGREEMENT_KEYS",
+    "SUBSCREEN_KEYS",
+    "bindings",
+]
+
+#: The character at the left of every screen's header (a chequered plot).
+HEADER_ICON = "\u259a"
 
 
 @dataclass(frozen=True)

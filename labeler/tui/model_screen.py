@@ -9,7 +9,7 @@ from textual.widgets import DataTable, Footer, Header, Label, Sparkline, Static
 from textual.worker import get_current_worker
 
 from labeler.tui.figures import miou_series, model_cells, model_columns
-from labeler.tui.keys import SUBSCREEN_KEYS, bindings
+from labeler.tui.keys import HEADER_ICON, SUBSCREEN_KEYS, bindings
 
 __all__ = ["ModelScreen"]
 
@@ -25,7 +25,7 @@ class ModelScreen(Screen):
         self.series: list[float] = []
 
     def compose(self) -> ComposeResult:
-        yield Header()
+        yield Header(icon=HEADER_ICON)
         yield Label("Model versions, oldest first (validation IoU per class)", classes="title")
         yield DataTable(id="model-table", cursor_type="row", zebra_stripes=True)
         yield Label("Validation mIoU over versions", classes="title")

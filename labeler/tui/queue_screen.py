@@ -20,7 +20,7 @@ import labeler.workflow as workflow
 from labeler.imagery.read import open_image
 from labeler.states import STATES
 from labeler.tui.figures import format_iou
-from labeler.tui.keys import QUEUE_KEYS, bindings
+from labeler.tui.keys import HEADER_ICON, QUEUE_KEYS, bindings
 from labeler.tui.rows import NOBODY, QUEUE_COLUMNS, RowFilter, filter_rows, queue_cells
 from labeler.tui.widgets import TilePreview, WorkBar, palette_legend
 from labeler.workflow.annotating import QueueRow
@@ -53,7 +53,7 @@ class QueueScreen(Screen):
         return self.app.project.settings.classes
 
     def compose(self) -> ComposeResult:
-        yield Header()
+        yield Header(icon=HEADER_ICON)
         with Horizontal(id="filters"):
             yield Select(
                 [(s, s) for s in STATES], prompt="every state", id="state-filter"

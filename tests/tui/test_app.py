@@ -5,6 +5,7 @@ import sys
 from types import SimpleNamespace
 
 import pytest
+from textual.widgets import DataTable, Sparkline
 from textual.widgets._toast import Toast
 
 import labeler.workflow as workflow
@@ -70,19 +71,13 @@ async def test_editor_runs_with_a_display_and_refreshes(project, monkeypatch):
         assert app.editing is None
         assert app.screen.loads == loads + 1  # the queue was read again after the editor
         assert app.screen.selected_tile() == tile
-
-
-async def test_editor_failure_shows_its_error(project, monkeypatch):
-    monkeypatch.setenv("DISPLAY", ":99")
-    fake_proposals(project)
-    editor = FakeEditor(returncode=1, stderr="labeler: error: tile 1 is held by bo\n")
-    app = QueueApp(project, annotator="ana", editor_runner=editor)
-    async with app.run_test(size=SIZE) as pilot:
-        await idle(pilot)
+        # a failing editor: its own last error line becomes the notification
+        editor.returncode, editor.stderr = 1, f"labeler: error: tile {tile} is held by bo\n"
         await pilot.press("e")
         await idle(pilot)
         assert app.notices[-1].severity == "error"
-        assert app.notices[-1].message == "editor on tile 1 failed: tile 1 is held by bo"
+        assert app.notices[-1].message == f"editor on tile {tile} failed: tile {tile} is held by bo"
+        assert app.editing is None
 
 
 async def test_worker_error_becomes_a_notification(project):
@@ -175,6 +170,25 @@ async def test_retrain_missing_from_the_workflow(project, monkeypatch):
         await pilot.press("t")
         assert "retraining is not available" in app.notices[-1].message
         assert app.screen.long_work is None
+
+
+async def test_empty_project_screens(project):
+    # no proposals, no pairs, no models: every screen says what is missing
+    app = QueueApp(project, annotator="rhea")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        await pilot.press("g")
+        await idle(pilot)
+        screen = app.screen
+        assert screen.query_one("#pair-table", DataTable).row_count == 0
+        assert "no annotator pair yet" in str(screen.query_one("#agreement-note").render())
+        await pilot.press("s")
+        assert app.notices[-1].message == "no contested tile to settle"
+        await pilot.press("escape", "m")
+        await idle(pilot)
+        caption = str(app.screen.query_one("#miou-caption").render())
+        assert caption == "no model version yet: propose or retrain first"
+        assert app.screen.query_one("#miou-trend", Sparkline).data == []
 
 
 def test_unexpected_error_message(project):

@@ -79,7 +79,7 @@ def _version(vid, *, miou, val_iou, kind="head", name=None):
 
 def test_model_rows():
     assert model_columns(DEFAULT_SCHEMA) == (
-        "version", "kind", "made", "tiles", "soil IoU", "crop IoU", "weed IoU", "symptom IoU",
+        "version", "kind", "made (UTC)", "tiles", "soil IoU", "crop IoU", "weed IoU", "symptom IoU",
         "mIoU",
     )
     v = _version(2, miou=0.6234, val_iou={"soil": 0.9, "crop": 0.8123, "weed": 0.41,

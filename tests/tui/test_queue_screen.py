@@ -109,7 +109,7 @@ async def test_moving_the_cursor_updates_the_preview(project):
         assert f"tile {second}" in caption and "proposal of fake" in caption
 
 
-async def test_accept_from_the_preview_saves_the_proposal(project):
+async def test_accept_from_the_preview_and_park(project):
     fake_proposals(project)
     app = QueueApp(project, annotator="ana")
     async with app.run_test(size=SIZE) as pilot:
@@ -128,18 +128,14 @@ async def test_accept_from_the_preview_saves_the_proposal(project):
         assert str(row[QUEUE_COLUMNS.index("who")]) == "ana"
         assert app.screen.selected_tile() == tile
         assert any("proposal kept as ana's mask" in n.message for n in app.notices)
-
-
-async def test_park_key(project):
-    fake_proposals(project)
-    app = QueueApp(project, annotator="bo")
-    async with app.run_test(size=SIZE) as pilot:
+        # park the next row
+        await pilot.press("down")
         await idle(pilot)
-        tile = app.screen.selected_tile()
+        other = app.screen.selected_tile()
         await pilot.press("p")
         await idle(pilot)
-        assert project.store.tile(tile).state == "parked"
-        row = app.screen.query_one("#queue", DataTable).get_row(str(tile))
+        assert other != tile and project.store.tile(other).state == "parked"
+        row = table.get_row(str(other))
         assert str(row[QUEUE_COLUMNS.index("state")]) == "parked"
 
 
