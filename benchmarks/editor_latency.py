@@ -6,6 +6,8 @@ proposal, then times on :class:`labeler.editor.state.EditorState`:
 * ``brush_render_ms``: one brush segment (radius 6 px, ~10 px long) plus the render of a
   1024 x 1024 view, on a 256 x 256 tile shown at zoom 4 (target <= 16 ms, median);
 * ``brush_render_tile1024_ms``: the same on a 1024 x 1024 tile at zoom 1;
+* ``brush_window_frame_ms``: a brush segment plus the whole window image (view, status
+  strip, text) as :class:`labeler.editor.window.EditorSession` draws it (no ``imshow``);
 * ``refine_ms``: one random-walker refine on a 256 tile with 5 scribbles (target <= 300 ms);
 * ``undo_ms``: undo of one brush stroke (target <= 5 ms), and ``undo_render_ms`` with the
   following render.
@@ -27,7 +29,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
+from labeler.editor.backend import MemoryBackend  # noqa: E402
 from labeler.editor.state import EditorState  # noqa: E402
+from labeler.editor.window import EditorSession  # noqa: E402
 
 REPEATS_BRUSH = 300
 REPEATS_REFINE = 9
@@ -91,6 +95,25 @@ def time_brush_render(size: int) -> tuple[float, float]:
     return _stats(samples)
 
 
+def time_brush_frame() -> tuple[float, float]:
+    """Brush segment plus the whole window image (view, status strip) the window shows."""
+    image, proposal = field_tile(256)
+    state = EditorState(image, proposal, radius=6, active_class=2, view_shape=VIEW)
+    session = EditorSession(state, backend=MemoryBackend(), title="benchmark tile")
+    session.frame()
+    samples = []
+    state.stroke_start((128.0, 20.0))
+    for i in range(REPEATS_BRUSH):
+        point = (128.0 + 40 * np.sin(i / 15), 20.0 + (i % 200))
+        t0 = time.perf_counter()
+        state.stroke_to(point)
+        frame = session.frame()
+        samples.append(time.perf_counter() - t0)
+    state.stroke_end()
+    assert frame.shape[1] == VIEW[1]
+    return _stats(samples)
+
+
 def time_refine() -> tuple[float, float]:
     image, proposal = field_tile(256)
     state = EditorState(image, proposal, radius=2, view_shape=VIEW)
@@ -137,6 +160,7 @@ def time_undo() -> tuple[tuple[float, float], tuple[float, float]]:
 def main() -> int:
     brush, brush_p90 = time_brush_render(256)
     brush_big, brush_big_p90 = time_brush_render(1024)
+    frame_ms, frame_p90 = time_brush_frame()
     refine, refine_p90 = time_refine()
     (undo, undo_p90), (undo_r, undo_r_p90) = time_undo()
     figures = {
@@ -144,6 +168,8 @@ def main() -> int:
         "brush_render_p90_ms": brush_p90,
         "brush_render_tile1024_ms": brush_big,
         "brush_render_tile1024_p90_ms": brush_big_p90,
+        "brush_window_frame_ms": frame_ms,
+        "brush_window_frame_p90_ms": frame_p90,
         "refine_ms": refine,
         "refine_p90_ms": refine_p90,
         "undo_ms": undo,
