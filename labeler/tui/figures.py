@@ -3,8 +3,8 @@
 from __future__ import annotations
 
 import math
-from datetime import UTC
 from collections.abc import Mapping, Sequence
+from datetime import UTC
 
 from labeler.agreement import AgreementSummary, landis_koch_band
 from labeler.classes import ClassSchema
