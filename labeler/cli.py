@@ -241,6 +241,31 @@ def cmd_agreement(args) -> int:
     return 0
 
 
+def cmd_edit(args) -> int:
+    from labeler.project import open_project
+    from labeler.workflow import edit_tile
+
+    if args.tile is None and not args.next:
+        raise LabelerError("edit: name a TILE id or pass --next for the next tile of your queue")
+    if args.tile is not None and args.next:
+        raise LabelerError("edit: give either a TILE id or --next, not both")
+    with open_project(args.dir) as project:
+        tile_id, outcome = edit_tile(project, args.tile, args.annotator, settle=args.settle)
+    what = {
+        "saved": f"saved as {outcome.state} ({outcome.kind})",
+        "discarded": "left without saving",
+        "left": "left without changes",
+        "closed": "window closed",
+        "conflict": "not saved: someone saved first",
+    }
+    print(
+        f"tile {tile_id}: {what.get(outcome.reason, outcome.reason)}; {outcome.actions} actions, "
+        f"{outcome.seconds:.0f} s"
+        + ("; your work is kept as a draft" if outcome.draft_kept else "")
+    )
+    return 0
+
+
 # -- parser -----------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
@@ -331,6 +356,33 @@ def build_parser() -> argparse.ArgumentParser:
         "--seed", type=int, default=None, help="seed for the random strategy (default: the setting)"
     )
     p.set_defaults(func=cmd_pick)
+
+    p = sub.add_parser(
+        "edit",
+        help="open a tile in the mask editor",
+        description="Open a tile in the mask editor window (needs a display). Enter saves: "
+        "'accepted' when the proposal is kept, 'amended' when changed. A draft is autosaved; "
+        "a save after someone else's is refused and kept as a draft.",
+    )
+    p.add_argument("dir", metavar="DIR", help="project folder")
+    p.add_argument(
+        "tile",
+        metavar="TILE",
+        nargs="?",
+        type=int,
+        default=None,
+        help="tile id (see 'labeler pick')",
+    )
+    p.add_argument("--annotator", required=True, metavar="NAME", help="who is annotating")
+    p.add_argument(
+        "--next", action="store_true", help="open the next tile of the queue for this annotator"
+    )
+    p.add_argument(
+        "--settle",
+        action="store_true",
+        help="as a reviewer, decide a contested tile (starts from the STAPLE consensus, shows both masks)",
+    )
+    p.set_defaults(func=cmd_edit)
 
     p = sub.add_parser(
         "agreement",

@@ -75,7 +75,7 @@ def zoo_ring() -> np.ndarray:
 def zoo_two_touching() -> np.ndarray:
     """8 x 8: class 1 in cols 1..3 and class 2 in cols 4..6, rows 1..6; they share an edge.
 
-    24 pixels each.
+    18 pixels each.
     """
     m = np.zeros((8, 8), np.uint8)
     m[1:7, 1:4] = 1

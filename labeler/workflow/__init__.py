@@ -21,6 +21,7 @@ from labeler.workflow.annotating import (
     queue_rows,
     save_tile_mask,
 )
+from labeler.workflow.editing import StoreBackend, edit_tile, open_edit_session
 from labeler.workflow.picking import RankResult, rank_tiles
 
 __all__ = [
@@ -42,4 +43,7 @@ __all__ = [
     "compared_images",
     "contested_tiles",
     "write_agreement",
+    "StoreBackend",
+    "edit_tile",
+    "open_edit_session",
 ]
