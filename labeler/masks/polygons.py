@@ -27,8 +27,12 @@ such a region is returned as a :class:`shapely.MultiPolygon` whose parts touch a
 corner points (valid by the OGC simple-features rules: parts of a multipolygon may touch
 at finitely many points). With ``connectivity=4`` such pixels are separate regions, each
 its own polygon. In both cases a hole may touch its shell, or another hole, at a single
-corner point, which is also valid. Any outline the tracer cannot express as a valid
-polygon goes through :func:`shapely.make_valid`, keeping the polygonal parts only.
+corner point, which is also valid. An 8-connected region whose traced outline is not a
+valid polygon (a ring through a corner twice, or holes whose corner contacts cut the
+interior apart) is outlined part by part: the outline of a 4-connected set of pixels
+has simple rings touching only at corners and a connected interior, so each part is a
+valid polygon (:func:`shapely.make_valid` is only a last resort, keeping the polygonal
+parts).
 
 Simplification
 --------------
@@ -220,8 +224,29 @@ def _assemble(polys: np.ndarray, polygon_region: np.ndarray, n_regions: int) -> 
     return out
 
 
+def _split_at_corners(r0: int, c0: int, pixels: np.ndarray) -> Geometry:
+    """Outline of a region whose pixels meet at corners, as its 4-connected parts.
+
+    The outline of a 4-connected set traced on the doubled grid has simple rings that
+    touch one another at corner points only, and a connected interior: a valid polygon.
+    The parts of an 8-connected region touch at corner points: a valid multipolygon.
+    """
+    n, labels, stats, _ = cv2.connectedComponentsWithStats(
+        pixels.astype(np.uint8), connectivity=4, ltype=cv2.CV_32S
+    )
+    parts = []
+    for k in range(1, n):
+        c, r, w, h = (int(v) for v in stats[k, :4])
+        parts.append((r0 + r, c0 + c, labels[r : r + h, c : c + w] == k))
+    geoms, _ = _trace_regions(parts, split=False)
+    polys: list[shapely.Polygon] = []
+    for g in geoms:
+        polys.extend(shapely.get_parts(g))
+    return polys[0] if len(polys) == 1 else shapely.MultiPolygon(polys)
+
+
 def _trace_regions(
-    crops: Sequence[tuple[int, int, np.ndarray]], *, cut: bool = False
+    crops: Sequence[tuple[int, int, np.ndarray]], *, cut: bool = False, split: bool = True
 ) -> tuple[np.ndarray, np.ndarray | None]:
     """Outlines of regions given as ``(row0, col0, pixels)`` crops.
 
@@ -288,7 +313,10 @@ def _trace_regions(
     bad = suspects[~shapely.is_valid(polys[suspects])]
     exact = _assemble(polys, polygon_region_arr, n_regions)
     for j in np.unique(polygon_region_arr[bad]):
-        exact[j] = _polygonal(shapely.make_valid(exact[j]))
+        r0, c0, crop = crops[j]
+        exact[j] = _split_at_corners(r0, c0, crop) if split else _polygonal(
+            shapely.make_valid(exact[j])
+        )
     if not cut:
         return exact, None
     cut_polys = shapely.polygons(
@@ -342,6 +370,27 @@ def _polygonal(geom: shapely.Geometry) -> Geometry:
     return polys[0] if len(polys) == 1 else shapely.MultiPolygon(polys)
 
 
+#: Multipolygons with more parts are simplified part by part (joint topology-preserving
+#: simplification grows faster than linearly with the number of parts).
+_JOINT_PARTS = 8
+
+
+def _simplify_geometries(geoms: np.ndarray, tolerance: float) -> np.ndarray:
+    """Topology-preserving Douglas-Peucker; many-part multipolygons part by part.
+
+    A multipolygon simplified part by part is kept only if the parts still form a valid
+    multipolygon; otherwise it is returned unchanged.
+    """
+    many = shapely.get_num_geometries(geoms) > _JOINT_PARTS
+    out = np.empty(len(geoms), dtype=object)
+    out[~many] = shapely.simplify(geoms[~many], tolerance, preserve_topology=True)
+    for j in np.flatnonzero(many):
+        parts = shapely.simplify(shapely.get_parts(geoms[j]), tolerance, preserve_topology=True)
+        joined = shapely.MultiPolygon(list(parts))
+        out[j] = joined if shapely.is_valid(joined) else geoms[j]
+    return out
+
+
 def _simplify(
     exact: np.ndarray,
     base: np.ndarray,
@@ -360,7 +409,7 @@ def _simplify(
     for tol in (tolerance, tolerance / 2.0, tolerance / 4.0):
         if len(todo) == 0:
             break
-        simple = shapely.simplify(base[todo], tol, preserve_topology=True)
+        simple = _simplify_geometries(base[todo], tol)
         change = np.abs(shapely.area(simple) - areas[todo])
         ok = (change <= max_change * areas[todo]) & ~shapely.is_empty(simple)
         out[todo[ok]] = simple[ok]

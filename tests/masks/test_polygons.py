@@ -123,6 +123,36 @@ def test_diagonal_connectivity_8_is_one_multipolygon_4_is_six_squares():
     assert all(isinstance(r.geometry, shapely.Polygon) and r.geometry.area == 1 for r in singles)
 
 
+def test_corner_contacts_that_cut_the_interior_give_a_valid_multipolygon():
+    # 5 x 5 of class 1 with four holes around the centre pixel, each touching the next at
+    # a corner: the centre joins the rest only through corners (8-connected), so one
+    # polygon would have a disconnected interior (OGC simple features); the outline is
+    # the frame (25 - 5 = 20 px, a plus-shaped hole) and the centre square (1 px)
+    m = np.ones((5, 5), np.uint8)
+    m[1, 2] = m[2, 1] = m[2, 3] = m[3, 2] = 0
+    (region,) = exact(m, 1, connectivity=8)
+    geom = region.geometry
+    assert isinstance(geom, shapely.MultiPolygon) and geom.is_valid
+    assert sorted(p.area for p in geom.geoms) == [1.0, 20.0]
+    assert region.area_px == 21
+    frame = max(geom.geoms, key=lambda p: p.area)
+    assert len(frame.interiors) == 1 and shapely.Polygon(frame.interiors[0]).area == 5
+    # with 4-connectivity the centre is its own region
+    assert sorted(r.area_px for r in exact(m, 1, connectivity=4)) == [1, 20]
+
+
+def test_noise_outlines_stay_valid_and_exact():
+    # salt-and-pepper: many corner contacts in one 8-connected region
+    m = (np.random.default_rng(8).random((48, 48)) < 0.5).astype(np.uint8)
+    for conn in (4, 8):
+        regions = exact(m, 1, connectivity=conn)
+        assert all(r.geometry.is_valid for r in regions)
+        assert all(r.geometry.area == r.area_px for r in regions)
+        np.testing.assert_array_equal(polygons_to_mask(regions, shape=m.shape, fill=0), m)
+        simplified = mask_to_polygons(m, class_index=1, min_area_px=0, connectivity=conn)
+        assert all(r.geometry.is_valid for r in simplified)
+
+
 def test_checkerboard_regions_match_scikit_image_labelling():
     # oracle: skimage.measure.label (connectivity 1 = 4-neighbours, 2 = 8-neighbours)
     m = zoo_checker((4, 4))
