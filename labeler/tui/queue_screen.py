@@ -42,6 +42,7 @@ class QueueScreen(Screen):
         self.loads = 0  # completed row loads (tests and the status line use it)
         self._preview_tile: int | None = None
         self._annotators: tuple[str, ...] = ()
+        self._saving: set[int] = set()  # tiles with a save or park still in flight
 
     # -- layout -------------------------------------------------------------------------
     @property
@@ -84,6 +85,11 @@ class QueueScreen(Screen):
         table.add_columns(*QUEUE_COLUMNS)
         table.focus()
         self.reload()
+
+    def on_screen_resume(self) -> None:
+        # back from the agreement or model screen: a reviewer may have settled tiles there
+        if self.loads:
+            self.reload()
 
     # -- rows ---------------------------------------------------------------------------
     def selected_tile(self) -> int | None:
@@ -275,9 +281,18 @@ class QueueScreen(Screen):
             self.app.tell("no tile is selected; clear the filters or re-rank", severity="warning")
         return tile
 
+    def _claim(self, tile_id: int) -> bool:
+        """Mark a save of ``tile_id`` as in flight; False (and a word) if one already is."""
+        if tile_id in self._saving:
+            self.app.tell(f"tile {tile_id} is still being saved; wait a moment",
+                          severity="warning")
+            return False
+        self._saving.add(tile_id)
+        return True
+
     def action_accept(self) -> None:
         tile = self._tile_or_say()
-        if tile is not None:
+        if tile is not None and self._claim(tile):
             self._accept(tile)
 
     @work(thread=True, group="saves", exit_on_error=False)
@@ -286,7 +301,7 @@ class QueueScreen(Screen):
         try:
             rec = workflow.accept_tile(self.project, tile_id, who)
         except Exception as exc:  # noqa: BLE001
-            self.app.call_from_thread(self.app.report_error, exc, doing=f"accepting tile {tile_id}")
+            self.app.call_from_thread(self._save_failed, tile_id, exc, f"accepting tile {tile_id}")
             return
         self.app.call_from_thread(
             self._saved, tile_id, f"tile {tile_id}: proposal kept as {who}'s mask "
@@ -295,7 +310,7 @@ class QueueScreen(Screen):
 
     def action_park(self) -> None:
         tile = self._tile_or_say()
-        if tile is not None:
+        if tile is not None and self._claim(tile):
             self._park(tile)
 
     @work(thread=True, group="saves", exit_on_error=False)
@@ -303,13 +318,18 @@ class QueueScreen(Screen):
         try:
             workflow.park_tile(self.project, tile_id, self.app.annotator)
         except Exception as exc:  # noqa: BLE001
-            self.app.call_from_thread(self.app.report_error, exc, doing=f"parking tile {tile_id}")
+            self.app.call_from_thread(self._save_failed, tile_id, exc, f"parking tile {tile_id}")
             return
         self.app.call_from_thread(self._saved, tile_id, f"tile {tile_id} parked")
 
     def _saved(self, tile_id: int, message: str) -> None:
+        self._saving.discard(tile_id)
         self.app.tell(message)
         self.reload(select=tile_id)
+
+    def _save_failed(self, tile_id: int, exc: BaseException, doing: str) -> None:
+        self._saving.discard(tile_id)
+        self.app.report_error(exc, doing=doing)
 
     def action_next(self) -> None:
         self._next()

@@ -2,6 +2,7 @@
 
 import subprocess
 import sys
+import threading
 from types import SimpleNamespace
 
 import pytest
@@ -189,6 +190,33 @@ async def test_empty_project_screens(project):
         caption = str(app.screen.query_one("#miou-caption").render())
         assert caption == "no model version yet: propose or retrain first"
         assert app.screen.query_one("#miou-trend", Sparkline).data == []
+        await pilot.press("escape")
+        await idle(pilot)
+        assert app.screen.loads == 3  # read at start and again on each of the two returns
+
+
+async def test_a_second_accept_waits_for_the_first(project, monkeypatch):
+    fake_proposals(project)
+    release = threading.Event()
+    calls = []
+
+    def slow_accept(project_, tile_id, annotator):
+        calls.append(tile_id)
+        assert release.wait(10)
+        return SimpleNamespace(version=1, state="accepted")
+
+    monkeypatch.setattr(workflow, "accept_tile", slow_accept)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        tile = app.screen.selected_tile()
+        await pilot.press("a", "a")
+        await pilot.pause()
+        assert app.notices[-1].message == f"tile {tile} is still being saved; wait a moment"
+        release.set()
+        await idle(pilot)
+        assert calls == [tile]
+        assert app.notices[-1].message.startswith(f"tile {tile}: proposal kept as ana's mask")
 
 
 def test_unexpected_error_message(project):
