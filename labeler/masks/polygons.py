@@ -23,16 +23,16 @@ points where the outline turns are kept.
 Connectivity and validity
 -------------------------
 ``connectivity=8`` (default) joins pixels that touch only at a corner into one region;
-such a region is returned as a :class:`shapely.MultiPolygon` whose parts touch at those
-corner points (valid by the OGC simple-features rules: parts of a multipolygon may touch
-at finitely many points). With ``connectivity=4`` such pixels are separate regions, each
-its own polygon. In both cases a hole may touch its shell, or another hole, at a single
-corner point, which is also valid. An 8-connected region whose traced outline is not a
-valid polygon (a ring through a corner twice, or holes whose corner contacts cut the
-interior apart) is outlined part by part: the outline of a 4-connected set of pixels
-has simple rings touching only at corners and a connected interior, so each part is a
-valid polygon (:func:`shapely.make_valid` is only a last resort, keeping the polygonal
-parts).
+where its pixels meet only at a corner, the region is a :class:`shapely.MultiPolygon` of
+its 4-connected parts, which touch at those corner points (valid by the OGC
+simple-features rules: parts of a multipolygon may touch at finitely many points). With
+``connectivity=4`` such pixels are separate regions, each its own polygon. In both cases
+a hole may touch its shell, or another hole, at a single corner point, which is also
+valid. An 8-connected region whose traced outline is not a valid polygon (a ring through
+a corner twice, or holes whose corner contacts cut the interior apart) is outlined part
+by part: the outline of a 4-connected set of pixels has simple rings touching only at
+corners and a connected interior, so each part is a valid polygon
+(:func:`shapely.make_valid` is only a last resort, keeping the polygonal parts).
 
 Simplification
 --------------
@@ -90,8 +90,8 @@ class Region:
     class_index : int
         Mask value of the region.
     label : int
-        Region number within its class, 1..n in raster scan order of the region's
-        top-left-most pixel (the numbering of the connected-component labelling).
+        Region number within its class: 1..n over the regions kept (specks dropped), in
+        raster-scan order of each region's first pixel (top row, then leftmost).
     area_px : int
         Number of pixels of the region (the exact, unsimplified area).
     window : Window
@@ -477,10 +477,19 @@ def mask_to_polygons(
     keep = np.flatnonzero(stats[1:, cv2.CC_STAT_AREA] >= min_area_px) + 1
     windows: list[Window] = []
     crops: list[np.ndarray] = []
+    first_pixel: list[int] = []
     for k in keep:
         c0, r0, w, h = (int(v) for v in stats[k, :4])
-        crops.append(labels[r0 : r0 + h, c0 : c0 + w] == k)
+        crop = labels[r0 : r0 + h, c0 : c0 + w] == k
+        crops.append(crop)
         windows.append(Window(r0, c0, h, w))
+        first_pixel.append(r0 * m.shape[1] + c0 + int(np.argmax(crop[0])))
+    # number the regions in raster-scan order of their first pixel (the labelling's own
+    # numbers depend on its algorithm)
+    order = np.argsort(np.asarray(first_pixel, np.int64), kind="stable")
+    keep = keep[order]
+    crops = [crops[j] for j in order]
+    windows = [windows[j] for j in order]
     tol = float(simplify_tolerance_px)
     exact, cut = _trace_regions(
         [(w.row, w.col, c) for w, c in zip(windows, crops, strict=True)], cut=smooth and tol > 0
@@ -492,8 +501,8 @@ def mask_to_polygons(
     else:
         final = exact
     return [
-        Region(final[j], int(class_index), int(k), int(areas[j]), windows[j], crops[j])
-        for j, k in enumerate(keep)
+        Region(final[j], int(class_index), j + 1, int(areas[j]), windows[j], crops[j])
+        for j in range(len(keep))
     ]
 
 

@@ -405,3 +405,14 @@ def test_rasterise_errors():
         polygons_to_mask([(shapely.Point(1, 1), 1)], shape=(4, 4))
     with pytest.raises(ValueError, match=r"polygons_with_classes\[1\]: class index must be"):
         polygons_to_mask([(sq, 1), (sq, -2)], shape=(4, 4))
+
+
+def test_labels_follow_raster_order_of_first_pixels():
+    m = random_blobs(np.random.default_rng(13), shape=(60, 60), n=14)
+    for cls in (1, 2, 3):
+        regions = exact(m, cls)
+        assert [r.label for r in regions] == list(range(1, len(regions) + 1))
+        firsts = [
+            (r.window.row, r.window.col + int(np.argmax(r.pixels[0]))) for r in regions
+        ]
+        assert firsts == sorted(firsts)
