@@ -481,6 +481,7 @@ def image_feature_collection(
     simplify_tolerance_px: float = 0.5,
     min_area_px: float = 8,
     connectivity: int = 8,
+    smooth: bool = False,
     progress: Callable[[int, int], None] | None = None,
 ) -> dict:
     """One image's class mask as a GeoJSON FeatureCollection (see module docstring).
@@ -511,8 +512,9 @@ def image_feature_collection(
         Write pixel coordinates (x = column, y = row of pixel corners) instead of
         longitude/latitude; required when the image has no georeferencing. Emits
         :class:`NotRFC7946Warning`.
-    simplify_tolerance_px, min_area_px, connectivity
-        Passed to :func:`labeler.masks.polygons.mask_to_polygons`.
+    simplify_tolerance_px, min_area_px, connectivity, smooth
+        Passed to :func:`labeler.masks.polygons.mask_to_polygons` (``smooth=True`` cuts
+        staircase corners before simplifying: fewer vertices, not pixel-exact).
     progress : callable(done, total) or None
         Called after each class.
 
@@ -571,6 +573,7 @@ def image_feature_collection(
                 simplify_tolerance_px=simplify_tolerance_px,
                 min_area_px=min_area_px,
                 connectivity=connectivity,
+                smooth=smooth,
             )
         )
         if progress is not None:

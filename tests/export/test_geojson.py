@@ -398,3 +398,18 @@ def test_more_argument_errors():
         collection(zoo_square(), crs=12.5)
     with pytest.raises(ValueError, match="MultiPolygon needs a non-empty list of polygons"):
         geometry_from_geojson({"type": "MultiPolygon", "coordinates": []})
+
+
+def test_smooth_export_has_fewer_vertices_and_keeps_area():
+    m = np.zeros((60, 60), np.uint8)
+    r, c = np.indices(m.shape)
+    m[(r - 30) ** 2 + (c - 30) ** 2 < 400] = 1  # a disc of radius 20 px
+    plain = collection(m)["features"][0]
+    smooth = collection(m, smooth=True)["features"][0]
+    n_plain = len(plain["geometry"]["coordinates"][0])
+    n_smooth = len(smooth["geometry"]["coordinates"][0])
+    assert n_smooth < n_plain
+    # the area guard: within 2 % of the pixel count (0.05 m pixels)
+    assert smooth["properties"]["area_m2"] == pytest.approx(
+        plain["properties"]["area_px"] * 0.05**2, rel=0.02
+    )
