@@ -26,6 +26,8 @@ __all__ = [
     "HALF_BLOCK",
     "fit_pixels",
     "box_downsample",
+    "overlay",
+    "fit_picture",
     "tile_picture",
     "half_block_text",
 ]
@@ -127,6 +129,49 @@ def box_downsample(rgb: np.ndarray, out_shape: tuple[int, int]) -> np.ndarray:
     return ((2 * sums + counts) // (2 * counts)).astype(np.uint8)
 
 
+def overlay(
+    rgb: np.ndarray,
+    mask: np.ndarray | None,
+    *,
+    schema: ClassSchema,
+    opacity: float = 0.45,
+) -> np.ndarray:
+    """The tile with its mask blended over it, at full resolution.
+
+    Parameters
+    ----------
+    rgb : ndarray, shape (H, W, 3), uint8
+        Tile pixels.
+    mask : ndarray, shape (H, W), integer, or None
+        Class indices of the proposal (or a saved mask); classes without a colour (soil)
+        and unlabelled pixels (255) get no overlay. ``None`` gives the bare tile.
+    schema : ClassSchema
+        Palette (DESIGN section 2).
+    opacity : float
+        Weight of the class colour, 0..1 (the project's ``editor.opacity``, 0.45):
+        ``round_half_up((1 - opacity) * pixel + opacity * colour)``, as in the agreement
+        report (:func:`labeler.export.report.overlay_mask`).
+
+    Returns
+    -------
+    ndarray, shape (H, W, 3), uint8
+    """
+    img = _check_rgb(rgb)
+    if mask is None:
+        return img.copy()
+    return overlay_mask(img, mask, schema=schema, opacity=opacity)
+
+
+def fit_picture(picture: np.ndarray, *, cols: int, rows: int) -> np.ndarray:
+    """Shrink ``picture`` (H, W, 3) uint8 to fit ``cols`` x ``rows`` cells.
+
+    Blocks are averaged (:func:`box_downsample`) to the size :func:`fit_pixels` gives,
+    so a thin weed still tints its block.
+    """
+    img = _check_rgb(picture, "picture")
+    return box_downsample(img, fit_pixels(img.shape[:2], cols=cols, rows=rows))
+
+
 def tile_picture(
     rgb: np.ndarray,
     mask: np.ndarray | None = None,
@@ -136,32 +181,14 @@ def tile_picture(
     cols: int,
     rows: int,
 ) -> np.ndarray:
-    """The picture the preview shows: the tile with its mask overlay, fitted to the cells.
-
-    Parameters
-    ----------
-    rgb : ndarray, shape (H, W, 3), uint8
-        Tile pixels.
-    mask : ndarray, shape (H, W), integer, optional
-        Class indices of the proposal (or a saved mask); classes without a colour (soil)
-        and unlabelled pixels (255) get no overlay. ``None`` shows the bare tile.
-    schema : ClassSchema
-        Palette (DESIGN section 2).
-    opacity : float
-        Weight of the class colour, 0..1 (the project's ``editor.opacity``, 0.45).
-    cols, rows : int
-        Cells available; see :func:`fit_pixels`.
+    """What the preview shows: :func:`overlay` then :func:`fit_picture`.
 
     Returns
     -------
     ndarray, shape (h, w, 3), uint8
-        The overlay is blended at full resolution, then blocks are averaged
-        (:func:`box_downsample`), so a thin weed still tints its block.
+        The overlay is blended at full resolution before blocks are averaged.
     """
-    img = _check_rgb(rgb)
-    if mask is not None:
-        img = overlay_mask(img, mask, schema=schema, opacity=opacity)
-    return box_downsample(img, fit_pixels(img.shape[:2], cols=cols, rows=rows))
+    return fit_picture(overlay(rgb, mask, schema=schema, opacity=opacity), cols=cols, rows=rows)
 
 
 def _style(top: np.ndarray, bottom: np.ndarray | None) -> Style:

@@ -21,6 +21,7 @@ from labeler.imagery.read import open_image
 from labeler.states import STATES
 from labeler.tui.figures import format_iou
 from labeler.tui.keys import HEADER_ICON, QUEUE_KEYS, bindings
+from labeler.tui.preview import overlay
 from labeler.tui.rows import NOBODY, QUEUE_COLUMNS, RowFilter, filter_rows, queue_cells
 from labeler.tui.widgets import TilePreview, WorkBar, palette_legend
 from labeler.workflow.annotating import QueueRow
@@ -70,11 +71,7 @@ class QueueScreen(Screen):
             yield DataTable(id="queue", cursor_type="row", zebra_stripes=True)
             with Vertical(id="side"):
                 yield Label("", id="preview-caption")
-                yield TilePreview(
-                    schema=self.schema,
-                    opacity=self.project.settings.editor.opacity,
-                    id="preview",
-                )
+                yield TilePreview(id="preview")
                 yield Static(palette_legend(self.schema), id="legend")
         yield WorkBar(id="work")
         yield Static("", id="status")
@@ -255,18 +252,21 @@ class QueueScreen(Screen):
                 mask = None
                 what = "no proposal yet"
             caption = f"tile {tile_id} · {image.name} r{tile.row} c{tile.col} · {what}"
+            picture = overlay(
+                rgb, mask, schema=self.schema, opacity=self.project.settings.editor.opacity
+            )
         except Exception as exc:  # noqa: BLE001 - shown in the preview, not fatal
             if not worker.is_cancelled:
                 self.app.call_from_thread(self._preview_failed, tile_id, str(exc))
             return
         if not worker.is_cancelled:
-            self.app.call_from_thread(self._preview_ready, tile_id, rgb, mask, caption)
+            self.app.call_from_thread(self._preview_ready, tile_id, picture, caption)
 
-    def _preview_ready(self, tile_id, rgb, mask, caption: str) -> None:
+    def _preview_ready(self, tile_id: int, picture, caption: str) -> None:
         if tile_id != self._preview_tile:
             return
         self.query_one("#preview-caption", Label).update(caption)
-        self.query_one(TilePreview).show(tile_id, rgb, mask)
+        self.query_one(TilePreview).show(tile_id, picture)
 
     def _preview_failed(self, tile_id: int, message: str) -> None:
         if tile_id != self._preview_tile:

@@ -10,7 +10,7 @@ from textual.widget import Widget
 from textual.widgets import Label, ProgressBar
 
 from labeler.classes import ClassSchema
-from labeler.tui.preview import half_block_text, tile_picture
+from labeler.tui.preview import fit_picture, half_block_text
 
 __all__ = ["TilePreview", "WorkBar", "palette_legend"]
 
@@ -33,17 +33,15 @@ def palette_legend(schema: ClassSchema) -> Text:
 class TilePreview(Widget):
     """The selected tile with its mask overlay, drawn with half blocks, fitted to the widget.
 
-    :meth:`show` takes the full-resolution tile; every render fits it to the widget's
-    current content size (so resizing the terminal redraws it sharper or smaller).
+    :meth:`show` takes the full-resolution picture (the tile with the overlay already
+    blended, :func:`labeler.tui.preview.overlay`, done in a worker); every render fits it
+    to the widget's current content size, so resizing the terminal redraws it.
     """
 
-    def __init__(self, *, schema: ClassSchema, opacity: float = 0.45, **kwargs) -> None:
+    def __init__(self, **kwargs) -> None:
         super().__init__(**kwargs)
-        self.schema = schema
-        self.overlay_opacity = float(opacity)
         self.tile_id: int | None = None
         self._rgb: np.ndarray | None = None
-        self._mask: np.ndarray | None = None
         self._message = "no tile selected"
         self._cache: tuple[tuple[int, int], Text] | None = None
 
@@ -56,11 +54,10 @@ class TilePreview(Widget):
         lines = text.plain.split("\n")
         return (2 * len(lines), len(lines[0]))
 
-    def show(self, tile_id: int, rgb: np.ndarray, mask: np.ndarray | None) -> None:
-        """Show tile ``tile_id``: pixels (H, W, 3) uint8 and its mask (H, W) or None."""
+    def show(self, tile_id: int, picture: np.ndarray) -> None:
+        """Show tile ``tile_id``: its picture (H, W, 3) uint8 with the overlay blended in."""
         self.tile_id = tile_id
-        self._rgb = rgb
-        self._mask = mask
+        self._rgb = picture
         self._cache = None
         self.refresh()
 
@@ -68,7 +65,6 @@ class TilePreview(Widget):
         """Show a line of text instead of a picture (no tile, or the tile cannot be read)."""
         self.tile_id = tile_id
         self._rgb = None
-        self._mask = None
         self._message = message
         self._cache = None
         self.refresh()
@@ -79,15 +75,7 @@ class TilePreview(Widget):
         size = (max(1, self.content_size.width), max(1, self.content_size.height))
         if self._cache is not None and self._cache[0] == size:
             return self._cache[1]
-        picture = tile_picture(
-            self._rgb,
-            self._mask,
-            schema=self.schema,
-            opacity=self.overlay_opacity,
-            cols=size[0],
-            rows=size[1],
-        )
-        text = half_block_text(picture)
+        text = half_block_text(fit_picture(self._rgb, cols=size[0], rows=size[1]))
         self._cache = (size, text)
         return text
 

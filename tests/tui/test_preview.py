@@ -13,8 +13,10 @@ from labeler.classes import DEFAULT_SCHEMA
 from labeler.tui.preview import (
     HALF_BLOCK,
     box_downsample,
+    fit_picture,
     fit_pixels,
     half_block_text,
+    overlay,
     tile_picture,
 )
 
@@ -168,3 +170,14 @@ def test_tile_picture_without_mask_is_the_shrunk_tile():
     rgb = np.random.default_rng(5).integers(0, 256, (40, 60, 3), dtype=np.uint8)
     pic = tile_picture(rgb, None, schema=DEFAULT_SCHEMA, cols=30, rows=10)
     np.testing.assert_array_equal(pic, _downsample_loop(rgb, (20, 30)))
+
+
+def test_overlay_without_mask_is_a_copy_and_fit_picture_checks_input():
+    rgb = np.random.default_rng(8).integers(0, 256, (6, 4, 3), dtype=np.uint8)
+    out = overlay(rgb, None, schema=DEFAULT_SCHEMA)
+    np.testing.assert_array_equal(out, rgb)
+    assert out is not rgb and not np.shares_memory(out, rgb)
+    with pytest.raises(ValueError, match="picture: expected a uint8"):
+        fit_picture(np.zeros((4, 4), np.uint8), cols=2, rows=2)
+    with pytest.raises(ValueError, match="mask: expected shape \\(6, 4\\) like rgb"):
+        overlay(rgb, np.zeros((5, 4), np.uint8), schema=DEFAULT_SCHEMA)
