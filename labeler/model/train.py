@@ -61,8 +61,11 @@ __all__ = [
     "RandomQuarterTurn",
     "dihedral",
     "IMAGE_MODE_MAX_TILES",
+    "MIN_STEPS_PER_EPOCH",
 ]
 
+#: Fewest optimiser steps per epoch: small label sets are passed over several times.
+MIN_STEPS_PER_EPOCH = 16
 #: Largest training set for which ``mode="auto"`` augments images through the encoder.
 IMAGE_MODE_MAX_TILES = 24
 
@@ -197,13 +200,18 @@ def _to_channels(masks: Sequence[np.ndarray], class_indices: Sequence[int]) -> l
 
 
 def _batches(
-    groups: dict[tuple, list[int]], batch_size: int, rng: np.random.Generator
+    groups: dict[tuple, list[int]], batch_size: int, rng: np.random.Generator, *, min_steps: int = 1
 ) -> list[list[int]]:
-    out = []
-    for members in groups.values():
-        order = rng.permutation(members).tolist()
-        out += [order[i : i + batch_size] for i in range(0, len(order), batch_size)]
-    return [out[i] for i in rng.permutation(len(out))]
+    """Shuffled batches of equal-shape tiles; whole passes repeated to reach ``min_steps``."""
+    out: list[list[int]] = []
+    while True:
+        one = []
+        for members in groups.values():
+            order = rng.permutation(members).tolist()
+            one += [order[i : i + batch_size] for i in range(0, len(order), batch_size)]
+        out += [one[i] for i in rng.permutation(len(one))]
+        if len(out) >= min_steps or not one:
+            return out
 
 
 def _loss(logits: torch.Tensor, target: torch.Tensor, weight: torch.Tensor) -> torch.Tensor | None:
@@ -232,6 +240,7 @@ def train_head(
     lr: float = 3e-3,
     weight_decay: float = 1e-4,
     image_mode_max_tiles: int = IMAGE_MODE_MAX_TILES,
+    min_steps_per_epoch: int = MIN_STEPS_PER_EPOCH,
     progress: ProgressFn | None = None,
 ) -> TrainResult:
     """Train a proposal head on labelled tiles.
@@ -262,6 +271,10 @@ def train_head(
         AdamW options.
     image_mode_max_tiles : int
         ``"auto"`` picks ``"images"`` up to this many training tiles.
+    min_steps_per_epoch : int
+        An epoch repeats whole shuffled passes over the training tiles until it has
+        made at least this many optimiser steps (with fresh augmentations), so that small
+        label sets train, and early stopping counts, in meaningful amounts.
     progress : callable, optional
         ``progress(epoch, n_epochs, metrics)`` after each epoch (metrics as in history).
 
@@ -285,6 +298,8 @@ def train_head(
         )
     if mode not in ("auto", "features", "images"):
         raise ValueError(f"mode: expected 'auto', 'features' or 'images', got {mode!r}")
+    if min_steps_per_epoch < 1:
+        raise ValueError(f"min_steps_per_epoch: expected at least 1, got {min_steps_per_epoch}")
     if patience < 1:
         raise ValueError(f"patience: expected at least 1 epoch, got {patience}")
     n = len(masks)
@@ -356,7 +371,7 @@ def train_head(
         for epoch in range(1, s.epochs + 1):
             head.train()
             total, seen = 0.0, 0
-            for batch in _batches(groups, s.batch_size, rng):
+            for batch in _batches(groups, s.batch_size, rng, min_steps=min_steps_per_epoch):
                 if mode == "features":
                     levels, target = _feature_batch(batch, features, channel_masks, shape_of, rng)
                 else:
@@ -445,7 +460,9 @@ def _image_batch(
         tgs.append(mk.as_subclass(torch.Tensor))
     x = torch.stack(ims).to(torch.float32).contiguous(memory_format=torch.channels_last)
     with torch.no_grad():
-        levels = [t.contiguous(memory_format=torch.channels_last) for t in encoder(x)]
+        levels = [
+            t.to(torch.float32).contiguous(memory_format=torch.channels_last) for t in encoder(x)
+        ]
     return levels, torch.stack(tgs)
 
 

@@ -210,3 +210,18 @@ def test_to_input_rejects_bad_images(bad, match):
 def test_encode_tiles_rejects_zero_batch(encoder):
     with pytest.raises(ValueError, match="batch_size: expected at least 1, got 0"):
         encode_tiles(encoder, [], batch_size=0)
+
+
+def test_bfloat16_encoder_still_classifies(photos):
+    fast = load_encoder(precision="bfloat16")
+    assert fast.version.endswith("-r1-bf16")
+    probs = fast.classify(photos).softmax(dim=1).numpy()
+    assert probs[0].argmax() in CAT_CLASSES and probs[0, list(CAT_CLASSES)].sum() > 0.6
+    assert probs[1].argmax() in COFFEE_CLASSES and probs[1, 967] > 0.6
+    feats = encode_tiles(fast, [photos[0]])
+    assert all(f.dtype == np.float16 for f in feats[0])
+
+
+def test_unknown_precision_is_refused():
+    with pytest.raises(ValueError, match="precision: expected 'float32' or 'bfloat16', got 'int4'"):
+        load_encoder(precision="int4")

@@ -10,6 +10,7 @@ from labeler.errors import InputError
 from labeler.model.encoder import encode_tiles
 from labeler.model.train import (
     RandomQuarterTurn,
+    _batches,
     _loss,
     class_weights,
     dihedral,
@@ -21,6 +22,12 @@ from tests.common import zoo_four_classes
 from tests.model.conftest import disk_tiles
 
 TINY = ModelSettings(epochs=2, batch_size=2, min_labelled_tiles=3, val_share=0.34, seed=0)
+
+
+def fit(*args, **kwargs):
+    """train_head with one pass per epoch (min_steps_per_epoch=1) to keep tiny tests fast."""
+    kwargs.setdefault("min_steps_per_epoch", 1)
+    return train_head(*args, **kwargs)
 
 
 @pytest.fixture(scope="module")
@@ -60,6 +67,19 @@ def test_partial_cross_entropy_ignores_unlabelled_pixels():
             den += float(w[y])
     assert float(_loss(logits, target, w)) == pytest.approx(num / den, rel=1e-12)
     assert _loss(logits, torch.full_like(target, 255), w) is None
+
+
+def test_batches_repeat_whole_passes_up_to_min_steps():
+    rng = np.random.default_rng(0)
+    groups = {(64, 64): [0, 1, 2], (32, 32): [3, 4]}
+    out = _batches(groups, 2, rng, min_steps=7)
+    assert len(out) == 9  # passes of 3 batches (2 of the 64 px tiles, 1 of the 32 px) until >= 7
+    for k in (0, 3, 6):
+        one_pass = sorted(i for b in out[k : k + 3] for i in b)
+        assert one_pass == [0, 1, 2, 3, 4]
+    for b in out:  # a batch never mixes tile sizes
+        assert len({(64, 64) if i < 3 else (32, 32) for i in b}) == 1
+    assert len(_batches(groups, 8, rng)) == 2
 
 
 def test_dihedral_matches_numpy():
@@ -112,13 +132,13 @@ def test_too_few_labelled_tiles_is_a_clear_error(tiles):
     with pytest.raises(
         InputError, match=r"at least 3 labelled tiles \(model.min_labelled_tiles\), got 2"
     ):
-        train_head(empty, class_indices=(0, 1), features=feats, settings=TINY)
+        fit(empty, class_indices=(0, 1), features=feats, settings=TINY)
 
 
 def test_training_on_features_returns_head_and_val_iou(tiles):
     images, masks, feats = tiles
     seen = []
-    res = train_head(
+    res = fit(
         masks,
         class_indices=(0, 1, 2),
         features=feats,
@@ -141,15 +161,15 @@ def test_scribbles_train_and_auto_picks_image_mode(tiles, encoder):
         s = np.full_like(m, 255)
         s[::4] = m[::4]
         scribbles.append(s)
-    res = train_head(scribbles, class_indices=(0, 1), images=images, encoder=encoder, settings=TINY)
+    res = fit(scribbles, class_indices=(0, 1), images=images, encoder=encoder, settings=TINY)
     assert res.mode == "images"
     assert np.isfinite(res.history[-1]["train_loss"])
 
 
 def test_training_is_repeatable(tiles):
     images, masks, feats = tiles
-    a = train_head(masks, class_indices=(0, 1), features=feats, settings=TINY, mode="features")
-    b = train_head(masks, class_indices=(0, 1), features=feats, settings=TINY, mode="features")
+    a = fit(masks, class_indices=(0, 1), features=feats, settings=TINY, mode="features")
+    b = fit(masks, class_indices=(0, 1), features=feats, settings=TINY, mode="features")
     for (ka, va), (kb, vb) in zip(
         a.head.state_dict().items(), b.head.state_dict().items(), strict=True
     ):
@@ -160,9 +180,7 @@ def test_training_is_repeatable(tiles):
 def test_early_stopping_keeps_the_best_epoch(tiles):
     images, masks, feats = tiles
     s = ModelSettings(epochs=12, batch_size=2, val_share=0.34, seed=0)
-    res = train_head(
-        masks, class_indices=(0, 1), features=feats, settings=s, mode="features", patience=1
-    )
+    res = fit(masks, class_indices=(0, 1), features=feats, settings=s, mode="features", patience=1)
     losses = [h["val_loss"] for h in res.history]
     assert res.best_epoch == int(np.argmin(losses)) + 1
     # stopped one epoch after the first epoch that did not improve, unless it ran out
@@ -172,7 +190,7 @@ def test_early_stopping_keeps_the_best_epoch(tiles):
 def test_learns_the_invented_disk_scene(tiles):
     images, masks, feats = tiles
     s = ModelSettings(epochs=15, batch_size=2, val_share=0.34, seed=0)
-    res = train_head(masks, class_indices=(0, 1), features=feats, settings=s, mode="features")
+    res = fit(masks, class_indices=(0, 1), features=feats, settings=s, mode="features")
     assert res.val_iou[1] > 0.5  # green disks on brown soil: an easy scene
 
 
@@ -182,6 +200,7 @@ def test_learns_the_invented_disk_scene(tiles):
         ({"mode": "sideways"}, "mode: expected 'auto', 'features' or 'images', got 'sideways'"),
         ({"mode": "images"}, "mode: 'images' needs both images and encoder"),
         ({"patience": 0}, "patience: expected at least 1 epoch, got 0"),
+        ({"min_steps_per_epoch": 0}, "min_steps_per_epoch: expected at least 1, got 0"),
         ({"class_indices": (0, 2)}, r"masks: tile 0 holds values \[1\] that are not head classes"),
     ],
 )
@@ -189,7 +208,7 @@ def test_bad_options_are_refused(tiles, kwargs, match):
     images, masks, feats = tiles
     args = {"class_indices": (0, 1), "features": feats, "settings": TINY} | kwargs
     with pytest.raises(ValueError, match=match):
-        train_head(masks, **args)
+        fit(masks, **args)
 
 
 def test_features_of_other_tiles_are_refused(tiles):
@@ -199,4 +218,4 @@ def test_features_of_other_tiles_are_refused(tiles):
         ValueError,
         match=r"features: tile 0 has stride-4 features 16 x 16 but its mask is \(128, 128\)",
     ):
-        train_head(big, class_indices=(0, 1), features=feats, settings=TINY, mode="features")
+        fit(big, class_indices=(0, 1), features=feats, settings=TINY, mode="features")
