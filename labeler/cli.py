@@ -266,6 +266,71 @@ def cmd_edit(args) -> int:
     return 0
 
 
+def cmd_export(args) -> int:
+    from labeler.project import open_project
+    from labeler.workflow import export_project
+
+    states = [s.strip() for s in args.states.split(",") if s.strip()]
+    with open_project(args.dir) as project, _Bar("exporting") as bar:
+        out = Path(args.out) if args.out else Path("exports") / project.root.resolve().name
+        result = export_project(
+            project,
+            out,
+            formats=args.format,
+            states=states,
+            proposals=args.proposals,
+            pixel_coordinates=args.pixel_coordinates,
+            progress=bar,
+        )
+    if args.pixel_coordinates:
+        print(
+            "warning: --pixel-coordinates writes pixel positions; those files are NOT RFC 7946 GeoJSON"
+        )
+    print(
+        f"exported {result.images} images ({result.tiles_exported} tiles, "
+        f"{result.tiles_from_proposals} filled from model proposals) to {result.folder}"
+    )
+    if result.geojson:
+        print(f"  GeoJSON: {len(result.geojson)} files, {result.features} features")
+    if result.masks:
+        print(f"  PNG class masks: {len(result.masks)}; manifest: {result.manifest}")
+    if result.skipped:
+        print(
+            f"  nothing to export for: {', '.join(result.skipped)} (no tile in states {', '.join(states)})"
+        )
+    if result.tiles_from_proposals:
+        print("  note: proposal-filled areas are model output, not checked by an annotator")
+    return 0
+
+
+def cmd_import(args) -> int:
+    from labeler.project import open_project
+    from labeler.workflow import import_masks
+
+    with open_project(args.dir) as project, _Bar("importing") as bar:
+        result = import_masks(
+            project,
+            args.files,
+            annotator=args.annotator,
+            image=args.image,
+            fill=args.fill,
+            progress=bar,
+        )
+    for path, name in result.files:
+        print(f"{path} -> image {name}")
+    print(
+        f"imported {result.full_tiles} full tiles and {result.weak_tiles} partial tiles (weak labels) "
+        f"as {args.annotator}; {result.empty_tiles} tiles not covered"
+    )
+    return 0
+
+
+def cmd_queue(args) -> int:
+    from labeler.tui import run_queue
+
+    return int(run_queue(args.dir, annotator=args.annotator) or 0)
+
+
 # -- parser -----------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
@@ -383,6 +448,72 @@ def build_parser() -> argparse.ArgumentParser:
         help="as a reviewer, decide a contested tile (starts from the STAPLE consensus, shows both masks)",
     )
     p.set_defaults(func=cmd_edit)
+
+    p = sub.add_parser(
+        "export",
+        help="write GeoJSON polygons, PNG class masks and a manifest",
+        description="Export saved masks as RFC 7946 GeoJSON (WGS 84 longitude/latitude; one file per "
+        "image and one for the project) and as PNG class masks with colour previews and a JSON-lines "
+        "manifest for training. " + EPILOG,
+    )
+    p.add_argument("dir", metavar="DIR", help="project folder")
+    p.add_argument(
+        "--format",
+        choices=("geojson", "masks", "all"),
+        default="all",
+        help="what to write (default: all)",
+    )
+    p.add_argument(
+        "--states",
+        default="accepted,amended,settled",
+        help="tile states whose masks are exported (default: %(default)s)",
+    )
+    p.add_argument(
+        "--proposals",
+        action="store_true",
+        help="fill tiles without a saved mask with the newest model proposal (marked as such)",
+    )
+    p.add_argument(
+        "--pixel-coordinates",
+        action="store_true",
+        help="allow images without georeferencing: pixel positions, NOT RFC 7946 GeoJSON",
+    )
+    p.add_argument(
+        "--out",
+        default=None,
+        metavar="FOLDER",
+        help="output folder (default: exports/<project name>)",
+    )
+    p.set_defaults(func=cmd_export)
+
+    p = sub.add_parser(
+        "import",
+        help="read PNG class masks or GeoJSON polygons as annotations",
+        description="Import masks made elsewhere as annotations of a named annotator. A mask file is "
+        "matched to its image by name (<image>.png, <image>_mask.png, <image>_annotation.png, "
+        "<image>.geojson) or by --image. Nothing is imported when any file has a problem.",
+    )
+    p.add_argument("dir", metavar="DIR", help="project folder")
+    p.add_argument("files", metavar="FILE", nargs="+", help="PNG or GeoJSON mask files")
+    p.add_argument("--annotator", required=True, metavar="NAME", help="whose masks these are")
+    p.add_argument("--image", default=None, metavar="NAME", help="the image of a single mask file")
+    p.add_argument(
+        "--fill",
+        choices=("unlabelled", "soil"),
+        default="unlabelled",
+        help="GeoJSON: pixels outside every polygon are unlabelled (default) or soil",
+    )
+    p.set_defaults(func=cmd_import)
+
+    p = sub.add_parser(
+        "queue",
+        help="the terminal queue: work through tiles, watch agreement and models",
+        description="Open the terminal queue: tiles in picker order with a colour preview; accept, "
+        "park, open the editor, re-rank and retrain from the keyboard (press ? for the keys).",
+    )
+    p.add_argument("dir", metavar="DIR", help="project folder")
+    p.add_argument("--annotator", required=True, metavar="NAME", help="who is annotating")
+    p.set_defaults(func=cmd_queue)
 
     p = sub.add_parser(
         "agreement",

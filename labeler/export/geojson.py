@@ -65,6 +65,7 @@ from labeler.errors import InputError
 from labeler.imagery.tiling import Window, owner_map
 from labeler.imagery.write import atomic_write_bytes
 from labeler.masks.polygons import Region, mask_to_polygons
+from labeler.states import STATES
 
 __all__ = [
     "COORDINATES_MEMBER",
@@ -89,9 +90,8 @@ COORDINATES_MEMBER = "labeler:coordinates"
 #: WGS 84 longitude/latitude (rasterio keeps the longitude-first order).
 WGS84 = CRS.from_epsg(4326)
 #: Tile states of DESIGN section 3, in life-cycle order.
-TILE_STATES = (
-    "unseen", "proposed", "held", "accepted", "amended", "contested", "settled", "parked"
-)
+#: Tile states, in life-cycle order (DESIGN section 3; defined in labeler.states).
+TILE_STATES = STATES
 _SOURCES = ("annotation", "proposal")
 #: Metres per degree of latitude, upper bound (at the poles; 110.6 km at the equator).
 _METRES_PER_DEGREE = 111_700.0

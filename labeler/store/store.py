@@ -57,7 +57,7 @@ from labeler.store.records import (
     npy_bytes,
 )
 
-__all__ = ["Store", "NewImage", "NewProposal", "now"]
+__all__ = ["Store", "NewImage", "NewAnnotation", "NewProposal", "now"]
 
 _SAVE_RETRIES = 8
 
@@ -87,6 +87,23 @@ class NewImage:
     crs: str | None = None
     transform: tuple[float, ...] | None = None
     georef_source: str | None = None
+
+
+@dataclass(frozen=True)
+class NewAnnotation:
+    """One annotation to save (see :meth:`Store.save_annotation` for the fields)."""
+
+    tile_id: int
+    annotator: str
+    mask: np.ndarray
+    parent_version: int | None
+    kind: str = "full"
+    state: str = "amended"
+    seconds: float = 0.0
+    actions: int = 0
+    source: str = "editor"
+    proposal_id: int | None = None
+    tile_state: str | None = None
 
 
 @dataclass(frozen=True)
@@ -596,6 +613,125 @@ class Store:
             q = q.where(t.annotations.c.annotator_id == annotator_id)
         return conn.execute(q).scalar()
 
+    def _prepare(self, item: NewAnnotation) -> tuple[TileRecord, bytes, str | None]:
+        if item.kind not in ANNOTATION_KINDS:
+            raise ValueError(f"kind: expected one of {ANNOTATION_KINDS}, got {item.kind!r}")
+        if item.state not in ANNOTATION_STATES:
+            raise ValueError(f"state: expected one of {ANNOTATION_STATES}, got {item.state!r}")
+        tile = self.tile(item.tile_id)
+        mask = np.asarray(item.mask)
+        if mask.shape != tile.shape:
+            raise ValueError(
+                f"mask: expected shape {tile.shape} of tile {item.tile_id}, got {mask.shape}; "
+                "save a mask of the whole tile"
+            )
+        self.schema.check_mask(mask, name="mask", allow_unlabelled=True)
+        data = png_bytes(mask.astype(np.uint8, copy=False))
+        tile_state = item.tile_state
+        if tile_state is None and item.kind == "full":
+            tile_state = {"imported": AMENDED, "weak": None}.get(item.state, item.state)
+        return tile, data, tile_state
+
+    def _insert_annotation(
+        self, conn, item: NewAnnotation, tile: TileRecord, data: bytes, tile_state: str | None
+    ) -> int:
+        tile_id = item.tile_id
+        parent_version = item.parent_version
+        row = conn.execute(sa.select(t.tiles).where(t.tiles.c.id == tile_id)).one()
+        aid = self._annotator_id(conn, item.annotator)
+        head = self._lineage_head(conn, row, aid, settling=item.state == SETTLED)
+        if head != parent_version:
+            theirs = None
+            if head is not None:
+                other = conn.execute(
+                    self._annotation_query().where(
+                        (t.annotations.c.tile_id == tile_id) & (t.annotations.c.version == head)
+                    )
+                ).first()
+                theirs = None if other is None else self._annotation_row(other)
+            raise ConflictError(
+                f"tile {tile_id}: this mask was based on version {parent_version}, "
+                f"but version {head} was saved"
+                + (f" by {theirs.annotator}" if theirs is not None else "")
+                + " in the meantime; nothing was overwritten. Reopen the tile to "
+                "see both masks.",
+                tile_id=tile_id,
+                parent_version=parent_version,
+                current_version=head,
+                theirs=theirs,
+            )
+        top = conn.execute(
+            sa.select(sa.func.max(t.annotations.c.version)).where(
+                t.annotations.c.tile_id == tile_id
+            )
+        ).scalar()
+        version = (top or 0) + 1
+        stamp = now()
+        res = conn.execute(
+            t.annotations.insert().values(
+                tile_id=tile_id,
+                version=version,
+                parent_version=parent_version,
+                annotator_id=aid,
+                kind=item.kind,
+                state=item.state,
+                mask_png=data,
+                height=tile.height,
+                width=tile.width,
+                seconds=float(item.seconds),
+                actions=int(item.actions),
+                proposal_id=item.proposal_id,
+                source=item.source,
+                created_at=stamp,
+            )
+        )
+        values = {"updated_at": stamp}
+        if tile_state is not None:
+            values["state"] = tile_state
+        if row.held_by == aid:
+            values["held_by"] = None
+        conn.execute(t.tiles.update().where(t.tiles.c.id == tile_id).values(**values))
+        self._assign(conn, tile_id, aid)
+        conn.execute(
+            t.drafts.delete().where(
+                (t.drafts.c.tile_id == tile_id) & (t.drafts.c.annotator_id == aid)
+            )
+        )
+        self._event(
+            conn,
+            "save",
+            tile_id=tile_id,
+            annotator_id=aid,
+            detail={
+                "version": version,
+                "parent": parent_version,
+                "kind": item.kind,
+                "state": item.state,
+                "from": row.state,
+                "to": tile_state or row.state,
+                "source": item.source,
+            },
+        )
+        return int(res.inserted_primary_key[0])
+
+    def _write_annotations(self, items: Sequence[NewAnnotation]) -> list[AnnotationRecord]:
+        prepared = [(item, *self._prepare(item)) for item in items]
+        for attempt in range(_SAVE_RETRIES):
+            try:
+                with self._write() as conn:
+                    ids = [self._insert_annotation(conn, *p) for p in prepared]
+                    rows = conn.execute(
+                        self._annotation_query().where(t.annotations.c.id.in_(ids))
+                    ).all()
+                by_id = {r.id: self._annotation_row(r) for r in rows}
+                return [by_id[i] for i in ids]
+            except IntegrityError:
+                # another writer took a version number between our read and insert;
+                # re-read: if our parent is now stale the lineage check raises ConflictError
+                if attempt == _SAVE_RETRIES - 1:
+                    raise
+        raise AssertionError("unreachable")  # pragma: no cover
+
     def save_annotation(
         self,
         tile_id: int,
@@ -648,113 +784,30 @@ class Store:
         ValueError
             If the mask has the wrong shape, dtype or values.
         """
-        if kind not in ANNOTATION_KINDS:
-            raise ValueError(f"kind: expected one of {ANNOTATION_KINDS}, got {kind!r}")
-        if state not in ANNOTATION_STATES:
-            raise ValueError(f"state: expected one of {ANNOTATION_STATES}, got {state!r}")
-        tile = self.tile(tile_id)
-        mask = np.asarray(mask)
-        if mask.shape != tile.shape:
-            raise ValueError(
-                f"mask: expected shape {tile.shape} of tile {tile_id}, got {mask.shape}; "
-                "save a mask of the whole tile"
-            )
-        self.schema.check_mask(mask, name="mask", allow_unlabelled=True)
-        data = png_bytes(mask.astype(np.uint8, copy=False))
-        if tile_state is None:
-            tile_state = {
-                "full": {"imported": AMENDED, "weak": None}.get(state, state),
-                "scribble": None,
-            }[kind]
-        for attempt in range(_SAVE_RETRIES):
-            try:
-                with self._write() as conn:
-                    row = conn.execute(sa.select(t.tiles).where(t.tiles.c.id == tile_id)).one()
-                    aid = self._annotator_id(conn, annotator)
-                    head = self._lineage_head(conn, row, aid, settling=state == SETTLED)
-                    if head != parent_version:
-                        theirs = None
-                        if head is not None:
-                            other = conn.execute(
-                                self._annotation_query().where(
-                                    (t.annotations.c.tile_id == tile_id)
-                                    & (t.annotations.c.version == head)
-                                )
-                            ).first()
-                            theirs = None if other is None else self._annotation_row(other)
-                        raise ConflictError(
-                            f"tile {tile_id}: this mask was based on version {parent_version}, "
-                            f"but version {head} was saved"
-                            + (f" by {theirs.annotator}" if theirs is not None else "")
-                            + " in the meantime; nothing was overwritten. Reopen the tile to "
-                            "see both masks.",
-                            tile_id=tile_id,
-                            parent_version=parent_version,
-                            current_version=head,
-                            theirs=theirs,
-                        )
-                    top = conn.execute(
-                        sa.select(sa.func.max(t.annotations.c.version)).where(
-                            t.annotations.c.tile_id == tile_id
-                        )
-                    ).scalar()
-                    version = (top or 0) + 1
-                    stamp = now()
-                    res = conn.execute(
-                        t.annotations.insert().values(
-                            tile_id=tile_id,
-                            version=version,
-                            parent_version=parent_version,
-                            annotator_id=aid,
-                            kind=kind,
-                            state=state,
-                            mask_png=data,
-                            height=tile.height,
-                            width=tile.width,
-                            seconds=float(seconds),
-                            actions=int(actions),
-                            proposal_id=proposal_id,
-                            source=source,
-                            created_at=stamp,
-                        )
-                    )
-                    values = {"updated_at": stamp}
-                    if tile_state is not None:
-                        values["state"] = tile_state
-                    if row.held_by == aid:
-                        values["held_by"] = None
-                    conn.execute(t.tiles.update().where(t.tiles.c.id == tile_id).values(**values))
-                    self._assign(conn, tile_id, aid)
-                    conn.execute(
-                        t.drafts.delete().where(
-                            (t.drafts.c.tile_id == tile_id) & (t.drafts.c.annotator_id == aid)
-                        )
-                    )
-                    self._event(
-                        conn,
-                        "save",
-                        tile_id=tile_id,
-                        annotator_id=aid,
-                        detail={
-                            "version": version,
-                            "parent": parent_version,
-                            "kind": kind,
-                            "state": state,
-                            "from": row.state,
-                            "to": tile_state or row.state,
-                        },
-                    )
-                    new_id = int(res.inserted_primary_key[0])
-                    r = conn.execute(
-                        self._annotation_query().where(t.annotations.c.id == new_id)
-                    ).one()
-                    return self._annotation_row(r)
-            except IntegrityError:
-                # another writer took this version number between our read and insert;
-                # re-read: if our parent is now stale the lineage check raises ConflictError
-                if attempt == _SAVE_RETRIES - 1:
-                    raise
-        raise AssertionError("unreachable")  # pragma: no cover
+        item = NewAnnotation(
+            tile_id=tile_id,
+            annotator=annotator,
+            mask=mask,
+            parent_version=parent_version,
+            kind=kind,
+            state=state,
+            seconds=seconds,
+            actions=actions,
+            source=source,
+            proposal_id=proposal_id,
+            tile_state=tile_state,
+        )
+        return self._write_annotations([item])[0]
+
+    def save_annotations(self, items: Sequence[NewAnnotation]) -> list[AnnotationRecord]:
+        """Save several annotations in ONE transaction: all land or none does.
+
+        Used by imports, where a file covering many tiles must not land half-way.
+        Every item is checked as in :meth:`save_annotation` before anything is written.
+        """
+        if not items:
+            return []
+        return self._write_annotations(items)
 
     def annotation_history(self, tile_id: int) -> list[AnnotationRecord]:
         """Every saved version of a tile, oldest first."""

@@ -22,6 +22,7 @@ from labeler.workflow.annotating import (
     save_tile_mask,
 )
 from labeler.workflow.editing import StoreBackend, edit_tile, open_edit_session
+from labeler.workflow.exporting import ExportResult, ImportResult, export_project, import_masks
 from labeler.workflow.picking import RankResult, rank_tiles
 
 __all__ = [
@@ -46,4 +47,8 @@ __all__ = [
     "StoreBackend",
     "edit_tile",
     "open_edit_session",
+    "ExportResult",
+    "ImportResult",
+    "export_project",
+    "import_masks",
 ]
