@@ -4,8 +4,8 @@ import json
 
 import numpy as np
 import pytest
-from scipy import ndimage
 from PIL import Image
+from scipy import ndimage
 from shapely.geometry import shape
 
 from labeler.cli import main
