@@ -331,6 +331,49 @@ def cmd_queue(args) -> int:
     return int(run_queue(args.dir, annotator=args.annotator) or 0)
 
 
+def cmd_propose(args) -> int:
+    from labeler.project import open_project
+    from labeler.workflow import propose
+
+    with open_project(args.dir) as project, _Bar("proposing") as bar:
+        result = propose(project, progress=bar)
+    how = (
+        "cold start (vegetation index and crop rows)"
+        if result.mode == "cold_start"
+        else "trained head"
+    )
+    print(
+        f"proposed {result.proposed} tiles with {result.model_version.name} ({how}); "
+        f"{result.up_to_date} tiles were already up to date"
+    )
+    if result.mode == "cold_start":
+        print(
+            "the cold start proposes crop on rows and weed between rows; it never proposes symptom"
+        )
+    return 0
+
+
+def format_iou(val_iou: dict, miou) -> str:
+    parts = [f"{name} {'-' if v is None else f'{v:.3f}'}" for name, v in val_iou.items()]
+    return "validation IoU: " + ", ".join(parts) + ("" if miou is None else f"; mIoU {miou:.3f}")
+
+
+def cmd_retrain(args) -> int:
+    from labeler.project import open_project
+    from labeler.workflow import retrain
+
+    with open_project(args.dir) as project, _Bar("training") as bar:
+        result = retrain(project, progress=bar)
+    mv = result.model_version
+    print(
+        f"trained {mv.name} on {result.n_full} full masks and {result.n_scribble} scribbled tiles "
+        f"({result.n_train} training, {result.n_val} validation tiles; best epoch {result.best_epoch})"
+    )
+    print(format_iou(mv.val_iou or {}, mv.miou))
+    print("run 'labeler propose' to refresh the proposals with it")
+    return 0
+
+
 # -- parser -----------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
@@ -396,6 +439,25 @@ def build_parser() -> argparse.ArgumentParser:
         "--fresh", action="store_true", help="delete an earlier demo project in DIR first"
     )
     p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser(
+        "propose",
+        help="propose masks (cold start, or the newest trained model)",
+        description="Propose a mask for every tile whose proposal is older than the newest model. "
+        "Before any model is trained, a vegetation index (ExG - ExR) and the crop rows give the cold "
+        "start: vegetation on a row is crop, between rows weed. " + EPILOG,
+    )
+    p.add_argument("dir", metavar="DIR", help="project folder")
+    p.set_defaults(func=cmd_propose)
+
+    p = sub.add_parser(
+        "retrain",
+        help="train a new model on every saved mask and scribble",
+        description="Train a new proposal head on every saved full mask (accepted, amended, settled, "
+        "imported) and every scribble; prints the per-class validation IoU.",
+    )
+    p.add_argument("dir", metavar="DIR", help="project folder")
+    p.set_defaults(func=cmd_retrain)
 
     p = sub.add_parser(
         "pick",

@@ -24,6 +24,13 @@ from labeler.workflow.annotating import (
 from labeler.workflow.editing import StoreBackend, edit_tile, open_edit_session
 from labeler.workflow.exporting import ExportResult, ImportResult, export_project, import_masks
 from labeler.workflow.picking import RankResult, rank_tiles
+from labeler.workflow.proposing import (
+    ProposeResult,
+    RetrainResult,
+    labelled_tiles,
+    propose,
+    retrain,
+)
 
 __all__ = [
     "Progress",
@@ -51,4 +58,9 @@ __all__ = [
     "ImportResult",
     "export_project",
     "import_masks",
+    "ProposeResult",
+    "RetrainResult",
+    "labelled_tiles",
+    "propose",
+    "retrain",
 ]

@@ -1,0 +1,73 @@
+"""propose -> retrain -> propose through the store (plumbing; model quality is benchmarked)."""
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from labeler.cli import main
+from labeler.demo.build import demo_images, truth_path
+from labeler.errors import LabelerError
+from labeler.project import init_project, open_project
+from labeler.workflow import add_images, labelled_tiles, propose, retrain, save_tile_mask
+
+
+@pytest.fixture
+def one_plot(tmp_path):
+    plot = demo_images()[0]
+    root = tmp_path / "proj"
+    init_project(root).close()
+    # tiny training for the test: few epochs, 2 dropout passes
+    (root / "labeler.toml").write_text(
+        "[model]\nepochs = 2\nmc_samples = 2\nmin_labelled_tiles = 3\n"
+    )
+    p = open_project(root)
+    add_images(p, [plot])
+    yield p, np.asarray(Image.open(truth_path(plot)))
+    p.close()
+
+
+def test_cold_start_then_head(one_plot, capsys):
+    project, truth = one_plot
+    store = project.store
+    first = propose(project)
+    assert (first.mode, first.proposed) == ("cold_start", 20)
+    props = store.latest_proposals()
+    assert all(store.tile(t).state == "proposed" for t in props)
+    for p in props.values():
+        assert 3 not in np.unique(p.mask())  # symptom is never proposed at cold start
+        assert p.embedding().shape == (320,) and p.mean_entropy is None
+    assert propose(project).proposed == 0  # nothing is stale
+    with pytest.raises(LabelerError, match="at least 3 labelled tiles"):
+        retrain(project)
+    tiles = store.tiles()
+    for t in tiles[:3]:
+        save_tile_mask(project, t.id, "survey", truth[t.window.slices], parent_version=None)
+    weak = np.full(tiles[3].shape, 255, np.uint8)
+    weak[100:110, 100:140] = 2
+    save_tile_mask(project, tiles[3].id, "survey", weak, parent_version=None, kind="scribble")
+    assert [it.kind for it in labelled_tiles(project)] == ["full", "full", "full", "scribble"]
+    assert main(["retrain", str(project.root)]) == 0
+    out = capsys.readouterr().out
+    assert "trained head-1 on 3 full masks and 1 scribbled tiles" in out and "validation IoU" in out
+    mv = store.latest_model_version(kind="head")
+    assert (project.root / mv.checkpoint).exists() and set(mv.val_iou) == {
+        "soil",
+        "crop",
+        "weed",
+        "symptom",
+    }
+    second = propose(project)
+    assert (second.mode, second.proposed, second.model_version.id) == ("head", 20, mv.id)
+    p = store.latest_proposal(tiles[5].id)
+    assert p.model_version_id == mv.id and p.uncertainty().shape == (3, 64, 64)
+    assert p.mean_entropy is not None and p.mean_bald is not None
+    assert store.tile(tiles[0].id).state == "amended"  # saved tiles keep their state
+
+
+def test_missing_checkpoint_is_a_clear_error(one_plot):
+    project, _ = one_plot
+    project.store.add_model_version(
+        kind="head", name="head-x", checkpoint="models/none.pt", encoder_version="x"
+    )
+    with pytest.raises(LabelerError, match="cannot load the model head-x"):
+        propose(project)
