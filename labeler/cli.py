@@ -156,22 +156,29 @@ def cmd_status(args) -> int:
 
 
 def cmd_demo(args) -> int:
-    from labeler.demo.build import build_demo_project
+    from labeler.demo.build import build_demo_project, run_demo_round
+    from labeler.workflow import project_status
 
+    fields = None if args.fields is None else Path(args.fields)
     with _Bar("demo") as bar:
         project, lines = build_demo_project(
-            Path(args.out),
-            fields=None if args.fields is None else Path(args.fields),
-            fresh=args.fresh,
-            progress=bar,
+            Path(args.out), fields=fields, fresh=args.fresh, progress=bar
         )
     with project:
-        from labeler.workflow import project_status
-
         for line in lines:
             print(line)
+        if not args.setup_only:
+            print("one round of the loop, with two simulated annotators:")
+            with _Bar("demo round") as bar:
+                run_demo_round(
+                    project, fields=fields, progress=bar, say=lambda text: print("  " + text)
+                )
         print()
         print(format_status(project_status(project)))
+        print()
+        print(
+            f"next: labeler queue {args.out} --annotator YOUR-NAME   (or labeler edit {args.out} --next ...)"
+        )
     return 0
 
 
@@ -438,6 +445,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument(
         "--fresh", action="store_true", help="delete an earlier demo project in DIR first"
     )
+    p.add_argument("--setup-only", action="store_true", help="only build the project; skip the demo round")
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser(

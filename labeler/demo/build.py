@@ -1,19 +1,50 @@
-"""``labeler demo``: a project built from the committed demo plots in ``demo_fields/``."""
+"""``labeler demo``: a project built from the committed demo plots in ``demo_fields/``.
+
+With the whole loop (the default) the demo also plays one round of the work: a
+cold-start proposal, the picker's first batch corrected by two simulated annotators (the
+overlap tiles by both, so agreement can be shown), a retrained head, new proposals, a new
+queue order and an export. The simulated annotators are noisy copies of the invented
+truth (:mod:`labeler.demo.annotator`); no real person's work is involved.
+"""
 
 from __future__ import annotations
 
 import shutil
+from collections.abc import Callable
 from pathlib import Path
+
+import numpy as np
 
 from labeler.errors import LabelerError
 from labeler.project import Project, init_project
 
-__all__ = ["DEMO_FIELDS", "DEMO_MARKER", "demo_images", "truth_path", "build_demo_project"]
+__all__ = [
+    "DEMO_FIELDS",
+    "DEMO_MARKER",
+    "DEMO_ANNOTATORS",
+    "demo_images",
+    "truth_path",
+    "build_demo_project",
+    "run_demo_round",
+]
 
 #: The repository's committed demo plots.
 DEMO_FIELDS = Path(__file__).resolve().parents[2] / "demo_fields"
 #: File that marks a folder as a demo project (so ``--fresh`` never deletes real work).
 DEMO_MARKER = ".labeler-demo"
+#: Simulated annotators of the demo and their skill (see labeler.demo.annotator).
+DEMO_ANNOTATORS = (("ines", 0.9), ("tomas", 0.75))
+#: Settings of a demo project: a short training and a share of overlap tiles.
+DEMO_SETTINGS = """\
+# demo project settings (see 'labeler init' for every option)
+[model]
+epochs = 25
+[agreement]
+overlap_share = 0.25
+threshold = 0.92   # strict, so that the demo shows contested tiles
+[picker]
+k = 16
+"""
 
 
 def demo_images(fields: Path | None = None) -> list[Path]:
@@ -47,6 +78,7 @@ def build_demo_project(
         If ``out`` holds something other than an earlier demo project, or holds a demo
         project and ``fresh`` is not set.
     """
+    from labeler.project import open_project
     from labeler.workflow import add_images
 
     lines: list[str] = []
@@ -62,8 +94,10 @@ def build_demo_project(
         shutil.rmtree(out)
         lines.append(f"removed the earlier demo project in {out}")
     images = demo_images(fields)
-    project = init_project(out)
+    init_project(out).close()
+    (out / "labeler.toml").write_text(DEMO_SETTINGS, encoding="utf-8")
     (out / DEMO_MARKER).write_text("built by 'labeler demo'; safe to delete\n", encoding="utf-8")
+    project = open_project(out)
     try:
         results = add_images(project, images, progress=progress or (lambda *a: None))
     except BaseException:
@@ -71,3 +105,97 @@ def build_demo_project(
         raise
     lines.append(f"built demo project {out} from {len(results)} plots")
     return project, lines
+
+
+def _truths(project: Project, fields: Path | None) -> dict[str, np.ndarray]:
+    from PIL import Image
+
+    by_stem = {p.stem: p for p in demo_images(fields)}
+    out = {}
+    for im in project.store.images():
+        with Image.open(truth_path(by_stem[im.name])) as t:
+            out[im.name] = np.asarray(t).copy()
+    return out
+
+
+def run_demo_round(
+    project: Project,
+    *,
+    fields: Path | None = None,
+    seed: int = 7,
+    progress: Callable[[int, int, str], None] | None = None,
+    say: Callable[[str], None] = print,
+) -> None:
+    """Play one round of the loop on a demo project (see the module docstring)."""
+    from labeler.demo.annotator import simulate_annotation
+    from labeler.workflow import (
+        propose,
+        queue_rows,
+        rank_tiles,
+        retrain,
+        save_tile_mask,
+        write_agreement,
+    )
+    from labeler.workflow.exporting import export_project
+
+    prog = progress or (lambda *a: None)
+    store = project.store
+    truths = _truths(project, fields)
+    names = {im.id: im.name for im in store.images()}
+    res = propose(project, progress=prog)
+    say(f"1. proposed {res.proposed} tiles with {res.model_version.name}")
+    ranked = rank_tiles(project, progress=prog)
+    batch = [i.tile_id for i in ranked.items if i.in_batch]
+    say(f"2. the picker chose {len(batch)} tiles ({ranked.strategy}): {', '.join(map(str, batch))}")
+    rng = np.random.default_rng(seed)
+    overlap = {t.id for t in store.tiles(overlap=True)}
+    extra = sorted(overlap - set(batch))[:4]  # a few overlap tiles so both annotators meet
+    saved = 0
+    for tid in batch + extra:
+        tile = store.tile(tid)
+        truth = truths[names[tile.image_id]][tile.window.slices]
+        who = [a for a, _ in DEMO_ANNOTATORS] if tid in overlap else [DEMO_ANNOTATORS[saved % 2][0]]
+        for name in who:
+            skill = dict(DEMO_ANNOTATORS)[name]
+            mask = simulate_annotation(truth, rng=rng, skill=skill)
+            prop = store.latest_proposal(tid)
+            save_tile_mask(
+                project,
+                tid,
+                name,
+                mask,
+                parent_version=store.lineage_head(tid, name),
+                seconds=float(rng.uniform(20, 90)),
+                actions=int(rng.integers(3, 25)),
+                source="demo",
+                proposal_id=None if prop is None else prop.id,
+            )
+        saved += 1
+    counts = store.state_counts()
+    say(
+        f"3. simulated annotators saved {saved} tiles ({counts['contested']} contested on overlap tiles)"
+    )
+    rep_dir = project.root / "reports" / "agreement"
+    summary, files = write_agreement(project, rep_dir, progress=prog)
+    if summary.pairs:
+        p = summary.pairs[0]
+        say(
+            f"4. agreement {p.annotators[0]} vs {p.annotators[1]}: kappa {p.kappa:.3f} ({p.band}); report {files.html}"
+        )
+    trained = retrain(project, progress=prog)
+    mv = trained.model_version
+    iou = ", ".join(
+        f"{k} {'-' if v is None else f'{v:.2f}'}" for k, v in (mv.val_iou or {}).items()
+    )
+    say(f"5. retrained {mv.name} on {trained.n_full} tiles: validation IoU {iou}")
+    res = propose(project, progress=prog)
+    say(f"6. re-proposed {res.proposed} tiles with {res.model_version.name}")
+    ranked = rank_tiles(project, progress=prog)
+    top = queue_rows(project)[:3]
+    say("7. the queue now starts with tiles " + ", ".join(f"{r.tile_id} ({r.reason})" for r in top))
+    out = project.root / "exports"
+    ex = export_project(project, out, proposals=True, progress=prog)
+    say(
+        f"8. exported {ex.features} GeoJSON features and {len(ex.masks)} PNG masks to {out} "
+        f"({ex.tiles_from_proposals} tiles filled from proposals: model output, not checked)"
+    )

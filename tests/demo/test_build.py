@@ -15,15 +15,15 @@ def test_demo_plots_are_committed():
 
 def test_demo_command_builds_and_refuses_to_clobber(tmp_path, capsys):
     out = tmp_path / "demo"
-    assert main(["demo", "--out", str(out)]) == 0
+    assert main(["demo", "--out", str(out), "--setup-only"]) == 0
     text = capsys.readouterr().out
     assert "6 images, 120 tiles" in text and "far-terrace" in text
-    assert main(["demo", "--out", str(out)]) == 1  # already there: needs --fresh
+    assert main(["demo", "--out", str(out), "--setup-only"]) == 1  # already there: needs --fresh
     assert "--fresh" in capsys.readouterr().err
     other = tmp_path / "work"
     other.mkdir()
     (other / "notes.txt").write_text("somebody's work")
-    assert main(["demo", "--out", str(other), "--fresh"]) == 1  # never deletes a non-demo folder
+    assert main(["demo", "--out", str(other), "--fresh", "--setup-only"]) == 1  # never deletes a non-demo folder
     assert (other / "notes.txt").exists()
 
 
