@@ -17,6 +17,11 @@ Prints ONE JSON line with
   on soybean leaves"; MIT badge): seeded 48 / 15 split, IoU of the symptom class against
   the experts' consensus mask (``binary_mask`` 255 = two or more of three votes).
 
+Every figure is given for the mask as ``labeler propose`` makes it from the tile's pixels
+(colour-guided upsampling of the stride-4 probabilities, ``propose_tiles(images=...)``)
+and, under keys ending ``_bilinear``, for the plain bilinear upsampling that re-proposal
+from cached features alone uses.
+
 The open datasets are read in place from ``../shared/datasets`` beside the repository and
 never copied; a missing dataset gives null with a reason under ``reasons``. Features are
 cached in a temporary folder (``--cache`` keeps them between runs). The encoder is the
@@ -164,20 +169,26 @@ def run_demo(encoder, cache: FeatureCache, settings: ModelSettings, seed: int) -
 
     feats, masks, ims = tile_data(train_ids)
     res = _train(masks, feats, ims, encoder, (0, 1, 2, 3), settings, "demo")
-    cm = np.zeros((4, 4), np.int64)
+    cm = {"guided": np.zeros((4, 4), np.int64), "bilinear": np.zeros((4, 4), np.int64)}
     for start in range(0, len(eval_ids), 32):
-        f, m, _ = tile_data(eval_ids[start : start + 32])
-        props = propose_tiles(res.head, f, mc_samples=settings.mc_samples, seed=seed)
-        for p, t in zip(props, m, strict=True):
-            cm += confusion_matrix(t, p.mask, n_classes=4)
-    miou, iou = _iou_report(cm, (0, 1, 2, 3))
-    log(
-        f"demo: 10 % ({n_train} tiles) -> mIoU {miou:.4f} on {len(eval_ids)} tiles, per class {iou}"
-    )
-    out["demo_miou_10pct"] = round(miou, 4)
-    out["demo_iou_per_class"] = dict(
-        zip(("soil", "crop", "weed", "symptom"), _round(iou), strict=True)
-    )
+        f, m, ims = tile_data(eval_ids[start : start + 32])
+        for kind, guide in (("guided", ims), ("bilinear", None)):
+            props = propose_tiles(
+                res.head, f, mc_samples=settings.mc_samples, seed=seed, images=guide
+            )
+            for p, t in zip(props, m, strict=True):
+                cm[kind] += confusion_matrix(t, p.mask, n_classes=4)
+    for kind in ("guided", "bilinear"):
+        miou, iou = _iou_report(cm[kind], (0, 1, 2, 3))
+        log(
+            f"demo: 10 % ({n_train} tiles), {kind} -> mIoU {miou:.4f} on {len(eval_ids)} tiles, "
+            f"per class {iou}"
+        )
+        suffix = "" if kind == "guided" else "_bilinear"
+        out[f"demo_miou_10pct{suffix}"] = round(miou, 4)
+        out[f"demo_iou_per_class{suffix}"] = dict(
+            zip(("soil", "crop", "weed", "symptom"), _round(iou), strict=True)
+        )
     out["demo_tiles"] = {"train": int(n_train), "eval": len(eval_ids), "mode": res.mode}
     return out
 
@@ -216,7 +227,7 @@ def run_split(
     seed: int,
     tiles_per_image: int,
     overlap: int,
-) -> tuple[np.ndarray, dict]:
+) -> tuple[dict[str, np.ndarray], dict]:
     rng = np.random.default_rng(seed)
     order = rng.permutation(len(pairs))
     train_pairs = [pairs[i] for i in order[:n_train]]
@@ -239,7 +250,7 @@ def run_split(
     res = _train(masks, feats, None, None, classes, settings, name)
     del feats
     n = max(classes) + 1
-    cm = np.zeros((n, n), np.int64)
+    cm = {"guided": np.zeros((n, n), np.int64), "bilinear": np.zeros((n, n), np.int64)}
     t0 = time.perf_counter()
     for k, (ident, image_path, label_path) in enumerate(eval_pairs):
         image = read_image(image_path)
@@ -247,11 +258,17 @@ def run_split(
         truth = truth_fn(read_image(label_path), label_path.name)
         f = _features(cache, encoder, src, list(range(len(src.windows))))
         shapes = [(w.height, w.width) for w in src.windows]
-        props = propose_tiles(
-            res.head, f, tile_shapes=shapes, mc_samples=settings.mc_samples, seed=seed
-        )
-        pred = stitch([p.mask for p in props], src.windows, shape=image.shape[:2])
-        cm += confusion_matrix(truth, pred, n_classes=n)
+        for kind, guide in (("guided", src.tiles(src.keys)), ("bilinear", None)):
+            props = propose_tiles(
+                res.head,
+                f,
+                tile_shapes=shapes,
+                mc_samples=settings.mc_samples,
+                seed=seed,
+                images=guide,
+            )
+            pred = stitch([p.mask for p in props], src.windows, shape=image.shape[:2])
+            cm[kind] += confusion_matrix(truth, pred, n_classes=n)
         if (k + 1) % 25 == 0:
             log(f"{name}: evaluated image {k + 1}/{len(eval_pairs)}")
     log(f"{name}: evaluation in {time.perf_counter() - t0:.0f} s")
@@ -320,11 +337,12 @@ def main(argv: list[str] | None = None) -> int:
                     tiles_per_image=args.train_tiles_per_image,
                     overlap=0,
                 )
-                miou, iou = _iou_report(cm, (0, 1, 2))
-                result["open_miou"] = round(miou, 4)
-                result["open_iou_per_class"] = dict(
-                    zip(("soil", "crop", "weed"), _round(iou), strict=True)
-                )
+                for kind, suffix in (("guided", ""), ("bilinear", "_bilinear")):
+                    miou, iou = _iou_report(cm[kind], (0, 1, 2))
+                    result[f"open_miou{suffix}"] = round(miou, 4)
+                    result[f"open_iou_per_class{suffix}"] = dict(
+                        zip(("soil", "crop", "weed"), _round(iou), strict=True)
+                    )
         if "soybean" in which:
             if not (SOYBEAN / "original_images").is_dir():
                 reasons["lesion"] = (
@@ -352,7 +370,8 @@ def main(argv: list[str] | None = None) -> int:
                     tiles_per_image=args.train_tiles_per_image,
                     overlap=0,
                 )
-                result["lesion_iou"] = round(float(iou_per_class(cm)[3]), 4)
+                result["lesion_iou"] = round(float(iou_per_class(cm["guided"])[3]), 4)
+                result["lesion_iou_bilinear"] = round(float(iou_per_class(cm["bilinear"])[3]), 4)
     result["reasons"] = reasons
     result["context"] = {
         "seed": args.seed,

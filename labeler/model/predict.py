@@ -5,7 +5,9 @@ For each tile the head's deterministic trunk runs once; the classifier (dropout 
 Ghahramani 2016). From the T softmax outputs at stride 4:
 
 - the proposed mask is the argmax of the mean probabilities, bilinearly upsampled to
-  the tile size (only the mean is upsampled);
+  the tile size (only the mean is upsampled); when the tiles' pixels are passed
+  (``images=``) the upsampling is guided by their colours instead
+  (:mod:`labeler.model.upsample`), so mask edges follow colour edges;
 - the uncertainty maps are computed on a grid of ``uncertainty_stride`` (default 4, the
   native grid of the logits; other strides resize the T probability maps first, by area
   averaging when coarser and bilinearly when finer): entropy of the mean, margin of the
@@ -39,6 +41,7 @@ import torch.nn.functional as F
 
 from labeler.model.head import ProposalHead, features_to_tensors
 from labeler.model.runtime import inference
+from labeler.model.upsample import guided_upsample
 
 __all__ = [
     "TileProposal",
@@ -52,12 +55,10 @@ __all__ = [
 #: Order of the maps in :attr:`TileProposal.uncertainty`.
 UNCERTAINTY_NAMES = ("entropy", "margin", "bald")
 
-_TINY = 1e-12
-
 
 def entropy_t(probs: torch.Tensor, *, dim: int) -> torch.Tensor:
     """Shannon entropy in nats along ``dim`` (0 log 0 = 0); twin of ``pixel_entropy``."""
-    return -(probs * probs.clamp_min(_TINY).log()).sum(dim=dim)
+    return -torch.special.xlogy(probs, probs).sum(dim=dim)
 
 
 def margin_t(probs: torch.Tensor, *, dim: int) -> torch.Tensor:
@@ -167,6 +168,7 @@ def _propose_batch(
     pass_weights: torch.Tensor | None,
     n_passes: int,
     uncertainty_stride: int,
+    guide: torch.Tensor | None = None,
 ) -> list[TileProposal]:
     cfg = head.config
     z = head.trunk(levels)  # (B, C, h, w), channels-last memory
@@ -179,9 +181,8 @@ def _propose_batch(
         logits = logits.reshape(1, b, h * w, k).permute(0, 1, 3, 2)  # (1, B, K, HW)
     else:
         zp = z.permute(2, 3, 0, 1).reshape(h * w, b, c)  # (HW, B, C), one copy
-        out = torch.bmm(zp, pass_weights)  # (HW, B, T * K)
+        out = torch.baddbmm(bias.repeat(n_passes)[None, None], zp, pass_weights)  # (HW, B, T*K)
         logits = out.reshape(h * w, b, n_passes, k).permute(2, 1, 3, 0)  # (T, B, K, HW)
-        logits = logits + bias[None, None, :, None]
     probs = _softmax(logits.contiguous(), dim=2).reshape(-1, b, k, h, w)  # (T, B, K, h, w)
     t = probs.shape[0]
     mean = probs.mean(dim=0)  # (B, K, h, w)
@@ -195,7 +196,10 @@ def _propose_batch(
     bald = bald_t(samples, sample_dim=0, class_dim=2) if t > 1 else torch.zeros_like(ent)
     maps = torch.stack([ent, mar, bald], dim=1)  # (B, 3, gh, gw)
 
-    up = F.interpolate(mean, size=tile_size, mode="bilinear", align_corners=False)
+    if guide is None:
+        up = F.interpolate(mean, size=tile_size, mode="bilinear", align_corners=False)
+    else:
+        up = guided_upsample(mean, guide)
     arg = _argmax_first(up, dim=1).numpy()  # (B, H, W) channel numbers
     lut = np.asarray(cfg.class_indices, np.uint8)
     emb = levels[3].mean(dim=(2, 3)).numpy().astype(np.float32)
@@ -226,6 +230,7 @@ def propose_tiles(
     mc_samples: int = 8,
     seed: int = 0,
     uncertainty_stride: int = 4,
+    images: Sequence[np.ndarray] | None = None,
     batch_size: int = 16,
     progress: Callable[[int, int], None] | None = None,
 ) -> list[TileProposal]:
@@ -247,6 +252,10 @@ def propose_tiles(
         Seed of the dropout masks.
     uncertainty_stride : int
         Pixels per cell of the uncertainty maps (the store keeps a downsampled map).
+    images : sequence of ndarray, each (H, W, 3) uint8, optional
+        The tiles themselves. When given, the mean probabilities are upsampled with
+        colour guidance (:func:`labeler.model.upsample.guided_upsample`) instead of
+        bilinearly: mask edges follow colour edges (slower; uncertainty maps unchanged).
     batch_size : int
         Tiles per pass.
     progress : callable, optional
@@ -268,6 +277,8 @@ def propose_tiles(
     if batch_size < 1:
         raise ValueError(f"batch_size: expected at least 1, got {batch_size}")
     n = len(features)
+    if images is not None and len(images) != n:
+        raise ValueError(f"images: expected one tile per features entry ({n}), got {len(images)}")
     if tile_shapes is not None and len(tile_shapes) != n:
         raise ValueError(f"tile_shapes: expected one (H, W) per tile ({n}), got {len(tile_shapes)}")
     shapes = []
@@ -276,6 +287,15 @@ def propose_tiles(
             raise ValueError(f"features: tile {i} expected 4 levels, got {len(f)}")
         h4, w4 = np.shape(f[0])[-2:]
         size = tuple(tile_shapes[i]) if tile_shapes is not None else (4 * h4, 4 * w4)
+        if images is not None:
+            im_shape = np.shape(images[i])
+            if tile_shapes is None:
+                size = tuple(im_shape[:2])
+            if len(im_shape) != 3 or im_shape[2] != 3 or tuple(im_shape[:2]) != size:
+                raise ValueError(
+                    f"images: tile {i} expected shape {(*size, 3)} (RGB of the tile), "
+                    f"got {im_shape}"
+                )
         if math.ceil(size[0] / 4) != h4 or math.ceil(size[1] / 4) != w4:
             raise ValueError(
                 f"tile_shapes: tile {i} is {size} but its stride-4 features are {h4} x {w4}; "
@@ -309,6 +329,10 @@ def propose_tiles(
             for start in range(0, len(members), batch_size):
                 idx = members[start : start + batch_size]
                 levels = features_to_tensors([features[i] for i in idx])
+                guide = None
+                if images is not None:
+                    guide = torch.from_numpy(np.stack([np.asarray(images[i]) for i in idx]))
+                    guide = guide.permute(0, 3, 1, 2).to(torch.float32)
                 batch = _propose_batch(
                     head,
                     levels,
@@ -316,6 +340,7 @@ def propose_tiles(
                     pass_weights=per_pixel,
                     n_passes=mc_samples if per_pixel is not None else 1,
                     uncertainty_stride=uncertainty_stride,
+                    guide=guide,
                 )
                 for i, prop in zip(idx, batch, strict=True):
                     results[i] = prop

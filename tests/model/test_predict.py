@@ -227,3 +227,27 @@ def test_progress_reports(head):
 def test_propose_rejects_bad_options(head, kwargs, match):
     with pytest.raises(ValueError, match=match):
         propose_tiles(head, _features(1), **kwargs)
+
+
+def test_images_guide_the_mask_upsampling(head):
+    feats = _features(2, seed=8)
+    rng = np.random.default_rng(9)
+    images = [rng.integers(0, 256, (64, 64, 3), dtype=np.uint8) for _ in range(2)]
+    plain = propose_tiles(head, feats, mc_samples=2, seed=1)
+    guided = propose_tiles(head, feats, mc_samples=2, seed=1, images=images)
+    for a, b in zip(plain, guided, strict=True):
+        assert b.mask.shape == (64, 64) and b.mask.dtype == np.uint8
+        np.testing.assert_array_equal(a.uncertainty, b.uncertainty)  # maps stay on the grid
+        assert not np.array_equal(a.mask, b.mask)
+        want = np.array([(b.mask == c).mean() for c in (0, 1, 3)])
+        np.testing.assert_allclose(b.class_fractions, want, atol=1e-12)
+
+
+def test_guide_images_must_fit_the_tiles(head):
+    feats = _features(1)
+    with pytest.raises(
+        ValueError, match=r"images: expected one tile per features entry \(1\), got 2"
+    ):
+        propose_tiles(head, feats, images=[np.zeros((64, 64, 3), np.uint8)] * 2)
+    with pytest.raises(ValueError, match=r"images: tile 0 expected shape \(64, 64, 3\)"):
+        propose_tiles(head, feats, images=[np.zeros((64, 64), np.uint8)], tile_shapes=[(64, 64)])
