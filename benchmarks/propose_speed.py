@@ -13,6 +13,8 @@ Prints ONE JSON line:
 - ``speedup``: the ratio of the two;
 - ``head_tiles_per_s``: ``propose_tiles`` on features already computed (FPN once, the
   dropout classifier ``mc_samples`` times, mask + entropy/margin/BALD maps);
+- ``head_guided_tiles_per_s``: the same with the tiles' pixels passed for colour-guided
+  upsampling of the mask (``propose_tiles(images=...)``, as a first proposal runs);
 - ``peak_rss_mb``: peak resident memory of the process (``resource`` ru_maxrss);
 - context: ``threads``, ``batch``, ``mc_samples``, ``rounds``, ``load_avg_1min``.
 
@@ -83,11 +85,12 @@ def main(argv: list[str] | None = None) -> int:
     encode_tiles(fast_bf16, tiles[: args.batch * 2], batch_size=args.batch)
     features = encode_tiles(fast, tiles[:16], batch_size=args.batch)
     head_features = [features[i % len(features)] for i in range(args.head_tiles)]
+    head_images = [tiles[i % len(features)] for i in range(args.head_tiles)]
     torch.manual_seed(0)
     head = ProposalHead(HeadConfig(class_indices=(0, 1, 2, 3))).eval()
     propose_tiles(head, head_features[:16], mc_samples=args.mc_samples)
 
-    base_t, fast_t, bf16_t, head_t = [], [], [], []
+    base_t, fast_t, bf16_t, head_t, guided_t = [], [], [], [], []
     for _ in range(args.rounds):
         base_t.append(_timed(lambda: _baseline_pass(baseline, tiles[: args.baseline_tiles])))
         fast_t.append(_timed(lambda: encode_tiles(fast, tiles, batch_size=args.batch)))
@@ -99,6 +102,17 @@ def main(argv: list[str] | None = None) -> int:
                 )
             )
         )
+        guided_t.append(
+            _timed(
+                lambda: propose_tiles(
+                    head,
+                    head_features,
+                    mc_samples=args.mc_samples,
+                    batch_size=args.head_batch,
+                    images=head_images,
+                )
+            )
+        )
     baseline_rate = args.baseline_tiles / min(base_t)
     encoder_rate = args.tiles / min(fast_t)
     result = {
@@ -107,6 +121,7 @@ def main(argv: list[str] | None = None) -> int:
         "encoder_bf16_tiles_per_s": round(args.tiles / min(bf16_t), 2),
         "speedup": round(encoder_rate / baseline_rate, 2),
         "head_tiles_per_s": round(args.head_tiles / min(head_t), 1),
+        "head_guided_tiles_per_s": round(args.head_tiles / min(guided_t), 1),
         "peak_rss_mb": 0.0,
         "threads": threads,
         "batch": args.batch,

@@ -18,8 +18,8 @@ Ghahramani 2016). From the T softmax outputs at stride 4:
 
 The T dropout masks are drawn once per call from ``seed`` (a local generator) and shared
 by every tile of one size, so a tile's proposal depends on the seed and the tile only,
-not on which other tiles share its batch. ``mc_samples=1`` runs one pass without dropout
-(BALD is then 0).
+not on which other tiles share its batch. ``mc_samples=1`` (or a head without dropout)
+runs one pass without dropout, and BALD is then 0.
 
 The pooled embedding for the picker's core-set is the global average of the stride-32
 encoder features (320 values for EfficientNet-Lite0): it depends on the encoder only,

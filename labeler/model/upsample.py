@@ -7,7 +7,8 @@ Uyttendaele 2007, "Joint bilateral upsampling", ACM Trans. Graph. 26(3)) lets ea
 take the probabilities of nearby cells whose colour resembles its own:
 
     p(x) = sum_c w(x, c) p_c / sum_c w(x, c),
-    w(x, c) = exp(-|x - centre_c|^2 / (2 sigma_spatial^2)) * exp(-|I(x) - I_c|^2 / (2 sigma_colour^2))
+    w(x, c) = exp(-|x - centre_c|^2 / (2 sigma_spatial^2))
+              * exp(-|I(x) - I_c|^2 / (2 sigma_colour^2))
 
 over the ``(2 radius + 1)^2`` cells around the pixel's own cell (the colour factor gets
 a floor of 1e-6, so a pixel unlike all of them falls back to spatial weights), where ``I_c`` is the
