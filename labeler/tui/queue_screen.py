@@ -403,13 +403,6 @@ class QueueScreen(Screen):
         self.reload(select=first)
 
     def action_retrain(self) -> None:
-        if getattr(workflow, "retrain", None) is None:
-            self.app.tell(
-                "retraining is not available in this installation (labeler.workflow.retrain "
-                "is missing); update labeler",
-                severity="error",
-            )
-            return
         if self._begin("retraining the model"):
             self._retrain()
 
