@@ -163,13 +163,16 @@ async def test_retrain_error_and_busy_guard(project, monkeypatch):
         )
 
 
-async def test_retrain_missing_from_the_workflow(project, monkeypatch):
-    monkeypatch.delattr(workflow, "retrain", raising=False)
+async def test_real_retrain_without_labels_says_why(project):
+    # the real workflow: no saved masks yet, so retraining refuses with its clear message
     app = QueueApp(project, annotator="ana")
     async with app.run_test(size=SIZE) as pilot:
         await idle(pilot)
         await pilot.press("t")
-        assert "retraining is not available" in app.notices[-1].message
+        await pilot.app.workers.wait_for_complete()
+        await idle(pilot)
+        assert "retrain needs at least 3 labelled tiles" in app.notices[-1].message
+        assert app.notices[-1].severity == "error"
         assert app.screen.long_work is None
 
 
