@@ -239,7 +239,8 @@ class QueueScreen(Screen):
             image = store.image(tile.image_id)
             with open_image(self.project.image_path(image)) as reader:
                 rgb = reader.read(tile.window)
-            saved = store.latest_annotation(tile_id)
+            # on an overlap tile an annotator never sees another annotator's mask
+            saved = store.visible_annotation(tile_id, self.app.annotator)
             proposal = store.latest_proposal(tile_id)
             if saved is not None:
                 mask = saved.mask()

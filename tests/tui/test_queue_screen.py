@@ -188,3 +188,21 @@ async def test_search_by_tile_id(project):
         await idle(pilot)
         assert app.notices[-1].severity == "warning"
         assert app.notices[-1].message.startswith("tile 99 is not in this project")
+
+
+async def test_preview_never_shows_another_annotators_mask_on_an_overlap_tile(overlap_project):
+    project = overlap_project
+    fake_proposals(project)
+    from labeler.workflow import save_tile_mask
+
+    tile = project.store.tiles()[0]
+    save_tile_mask(project, tile.id, "bea", np.ones(tile.shape, np.uint8), parent_version=None)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        await pilot.press("slash")
+        await pilot.press(*str(tile.id), "enter")
+        await idle(pilot)
+        caption = str(app.screen.query_one("#preview-caption").render())
+        assert f"tile {tile.id}" in caption
+        assert "bea" not in caption and "proposal of fake" in caption
