@@ -155,3 +155,44 @@ def test_world_file_and_prj_for_png(tmp_path, rgb):
     (tmp_path / "p.pgw").write_text("garbage\n")
     with pytest.raises(InputError, match="p.pgw"):
         inspect_image(tmp_path / "p.png")
+
+
+def test_large_geotiff_is_read_by_window_never_whole(tmp_path):
+    import tracemalloc
+
+    import rasterio
+    from rasterio.windows import Window as RioWindow
+
+    # a 12000 x 12000 RGB orthomosaic (432 MB as uint8 RGB), tiled and deflated on disk
+    path = tmp_path / "ortho.tif"
+    size, block = 12_000, 1024
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=size,
+        height=size,
+        count=3,
+        dtype="uint8",
+        crs="EPSG:32631",
+        transform=Affine(0.01, 0, 431000, 0, -0.01, 5712000),
+        tiled=True,
+        blockxsize=512,
+        blockysize=512,
+        compress="deflate",
+    ) as dst:
+        for r in range(0, size, block):
+            h = min(block, size - r)
+            dst.write(
+                np.full((3, h, size), (r // block) % 200, np.uint8), window=RioWindow(0, r, size, h)
+            )
+    tracemalloc.start()
+    with open_image(path) as reader:
+        assert reader.info.shape == (size, size) and reader.info.georef.source == "geotiff"
+        tile = reader.read(Window(6000, 9000, 256, 256))
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    expected = ((np.arange(6000, 6256) // block) % 200).astype(np.uint8)  # value per row
+    assert tile.shape == (256, 256, 3)
+    np.testing.assert_array_equal(tile, np.broadcast_to(expected[:, None, None], tile.shape))
+    assert peak < 20e6  # bytes: a window, not the 432 MB image
