@@ -36,3 +36,21 @@ def test_cold_start_falls_back_to_diversity(project):
     result = rank_tiles(project, strategy="entropy", k=2)
     assert (result.requested, result.strategy) == ("entropy", "coreset")
     assert "cold start" in result.note
+
+
+def test_cli_pick_prints_the_batch_with_reasons(project, capsys):
+    from labeler.cli import main
+
+    fake_proposals(project)
+    assert main(["pick", str(project.root), "--strategy", "margin", "--k", "2"]) == 0
+    out = capsys.readouterr().out
+    assert "ranked 6 tiles with strategy margin; the next batch of 2:" in out
+    assert out.count("uncertain") == 2  # margin ranks by uncertainty: each batch tile says so
+
+
+def test_cli_pick_rejects_bad_k(project):
+    from labeler.cli import main
+
+    with pytest.raises(SystemExit) as info:
+        main(["pick", str(project.root), "--k", "0"])
+    assert info.value.code == 2
