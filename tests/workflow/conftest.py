@@ -5,7 +5,7 @@ import pytest
 from affine import Affine
 
 from labeler.imagery.write import write_geotiff
-from labeler.project import init_project
+from labeler.project import init_project, open_project
 from labeler.store.store import NewProposal
 from labeler.workflow import add_images
 
@@ -35,23 +35,8 @@ def fake_proposals(project, *, seed=0, with_uncertainty=True):
     return mv
 
 
-@pytest.fixture
-def project(tmp_path):
-    rgb = np.random.default_rng(2).integers(0, 256, (300, 500, 3), dtype=np.uint8)
-    write_geotiff(
-        tmp_path / "east-block.tif",
-        rgb,
-        transform=Affine(0.004, 0, 431000, 0, -0.004, 5712000),
-        crs="EPSG:32631",
-    )
-    p = init_project(tmp_path / "proj")
-    add_images(p, [tmp_path / "east-block.tif"])
-    yield p
-    p.close()
-
-
-@pytest.fixture
-def overlap_project(tmp_path):
+def _small_project(tmp_path, settings_text=None):
+    """One invented 300 x 500 GeoTIFF (random pixels) in a new project, 2 x 3 tiles."""
     rgb = np.random.default_rng(2).integers(0, 256, (300, 500, 3), dtype=np.uint8)
     write_geotiff(
         tmp_path / "east-block.tif",
@@ -61,10 +46,23 @@ def overlap_project(tmp_path):
     )
     root = tmp_path / "proj"
     init_project(root).close()
-    (root / "labeler.toml").write_text("[agreement]\noverlap_share = 1.0\nthreshold = 0.6\n")
-    from labeler.project import open_project
-
+    if settings_text is not None:
+        (root / "labeler.toml").write_text(settings_text)
     p = open_project(root)
     add_images(p, [tmp_path / "east-block.tif"])
+    return p
+
+
+@pytest.fixture
+def project(tmp_path):
+    p = _small_project(tmp_path)
+    yield p
+    p.close()
+
+
+@pytest.fixture
+def overlap_project(tmp_path):
+    """Every tile is an overlap tile; agreement threshold 0.6."""
+    p = _small_project(tmp_path, "[agreement]\noverlap_share = 1.0\nthreshold = 0.6\n")
     yield p
     p.close()
