@@ -256,6 +256,13 @@ def _accepts(fn: Callable, name: str) -> bool:
     return name in inspect.signature(fn).parameters
 
 
+def _train_default(name: str) -> object:
+    from labeler.model.train import train_head
+
+    param = inspect.signature(train_head).parameters.get(name)
+    return None if param is None else param.default
+
+
 def _train(tiles: TileSet, rows: Sequence[int], *, class_indices, settings, encoder):
     from labeler.model.train import train_head
 
@@ -781,8 +788,8 @@ def markdown_table(report: dict) -> str:
         "tiles, their truth is revealed, the head is retrained from cached features and "
         "measured on a fixed held-out set. 'Share to 95 %' is the share of the pool tiles at "
         "which the curve of the mean over seeds first reaches 95 % of the mIoU of a head "
-        "trained on every pool tile (linear interpolation between rounds); per-seed values "
-        "in brackets. Savings are against `random`, in % of its share.",
+        "trained on every pool tile (linear interpolation between rounds); the per-seed "
+        "column measures each seed's curve against that seed's own full-label mIoU. Savings are against `random`, in % of its share.",
         "",
         f"Targets: `mixed` reaches 95 % with at most {100 * TARGET_MAX_SHARE:.0f} % of the "
         f"tiles and at least {TARGET_MIN_SAVINGS_PCT:.0f} % fewer tiles than `random` "
@@ -846,7 +853,7 @@ def markdown_table(report: dict) -> str:
         "## Run",
         "",
         f"Training: `train_head(mode=\"features\")`, at most {ctx.get('epochs')} epochs with "
-        f"the project's early stopping (patience 5, validation share "
+        f"the project's early stopping (patience {ctx.get('patience')}, validation share "
         f"{ctx.get('val_share')}); proposals with {ctx.get('mc_samples')} MC-dropout passes; "
         f"{ctx.get('threads')} torch thread(s); {ctx.get('seconds')} s in all, on a shared "
         f"machine (1-minute load average {ctx.get('load_avg_start')} at the start, "
@@ -1008,6 +1015,7 @@ def main(argv: list[str] | None = None) -> int:
             "seeds": seeds,
             "epochs": args.epochs,
             "val_share": settings.val_share,
+            "patience": _train_default("patience"),
             "mc_samples": args.mc_samples,
             "initial_share": args.initial_share,
             "threads": threads,
