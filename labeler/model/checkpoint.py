@@ -6,6 +6,11 @@ indices, the encoder version the head was trained on, the per-class validation I
 optional extra scalars. It is written atomically (temporary file + ``os.replace``) and
 read with ``torch.load(..., weights_only=True)``, which refuses any pickled object that
 is not plain data, so a tampered file cannot run code.
+
+Format versions: 1 = the head alone; 2 = the head with its optional full-resolution
+refinement (``HeadConfig.refine_channels``). A file of another version is refused with a
+message to retrain (``labeler retrain``): version-1 heads are not read, because their
+masks would silently lack the refinement.
 """
 
 from __future__ import annotations
@@ -27,7 +32,7 @@ __all__ = ["CheckpointMeta", "save_checkpoint", "load_checkpoint", "FORMAT"]
 
 #: Format tag stored in every checkpoint.
 FORMAT = "labeler-head"
-_FORMAT_VERSION = 1
+_FORMAT_VERSION = 2
 
 
 @dataclass(frozen=True)
@@ -127,7 +132,7 @@ def load_checkpoint(path: str | os.PathLike[str]) -> tuple[ProposalHead, Checkpo
     if obj.get("format_version") != _FORMAT_VERSION:
         raise ValueError(
             f"{p}: checkpoint format version {obj.get('format_version')!r}, this labeler reads "
-            f"{_FORMAT_VERSION}; retrain the head"
+            f"{_FORMAT_VERSION}; retrain the head ('labeler retrain')"
         )
     try:
         config = HeadConfig.from_dict(obj["config"])

@@ -9,6 +9,12 @@ Layout (``width`` = FPN channels, ``K`` = classes)::
       -> dropout (element-wise, p = ``dropout``) -> 1x1 convolution width -> K  ("classifier")
       -> logits at stride 4, bilinearly upsampled to the tile size
 
+With ``refine_channels`` > 0 the head also holds a :class:`~labeler.model.refine.Refiner`:
+given the tile's pixels, the final logits are the dropout-free stride-4 logits,
+bilinearly upsampled, plus a full-resolution correction computed from the pixels and
+the trunk features (:mod:`labeler.model.refine`). Without pixels the head gives the
+plain upsampled logits.
+
 The trunk runs once per tile; only the classifier (dropout + one 1x1 convolution) runs
 T times for MC-dropout uncertainty (:mod:`labeler.model.predict`). Everything is kept in
 channels-last memory order, which is several times faster on CPU for these narrow layers.
@@ -30,8 +36,12 @@ from torchvision.ops import FeaturePyramidNetwork
 
 from labeler.classes import UNLABELLED
 from labeler.model.encoder import FEATURE_CHANNELS
+from labeler.model.refine import RefineConfig, Refiner
 
-__all__ = ["HeadConfig", "ProposalHead", "features_to_tensors", "class_lut"]
+__all__ = ["HeadConfig", "ProposalHead", "features_to_tensors", "class_lut", "REFINE_CHANNELS"]
+
+#: Channels of the refinement that :func:`labeler.model.train.train_head` adds by default.
+REFINE_CHANNELS = 16
 
 
 @dataclass(frozen=True)
@@ -48,12 +58,16 @@ class HeadConfig:
         Dropout probability before the classifier (also the MC-dropout rate).
     in_channels : tuple of int
         Channels of the four encoder levels.
+    refine_channels : int
+        Channels of the full-resolution refinement; 0 (the default of a bare config) means
+        no refinement, the stride-4 logits are only upsampled.
     """
 
     class_indices: tuple[int, ...] = (0, 1, 2, 3)
     width: int = 32
     dropout: float = 0.2
     in_channels: tuple[int, ...] = FEATURE_CHANNELS
+    refine_channels: int = 0
 
     def __post_init__(self) -> None:
         idx = tuple(int(i) for i in self.class_indices)
@@ -67,6 +81,11 @@ class HeadConfig:
             )
         if self.width < 1:
             raise ValueError(f"width: expected at least 1 channel, got {self.width}")
+        if self.refine_channels < 0:
+            raise ValueError(
+                f"refine_channels: expected 0 (no refinement) or more channels, got "
+                f"{self.refine_channels}"
+            )
         if not 0.0 <= self.dropout < 1.0:
             raise ValueError(f"dropout: expected a probability in [0, 1), got {self.dropout}")
         object.__setattr__(self, "class_indices", idx)
@@ -75,6 +94,11 @@ class HeadConfig:
     @property
     def n_classes(self) -> int:
         return len(self.class_indices)
+
+    @property
+    def refines(self) -> bool:
+        """True when the head has a full-resolution refinement."""
+        return self.refine_channels > 0
 
     def as_dict(self) -> dict[str, object]:
         d = asdict(self)
@@ -89,6 +113,7 @@ class HeadConfig:
             width=int(d["width"]),  # type: ignore[arg-type]
             dropout=float(d["dropout"]),  # type: ignore[arg-type]
             in_channels=tuple(d["in_channels"]),  # type: ignore[arg-type]
+            refine_channels=int(d.get("refine_channels", 0)),  # type: ignore[arg-type]
         )
 
 
@@ -166,6 +191,11 @@ class ProposalHead(nn.Module):
         self.mix = nn.Conv2d(w, w, 1)
         self.dropout = nn.Dropout(self.config.dropout)
         self.classifier = nn.Conv2d(w, self.config.n_classes, 1)
+        self.refiner: Refiner | None = None
+        if self.config.refines:
+            self.refiner = Refiner(
+                w, self.config.n_classes, RefineConfig(channels=self.config.refine_channels)
+            )
         self.to(memory_format=torch.channels_last)
 
     def _check(self, levels: Sequence[torch.Tensor]) -> None:
@@ -194,14 +224,62 @@ class ProposalHead(nn.Module):
         """Logits at stride 4 ``(N, K, h4, w4)`` from trunk features (dropout as in mode)."""
         return self.classifier(self.dropout(z))
 
-    def forward(
-        self, levels: Sequence[torch.Tensor], *, size: tuple[int, int] | None = None
-    ) -> torch.Tensor:
-        """Logits ``(N, K, H, W)``, bilinearly upsampled from stride 4 to ``size``.
+    def refine(self, z: torch.Tensor, pixels: torch.Tensor) -> torch.Tensor:
+        """Refined full-resolution logits ``(N, K, H, W)``.
 
-        ``size`` defaults to 4 x the stride-4 grid.
+        Parameters
+        ----------
+        z : Tensor, shape (N, width, ceil(H / 4), ceil(W / 4))
+            Trunk features.
+        pixels : Tensor, shape (N, 4, H, W)
+            :func:`labeler.model.refine.pixel_input` of the tiles.
+
+        The base is the classifier without dropout (deterministic in every mode), bilinearly
+        upsampled; the refiner adds its correction.
+
+        Raises
+        ------
+        ValueError
+            If the head has no refinement or the pixels do not fit ``z``.
         """
-        logits = self.classify(self.trunk(levels))
+        if self.refiner is None:
+            raise ValueError(
+                "pixels: this head has no refinement (config.refine_channels = 0); "
+                "use classify() or train a head with refine_channels > 0"
+            )
+        h4, w4 = z.shape[-2:]
+        height, width = pixels.shape[-2:]
+        if (
+            pixels.dim() != 4
+            or pixels.shape[0] != z.shape[0]
+            or (-(-height // 4), -(-width // 4)) != (h4, w4)
+        ):
+            raise ValueError(
+                f"pixels: expected {z.shape[0]} tiles of 4 channels whose size divided by 4 "
+                f"(rounded up) is {h4} x {w4}, got shape {tuple(pixels.shape)}; pass the pixels "
+                "of the tiles the features belong to"
+            )
+        base = self.classifier(z)
+        up = F.interpolate(base, size=(height, width), mode="bilinear", align_corners=False)
+        return up + self.refiner(z, pixels)
+
+    def forward(
+        self,
+        levels: Sequence[torch.Tensor],
+        *,
+        size: tuple[int, int] | None = None,
+        pixels: torch.Tensor | None = None,
+    ) -> torch.Tensor:
+        """Logits ``(N, K, H, W)``.
+
+        Without ``pixels``: the stride-4 logits (dropout as in mode) bilinearly upsampled to
+        ``size`` (default 4 x the stride-4 grid). With ``pixels`` (a refining head only):
+        :meth:`refine`, at the pixels' size.
+        """
+        z = self.trunk(levels)
+        if pixels is not None:
+            return self.refine(z, pixels)
+        logits = self.classify(z)
         if size is None:
             size = (logits.shape[-2] * 4, logits.shape[-1] * 4)
         return F.interpolate(logits, size=size, mode="bilinear", align_corners=False)

@@ -4,10 +4,14 @@ For each tile the head's deterministic trunk runs once; the classifier (dropout 
 1x1 convolution) then runs ``mc_samples`` = T times with dropout active (Gal &
 Ghahramani 2016). From the T softmax outputs at stride 4:
 
-- the proposed mask is the argmax of the mean probabilities, bilinearly upsampled to
-  the tile size (only the mean is upsampled); when the tiles' pixels are passed
-  (``images=``) the upsampling is guided by their colours instead
-  (:mod:`labeler.model.upsample`), so mask edges follow colour edges;
+- the proposed mask: for a head with refinement (:mod:`labeler.model.refine`) and the
+  tiles' pixels passed (``images=``), the argmax of the refined full-resolution logits,
+  computed once per tile from the dropout-free trunk features and the pixels (not per
+  dropout pass); otherwise the argmax of the mean probabilities, bilinearly upsampled to
+  the tile size (only the mean is upsampled), or, for a head without refinement given
+  ``images=``, upsampled with guidance by the pixels' colours
+  (:mod:`labeler.model.upsample`), so mask edges follow colour edges. A refining head
+  given no pixels falls back to the bilinear mask (``TileProposal.refined`` is False);
 - the uncertainty maps are computed on a grid of ``uncertainty_stride`` (default 4, the
   native grid of the logits; other strides resize the T probability maps first, by area
   averaging when coarser and bilinearly when finer): entropy of the mean, margin of the
@@ -40,6 +44,7 @@ import torch
 import torch.nn.functional as F
 
 from labeler.model.head import ProposalHead, features_to_tensors
+from labeler.model.refine import pixel_input
 from labeler.model.runtime import inference
 from labeler.model.upsample import guided_upsample
 
@@ -99,6 +104,8 @@ class TileProposal:
         Global average of the stride-32 encoder features (D = 320).
     class_indices : tuple of int
         Schema index of each entry of ``class_fractions``.
+    refined : bool
+        True when the mask comes from the full-resolution refinement.
     """
 
     mask: np.ndarray
@@ -109,6 +116,7 @@ class TileProposal:
     class_fractions: np.ndarray
     embedding: np.ndarray
     class_indices: tuple[int, ...]
+    refined: bool = False
 
 
 def _dropout_masks(
@@ -170,6 +178,7 @@ def _propose_batch(
     uncertainty_stride: int,
     guide: torch.Tensor | None = None,
 ) -> list[TileProposal]:
+    """Proposals of one batch of equal-size tiles; ``guide`` = their pixels ``(B, 3, H, W)``."""
     cfg = head.config
     z = head.trunk(levels)  # (B, C, h, w), channels-last memory
     b, c, h, w = z.shape
@@ -196,10 +205,14 @@ def _propose_batch(
     bald = bald_t(samples, sample_dim=0, class_dim=2) if t > 1 else torch.zeros_like(ent)
     maps = torch.stack([ent, mar, bald], dim=1)  # (B, 3, gh, gw)
 
-    if guide is None:
+    refined = guide is not None and head.refiner is not None
+    if refined:
+        # once per tile, on the dropout-free trunk features: the mean is not refined
+        up = head.refine(z, pixel_input(guide))
+    elif guide is None:
         up = F.interpolate(mean, size=tile_size, mode="bilinear", align_corners=False)
     else:
-        up = guided_upsample(mean, guide)
+        up = guided_upsample(mean, guide.to(torch.float32))
     arg = _argmax_first(up, dim=1).numpy()  # (B, H, W) channel numbers
     lut = np.asarray(cfg.class_indices, np.uint8)
     emb = levels[3].mean(dim=(2, 3)).numpy().astype(np.float32)
@@ -217,6 +230,7 @@ def _propose_batch(
                 class_fractions=counts / counts.sum(),
                 embedding=emb[i].copy(),
                 class_indices=cfg.class_indices,
+                refined=refined,
             )
         )
     return out_list
@@ -253,9 +267,11 @@ def propose_tiles(
     uncertainty_stride : int
         Pixels per cell of the uncertainty maps (the store keeps a downsampled map).
     images : sequence of ndarray, each (H, W, 3) uint8, optional
-        The tiles themselves. When given, the mean probabilities are upsampled with
-        colour guidance (:func:`labeler.model.upsample.guided_upsample`) instead of
-        bilinearly: mask edges follow colour edges (slower; uncertainty maps unchanged).
+        The tiles themselves. With a refining head the mask comes from the refined
+        full-resolution logits; with a head without refinement the mean probabilities are
+        upsampled with colour guidance (:func:`labeler.model.upsample.guided_upsample`)
+        instead of bilinearly. Without them the mask is the bilinear one. The uncertainty
+        maps never depend on them.
     batch_size : int
         Tiles per pass.
     progress : callable, optional
@@ -332,7 +348,7 @@ def propose_tiles(
                 guide = None
                 if images is not None:
                     guide = torch.from_numpy(np.stack([np.asarray(images[i]) for i in idx]))
-                    guide = guide.permute(0, 3, 1, 2).to(torch.float32)
+                    guide = guide.permute(0, 3, 1, 2)
                 batch = _propose_batch(
                     head,
                     levels,

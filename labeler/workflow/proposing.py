@@ -5,7 +5,9 @@ exists yet; only tiles whose newest proposal comes from another model version ar
 proposed again. Encoder features are cached per tile under ``<project>/cache/features``.
 ``retrain`` trains a new head on every saved full mask (accepted, amended, settled,
 imported) and every scribble, and records it as a model version with its per-class
-validation IoU.
+validation IoU. Both pass the tiles' pixels to the model room: the head learns a
+full-resolution refinement of its stride-4 proposals from them, and proposing uses them
+to refine each mask (the uncertainty maps stay on the stride-4 grid).
 """
 
 from __future__ import annotations
@@ -122,6 +124,14 @@ def _blocks(
     return out
 
 
+def _part(rgb: np.ndarray, block: Window, w: Window) -> np.ndarray:
+    """The pixels of window ``w`` from ``rgb``, the pixels of ``block`` (which holds ``w``)."""
+    return rgb[
+        w.row - block.row : w.row - block.row + w.height,
+        w.col - block.col : w.col - block.col + w.width,
+    ]
+
+
 def _fractions(mask: np.ndarray, indices: Sequence[int]) -> list[float]:
     counts = np.bincount(mask.ravel(), minlength=256)[list(indices)].astype(np.float64)
     total = counts.sum()
@@ -202,15 +212,12 @@ def propose(project: Project, *, progress: Progress = _no_progress) -> ProposeRe
                         base + d, total, f"{name}: encoding"
                     ),
                 )
+                rgb = reader.read(block)
                 if head is None:
-                    rgb = reader.read(block)
                     rows = detect_image_rows(rgb, settings=settings.cold_start)
                     for t, f in zip(members, feats, strict=True):
                         w = t.window
-                        part = rgb[
-                            w.row - block.row : w.row - block.row + w.height,
-                            w.col - block.col : w.col - block.col + w.width,
-                        ]
+                        part = _part(rgb, block, w)
                         mask = cold_start_proposal(
                             part,
                             settings=settings.cold_start,
@@ -229,12 +236,14 @@ def propose(project: Project, *, progress: Progress = _no_progress) -> ProposeRe
                 else:
                     from labeler.model.predict import propose_tiles
 
+                    pixels = [_part(rgb, block, t.window) for t in members]
                     props = propose_tiles(
                         head,
                         feats,
                         tile_shapes=[t.shape for t in members],
                         mc_samples=settings.model.mc_samples,
                         seed=settings.model.seed,
+                        images=pixels,
                     )
                     for t, p in zip(members, props, strict=True):
                         items.append(
@@ -347,6 +356,7 @@ def retrain(project: Project, *, progress: Progress = _no_progress) -> RetrainRe
         )
     encoder, cache = _encoder_and_cache(project)
     feats: list = [None] * len(items)
+    pixels: list = [None] * len(items)
     by_image: dict[int, list[int]] = {}
     for i, it in enumerate(items):
         by_image.setdefault(it.image.id, []).append(i)
@@ -355,6 +365,8 @@ def retrain(project: Project, *, progress: Progress = _no_progress) -> RetrainRe
         image = items[idx[0]].image
         with open_image(project.image_path(image)) as reader:
             got = _features(cache, encoder, reader, image, [items[i].tile for i in idx])
+            for i in idx:
+                pixels[i] = reader.read(items[i].tile.window)
         for i, f in zip(idx, got, strict=True):
             feats[i] = f
         done += len(idx)
@@ -373,6 +385,7 @@ def retrain(project: Project, *, progress: Progress = _no_progress) -> RetrainRe
             [it.mask for it in items],
             class_indices=schema.indices,
             features=feats,
+            images=pixels,
             settings=settings.model,
             mode="features",
             progress=on_epoch,
@@ -411,6 +424,7 @@ def retrain(project: Project, *, progress: Progress = _no_progress) -> RetrainRe
             "full_tiles": sum(it.kind == "full" for it in items),
             "scribble_tiles": sum(it.kind == "scribble" for it in items),
             "epochs_max": n_epochs,
+            "refine_channels": result.head.config.refine_channels,
         },
     )
     return RetrainResult(
