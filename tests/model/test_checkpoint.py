@@ -78,3 +78,27 @@ def test_save_checks_its_inputs(tmp_path):
         save_checkpoint(
             tmp_path / "a.pt", _head(), encoder_version="v", val_iou=np.ones(3), extra={"x": [1]}
         )
+
+
+def test_refining_head_round_trips(tmp_path):
+    torch.manual_seed(1)
+    head = ProposalHead(HeadConfig(class_indices=(0, 1, 3), width=8, refine_channels=4))
+    path = save_checkpoint(tmp_path / "r.pt", head, encoder_version="v", val_iou=[1, 1, 1])
+    loaded, meta = load_checkpoint(path)
+    assert meta.config.refine_channels == 4 and loaded.refiner is not None
+    for (k, a), (_, b) in zip(head.state_dict().items(), loaded.state_dict().items(), strict=True):
+        torch.testing.assert_close(a, b, rtol=0, atol=0, msg=k)
+
+
+def test_checkpoint_of_the_previous_format_asks_for_retraining(tmp_path):
+    path = save_checkpoint(tmp_path / "old.pt", _head(), encoder_version="v", val_iou=[1, 1, 1])
+    obj = torch.load(path, weights_only=True)
+    obj["format_version"] = 1  # heads written before the refinement existed
+    obj["config"].pop("refine_channels")
+    torch.save(obj, path)
+    with pytest.raises(
+        ValueError,
+        match=r"old\.pt: checkpoint format version 1, this labeler reads 2; retrain the head "
+        r"\('labeler retrain'\)",
+    ):
+        load_checkpoint(path)

@@ -1,8 +1,10 @@
 import numpy as np
 import pytest
 import torch
+import torch.nn.functional as F
 
 from labeler.model.head import HeadConfig, ProposalHead, class_lut, features_to_tensors
+from labeler.model.refine import pixel_input
 
 
 def _features(n, size=64, seed=0):
@@ -99,3 +101,47 @@ def test_head_config_validation(kwargs, match):
 def test_head_config_round_trips_through_a_dict():
     cfg = HeadConfig(class_indices=(0, 2, 3), width=16, dropout=0.1)
     assert HeadConfig.from_dict(cfg.as_dict()) == cfg
+
+
+# -- refinement -------------------------------------------------------------------------------
+def test_refining_head_gives_full_resolution_logits():
+    torch.manual_seed(0)
+    cfg = HeadConfig(class_indices=(0, 1, 3), width=8, refine_channels=4)
+    assert cfg.refines and HeadConfig.from_dict(cfg.as_dict()) == cfg
+    head = ProposalHead(cfg).eval()
+    levels = features_to_tensors(_features(2))
+    pixels = pixel_input(np.random.default_rng(0).integers(0, 256, (2, 62, 61, 3), np.uint8))
+    with torch.no_grad():
+        out = head(levels, pixels=pixels)
+        z = head.trunk(levels)
+        # untrained refiner (zero output layer): the dropout-free logits, bilinearly upsampled
+        want = F.interpolate(head.classifier(z), size=(62, 61), mode="bilinear")
+    assert tuple(out.shape) == (2, 3, 62, 61)
+    torch.testing.assert_close(out, want, rtol=0, atol=1e-6)
+
+
+def test_refinement_is_deterministic_in_training_mode():
+    torch.manual_seed(1)
+    head = ProposalHead(HeadConfig(width=8, dropout=0.5, refine_channels=4)).train()
+    levels = features_to_tensors(_features(1))
+    pixels = pixel_input(np.zeros((1, 64, 64, 3), np.uint8))
+    with torch.no_grad():
+        a, b = head(levels, pixels=pixels), head(levels, pixels=pixels)
+    torch.testing.assert_close(a, b, rtol=0, atol=0)  # dropout is only in classify()
+
+
+def test_refine_refuses_what_does_not_fit():
+    plain = ProposalHead(HeadConfig(width=8))
+    levels = features_to_tensors(_features(1))
+    pixels = pixel_input(np.zeros((1, 64, 64, 3), np.uint8))
+    with torch.no_grad():
+        z = plain.trunk(levels)
+        with pytest.raises(ValueError, match=r"pixels: this head has no refinement"):
+            plain.refine(z, pixels)
+        head = ProposalHead(HeadConfig(width=8, refine_channels=4))
+        with pytest.raises(
+            ValueError, match=r"rounded up\) is 16 x 16, got shape \(1, 4, 70, 64\)"
+        ):
+            head.refine(z, pixel_input(np.zeros((1, 70, 64, 3), np.uint8)))
+    with pytest.raises(ValueError, match=r"refine_channels: expected 0 \(no refinement\)"):
+        HeadConfig(refine_channels=-1)

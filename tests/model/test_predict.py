@@ -19,6 +19,7 @@ from labeler.model.predict import (
     margin_t,
     propose_tiles,
 )
+from labeler.model.refine import pixel_input
 from labeler.picker import pixel_bald, pixel_entropy, pixel_margin
 
 
@@ -251,3 +252,59 @@ def test_guide_images_must_fit_the_tiles(head):
         propose_tiles(head, feats, images=[np.zeros((64, 64, 3), np.uint8)] * 2)
     with pytest.raises(ValueError, match=r"images: tile 0 expected shape \(64, 64, 3\)"):
         propose_tiles(head, feats, images=[np.zeros((64, 64), np.uint8)], tile_shapes=[(64, 64)])
+
+
+# -- refinement -------------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def refining_head():
+    torch.manual_seed(2)
+    h = ProposalHead(HeadConfig(class_indices=(0, 1, 3), width=8, dropout=0.3, refine_channels=4))
+    with torch.no_grad():  # a trained-looking refiner: non-zero correction
+        h.classifier.weight.mul_(5.0)
+        h.refiner.out.weight.normal_(0.0, 2.0)
+    return h.eval()
+
+
+def test_refined_mask_is_the_argmax_of_the_refined_logits(refining_head):
+    feats = _features(2, size=50, seed=6)
+    rng = np.random.default_rng(7)
+    images = [rng.integers(0, 256, (50, 49, 3), dtype=np.uint8) for _ in range(2)]
+    props = propose_tiles(
+        refining_head, feats, tile_shapes=[(50, 49)] * 2, mc_samples=4, seed=1, images=images
+    )
+    with torch.no_grad():
+        logits = refining_head(features_to_tensors(feats), pixels=pixel_input(np.stack(images)))
+    want = np.array([0, 1, 3], np.uint8)[np.argmax(logits.numpy(), axis=1)]
+    for p, w in zip(props, want, strict=True):
+        assert p.refined and p.mask.shape == (50, 49)
+        np.testing.assert_array_equal(p.mask, w)
+        np.testing.assert_allclose(
+            p.class_fractions, [(p.mask == c).mean() for c in (0, 1, 3)], atol=1e-12
+        )
+
+
+def test_refinement_runs_once_and_leaves_uncertainty_alone(refining_head):
+    feats = _features(2, seed=8)
+    rng = np.random.default_rng(9)
+    images = [rng.integers(0, 256, (64, 64, 3), dtype=np.uint8) for _ in range(2)]
+    one = propose_tiles(refining_head, feats, mc_samples=1, images=images)
+    many = propose_tiles(refining_head, feats, mc_samples=6, seed=3, images=images)
+    plain = propose_tiles(refining_head, feats, mc_samples=6, seed=3)
+    for a, b, c in zip(one, many, plain, strict=True):
+        np.testing.assert_array_equal(a.mask, b.mask)  # not per dropout pass
+        np.testing.assert_array_equal(b.uncertainty, c.uncertainty)  # maps from dropout only
+        assert b.refined and not c.refined
+        assert not np.array_equal(b.mask, c.mask)
+
+
+def test_refining_head_without_pixels_gives_the_bilinear_mask(refining_head):
+    feats = _features(1, seed=10)
+    prop = propose_tiles(refining_head, feats, mc_samples=1)[0]
+    with torch.no_grad():
+        z = refining_head.trunk(features_to_tensors(feats))
+        up = torch.nn.functional.interpolate(
+            refining_head.classifier(z).softmax(dim=1), size=(64, 64), mode="bilinear"
+        )
+    want = np.array([0, 1, 3], np.uint8)[np.argmax(up[0].numpy(), axis=0)]
+    assert not prop.refined
+    assert (prop.mask == want).mean() > 0.999  # float rounding ties at most

@@ -8,11 +8,15 @@ from torchvision import tv_tensors
 
 from labeler.errors import InputError
 from labeler.model.encoder import encode_tiles
+from labeler.model.head import REFINE_CHANNELS, HeadConfig
+from labeler.model.predict import propose_tiles
 from labeler.model.train import (
     RandomQuarterTurn,
     _batches,
+    _feature_batch,
     _loss,
     class_weights,
+    colour_jitter,
     dihedral,
     image_augmentation,
     train_head,
@@ -219,3 +223,109 @@ def test_features_of_other_tiles_are_refused(tiles):
         match=r"features: tile 0 has stride-4 features 16 x 16 but its mask is \(128, 128\)",
     ):
         fit(big, class_indices=(0, 1), features=feats, settings=TINY, mode="features")
+
+
+# -- refinement -------------------------------------------------------------------------------
+def blade_tiles(n, *, size=64, seed=0):
+    """``n`` invented tiles: thin green blades (1-2 px wide, class 1) on brown soil."""
+    rng = np.random.default_rng(seed)
+    images, masks = [], []
+    for _ in range(n):
+        im = np.empty((size, size, 3), np.float64)
+        im[:] = (120, 90, 60)
+        m = np.zeros((size, size), np.uint8)
+        for _ in range(6):
+            k, w = int(rng.integers(2, size - 4)), int(rng.integers(1, 3))
+            if rng.random() < 0.5:
+                m[:, k : k + w] = 1
+            else:
+                m[k : k + w, :] = 1
+        im[m == 1] = (50, 160, 40)
+        im += rng.normal(0, 6, im.shape)
+        images.append(np.clip(im, 0, 255).astype(np.uint8))
+        masks.append(m)
+    return images, masks
+
+
+def test_feature_batches_move_pixels_with_masks_and_jitter_only_pixels():
+    rng = np.random.default_rng(4)
+    masks = [np.kron(zoo_four_classes(), np.ones((4, 4), np.uint8))]  # 32 x 32, four classes
+    image = np.zeros((32, 32, 3), np.uint8)
+    image[..., 1] = masks[0] * 40 + 20  # green channel encodes the class
+    feats = [
+        tuple(np.zeros(s, np.float16) for s in ((24, 8, 8), (40, 4, 4), (112, 2, 2), (320, 1, 1)))
+    ]
+    feats[0][0][0] = zoo_four_classes().astype(np.float16)  # one value per 4 x 4 cell
+    shape_of = {0: (32, 32)}
+    for _ in range(8):
+        levels, target, pixels = _feature_batch(
+            [0], feats, masks, shape_of, rng, images=[image], jitter=None
+        )
+        m = target[0].numpy()
+        np.testing.assert_array_equal((pixels[0, 1].numpy() - 20) // 40, m)  # same turn
+        cells = levels[0][0, 0].numpy()  # stride-4 cells of the class map: same turn
+        np.testing.assert_array_equal(cells, m[::4, ::4])
+    torch.manual_seed(0)
+    levels, target, pixels = _feature_batch(
+        [0], feats, masks, {0: (30, 30)}, rng, images=[image], jitter=colour_jitter()
+    )  # 30 px sides: no turn, only jitter
+    np.testing.assert_array_equal(target[0].numpy(), masks[0])
+    np.testing.assert_array_equal(levels[0][0].numpy(), feats[0][0].astype(np.float32))
+    assert pixels.dtype == torch.uint8 and not np.array_equal(
+        pixels[0].permute(1, 2, 0).numpy(), image
+    )
+
+
+def test_default_head_refines_only_when_pixels_are_given(tiles):
+    images, masks, feats = tiles
+    plain = fit(masks, class_indices=(0, 1), features=feats, settings=TINY, mode="features")
+    assert plain.head.config.refine_channels == 0 and plain.head.refiner is None
+    refined = fit(
+        masks, class_indices=(0, 1), features=feats, images=images, settings=TINY, mode="features"
+    )
+    assert refined.head.config.refine_channels == REFINE_CHANNELS
+    assert refined.mode == "features" and np.isfinite(refined.history[-1]["val_loss"])
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "match"),
+    [
+        (
+            {"config": HeadConfig(class_indices=(0, 1), refine_channels=8)},
+            r"images: a head with refinement \(config.refine_channels = 8\) learns from the "
+            r"tiles' pixels",
+        ),
+        (
+            {"images": [np.zeros((64, 60, 3), np.uint8)] * 3},
+            r"images: tile 0 expected an RGB tile of shape \(64, 64, 3\) like its mask, got "
+            r"\(64, 60, 3\)",
+        ),
+        ({"aux_weight": -1.0}, r"aux_weight: expected a weight >= 0, got -1.0"),
+    ],
+)
+def test_bad_refinement_inputs_are_refused(tiles, kwargs, match):
+    images, masks, feats = tiles
+    args = {"class_indices": (0, 1), "features": feats, "settings": TINY, "mode": "features"}
+    with pytest.raises(ValueError, match=match):
+        fit(masks, **(args | kwargs))
+
+
+def test_refinement_recovers_blades_thinner_than_a_cell(pooling_encoder):
+    # blades of 1-2 px fill at most half a stride-4 cell: the bilinear mask of the coarse
+    # logits misses most of them, the refinement sees them in the pixels
+    images, masks = blade_tiles(8, seed=1)
+    feats = encode_tiles(pooling_encoder, images)
+    s = ModelSettings(epochs=6, batch_size=4, val_share=0.0, seed=0, min_labelled_tiles=3)
+    res = train_head(
+        masks[:6], class_indices=(0, 1), features=feats[:6], images=images[:6], settings=s
+    )
+    refined = propose_tiles(res.head, feats[6:], images=images[6:], mc_samples=1)
+    coarse = propose_tiles(res.head, feats[6:], mc_samples=1)
+
+    def iou(props):  # IoU = TP / (TP + FP + FN), pooled over the held-out tiles
+        pred = np.stack([p.mask for p in props]) == 1
+        true = np.stack(masks[6:]) == 1
+        return (pred & true).sum() / (pred | true).sum()
+
+    assert all(p.refined for p in refined)
+    assert iou(refined) > 0.8 and iou(refined) > iou(coarse) + 0.2
