@@ -71,3 +71,36 @@ def test_missing_checkpoint_is_a_clear_error(one_plot):
     )
     with pytest.raises(LabelerError, match="cannot load the model head-x"):
         propose(project)
+
+
+def test_head_proposals_are_refined_from_the_tile_pixels(one_plot):
+    from labeler.imagery.read import read_image
+    from labeler.model.checkpoint import load_checkpoint
+    from labeler.model.encoder import encode_tiles, load_encoder
+    from labeler.model.predict import propose_tiles
+
+    project, truth = one_plot
+    store = project.store
+    tiles = store.tiles()
+    for t in tiles[:3]:
+        save_tile_mask(project, t.id, "survey", truth[t.window.slices], parent_version=None)
+    retrain(project)
+    mv = store.latest_model_version(kind="head")
+    assert mv.details["refine_channels"] > 0
+    head, meta = load_checkpoint(project.root / mv.checkpoint)
+    assert meta.config.refine_channels == mv.details["refine_channels"]
+    propose(project)
+    # the stored mask is the refined one, made from the tile's own pixels
+    tile = tiles[7]
+    image = read_image(project.image_path(store.images()[0]))[tile.window.slices]
+    feats = encode_tiles(load_encoder(), [image])
+    settings = project.settings.model
+    want = propose_tiles(
+        head, feats, mc_samples=settings.mc_samples, seed=settings.seed, images=[image]
+    )[0]
+    assert want.refined
+    stored = store.latest_proposal(tile.id)
+    np.testing.assert_array_equal(stored.mask(), want.mask)
+    np.testing.assert_allclose(
+        stored.uncertainty().astype(np.float32), want.uncertainty.astype(np.float32), atol=1e-3
+    )
