@@ -15,7 +15,14 @@ import rasterio
 from affine import Affine
 from PIL import Image
 
-__all__ = ["file_mode", "atomic_write_bytes", "write_geotiff", "write_png", "png_bytes", "png_decode"]
+__all__ = [
+    "file_mode",
+    "atomic_write_bytes",
+    "write_geotiff",
+    "write_png",
+    "png_bytes",
+    "png_decode",
+]
 
 
 def file_mode() -> int:
@@ -25,16 +32,22 @@ def file_mode() -> int:
     return 0o666 & ~mask
 
 
-def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
-    """Write ``data`` to ``path`` through a temporary file in the same folder and rename."""
+def atomic_write_bytes(path: str | os.PathLike[str], data: bytes, *, fsync: bool = True) -> Path:
+    """Write ``data`` to ``path`` through a temporary file in the same folder and rename.
+
+    A crash leaves the old file or the new one, never half of one. ``fsync=False`` skips
+    flushing to disk (for derivable data whose readers verify a checksum anyway, such as
+    the feature cache).
+    """
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
+            if fsync:
+                fh.flush()
+                os.fsync(fh.fileno())
         os.chmod(tmp, file_mode())  # mkstemp makes 0600; give the file the usual mode
         os.replace(tmp, target)
     except BaseException:

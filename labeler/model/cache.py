@@ -31,7 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
-from labeler.model._files import write_atomic
+from labeler.imagery.write import atomic_write_bytes
 from labeler.model.encoder import FEATURE_CHANNELS, encode_tiles, feature_shapes
 
 __all__ = ["FeatureCache", "MAGIC"]
@@ -172,7 +172,7 @@ class FeatureCache:
         ).encode("utf-8")
         blob = MAGIC + struct.pack("<I", len(header)) + header + payload
         # derivable data: skip fsync, a torn file fails its checksum and is recomputed
-        return write_atomic(self.path_for(key), blob, fsync=False)
+        return atomic_write_bytes(self.path_for(key), blob, fsync=False)
 
     # -- many entries -----------------------------------------------------------------------
     def get_or_compute(

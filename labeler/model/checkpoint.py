@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from labeler.model._files import write_atomic
+from labeler.imagery.write import atomic_write_bytes
 from labeler.model.head import HeadConfig, ProposalHead
 
 __all__ = ["CheckpointMeta", "save_checkpoint", "load_checkpoint", "FORMAT"]
@@ -98,7 +98,7 @@ def save_checkpoint(
     }
     buf = io.BytesIO()
     torch.save(payload, buf)
-    return write_atomic(path, buf.getvalue())
+    return atomic_write_bytes(path, buf.getvalue())
 
 
 def load_checkpoint(path: str | os.PathLike[str]) -> tuple[ProposalHead, CheckpointMeta]:
