@@ -85,6 +85,7 @@ REPO = Path(__file__).resolve().parents[1]
 if str(REPO) not in sys.path:
     sys.path.insert(0, str(REPO))
 
+from benchmarks.datasets import peanut_truth  # noqa: E402
 from labeler.agreement import confusion_matrix, mean_iou  # noqa: E402
 from labeler.picker import CandidatePool, select_batch  # noqa: E402
 from labeler.settings import STRATEGIES, ModelSettings  # noqa: E402
@@ -180,9 +181,7 @@ class TileSet:
 
 
 # -- curve arithmetic -----------------------------------------------------------------------------
-def share_to_target(
-    shares: Sequence[float], mious: Sequence[float], target: float
-) -> float | None:
+def share_to_target(shares: Sequence[float], mious: Sequence[float], target: float) -> float | None:
     """Share of labelled tiles at which a learning curve first reaches ``target``.
 
     The curve is the polyline through ``(shares[r], mious[r])``; between the last round
@@ -236,9 +235,7 @@ def round_sizes(n_pool: int, *, n_initial: int, k: int, rounds: int) -> list[int
     The list stops early when the pool is exhausted (the last round takes the rest).
     """
     if not 1 <= n_initial <= n_pool:
-        raise ValueError(
-            f"n_initial: expected 1..{n_pool} tiles (the pool size), got {n_initial}"
-        )
+        raise ValueError(f"n_initial: expected 1..{n_pool} tiles (the pool size), got {n_initial}")
     if k < 1:
         raise ValueError(f"k: expected at least 1 tile per round, got {k}")
     if rounds < 0:
@@ -302,8 +299,9 @@ def _evaluate(head, heldout: TileSet, *, n_classes: int, mc_samples: int, seed: 
     cm = np.zeros((n_classes, n_classes), np.int64)
     for start in range(0, len(heldout), 32):
         rows = list(range(start, min(start + 32, len(heldout))))
-        for r, prop in zip(rows, _propose(head, heldout, rows, mc_samples=mc_samples, seed=seed),
-                           strict=True):
+        for r, prop in zip(
+            rows, _propose(head, heldout, rows, mc_samples=mc_samples, seed=seed), strict=True
+        ):
             cm += confusion_matrix(heldout.masks[r], prop.mask, n_classes=n_classes)
     return mean_iou(cm)
 
@@ -326,14 +324,13 @@ class _PoolScores:
 
 def _pool_scores(head, pool: TileSet, labelled: np.ndarray, *, k_classes, mc_samples, seed):
     n = len(pool)
-    out = _PoolScores(
-        np.zeros(n), np.ones(n), np.zeros(n), np.zeros((n, k_classes), np.float64)
-    )
+    out = _PoolScores(np.zeros(n), np.ones(n), np.zeros(n), np.zeros((n, k_classes), np.float64))
     rows = np.flatnonzero(~labelled).tolist()
     for start in range(0, len(rows), 32):
         part = rows[start : start + 32]
-        for r, p in zip(part, _propose(head, pool, part, mc_samples=mc_samples, seed=seed),
-                        strict=True):
+        for r, p in zip(
+            part, _propose(head, pool, part, mc_samples=mc_samples, seed=seed), strict=True
+        ):
             out.entropy[r] = p.mean_entropy
             out.margin[r] = min(max(p.mean_margin, 0.0), 1.0)
             out.bald[r] = max(p.mean_bald, 0.0)
@@ -354,9 +351,7 @@ def _pick(
     """Pool rows of the next batch, the way ``labeler pick`` builds its pool."""
     n = labelled.size
     if scores is None:  # random and coreset read no uncertainty
-        scores = _PoolScores(
-            np.zeros(n), np.ones(n), np.zeros(n), np.zeros(truth_fractions.shape)
-        )
+        scores = _PoolScores(np.zeros(n), np.ones(n), np.zeros(n), np.zeros(truth_fractions.shape))
     fractions = np.where(labelled[:, None], truth_fractions, scores.fractions)
     pool = CandidatePool(
         ids=np.arange(n),
@@ -476,8 +471,12 @@ def run_curves(
         ms = dataclasses.replace(reference_settings, seed=int(seeds[0]))
         res = _train(pool, range(n), class_indices=idx, settings=ms, encoder=encoder)
         reference = {
-            "miou": round(_evaluate(res.head, heldout, n_classes=n_classes,
-                                    mc_samples=mc_samples, seed=seeds[0]), 4),
+            "miou": round(
+                _evaluate(
+                    res.head, heldout, n_classes=n_classes, mc_samples=mc_samples, seed=seeds[0]
+                ),
+                4,
+            ),
             "seed": int(seeds[0]),
             "epochs_max": ms.epochs,
             "epochs_run": len(res.history),
@@ -487,20 +486,22 @@ def run_curves(
     for seed in seeds:
         ms = dataclasses.replace(s0, seed=int(seed))
         res = _train(pool, range(n), class_indices=idx, settings=ms, encoder=encoder)
-        full.append(_evaluate(res.head, heldout, n_classes=n_classes, mc_samples=mc_samples,
-                              seed=seed))
+        full.append(
+            _evaluate(res.head, heldout, n_classes=n_classes, mc_samples=mc_samples, seed=seed)
+        )
         step(f"seed {seed}: full labels")
         initial = np.zeros(n, bool)
         initial[np.random.default_rng(seed).choice(n, size=n_initial, replace=False)] = True
-        res0 = _train(pool, np.flatnonzero(initial), class_indices=idx, settings=ms,
-                      encoder=encoder)
-        miou0 = _evaluate(res0.head, heldout, n_classes=n_classes, mc_samples=mc_samples,
-                          seed=seed)
+        res0 = _train(
+            pool, np.flatnonzero(initial), class_indices=idx, settings=ms, encoder=encoder
+        )
+        miou0 = _evaluate(res0.head, heldout, n_classes=n_classes, mc_samples=mc_samples, seed=seed)
         step(f"seed {seed}: round 0")
         scores0 = None
         if len(sizes) > 1 and NEEDS_PROPOSALS.intersection(strategies):
-            scores0 = _pool_scores(res0.head, pool, initial, k_classes=len(idx),
-                                   mc_samples=mc_samples, seed=seed)
+            scores0 = _pool_scores(
+                res0.head, pool, initial, k_classes=len(idx), mc_samples=mc_samples, seed=seed
+            )
         for strategy in strategies:
             labelled = initial.copy()
             curve = [miou0]
@@ -516,13 +517,23 @@ def run_curves(
                     scores=scores if strategy in NEEDS_PROPOSALS else None,
                 )
                 labelled[picked] = True
-                res = _train(pool, np.flatnonzero(labelled), class_indices=idx, settings=ms,
-                             encoder=encoder)
-                curve.append(_evaluate(res.head, heldout, n_classes=n_classes,
-                                       mc_samples=mc_samples, seed=seed))
+                res = _train(
+                    pool, np.flatnonzero(labelled), class_indices=idx, settings=ms, encoder=encoder
+                )
+                curve.append(
+                    _evaluate(
+                        res.head, heldout, n_classes=n_classes, mc_samples=mc_samples, seed=seed
+                    )
+                )
                 if strategy in NEEDS_PROPOSALS and r + 1 < len(sizes):
-                    scores = _pool_scores(res.head, pool, labelled, k_classes=len(idx),
-                                          mc_samples=mc_samples, seed=seed)
+                    scores = _pool_scores(
+                        res.head,
+                        pool,
+                        labelled,
+                        k_classes=len(idx),
+                        mc_samples=mc_samples,
+                        seed=seed,
+                    )
                 step(f"seed {seed}: {strategy} round {r} ({int(labelled.sum())} tiles)")
             curves[strategy].append(curve)
 
@@ -552,8 +563,9 @@ def run_curves(
             )
             entry["savings_vs_random_pct_per_seed"] = [
                 _r1(savings_pct(a, b), 1)
-                for a, b in zip(entry["share_to_95pct_per_seed"],
-                                base["share_to_95pct_per_seed"], strict=True)
+                for a, b in zip(
+                    entry["share_to_95pct_per_seed"], base["share_to_95pct_per_seed"], strict=True
+                )
             ]
             if base["share_to_95pct"] is None and entry["share_to_95pct"] is not None:
                 # random never got there within the rounds run: a lower bound only
@@ -656,18 +668,6 @@ def load_demo(
     return pool, heldout, info
 
 
-def _peanut_truth(rgb: np.ndarray, name: str) -> np.ndarray:
-    # Tran & Phan 2023 label colours (SOURCE.md): black soil, (0,255,0) crop, (255,0,0) weed
-    r, g, b = (rgb[..., i].astype(np.int32) for i in range(3))
-    mask = np.full(rgb.shape[:2], 255, np.uint8)
-    mask[(r == 0) & (g == 0) & (b == 0)] = 0
-    mask[(r == 0) & (g == 255) & (b == 0)] = 1
-    mask[(r == 255) & (g == 0) & (b == 0)] = 2
-    if (mask == 255).any():
-        raise ValueError(f"{name}: label holds colours other than black, green and red")
-    return mask
-
-
 def load_peanut(
     *,
     encoder,
@@ -701,7 +701,7 @@ def load_peanut(
         out = []
         for p in paths:
             label = folder / "labels" / f"{p.stem}.png"
-            truth = _peanut_truth(read_image(label), label.name)
+            truth = peanut_truth(read_image(label), label.name)
             out.append(_tiles_of("peanut", p.stem, read_image(p), truth, overlap=0))
         return out
 
@@ -745,13 +745,26 @@ def plot_curves(result: dict, *, title: str) -> bytes:
         hi = np.asarray(entry["miou_by_round_max"], float)
         colour = COLOURS.get(name, "#999999")
         ax.fill_between(x, lo, hi, color=colour, alpha=0.15, linewidth=0)
-        ax.plot(x, y, color=colour, marker="o", markersize=3,
-                linewidth=2.4 if name == "mixed" else 1.4, label=name)
+        ax.plot(
+            x,
+            y,
+            color=colour,
+            marker="o",
+            markersize=3,
+            linewidth=2.4 if name == "mixed" else 1.4,
+            label=name,
+        )
     full = result["full_miou"]
-    ax.axhline(0.95 * full, color="#555555", linestyle="--", linewidth=1.0,
-               label=f"95 % of full labels ({0.95 * full:.3f})")
-    ax.axhline(full, color="#555555", linestyle=":", linewidth=1.0,
-               label=f"full labels ({full:.3f})")
+    ax.axhline(
+        0.95 * full,
+        color="#555555",
+        linestyle="--",
+        linewidth=1.0,
+        label=f"95 % of full labels ({0.95 * full:.3f})",
+    )
+    ax.axhline(
+        full, color="#555555", linestyle=":", linewidth=1.0, label=f"full labels ({full:.3f})"
+    )
     ax.set_xlabel("labelled share of the pool tiles (%)")
     ax.set_ylabel("held-out mIoU")
     ax.set_title(title, fontsize=10)
@@ -825,11 +838,13 @@ def markdown_table(report: dict) -> str:
         for strategy, e in res["strategies"].items():
             to_ref = "n/a"
             if ref:
-                to_ref = _pct(share_to_target(
-                    e["labelled_share_by_round"],
-                    [math.nan if v is None else v for v in e["miou_by_round"]],
-                    0.95 * ref["miou"],
-                ))
+                to_ref = _pct(
+                    share_to_target(
+                        e["labelled_share_by_round"],
+                        [math.nan if v is None else v for v in e["miou_by_round"]],
+                        0.95 * ref["miou"],
+                    )
+                )
             sav = e.get("savings_vs_random_pct")
             if sav is not None:
                 sav_text = f"{sav:.1f} %"
@@ -865,7 +880,7 @@ def markdown_table(report: dict) -> str:
     lines += [
         "## Run",
         "",
-        f"Training: `train_head(mode=\"features\")`, at most {ctx.get('epochs')} epochs with "
+        f'Training: `train_head(mode="features")`, at most {ctx.get("epochs")} epochs with '
         f"the project's early stopping (patience {ctx.get('patience')}, validation share "
         f"{ctx.get('val_share')}); proposals with {ctx.get('mc_samples')} MC-dropout passes; "
         f"{ctx.get('threads')} torch thread(s). With a budget this short the early "
@@ -909,15 +924,26 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--rounds", type=int, help="picking rounds after round 0 (default per dataset)")
     ap.add_argument("--k", type=int, help="tiles per round (default per dataset)")
     ap.add_argument("--strategies", default=",".join(STRATEGIES))
-    ap.add_argument("--initial-share", type=float, default=0.03,
-                    help="round-0 random share of the pool (at least min_labelled_tiles tiles)")
-    ap.add_argument("--quick", action="store_true",
-                    help="smoke run: 1 seed, random and mixed, 2 rounds, small peanut subset")
+    ap.add_argument(
+        "--initial-share",
+        type=float,
+        default=0.03,
+        help="round-0 random share of the pool (at least min_labelled_tiles tiles)",
+    )
+    ap.add_argument(
+        "--quick",
+        action="store_true",
+        help="smoke run: 1 seed, random and mixed, 2 rounds, small peanut subset",
+    )
     ap.add_argument("--cache", type=Path, help="keep features here (default: a temporary folder)")
     ap.add_argument("--threads", type=int, default=1, help="torch threads (default 1)")
     ap.add_argument("--epochs", type=int, default=6, help="upper bound of training epochs")
-    ap.add_argument("--mc-samples", type=int, default=ModelSettings().mc_samples,
-                    help="MC-dropout passes (default: the project's model.mc_samples)")
+    ap.add_argument(
+        "--mc-samples",
+        type=int,
+        default=ModelSettings().mc_samples,
+        help="MC-dropout passes (default: the project's model.mc_samples)",
+    )
     ap.add_argument("--split-seed", type=int, default=0, help="seed of the held-out choice")
     ap.add_argument("--peanut-pool-images", type=int, default=16)
     ap.add_argument("--peanut-heldout-images", type=int, default=6)
@@ -981,8 +1007,10 @@ def main(argv: list[str] | None = None) -> int:
                 reasons[name] = str(exc)
                 log(f"{name}: skipped ({exc})")
                 continue
-            log(f"{name}: {len(pool)} pool / {len(heldout)} held-out tiles encoded in "
-                f"{time.perf_counter() - t0:.0f} s")
+            log(
+                f"{name}: {len(pool)} pool / {len(heldout)} held-out tiles encoded in "
+                f"{time.perf_counter() - t0:.0f} s"
+            )
             n_initial = max(settings.min_labelled_tiles, round(args.initial_share * len(pool)))
             k = args.k or k_default[name]
             rounds = args.rounds if args.rounds is not None else rounds_default[name]
@@ -1015,8 +1043,10 @@ def main(argv: list[str] | None = None) -> int:
             res["rounds"] = len(res["labelled_tiles_by_round"]) - 1
             res["seconds"] = round(time.perf_counter() - t0, 1)
             results[name] = res
-            log(f"{name}: done in {res['seconds']:.0f} s; full mIoU {res['full_miou']}; "
-                + ", ".join(f"{s} {e['share_to_95pct']}" for s, e in res["strategies"].items()))
+            log(
+                f"{name}: done in {res['seconds']:.0f} s; full mIoU {res['full_miou']}; "
+                + ", ".join(f"{s} {e['share_to_95pct']}" for s, e in res["strategies"].items())
+            )
             del pool, heldout
     first = next(iter(results.values()), None)
     report: dict[str, object] = {

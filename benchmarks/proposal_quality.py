@@ -17,10 +17,12 @@ Prints ONE JSON line with
   on soybean leaves"; MIT badge): seeded 48 / 15 split, IoU of the symptom class against
   the experts' consensus mask (``binary_mask`` 255 = two or more of three votes).
 
-Every figure is given for the mask as ``labeler propose`` makes it from the tile's pixels
-(colour-guided upsampling of the stride-4 probabilities, ``propose_tiles(images=...)``)
-and, under keys ending ``_bilinear``, for the plain bilinear upsampling that re-proposal
-from cached features alone uses.
+The head is trained as ``labeler retrain`` trains it, with the tiles' pixels, so it
+learns the full-resolution refinement (``labeler.model.refine``). Every figure is given
+for the mask as ``labeler propose`` makes it from the tile's pixels (the refined logits,
+``propose_tiles(images=...)``) and, under keys ending ``_coarse``, for the same head's
+stride-4 probabilities upsampled bilinearly (the mask without the refinement, as
+``propose_tiles`` makes it when no pixels are given).
 
 The open datasets are read in place from ``../shared/datasets`` beside the repository and
 never copied; a missing dataset gives null with a reason under ``reasons``. Features are
@@ -50,6 +52,7 @@ import numpy as np
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
 
+from benchmarks.datasets import peanut_truth  # noqa: E402
 from labeler.agreement import confusion_matrix, iou_per_class  # noqa: E402
 from labeler.imagery.read import read_image  # noqa: E402
 from labeler.imagery.tiling import stitch, tile_grid  # noqa: E402
@@ -169,22 +172,22 @@ def run_demo(encoder, cache: FeatureCache, settings: ModelSettings, seed: int) -
 
     feats, masks, ims = tile_data(train_ids)
     res = _train(masks, feats, ims, encoder, (0, 1, 2, 3), settings, "demo")
-    cm = {"guided": np.zeros((4, 4), np.int64), "bilinear": np.zeros((4, 4), np.int64)}
+    cm = {"refined": np.zeros((4, 4), np.int64), "coarse": np.zeros((4, 4), np.int64)}
     for start in range(0, len(eval_ids), 32):
         f, m, ims = tile_data(eval_ids[start : start + 32])
-        for kind, guide in (("guided", ims), ("bilinear", None)):
+        for kind, guide in (("refined", ims), ("coarse", None)):
             props = propose_tiles(
                 res.head, f, mc_samples=settings.mc_samples, seed=seed, images=guide
             )
             for p, t in zip(props, m, strict=True):
                 cm[kind] += confusion_matrix(t, p.mask, n_classes=4)
-    for kind in ("guided", "bilinear"):
+    for kind in ("refined", "coarse"):
         miou, iou = _iou_report(cm[kind], (0, 1, 2, 3))
         log(
             f"demo: 10 % ({n_train} tiles), {kind} -> mIoU {miou:.4f} on {len(eval_ids)} tiles, "
             f"per class {iou}"
         )
-        suffix = "" if kind == "guided" else "_bilinear"
+        suffix = "" if kind == "refined" else "_coarse"
         out[f"demo_miou_10pct{suffix}"] = round(miou, 4)
         out[f"demo_iou_per_class{suffix}"] = dict(
             zip(("soil", "crop", "weed", "symptom"), _round(iou), strict=True)
@@ -194,16 +197,6 @@ def run_demo(encoder, cache: FeatureCache, settings: ModelSettings, seed: int) -
 
 
 # -- open datasets -------------------------------------------------------------------------------
-def _peanut_truth(rgb: np.ndarray, name: str) -> np.ndarray:
-    # Tran & Phan 2023 label colours (SOURCE.md): black soil, (0,255,0) crop, (255,0,0) weed
-    r, g, b = (rgb[..., i].astype(np.int32) for i in range(3))
-    mask = np.full(rgb.shape[:2], 255, np.uint8)
-    mask[(r == 0) & (g == 0) & (b == 0)] = 0
-    mask[(r == 0) & (g == 255) & (b == 0)] = 1
-    mask[(r == 255) & (g == 0) & (b == 0)] = 2
-    if (mask == 255).any():
-        raise ValueError(f"{name}: label holds colours other than black, green and red")
-    return mask
 
 
 def _soybean_truth(grey: np.ndarray, name: str) -> np.ndarray:
@@ -232,7 +225,7 @@ def run_split(
     order = rng.permutation(len(pairs))
     train_pairs = [pairs[i] for i in order[:n_train]]
     eval_pairs = [pairs[i] for i in order[n_train:]]
-    feats, masks = [], []
+    feats, masks, pixels = [], [], []
     t0 = time.perf_counter()
     for k, (ident, image_path, label_path) in enumerate(train_pairs):
         src = TileSource(name, ident, read_image(image_path), overlap=overlap)
@@ -244,13 +237,14 @@ def run_split(
         )
         feats += _features(cache, encoder, src, pick)
         masks += [np.array(truth[src.windows[i].slices]) for i in pick]
+        pixels += src.tiles([src.keys[i] for i in pick])
         if (k + 1) % 25 == 0:
             log(f"{name}: encoded training image {k + 1}/{len(train_pairs)}")
     log(f"{name}: {len(masks)} training tiles ready in {time.perf_counter() - t0:.0f} s")
-    res = _train(masks, feats, None, None, classes, settings, name)
-    del feats
+    res = _train(masks, feats, pixels, None, classes, settings, name)
+    del feats, pixels
     n = max(classes) + 1
-    cm = {"guided": np.zeros((n, n), np.int64), "bilinear": np.zeros((n, n), np.int64)}
+    cm = {"refined": np.zeros((n, n), np.int64), "coarse": np.zeros((n, n), np.int64)}
     t0 = time.perf_counter()
     for k, (ident, image_path, label_path) in enumerate(eval_pairs):
         image = read_image(image_path)
@@ -258,7 +252,7 @@ def run_split(
         truth = truth_fn(read_image(label_path), label_path.name)
         f = _features(cache, encoder, src, list(range(len(src.windows))))
         shapes = [(w.height, w.width) for w in src.windows]
-        for kind, guide in (("guided", src.tiles(src.keys)), ("bilinear", None)):
+        for kind, guide in (("refined", src.tiles(src.keys)), ("coarse", None)):
             props = propose_tiles(
                 res.head,
                 f,
@@ -327,7 +321,7 @@ def main(argv: list[str] | None = None) -> int:
                 cm, info["peanut"] = run_split(
                     "peanut",
                     pairs,
-                    _peanut_truth,
+                    peanut_truth,
                     (0, 1, 2),
                     300,
                     encoder=encoder,
@@ -337,7 +331,7 @@ def main(argv: list[str] | None = None) -> int:
                     tiles_per_image=args.train_tiles_per_image,
                     overlap=0,
                 )
-                for kind, suffix in (("guided", ""), ("bilinear", "_bilinear")):
+                for kind, suffix in (("refined", ""), ("coarse", "_coarse")):
                     miou, iou = _iou_report(cm[kind], (0, 1, 2))
                     result[f"open_miou{suffix}"] = round(miou, 4)
                     result[f"open_iou_per_class{suffix}"] = dict(
@@ -370,8 +364,8 @@ def main(argv: list[str] | None = None) -> int:
                     tiles_per_image=args.train_tiles_per_image,
                     overlap=0,
                 )
-                result["lesion_iou"] = round(float(iou_per_class(cm["guided"])[3]), 4)
-                result["lesion_iou_bilinear"] = round(float(iou_per_class(cm["bilinear"])[3]), 4)
+                result["lesion_iou"] = round(float(iou_per_class(cm["refined"])[3]), 4)
+                result["lesion_iou_coarse"] = round(float(iou_per_class(cm["coarse"])[3]), 4)
     result["reasons"] = reasons
     result["context"] = {
         "seed": args.seed,

@@ -11,10 +11,15 @@ Prints ONE JSON line:
   batch norms unfolded, one tile at a time under ``torch.no_grad`` (measured in the
   same run, rounds interleaved with the optimised path);
 - ``speedup``: the ratio of the two;
-- ``head_tiles_per_s``: ``propose_tiles`` on features already computed (FPN once, the
-  dropout classifier ``mc_samples`` times, mask + entropy/margin/BALD maps);
-- ``head_guided_tiles_per_s``: the same with the tiles' pixels passed for colour-guided
-  upsampling of the mask (``propose_tiles(images=...)``, as a first proposal runs);
+- ``head_tiles_per_s``: the full proposal path as ``labeler propose`` runs it:
+  ``propose_tiles`` on features already computed and the tiles' pixels, with a refining
+  head (FPN once, the dropout classifier ``mc_samples`` times for the entropy/margin/BALD
+  maps, the full-resolution refinement once per tile for the mask);
+- ``head_coarse_tiles_per_s``: the same head without pixels (coarse-only path: bilinear
+  mask from the stride-4 mean probabilities, as before the refinement existed);
+- ``head_guided_tiles_per_s``: a head without refinement given the pixels (colour-guided
+  upsampling of the mean probabilities, ``labeler.model.upsample``);
+- ``refine_cost_ratio``: ``head_coarse_tiles_per_s / head_tiles_per_s`` (same run);
 - ``peak_rss_mb``: peak resident memory of the process (``resource`` ru_maxrss);
 - context: ``threads``, ``batch``, ``mc_samples``, ``rounds``, ``load_avg_1min``.
 
@@ -40,7 +45,7 @@ import torch
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from labeler.model.encoder import encode_tiles, load_encoder, to_input  # noqa: E402
-from labeler.model.head import HeadConfig, ProposalHead  # noqa: E402
+from labeler.model.head import REFINE_CHANNELS, HeadConfig, ProposalHead  # noqa: E402
 from labeler.model.predict import propose_tiles  # noqa: E402
 from labeler.model.runtime import configure_threads  # noqa: E402
 from labeler.settings import ModelSettings  # noqa: E402
@@ -87,15 +92,29 @@ def main(argv: list[str] | None = None) -> int:
     head_features = [features[i % len(features)] for i in range(args.head_tiles)]
     head_images = [tiles[i % len(features)] for i in range(args.head_tiles)]
     torch.manual_seed(0)
-    head = ProposalHead(HeadConfig(class_indices=(0, 1, 2, 3))).eval()
-    propose_tiles(head, head_features[:16], mc_samples=args.mc_samples)
+    head = ProposalHead(
+        HeadConfig(class_indices=(0, 1, 2, 3), refine_channels=REFINE_CHANNELS)
+    ).eval()
+    plain_head = ProposalHead(HeadConfig(class_indices=(0, 1, 2, 3))).eval()
+    propose_tiles(head, head_features[:16], mc_samples=args.mc_samples, images=head_images[:16])
 
-    base_t, fast_t, bf16_t, head_t, guided_t = [], [], [], [], []
+    base_t, fast_t, bf16_t, head_t, coarse_t, guided_t = [], [], [], [], [], []
     for _ in range(args.rounds):
         base_t.append(_timed(lambda: _baseline_pass(baseline, tiles[: args.baseline_tiles])))
         fast_t.append(_timed(lambda: encode_tiles(fast, tiles, batch_size=args.batch)))
         bf16_t.append(_timed(lambda: encode_tiles(fast_bf16, tiles, batch_size=args.batch)))
         head_t.append(
+            _timed(
+                lambda: propose_tiles(
+                    head,
+                    head_features,
+                    mc_samples=args.mc_samples,
+                    batch_size=args.head_batch,
+                    images=head_images,
+                )
+            )
+        )
+        coarse_t.append(
             _timed(
                 lambda: propose_tiles(
                     head, head_features, mc_samples=args.mc_samples, batch_size=args.head_batch
@@ -105,7 +124,7 @@ def main(argv: list[str] | None = None) -> int:
         guided_t.append(
             _timed(
                 lambda: propose_tiles(
-                    head,
+                    plain_head,
                     head_features,
                     mc_samples=args.mc_samples,
                     batch_size=args.head_batch,
@@ -121,6 +140,8 @@ def main(argv: list[str] | None = None) -> int:
         "encoder_bf16_tiles_per_s": round(args.tiles / min(bf16_t), 2),
         "speedup": round(encoder_rate / baseline_rate, 2),
         "head_tiles_per_s": round(args.head_tiles / min(head_t), 1),
+        "head_coarse_tiles_per_s": round(args.head_tiles / min(coarse_t), 1),
+        "refine_cost_ratio": round(min(head_t) / min(coarse_t), 2),
         "head_guided_tiles_per_s": round(args.head_tiles / min(guided_t), 1),
         "peak_rss_mb": 0.0,
         "threads": threads,
