@@ -98,40 +98,19 @@ def main(argv: list[str] | None = None) -> int:
     plain_head = ProposalHead(HeadConfig(class_indices=(0, 1, 2, 3))).eval()
     propose_tiles(head, head_features[:16], mc_samples=args.mc_samples, images=head_images[:16])
 
+    def heads(h: ProposalHead, images) -> None:
+        propose_tiles(
+            h, head_features, mc_samples=args.mc_samples, batch_size=args.head_batch, images=images
+        )
+
     base_t, fast_t, bf16_t, head_t, coarse_t, guided_t = [], [], [], [], [], []
     for _ in range(args.rounds):
         base_t.append(_timed(lambda: _baseline_pass(baseline, tiles[: args.baseline_tiles])))
         fast_t.append(_timed(lambda: encode_tiles(fast, tiles, batch_size=args.batch)))
         bf16_t.append(_timed(lambda: encode_tiles(fast_bf16, tiles, batch_size=args.batch)))
-        head_t.append(
-            _timed(
-                lambda: propose_tiles(
-                    head,
-                    head_features,
-                    mc_samples=args.mc_samples,
-                    batch_size=args.head_batch,
-                    images=head_images,
-                )
-            )
-        )
-        coarse_t.append(
-            _timed(
-                lambda: propose_tiles(
-                    head, head_features, mc_samples=args.mc_samples, batch_size=args.head_batch
-                )
-            )
-        )
-        guided_t.append(
-            _timed(
-                lambda: propose_tiles(
-                    plain_head,
-                    head_features,
-                    mc_samples=args.mc_samples,
-                    batch_size=args.head_batch,
-                    images=head_images,
-                )
-            )
-        )
+        head_t.append(_timed(lambda: heads(head, head_images)))
+        coarse_t.append(_timed(lambda: heads(head, None)))
+        guided_t.append(_timed(lambda: heads(plain_head, head_images)))
     baseline_rate = args.baseline_tiles / min(base_t)
     encoder_rate = args.tiles / min(fast_t)
     result = {
