@@ -19,7 +19,11 @@ Sections and options (defaults in brackets):
     ``mc_samples`` [8] MC-dropout passes for uncertainty; ``seed`` [0]; ``epochs`` [40]
     upper bound, early stopping decides; ``batch_size`` [8]; ``min_labelled_tiles`` [3]
     fewest labelled tiles ``retrain`` accepts; ``val_share`` [0.2] held-out slice for early
-    stopping; ``threads`` [0] torch threads (0 = all cores).
+    stopping; ``threads`` [0] torch threads (0 = all cores); ``augment`` ["auto"] how
+    ``retrain`` augments: ``"images"`` flips, turns and colour-jitters the tiles and passes
+    them through the encoder every epoch (better with few labels, slower),
+    ``"features"`` turns the cached features (fast), ``"auto"`` images for up to 24
+    labelled tiles, else features.
 ``[picker]``
     ``strategy`` ["mixed"] one of random, entropy, margin, bald, coreset, mixed;
     ``k`` [20] tiles per batch; ``seed`` [0]; ``vegetation_only`` [false].
@@ -65,6 +69,8 @@ __all__ = [
 SETTINGS_FILE = "labeler.toml"
 
 STRATEGIES = ("random", "entropy", "margin", "bald", "coreset", "mixed")
+#: Augmentation modes of head training (``model.augment``; see labeler.model.train).
+AUGMENT_MODES = ("auto", "features", "images")
 
 
 @dataclass(frozen=True)
@@ -108,8 +114,13 @@ class ModelSettings:
     min_labelled_tiles: int = 3
     val_share: float = 0.2
     threads: int = 0
+    augment: str = "auto"
 
     def __post_init__(self) -> None:
+        if self.augment not in AUGMENT_MODES:
+            raise ValueError(
+                f"model.augment: expected one of {', '.join(AUGMENT_MODES)}, got {self.augment!r}"
+            )
         if self.mc_samples < 1:
             raise ValueError(f"model.mc_samples: expected at least 1, got {self.mc_samples}")
         if not 0.0 <= self.val_share < 1.0:
@@ -351,6 +362,7 @@ epochs = 40
 batch_size = 8
 min_labelled_tiles = 3
 val_share = 0.2
+augment = "auto"          # "auto", "images" (few labels, slower) or "features" (fast)
 
 [picker]
 strategy = "mixed"        # random, entropy, margin, bald, coreset, mixed

@@ -76,7 +76,7 @@ from labeler.model.head import (
     features_to_tensors,
 )
 from labeler.model.refine import pixel_input
-from labeler.settings import ModelSettings
+from labeler.settings import AUGMENT_MODES, ModelSettings
 
 __all__ = [
     "TrainResult",
@@ -339,7 +339,7 @@ def train_head(
         raise ValueError(
             f"config: class_indices {cfg.class_indices} differ from class_indices {idx}"
         )
-    if mode not in ("auto", "features", "images"):
+    if mode not in AUGMENT_MODES:
         raise ValueError(f"mode: expected 'auto', 'features' or 'images', got {mode!r}")
     if min_steps_per_epoch < 1:
         raise ValueError(f"min_steps_per_epoch: expected at least 1, got {min_steps_per_epoch}")

@@ -7,7 +7,10 @@ proposed again. Encoder features are cached per tile under ``<project>/cache/fea
 imported) and every scribble, and records it as a model version with its per-class
 validation IoU. Both pass the tiles' pixels to the model room: the head learns a
 full-resolution refinement of its stride-4 proposals from them, and proposing uses them
-to refine each mask (the uncertainty maps stay on the stride-4 grid).
+to refine each mask (the uncertainty maps stay on the stride-4 grid). The ``model.augment``
+setting chooses how training augments (``labeler.model.train``): by default the tiles
+themselves go through the encoder each epoch while there are at most 24 labelled tiles,
+and the cached features are turned beyond that.
 """
 
 from __future__ import annotations
@@ -386,8 +389,9 @@ def retrain(project: Project, *, progress: Progress = _no_progress) -> RetrainRe
             class_indices=schema.indices,
             features=feats,
             images=pixels,
+            encoder=encoder,
             settings=settings.model,
-            mode="features",
+            mode=settings.model.augment,
             progress=on_epoch,
         )
     except InputError as exc:

@@ -50,6 +50,8 @@ def test_cold_start_then_head(one_plot, capsys):
     out = capsys.readouterr().out
     assert "trained head-1 on 3 full masks and 1 scribbled tiles" in out and "validation IoU" in out
     mv = store.latest_model_version(kind="head")
+    # model.augment "auto" with 3 training tiles: the tiles go through the encoder
+    assert mv.details["mode"] == "images"
     assert (project.root / mv.checkpoint).exists() and set(mv.val_iou) == {
         "soil",
         "crop",
@@ -104,3 +106,19 @@ def test_head_proposals_are_refined_from_the_tile_pixels(one_plot):
     np.testing.assert_allclose(
         stored.uncertainty().astype(np.float32), want.uncertainty.astype(np.float32), atol=1e-3
     )
+
+
+def test_retrain_follows_the_augment_setting(one_plot):
+    project, truth = one_plot
+    (project.root / "labeler.toml").write_text(
+        '[model]\nepochs = 1\nmc_samples = 2\nmin_labelled_tiles = 3\naugment = "features"\n'
+    )
+    project = open_project(project.root)
+    try:
+        for t in project.store.tiles()[:3]:
+            save_tile_mask(project, t.id, "survey", truth[t.window.slices], parent_version=None)
+        result = retrain(project)
+        assert result.mode == "features"
+        assert project.store.latest_model_version(kind="head").details["mode"] == "features"
+    finally:
+        project.close()
