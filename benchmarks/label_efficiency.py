@@ -1060,7 +1060,7 @@ def main(argv: list[str] | None = None) -> int:
             "seeds": seeds,
             "epochs": args.epochs,
             "val_share": settings.val_share,
-            "patience": _train_default("patience"),
+            "patience": _train_default("patience") or ModelSettings().patience,
             "mc_samples": args.mc_samples,
             "initial_share": args.initial_share,
             "threads": threads,

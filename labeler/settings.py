@@ -23,7 +23,8 @@ Sections and options (defaults in brackets):
     ``retrain`` augments: ``"images"`` flips, turns and colour-jitters the tiles and passes
     them through the encoder every epoch (better with few labels, slower),
     ``"features"`` turns the cached features (fast), ``"auto"`` images for up to 24
-    labelled tiles, else features.
+    labelled tiles, else features; ``patience`` [10] epochs without a lower validation
+    loss before training stops (a few labelled tiles give a noisy validation loss).
 ``[picker]``
     ``strategy`` ["mixed"] one of random, entropy, margin, bald, coreset, mixed;
     ``k`` [20] tiles per batch; ``seed`` [0]; ``vegetation_only`` [false].
@@ -115,8 +116,11 @@ class ModelSettings:
     val_share: float = 0.2
     threads: int = 0
     augment: str = "auto"
+    patience: int = 10
 
     def __post_init__(self) -> None:
+        if self.patience < 1:
+            raise ValueError(f"model.patience: expected at least 1 epoch, got {self.patience}")
         if self.augment not in AUGMENT_MODES:
             raise ValueError(
                 f"model.augment: expected one of {', '.join(AUGMENT_MODES)}, got {self.augment!r}"
@@ -363,6 +367,7 @@ batch_size = 8
 min_labelled_tiles = 3
 val_share = 0.2
 augment = "auto"          # "auto", "images" (few labels, slower) or "features" (fast)
+patience = 10             # epochs without a lower validation loss before stopping
 
 [picker]
 strategy = "mixed"        # random, entropy, margin, bald, coreset, mixed

@@ -50,6 +50,7 @@ def test_custom_classes(tmp_path):
         ("[model]\nmc_samples = 0\n", {}, "at least 1"),
         ('[picker]\nstrategy = "greedy"\n', {}, "picker.strategy: expected one of"),
         ('[model]\naugment = "rotate"\n', {}, "model.augment: expected one of auto, features, images"),
+        ("[model]\npatience = 0\n", {}, "model.patience: expected at least 1 epoch, got 0"),
         ("[tiles]\nsize = 64\noverlap = 64\n", {}, "tiles.overlap"),
         ("", {"LABELER_PICKER_VEGETATION_ONLY": "perhaps"}, "expected true or false"),
         ("[classes]\nsoil = { index = 0 }\nweed = { index = 0 }\n", {}, "used twice"),

@@ -271,7 +271,7 @@ def train_head(
     settings: ModelSettings | None = None,
     mode: str = "auto",
     config: HeadConfig | None = None,
-    patience: int = 5,
+    patience: int | None = None,
     lr: float = 3e-3,
     weight_decay: float = 1e-4,
     image_mode_max_tiles: int = IMAGE_MODE_MAX_TILES,
@@ -304,8 +304,9 @@ def train_head(
         Head shape; default width 32, dropout 0.2, with ``class_indices``, and a
         refinement of ``REFINE_CHANNELS`` (16) channels when ``images`` are given (none
         without them).
-    patience : int
-        Epochs without a lower validation loss before stopping.
+    patience : int, optional
+        Epochs without a lower validation loss before stopping; default the
+        ``model.patience`` setting (10).
     lr, weight_decay : float
         AdamW options.
     image_mode_max_tiles : int
@@ -343,6 +344,8 @@ def train_head(
         raise ValueError(f"mode: expected 'auto', 'features' or 'images', got {mode!r}")
     if min_steps_per_epoch < 1:
         raise ValueError(f"min_steps_per_epoch: expected at least 1, got {min_steps_per_epoch}")
+    if patience is None:
+        patience = s.patience
     if patience < 1:
         raise ValueError(f"patience: expected at least 1 epoch, got {patience}")
     if aux_weight < 0:

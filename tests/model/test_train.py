@@ -1,5 +1,7 @@
 """Head training: partial cross-entropy, class weights, joint augmentation, early stopping."""
 
+import dataclasses
+
 import numpy as np
 import pytest
 import torch
@@ -189,6 +191,22 @@ def test_early_stopping_keeps_the_best_epoch(tiles):
     assert res.best_epoch == int(np.argmin(losses)) + 1
     # stopped one epoch after the first epoch that did not improve, unless it ran out
     assert len(losses) == 12 or losses[-1] >= losses[res.best_epoch - 1]
+
+
+def test_patience_defaults_to_the_setting(tiles):
+    images, masks, feats = tiles
+    s = ModelSettings(epochs=12, batch_size=2, val_share=0.34, seed=0, patience=1)
+    by_setting = fit(masks, class_indices=(0, 1), features=feats, settings=s, mode="features")
+    explicit = fit(
+        masks,
+        class_indices=(0, 1),
+        features=feats,
+        settings=dataclasses.replace(s, patience=10),
+        mode="features",
+        patience=1,
+    )
+    assert by_setting.history == explicit.history
+    assert by_setting.best_epoch == explicit.best_epoch
 
 
 def test_learns_the_invented_disk_scene(tiles):
