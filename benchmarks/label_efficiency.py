@@ -253,13 +253,6 @@ def _accepts(fn: Callable, name: str) -> bool:
     return name in inspect.signature(fn).parameters
 
 
-def _train_default(name: str) -> object:
-    from labeler.model.train import train_head
-
-    param = inspect.signature(train_head).parameters.get(name)
-    return None if param is None else param.default
-
-
 def _train(tiles: TileSet, rows: Sequence[int], *, class_indices, settings, encoder):
     from labeler.model.train import train_head
 
@@ -1060,7 +1053,7 @@ def main(argv: list[str] | None = None) -> int:
             "seeds": seeds,
             "epochs": args.epochs,
             "val_share": settings.val_share,
-            "patience": _train_default("patience") or ModelSettings().patience,
+            "patience": ModelSettings().patience,
             "mc_samples": args.mc_samples,
             "initial_share": args.initial_share,
             "threads": threads,

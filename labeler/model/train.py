@@ -49,9 +49,9 @@ Measured on the demo scenario with 12 labelled tiles (bilinear masks, no refinem
 "images" mode reached mIoU 0.60-0.63, "features" mode 0.56. With the refinement, in
 "images" mode on the quality benchmark's split (10 training and 2 validation tiles):
 0.695 with a patience of 5 epochs, 0.729 with 10 (the ``model.patience`` default); the
-two-tile validation loss is noisy, and a longer patience lets training run on. Everything is seeded
-(``torch.manual_seed`` inside a forked RNG state, so the caller's global RNG is left as it
-was; a numpy generator for shuffles).
+two-tile validation loss is noisy, and a longer patience lets training run on.
+Everything is seeded (``torch.manual_seed`` inside a forked RNG state, so the caller's
+global RNG is left as it was; a numpy generator for shuffles).
 """
 
 from __future__ import annotations
