@@ -1,1 +1,35 @@
-"""Persistence: the only room that talks to the database (SQLAlchemy Core)."""
+"""Persistence: the only room that talks to the database (SQLAlchemy Core).
+
+Callers use :class:`Store` and the plain records it takes and returns; no SQL object
+leaves this package.
+"""
+
+from labeler.store.annotations import NewAnnotation
+from labeler.store.images import NewImage
+from labeler.store.proposals import NewProposal
+from labeler.store.records import (
+    AnnotationRecord,
+    DraftRecord,
+    EventRecord,
+    ImageRecord,
+    ModelVersionRecord,
+    ProposalRecord,
+    RankingItem,
+    TileRecord,
+)
+from labeler.store.store import Store
+
+__all__ = [
+    "Store",
+    "NewImage",
+    "NewAnnotation",
+    "NewProposal",
+    "ImageRecord",
+    "TileRecord",
+    "AnnotationRecord",
+    "DraftRecord",
+    "ModelVersionRecord",
+    "ProposalRecord",
+    "RankingItem",
+    "EventRecord",
+]

@@ -1,0 +1,205 @@
+"""Opening a project database, and the plumbing every part of the store shares.
+
+:class:`StoreBase` opens (or creates) the database and checks its schema version; it
+gives the other parts of the store their transactions (:meth:`StoreBase._write` opens a
+write transaction, ``BEGIN IMMEDIATE`` on SQLite, see :mod:`labeler.store.dialect`), the
+annotator ids every row refers to, and the one way to append to the event log.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from contextlib import contextmanager
+from datetime import UTC, datetime
+from typing import Self
+
+import sqlalchemy as sa
+from sqlalchemy.exc import OperationalError
+
+from labeler.classes import DEFAULT_SCHEMA, ClassSchema
+from labeler.errors import LabelerError, NotFoundError
+from labeler.store import schema as t
+from labeler.store.dialect import integrity_check, make_engine
+
+__all__ = ["StoreBase", "now", "as_utc"]
+
+
+def now() -> datetime:
+    """The current time, UTC, timezone-aware."""
+    return datetime.now(UTC)
+
+
+def as_utc(value: datetime | None) -> datetime | None:
+    """``value`` as a timezone-aware UTC time (SQLite returns naive times); None stays None."""
+    if value is None:
+        return None
+    return value if value.tzinfo is not None else value.replace(tzinfo=UTC)
+
+
+class StoreBase:
+    """A project database: connection, transactions, annotators, the event log writer.
+
+    Parameters
+    ----------
+    url : str
+        SQLAlchemy URL (``sqlite:////abs/path/labeler.db`` by default).
+    schema : ClassSchema
+        Label classes; saved masks are checked against them.
+    create : bool
+        Create the tables when the database is new. Without it, opening a database
+        that has no tables is an error (a mistyped project path must not create one).
+
+    Raises
+    ------
+    LabelerError
+        If the database cannot be opened, has no tables and ``create`` is false, or
+        was written by a labeler with another schema version.
+    """
+
+    def __init__(
+        self, url: str, *, schema: ClassSchema = DEFAULT_SCHEMA, create: bool = False
+    ) -> None:
+        self.url = url
+        self.schema = schema
+        self.engine = make_engine(url)
+        try:
+            insp = sa.inspect(self.engine)
+            has_tables = insp.has_table("meta")
+        except OperationalError as exc:
+            raise LabelerError(f"store {url}: cannot open the database ({exc.orig})") from None
+        if not has_tables:
+            if not create:
+                raise LabelerError(
+                    f"store {url}: no labeler project database here; run 'labeler init' first"
+                )
+            with self._write() as conn:
+                t.metadata.create_all(conn)
+                conn.execute(
+                    t.meta.insert(), [{"key": "schema_version", "value": str(t.SCHEMA_VERSION)}]
+                )
+        else:
+            with self.engine.connect() as conn:
+                found = conn.execute(
+                    sa.select(t.meta.c.value).where(t.meta.c.key == "schema_version")
+                ).scalar()
+            if found != str(t.SCHEMA_VERSION):
+                raise LabelerError(
+                    f"store {url}: database schema version {found}, this labeler reads "
+                    f"{t.SCHEMA_VERSION}; use the matching labeler release"
+                )
+
+    # -- transactions -------------------------------------------------------------------
+    @contextmanager
+    def _write(self) -> Iterator[sa.Connection]:
+        """A write transaction: committed on success, rolled back on any error."""
+        with self.engine.connect().execution_options(write=True) as conn:
+            with conn.begin():
+                yield conn
+
+    @contextmanager
+    def _read(self) -> Iterator[sa.Connection]:
+        """A read transaction (one consistent snapshot)."""
+        with self.engine.connect() as conn:
+            with conn.begin():
+                yield conn
+
+    def close(self) -> None:
+        """Release the database connections.
+
+        Returns
+        -------
+        None
+        """
+        self.engine.dispose()
+
+    def __enter__(self) -> Self:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def integrity_check(self) -> str:
+        """Run the database's own consistency check.
+
+        Returns
+        -------
+        str
+            ``"ok"`` when sound, else the problems the database reports.
+        """
+        return integrity_check(self.engine)
+
+    # -- the event log writer -----------------------------------------------------------
+    @staticmethod
+    def _event(
+        conn: sa.Connection,
+        kind: str,
+        *,
+        tile_id: int | None = None,
+        annotator_id: int | None = None,
+        detail: dict | None = None,
+    ) -> None:
+        """Append one row to the event log inside the caller's transaction."""
+        conn.execute(
+            t.events.insert().values(
+                at=now(), kind=kind, tile_id=tile_id, annotator_id=annotator_id, detail=detail
+            )
+        )
+
+    # -- annotators ---------------------------------------------------------------------
+    @staticmethod
+    def _annotator_id(conn: sa.Connection, name: str, *, create: bool = True) -> int:
+        """The id of annotator ``name``; a new name is added unless ``create`` is false."""
+        name = name.strip() if isinstance(name, str) else name
+        if not name:
+            raise LabelerError(
+                "annotator: expected a non-empty name, got an empty one; pass --annotator NAME"
+            )
+        found = conn.execute(
+            sa.select(t.annotators.c.id).where(t.annotators.c.name == name)
+        ).scalar()
+        if found is not None:
+            return int(found)
+        if not create:
+            raise NotFoundError(f"annotator {name!r} is not known in this project")
+        res = conn.execute(t.annotators.insert().values(name=name, created_at=now()))
+        return int(res.inserted_primary_key[0])
+
+    @staticmethod
+    def _known_annotator_id(conn: sa.Connection, name: str) -> int | None:
+        """The id of annotator ``name`` exactly as given, or None when never seen."""
+        return conn.execute(
+            sa.select(t.annotators.c.id).where(t.annotators.c.name == name)
+        ).scalar()
+
+    def annotators(self) -> list[str]:
+        """Names of every annotator, in order of first appearance.
+
+        Returns
+        -------
+        list of str
+        """
+        with self._read() as conn:
+            return list(
+                conn.execute(sa.select(t.annotators.c.name).order_by(t.annotators.c.id)).scalars()
+            )
+
+    def ensure_annotator(self, name: str) -> int:
+        """The id of annotator ``name``, created if new.
+
+        Parameters
+        ----------
+        name : str
+            The annotator's name (surrounding blanks are dropped).
+
+        Returns
+        -------
+        int
+            The annotator's id.
+
+        Raises
+        ------
+        LabelerError
+            If ``name`` is empty.
+        """
+        with self._write() as conn:
+            return self._annotator_id(conn, name)

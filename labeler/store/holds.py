@@ -1,0 +1,313 @@
+"""Tile state moves, holds, and who a tile is handed to.
+
+Every change of ``tiles.state`` anywhere in the store (explicit moves, holds, releases,
+new proposals, saves) passes :func:`checked_move`, which applies the one life-cycle
+check :func:`labeler.states.check_move`. A move to the state a tile already has is
+checked as well, except by :meth:`HoldsMixin.release`, which leaves a tile that is not
+``held`` as it is.
+"""
+
+from __future__ import annotations
+
+import sqlalchemy as sa
+
+from labeler.errors import LabelerError, NotFoundError
+from labeler.states import CONTESTED, HELD, PARKED, PROPOSED, SAVED_STATES, SETTLED, STATES, UNSEEN
+from labeler.states import check_move as _life_cycle_check
+from labeler.store import schema as t
+from labeler.store.base import now
+from labeler.store.images import ImagesMixin
+from labeler.store.records import TileRecord
+
+__all__ = ["HoldsMixin", "checked_move"]
+
+
+def checked_move(state_from: str, state_to: str, *, tile_id: int) -> None:
+    """The store's life-cycle check: raise unless the tile may move between the states.
+
+    Parameters
+    ----------
+    state_from, state_to : str
+        The tile's state now and the state asked for (see :data:`labeler.states.STATES`).
+    tile_id : int
+        Named in the error.
+
+    Raises
+    ------
+    LabelerError
+        Naming the tile, both states and the states allowed from ``state_from``, or
+        the unknown state; the caller's transaction is rolled back.
+    """
+    try:
+        _life_cycle_check(state_from, state_to, tile=f"tile {tile_id}")
+    except ValueError as exc:
+        raise LabelerError(str(exc)) from None
+
+
+def _current_state(conn: sa.Connection, tile_id: int) -> str:
+    cur = conn.execute(sa.select(t.tiles.c.state).where(t.tiles.c.id == tile_id)).scalar()
+    if cur is None:
+        raise NotFoundError(f"tile {tile_id} is not in this project")
+    return cur
+
+
+class HoldsMixin(ImagesMixin):
+    """State moves, holds and assignment of :class:`labeler.store.Store`."""
+
+    def set_state(
+        self, tile_id: int, state: str, *, annotator: str | None = None, reason: str | None = None
+    ) -> TileRecord:
+        """Move a tile to ``state`` (checked against the life cycle), logging the move.
+
+        Parameters
+        ----------
+        tile_id : int
+        state : str
+            One of :data:`labeler.states.STATES`. Moving to ``held`` makes ``annotator``
+            the holder; any other state clears the holder.
+        annotator : str, optional
+            Who moved the tile (created if new); recorded in the event log.
+        reason : str, optional
+            Why, recorded in the event log.
+
+        Returns
+        -------
+        TileRecord
+            The tile after the move.
+
+        Raises
+        ------
+        LabelerError
+            If ``state`` is unknown or the life cycle does not allow the move.
+        NotFoundError
+            If the tile does not exist.
+        """
+        if state not in STATES:
+            raise LabelerError(f"state: expected one of {', '.join(STATES)}, got {state!r}")
+        with self._write() as conn:
+            cur = _current_state(conn, tile_id)
+            checked_move(cur, state, tile_id=tile_id)
+            aid = self._annotator_id(conn, annotator) if annotator else None
+            held = aid if state == HELD else None
+            conn.execute(
+                t.tiles.update()
+                .where(t.tiles.c.id == tile_id)
+                .values(state=state, held_by=held, updated_at=now())
+            )
+            self._event(
+                conn,
+                "state",
+                tile_id=tile_id,
+                annotator_id=aid,
+                detail={"from": cur, "to": state, "reason": reason},
+            )
+        return self.tile(tile_id)
+
+    def hold(self, tile_id: int, annotator: str) -> TileRecord:
+        """Mark the tile held by ``annotator`` (opened in the editor).
+
+        An ``unseen``, ``proposed`` or ``parked`` tile becomes ``held``. A saved tile
+        keeps its saved state; the hold is recorded in ``held_by`` and the event log
+        only, so a crash leaves no saved tile stuck in ``held``. The tile counts as
+        handed to ``annotator`` from now on (see :meth:`available_for`).
+
+        Parameters
+        ----------
+        tile_id : int
+        annotator : str
+            The annotator opening the tile (created if new).
+
+        Returns
+        -------
+        TileRecord
+            The tile after the hold.
+
+        Raises
+        ------
+        NotFoundError
+            If the tile does not exist.
+        LabelerError
+            If the life cycle refuses the move.
+        """
+        with self._write() as conn:
+            cur = _current_state(conn, tile_id)
+            aid = self._annotator_id(conn, annotator)
+            new = HELD if cur in (UNSEEN, PROPOSED, PARKED) else cur
+            checked_move(cur, new, tile_id=tile_id)
+            conn.execute(
+                t.tiles.update()
+                .where(t.tiles.c.id == tile_id)
+                .values(state=new, held_by=aid, updated_at=now())
+            )
+            self._assign(conn, tile_id, aid)
+            self._event(
+                conn, "hold", tile_id=tile_id, annotator_id=aid, detail={"from": cur, "to": new}
+            )
+        return self.tile(tile_id)
+
+    def release(self, tile_id: int, annotator: str) -> TileRecord:
+        """Undo :meth:`hold` without a save.
+
+        A ``held`` tile goes back to ``proposed`` (when it has a proposal) or
+        ``unseen``; a tile in any other state keeps it. The holder is cleared.
+
+        Parameters
+        ----------
+        tile_id : int
+        annotator : str
+            The annotator closing the tile; recorded in the event log.
+
+        Returns
+        -------
+        TileRecord
+            The tile after the release.
+
+        Raises
+        ------
+        NotFoundError
+            If the tile does not exist.
+        """
+        with self._write() as conn:
+            cur = _current_state(conn, tile_id)
+            aid = self._annotator_id(conn, annotator)
+            new = cur
+            if cur == HELD:
+                has_prop = conn.execute(
+                    sa.select(sa.func.count())
+                    .select_from(t.proposals)
+                    .where(t.proposals.c.tile_id == tile_id)
+                ).scalar()
+                new = PROPOSED if has_prop else UNSEEN
+                checked_move(cur, new, tile_id=tile_id)
+            conn.execute(
+                t.tiles.update()
+                .where(t.tiles.c.id == tile_id)
+                .values(state=new, held_by=None, updated_at=now())
+            )
+            self._event(conn, "release", tile_id=tile_id, annotator_id=aid, detail={"to": new})
+        return self.tile(tile_id)
+
+    # -- assignment ---------------------------------------------------------------------
+    @staticmethod
+    def _assign(conn: sa.Connection, tile_id: int, annotator_id: int) -> None:
+        """Record that the tile was handed to the annotator (once)."""
+        exists = conn.execute(
+            sa.select(t.assignments.c.tile_id).where(
+                (t.assignments.c.tile_id == tile_id)
+                & (t.assignments.c.annotator_id == annotator_id)
+            )
+        ).first()
+        if exists is None:
+            conn.execute(
+                t.assignments.insert().values(
+                    tile_id=tile_id, annotator_id=annotator_id, assigned_at=now()
+                )
+            )
+
+    def assigned(self, tile_id: int) -> list[str]:
+        """Annotators the tile has been handed to (by a hold or a save).
+
+        Parameters
+        ----------
+        tile_id : int
+
+        Returns
+        -------
+        list of str
+            In the order they were handed the tile.
+        """
+        with self._read() as conn:
+            q = (
+                sa.select(t.annotators.c.name)
+                .select_from(
+                    t.assignments.join(
+                        t.annotators, t.assignments.c.annotator_id == t.annotators.c.id
+                    )
+                )
+                .where(t.assignments.c.tile_id == tile_id)
+                .order_by(t.assignments.c.assigned_at)
+            )
+            return list(conn.execute(q).scalars())
+
+    def savers(self, tile_id: int, *, kind: str = "full") -> list[str]:
+        """Distinct annotators with a saved annotation of ``kind`` on the tile.
+
+        A reviewer's ``settled`` saves do not count.
+
+        Parameters
+        ----------
+        tile_id : int
+        kind : {"full", "scribble"}
+
+        Returns
+        -------
+        list of str
+            Sorted by name.
+        """
+        q = (
+            sa.select(t.annotators.c.name)
+            .distinct()
+            .select_from(
+                t.annotations.join(t.annotators, t.annotations.c.annotator_id == t.annotators.c.id)
+            )
+            .where(
+                (t.annotations.c.tile_id == tile_id)
+                & (t.annotations.c.kind == kind)
+                & (t.annotations.c.state != SETTLED)
+            )
+        )
+        with self._read() as conn:
+            return sorted(conn.execute(q).scalars())
+
+    def available_for(self, annotator: str, *, per_overlap_tile: int = 2) -> list[int]:
+        """Tile ids this annotator may be handed next (no order implied).
+
+        Ordinary tiles: not yet saved by anyone, not held by someone else. Overlap
+        tiles: not yet saved by this annotator and handed to fewer than
+        ``per_overlap_tile`` annotators (or already handed to this one). Contested and
+        settled tiles are not handed out here (reviewers settle them).
+
+        Parameters
+        ----------
+        annotator : str
+            May be a name the store has not seen yet.
+        per_overlap_tile : int
+            How many annotators each overlap tile goes to.
+
+        Returns
+        -------
+        list of int
+            Tile ids in id order.
+        """
+        out: list[int] = []
+        with self._read() as conn:
+            me = self._known_annotator_id(conn, annotator)
+            rows = conn.execute(sa.select(t.tiles).order_by(t.tiles.c.id)).all()
+            saved_by: dict[int, set[int]] = {}
+            for tid, aid in conn.execute(
+                sa.select(t.annotations.c.tile_id, t.annotations.c.annotator_id).where(
+                    t.annotations.c.kind == "full"
+                )
+            ):
+                saved_by.setdefault(tid, set()).add(aid)
+            handed: dict[int, set[int]] = {}
+            for tid, aid in conn.execute(
+                sa.select(t.assignments.c.tile_id, t.assignments.c.annotator_id)
+            ):
+                handed.setdefault(tid, set()).add(aid)
+        for r in rows:
+            if r.state in (CONTESTED, SETTLED):
+                continue
+            if r.held_by is not None and r.held_by != me:
+                continue
+            savers = saved_by.get(r.id, set())
+            if r.overlap:
+                hands = handed.get(r.id, set())
+                if me in savers:
+                    continue
+                if me not in hands and len(hands | savers) >= per_overlap_tile:
+                    continue
+                out.append(r.id)
+            elif not savers and r.state not in SAVED_STATES:
+                out.append(r.id)
+        return out
