@@ -4,6 +4,12 @@
 (an annotator has it open) -> ``accepted`` (proposal kept unchanged) or ``amended``
 (corrected) -> optionally ``contested`` (annotators disagree beyond the project's
 threshold) -> ``settled`` (a reviewer decided). ``parked`` = set aside by an annotator.
+
+The allowed moves are the table ``_MOVES`` below; :func:`check_move` is the one
+life-cycle check, applied by the store to every change of a tile's state (see
+:func:`labeler.store.holds.checked_move`). A mask brought in by ``labeler import`` is
+recorded as an ``imported`` annotation and leaves its tile ``amended``; ``weak`` (a
+scribble-only save) leaves the tile's state as it is.
 """
 
 from __future__ import annotations
@@ -57,10 +63,20 @@ _MOVES: dict[str, frozenset[str]] = {
 
 
 def can_move(state_from: str, state_to: str) -> bool:
-    """True if a tile may move from ``state_from`` to ``state_to``.
+    """Whether a tile may move from ``state_from`` to ``state_to``.
 
     A saved tile that gets a new proposal stays saved (the caller keeps the state);
     moving it back to ``proposed`` is allowed only for an explicit reset.
+
+    Parameters
+    ----------
+    state_from, state_to : str
+        Tile states; an unknown name is never a valid end of a move.
+
+    Returns
+    -------
+    bool
+        True when the table allows the move.
     """
     if state_from not in _MOVES or state_to not in _MOVES:
         return False
@@ -68,7 +84,25 @@ def can_move(state_from: str, state_to: str) -> bool:
 
 
 def check_move(state_from: str, state_to: str, *, tile: object = "tile") -> None:
-    """Raise ``ValueError`` naming the tile and both states unless the move is allowed."""
+    """Raise unless a tile may move from ``state_from`` to ``state_to``.
+
+    Parameters
+    ----------
+    state_from, state_to : str
+        Tile states (see :data:`STATES`).
+    tile : object
+        What to call the tile in the message (e.g. ``"tile 12"``).
+
+    Returns
+    -------
+    None
+
+    Raises
+    ------
+    ValueError
+        Naming the unknown state and the known ones; or naming the tile, both states
+        and the states allowed from ``state_from``.
+    """
     for s in (state_from, state_to):
         if s not in _MOVES:
             raise ValueError(f"state: expected one of {', '.join(STATES)}, got {s!r}")

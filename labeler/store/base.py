@@ -17,7 +17,7 @@ import sqlalchemy as sa
 from sqlalchemy.exc import OperationalError
 
 from labeler.classes import DEFAULT_SCHEMA, ClassSchema
-from labeler.errors import LabelerError, NotFoundError
+from labeler.errors import LabelerError
 from labeler.store import schema as t
 from labeler.store.dialect import integrity_check, make_engine
 
@@ -147,8 +147,8 @@ class StoreBase:
 
     # -- annotators ---------------------------------------------------------------------
     @staticmethod
-    def _annotator_id(conn: sa.Connection, name: str, *, create: bool = True) -> int:
-        """The id of annotator ``name``; a new name is added unless ``create`` is false."""
+    def _annotator_id(conn: sa.Connection, name: str) -> int:
+        """The id of annotator ``name`` (blanks around it dropped); a new name is added."""
         name = name.strip() if isinstance(name, str) else name
         if not name:
             raise LabelerError(
@@ -159,8 +159,6 @@ class StoreBase:
         ).scalar()
         if found is not None:
             return int(found)
-        if not create:
-            raise NotFoundError(f"annotator {name!r} is not known in this project")
         res = conn.execute(t.annotators.insert().values(name=name, created_at=now()))
         return int(res.inserted_primary_key[0])
 

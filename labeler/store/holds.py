@@ -11,9 +11,9 @@ from __future__ import annotations
 
 import sqlalchemy as sa
 
+from labeler import states
 from labeler.errors import LabelerError, NotFoundError
 from labeler.states import CONTESTED, HELD, PARKED, PROPOSED, SAVED_STATES, SETTLED, STATES, UNSEEN
-from labeler.states import check_move as _life_cycle_check
 from labeler.store import schema as t
 from labeler.store.base import now
 from labeler.store.images import ImagesMixin
@@ -39,7 +39,8 @@ def checked_move(state_from: str, state_to: str, *, tile_id: int) -> None:
         the unknown state; the caller's transaction is rolled back.
     """
     try:
-        _life_cycle_check(state_from, state_to, tile=f"tile {tile_id}")
+        # looked up at call time: labeler.states owns the table and its one check
+        states.check_move(state_from, state_to, tile=f"tile {tile_id}")
     except ValueError as exc:
         raise LabelerError(str(exc)) from None
 

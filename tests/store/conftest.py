@@ -3,7 +3,7 @@
 import pytest
 
 from labeler.imagery.tiling import tile_grid
-from labeler.store.store import NewImage, Store
+from labeler.store import NewImage, Store
 
 
 def make_store(path, *, overlap_share=0.0):

@@ -1,0 +1,77 @@
+"""Opening a project database, its schema version, transactions and annotators."""
+
+import pytest
+import sqlalchemy as sa
+
+from labeler.errors import LabelerError
+from labeler.store import Store
+from labeler.store import schema as t
+from labeler.store.base import as_utc, now
+
+
+def test_open_without_create_refuses(tmp_path):
+    with pytest.raises(LabelerError, match="no labeler project database here.*labeler init"):
+        Store(f"sqlite:///{tmp_path / 'none.db'}")
+
+
+def test_open_unreachable_database_names_the_url(tmp_path):
+    url = f"sqlite:///{tmp_path / 'no-such-folder' / 'labeler.db'}"
+    with pytest.raises(LabelerError, match=r"store sqlite:///.*no-such-folder.*cannot open"):
+        Store(url, create=True)
+
+
+def test_tables_and_wal(store):
+    assert store.integrity_check() == "ok"  # SQLite PRAGMA integrity_check
+    with store.engine.connect() as conn:
+        assert conn.exec_driver_sql("PRAGMA journal_mode").scalar() == "wal"
+        assert conn.exec_driver_sql("PRAGMA foreign_keys").scalar() == 1
+    tiles = store.tiles()
+    assert len(tiles) == 6 and all(t.state == "unseen" for t in tiles)
+
+
+def test_reopen_and_schema_version_checked(tmp_path, store):
+    url = store.url
+    with Store(url) as again:  # an existing database opens without create
+        assert len(again.tiles()) == 6
+    with store.engine.begin() as conn:
+        conn.execute(t.meta.update().where(t.meta.c.key == "schema_version").values(value="99"))
+    with pytest.raises(LabelerError, match=r"database schema version 99, this labeler reads 1"):
+        Store(url)
+
+
+def test_annotators_in_order_of_first_appearance(store):
+    assert store.annotators() == []
+    first = store.ensure_annotator("ines")
+    assert store.ensure_annotator("  ines ") == first  # blanks around a name are dropped
+    store.ensure_annotator("tomas")
+    assert store.annotators() == ["ines", "tomas"]
+
+
+@pytest.mark.parametrize("name", ["", "   "])
+def test_empty_annotator_refused(store, name):
+    with pytest.raises(LabelerError, match="annotator: expected a non-empty name.*--annotator"):
+        store.ensure_annotator(name)
+    assert store.annotators() == []
+
+
+def test_write_rolls_back_on_error(store):
+    with pytest.raises(RuntimeError, match="midway"):
+        with store._write() as conn:
+            conn.execute(t.annotators.insert().values(name="half", created_at=now()))
+            raise RuntimeError("midway")
+    assert store.annotators() == []
+
+
+def test_times_are_utc_aware():
+    stamp = now()
+    assert stamp.utcoffset().total_seconds() == 0
+    naive = stamp.replace(tzinfo=None)
+    assert as_utc(naive) == stamp and as_utc(stamp) is stamp and as_utc(None) is None
+
+
+def test_close_releases_connections(store):
+    store.close()
+    assert store.engine.pool.checkedout() == 0
+    # the engine reconnects on demand after close (dispose drops idle connections only)
+    with store.engine.connect() as conn:
+        assert conn.execute(sa.text("SELECT 1")).scalar() == 1

@@ -1,0 +1,115 @@
+"""Proposals (the first one moves a tile from unseen to proposed) and rankings."""
+
+import numpy as np
+import pytest
+
+from labeler.errors import NotFoundError
+from labeler.store import NewProposal, RankingItem
+
+
+def _mask(tile, value):
+    return np.full(tile.shape, value, np.uint8)
+
+
+def test_proposals_move_unseen_to_proposed(store):
+    tiles = store.tiles()
+    mv = store.add_model_version(kind="cold_start", name="vegetation-rows")
+    unc = np.random.default_rng(0).random((3, 64, 64)).astype(np.float16)
+    emb = np.random.default_rng(1).random(8).astype(np.float32)
+    (pid,) = store.add_proposals(
+        mv.id,
+        [
+            NewProposal(
+                tiles[0].id,
+                _mask(tiles[0], 1),
+                uncertainty=unc,
+                embedding=emb,
+                class_fractions=[0, 1, 0, 0],
+                mean_entropy=0.5,
+                mean_margin=0.25,
+                mean_bald=0.125,
+                mean_least_confidence=0.375,
+            )
+        ],
+    )
+    assert store.tile(tiles[0].id).state == "proposed"
+    assert store.tile(tiles[1].id).state == "unseen"
+    p = store.latest_proposal(tiles[0].id)
+    assert p.id == pid and p.model_version_id == mv.id and store.proposal(pid) == p
+    np.testing.assert_array_equal(p.uncertainty(), unc)
+    np.testing.assert_array_equal(p.embedding(), emb)
+    assert (p.mask() == 1).all() and p.class_fractions == [0, 1, 0, 0]
+    assert (p.mean_entropy, p.mean_margin, p.mean_bald, p.mean_least_confidence) == (
+        0.5,
+        0.25,
+        0.125,
+        0.375,
+    )
+    newest = store.latest_proposals()
+    assert set(newest) == {tiles[0].id}
+    assert newest[tiles[0].id].uncertainty() is None  # maps only when asked for
+    np.testing.assert_array_equal(
+        store.latest_proposals(with_uncertainty=True)[tiles[0].id].uncertainty(), unc
+    )
+    assert store.latest_proposal(tiles[1].id) is None
+
+
+def test_newest_proposal_wins_and_saved_tiles_keep_their_state(store):
+    a, b = store.tiles()[:2]
+    mv = store.add_model_version(kind="cold_start", name="vegetation-rows")
+    store.add_proposals(mv.id, [NewProposal(a.id, _mask(a, 1)), NewProposal(b.id, _mask(b, 1))])
+    store.save_annotation(b.id, "ines", _mask(b, 2), parent_version=None)
+    mv2 = store.add_model_version(kind="head", name="head-1")
+    ids = store.add_proposals(
+        mv2.id, [NewProposal(a.id, _mask(a, 2)), NewProposal(b.id, _mask(b, 3))]
+    )
+    assert [store.latest_proposal(x.id).id for x in (a, b)] == ids
+    assert {p.model_version_id for p in store.latest_proposals().values()} == {mv2.id}
+    assert store.tile(a.id).state == "proposed" and store.tile(b.id).state == "amended"
+    assert store.add_proposals(mv2.id, []) == []
+    assert [e.detail for e in store.events(kind="proposed")] == [
+        {"model_version": mv.id, "tiles": 2},
+        {"model_version": mv2.id, "tiles": 2},
+    ]
+
+
+def test_proposal_checks_write_nothing(store):
+    a, b = store.tiles()[:2]
+    mv = store.add_model_version(kind="cold_start", name="vegetation-rows")
+    good = NewProposal(a.id, _mask(a, 1))
+    with pytest.raises(ValueError, match=rf"proposal mask of tile {b.id}.*not class indices"):
+        store.add_proposals(mv.id, [good, NewProposal(b.id, _mask(b, 255))])
+    with pytest.raises(ValueError, match=r"^proposal mask: expected shape \(256, 256\) of tile"):
+        store.add_proposals(mv.id, [good, NewProposal(b.id, np.zeros((4, 4), np.uint8))])
+    with pytest.raises(NotFoundError, match="^tile 999 is not in this project$"):
+        store.add_proposals(mv.id, [good, NewProposal(999, _mask(a, 1))])
+    assert store.latest_proposals() == {} and store.tile(a.id).state == "unseen"
+    with pytest.raises(NotFoundError, match="^proposal 5 is not in this project$"):
+        store.proposal(5)
+
+
+def test_rankings(store):
+    ids = [t.id for t in store.tiles()]
+    assert store.latest_ranking() == []
+    first = store.write_ranking(
+        strategy="mixed",
+        k=2,
+        seed=0,
+        items=[
+            RankingItem(ids[2], 0, 0.9, "uncertain", True),
+            RankingItem(ids[0], 1, 0.5, "rare class", True),
+        ],
+    )
+    got = store.latest_ranking()
+    assert [(i.tile_id, i.reason) for i in got] == [(ids[2], "uncertain"), (ids[0], "rare class")]
+    second = store.write_ranking(
+        strategy="uncertainty", k=1, seed=1, items=[RankingItem(ids[1], 0, 0.7, "uncertain", False)]
+    )
+    assert second > first
+    assert store.latest_ranking() == [RankingItem(ids[1], 0, 0.7, "uncertain", False)]
+    assert store.events(kind="ranked")[-1].detail == {
+        "ranking": second,
+        "strategy": "uncertainty",
+        "k": 1,
+        "tiles": 1,
+    }
