@@ -1,5 +1,6 @@
 """Crash and race safety of saves, with real processes (DESIGN section 7)."""
 
+import contextlib
 import os
 import signal
 import subprocess
@@ -9,14 +10,14 @@ import time
 
 import numpy as np
 
-from labeler.store.store import Store
+from labeler.store import Store
 from tests.common import REPO
 from tests.store.conftest import make_store
 
 WRITER = textwrap.dedent(
     """
     import sys, numpy as np
-    from labeler.store.store import Store
+    from labeler.store import Store
     store = Store(sys.argv[1])
     tile = store.tiles()[0]
     rng = np.random.default_rng(0)
@@ -81,23 +82,24 @@ def test_sigkill_during_saves_loses_nothing_committed(tmp_path):
 
 RACER = textwrap.dedent(
     """
-    import os, sys, time, numpy as np
+    import sys, numpy as np
     from labeler.errors import ConflictError
-    from labeler.store.store import Store
-    url, name, value, go = sys.argv[1], sys.argv[2], int(sys.argv[3]), sys.argv[4]
+    from labeler.store import Store
+    url, name, value = sys.argv[1], sys.argv[2], int(sys.argv[3])
     store = Store(url)
     tile = store.tiles()[0]
     mask = np.full(tile.shape, value, np.uint8)
     parent = store.lineage_head(tile.id, name)   # both read the same parent (none)
-    while not os.path.exists(go):
-        time.sleep(0.001)
+    print("ready", flush=True)                   # tell the test, then wait for its word
+    if sys.stdin.readline().strip() != "go":
+        sys.exit("racer: expected 'go' on stdin")
     try:
         store.save_annotation(tile.id, name, mask, parent_version=parent)
-        print("saved")
+        print("saved", flush=True)
     except ConflictError as exc:
         # what the editor does: keep the work as a draft, never overwrite
         store.save_draft(tile.id, name, mask, parent_version=parent)
-        print("conflict", exc.current_version)
+        print("conflict", exc.current_version, flush=True)
     """
 )
 
@@ -106,23 +108,33 @@ def test_two_processes_same_parent_exactly_one_wins(tmp_path):
     db = tmp_path / "labeler.db"
     make_store(db).close()
     url = f"sqlite:///{db}"
-    go = tmp_path / "go"
-    procs = [
-        subprocess.Popen(
-            [sys.executable, "-c", RACER, url, name, str(v), str(go)],
-            stdout=subprocess.PIPE,
-            stderr=subprocess.PIPE,
-            text=True,
-            env=_env(),
-        )
-        for name, v in (("ines", 1), ("tomas", 2))
-    ]
-    time.sleep(2.0)  # both have read their parent (none) and wait for the start
-    go.write_text("go")
-    outs = [p.communicate(timeout=60) for p in procs]
-    results = [o[0].split()[0] if o[0] else o[1] for o in outs]
+    with contextlib.ExitStack() as stack:
+        procs = [
+            stack.enter_context(
+                subprocess.Popen(
+                    [sys.executable, "-c", RACER, url, name, str(v)],
+                    stdin=subprocess.PIPE,
+                    stdout=subprocess.PIPE,
+                    stderr=subprocess.PIPE,
+                    text=True,
+                    env=_env(),
+                )
+            )
+            for name, v in (("ines", 1), ("tomas", 2))
+        ]
+        # both have read their parent (none) before either may save: lined up by pipes
+        for p in procs:
+            line = p.stdout.readline()
+            assert line == "ready\n", (line, p.stderr.read())
+        for p in procs:
+            p.stdin.write("go\n")
+            p.stdin.flush()
+        outs = [p.communicate(timeout=60) for p in procs]
+    assert [p.returncode for p in procs] == [0, 0], outs
+    results = [o[0].split()[0] for o in outs]
     assert sorted(results) == ["conflict", "saved"], outs
     winner, loser = ("ines", "tomas") if results[0] == "saved" else ("tomas", "ines")
+    assert outs[results.index("conflict")][0].split()[1] == "1"  # the winner's version
     store = Store(url)
     tile = store.tiles()[0]
     history = store.annotation_history(tile.id)
