@@ -17,8 +17,8 @@ from pathlib import Path
 
 from labeler.errors import InputError, LabelerError
 from labeler.settings import SETTINGS_FILE, Settings, default_settings_text, load_settings
+from labeler.store import Store
 from labeler.store.records import ImageRecord
-from labeler.store.store import Store
 
 __all__ = ["Project", "init_project", "open_project", "inside"]
 

@@ -14,7 +14,7 @@ from labeler.errors import InputError
 from labeler.imagery.read import open_image, sha256_file
 from labeler.imagery.tiling import tile_grid
 from labeler.project import Project
-from labeler.store.store import NewImage
+from labeler.store import NewImage
 
 __all__ = [
     "Progress",

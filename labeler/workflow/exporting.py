@@ -27,8 +27,8 @@ from labeler.imagery.read import open_image
 from labeler.imagery.tiling import stitch
 from labeler.project import Project
 from labeler.states import ACCEPTED, AMENDED, SETTLED, STATES
+from labeler.store import NewAnnotation
 from labeler.store.records import ImageRecord
-from labeler.store.store import NewAnnotation
 from labeler.workflow.adding import Progress, _no_progress
 
 __all__ = [

@@ -28,8 +28,8 @@ from labeler.imagery.tiling import Window
 from labeler.masks.coldstart import cold_start_proposal, detect_image_rows
 from labeler.project import Project
 from labeler.states import CONTESTED, SETTLED
+from labeler.store import NewProposal
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
-from labeler.store.store import NewProposal
 from labeler.workflow.adding import Progress, _no_progress
 
 __all__ = [

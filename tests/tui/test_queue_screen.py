@@ -4,7 +4,7 @@ import numpy as np
 from textual.widgets import DataTable, Select
 
 from labeler.imagery.read import open_image
-from labeler.store.store import NewProposal
+from labeler.store import NewProposal
 from labeler.tui.app import QueueApp
 from labeler.tui.preview import half_block_text, tile_picture
 from labeler.tui.rows import QUEUE_COLUMNS

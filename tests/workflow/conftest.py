@@ -6,7 +6,7 @@ from affine import Affine
 
 from labeler.imagery.write import write_geotiff
 from labeler.project import init_project, open_project
-from labeler.store.store import NewProposal
+from labeler.store import NewProposal
 from labeler.workflow import add_images
 
 

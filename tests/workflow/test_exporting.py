@@ -13,7 +13,7 @@ from labeler.demo.build import demo_images, truth_path
 from labeler.errors import InputError, LabelerError
 from labeler.imagery.write import write_png
 from labeler.project import init_project
-from labeler.store.store import NewProposal
+from labeler.store import NewProposal
 from labeler.workflow import add_images, export_project, import_masks
 
 
