@@ -1,4 +1,4 @@
-"""Tile life cycle (DESIGN section 3): state names and the allowed moves.
+"""Tile life cycle: the state names and the allowed moves between them.
 
 ``unseen`` (no proposal) -> ``proposed`` (a model version proposed a mask) -> ``held``
 (an annotator has it open) -> ``accepted`` (proposal kept unchanged) or ``amended``

@@ -1,4 +1,6 @@
-"""Crash and race safety of saves, with real processes (DESIGN section 7)."""
+"""Crash and race safety of saves, with real processes: a kill loses no committed save, and
+of two saves from the same parent exactly one lands (the other is kept as a draft).
+"""
 
 import contextlib
 import os
