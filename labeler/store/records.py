@@ -63,6 +63,8 @@ def npy_decode(data: bytes | None) -> np.ndarray | None:
 
 @dataclass(frozen=True)
 class ImageRecord:
+    """An image of the project (its pixels stay in the file at ``path``)."""
+
     id: int
     name: str
     path: str
@@ -83,6 +85,8 @@ class ImageRecord:
 
 @dataclass(frozen=True)
 class TileRecord:
+    """A tile: a window of an image, its life-cycle state and its holder."""
+
     id: int
     image_id: int
     row: int
@@ -105,6 +109,8 @@ class TileRecord:
 
 @dataclass(frozen=True)
 class AnnotationRecord:
+    """One saved version of a tile's mask (full or scribble), never changed."""
+
     id: int
     tile_id: int
     version: int
@@ -132,6 +138,8 @@ class AnnotationRecord:
 
 @dataclass(frozen=True)
 class DraftRecord:
+    """An annotator's unsaved edit of a tile, decoded."""
+
     tile_id: int
     annotator: str
     parent_version: int | None
@@ -144,6 +152,8 @@ class DraftRecord:
 
 @dataclass(frozen=True)
 class ModelVersionRecord:
+    """A trained head or a cold-start rule that made proposals."""
+
     id: int
     kind: str
     name: str
@@ -158,6 +168,8 @@ class ModelVersionRecord:
 
 @dataclass(frozen=True)
 class ProposalRecord:
+    """A model's proposed mask of a tile, with its uncertainty figures."""
+
     id: int
     tile_id: int
     model_version_id: int
@@ -192,6 +204,8 @@ class ProposalRecord:
 
 @dataclass(frozen=True)
 class RankingItem:
+    """One tile's place in a queue order written by the picker."""
+
     tile_id: int
     rank: int
     score: float
@@ -201,6 +215,8 @@ class RankingItem:
 
 @dataclass(frozen=True)
 class EventRecord:
+    """One row of the append-only event log."""
+
     id: int
     at: datetime
     kind: str
