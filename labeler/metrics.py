@@ -56,6 +56,15 @@ CHUNK_PIXELS = 1 << 20
 def check_n_classes(n_classes: object) -> int:
     """``n_classes`` as an int in 1..4096.
 
+    Parameters
+    ----------
+    n_classes : int
+        Number of classes K.
+
+    Returns
+    -------
+    k : int
+
     Raises
     ------
     TypeError
@@ -73,6 +82,17 @@ def check_n_classes(n_classes: object) -> int:
 
 def check_ignore(ignore: object, *, n_classes: int) -> int | None:
     """The unlabelled value as an int (or ``None``), checked not to be a class index.
+
+    Parameters
+    ----------
+    ignore : int or None
+        The unlabelled value (255 in the project).
+    n_classes : int
+        Number of classes K.
+
+    Returns
+    -------
+    ignore : int or None
 
     Raises
     ------
@@ -96,6 +116,16 @@ def check_ignore(ignore: object, *, n_classes: int) -> int | None:
 
 def as_label_array(mask: object, *, name: str) -> np.ndarray:
     """``mask`` as an ndarray of an integer dtype (no copy when it already is one).
+
+    Parameters
+    ----------
+    mask : array_like, integer, any shape
+    name : str
+        Parameter name used in the message.
+
+    Returns
+    -------
+    mask : ndarray, same shape
 
     Raises
     ------

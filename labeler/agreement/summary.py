@@ -157,10 +157,12 @@ class _Pooled:
     day_count: dict[date, int] = field(default_factory=dict)
 
     def list_pair(self, key: Pair) -> None:
+        """Make the pair known (listed even when it never shares a pixel)."""
         self.pair_cm.setdefault(key, np.zeros((self.k, self.k), np.int64))
         self.pair_images.setdefault(key, 0)
 
     def add(self, key: Pair, day: date, cm: np.ndarray) -> None:
+        """Add one pair comparison of one image, dated by its later save."""
         self.pair_cm[key] += cm
         self.pair_images[key] += 1
         self.day_cm.setdefault(day, np.zeros((self.k, self.k), np.int64))

@@ -25,7 +25,7 @@ __all__ = ["STRATEGIES", "REASONS", "Selection", "select_batch"]
 
 #: The reason strings of a :class:`Selection`, one per ranked tile.
 REASONS = ("uncertain", "rare class", "unlike labelled tiles", "annotators disagree")
-UNCERTAIN, RARE_CLASS, UNLIKE_LABELLED, DISAGREE = REASONS
+_UNCERTAIN, _RARE_CLASS, _UNLIKE_LABELLED, _DISAGREE = REASONS
 
 #: Strategies that rank by one tile uncertainty measure of the same name.
 _BY_MEASURE = ("entropy", "margin", "bald")
@@ -249,7 +249,7 @@ def select_batch(
             )
     positions = np.concatenate([con_order, order]).astype(np.int64)
     all_scores = np.concatenate([con_scores, scores])
-    all_reasons = (DISAGREE,) * con.size + tuple(reasons)
+    all_reasons = (_DISAGREE,) * con.size + tuple(reasons)
     return Selection(
         strategy=strategy,
         k=k,
@@ -283,7 +283,7 @@ def _rank_by_measure(pool: CandidatePool, unl: np.ndarray, name: str) -> Ranking
     """entropy, margin, bald: the measure, largest first."""
     score = _measure(pool, name, unl)
     rank = _rank_desc(score)
-    return unl[rank], score[rank], [UNCERTAIN] * unl.size
+    return unl[rank], score[rank], [_UNCERTAIN] * unl.size
 
 
 def _rank_coreset(
@@ -298,7 +298,7 @@ def _rank_coreset(
     rest = rest[_rank_desc(run.final_dist[rest])]
     rank = np.concatenate([run.order, rest])
     score = np.concatenate([run.pick_dist, run.final_dist[rest]])
-    return unl[rank], score, [UNLIKE_LABELLED] * n_u
+    return unl[rank], score, [_UNLIKE_LABELLED] * n_u
 
 
 def _rank_random(unl: np.ndarray, u: np.ndarray, rho: np.ndarray, *, seed: int) -> Ranking:
@@ -306,7 +306,7 @@ def _rank_random(unl: np.ndarray, u: np.ndarray, rho: np.ndarray, *, seed: int) 
     n_u = unl.size
     rank = np.random.default_rng(seed).permutation(n_u)
     score = 1.0 - np.arange(n_u) / n_u
-    reasons = _dominant([_ratio(u, u)[rank], _ratio(rho, rho)[rank]], [UNCERTAIN, RARE_CLASS])
+    reasons = _dominant([_ratio(u, u)[rank], _ratio(rho, rho)[rank]], [_UNCERTAIN, _RARE_CLASS])
     return unl[rank], score, reasons
 
 
@@ -326,7 +326,7 @@ def _rank_mixed(
     weight = u * rho
     by_weight = _rank_desc(weight)
     if k == 0:
-        reasons = _dominant([u_ratio[by_weight], r_ratio[by_weight]], [UNCERTAIN, RARE_CLASS])
+        reasons = _dominant([u_ratio[by_weight], r_ratio[by_weight]], [_UNCERTAIN, _RARE_CLASS])
         return unl[by_weight], weight[by_weight], reasons
     m = top_m if top_m is not None else max(3 * k, math.ceil(n_u / 10))
     m = min(max(m, k), n_u)
@@ -338,11 +338,11 @@ def _rank_mixed(
     ref_dist = run.final_dist[ref] if ref.size else run.pick_dist
     d_ratio = _ratio(run.pick_dist, ref_dist)
     chosen_reasons = _dominant(
-        [u_ratio[chosen], r_ratio[chosen], d_ratio], [UNCERTAIN, RARE_CLASS, UNLIKE_LABELLED]
+        [u_ratio[chosen], r_ratio[chosen], d_ratio], [_UNCERTAIN, _RARE_CLASS, _UNLIKE_LABELLED]
     )
     is_chosen = np.zeros(n_u, bool)
     is_chosen[chosen] = True
     rest = by_weight[~is_chosen[by_weight]]
-    rest_reasons = _dominant([u_ratio[rest], r_ratio[rest]], [UNCERTAIN, RARE_CLASS])
+    rest_reasons = _dominant([u_ratio[rest], r_ratio[rest]], [_UNCERTAIN, _RARE_CLASS])
     rank = np.concatenate([chosen, rest])
     return unl[rank], weight[rank], chosen_reasons + rest_reasons
