@@ -1,4 +1,4 @@
-"""Speed of labeler.agreement.confusion_matrix against scikit-learn, in the same run.
+"""Speed of labeler.metrics.confusion_matrix against scikit-learn, in the same run.
 
 Two seeded random 8000 x 8000 uint8 masks with 4 classes and about 5 % unlabelled (255)
 pixels in each. Our function runs on the whole pair (best of ``repeats``);
@@ -27,7 +27,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from sklearn.metrics import confusion_matrix as sk_confusion_matrix  # noqa: E402
 
-from labeler.agreement import confusion_matrix  # noqa: E402
+from labeler.metrics import confusion_matrix  # noqa: E402
 
 SIDE = 8000
 K = 4

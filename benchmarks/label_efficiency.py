@@ -26,7 +26,7 @@ seed's full mIoU).
 
 mIoU: pixels of every held-out tile pooled into one confusion matrix (tiles overlap, so
 pixels in overlaps count once per tile), IoU per class, mean over the classes present in
-truth or prediction (Long, Shelhamer & Darrell 2015; ``labeler.agreement.mean_iou``).
+truth or prediction (Long, Shelhamer & Darrell 2015; ``labeler.metrics.mean_iou``).
 
 Datasets:
 
@@ -86,7 +86,7 @@ if str(REPO) not in sys.path:
     sys.path.insert(0, str(REPO))
 
 from benchmarks.datasets import peanut_truth  # noqa: E402
-from labeler.agreement import confusion_matrix, mean_iou  # noqa: E402
+from labeler.metrics import class_fractions, confusion_matrix, mean_iou  # noqa: E402
 from labeler.picker import CandidatePool, select_batch  # noqa: E402
 from labeler.settings import STRATEGIES, ModelSettings  # noqa: E402
 
@@ -299,12 +299,6 @@ def _evaluate(head, heldout: TileSet, *, n_classes: int, mc_samples: int, seed: 
     return mean_iou(cm)
 
 
-def _fractions(mask: np.ndarray, class_indices: Sequence[int]) -> np.ndarray:
-    counts = np.bincount(mask.ravel(), minlength=256)[list(class_indices)].astype(np.float64)
-    total = counts.sum()
-    return counts / total if total else counts
-
-
 @dataclass
 class _PoolScores:
     """Uncertainty scalars of the unlabelled pool tiles under one head (NaN elsewhere)."""
@@ -445,7 +439,7 @@ def run_curves(
     embeddings = np.stack(
         [np.asarray(f[3], np.float32).mean(axis=(1, 2)) for f in pool.features]
     )  # global average of the stride-32 features, as in propose_tiles
-    truth_fractions = np.stack([_fractions(m, idx) for m in pool.masks])
+    truth_fractions = np.stack([class_fractions(m, idx) for m in pool.masks])
 
     total = len(seeds) * (2 + len(strategies) * (len(sizes) - 1))
     total += reference_settings is not None

@@ -53,10 +53,10 @@ REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
 
 from benchmarks.datasets import peanut_truth  # noqa: E402
-from labeler.agreement import confusion_matrix, iou_per_class  # noqa: E402
 from labeler.imagery.read import read_image  # noqa: E402
 from labeler.imagery.tiling import stitch, tile_grid  # noqa: E402
 from labeler.imagery.write import png_decode  # noqa: E402
+from labeler.metrics import confusion_matrix, iou_per_class  # noqa: E402
 from labeler.model.cache import FeatureCache  # noqa: E402
 from labeler.model.encoder import load_encoder  # noqa: E402
 from labeler.model.predict import propose_tiles  # noqa: E402

@@ -360,12 +360,8 @@ def cmd_propose(args) -> int:
     return 0
 
 
-def format_iou(val_iou: dict, miou) -> str:
-    parts = [f"{name} {'-' if v is None else f'{v:.3f}'}" for name, v in val_iou.items()]
-    return "validation IoU: " + ", ".join(parts) + ("" if miou is None else f"; mIoU {miou:.3f}")
-
-
 def cmd_retrain(args) -> int:
+    from labeler.metrics import format_iou
     from labeler.project import open_project
     from labeler.workflow import retrain
 
@@ -376,7 +372,7 @@ def cmd_retrain(args) -> int:
         f"trained {mv.name} on {result.n_full} full masks and {result.n_scribble} scribbled tiles "
         f"({result.n_train} training, {result.n_val} validation tiles; best epoch {result.best_epoch})"
     )
-    print(format_iou(mv.val_iou or {}, mv.miou))
+    print(f"validation IoU: {format_iou(mv.val_iou, miou=mv.miou)}")
     print("run 'labeler propose' to refresh the proposals with it")
     return 0
 

@@ -70,6 +70,9 @@ __all__ = [
 SETTINGS_FILE = "labeler.toml"
 
 STRATEGIES = ("random", "entropy", "margin", "bald", "coreset", "mixed")
+#: Per-pixel uncertainty measures, in the channel order of labeler.picker.uncertainty_maps;
+#: the one list of their names (picker, model and workflow use it).
+UNCERTAINTY_MEASURES = ("entropy", "margin", "least_confidence", "bald")
 #: Augmentation modes of head training (``model.augment``; see labeler.model.train).
 AUGMENT_MODES = ("auto", "features", "images")
 

@@ -28,6 +28,7 @@ __all__ = [
     "zoo_unlabelled",
     "zoo_four_classes",
     "ZOO",
+    "random_masks",
 ]
 
 REPO = Path(__file__).resolve().parents[1]
@@ -119,3 +120,17 @@ ZOO = {
     "unlabelled": zoo_unlabelled,
     "four_classes": zoo_four_classes,
 }
+
+
+def random_masks(seed: int, shape: tuple[int, ...], k: int, unlabelled: float = 0.1):
+    """Two seeded random masks of classes 0..k-1 with about ``unlabelled`` share of 255 each.
+
+    The second mask copies the first on about 60 % of the pixels, so the two agree better
+    than chance; used by the metric and agreement tests against their oracles.
+    """
+    rng = np.random.default_rng(seed)
+    a = rng.integers(0, k, shape).astype(np.uint8)
+    b = np.where(rng.random(shape) < 0.6, a, rng.integers(0, k, shape)).astype(np.uint8)
+    a[rng.random(shape) < unlabelled] = 255
+    b[rng.random(shape) < unlabelled] = 255
+    return a, b

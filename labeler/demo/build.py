@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from labeler.errors import LabelerError
+from labeler.metrics import format_iou
 from labeler.project import Project, init_project
 
 __all__ = [
@@ -184,10 +185,10 @@ def run_demo_round(
         )
     trained = retrain(project, progress=prog)
     mv = trained.model_version
-    iou = ", ".join(
-        f"{k} {'-' if v is None else f'{v:.2f}'}" for k, v in (mv.val_iou or {}).items()
+    say(
+        f"5. retrained {mv.name} on {trained.n_full} tiles: validation IoU "
+        f"{format_iou(mv.val_iou, digits=2)}"
     )
-    say(f"5. retrained {mv.name} on {trained.n_full} tiles: validation IoU {iou}")
     res = propose(project, progress=prog)
     say(f"6. re-proposed {res.proposed} tiles with {res.model_version.name}")
     ranked = rank_tiles(project, progress=prog)

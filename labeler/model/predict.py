@@ -47,6 +47,7 @@ from labeler.model.head import ProposalHead, features_to_tensors
 from labeler.model.refine import pixel_input
 from labeler.model.runtime import inference
 from labeler.model.upsample import guided_upsample
+from labeler.settings import UNCERTAINTY_MEASURES
 
 __all__ = [
     "TileProposal",
@@ -57,8 +58,9 @@ __all__ = [
     "UNCERTAINTY_NAMES",
 ]
 
-#: Order of the maps in :attr:`TileProposal.uncertainty`.
-UNCERTAINTY_NAMES = ("entropy", "margin", "bald")
+#: Order of the maps in :attr:`TileProposal.uncertainty`: the measures of the one list
+#: :data:`labeler.settings.UNCERTAINTY_MEASURES`, less least confidence (not kept as a map).
+UNCERTAINTY_NAMES = tuple(m for m in UNCERTAINTY_MEASURES if m != "least_confidence")
 
 
 def entropy_t(probs: torch.Tensor, *, dim: int) -> torch.Tensor:

@@ -67,9 +67,9 @@ import torch.nn.functional as F
 from torchvision import tv_tensors
 from torchvision.transforms import v2
 
-from labeler.agreement import confusion_matrix, iou_per_class
 from labeler.classes import UNLABELLED
 from labeler.errors import InputError
+from labeler.metrics import confusion_matrix, iou_per_class
 from labeler.model.encoder import to_input
 from labeler.model.head import (
     REFINE_CHANNELS,

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from datetime import UTC
 
 from labeler.agreement import AgreementSummary, landis_koch_band
@@ -19,7 +19,6 @@ __all__ = [
     "contested_cells",
     "model_columns",
     "model_cells",
-    "format_iou",
     "miou_series",
 ]
 
@@ -102,12 +101,6 @@ def model_cells(version: ModelVersionRecord, *, schema: ClassSchema) -> tuple[st
         *(format_number(iou.get(n)) for n in schema.names),
         format_number(version.miou),
     )
-
-
-def format_iou(val_iou: Mapping[str, float | None] | None, *, names: Sequence[str]) -> str:
-    """``"crop 0.812 · weed 0.433 · symptom -"`` in the order of ``names``."""
-    iou = val_iou or {}
-    return " · ".join(f"{n} {format_number(iou.get(n))}" for n in names)
 
 
 def miou_series(versions: Sequence[ModelVersionRecord]) -> list[float]:

@@ -18,8 +18,8 @@ from textual.worker import get_current_worker
 
 import labeler.workflow as workflow
 from labeler.imagery.read import open_image
+from labeler.metrics import format_iou
 from labeler.states import STATES
-from labeler.tui.figures import format_iou
 from labeler.tui.keys import HEADER_ICON, QUEUE_KEYS, bindings
 from labeler.tui.preview import overlay
 from labeler.tui.rows import NOBODY, QUEUE_COLUMNS, RowFilter, filter_rows, queue_cells

@@ -8,6 +8,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from labeler.errors import LabelerError
+from labeler.metrics import class_fractions
 from labeler.picker import CandidatePool, select_batch
 from labeler.project import Project
 from labeler.states import SETTLED
@@ -28,13 +29,6 @@ class RankResult:
     items: list[RankingItem]
     unranked: int  # tiles without a proposal (not ranked)
     note: str = ""
-
-
-def _fractions(mask: np.ndarray, indices: tuple[int, ...]) -> np.ndarray:
-    counts = np.bincount(mask.ravel(), minlength=256)
-    sel = counts[list(indices)].astype(np.float64)
-    total = sel.sum()
-    return sel / total if total else sel
 
 
 def rank_tiles(
@@ -93,7 +87,7 @@ def rank_tiles(
         if n_saved >= 1:
             latest = store.latest_annotation(t.id)
             if latest is not None:
-                fr = _fractions(latest.mask(), schema.indices)
+                fr = class_fractions(latest.mask(), schema.indices)
         a_val = math.nan
         if n_saved >= 2:
             v = overlap_agreement(project, t.id)

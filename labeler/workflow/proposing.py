@@ -26,6 +26,7 @@ from labeler.errors import InputError, LabelerError
 from labeler.imagery.read import ImageReader, open_image
 from labeler.imagery.tiling import Window
 from labeler.masks.coldstart import cold_start_proposal, detect_image_rows
+from labeler.metrics import class_fractions
 from labeler.project import Project
 from labeler.states import CONTESTED, SETTLED
 from labeler.store import NewProposal
@@ -135,12 +136,6 @@ def _part(rgb: np.ndarray, block: Window, w: Window) -> np.ndarray:
     ]
 
 
-def _fractions(mask: np.ndarray, indices: Sequence[int]) -> list[float]:
-    counts = np.bincount(mask.ravel(), minlength=256)[list(indices)].astype(np.float64)
-    total = counts.sum()
-    return (counts / total if total else counts).tolist()
-
-
 def propose(project: Project, *, progress: Progress = _no_progress) -> ProposeResult:
     """Propose masks for every tile whose proposal is older than the newest model.
 
@@ -233,7 +228,7 @@ def propose(project: Project, *, progress: Progress = _no_progress) -> ProposeRe
                                 tile_id=t.id,
                                 mask=mask,
                                 embedding=emb,
-                                class_fractions=_fractions(mask, schema.indices),
+                                class_fractions=class_fractions(mask, schema.indices).tolist(),
                             )
                         )
                 else:
@@ -258,7 +253,7 @@ def propose(project: Project, *, progress: Progress = _no_progress) -> ProposeRe
                                 mean_entropy=p.mean_entropy,
                                 mean_margin=p.mean_margin,
                                 mean_bald=p.mean_bald,
-                                class_fractions=_fractions(p.mask, schema.indices),
+                                class_fractions=class_fractions(p.mask, schema.indices).tolist(),
                             )
                         )
                 done += len(members)

@@ -6,13 +6,8 @@ import numpy as np
 from sklearn.metrics import cohen_kappa_score
 from textual.widgets import DataTable
 
-from labeler.agreement import (
-    cohen_kappa,
-    confusion_matrix,
-    iou_per_class,
-    landis_koch_band,
-    mean_iou,
-)
+from labeler.agreement import cohen_kappa, landis_koch_band
+from labeler.metrics import confusion_matrix, iou_per_class, mean_iou
 from labeler.tui.agreement_screen import AgreementScreen
 from labeler.tui.app import QueueApp
 from labeler.tui.figures import AGREEMENT_COLUMNS, CONTESTED_COLUMNS

@@ -8,11 +8,11 @@ from sklearn.metrics import cohen_kappa_score, jaccard_score
 
 from labeler.agreement import ComparedImage, summarise_agreement
 from labeler.classes import DEFAULT_SCHEMA, ClassSchema, LabelClass
+from labeler.metrics import format_iou
 from labeler.store.records import ModelVersionRecord
 from labeler.tui.figures import (
     AGREEMENT_COLUMNS,
     agreement_cells,
-    format_iou,
     miou_series,
     model_cells,
     model_columns,

@@ -3,8 +3,9 @@
 import numpy as np
 import pytest
 
-from labeler.agreement import cohen_kappa, confusion_matrix
+from labeler.agreement import cohen_kappa
 from labeler.errors import ConflictError, LabelerError, NotFoundError
+from labeler.metrics import confusion_matrix
 from labeler.workflow import accept_tile, next_tile, park_tile, queue_rows, save_tile_mask
 from labeler.workflow.annotating import overlap_agreement
 from tests.workflow.conftest import fake_proposals

@@ -1,4 +1,4 @@
-"""The pure agreement summary behind the report (labeler/agreement.py, summarise_agreement).
+"""The pure agreement summary behind the report (labeler/agreement/summary.py).
 
 Pooled figures are checked against scikit-learn on the concatenated commonly labelled
 pixels (oracle); the scenario is an invented farm ("Hollow Ash"), its plots and annotators.
@@ -14,6 +14,7 @@ import pytest
 from sklearn.metrics import cohen_kappa_score, jaccard_score
 
 from labeler import agreement as ag
+from labeler import metrics as mt
 from labeler.classes import DEFAULT_SCHEMA, ClassSchema, LabelClass
 from labeler.imagery.tiling import Window
 
@@ -61,7 +62,7 @@ def test_pair_figures_match_sklearn_on_pooled_pixels():
     np.testing.assert_allclose(mo.iou, jaccard_score(x, y, average=None), atol=1e-12)
     assert mo.band == ag.landis_koch_band(mo.kappa)
     np.testing.assert_array_equal(mo.confusion,
-                                  ag.confusion_matrix(x, y, n_classes=4))
+                                  mt.confusion_matrix(x, y, n_classes=4))
     # ines only on plot B and only on her labelled half
     im = s.pairs[0]
     assert im.images_compared == 1 and im.pixels_compared == 24 * 16

@@ -1,4 +1,4 @@
-"""Consensus of labeler/agreement.py: majority vote and STAPLE.
+"""Consensus of labeler/agreement/consensus.py: majority vote and STAPLE.
 
 STAPLE is Warfield, Zou & Wells (2004), IEEE TMI 23(7): checked on seeded synthetic
 raters whose true flip rates are known, so the estimated rates can be compared with them.
