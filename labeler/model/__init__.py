@@ -6,7 +6,8 @@ Modules: :mod:`~labeler.model.encoder` (EfficientNet-Lite0, multi-scale features
 :mod:`~labeler.model.head` (FPN head with dropout), :mod:`~labeler.model.refine`
 (full-resolution refinement), :mod:`~labeler.model.trainset` (labelled tiles prepared
 for training), :mod:`~labeler.model.augment` (flips, turns, colour jitter),
-:mod:`~labeler.model.train` (partial cross-entropy training),
+:mod:`~labeler.model.loss` (partial cross-entropy, class weights),
+:mod:`~labeler.model.train` (the training loop),
 :mod:`~labeler.model.validation` (validation loss, early stopping),
 :mod:`~labeler.model.predict` (proposals with MC-dropout uncertainty),
 :mod:`~labeler.model.upsample` (colour-guided upsampling), :mod:`~labeler.model.checkpoint`

@@ -45,7 +45,8 @@ def head():
 
 # -- torch twins against labeler.picker ---------------------------------------------------
 def test_twins_on_worked_values():
-    # notes-checks.md (recomputed): p = (0.5, 0.3, 0.2): H = 1.029653 nats, margin 0.2;
+    # worked by hand from the definitions (Shannon entropy in nats; BALD of Houlsby et al.
+    # 2011, arXiv:1112.5745): p = (0.5, 0.3, 0.2): H = 1.029653 nats, margin 0.2;
     # BALD of (1,0),(0,1) = ln 2; of (0.9,0.1),(0.1,0.9) = 0.368064
     p = torch.tensor([0.5, 0.3, 0.2], dtype=torch.float64)
     assert float(entropy_t(p, dim=0)) == pytest.approx(1.029653, abs=1e-6)
