@@ -257,8 +257,8 @@ def propose(project: Project, *, progress: Progress = _no_progress) -> ProposeRe
                                 embedding=p.embedding,
                                 mean_entropy=p.mean_entropy,
                                 mean_margin=p.mean_margin,
-                                mean_bald=p.mean_bald,
                                 mean_least_confidence=p.mean_least_confidence,
+                                mean_bald=p.mean_bald,
                                 class_fractions=_fractions(p.mask, schema.indices),
                             )
                         )
