@@ -24,9 +24,10 @@ for the mask as ``labeler propose`` makes it from the tile's pixels (the refined
 stride-4 probabilities upsampled bilinearly (the mask without the refinement, as
 ``propose_tiles`` makes it when no pixels are given).
 
-The open datasets are read in place from ``../shared/datasets`` beside the repository and
-never copied; a missing dataset gives null with a reason under ``reasons``. Features are
-cached in a temporary folder (``--cache`` keeps them between runs). The encoder is the
+The open datasets are read in place from the open-dataset folder
+(:data:`benchmarks.datasets.DATASETS`, outside the repository) and never copied; a
+missing dataset gives null with a reason under ``reasons``. Features are cached in a
+temporary folder (``--cache`` keeps them between runs). The encoder is the
 frozen ImageNet-1k EfficientNet-Lite0; only the head learns. Training on the open
 datasets uses a seeded subset of the training tiles (``--train-tiles-per-image``) to keep
 the run to minutes on a CPU; evaluation uses every tile of the evaluation images.
@@ -52,7 +53,7 @@ import numpy as np
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
 
-from benchmarks.datasets import peanut_truth  # noqa: E402
+from benchmarks.datasets import PEANUT, SOYBEAN, absent_reason, peanut_truth  # noqa: E402
 from labeler.imagery.read import read_image  # noqa: E402
 from labeler.imagery.tiling import stitch, tile_grid  # noqa: E402
 from labeler.imagery.write import png_decode  # noqa: E402
@@ -64,9 +65,6 @@ from labeler.model.runtime import configure_threads  # noqa: E402
 from labeler.model.train import train_head  # noqa: E402
 from labeler.settings import ModelSettings  # noqa: E402
 
-DATASETS = REPO.parent / "shared" / "datasets"
-PEANUT = DATASETS / "peanut-weed"
-SOYBEAN = DATASETS / "soybean-rust"
 DEMO = REPO / "demo_fields"
 TILE = 256
 
@@ -312,7 +310,7 @@ def main(argv: list[str] | None = None) -> int:
                 result.update(demo)
         if "peanut" in which:
             if not (PEANUT / "images").is_dir():
-                reasons["open"] = f"peanut-weed dataset absent at ../shared/datasets/{PEANUT.name}"
+                reasons["open"] = absent_reason(PEANUT, expected="images/")
             else:
                 pairs = [
                     (p.stem, p, PEANUT / "labels" / f"{p.stem}.png")
@@ -339,9 +337,7 @@ def main(argv: list[str] | None = None) -> int:
                     )
         if "soybean" in which:
             if not (SOYBEAN / "original_images").is_dir():
-                reasons["lesion"] = (
-                    f"soybean-rust dataset absent at ../shared/datasets/{SOYBEAN.name}"
-                )
+                reasons["lesion"] = absent_reason(SOYBEAN, expected="original_images/")
             else:
                 pairs = [
                     (

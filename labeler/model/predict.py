@@ -18,7 +18,10 @@ Ghahramani 2016). From the T softmax outputs at stride 4:
   mean (top-1 minus top-2), and BALD = H[mean_t p_t] - mean_t H[p_t] (Houlsby et al.
   2011). Natural logarithms (nats). These are torch twins of
   :func:`labeler.picker.pixel_entropy`, :func:`~labeler.picker.pixel_margin` and
-  :func:`~labeler.picker.pixel_bald` (the tests hold them to those definitions).
+  :func:`~labeler.picker.pixel_bald` (the tests hold them to those definitions);
+- the tile means of the three maps, and the tile mean of the least confidence of the
+  mean, ``1 - max_k p_k`` on the same grid (:func:`labeler.picker.pixel_least_confidence`;
+  a scalar only, no map is kept).
 
 The T dropout masks are drawn once per call from ``seed`` (a local generator) and shared
 by every tile of one size, so a tile's proposal depends on the seed and the tile only,
@@ -100,6 +103,8 @@ class TileProposal:
         (``s`` = ``uncertainty_stride``), in :data:`UNCERTAINTY_NAMES` order.
     mean_entropy, mean_margin, mean_bald : float
         Tile means of the three maps (computed before rounding to float16).
+    mean_least_confidence : float
+        Tile mean of ``1 - max_k p_k`` of the mean probabilities on the uncertainty grid.
     class_fractions : ndarray, shape (K,), float64
         Share of the mask's pixels per head class (sums to 1).
     embedding : ndarray, shape (D,), float32
@@ -115,6 +120,7 @@ class TileProposal:
     mean_entropy: float
     mean_margin: float
     mean_bald: float
+    mean_least_confidence: float
     class_fractions: np.ndarray
     embedding: np.ndarray
     class_indices: tuple[int, ...]
@@ -206,6 +212,8 @@ def _propose_batch(
     mar = margin_t(mean_g, dim=1)
     bald = bald_t(samples, sample_dim=0, class_dim=2) if t > 1 else torch.zeros_like(ent)
     maps = torch.stack([ent, mar, bald], dim=1)  # (B, 3, gh, gw)
+    # least confidence of the mean (B, gh, gw), kept in [0, 1] against float32 rounding
+    least = (1.0 - mean_g.amax(dim=1)).clamp_(0.0, 1.0).numpy()
 
     refined = guide is not None and head.refiner is not None
     if refined:
@@ -229,6 +237,7 @@ def _propose_batch(
                 mean_entropy=float(maps_np[i, 0].mean(dtype=np.float64)),
                 mean_margin=float(maps_np[i, 1].mean(dtype=np.float64)),
                 mean_bald=float(maps_np[i, 2].mean(dtype=np.float64)),
+                mean_least_confidence=float(least[i].mean(dtype=np.float64)),
                 class_fractions=counts / counts.sum(),
                 embedding=emb[i].copy(),
                 class_indices=cfg.class_indices,

@@ -13,10 +13,7 @@ from collections.abc import Iterator
 
 import torch
 
-__all__ = ["DEVICE", "configure_threads", "available_cores", "inference"]
-
-#: The only device the project uses.
-DEVICE = torch.device("cpu")
+__all__ = ["configure_threads", "available_cores", "inference"]
 
 
 def available_cores() -> int:

@@ -252,6 +252,7 @@ def propose(project: Project, *, progress: Progress = _no_progress) -> ProposeRe
                                 embedding=p.embedding,
                                 mean_entropy=p.mean_entropy,
                                 mean_margin=p.mean_margin,
+                                mean_least_confidence=p.mean_least_confidence,
                                 mean_bald=p.mean_bald,
                                 class_fractions=class_fractions(p.mask, schema.indices).tolist(),
                             )

@@ -20,7 +20,7 @@ from labeler.model.predict import (
     propose_tiles,
 )
 from labeler.model.refine import pixel_input
-from labeler.picker import pixel_bald, pixel_entropy, pixel_margin
+from labeler.picker import pixel_bald, pixel_entropy, pixel_least_confidence, pixel_margin
 
 
 def _features(n, size=64, seed=0):
@@ -45,7 +45,8 @@ def head():
 
 # -- torch twins against labeler.picker ---------------------------------------------------
 def test_twins_on_worked_values():
-    # notes-checks.md (recomputed): p = (0.5, 0.3, 0.2): H = 1.029653 nats, margin 0.2;
+    # worked by hand from the definitions (Shannon entropy in nats; BALD of Houlsby et al.
+    # 2011, arXiv:1112.5745): p = (0.5, 0.3, 0.2): H = 1.029653 nats, margin 0.2;
     # BALD of (1,0),(0,1) = ln 2; of (0.9,0.1),(0.1,0.9) = 0.368064
     p = torch.tensor([0.5, 0.3, 0.2], dtype=torch.float64)
     assert float(entropy_t(p, dim=0)) == pytest.approx(1.029653, abs=1e-6)
@@ -124,6 +125,8 @@ def test_proposal_shapes_and_scalars(head):
             float(p.uncertainty[2].astype(np.float64).mean()), abs=1e-3
         )
         assert 0 <= p.mean_bald <= p.mean_entropy <= math.log(3) + 1e-6
+        # least confidence 1 - max p lies in [0, 1 - 1/K] (K = 3 classes)
+        assert 0 <= p.mean_least_confidence <= 1 - 1 / 3 + 1e-6
         want = np.array([(p.mask == c).mean() for c in (0, 1, 3)])
         np.testing.assert_allclose(p.class_fractions, want, atol=1e-12)
         assert p.embedding.shape == (320,) and p.embedding.dtype == np.float32
@@ -154,6 +157,8 @@ def test_proposal_matches_a_slow_reference(head):
     np.testing.assert_allclose(prop.uncertainty[0], pixel_entropy(mean, axis=0), atol=2e-3)
     np.testing.assert_allclose(prop.uncertainty[1], pixel_margin(mean, axis=0), atol=2e-3)
     np.testing.assert_allclose(prop.uncertainty[2], pixel_bald(samples), atol=2e-3)
+    want_lc = float(pixel_least_confidence(mean, axis=0).mean())
+    assert prop.mean_least_confidence == pytest.approx(want_lc, abs=1e-5)
     up = torch.nn.functional.interpolate(
         torch.from_numpy(mean)[None], size=(64, 64), mode="bilinear", align_corners=False
     )[0].numpy()

@@ -17,7 +17,8 @@ from labeler.model.refine import (
 
 # -- input ------------------------------------------------------------------------------------
 def test_vegetation_channel_on_worked_pixels():
-    # notes-checks.md (recomputed; Meyer & Neto 2008, ExR coefficient 1.4): ExGR of
+    # worked by hand from Meyer & Neto 2008 (Comput. Electron. Agric. 63; ExG - ExR with
+    # the ExR coefficient 1.4; ExG of Woebbecke et al. 1995): ExGR of
     # (0,255,0) = 3, (100,100,100) = -0.1333, (60,120,40) = 0.8; black: 0 (guarded)
     rgb = torch.tensor(
         [[0, 255, 0], [100, 100, 100], [60, 120, 40], [0, 0, 0]], dtype=torch.float32
@@ -42,7 +43,8 @@ def test_pixel_input_normalises_like_the_encoder():
     x = pixel_input(images)
     assert tuple(x.shape) == (3, PIXEL_CHANNELS, 5, 6) and x.dtype == torch.float32
     assert x.is_contiguous(memory_format=torch.channels_last)
-    # the encoder's input normalisation (x - 127) / 128 (DESIGN.md section 5)
+    # the encoder's input normalisation (x - 127) / 128 (labeler/model/encoder.py, that of
+    # the EfficientNet-Lite weights)
     want = (images.astype(np.float64) - 127.0) / 128.0
     np.testing.assert_allclose(x[:, :3].permute(0, 2, 3, 1).numpy(), want, atol=1e-7)
     # a (N, 3, H, W) tensor gives the same

@@ -1,30 +1,20 @@
-"""Head training: partial cross-entropy, class weights, joint augmentation, early stopping."""
+"""Head training: epochs, augmentation modes, early stopping, refinement, repeatability."""
 
+import copy
 import dataclasses
+import math
 
 import numpy as np
 import pytest
 import torch
-import torch.nn.functional as F
-from torchvision import tv_tensors
 
 from labeler.errors import InputError
+from labeler.model import train as train_module
 from labeler.model.encoder import encode_tiles
 from labeler.model.head import REFINE_CHANNELS, HeadConfig
 from labeler.model.predict import propose_tiles
-from labeler.model.train import (
-    RandomQuarterTurn,
-    _batches,
-    _feature_batch,
-    _loss,
-    class_weights,
-    colour_jitter,
-    dihedral,
-    image_augmentation,
-    train_head,
-)
+from labeler.model.train import epoch_batches, train_head
 from labeler.settings import ModelSettings
-from tests.common import zoo_four_classes
 from tests.model.conftest import disk_tiles
 
 TINY = ModelSettings(epochs=2, batch_size=2, min_labelled_tiles=3, val_share=0.34, seed=0)
@@ -42,94 +32,17 @@ def tiles(encoder):
     return images, masks, encode_tiles(encoder, images)
 
 
-def test_class_weights_follow_the_formula():
-    counts = np.array([840, 120, 40, 0])
-    f = counts[:3] / 1000
-    # inverse sqrt frequency scaled to mean weight 1 per labelled pixel (common practice, no source)
-    want = f**-0.5 / np.sqrt(f).sum()
-    got = class_weights(counts)
-    np.testing.assert_allclose(got[:3], want, rtol=1e-12)
-    assert got[3] == 1.0
-    assert float((f * got[:3]).sum()) == pytest.approx(1.0, abs=1e-12)
-    # a rare class: 1e4 / (1 + 1e-4) before clipping to 10; the common one stays ~1
-    np.testing.assert_allclose(class_weights(np.array([10**8, 1])), [1 / (1 + 1e-4), 10.0])
-    np.testing.assert_array_equal(class_weights(np.zeros(3)), np.ones(3))
-
-
-def test_partial_cross_entropy_ignores_unlabelled_pixels():
-    rng = np.random.default_rng(0)
-    logits = torch.from_numpy(rng.normal(size=(1, 3, 2, 3)))
-    target = torch.tensor([[[0, 255, 2], [1, 255, 255]]])
-    w = torch.tensor([1.0, 2.0, 0.5], dtype=torch.float64)
-    # slow reference: sum_i w[y_i] * -log softmax(x_i)[y_i] / sum_i w[y_i] over labelled i
-    num = den = 0.0
-    for r in range(2):
-        for c in range(3):
-            y = int(target[0, r, c])
-            if y == 255:
-                continue
-            logp = F.log_softmax(logits[0, :, r, c], dim=0)[y]
-            num += float(w[y] * -logp)
-            den += float(w[y])
-    assert float(_loss(logits, target, w)) == pytest.approx(num / den, rel=1e-12)
-    assert _loss(logits, torch.full_like(target, 255), w) is None
-
-
 def test_batches_repeat_whole_passes_up_to_min_steps():
     rng = np.random.default_rng(0)
     groups = {(64, 64): [0, 1, 2], (32, 32): [3, 4]}
-    out = _batches(groups, 2, rng, min_steps=7)
+    out = epoch_batches(groups, 2, rng, min_steps=7)
     assert len(out) == 9  # passes of 3 batches (2 of the 64 px tiles, 1 of the 32 px) until >= 7
     for k in (0, 3, 6):
         one_pass = sorted(i for b in out[k : k + 3] for i in b)
         assert one_pass == [0, 1, 2, 3, 4]
     for b in out:  # a batch never mixes tile sizes
         assert len({(64, 64) if i < 3 else (32, 32) for i in b}) == 1
-    assert len(_batches(groups, 8, rng)) == 2
-
-
-def test_dihedral_matches_numpy():
-    a = np.arange(12).reshape(3, 4)  # asymmetric
-    t = torch.from_numpy(a)
-    for code in range(8):
-        want = np.rot90(a, code % 4)
-        if code >= 4:
-            want = np.fliplr(want)
-        np.testing.assert_array_equal(dihedral(t, code).numpy(), want)
-    sq = torch.arange(9).reshape(3, 3)
-    assert len({tuple(dihedral(sq, c).flatten().tolist()) for c in range(8)}) == 8
-
-
-def test_augmentation_moves_image_and_mask_together_without_interpolation():
-    torch.manual_seed(0)
-    rng = np.random.default_rng(1)
-    mask = np.kron(zoo_four_classes(), np.ones((2, 2), np.uint8))  # 16 x 16, four quadrants
-    mask[0, 0] = 255
-    image = np.zeros((3, 16, 16), np.uint8)
-    image[1] = mask * 40  # green channel encodes the class
-    image[0] = rng.integers(0, 50, (16, 16))
-    aug = image_augmentation()
-    for _ in range(12):
-        im, mk = aug(
-            tv_tensors.Image(torch.from_numpy(image)), tv_tensors.Mask(torch.from_numpy(mask))
-        )
-        assert isinstance(mk, tv_tensors.Mask) and mk.dtype == torch.uint8
-        m = mk.numpy()
-        # the mask is only moved: same multiset of values, no interpolated values
-        np.testing.assert_array_equal(np.sort(m.ravel()), np.sort(mask.ravel()))
-        # it moved exactly like the image: one of the 8 flips/turns of the original
-        options = [np.rot90(mask, k) for k in range(4)] + [
-            np.fliplr(np.rot90(mask, k)) for k in range(4)
-        ]
-        assert any(np.array_equal(m, o) for o in options)
-
-
-def test_quarter_turn_keeps_non_square_shapes():
-    torch.manual_seed(3)
-    turn = RandomQuarterTurn()
-    mask = tv_tensors.Mask(torch.arange(6, dtype=torch.uint8).reshape(2, 3))
-    for _ in range(8):
-        assert tuple(turn(mask).shape) == (2, 3)
+    assert len(epoch_batches(groups, 8, rng)) == 2
 
 
 def test_too_few_labelled_tiles_is_a_clear_error(tiles):
@@ -183,14 +96,80 @@ def test_training_is_repeatable(tiles):
         torch.testing.assert_close(va, vb, rtol=0, atol=0)
 
 
-def test_early_stopping_keeps_the_best_epoch(tiles):
+def _scripted_validation(monkeypatch, losses):
+    """Make train_head's validation return the hand-made ``losses``, one per epoch, and
+    record a copy of the head's state at each call (the state the epoch ends with)."""
+    states = []
+
+    def fake_validate(head, *args, **kwargs):
+        states.append(copy.deepcopy(head.state_dict()))
+        cm = np.array([[3, 1], [1, 3]])  # IoU 0.6 for both classes
+        return losses[len(states) - 1], cm
+
+    monkeypatch.setattr(train_module, "validate", fake_validate)
+    return states
+
+
+@pytest.mark.parametrize(
+    ("patience", "stop_epoch", "best_epoch"),
+    [
+        # losses 1.0, 0.8, 0.9, 0.85, 0.7, 0.75, 0.76, 0.77, 0.6, 0.5 (worked by hand):
+        (1, 3, 2),  # 0.9 at epoch 3 does not improve on 0.8: stop, keep epoch 2
+        (2, 4, 2),  # 0.9 and 0.85: two epochs without a lower loss
+        (3, 8, 5),  # 0.7 at epoch 5 improves; 0.75, 0.76, 0.77 do not
+        (4, 10, 10),  # never stale for 4 epochs: runs all 10 epochs, keeps the last
+    ],
+)
+def test_early_stopping_stops_at_the_known_epoch(
+    tiles, monkeypatch, patience, stop_epoch, best_epoch
+):
+    images, masks, feats = tiles
+    losses = [1.0, 0.8, 0.9, 0.85, 0.7, 0.75, 0.76, 0.77, 0.6, 0.5]
+    states = _scripted_validation(monkeypatch, losses)
+    s = ModelSettings(epochs=10, batch_size=2, val_share=0.34, seed=0)
+    res = fit(
+        masks, class_indices=(0, 1), features=feats, settings=s, mode="features", patience=patience
+    )
+    assert len(res.history) == len(states) == stop_epoch
+    assert [h["val_loss"] for h in res.history] == losses[:stop_epoch]
+    assert res.best_epoch == best_epoch
+    np.testing.assert_allclose(res.val_iou, [0.6, 0.6], atol=1e-12)
+    # the head comes back in the state of the best epoch, not of the last one
+    kept = res.head.state_dict()
+    for name, value in states[best_epoch - 1].items():
+        torch.testing.assert_close(kept[name], value, rtol=0, atol=0)
+    if best_epoch != stop_epoch:
+        last = states[stop_epoch - 1]
+        assert any(not torch.equal(kept[k], last[k]) for k in last if k.endswith("weight"))
+
+
+def test_without_validation_every_epoch_runs_and_the_last_is_kept(tiles, monkeypatch):
+    images, masks, feats = tiles
+    states = []
+
+    def fake_validate(head, *args, **kwargs):  # what validate returns without validation tiles
+        states.append(copy.deepcopy(head.state_dict()))
+        return math.nan, None
+
+    monkeypatch.setattr(train_module, "validate", fake_validate)
+    s = ModelSettings(epochs=4, batch_size=2, val_share=0.0, seed=0, min_labelled_tiles=3)
+    res = fit(masks, class_indices=(0, 1), features=feats, settings=s, mode="features", patience=1)
+    assert res.n_val == 0 and len(res.history) == 4 and res.best_epoch == 4
+    assert np.isnan(res.val_iou).all() and res.val_iou.shape == (2,)
+    for name, value in states[-1].items():
+        torch.testing.assert_close(res.head.state_dict()[name], value, rtol=0, atol=0)
+
+
+def test_real_validation_losses_follow_the_rule(tiles):
     images, masks, feats = tiles
     s = ModelSettings(epochs=12, batch_size=2, val_share=0.34, seed=0)
     res = fit(masks, class_indices=(0, 1), features=feats, settings=s, mode="features", patience=1)
     losses = [h["val_loss"] for h in res.history]
+    assert all(np.isfinite(losses))
     assert res.best_epoch == int(np.argmin(losses)) + 1
-    # stopped one epoch after the first epoch that did not improve, unless it ran out
-    assert len(losses) == 12 or losses[-1] >= losses[res.best_epoch - 1]
+    # patience 1: every epoch but the last lowered the loss, or training ran out of epochs
+    assert all(b < a for a, b in zip(losses[:-2], losses[1:-1], strict=True))
+    assert len(losses) == 12 or losses[-1] >= losses[-2]
 
 
 def test_patience_defaults_to_the_setting(tiles):
@@ -263,35 +242,6 @@ def blade_tiles(n, *, size=64, seed=0):
         images.append(np.clip(im, 0, 255).astype(np.uint8))
         masks.append(m)
     return images, masks
-
-
-def test_feature_batches_move_pixels_with_masks_and_jitter_only_pixels():
-    rng = np.random.default_rng(4)
-    masks = [np.kron(zoo_four_classes(), np.ones((4, 4), np.uint8))]  # 32 x 32, four classes
-    image = np.zeros((32, 32, 3), np.uint8)
-    image[..., 1] = masks[0] * 40 + 20  # green channel encodes the class
-    feats = [
-        tuple(np.zeros(s, np.float16) for s in ((24, 8, 8), (40, 4, 4), (112, 2, 2), (320, 1, 1)))
-    ]
-    feats[0][0][0] = zoo_four_classes().astype(np.float16)  # one value per 4 x 4 cell
-    shape_of = {0: (32, 32)}
-    for _ in range(8):
-        levels, target, pixels = _feature_batch(
-            [0], feats, masks, shape_of, rng, images=[image], jitter=None
-        )
-        m = target[0].numpy()
-        np.testing.assert_array_equal((pixels[0, 1].numpy() - 20) // 40, m)  # same turn
-        cells = levels[0][0, 0].numpy()  # stride-4 cells of the class map: same turn
-        np.testing.assert_array_equal(cells, m[::4, ::4])
-    torch.manual_seed(0)
-    levels, target, pixels = _feature_batch(
-        [0], feats, masks, {0: (30, 30)}, rng, images=[image], jitter=colour_jitter()
-    )  # 30 px sides: no turn, only jitter
-    np.testing.assert_array_equal(target[0].numpy(), masks[0])
-    np.testing.assert_array_equal(levels[0][0].numpy(), feats[0][0].astype(np.float32))
-    assert pixels.dtype == torch.uint8 and not np.array_equal(
-        pixels[0].permute(1, 2, 0).numpy(), image
-    )
 
 
 def test_default_head_refines_only_when_pixels_are_given(tiles):

@@ -63,6 +63,7 @@ def test_cold_start_then_head(one_plot, capsys):
     p = store.latest_proposal(tiles[5].id)
     assert p.model_version_id == mv.id and p.uncertainty().shape == (3, 64, 64)
     assert p.mean_entropy is not None and p.mean_bald is not None
+    assert 0 < p.mean_least_confidence <= 1 - 1 / 4  # stored from the proposal (K = 4 classes)
     assert store.tile(tiles[0].id).state == "amended"  # saved tiles keep their state
 
 
