@@ -249,8 +249,8 @@ def cmd_agreement(args) -> int:
 
 
 def cmd_edit(args) -> int:
+    from labeler.editor.opening import edit_tile
     from labeler.project import open_project
-    from labeler.workflow import edit_tile
 
     if args.tile is None and not args.next:
         raise LabelerError("edit: name a TILE id or pass --next for the next tile of your queue")
@@ -259,6 +259,7 @@ def cmd_edit(args) -> int:
     with open_project(args.dir) as project:
         tile_id, outcome = edit_tile(project, args.tile, args.annotator, settle=args.settle)
     what = {
+        # the state the store recorded, as the workflow decided it (never the editor's)
         "saved": f"saved as {outcome.state} ({outcome.kind})",
         "discarded": "left without saving",
         "left": "left without changes",
