@@ -496,9 +496,11 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "edit",
         help="open a tile in the mask editor",
-        description="Open a tile in the mask editor window (needs a display). Enter saves: "
-        "'accepted' when the proposal is kept, 'amended' when changed. A draft is autosaved; "
-        "a save after someone else's is refused and kept as a draft.",
+        description="Open a tile in the mask editor window (needs a display). Enter saves the "
+        "mask, recorded as 'accepted' when the proposal is kept, 'amended' when changed "
+        "('settled' with --settle); p saves the scribbles alone as a 'weak' label. The state "
+        "recorded is printed. A draft is autosaved; a save after someone else's is refused "
+        "and kept as a draft.",
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
     p.add_argument(

@@ -97,6 +97,7 @@ class HighGuiWindow:
 
     def open(self, frame_shape: tuple[int, int],
              on_mouse: Callable[[int, int, int, int], None]) -> None:
+        """Open the window and route its mouse events to ``on_mouse`` (see :class:`Gui`)."""
         # GUI_NORMAL: no toolbar on the Qt build, so window and image pixels coincide
         cv2.namedWindow(self.title, cv2.WINDOW_AUTOSIZE | cv2.WINDOW_GUI_NORMAL)
         cv2.setMouseCallback(self.title, lambda ev, x, y, flags, _p: on_mouse(ev, x, y, flags))
@@ -119,18 +120,22 @@ class HighGuiWindow:
             cv2.moveWindow(self.title, int(x), int(y))
 
     def show(self, frame: np.ndarray) -> None:
+        """Show a BGR frame."""
         cv2.imshow(self.title, frame)
 
     def wait(self, ms: int) -> int:
+        """``cv2.waitKeyEx`` for at least 1 ms: the key code, or -1."""
         return int(cv2.waitKeyEx(max(int(ms), 1)))
 
     def closed(self) -> bool:
+        """True once the window was closed from its frame."""
         try:
             return cv2.getWindowProperty(self.title, cv2.WND_PROP_VISIBLE) < 1
         except cv2.error:
             return True
 
     def close(self) -> None:
+        """Close the window (no error when it is already gone)."""
         if self._open:
             self._open = False
             try:

@@ -8,12 +8,12 @@ import pytest
 from labeler.editor.backend import Draft, EditorBackend, MemoryBackend
 from labeler.errors import ConflictError
 from labeler.workflow.editing import StoreBackend
-from tests.editor import xdrive
+from tests.editor.child import FolderBackend
 
 
 def test_backends_meet_the_protocol():
     assert isinstance(MemoryBackend(), EditorBackend)
-    assert isinstance(xdrive.FolderBackend.__new__(xdrive.FolderBackend), EditorBackend)
+    assert isinstance(FolderBackend.__new__(FolderBackend), EditorBackend)
     # the project's backend lives in the workflow, which imports nothing from the editor
     assert isinstance(StoreBackend.__new__(StoreBackend), EditorBackend)
 
