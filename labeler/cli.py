@@ -249,8 +249,8 @@ def cmd_agreement(args) -> int:
 
 
 def cmd_edit(args) -> int:
+    from labeler.editor.opening import edit_tile
     from labeler.project import open_project
-    from labeler.workflow import edit_tile
 
     if args.tile is None and not args.next:
         raise LabelerError("edit: name a TILE id or pass --next for the next tile of your queue")
@@ -259,6 +259,7 @@ def cmd_edit(args) -> int:
     with open_project(args.dir) as project:
         tile_id, outcome = edit_tile(project, args.tile, args.annotator, settle=args.settle)
     what = {
+        # the state the store recorded, as the workflow decided it (never the editor's)
         "saved": f"saved as {outcome.state} ({outcome.kind})",
         "discarded": "left without saving",
         "left": "left without changes",
@@ -491,9 +492,11 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "edit",
         help="open a tile in the mask editor",
-        description="Open a tile in the mask editor window (needs a display). Enter saves: "
-        "'accepted' when the proposal is kept, 'amended' when changed. A draft is autosaved; "
-        "a save after someone else's is refused and kept as a draft.",
+        description="Open a tile in the mask editor window (needs a display). Enter saves the "
+        "mask, recorded as 'accepted' when the proposal is kept, 'amended' when changed "
+        "('settled' with --settle); p saves the scribbles alone as a 'weak' label. The state "
+        "recorded is printed. A draft is autosaved; a save after someone else's is refused "
+        "and kept as a draft.",
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
     p.add_argument(

@@ -1,12 +1,19 @@
 """What the editor window saves through: the backend interface and an in-memory backend.
 
-The window never touches the store; it calls an :class:`EditorBackend`. The project's
-store-backed backend (written beside the CLI) implements the same four methods.
+The window never touches the store; it calls an :class:`EditorBackend`. In a project the
+backend is :class:`labeler.workflow.editing.StoreBackend`, which implements the same four
+methods over the store.
 
-Kinds and states passed to :meth:`EditorBackend.save`
-    ``kind="full"`` with the whole mask and ``state`` ``"accepted"`` (the mask equals the
-    proposal) or ``"amended"`` (it differs); ``kind="scribble"`` with the scribble mask
-    (class index where scribbled, 255 elsewhere) as a weak label and ``state="amended"``.
+Kinds passed to :meth:`EditorBackend.save`
+    ``kind="full"`` with the whole mask, or ``kind="scribble"`` with the scribble mask
+    (class index where scribbled, 255 elsewhere) as a weak label.
+
+The annotation state of a save
+    The editor proposes none. The backend decides what the save records and returns that
+    state; in a project the workflow decides it (``accepted`` when the full mask equals
+    the proposal it started from, ``amended`` when changed, ``settled`` when a reviewer
+    settles, ``weak`` for scribbles; :func:`labeler.workflow.annotating.save_state`). The
+    editor reports the returned state.
 """
 
 from __future__ import annotations
@@ -18,10 +25,10 @@ import numpy as np
 
 from labeler.errors import ConflictError
 
-__all__ = ["Draft", "SavedLabel", "EditorBackend", "MemoryBackend", "SAVE_KINDS", "SAVE_STATES"]
+__all__ = ["Draft", "SavedDraft", "SavedLabel", "EditorBackend", "MemoryBackend", "SAVE_KINDS"]
 
+#: What a save sends: the whole mask, or the scribbles alone.
 SAVE_KINDS = ("full", "scribble")
-SAVE_STATES = ("accepted", "amended")
 
 
 @dataclass(frozen=True)
@@ -45,14 +52,36 @@ class Draft:
     seconds: float = 0.0
 
 
+class SavedDraft(Protocol):
+    """What :meth:`EditorBackend.load_draft` returns: a :class:`Draft` or any object with
+    the same four attributes."""
+
+    mask: np.ndarray
+    scribbles: np.ndarray
+    actions: int
+    seconds: float
+
+
 @runtime_checkable
 class EditorBackend(Protocol):
     """Where the editor saves one tile's labels and drafts."""
 
-    def save(
-        self, mask: np.ndarray, *, kind: str, state: str, actions: int, seconds: float
-    ) -> None:
-        """Save a label as a new version.
+    def save(self, mask: np.ndarray, *, kind: str, actions: int, seconds: float) -> str:
+        """Save a label as a new version; the backend decides its annotation state.
+
+        Parameters
+        ----------
+        mask : ndarray, shape (H, W), uint8
+            The mask (``kind="full"``) or the scribbles (``kind="scribble"``, 255 where
+            not scribbled).
+        kind : {"full", "scribble"}
+        actions, seconds : int, float
+            Edit actions and active seconds spent.
+
+        Returns
+        -------
+        state : str
+            The annotation state recorded for this save.
 
         Raises
         ------
@@ -68,7 +97,7 @@ class EditorBackend(Protocol):
         """Keep unsaved work (replacing an earlier draft of the same tile)."""
         ...
 
-    def load_draft(self) -> Draft | None:
+    def load_draft(self) -> SavedDraft | None:
         """The draft left by an earlier session, or None."""
         ...
 
@@ -79,11 +108,18 @@ class EditorBackend(Protocol):
 
 @dataclass(frozen=True)
 class SavedLabel:
-    """One call of :meth:`MemoryBackend.save` that succeeded."""
+    """One call of :meth:`MemoryBackend.save` that succeeded.
+
+    Parameters
+    ----------
+    mask : ndarray, shape (H, W), uint8
+    kind : str
+    actions : int
+    seconds : float
+    """
 
     mask: np.ndarray
     kind: str
-    state: str
     actions: int
     seconds: float
 
@@ -101,21 +137,22 @@ class MemoryBackend:
         is passed as ``theirs``.
     tile_id : int
         Tile id reported in a conflict.
+    state : str
+        The annotation state every save reports. This backend decides nothing: a test or
+        script sets the answer it wants the editor to show.
     """
 
     draft: Draft | None = None
     conflict: np.ndarray | bool = False
     tile_id: int = 0
+    state: str = "amended"
     saved: list[SavedLabel] = field(default_factory=list)
     drafts_written: int = 0
 
-    def save(
-        self, mask: np.ndarray, *, kind: str, state: str, actions: int, seconds: float
-    ) -> None:
+    def save(self, mask: np.ndarray, *, kind: str, actions: int, seconds: float) -> str:
+        """Keep the label in :attr:`saved` and return :attr:`state` (see the class)."""
         if kind not in SAVE_KINDS:
             raise ValueError(f"kind: expected one of {SAVE_KINDS}, got {kind!r}")
-        if state not in SAVE_STATES:
-            raise ValueError(f"state: expected one of {SAVE_STATES}, got {state!r}")
         if self.conflict is not False:
             theirs = None if self.conflict is True else np.array(self.conflict, np.uint8)
             raise ConflictError(
@@ -123,18 +160,22 @@ class MemoryBackend:
                 "nothing was written",
                 tile_id=self.tile_id, parent_version=1, current_version=2, theirs=theirs,
             )
-        self.saved.append(SavedLabel(np.array(mask, np.uint8), kind, state, int(actions),
+        self.saved.append(SavedLabel(np.array(mask, np.uint8), kind, int(actions),
                                      float(seconds)))
+        return self.state
 
     def save_draft(
         self, mask: np.ndarray, scribbles: np.ndarray, *, actions: int, seconds: float
     ) -> None:
+        """Keep the draft in :attr:`draft`, counting the writes."""
         self.draft = Draft(np.array(mask, np.uint8), np.array(scribbles, np.uint8),
                            int(actions), float(seconds))
         self.drafts_written += 1
 
     def load_draft(self) -> Draft | None:
+        """The draft kept, or None."""
         return self.draft
 
     def discard_draft(self) -> None:
+        """Forget the draft."""
         self.draft = None

@@ -24,7 +24,6 @@ __all__ = [
     "command_for",
     "class_for",
     "help_rows",
-    "help_lines",
     "keys_markdown",
 ]
 
@@ -160,11 +159,6 @@ def help_rows(schema: ClassSchema = DEFAULT_SCHEMA) -> list[tuple[str, str]]:
     rows += [(b.label, b.summary) for b in BINDINGS]
     rows += list(MOUSE)
     return rows
-
-
-def help_lines(schema: ClassSchema = DEFAULT_SCHEMA) -> list[str]:
-    """:func:`help_rows` as plain text lines."""
-    return [f"{k:<10} {v}" for k, v in help_rows(schema)]
 
 
 def keys_markdown(schema: ClassSchema = DEFAULT_SCHEMA) -> str:

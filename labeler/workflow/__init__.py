@@ -19,9 +19,10 @@ from labeler.workflow.annotating import (
     next_tile,
     park_tile,
     queue_rows,
+    save_state,
     save_tile_mask,
 )
-from labeler.workflow.editing import StoreBackend, edit_tile, open_edit_session
+from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
 from labeler.workflow.exporting import ExportResult, ImportResult, export_project, import_masks
 from labeler.workflow.picking import RankResult, rank_tiles
 from labeler.workflow.proposing import (
@@ -44,6 +45,7 @@ __all__ = [
     "next_tile",
     "park_tile",
     "queue_rows",
+    "save_state",
     "save_tile_mask",
     "RankResult",
     "rank_tiles",
@@ -51,9 +53,10 @@ __all__ = [
     "compared_images",
     "contested_tiles",
     "write_agreement",
+    "EditStart",
     "StoreBackend",
-    "edit_tile",
-    "open_edit_session",
+    "begin_edit",
+    "end_edit",
     "ExportResult",
     "ImportResult",
     "export_project",

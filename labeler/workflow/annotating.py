@@ -1,4 +1,10 @@
-"""Saving annotations, accepting and parking tiles, the queue, contested tiles."""
+"""Saving annotations, accepting and parking tiles, the queue, contested tiles.
+
+This is the one place that decides the annotation state of a save
+(:func:`save_state`): every save, from the editor, the queue or a script, goes through
+:func:`save_tile_mask`, which records the state it decided and returns the row written.
+The editor proposes no state; it shows the one returned.
+"""
 
 from __future__ import annotations
 
@@ -14,7 +20,45 @@ from labeler.project import Project
 from labeler.states import ACCEPTED, AMENDED, CONTESTED, PARKED, SETTLED
 from labeler.store.records import AnnotationRecord
 
+#: Annotation state of a scribble-only save (a weak label).
+WEAK = "weak"
+
+
+def save_state(
+    *, kind: str, settling: bool, mask: np.ndarray, proposal: np.ndarray | None
+) -> str:
+    """The annotation state a save records.
+
+    Parameters
+    ----------
+    kind : {"full", "scribble"}
+        A whole mask, or scribbles alone.
+    settling : bool
+        True when a reviewer saves the decision on a contested tile.
+    mask : ndarray, shape (H, W), uint8
+        What is saved.
+    proposal : ndarray, shape (H, W), uint8, or None
+        The proposal the annotator started from (None when the save names none).
+
+    Returns
+    -------
+    state : str
+        ``weak`` for scribbles; else ``settled`` for a reviewer's decision; else
+        ``accepted`` when the mask equals the proposal exactly; else ``amended``.
+    """
+    if kind == "scribble":
+        return WEAK
+    if kind != "full":
+        raise ValueError(f"kind: expected 'full' or 'scribble', got {kind!r}")
+    if settling:
+        return SETTLED
+    if proposal is not None and np.array_equal(proposal, mask):
+        return ACCEPTED
+    return AMENDED
+
 __all__ = [
+    "WEAK",
+    "save_state",
     "save_tile_mask",
     "accept_tile",
     "park_tile",
@@ -40,12 +84,40 @@ def save_tile_mask(
     proposal_id: int | None = None,
     settling: bool = False,
 ) -> AnnotationRecord:
-    """Save a mask of a tile and update its state.
+    """Save a mask of a tile, deciding the annotation state it records.
 
-    The annotation state is ``settled`` for a reviewer's decision, ``weak`` for
-    scribbles, ``accepted`` when a full mask equals the proposal it started from, else
-    ``amended``. After the save an overlap tile whose annotators all saved is checked
-    for agreement (:func:`after_save`).
+    The state is decided here and nowhere else (:func:`save_state`): ``weak`` for
+    scribbles, ``settled`` for a reviewer's decision, ``accepted`` when a full mask
+    equals the proposal it started from, else ``amended``. After the save an overlap tile
+    whose annotators all saved is checked for agreement (:func:`after_save`).
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        The tile saved.
+    annotator : str
+        Who saves.
+    mask : ndarray, shape (H, W), uint8
+        The whole mask (``kind="full"``) or the scribbles (255 where not scribbled).
+    parent_version : int or None
+        The lineage version the edit started from (None for the first save).
+    kind : {"full", "scribble"}
+        What is saved.
+    seconds, actions : float, int
+        Effort spent, for the statistics.
+    source : str
+        Where the save came from (``"editor"``, ``"queue"``, ...).
+    proposal_id : int, optional
+        The proposal the annotator started from.
+    settling : bool
+        True when a reviewer saves the decision on a contested tile.
+
+    Returns
+    -------
+    AnnotationRecord
+        The row written; its ``state`` is the state decided for this save.
 
     Raises
     ------
@@ -53,16 +125,10 @@ def save_tile_mask(
         When ``parent_version`` is stale; nothing is written.
     """
     store = project.store
-    if kind == "scribble":
-        state = "weak"
-    elif settling:
-        state = SETTLED
-    else:
-        state = AMENDED
-        if proposal_id is not None:
-            prop = store.proposal(proposal_id)
-            if np.array_equal(prop.mask(), mask):
-                state = ACCEPTED
+    proposal = None
+    if kind == "full" and not settling and proposal_id is not None:
+        proposal = store.proposal(proposal_id).mask()
+    state = save_state(kind=kind, settling=settling, mask=mask, proposal=proposal)
     rec = store.save_annotation(
         tile_id,
         annotator,

@@ -1,31 +1,55 @@
-"""Opening a tile in the mask editor (``labeler edit``), saving through the store."""
+"""The edit stage: what the mask editor starts from, and saving its work through the store.
+
+:func:`begin_edit` gathers what an annotator (or a reviewer settling a contested tile)
+starts from and marks the tile held; :class:`StoreBackend` is where the editor saves: it
+implements the editor's backend interface (:class:`labeler.editor.backend.EditorBackend`)
+by duck typing, so the workflow imports nothing from the editor; :func:`end_edit` gives
+the tile back when the editor closes. The window itself is opened by
+:mod:`labeler.editor.opening`.
+
+Every save goes through :func:`labeler.workflow.annotating.save_tile_mask`, which decides
+the annotation state; :meth:`StoreBackend.save` returns the state written.
+"""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from labeler.agreement import staple
 from labeler.classes import UNLABELLED
-from labeler.editor.backend import Draft
-from labeler.editor.state import EditorState, fit_view_shape
-from labeler.editor.window import EditorOutcome, require_display, run_editor
 from labeler.errors import ConflictError, LabelerError
 from labeler.imagery.read import open_image
 from labeler.project import Project
 from labeler.states import CONTESTED, SETTLED
-from labeler.workflow.annotating import next_tile, save_tile_mask
+from labeler.store.records import DraftRecord
+from labeler.workflow.annotating import save_tile_mask
 
-__all__ = ["StoreBackend", "EditSession", "open_edit_session", "edit_tile"]
+__all__ = ["StoreBackend", "EditStart", "begin_edit", "end_edit"]
 
 
 class StoreBackend:
-    """The editor's :class:`labeler.editor.backend.EditorBackend` over the project store.
+    """The editor's backend over the project store (implements ``EditorBackend``).
 
     Every save names the version the tile was opened at, so a save after someone else's
     raises :class:`labeler.errors.ConflictError` (carrying their mask) and writes
     nothing; the editor then keeps the work as a draft.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        The tile edited.
+    annotator : str
+        Who edits.
+    parent_version : int or None
+        The lineage version the edit starts from.
+    proposal_id : int or None
+        The proposal the edit starts from (None when settling or without a proposal).
+    settling : bool
+        True when a reviewer settles a contested tile.
     """
 
     def __init__(
@@ -46,9 +70,28 @@ class StoreBackend:
         self.settling = settling
         self.saved: list[int] = []
 
-    def save(
-        self, mask: np.ndarray, *, kind: str, state: str, actions: int, seconds: float
-    ) -> None:
+    def save(self, mask: np.ndarray, *, kind: str, actions: int, seconds: float) -> str:
+        """Save through :func:`save_tile_mask`, which decides the annotation state.
+
+        Parameters
+        ----------
+        mask : ndarray, shape (H, W), uint8
+            The mask (``kind="full"``) or the scribbles (``kind="scribble"``).
+        kind : {"full", "scribble"}
+        actions, seconds : int, float
+            Effort spent.
+
+        Returns
+        -------
+        state : str
+            The annotation state the store recorded.
+
+        Raises
+        ------
+        labeler.errors.ConflictError
+            When someone saved the tile since it was opened; its ``theirs`` is their mask
+            as an (H, W) uint8 array (or None). Nothing is written.
+        """
         try:
             rec = save_tile_mask(
                 self.project,
@@ -61,7 +104,7 @@ class StoreBackend:
                 actions=actions,
                 source="editor",
                 proposal_id=self.proposal_id,
-                settling=self.settling and kind == "full",
+                settling=self.settling,
             )
         except ConflictError as exc:
             theirs = exc.theirs.mask() if exc.theirs is not None else None
@@ -74,10 +117,19 @@ class StoreBackend:
             ) from None
         self.parent_version = rec.version
         self.saved.append(rec.version)
+        return rec.state
 
     def save_draft(
         self, mask: np.ndarray, scribbles: np.ndarray, *, actions: int, seconds: float
     ) -> None:
+        """Keep unsaved work as the tile's draft for this annotator (replacing an older one).
+
+        Parameters
+        ----------
+        mask, scribbles : ndarray, shape (H, W), uint8
+        actions, seconds : int, float
+            Effort spent so far.
+        """
         self.project.store.save_draft(
             self.tile_id,
             self.annotator,
@@ -88,38 +140,86 @@ class StoreBackend:
             actions=actions,
         )
 
-    def load_draft(self) -> Draft | None:
+    def load_draft(self) -> DraftRecord | None:
+        """The draft of an earlier session, with scribbles (all 255 when it kept none), or
+        None."""
         d = self.project.store.load_draft(self.tile_id, self.annotator)
         if d is None:
             return None
-        scrib = (
-            d.scribbles if d.scribbles is not None else np.full(d.mask.shape, UNLABELLED, np.uint8)
-        )
-        return Draft(mask=d.mask, scribbles=scrib, actions=d.actions, seconds=d.seconds)
+        if d.scribbles is None:
+            d = replace(d, scribbles=np.full(d.mask.shape, UNLABELLED, np.uint8))
+        return d
 
     def discard_draft(self) -> None:
+        """Forget the draft (no error when there is none)."""
         self.project.store.discard_draft(self.tile_id, self.annotator)
 
 
-@dataclass
-class EditSession:
-    """Everything :func:`edit_tile` hands to the editor window."""
+@dataclass(frozen=True)
+class EditStart:
+    """What the editor starts from for one tile.
 
-    state: EditorState
+    Parameters
+    ----------
+    tile_id : int
+    image_name : str
+        Name of the image the tile belongs to.
+    row, col : int
+        Tile position in its image, pixels.
+    image : ndarray, shape (H, W, 3), uint8
+        The RGB tile.
+    proposal : ndarray, shape (H, W), uint8
+        The newest proposal (all soil without one): what "accepted" compares with and
+        what erasing brings back.
+    mask : ndarray, shape (H, W), uint8
+        The mask the edit starts from.
+    uncertainty : ndarray, shape (h, w), float64, or None
+        The proposal's per-pixel entropy, for the heat map.
+    compare : ndarray, shape (H, W), uint8, or None
+        A second mask to show beside the edit (settling: the first annotator's).
+    compare_label : str or None
+        Who made ``compare``.
+    backend : StoreBackend
+        Where the edit saves.
+    """
+
+    tile_id: int
+    image_name: str
+    row: int
+    col: int
+    image: np.ndarray
+    proposal: np.ndarray
+    mask: np.ndarray
+    uncertainty: np.ndarray | None
+    compare: np.ndarray | None
+    compare_label: str | None
     backend: StoreBackend
-    title: str
-    compare_with: str | None = None
 
 
-def open_edit_session(
+def begin_edit(
     project: Project, tile_id: int, annotator: str, *, settle: bool = False
-) -> EditSession:
-    """Prepare the editor state of a tile for ``annotator`` and mark the tile held.
+) -> EditStart:
+    """Gather what ``annotator`` starts editing ``tile_id`` from, and mark the tile held.
 
-    The editor starts from the annotator's own newest mask, else the newest proposal,
+    The edit starts from the annotator's own newest mask, else the newest proposal,
     else all soil. On an overlap tile an annotator never sees another's mask. With
     ``settle`` (a reviewer deciding a contested tile) it starts from the STAPLE
-    consensus of the annotators' masks and shows the first annotator's mask beside it.
+    consensus of the annotators' masks, with the first annotator's mask to compare.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        The tile to edit.
+    annotator : str
+        Who edits (the reviewer when settling).
+    settle : bool
+        Settle a contested tile.
+
+    Returns
+    -------
+    EditStart
 
     Raises
     ------
@@ -160,18 +260,6 @@ def open_edit_session(
     uncertainty = None
     if proposal is not None and proposal.uncertainty() is not None:
         uncertainty = np.asarray(proposal.uncertainty()[0], np.float64)  # entropy channel
-    view = fit_view_shape(tile.shape)
-    state = EditorState(
-        rgb,
-        base,
-        schema=schema,
-        mask=start,
-        uncertainty=uncertainty,
-        opacity=project.settings.editor.opacity,
-        view_shape=view,
-    )
-    if compare is not None:
-        state.set_compare(compare, label=compare_label)
     backend = StoreBackend(
         project,
         tile_id,
@@ -181,33 +269,32 @@ def open_edit_session(
         settling=settle,
     )
     store.hold(tile_id, annotator)
-    title = f"labeler edit - {image.name} - tile {tile_id} at row {tile.row} col {tile.col}"
-    return EditSession(state=state, backend=backend, title=title, compare_with=compare_label)
+    return EditStart(
+        tile_id=tile_id,
+        image_name=image.name,
+        row=tile.row,
+        col=tile.col,
+        image=rgb,
+        proposal=base,
+        mask=start,
+        uncertainty=uncertainty,
+        compare=compare,
+        compare_label=compare_label,
+        backend=backend,
+    )
 
 
-def edit_tile(
-    project: Project, tile_id: int | None, annotator: str, *, settle: bool = False, gui=None
-) -> tuple[int, EditorOutcome]:
-    """Open the editor window on a tile (or the annotator's next tile) until it closes.
+def end_edit(project: Project, tile_id: int, annotator: str) -> None:
+    """The editor closed: give the tile back if ``annotator`` still holds it.
 
-    Returns the tile id and the editor's outcome. A tile left without a save goes back
-    from ``held`` to its earlier state (the draft, if any, is kept).
+    A tile left without a save goes back from ``held`` to its earlier state (a draft,
+    if any, is kept); after a save the tile is no longer held and nothing changes.
+
+    Parameters
+    ----------
+    project : Project
+    tile_id : int
+    annotator : str
     """
-    if gui is None:
-        require_display()
-    if tile_id is None:
-        tile_id = next_tile(project, annotator)
-    session = open_edit_session(project, tile_id, annotator, settle=settle)
-    try:
-        outcome = run_editor(
-            session.state,
-            backend=session.backend,
-            schema=project.settings.classes,
-            title=session.title,
-            autosave_seconds=project.settings.editor.autosave_seconds,
-            gui=gui,
-        )
-    finally:
-        if project.store.tile(tile_id).held_by == annotator:
-            project.store.release(tile_id, annotator)
-    return tile_id, outcome
+    if project.store.tile(tile_id).held_by == annotator:
+        project.store.release(tile_id, annotator)

@@ -1,19 +1,30 @@
 """Driving the editor window under Xvfb: the X server, xdotool, screenshots, a child editor.
 
 Reusable by any window test: start a server (:func:`start_xvfb`), launch an editor process
-(:func:`launch_child` runs ``python -m tests.editor.xdrive SPEC`` with a
-:class:`FolderBackend`, or pass your own command), wait for its window
-(:func:`wait_window`), drive it (:func:`drag`, :func:`press_keys`), take a screenshot
-(:func:`screenshot`), and read what it saved (:func:`read_saves`, :func:`read_draft`).
+(:func:`launch_child` runs ``python -m tests.editor.child SPEC``, an editor saving into a
+folder; :func:`launch_cli` runs the ``labeler`` command line), wait for its
+window (:func:`wait_window`), drive it (:func:`drag`, :func:`press_keys`, :func:`wheel`),
+take a screenshot (:func:`screenshot`), and read what it saved (:func:`read_saves`,
+:func:`read_draft`).
 
 The editor runs in a child process, not a thread: the Qt build of HighGUI wants the
 main thread, and a crash of the window must not take the test run with it.
+
+Lining the test up with the editor
+    The child's window is a :class:`tests.editor.child.TracingWindow`: it appends one line to ``trace.log``
+    for every event the editor has handled (``mouse EVENT X Y`` after a mouse callback,
+    ``key CODE`` once a key was handled and the editor is still open, ``closed [CODE]``
+    when it closed, ``open`` when the window opened, ``after-wheel`` after a wheel event).
+    Every driving step sends one X event with xdotool, then waits for its line
+    (:meth:`Child.expect`, polling with a deadline), so the next event never arrives
+    before the editor has handled the last one. No step sleeps a fixed time.
 """
 
 from __future__ import annotations
 
 import json
 import os
+import select
 import shutil
 import signal
 import struct
@@ -22,9 +33,10 @@ import sys
 import tempfile
 import time
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
+import cv2
 import numpy as np
 import pytest
 
@@ -33,6 +45,7 @@ from tests.common import REPO
 __all__ = [
     "TOOLS_NEEDED",
     "XServer",
+    "Child",
     "missing_tools",
     "start_xvfb",
     "stop_xvfb",
@@ -41,11 +54,14 @@ __all__ = [
     "wait_window",
     "drag",
     "press_keys",
+    "expect_key_handled",
+    "move",
+    "wheel",
     "screenshot",
     "read_xwd",
-    "FolderBackend",
     "write_tile",
     "launch_child",
+    "launch_cli",
     "stop_child",
     "reap_children",
     "read_saves",
@@ -109,21 +125,18 @@ def start_xvfb(*, screen: str = "1280x1024x24", timeout: float = 10.0) -> XServe
     os.close(write_fd)
     number = b""
     end = time.monotonic() + timeout
-    os.set_blocking(read_fd, False)
     try:
         while not number.endswith(b"\n"):
-            if proc.poll() is not None:
-                pytest.fail(f"Xvfb exited at start with code {proc.returncode}")
-            if time.monotonic() > end:
+            remaining = end - time.monotonic()
+            if remaining <= 0:
                 proc.kill()
                 pytest.fail(f"Xvfb did not report a display number within {timeout:.0f} s")
-            try:
-                chunk = os.read(read_fd, 16)
-            except BlockingIOError:
-                time.sleep(0.02)
+            ready, _, _ = select.select([read_fd], [], [], remaining)
+            if not ready:
                 continue
-            if not chunk:
-                time.sleep(0.02)
+            chunk = os.read(read_fd, 16)
+            if not chunk:  # end of the pipe: Xvfb ended before it wrote a whole number
+                pytest.fail(f"Xvfb exited at start with code {proc.poll()}")
             number += chunk
     finally:
         os.close(read_fd)
@@ -161,14 +174,16 @@ def _geometry(server: XServer, window: str) -> tuple[int, int] | None:
     return None
 
 
-def wait_window(server: XServer, title: str, *, size: tuple[int, int] | None = None,
-                timeout: float = 30.0, child: subprocess.Popen | None = None) -> str:
-    """Id of the window called ``title``, once mapped (and ``size`` = (width, height))."""
+def wait_window(child: Child, title: str, *, size: tuple[int, int] | None = None,
+                timeout: float = 30.0) -> str:
+    """Id of the child's window called ``title``, once mapped (and ``size`` = (width,
+    height)); the pointer is moved into it and it gets the keyboard focus."""
+    server = child.server
 
     def found():
-        if child is not None and child.poll() is not None:
-            pytest.fail(f"the editor exited with code {child.returncode} before its window "
-                        f"appeared")
+        if child.process.poll() is not None:
+            pytest.fail(f"the editor exited with code {child.process.returncode} before its "
+                        f"window appeared; its log ends:\n{child.log_tail()}")
         ids = xdo(server, "search", "--name", title, check=False).split()
         if not ids:
             return None
@@ -177,34 +192,63 @@ def wait_window(server: XServer, title: str, *, size: tuple[int, int] | None = N
         return ids[-1]
 
     win = wait_for(found, timeout=timeout, what=f"a window named {title!r} of size {size}")
-    xdo(server, "mousemove", "--window", win, 1, 1)
     xdo(server, "windowfocus", "--sync", win, check=False)
+    # the pointer may already rest at (1, 1) (another window stood there): step off it
+    # first, so the move below is a real motion the editor reports
+    xdo(server, "mousemove", "--window", win, 0, 0)
+    child.pointer = None
+    move(child, win, 1, 1)
     return win
 
 
-def drag(server: XServer, window: str, points: Sequence[tuple[int, int]], *, button: int = 1,
-         pause: float = 0.12) -> None:
-    """Press ``button`` at the first ``(x, y)`` window point, move through the rest, release.
+def move(child: Child, window: str, x: int, y: int) -> None:
+    """Move the pointer to window point ``(x, y)`` and wait until the editor handled it."""
+    if child.pointer == (window, x, y):
+        return  # no motion, no event
+    xdo(child.server, "mousemove", "--window", window, x, y)
+    child.pointer = (window, x, y)
+    child.expect(lambda line: line == f"mouse {cv2.EVENT_MOUSEMOVE} {x} {y}",
+                 what=f"the pointer move to ({x}, {y})")
 
-    The pause after each move lets the editor handle the event before the next arrives.
-    """
+
+def drag(child: Child, window: str, points: Sequence[tuple[int, int]]) -> None:
+    """Press the left button at the first ``(x, y)`` window point, move through the rest,
+    release; each event is handled by the editor before the next is sent."""
     x0, y0 = points[0]
-    xdo(server, "mousemove", "--window", window, x0, y0)
-    time.sleep(pause)
-    xdo(server, "mousedown", button)
-    time.sleep(pause)
+    move(child, window, x0, y0)
+    xdo(child.server, "mousedown", 1)
+    down = (f"mouse {cv2.EVENT_LBUTTONDOWN} ", f"mouse {cv2.EVENT_LBUTTONDBLCLK} ")
+    child.expect(lambda line: line.startswith(down), what="the left button press")
     for x, y in points[1:]:
-        xdo(server, "mousemove", "--window", window, x, y)
-        time.sleep(pause)
-    xdo(server, "mouseup", button)
-    time.sleep(pause)
+        move(child, window, x, y)
+    xdo(child.server, "mouseup", 1)
+    child.expect(lambda line: line.startswith(f"mouse {cv2.EVENT_LBUTTONUP} "),
+                 what="the left button release")
 
 
-def press_keys(server: XServer, *keys: str, pause: float = 0.12) -> None:
-    """Press keys by X keysym name (``"2"``, ``"Return"``, ``"Escape"``, ``"y"``)."""
+def expect_key_handled(child: Child, key: str) -> None:
+    """Wait until the editor handled a key and showed the next frame (it is still open);
+    fails when it closed instead."""
+    child.expect(lambda line: line.startswith("key "), what=f"the key {key} handled")
+
+
+def press_keys(child: Child, *keys: str) -> None:
+    """Press keys by X keysym name (``"2"``, ``"Return"``, ``"Escape"``, ``"y"``), each
+    handled by the editor before the next."""
     for k in keys:
-        xdo(server, "key", k)
-        time.sleep(pause)
+        xdo(child.server, "key", k)
+        child.expect(lambda line: line.startswith(("key ", "closed")), what=f"the key {k}")
+
+
+def wheel(child: Child, window: str, x: int, y: int, *, button: int = 4) -> None:
+    """One wheel notch (X button 4 up, 5 down) at window point ``(x, y)``; returns once
+    the editor zoomed and its window is ready again (the Qt build reopens it)."""
+    move(child, window, x, y)
+    xdo(child.server, "click", button)
+    child.expect(lambda line: line.startswith(f"mouse {cv2.EVENT_MOUSEWHEEL} "),
+                 what="the wheel event")
+    child.expect(lambda line: line == "after-wheel", what="the window after the wheel event")
+    child.pointer = None
 
 
 def read_xwd(path: str | os.PathLike[str]) -> np.ndarray:
@@ -252,88 +296,98 @@ def screenshot(server: XServer, name: str) -> tuple[Path, np.ndarray]:
 
 
 # ---------------------------------------------------------------------------- child editor
-def _atomic_savez(path: Path, **arrays) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".npz", dir=path.parent)
-    os.close(fd)
-    try:
-        np.savez(tmp, **arrays)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-
-
-class FolderBackend:
-    """An :class:`~labeler.editor.backend.EditorBackend` that writes into a folder.
-
-    ``saves/NNN.npz`` per saved label, ``draft.npz`` for the draft; when ``conflict.npy``
-    exists every save raises ``ConflictError`` carrying it as ``theirs``.
-    """
-
-    def __init__(self, folder: str | os.PathLike[str]) -> None:
-        self.folder = Path(folder)
-        (self.folder / "saves").mkdir(parents=True, exist_ok=True)
-
-    def save(self, mask, *, kind, state, actions, seconds) -> None:
-        from labeler.errors import ConflictError
-
-        conflict = self.folder / "conflict.npy"
-        if conflict.exists():
-            raise ConflictError("someone saved this tile first", tile_id=1, parent_version=1,
-                                current_version=2, theirs=np.load(conflict))
-        n = len(list((self.folder / "saves").glob("*.npz"))) + 1
-        _atomic_savez(self.folder / "saves" / f"{n:03d}.npz", mask=mask, kind=kind,
-                      state=state, actions=actions, seconds=seconds)
-
-    def save_draft(self, mask, scribbles, *, actions, seconds) -> None:
-        _atomic_savez(self.folder / "draft.npz", mask=mask, scribbles=scribbles,
-                      actions=actions, seconds=seconds)
-
-    def load_draft(self):
-        from labeler.editor.backend import Draft
-
-        path = self.folder / "draft.npz"
-        if not path.exists():
-            return None
-        with np.load(path) as z:
-            return Draft(z["mask"], z["scribbles"], int(z["actions"]), float(z["seconds"]))
-
-    def discard_draft(self) -> None:
-        (self.folder / "draft.npz").unlink(missing_ok=True)
-
-
 def write_tile(folder: Path, image: np.ndarray, proposal: np.ndarray, *, title: str,
                view_shape: tuple[int, int] = (512, 512), radius: float = 1.5,
-               autosave_seconds: float = 5.0) -> Path:
-    """Lay out a child editor's folder: ``tile.npz`` and ``spec.json``; returns the spec."""
+               autosave_seconds: float = 5.0, reply_state: str = "amended") -> Path:
+    """Lay out a child editor's folder: ``tile.npz`` and ``spec.json``; returns the spec.
+    ``reply_state`` is what the child's :class:`FolderBackend` answers to every save."""
     folder.mkdir(parents=True, exist_ok=True)
     np.savez(folder / "tile.npz", image=image, proposal=proposal)
     spec = folder / "spec.json"
     spec.write_text(json.dumps({
         "title": title, "view_shape": list(view_shape), "radius": radius,
-        "autosave_seconds": autosave_seconds,
+        "autosave_seconds": autosave_seconds, "reply_state": reply_state,
     }))
     return spec
 
 
-def launch_child(server: XServer, spec: Path, *,
-                 command: Sequence[str] | None = None) -> subprocess.Popen:
-    """Start an editor process on the server, from the repository root, output to
-    ``child.log`` beside ``spec``.
+@dataclass
+class Child:
+    """An editor process on the X server, with its trace and log in ``folder``."""
 
-    The default command is ``python -m tests.editor.xdrive SPEC`` (a :class:`FolderBackend`
-    editor); pass ``command`` to run another one (e.g. an editor over the real store).
-    """
-    log = open(spec.parent / "child.log", "ab")  # noqa: SIM115 - closed by stop_child
-    argv = list(command) if command is not None else [
-        sys.executable, "-m", "tests.editor.xdrive", str(spec)]
-    proc = subprocess.Popen(argv, cwd=REPO, env=server.env(), stdout=log, stderr=log)
-    proc._log = log  # type: ignore[attr-defined]
-    _LIVE.append(proc)
-    return proc
+    server: XServer
+    process: subprocess.Popen
+    folder: Path
+    log: object = field(repr=False)
+    pointer: tuple[str, int, int] | None = None  # (window, x, y) last moved to
+    _read: int = 0  # trace lines consumed
+
+    @property
+    def trace(self) -> Path:
+        return self.folder / "trace.log"
+
+    def lines(self) -> list[str]:
+        """Every whole line of the trace so far."""
+        if not self.trace.exists():
+            return []
+        text = self.trace.read_text()
+        return text.split("\n")[:-1]  # the last piece is empty or still being written
+
+    def log_tail(self) -> str:
+        return (self.folder / "child.log").read_text(errors="replace")[-3000:]
+
+    def expect(self, predicate: Callable[[str], bool], *, what: str,
+               timeout: float = 20.0) -> str:
+        """Wait for the next trace line that matches ``predicate`` (lines before it are
+        passed over); fails the test when the deadline passes or the editor closes or
+        exits first."""
+        found: list[str] = []
+
+        def seen():
+            lines = self.lines()
+            for i in range(self._read, len(lines)):
+                if predicate(lines[i]):
+                    self._read = i + 1
+                    found.append(lines[i])
+                    return True
+                if lines[i].startswith("closed"):
+                    pytest.fail(f"the editor closed while waiting for {what}; trace: "
+                                f"{lines[self._read:]}")
+            if self.process.poll() is not None:
+                pytest.fail(f"the editor exited (code {self.process.returncode}) while "
+                            f"waiting for {what}; its log ends:\n{self.log_tail()}")
+            return False
+
+        wait_for(seen, timeout=timeout, what=what, interval=0.01)
+        return found[0]
 
 
-_LIVE: list[subprocess.Popen] = []
+def launch_child(server: XServer, spec: Path) -> Child:
+    """Start ``python -m tests.editor.child SPEC`` (a ``FolderBackend`` editor) on
+    the server, from the repository root; log and trace beside ``spec``."""
+    return _launch(server, spec.parent, [str(spec)])
+
+
+def launch_cli(server: XServer, folder: Path, cli_args: Sequence[str]) -> Child:
+    """Start ``labeler CLI_ARGS...`` (e.g. ``edit DIR TILE --annotator NAME``) on the
+    server with a traced window; log and trace in ``folder``."""
+    folder.mkdir(parents=True, exist_ok=True)
+    return _launch(server, folder, ["--cli", *cli_args])
+
+
+def _launch(server: XServer, folder: Path, args: list[str]) -> Child:
+    log = open(folder / "child.log", "ab")  # noqa: SIM115 - closed by stop_child
+    (folder / "trace.log").unlink(missing_ok=True)
+    env = server.env()
+    env["XDRIVE_TRACE"] = str(folder / "trace.log")
+    proc = subprocess.Popen([sys.executable, "-m", "tests.editor.child", *args], cwd=REPO,
+                            env=env, stdout=log, stderr=log)
+    child = Child(server, proc, folder, log)
+    _LIVE.append(child)
+    return child
+
+
+_LIVE: list[Child] = []
 
 
 def reap_children() -> int:
@@ -341,31 +395,31 @@ def reap_children() -> int:
     many were still running."""
     alive = 0
     while _LIVE:
-        proc = _LIVE.pop()
-        if proc.poll() is None:
+        child = _LIVE.pop()
+        if child.process.poll() is None:
             alive += 1
-            proc.kill()
-            proc.wait(5)
-        proc._log.close()  # type: ignore[attr-defined]
+            child.process.kill()
+            child.process.wait(5)
+        child.log.close()
     return alive
 
 
-def stop_child(proc: subprocess.Popen, *, timeout: float = 20.0, kill: bool = False) -> int:
+def stop_child(child: Child, *, timeout: float = 20.0, kill: bool = False) -> int:
     """Wait for the child to end (or kill it); returns its exit code."""
     try:
         if kill:
-            proc.send_signal(signal.SIGKILL)
-        return proc.wait(timeout)
+            child.process.send_signal(signal.SIGKILL)
+        return child.process.wait(timeout)
     except subprocess.TimeoutExpired:
-        proc.kill()
-        proc.wait(5)
+        child.process.kill()
+        child.process.wait(5)
         pytest.fail(f"the editor did not close within {timeout:.0f} s")
     finally:
-        proc._log.close()  # type: ignore[attr-defined]
+        child.log.close()
 
 
 def read_saves(folder: Path) -> list[dict]:
-    """Saved labels of a :class:`FolderBackend`, oldest first."""
+    """Saved labels of a ``FolderBackend``, oldest first."""
     out = []
     for path in sorted((folder / "saves").glob("*.npz")):
         with np.load(path) as z:
@@ -389,24 +443,3 @@ def read_outcome(folder: Path) -> dict:
     return json.loads(path.read_text())
 
 
-def _child(spec_path: str) -> int:
-    from dataclasses import asdict
-
-    from labeler.editor.state import EditorState
-    from labeler.editor.window import run_editor
-
-    spec_file = Path(spec_path)
-    spec = json.loads(spec_file.read_text())
-    folder = spec_file.parent
-    with np.load(folder / "tile.npz") as z:
-        image, proposal = z["image"], z["proposal"]
-    state = EditorState(image, proposal, radius=spec["radius"],
-                        view_shape=tuple(spec["view_shape"]))
-    outcome = run_editor(state, backend=FolderBackend(folder), title=spec["title"],
-                         autosave_seconds=spec["autosave_seconds"])
-    (folder / "outcome.json").write_text(json.dumps(asdict(outcome)))
-    return 0
-
-
-if __name__ == "__main__":
-    sys.exit(_child(sys.argv[1]))

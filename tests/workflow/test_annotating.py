@@ -7,7 +7,7 @@ from labeler.agreement import cohen_kappa
 from labeler.errors import ConflictError, LabelerError, NotFoundError
 from labeler.metrics import confusion_matrix
 from labeler.workflow import accept_tile, next_tile, park_tile, queue_rows, save_tile_mask
-from labeler.workflow.annotating import overlap_agreement
+from labeler.workflow.annotating import overlap_agreement, save_state
 from tests.workflow.conftest import fake_proposals
 
 
@@ -42,6 +42,45 @@ def test_save_state_accepted_or_amended(project):
     assert rec.state == "amended"
     with pytest.raises(ConflictError):
         save_tile_mask(project, t1.id, "tomas", changed, parent_version=None, proposal_id=p1.id)
+
+
+_P = np.array([[0, 1], [2, 3]], np.uint8)
+_Q = np.array([[0, 1], [2, 2]], np.uint8)
+
+
+# the rule of DESIGN section 3 (accepted = proposal kept unchanged, amended = corrected,
+# settled = a reviewer decided) plus the weak-label state of scribble-only saves, written
+# out case by case: (kind, settling, mask, proposal) -> state
+@pytest.mark.parametrize(
+    ("kind", "settling", "mask", "proposal", "state"),
+    [
+        ("full", False, _P, _P, "accepted"),
+        ("full", False, _Q, _P, "amended"),
+        ("full", False, _P, None, "amended"),  # no proposal named: nothing was kept
+        ("full", True, _P, _P, "settled"),
+        ("full", True, _Q, _P, "settled"),
+        ("scribble", False, _P, _P, "weak"),
+        ("scribble", True, _P, None, "weak"),
+    ],
+)
+def test_save_state_table(kind, settling, mask, proposal, state):
+    assert save_state(kind=kind, settling=settling, mask=mask, proposal=proposal) == state
+
+
+def test_save_state_refuses_an_unknown_kind():
+    with pytest.raises(ValueError, match="kind: expected 'full' or 'scribble', got 'partial'"):
+        save_state(kind="partial", settling=False, mask=_P, proposal=None)
+
+
+def test_scribble_save_records_weak_and_leaves_the_tile_state(project):
+    fake_proposals(project)
+    t = project.store.tiles()[0]
+    before = project.store.tile(t.id).state
+    scrib = np.full(t.shape, 255, np.uint8)
+    scrib[5, 5:9] = 2
+    rec = save_tile_mask(project, t.id, "ines", scrib, parent_version=None, kind="scribble")
+    assert (rec.kind, rec.state) == ("scribble", "weak")
+    assert project.store.tile(t.id).state == before
 
 
 def test_park(project):

@@ -1,95 +1,111 @@
-"""labeler edit over the real store: Xvfb window driven by xdotool, and the backend."""
+"""The edit stage: what an edit starts from, the store backend the editor saves through,
+and the state of each save as the workflow decides it."""
 
+import subprocess
 import sys
 
 import numpy as np
 import pytest
 
-from labeler.editor.state import ViewTransform, fit_view_shape
-from labeler.editor.window import STATUS_ROWS
 from labeler.errors import ConflictError, LabelerError
-from labeler.masks.edits import stroke_mask
-from labeler.workflow import open_edit_session, save_tile_mask
-from tests.editor import xdrive
-from tests.editor.conftest import display, xserver  # noqa: F401 - fixtures
+from labeler.workflow import begin_edit, end_edit, save_tile_mask
+from tests.common import REPO
 from tests.workflow.conftest import fake_proposals
-
-WEED = 2
-
-
-@pytest.mark.display
-def test_xvfb_edit_saves_amended_in_store_exactly_where_the_stroke_went(display, project, tmp_path):  # noqa: F811
-    fake_proposals(project)
-    store = project.store
-    tile = store.tiles()[4]
-    image = store.image(tile.image_id)
-    proposal = store.latest_proposal(tile.id).mask()
-    view = fit_view_shape(tile.shape)
-    title = f"labeler edit - {image.name} - tile {tile.id} at row {tile.row} col {tile.col}"
-    spec = tmp_path / "edit" / "spec.json"
-    spec.parent.mkdir()
-    child = xdrive.launch_child(
-        display,
-        spec,
-        command=[
-            sys.executable,
-            "-m",
-            "labeler.cli",
-            "edit",
-            str(project.root),
-            str(tile.id),
-            "--annotator",
-            "ines",
-        ],
-    )
-    win = xdrive.wait_window(display, title, size=(view[1], view[0] + STATUS_ROWS), child=child)
-    drag = [(120, 200), (300, 210), (330, 420)]
-    xdrive.press_keys(display, str(WEED), "d")  # weed, brush (keys from labeler.editor.keys)
-    xdrive.drag(display, win, drag)
-    xdrive.screenshot(display, "store-edit")  # kept in test-artefacts/editor/
-    xdrive.press_keys(display, "Return")
-    assert xdrive.stop_child(child) == 0, (spec.parent / "child.log").read_text()
-    saved = store.latest_annotation(tile.id)
-    assert saved is not None and (saved.annotator, saved.state, saved.kind) == (
-        "ines",
-        "amended",
-        "full",
-    )
-    t = ViewTransform.fit(tile.shape, view)
-    points = [tuple(float(v) for v in t.view_to_tile(y, x)) for x, y in drag]
-    stroke = stroke_mask(points, radius=4.0, shape=tile.shape)  # the editor's default radius
-    mask = saved.mask()
-    np.testing.assert_array_equal(mask != proposal, stroke & (proposal != WEED))
-    assert (mask[stroke] == WEED).all()
-    assert saved.actions >= 1 and store.tile(tile.id).state == "amended"
-    assert store.tile(tile.id).held_by is None
 
 
 def test_backend_conflict_carries_their_mask_and_keeps_draft(project):
     fake_proposals(project)
     tile = project.store.tiles()[0]
-    session = open_edit_session(project, tile.id, "ines")
+    start = begin_edit(project, tile.id, "ines")
     assert project.store.tile(tile.id).state == "held"
     theirs = np.ones(tile.shape, np.uint8)
     save_tile_mask(project, tile.id, "tomas", theirs, parent_version=None)
     mine = np.full(tile.shape, 2, np.uint8)
     with pytest.raises(ConflictError) as info:
-        session.backend.save(mine, kind="full", state="amended", actions=3, seconds=9.0)
+        start.backend.save(mine, kind="full", actions=3, seconds=9.0)
     np.testing.assert_array_equal(info.value.theirs, theirs)
-    session.backend.save_draft(mine, np.full(tile.shape, 255, np.uint8), actions=3, seconds=9.0)
-    draft = session.backend.load_draft()
+    start.backend.save_draft(mine, np.full(tile.shape, 255, np.uint8), actions=3, seconds=9.0)
+    draft = start.backend.load_draft()
     np.testing.assert_array_equal(draft.mask, mine)
+    assert (draft.actions, draft.seconds) == (3, 9.0)
     assert [a.annotator for a in project.store.annotation_history(tile.id)] == ["tomas"]
+
+
+def test_backend_save_returns_the_state_the_workflow_decided(project):
+    fake_proposals(project)
+    tile = project.store.tiles()[0]
+    start = begin_edit(project, tile.id, "ines")
+    proposal = start.proposal
+    # unchanged: accepted; then changed: amended; then scribbles: weak
+    assert start.backend.save(proposal, kind="full", actions=0, seconds=1.0) == "accepted"
+    changed = proposal.copy()
+    changed[:4] = (changed[:4] + 1) % 4
+    assert start.backend.save(changed, kind="full", actions=2, seconds=3.0) == "amended"
+    scrib = np.full(tile.shape, 255, np.uint8)
+    scrib[10, 10:20] = 1
+    assert start.backend.save(scrib, kind="scribble", actions=1, seconds=1.0) == "weak"
+    history = project.store.annotation_history(tile.id)
+    assert [(a.kind, a.state) for a in history] == [
+        ("full", "accepted"), ("full", "amended"), ("scribble", "weak")]
+    assert start.backend.saved == [a.version for a in history]
+
+
+def test_draft_without_scribbles_comes_back_with_none_scribbled(project):
+    fake_proposals(project)
+    tile = project.store.tiles()[0]
+    start = begin_edit(project, tile.id, "ines")
+    assert start.backend.load_draft() is None
+    project.store.save_draft(tile.id, "ines", np.ones(tile.shape, np.uint8), actions=1)
+    draft = start.backend.load_draft()
+    assert draft.scribbles.shape == tile.shape and (draft.scribbles == 255).all()
+    start.backend.discard_draft()
+    assert start.backend.load_draft() is None
+
+
+def test_begin_edit_starts_from_own_mask_and_end_edit_gives_the_tile_back(project):
+    fake_proposals(project)
+    tile = project.store.tiles()[0]
+    before = project.store.tile(tile.id).state
+    start = begin_edit(project, tile.id, "ines")
+    proposal = project.store.latest_proposal(tile.id)
+    np.testing.assert_array_equal(start.mask, proposal.mask())
+    assert start.uncertainty is None and start.compare is None  # no per-pixel map here
+    assert start.backend.proposal_id == proposal.id
+    end_edit(project, tile.id, "ines")
+    assert project.store.tile(tile.id).state == before
+    mine = np.full(tile.shape, 3, np.uint8)
+    save_tile_mask(project, tile.id, "ines", mine, parent_version=None)
+    again = begin_edit(project, tile.id, "ines")
+    np.testing.assert_array_equal(again.mask, mine)
+    assert again.backend.parent_version == 1
+    end_edit(project, tile.id, "ines")
+    end_edit(project, tile.id, "ines")  # not held any more: nothing to do
+    assert project.store.tile(tile.id).held_by is None
+
+
+def test_begin_edit_passes_the_entropy_channel_for_the_heat_map(project):
+    from labeler.store.store import NewProposal
+
+    tile = project.store.tiles()[0]
+    mv = project.store.add_model_version(kind="head", name="with-maps")
+    maps = np.zeros((3, 8, 8), np.float16)
+    maps[0, 2, 3] = 0.5  # entropy channel
+    maps[1] = 1.0
+    project.store.add_proposals(
+        mv.id, [NewProposal(tile.id, np.zeros(tile.shape, np.uint8), uncertainty=maps)])
+    start = begin_edit(project, tile.id, "ines")
+    np.testing.assert_array_equal(start.uncertainty, maps[0].astype(np.float64))
+    end_edit(project, tile.id, "ines")
 
 
 def test_settle_needs_contested(project):
     fake_proposals(project)
     tile = project.store.tiles()[0]
     with pytest.raises(LabelerError, match="not contested"):
-        open_edit_session(project, tile.id, "rev", settle=True)
+        begin_edit(project, tile.id, "rev", settle=True)
 
 
-def test_settle_starts_from_consensus_and_shows_both(overlap_project):
+def test_settle_starts_from_consensus_and_saves_settled(overlap_project):
     project = overlap_project
     tile = project.store.tiles()[0]
     a = np.zeros(tile.shape, np.uint8)
@@ -99,19 +115,17 @@ def test_settle_starts_from_consensus_and_shows_both(overlap_project):
     save_tile_mask(project, tile.id, "ines", a, parent_version=None)
     save_tile_mask(project, tile.id, "tomas", b, parent_version=None)
     assert project.store.tile(tile.id).state == "contested"
-    session = open_edit_session(project, tile.id, "rev", settle=True)
-    assert session.compare_with == "ines"
-    session.backend.save(session.state.mask, kind="full", state="amended", actions=1, seconds=1.0)
+    start = begin_edit(project, tile.id, "rev", settle=True)
+    assert start.compare_label == "ines" and start.backend.proposal_id is None
+    np.testing.assert_array_equal(start.compare, a)
+    assert start.backend.save(start.mask, kind="full", actions=1, seconds=1.0) == "settled"
     assert project.store.tile(tile.id).state == "settled"
     assert project.store.latest_annotation(tile.id).state == "settled"
 
 
-def test_no_display_message(project, monkeypatch, capsys):
-    from labeler.cli import main
-
-    monkeypatch.delenv("DISPLAY", raising=False)
-    fake_proposals(project)
-    assert main(["edit", str(project.root), "--next", "--annotator", "ines"]) == 1
-    err = capsys.readouterr().err
-    assert "display" in err
-    assert all(t.state != "held" for t in project.store.tiles())
+def test_the_workflow_imports_nothing_from_the_editor():
+    code = ("import sys, labeler.workflow; "
+            "print(sorted(m for m in sys.modules if m.startswith('labeler.editor')))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, cwd=REPO)
+    assert out.stdout.strip() == "[]"

@@ -1,0 +1,359 @@
+"""Rendering of the editor's view: tile, class overlay, outlines, scribbles, marks.
+
+:class:`Renderer` draws the view of one tile as a BGR array; it never opens a window
+(OpenCV is used only to draw onto arrays). It keeps a composite of the whole tile (image,
+overlay, outlines, scribbles) and the view sampled from it, and redraws only the boxes the
+caller reports as touched (:meth:`Renderer.touched`), so a brush segment costs time in
+proportion to the segment, not the tile.
+
+Overlay
+    A class pixel of a class with an overlay colour is ``(base * (256 - a) + colour * a) >> 8``
+    with ``a = round(opacity * 256)``; on the region outline (a 4-neighbour holds another
+    value) it takes the class colour itself. Scribbled pixels show the scribble's class
+    colour (light grey for a class without overlay, e.g. soil).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import cv2
+import numpy as np
+
+from labeler.classes import UNLABELLED, ClassSchema
+from labeler.editor.history import Box
+from labeler.editor.view import PANE_GAP, Viewport
+
+__all__ = ["Marks", "Renderer", "check_uncertainty"]
+
+_BACKDROP = (38, 38, 38)  # BGR of view pixels outside the tile
+_GAP_COLOUR = (200, 200, 200)  # BGR of the gap between the two panes
+_SCRIBBLE_NO_COLOUR = (225, 225, 225)  # scribbles of a class without overlay (soil)
+_WHITE = (255, 255, 255)
+
+
+@dataclass(frozen=True)
+class Marks:
+    """What is drawn over the view for the gesture in progress.
+
+    Parameters
+    ----------
+    polygon : sequence of (float, float)
+        Vertices of the open polygon, tile ``(row, col)``.
+    box : ((float, float), (float, float)) or None
+        Corners of the box being dragged, tile ``(row, col)``.
+    cursor : (float, float) or None
+        Brush cursor centre, view ``(row, col)``; None hides it.
+    cursor_radius : float
+        Brush radius in tile pixels.
+    cursor_class : int
+        Class whose scribble colour rings the cursor.
+    """
+
+    polygon: Sequence[tuple[float, float]] = ()
+    box: tuple[tuple[float, float], tuple[float, float]] | None = None
+    cursor: tuple[float, float] | None = None
+    cursor_radius: float = 1.0
+    cursor_class: int = 0
+
+
+def check_uncertainty(uncertainty: np.ndarray) -> np.ndarray:
+    """An uncertainty map as float64, or ``ValueError`` when it is not finite and 2-D.
+
+    Parameters
+    ----------
+    uncertainty : ndarray, shape (h, w)
+        At any resolution; it is stretched over the tile for the heat map.
+
+    Returns
+    -------
+    ndarray, shape (h, w), float64
+    """
+    u = np.asarray(uncertainty, np.float64)
+    if u.ndim != 2 or u.size == 0 or not np.isfinite(u).all():
+        raise ValueError(f"uncertainty: expected a finite 2-D (h, w) map, got shape {u.shape}")
+    return u
+
+
+class Renderer:
+    """Draws the view of one tile and keeps what it drew for the next frame.
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W, 3), uint8
+        RGB tile.
+    schema : ClassSchema
+        Classes and overlay colours.
+    opacity : float
+        Overlay opacity, clipped to 0..1.
+    uncertainty : ndarray, shape (h, w), float, optional
+        Per-pixel uncertainty for the heat map.
+    """
+
+    def __init__(
+        self,
+        image: np.ndarray,
+        *,
+        schema: ClassSchema,
+        opacity: float = 0.45,
+        uncertainty: np.ndarray | None = None,
+    ) -> None:
+        self._image = image
+        self._shape = (int(image.shape[0]), int(image.shape[1]))
+        colours_rgb, self._has_overlay = schema.lut_rgb()
+        self._lut_bgr = np.ascontiguousarray(colours_rgb[:, ::-1])
+        self._scrib_bgr = self._lut_bgr.copy()
+        self._scrib_bgr[~self._has_overlay] = _SCRIBBLE_NO_COLOUR
+        self._uncertainty = None if uncertainty is None else check_uncertainty(uncertainty)
+        self._opacity = float(np.clip(opacity, 0.0, 1.0))
+        self._show_outlines = True
+        self._show_heat = False
+        self._show_overlay = True
+        self._base: np.ndarray | None = None  # image or heat blend, BGR, tile size
+        self._comp: np.ndarray | None = None  # composite of this edit, tile size
+        self._comp_other: np.ndarray | None = None  # composite of the compared mask
+        self._view: np.ndarray | None = None
+        self._maps: tuple[np.ndarray, np.ndarray] | None = None
+        self._drawn: tuple | None = None  # (transform, view_shape, split) of _view
+        self._dirty: list[Box] = []
+
+    # -------------------------------------------------------------- display settings
+    def _restyle(self) -> None:
+        self._base = None
+
+    @property
+    def opacity(self) -> float:
+        """Overlay opacity in 0..1."""
+        return self._opacity
+
+    @opacity.setter
+    def opacity(self, value: float) -> None:
+        self._opacity = float(np.clip(value, 0.0, 1.0))
+        self._restyle()
+
+    @property
+    def show_outlines(self) -> bool:
+        """Region outlines drawn in the class colour."""
+        return self._show_outlines
+
+    @show_outlines.setter
+    def show_outlines(self, value: bool) -> None:
+        self._show_outlines = bool(value)
+        self._restyle()
+
+    @property
+    def show_overlay(self) -> bool:
+        """Mask overlay and scribbles drawn (off: the bare tile)."""
+        return self._show_overlay
+
+    @show_overlay.setter
+    def show_overlay(self, value: bool) -> None:
+        self._show_overlay = bool(value)
+        self._restyle()
+
+    @property
+    def show_heat(self) -> bool:
+        """Uncertainty heat map blended under the overlay (never on without a map)."""
+        return self._show_heat
+
+    @show_heat.setter
+    def show_heat(self, value: bool) -> None:
+        self._show_heat = bool(value) and self._uncertainty is not None
+        self._restyle()
+
+    @property
+    def has_uncertainty(self) -> bool:
+        """True when an uncertainty map is set."""
+        return self._uncertainty is not None
+
+    def set_uncertainty(self, uncertainty: np.ndarray | None) -> None:
+        """Replace the uncertainty map, (h, w) float at any resolution (None removes it
+        and turns the heat map off)."""
+        if uncertainty is None:
+            self._uncertainty = None
+            self._show_heat = False
+        else:
+            self._uncertainty = check_uncertainty(uncertainty)
+        self._restyle()
+
+    @property
+    def scribble_colours(self) -> np.ndarray:
+        """BGR colour of a scribble per class value, shape (n_values, 3), uint8."""
+        return self._scrib_bgr
+
+    # -------------------------------------------------------------- what changed
+    def touched(self, box: Box) -> None:
+        """The mask or the scribbles changed inside ``box``: redraw it next frame."""
+        self._dirty.append(box)
+
+    def compare_changed(self) -> None:
+        """The compared mask was set or removed: compose it afresh next frame."""
+        self._comp_other = None
+
+    # -------------------------------------------------------------- composing
+    def _build_base(self) -> np.ndarray:
+        bgr = np.ascontiguousarray(self._image[:, :, ::-1])
+        if self._show_heat and self._uncertainty is not None:
+            u = self._uncertainty
+            lo, hi = float(u.min()), float(u.max())
+            scaled = np.zeros_like(u) if hi <= lo else (u - lo) / (hi - lo)
+            grey = np.round(scaled * 255).astype(np.uint8)
+            grey = cv2.resize(grey, (self._shape[1], self._shape[0]),
+                              interpolation=cv2.INTER_LINEAR)
+            heat = cv2.applyColorMap(grey, cv2.COLORMAP_INFERNO)
+            bgr = cv2.addWeighted(bgr, 0.5, heat, 0.5, 0.0)
+        return bgr
+
+    def _compose(self, mask: np.ndarray, scrib: np.ndarray | None, out: np.ndarray,
+                 r0: int, r1: int, c0: int, c1: int) -> None:
+        """Write the composite of rows r0:r1, cols c0:c1 into ``out``."""
+        base = self._base[r0:r1, c0:c1]
+        if not self._show_overlay:
+            out[r0:r1, c0:c1] = base
+            return
+        m = mask[r0:r1, c0:c1]
+        has = self._has_overlay[m]
+        a = int(round(self._opacity * 256))
+        col = self._lut_bgr[m]
+        blend = ((base.astype(np.uint16) * (256 - a) + col.astype(np.uint16) * a) >> 8)
+        res = np.where(has[:, :, None], blend.astype(np.uint8), base)
+        if self._show_outlines:
+            # a class pixel is on the outline when a 4-neighbour holds another value
+            h, w = self._shape
+            e0, e1, f0, f1 = max(r0 - 1, 0), min(r1 + 1, h), max(c0 - 1, 0), min(c1 + 1, w)
+            ext = mask[e0:e1, f0:f1]
+            edge = np.zeros(ext.shape, bool)
+            edge[1:, :] |= ext[1:, :] != ext[:-1, :]
+            edge[:-1, :] |= ext[:-1, :] != ext[1:, :]
+            edge[:, 1:] |= ext[:, 1:] != ext[:, :-1]
+            edge[:, :-1] |= ext[:, :-1] != ext[:, 1:]
+            edge = edge[r0 - e0 : r0 - e0 + (r1 - r0), c0 - f0 : c0 - f0 + (c1 - c0)] & has
+            res[edge] = col[edge]
+        if scrib is not None:
+            s = scrib[r0:r1, c0:c1]
+            on = s != UNLABELLED
+            if on.any():
+                res[on] = self._scrib_bgr[s[on]]
+        out[r0:r1, c0:c1] = res
+
+    def _gather(self, comp: np.ndarray, view: np.ndarray, col_off: int,
+                r0: int, r1: int, c0: int, c1: int) -> None:
+        """Copy tile rows r0:r1, cols c0:c1 of ``comp`` into the pane at ``col_off``."""
+        ri, ci = self._maps
+        rv = np.flatnonzero(ri >= 0)
+        cv = np.flatnonzero(ci >= 0)
+        if rv.size == 0 or cv.size == 0:
+            return
+        rvals, cvals = ri[rv], ci[cv]
+        a0, a1 = np.searchsorted(rvals, r0), np.searchsorted(rvals, r1)
+        b0, b1 = np.searchsorted(cvals, c0), np.searchsorted(cvals, c1)
+        if a0 >= a1 or b0 >= b1:
+            return
+        vr = rv[a0:a1]
+        vc = cv[b0:b1]
+        block = comp[ri[vr]][:, ci[vc]]
+        view[vr[0] : vr[-1] + 1, col_off + vc[0] : col_off + vc[-1] + 1] = block
+
+    def _refresh(self, mask: np.ndarray, scrib: np.ndarray, viewport: Viewport,
+                 compare: np.ndarray | None) -> None:
+        h, w = self._shape
+        drawn = (viewport.transform, viewport.view_shape, viewport.split)
+        full_view = self._base is None or self._view is None or drawn != self._drawn
+        if self._base is None:
+            self._base = self._build_base()
+            self._comp = np.empty_like(self._base)
+            self._compose(mask, scrib, self._comp, 0, h, 0, w)
+            self._comp_other = None
+            self._dirty.clear()
+        if compare is not None and self._comp_other is None:
+            self._comp_other = np.empty_like(self._base)
+            self._compose(compare, None, self._comp_other, 0, h, 0, w)
+            full_view = True
+        dirty, self._dirty = self._dirty, []
+        for r0, r1, c0, c1 in dirty:
+            e0, e1 = max(r0 - 1, 0), min(r1 + 1, h)
+            f0, f1 = max(c0 - 1, 0), min(c1 + 1, w)
+            self._compose(mask, scrib, self._comp, e0, e1, f0, f1)
+            if not full_view:
+                self._gather(self._comp, self._view, 0, e0, e1, f0, f1)
+        if full_view:
+            ph, pw = viewport.pane_shape
+            self._maps = (
+                viewport.transform.index_map(ph, h, axis=0),
+                viewport.transform.index_map(pw, w, axis=1),
+            )
+            vh, vw = viewport.view_shape
+            self._view = np.empty((vh, vw, 3), np.uint8)
+            self._view[:] = _BACKDROP
+            self._gather(self._comp, self._view, 0, 0, h, 0, w)
+            if compare is not None:
+                self._gather(self._comp_other, self._view, pw + PANE_GAP, 0, h, 0, w)
+            self._drawn = drawn
+
+    # -------------------------------------------------------------- the frame
+    def render(
+        self,
+        mask: np.ndarray,
+        scribbles: np.ndarray,
+        *,
+        viewport: Viewport,
+        compare: np.ndarray | None = None,
+        compare_label: str = "",
+        marks: Marks | None = None,
+    ) -> np.ndarray:
+        """The view as a BGR image: tile, overlay, outlines, scribbles, then the marks.
+
+        Parameters
+        ----------
+        mask : ndarray, shape (H, W), uint8
+            The mask being edited (every change since the last frame reported through
+            :meth:`touched`).
+        scribbles : ndarray, shape (H, W), uint8
+            Class index where scribbled, 255 elsewhere.
+        viewport : Viewport
+            View size, transform and split.
+        compare : ndarray, shape (H, W), uint8, optional
+            The mask of the right pane; give it exactly when ``viewport.split``.
+        compare_label : str
+            Caption of the right pane.
+        marks : Marks, optional
+            Polygon, box and brush cursor of the gesture in progress (default none).
+
+        Returns
+        -------
+        frame : ndarray, shape (rows, cols, 3), uint8, BGR
+            A new array of ``viewport.view_shape`` the caller may draw on.
+        """
+        self._refresh(mask, scribbles, viewport, compare if viewport.split else None)
+        frame = self._view.copy()
+        marks = Marks() if marks is None else marks
+        t = viewport.transform
+        if viewport.split:
+            pw = viewport.pane_shape[1]
+            frame[:, pw : pw + PANE_GAP] = _GAP_COLOUR
+            for off, text in ((0, "this edit"), (pw + PANE_GAP, compare_label)):
+                (tw, th), _ = cv2.getTextSize(text, cv2.FONT_HERSHEY_SIMPLEX, 0.45, 1)
+                cv2.rectangle(frame, (off, 0), (off + tw + 12, th + 10), (24, 24, 24), -1)
+                cv2.putText(frame, text, (off + 6, th + 4), cv2.FONT_HERSHEY_SIMPLEX, 0.45,
+                            _WHITE, 1, cv2.LINE_AA)
+        if len(marks.polygon):
+            vr, vc = t.tile_to_view(*np.asarray(marks.polygon).T)
+            pts = np.stack([vc, vr], axis=1).round().astype(np.int32)  # OpenCV draws x, y
+            cv2.polylines(frame, [pts], False, _WHITE, 1, cv2.LINE_AA)
+            for x, y in pts:
+                cv2.circle(frame, (int(x), int(y)), 3, _WHITE, -1)
+        if marks.box is not None:
+            (ar, ac), (br, bc) = marks.box
+            va = t.tile_to_view(ar, ac)
+            vb = t.tile_to_view(br, bc)
+            cv2.rectangle(frame, (int(round(va[1])), int(round(va[0]))),
+                          (int(round(vb[1])), int(round(vb[0]))), _WHITE, 1)
+        if marks.cursor is not None:
+            cy, cx = marks.cursor
+            rad = max(int(round(marks.cursor_radius * t.zoom)), 1)
+            colour = tuple(int(v) for v in self._scrib_bgr[marks.cursor_class])
+            centre = (int(round(cx)), int(round(cy)))
+            cv2.circle(frame, centre, rad, (0, 0, 0), 3)
+            cv2.circle(frame, centre, rad, colour, 1)
+        return frame

@@ -1,0 +1,167 @@
+"""Rendering of the view: overlay, outlines, scribbles, heat map, panes, cursor."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from labeler.classes import DEFAULT_SCHEMA, hex_to_rgb
+from labeler.editor.state import EditorState
+from labeler.editor.view import PANE_GAP
+from tests.common import zoo_square, zoo_two_touching
+from tests.editor.helpers import make_state
+
+CROP_BGR = hex_to_rgb("#0072B2")[::-1]  # DESIGN section 2 palette (Okabe & Ito 2008)
+WEED_BGR = hex_to_rgb("#E69F00")[::-1]
+
+
+def _render_loop(s: EditorState, *, outlines: bool) -> np.ndarray:
+    """Slow reference: every view pixel from the tile pixel it shows."""
+    colours, has = DEFAULT_SCHEMA.lut_rgb()
+    a = int(round(s.opacity * 256))
+    vh, vw = s.view_shape
+    out = np.zeros((vh, vw, 3), np.uint8)
+    mask, scrib, img = s.mask, s.scribbles, s.image
+    h, w = s.shape
+    for vr in range(vh):
+        for vc in range(vw):
+            r, c = s.transform.pixel_at(vr, vc)
+            if not (0 <= r < h and 0 <= c < w):
+                out[vr, vc] = (38, 38, 38)
+                continue
+            base = [int(img[r, c, 2]), int(img[r, c, 1]), int(img[r, c, 0])]
+            m = int(mask[r, c])
+            px = base
+            if has[m]:
+                col = [int(colours[m, 2]), int(colours[m, 1]), int(colours[m, 0])]
+                px = [(b * (256 - a) + k * a) >> 8 for b, k in zip(base, col, strict=True)]
+                nbrs = [(r + 1, c), (r - 1, c), (r, c + 1), (r, c - 1)]
+                if outlines and any(0 <= q < h and 0 <= p < w and mask[q, p] != m
+                                    for q, p in nbrs):
+                    px = col
+            if scrib[r, c] != 255:
+                k = int(scrib[r, c])
+                px = ([int(colours[k, 2]), int(colours[k, 1]), int(colours[k, 0])] if has[k]
+                      else [225, 225, 225])
+            out[vr, vc] = px
+    return out
+
+
+@pytest.mark.parametrize("outlines", [True, False])
+def test_render_matches_slow_loop(outlines):
+    s = make_state(zoo_two_touching(), view_shape=(40, 52), opacity=0.6, radius=0.5)
+    s.show_outlines = outlines
+    s.active_class = 0
+    s.scribble([(0, 0), (0, 3)])
+    s.active_class = 3
+    s.paint([(7, 0), (7, 7)])
+    s.zoom_at((10, 10), 1.7)
+    s.pan_view(3, -5)
+    np.testing.assert_array_equal(s.render(), _render_loop(s, outlines=outlines))
+
+
+def test_full_opacity_shows_the_palette_colours():
+    s = make_state(zoo_square(), opacity=1.0)
+    s.show_outlines = False
+    frame = s.render()  # zoom 8, view pixel (8r + 4, 8c + 4) shows tile pixel (r, c)
+    assert tuple(frame[3 * 8 + 4, 3 * 8 + 4]) == CROP_BGR
+    assert tuple(frame[4, 4]) == tuple(s.image[0, 0, ::-1])  # soil: no overlay
+    s.active_class = 2
+    s.paint([(3, 3)])
+    assert tuple(s.render()[3 * 8 + 4, 3 * 8 + 4]) == WEED_BGR
+
+
+def test_overlay_off_shows_the_bare_tile():
+    s = make_state(zoo_square())
+    s.show_overlay = False
+    frame = s.render()
+    np.testing.assert_array_equal(frame[4::8, 4::8], s.image[:, :, ::-1])
+
+
+def test_heat_map_needs_an_uncertainty_map():
+    s = make_state()
+    s.show_heat = True
+    assert not s.show_heat and "uncertainty" in s.notice
+    u = np.zeros((2, 2))
+    u[0, 0] = 1.0
+    h = make_state(uncertainty=u)
+    plain = h.render()
+    h.show_heat = True
+    heat = h.render()
+    assert (plain != heat).any()
+    with pytest.raises(ValueError, match="uncertainty: expected a finite 2-D"):
+        make_state(uncertainty=np.zeros(3))
+    h.set_uncertainty(None)
+    assert not h.show_heat
+    np.testing.assert_array_equal(h.render(), plain)
+    with pytest.raises(ValueError, match="uncertainty: expected a finite 2-D"):
+        h.set_uncertainty(np.full((2, 2), np.nan))
+
+
+def test_side_by_side_shows_the_other_mask_in_the_right_pane():
+    s = make_state(zoo_square(), view_shape=(64, 132), opacity=1.0)
+    s.show_outlines = False
+    other = np.zeros((8, 8), np.uint8)
+    other[:] = 2
+    s.set_compare(other, label="saved by someone else")
+    assert s.comparing and s.pane_shape == (64, 64)
+    frame = s.render()
+    right = 64 + PANE_GAP
+    assert tuple(frame[40, right + 40]) == WEED_BGR
+    assert tuple(frame[3 * 8 + 4, 3 * 8 + 4]) == CROP_BGR
+    assert s.pane_of((10, right + 5)) == (1, 10.0, 5.0)
+    assert s.pane_of((10, 65))[0] == -1
+    s.tool = "brush"
+    s.press((40, right + 40))  # clicks in the right pane do not edit
+    s.release((40, right + 40))
+    np.testing.assert_array_equal(s.mask, zoo_square())
+    assert s.toggle_compare() and not s.comparing
+    s.clear_compare()
+    assert not s.toggle_compare()
+
+
+def test_cursor_is_drawn_for_stroke_tools_only():
+    s = make_state()
+    s.hover((32, 32))
+    with_cursor = s.render()
+    s.leave_view()
+    assert (with_cursor != s.render()).any()
+    s.tool = "fill"
+    s.hover((32, 32))
+    np.testing.assert_array_equal(s.render(), make_state().render())
+
+
+
+
+def test_renderer_redraws_the_boxes_reported_and_nothing_else():
+    from labeler.editor.render import Renderer
+    from labeler.editor.view import Viewport
+
+    image = np.zeros((8, 8, 3), np.uint8)
+    mask = np.zeros((8, 8), np.uint8)
+    scrib = np.full((8, 8), 255, np.uint8)
+    r = Renderer(image, schema=DEFAULT_SCHEMA, opacity=1.0)
+    r.show_outlines = False
+    vp = Viewport((8, 8), (64, 64))
+    r.render(mask, scrib, viewport=vp)
+    mask[1, 1] = 1
+    r.touched((1, 2, 1, 2))
+    mask[6, 6] = 2  # changed but not reported: the cached composite keeps soil there
+    frame = r.render(mask, scrib, viewport=vp)
+    assert tuple(frame[1 * 8 + 4, 1 * 8 + 4]) == CROP_BGR
+    assert tuple(frame[6 * 8 + 4, 6 * 8 + 4]) == (0, 0, 0)
+    r.opacity = 1.0  # a style change composes the whole tile again
+    assert tuple(r.render(mask, scrib, viewport=vp)[6 * 8 + 4, 6 * 8 + 4]) == WEED_BGR
+
+
+def test_renderer_heat_map_stays_off_without_a_map():
+    from labeler.editor.render import Renderer, check_uncertainty
+
+    r = Renderer(np.zeros((4, 4, 3), np.uint8), schema=DEFAULT_SCHEMA)
+    r.show_heat = True
+    assert not r.show_heat and not r.has_uncertainty
+    r.set_uncertainty(np.ones((2, 2)))
+    r.show_heat = True
+    assert r.show_heat
+    with pytest.raises(ValueError, match=r"uncertainty: expected a finite 2-D \(h, w\) map"):
+        check_uncertainty(np.array([[np.inf]]))
