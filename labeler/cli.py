@@ -188,26 +188,15 @@ def cmd_pick(args) -> int:
 
     with open_project(args.dir) as project, _Bar("ranking") as bar:
         result = rank_tiles(project, strategy=args.strategy, k=args.k, seed=args.seed, progress=bar)
-        images = {t.id: t for t in project.store.tiles()}
-        names = {im.id: im.name for im in project.store.images()}
     if result.note:
         print(f"note: {result.note}")
     print(
         f"ranked {len(result.items)} tiles with strategy {result.strategy}; the next batch of {result.k}:"
     )
-    rows = []
-    for item in result.items[: result.k]:
-        t = images[item.tile_id]
-        rows.append(
-            (
-                item.rank + 1,
-                item.tile_id,
-                names[t.image_id],
-                f"{t.row},{t.col}",
-                f"{item.score:.4f}",
-                item.reason,
-            )
-        )
+    rows = [
+        (t.rank + 1, t.tile_id, t.image, f"{t.row},{t.col}", f"{t.score:.4f}", t.reason)
+        for t in result.batch
+    ]
     print(_table(["rank", "tile", "image", "row,col", "score", "why"], rows))
     if result.unranked:
         print(

@@ -46,7 +46,8 @@ import numpy as np
 from affine import Affine
 from scipy import ndimage
 
-from labeler.imagery.write import atomic_write_bytes, write_geotiff, write_png
+from labeler.fileio import atomic_write_bytes
+from labeler.imagery.write import write_geotiff, write_png
 
 __all__ = [
     "FARM",

@@ -62,8 +62,8 @@ from rasterio.warp import transform as warp_transform
 
 from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
 from labeler.errors import InputError
+from labeler.fileio import atomic_write_bytes
 from labeler.imagery.tiling import Window, owner_map
-from labeler.imagery.write import atomic_write_bytes
 from labeler.masks.polygons import Region, mask_to_polygons
 from labeler.states import STATES
 

@@ -8,9 +8,9 @@ from datetime import UTC
 
 from labeler.agreement import AgreementSummary, landis_koch_band
 from labeler.classes import ClassSchema
-from labeler.store.records import ModelVersionRecord
 from labeler.tui.rows import format_number, format_who
 from labeler.workflow.annotating import QueueRow
+from labeler.workflow.views import ModelVersionRecord
 
 __all__ = [
     "AGREEMENT_COLUMNS",

@@ -20,7 +20,7 @@ from rich.style import Style
 from rich.text import Text
 
 from labeler.classes import ClassSchema
-from labeler.export.report import overlay_mask
+from labeler.masks.overlay import overlay_mask
 
 __all__ = [
     "HALF_BLOCK",
@@ -149,8 +149,8 @@ def overlay(
         Palette (DESIGN section 2).
     opacity : float
         Weight of the class colour, 0..1 (the project's ``editor.opacity``, 0.45):
-        ``round_half_up((1 - opacity) * pixel + opacity * colour)``, as in the agreement
-        report (:func:`labeler.export.report.overlay_mask`).
+        ``round_half_up((1 - opacity) * pixel + opacity * colour)``, the one overlay of
+        every picture (:func:`labeler.masks.overlay.overlay_mask`).
 
     Returns
     -------

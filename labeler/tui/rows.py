@@ -1,7 +1,7 @@
-"""What the queue table shows: cell texts of a queue row and the row filters.
+"""What the queue screen shows: cell texts of a queue row, the row filters, the caption.
 
-Plain Python over :class:`labeler.workflow.QueueRow` (no textual here), so the screens
-stay thin and these rules are tested on their own.
+Plain Python over :class:`labeler.workflow.QueueRow` and :class:`labeler.workflow.TileView`
+(no textual here), so the screens stay thin and these rules are tested on their own.
 """
 
 from __future__ import annotations
@@ -13,6 +13,7 @@ from dataclasses import dataclass
 from labeler.classes import ClassSchema
 from labeler.states import STATES
 from labeler.workflow.annotating import QueueRow
+from labeler.workflow.views import TileView
 
 __all__ = [
     "QUEUE_COLUMNS",
@@ -25,6 +26,7 @@ __all__ = [
     "format_number",
     "format_who",
     "queue_cells",
+    "preview_caption",
 ]
 
 #: Column headings of the queue table, in order.
@@ -199,3 +201,25 @@ def queue_cells(row: QueueRow, *, schema: ClassSchema) -> tuple[str, ...]:
         format_number(row.score),
         row.reason or "",
     )
+
+
+def preview_caption(view: TileView) -> str:
+    """The caption of the tile preview: the tile, where it lies and which mask is shown.
+
+    Parameters
+    ----------
+    view : TileView
+        What :func:`labeler.workflow.tile_view` returned.
+
+    Returns
+    -------
+    str
+        E.g. ``"tile 7 · plot-a r0 c224 · proposal of head-2"``.
+    """
+    if view.shows == "saved":
+        what = f"saved by {view.saved_by} (v{view.saved_version}, {view.saved_state})"
+    elif view.shows == "proposal":
+        what = f"proposal of {view.model or 'a model'}"
+    else:
+        what = "no proposal yet"
+    return f"tile {view.tile_id} · {view.image} r{view.row} c{view.col} · {what}"

@@ -18,6 +18,7 @@ from pathlib import Path
 from textual.worker import WorkerState
 
 from labeler.errors import LabelerError
+from labeler.fileio import atomic_write_bytes, atomic_write_text
 from labeler.project import open_project
 from labeler.tui.app import QueueApp
 
@@ -69,13 +70,15 @@ def save_screenshot(
     Parameters
     ----------
     project_dir : path
+        The project folder; it is opened and closed here.
     svg_path : path
-        File to write (its folder must exist).
+        File to write, atomically.
     annotator : str
         Name shown in the header.
     tile : int, optional
         Tile to select in the queue before the screenshot.
     screen : {"queue", "agreement", "models"}
+        Which screen to show.
     size : (int, int)
         Terminal columns and rows.
 
@@ -100,7 +103,7 @@ def save_screenshot(
             if key is not None:
                 await pilot.press(key)
                 await wait_idle(pilot)
-            app.save_screenshot(filename=out.name, path=str(out.parent))
+            atomic_write_text(out, app.export_screenshot())
             app.exit(0)
 
         app.run(headless=True, size=size, auto_pilot=drive)
@@ -136,9 +139,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         except ImportError:
             print("snapshot: error: --png needs the cairosvg package", file=sys.stderr)
             return 1
-        tmp = args.png.with_name(args.png.name + ".part")
-        cairosvg.svg2png(url=str(svg), write_to=str(tmp), output_width=args.png_width)
-        os.replace(tmp, args.png)
+        png = cairosvg.svg2png(url=str(svg), output_width=args.png_width)
+        atomic_write_bytes(args.png, png)
     return 0
 
 

@@ -15,8 +15,8 @@ from labeler.imagery.read import open_image
 from labeler.imagery.tiling import stitch
 from labeler.project import Project
 from labeler.states import CONTESTED, SETTLED
-from labeler.workflow.adding import Progress, _no_progress
 from labeler.workflow.annotating import QueueRow, queue_rows
+from labeler.workflow.progress import Progress, no_progress
 
 __all__ = ["compared_images", "agreement_summary", "write_agreement", "contested_tiles"]
 
@@ -59,7 +59,7 @@ def compared_images(project: Project) -> list[ComparedImage]:
 
 
 def agreement_summary(
-    project: Project, *, since: date | datetime | None = None, progress: Progress = _no_progress
+    project: Project, *, since: date | datetime | None = None, progress: Progress = no_progress
 ) -> AgreementSummary:
     """Agreement figures of the project: per annotator pair, class, image, tile and day."""
     items = compared_images(project)
@@ -78,7 +78,7 @@ def write_agreement(
     *,
     since: date | datetime | None = None,
     least: int = 10,
-    progress: Progress = _no_progress,
+    progress: Progress = no_progress,
 ) -> tuple[AgreementSummary, ReportFiles]:
     """Compute the summary and write the HTML report, plots and CSV into ``out_dir``."""
     items = compared_images(project)

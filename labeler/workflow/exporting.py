@@ -21,7 +21,7 @@ from labeler.export.geojson import (
     write_geojson,
 )
 from labeler.export.importing import match_mask_to_image, read_mask_file
-from labeler.export.manifest import manifest_row, write_manifest
+from labeler.export.manifest import MANIFEST_NAME, manifest_row, write_manifest
 from labeler.export.pngmasks import write_image_masks
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import stitch
@@ -29,7 +29,7 @@ from labeler.project import Project
 from labeler.states import ACCEPTED, AMENDED, SETTLED, STATES
 from labeler.store.records import ImageRecord
 from labeler.store.store import NewAnnotation
-from labeler.workflow.adding import Progress, _no_progress
+from labeler.workflow.progress import Progress, no_progress
 
 __all__ = [
     "EXPORT_FORMATS",
@@ -153,7 +153,7 @@ def export_project(
     proposals: bool = False,
     pixel_coordinates: bool = False,
     previews: bool = True,
-    progress: Progress = _no_progress,
+    progress: Progress = no_progress,
 ) -> ExportResult:
     """Export the project's masks.
 
@@ -260,7 +260,7 @@ def export_project(
         path = write_geojson(folder / f"{project.root.resolve().name}.geojson", merged)
         result.geojson.append(Path(path))
     if do_masks and rows:
-        path = write_manifest(folder / "manifest.jsonl", rows)
+        path = write_manifest(folder / MANIFEST_NAME, rows)
         result = _replace(result, manifest=Path(path))
     progress(len(images), len(images), "done")
     store.log_event(
@@ -302,7 +302,7 @@ def import_masks(
     annotator: str,
     image: str | None = None,
     fill: str = "unlabelled",
-    progress: Progress = _no_progress,
+    progress: Progress = no_progress,
 ) -> ImportResult:
     """Read PNG class masks or GeoJSON polygons into annotations of ``annotator``.
 

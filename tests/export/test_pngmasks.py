@@ -77,7 +77,7 @@ def test_errors(tmp_path):
         write_image_masks(tmp_path, "../escape", m)
     with pytest.raises(ValueError, match=r"mask: expected shape \(8, 8\) like the image"):
         preview_rgb(field_image(), np.zeros((8, 9), np.uint8))
-    with pytest.raises(ValueError, match=r"opacity: expected a value in \[0, 1\]"):
+    with pytest.raises(ValueError, match=r"opacity: expected a weight in 0..1"):
         preview_rgb(field_image(), m, opacity=1.5)
     with pytest.raises(ValueError, match="image: expected uint8 RGB"):
         preview_rgb(field_image().astype(np.float32), m)
