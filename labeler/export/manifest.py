@@ -58,8 +58,8 @@ from pathlib import Path
 import numpy as np
 
 from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
-from labeler.export.geojson import TILE_STATES
 from labeler.fileio import atomic_write_bytes
+from labeler.states import STATES
 
 __all__ = [
     "MANIFEST_NAME",
@@ -153,8 +153,8 @@ def manifest_row(
     schema.check_mask(m, name="mask")
     states = list(tile_states)
     for s in states:
-        if s not in TILE_STATES:
-            raise ValueError(f"tile_states: expected states of {TILE_STATES}, got {s!r}")
+        if s not in STATES:
+            raise ValueError(f"tile_states: expected states of {STATES}, got {s!r}")
     if (
         not isinstance(filled_from_proposals, int | np.integer)
         or not 0 <= filled_from_proposals
@@ -176,7 +176,7 @@ def manifest_row(
         "unlabelled_px": int(counts[UNLABELLED]),
         "split": split_for(image_sha256, seed=seed, val_share=val_share),
         "image_sha256": _check_sha(image_sha256),
-        "tile_states": {s: counted[s] for s in TILE_STATES if counted[s]},
+        "tile_states": {s: counted[s] for s in STATES if counted[s]},
         "filled_from_proposals": int(filled_from_proposals),
     }
 
