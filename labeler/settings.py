@@ -37,7 +37,8 @@ Sections and options (defaults in brackets):
 ``[editor]``
     ``autosave_seconds`` [5]; ``opacity`` [0.45].
 ``[classes]``
-    optional table ``name = {index = i, colour = "#RRGGBB"}`` replacing DESIGN section 2.
+    optional table ``name = {index = i, colour = "#RRGGBB"}`` replacing the default schema
+    of :mod:`labeler.classes`.
 
 Retired options (:data:`RETIRED_OPTIONS`) that settings files of older projects still
 carry are read and ignored, so those projects keep opening.

@@ -19,7 +19,7 @@ Each line holds:
 ``image_sha256``
     SHA-256 of the image file.
 ``tile_states``
-    How many of the image's tiles are in each state (DESIGN section 3).
+    How many of the image's tiles are in each state (:data:`labeler.states.STATES`).
 ``filled_from_proposals``
     How many tiles had no saved annotation and were filled from a model proposal.
 

@@ -6,7 +6,7 @@ Per image two files may be written into an output folder:
     Single-channel 8-bit class indices of the schema; 255 stays 255 (unlabelled), which
     training code should ignore (e.g. ``ignore_index=255`` in a cross-entropy loss).
 ``<stem>_preview.png``
-    RGB: the image blended with the class palette of DESIGN section 2 (Okabe & Ito 2008
+    RGB: the image blended with the class palette of :mod:`labeler.classes` (Okabe & Ito 2008
     colours) at opacity 0.45. Soil (no overlay colour) and unlabelled pixels show the
     plain image.
 

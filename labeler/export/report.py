@@ -2,8 +2,8 @@
 
 Everything shown comes from an :class:`labeler.agreement.AgreementSummary`; this module
 only lays it out. Plots are drawn with matplotlib's Agg canvas (no display, no global
-pyplot state). Mask overlays are blended with numpy in the palette of the schema
-(DESIGN section 2). Every file is written atomically (temporary file + rename).
+pyplot state). Mask overlays are blended by :func:`labeler.masks.overlay.overlay_mask` in the
+palette of the schema. Every file is written atomically (temporary file + rename).
 
 Files written into ``out_dir``:
 

@@ -5,7 +5,7 @@ agreement report, the terminal queue's preview and the editor window)::
 
     out = round_half_up((1 - opacity) * pixel + opacity * colour)
 
-where the mask value has an overlay colour (DESIGN section 2 palette, Okabe & Ito 2008);
+where the mask value has an overlay colour (the palette of :mod:`labeler.classes`, Okabe & Ito 2008);
 pixels of the background class and unlabelled pixels (255) keep their value. The blend is
 done in integers with the opacity taken to the nearest thousandth, so a half is always
 rounded up exactly (no floating-point ties) and every caller gets the same bytes.

@@ -146,7 +146,7 @@ def overlay(
         Class indices of the proposal (or a saved mask); classes without a colour (soil)
         and unlabelled pixels (255) get no overlay. ``None`` gives the bare tile.
     schema : ClassSchema
-        Palette (DESIGN section 2).
+        Gives the overlay colours.
     opacity : float
         Weight of the class colour, 0..1 (the project's ``editor.opacity``, 0.45):
         ``round_half_up((1 - opacity) * pixel + opacity * colour)``, the one overlay of

@@ -29,7 +29,7 @@ def test_class_mask_png_is_single_channel_with_unlabelled_kept(tmp_path):
 
 def test_preview_matches_opencv_add_weighted():
     # oracle: cv2.addWeighted(image, 0.55, palette colour, 0.45, 0) where a class has a
-    # colour; DESIGN section 2 colours (Okabe & Ito 2008): crop #0072B2, weed #E69F00,
+    # colour; default palette colours (Okabe & Ito 2008): crop #0072B2, weed #E69F00,
     # symptom #CC79A7
     img = field_image()
     m = zoo_four_classes()

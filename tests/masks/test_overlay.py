@@ -32,7 +32,7 @@ def test_hand_worked_blend_of_the_default_palette():
     rgb = np.full((1, 5, 3), 100, np.uint8)
     mask = np.array([[0, 1, 2, 3, 255]], np.uint8)
     out = overlay_mask(rgb, mask, schema=DEFAULT_SCHEMA, opacity=0.45)
-    # DESIGN section 2 / Okabe & Ito 2008: crop #0072B2 = (0, 114, 178), weed #E69F00 =
+    # default palette, Okabe & Ito 2008: crop #0072B2 = (0, 114, 178), weed #E69F00 =
     # (230, 159, 0), symptom #CC79A7 = (204, 121, 167); 0.55 * 100 + 0.45 * colour, worked
     # by hand: crop 55, 106.3, 135.1; weed 158.5 (half: up), 126.55, 55; symptom 146.8,
     # 109.45, 130.15
