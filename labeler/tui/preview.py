@@ -167,6 +167,18 @@ def fit_picture(picture: np.ndarray, *, cols: int, rows: int) -> np.ndarray:
 
     Blocks are averaged (:func:`box_downsample`) to the size :func:`fit_pixels` gives,
     so a thin weed still tints its block.
+
+    Parameters
+    ----------
+    picture : ndarray, shape (H, W, 3), uint8
+        The picture to shrink.
+    cols, rows : int
+        Cells available (each cell shows one pixel across and two pixels down).
+
+    Returns
+    -------
+    ndarray, shape (h, w, 3), uint8
+        The shrunk picture, ``(h, w)`` from :func:`fit_pixels`.
     """
     img = _check_rgb(picture, "picture")
     return box_downsample(img, fit_pixels(img.shape[:2], cols=cols, rows=rows))
@@ -182,6 +194,19 @@ def tile_picture(
     rows: int,
 ) -> np.ndarray:
     """What the preview shows: :func:`overlay` then :func:`fit_picture`.
+
+    Parameters
+    ----------
+    rgb : ndarray, shape (H, W, 3), uint8
+        Tile pixels.
+    mask : ndarray, shape (H, W), integer, or None
+        The mask to blend over them (None: the bare tile).
+    schema : ClassSchema
+        Gives the overlay colours.
+    opacity : float
+        Weight of the class colour, 0..1.
+    cols, rows : int
+        Cells available.
 
     Returns
     -------

@@ -93,6 +93,19 @@ def _class_share(row: QueueRow, class_name: str, schema: ClassSchema) -> float |
 def keep_row(row: QueueRow, flt: RowFilter, *, schema: ClassSchema) -> bool:
     """True if ``row`` passes every set field of ``flt``.
 
+    Parameters
+    ----------
+    row : QueueRow
+        One tile of the queue.
+    flt : RowFilter
+        The filters set on the screen (``None`` fields are not applied).
+    schema : ClassSchema
+        The project's classes (for the class filter).
+
+    Returns
+    -------
+    bool
+
     Raises
     ------
     KeyError
@@ -116,7 +129,27 @@ def keep_row(row: QueueRow, flt: RowFilter, *, schema: ClassSchema) -> bool:
 def filter_rows(
     rows: Iterable[QueueRow], flt: RowFilter, *, schema: ClassSchema
 ) -> list[QueueRow]:
-    """The rows that pass ``flt``, in their given (queue) order."""
+    """The rows that pass ``flt``, in their given (queue) order.
+
+    Parameters
+    ----------
+    rows : iterable of QueueRow
+        The queue.
+    flt : RowFilter
+        The filters set on the screen.
+    schema : ClassSchema
+        The project's classes.
+
+    Returns
+    -------
+    list of QueueRow
+        The rows :func:`keep_row` keeps.
+
+    Raises
+    ------
+    KeyError
+        If ``flt.class_name`` is not a class of ``schema``.
+    """
     return [r for r in rows if keep_row(r, flt, schema=schema)]
 
 
@@ -163,14 +196,38 @@ def format_shares(
 
 
 def format_number(value: float | None, digits: int = 3) -> str:
-    """``value`` with ``digits`` decimals; ``None`` and NaN give ``"-"``."""
+    """``value`` with ``digits`` decimals; ``None`` and NaN give ``"-"``.
+
+    Parameters
+    ----------
+    value : float or None
+        The figure.
+    digits : int
+        Decimals shown.
+
+    Returns
+    -------
+    str
+    """
     if value is None or math.isnan(float(value)):
         return "-"
     return f"{float(value):.{digits}f}"
 
 
 def format_who(row: QueueRow) -> str:
-    """Who holds the tile and who saved it: ``"ana (open) bo"``; ``""`` for no one."""
+    """Who holds the tile and who saved it: ``"ana (open) bo"``; ``""`` for no one.
+
+    Parameters
+    ----------
+    row : QueueRow
+        One tile of the queue.
+
+    Returns
+    -------
+    str
+        The holder first (``"(open)"``, ``"(open, saved)"`` when they saved it too), then
+        the others who saved it.
+    """
     parts = []
     if row.held_by:
         parts.append(f"{row.held_by} (open)")
@@ -186,6 +243,18 @@ def queue_cells(row: QueueRow, *, schema: ClassSchema) -> tuple[str, ...]:
     The rank is counted from 1 (``"-"``: not ranked yet); the agreement column is empty
     for tiles with one annotator, ``"overlap"`` for an overlap tile still waiting for its
     second mask. The tile's position in its image is in the preview caption.
+
+    Parameters
+    ----------
+    row : QueueRow
+        One tile of the queue.
+    schema : ClassSchema
+        The project's classes (for the predicted class shares).
+
+    Returns
+    -------
+    tuple of str
+        Rank, tile, image, state, who, class shares, agreement, score, reason.
     """
     agreement = format_number(row.agreement) if row.overlap else ""
     if row.overlap and row.agreement is None:

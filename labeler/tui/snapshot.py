@@ -33,6 +33,13 @@ async def wait_idle(pilot, *, timeout: float = 60.0) -> None:
     Workers start other workers (a save reloads the queue, which loads the preview), so
     this waits in rounds until a round finds nothing left to do.
 
+    Parameters
+    ----------
+    pilot : textual.pilot.Pilot
+        The pilot driving the headless app.
+    timeout : float
+        Seconds to wait at most.
+
     Raises
     ------
     TimeoutError
@@ -113,7 +120,19 @@ def save_screenshot(
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Command line of the snapshot tool; returns the exit code."""
+    """Command line of the snapshot tool.
+
+    Parameters
+    ----------
+    argv : sequence of str, optional
+        Arguments (default ``sys.argv[1:]``).
+
+    Returns
+    -------
+    int
+        0 on success, 1 when the project cannot be opened or cairosvg is missing for
+        ``--png``.
+    """
     parser = argparse.ArgumentParser(
         prog="python -m labeler.tui.snapshot",
         description="Save a screen of the terminal queue as SVG (optionally PNG).",

@@ -97,6 +97,19 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
     Each image's proposals are stored in one transaction as soon as they are made, so
     an interrupted run keeps what it finished. Unseen tiles become ``proposed``.
 
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    progress : Progress
+        Called as ``progress(done, total, label)`` over the tiles to propose.
+
+    Returns
+    -------
+    ProposeResult
+        The model version used, how many tiles were proposed or already up to date,
+        and the feature cache's hits and misses.
+
     Raises
     ------
     LabelerError

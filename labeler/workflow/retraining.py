@@ -30,12 +30,23 @@ __all__ = ["LabelledTile", "labelled_tiles", "RetrainResult", "retrain"]
 
 @dataclass(frozen=True)
 class LabelledTile:
-    """A tile with the mask training uses."""
+    """A tile with the mask training uses.
+
+    Attributes
+    ----------
+    tile : TileRecord
+    image : ImageRecord
+        The tile's image.
+    mask : ndarray, shape (H, W), uint8
+        Class indices, 255 unlabelled.
+    kind : {"full", "scribble"}
+        A full mask or scribbles (a weak label).
+    """
 
     tile: TileRecord
     image: ImageRecord
-    mask: np.ndarray  # (H, W) uint8, 255 unlabelled
-    kind: str  # "full" or "scribble"
+    mask: np.ndarray
+    kind: str
 
 
 def labelled_tiles(project: Project) -> list[LabelledTile]:
@@ -44,6 +55,16 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
     A tile's newest full mask (accepted, amended, settled or imported) is used; on a
     contested tile only a reviewer's settled mask counts (the annotators' masks are in
     dispute). Tiles without a full mask use their newest scribbles (weak labels).
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+
+    Returns
+    -------
+    list of LabelledTile
+        In tile order; tiles whose mask is all unlabelled are left out.
     """
     store = project.store
     images = {im.id: im for im in store.images()}
@@ -90,6 +111,22 @@ class RetrainResult:
 
 def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainResult:
     """Train a new head on every saved mask and record it as a model version.
+
+    The head's checkpoint is written to ``<project>/models/head-<n>.pt``.
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    progress : Progress
+        Called as ``progress(done, total, label)``: first over the tiles encoded, then
+        over the training epochs (with the validation mIoU).
+
+    Returns
+    -------
+    RetrainResult
+        The new model version with its per-class validation IoU, the numbers of tiles
+        used, the best epoch and the training history.
 
     Raises
     ------
