@@ -100,6 +100,26 @@ def test_a_misplaced_import_breaks_its_contract(clean_copy, tmp_path, module, li
     assert f"{' '.join(name.split())} BROKEN" in out
 
 
+@pytest.mark.parametrize(
+    ("module", "line"),
+    [
+        ("labeler.store", "import sqlite3"),
+        ("labeler.store.schema", "import sqlite3"),
+        ("labeler.tui", "from rich.text import Text"),
+        ("labeler.masks", "from rasterio.features import shapes"),
+        ("labeler.workflow", "import labeler.masks"),
+        ("labeler.export", "import labeler.masks"),
+    ],
+)
+def test_an_import_in_its_own_room_keeps_every_contract(clean_copy, tmp_path, module, line):
+    folder = tmp_path / "fine"
+    shutil.copytree(clean_copy, folder)
+    target = module_file(folder, module)
+    target.write_text(target.read_text(encoding="utf-8") + f"\n{line}\n", encoding="utf-8")
+    run = lint_imports(folder)
+    assert run.returncode == 0, run.stdout + run.stderr
+
+
 def test_a_new_top_level_module_needs_a_layer(clean_copy, tmp_path):
     folder = tmp_path / "extra"
     shutil.copytree(clean_copy, folder)
