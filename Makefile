@@ -1,6 +1,8 @@
 # labeler: two commands from a fresh checkout.
 #   make test   builds or reuses .venv/, installs everything, runs the whole test suite
 #   make demo   builds or reuses .venv/, installs everything, builds and shows a demo project
+# and for contributors:
+#   make lint   ruff, then the room rules as import contracts (lint-imports, pyproject.toml)
 SHELL := /bin/bash
 PYTHON ?= python3
 VENV := .venv
@@ -44,6 +46,7 @@ demo: $(STAMP)
 
 lint: $(STAMP)
 	$(BIN)/ruff check .
+	$(BIN)/lint-imports
 
 bench: $(STAMP)
 	@for b in benchmarks/*.py; do echo "== $$b"; $(BIN)/python $$b || exit 1; done

@@ -1,9 +1,11 @@
 """labeler: pixel masks of crop, weed and disease symptom regions from field imagery.
 
-The package is laid out one room per concern (see README): ``masks``, ``picker`` and
-``agreement`` are pure numpy; ``store`` holds all SQL; ``imagery`` and ``export`` all
-image and GeoJSON files; ``model`` all torch; ``tui`` all textual; ``editor`` the OpenCV
-mask editor.
+The package is laid out one room per concern, in layers (docs/architecture.md; the rules
+are import contracts in pyproject.toml): ``picker``, ``agreement`` and ``metrics`` are
+numpy only and ``masks`` works without I/O; ``store`` holds all SQL; ``imagery`` and
+``export`` all image and GeoJSON files; ``model`` all torch; ``tui`` all textual;
+``editor`` the mask editor, whose ``window`` alone opens OpenCV windows; ``workflow``
+decides every tile state.
 """
 
 __all__ = ["__version__"]

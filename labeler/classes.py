@@ -1,4 +1,4 @@
-"""Label schema and overlay palette (DESIGN section 2).
+"""Label schema and overlay palette (docs/architecture.md, "Label schema").
 
 Class indices are stored in ``uint8`` masks. Index 0 is the background (soil) and has
 no overlay colour; index 255 (:data:`UNLABELLED`) marks pixels that a weak label leaves
@@ -216,7 +216,7 @@ class ClassSchema:
             )
 
 
-#: The default schema of DESIGN section 2 (Okabe & Ito 2008 colours).
+#: The default schema (docs/architecture.md; Okabe & Ito 2008 colours).
 DEFAULT_SCHEMA = ClassSchema(
     [
         LabelClass(0, "soil", None),

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["LabelerError", "InputError", "ConflictError", "NotFoundError"]
+__all__ = ["LabelerError", "InputError", "MaskImportError", "ConflictError", "NotFoundError"]
 
 
 class LabelerError(Exception):
@@ -11,6 +11,10 @@ class LabelerError(Exception):
 
 class InputError(LabelerError, ValueError):
     """Bad input: a file, a value or a path that cannot be used (names the file)."""
+
+
+class MaskImportError(InputError):
+    """A mask file that cannot be imported; the message names the file and the problem."""
 
 
 class NotFoundError(LabelerError, LookupError):

@@ -16,6 +16,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from labeler.errors import InputError, LabelerError
+from labeler.fileio import atomic_write_text
 from labeler.settings import SETTINGS_FILE, Settings, default_settings_text, load_settings
 from labeler.store import Store
 from labeler.store.records import ImageRecord
@@ -103,7 +104,7 @@ def init_project(folder: str | os.PathLike[str]) -> Project:
             f"{root}: already holds a labeler project; use it, or choose another folder"
         )
     root.mkdir(parents=True, exist_ok=True)
-    (root / SETTINGS_FILE).write_text(default_settings_text(), encoding="utf-8")
+    atomic_write_text(root / SETTINGS_FILE, default_settings_text())
     for sub in ("images", "models", "cache"):
         (root / sub).mkdir(exist_ok=True)
     settings = load_settings(root)

@@ -27,17 +27,21 @@ Sections and options (defaults in brackets):
     loss before training stops (a few labelled tiles give a noisy validation loss).
 ``[picker]``
     ``strategy`` ["mixed"] one of random, entropy, margin, bald, coreset, mixed;
-    ``k`` [20] tiles per batch; ``seed`` [0]; ``vegetation_only`` [false].
+    ``k`` [20] tiles per batch; ``seed`` [0].
 ``[agreement]``
     ``overlap_share`` [0.1] share of tiles given to several annotators;
     ``annotators_per_tile`` [2]; ``metric`` ["kappa"] ``"kappa"`` or ``"iou"``;
-    ``threshold`` [0.6] tiles agreeing less become ``contested``; ``boundary_tolerance_px`` [2].
+    ``threshold`` [0.6] tiles agreeing less become ``contested``.
 ``[export]``
     ``simplify_tolerance_px`` [0.5]; ``min_area_px`` [8]; ``val_share`` [0.2]; ``seed`` [0].
 ``[editor]``
     ``autosave_seconds`` [5]; ``opacity`` [0.45].
 ``[classes]``
-    optional table ``name = {index = i, colour = "#RRGGBB"}`` replacing DESIGN section 2.
+    optional table ``name = {index = i, colour = "#RRGGBB"}`` replacing the default schema
+    of :mod:`labeler.classes`.
+
+Retired options (:data:`RETIRED_OPTIONS`) that settings files of older projects still
+carry are read and ignored, so those projects keep opening.
 """
 
 from __future__ import annotations
@@ -62,6 +66,9 @@ __all__ = [
     "ExportSettings",
     "EditorSettings",
     "Settings",
+    "STRATEGIES",
+    "AUGMENT_MODES",
+    "RETIRED_OPTIONS",
     "load_settings",
     "default_settings_text",
 ]
@@ -139,7 +146,6 @@ class PickerSettings:
     strategy: str = "mixed"
     k: int = 20
     seed: int = 0
-    vegetation_only: bool = False
 
     def __post_init__(self) -> None:
         if self.strategy not in STRATEGIES:
@@ -156,7 +162,6 @@ class AgreementSettings:
     annotators_per_tile: int = 2
     metric: str = "kappa"
     threshold: float = 0.6
-    boundary_tolerance_px: int = 2
 
     def __post_init__(self) -> None:
         if not 0.0 <= self.overlap_share <= 1.0:
@@ -185,6 +190,12 @@ class EditorSettings:
     autosave_seconds: float = 5.0
     opacity: float = 0.45
 
+
+#: Options no version reads any more, per section; a settings file may still hold them.
+RETIRED_OPTIONS = {
+    "picker": ("vegetation_only",),
+    "agreement": ("boundary_tolerance_px",),
+}
 
 _SECTIONS = {
     "store": StoreSettings,
@@ -241,21 +252,6 @@ class Settings:
 
 def _coerce(section: str, option: str, value: object, target: type) -> object:
     where = f"{section}.{option}"
-    if target is bool:
-        if isinstance(value, bool):
-            return value
-        if isinstance(value, str) and value.lower() in (
-            "1",
-            "true",
-            "yes",
-            "on",
-            "0",
-            "false",
-            "no",
-            "off",
-        ):
-            return value.lower() in ("1", "true", "yes", "on")
-        raise ValueError(f"{where}: expected true or false, got {value!r}")
     if target is int:
         if isinstance(value, bool):
             raise ValueError(f"{where}: expected an integer, got {value!r}")
@@ -277,8 +273,8 @@ def _coerce(section: str, option: str, value: object, target: type) -> object:
 def _section_from(name: str, raw: Mapping[str, object], env: Mapping[str, str]) -> object:
     cls = _SECTIONS[name]
     kinds = {f.name: f.type for f in dataclasses.fields(cls)}
-    pytype = {"int": int, "float": float, "bool": bool, "str": str}
-    unknown = set(raw) - set(kinds)
+    pytype = {"int": int, "float": float, "str": str}
+    unknown = set(raw) - set(kinds) - set(RETIRED_OPTIONS.get(name, ()))
     if unknown:
         raise ValueError(
             f"[{name}]: unknown option(s) {', '.join(sorted(unknown))}; known: {', '.join(kinds)}"
@@ -382,7 +378,6 @@ overlap_share = 0.1
 annotators_per_tile = 2
 metric = "kappa"          # "kappa" or "iou"
 threshold = 0.6
-boundary_tolerance_px = 2
 
 [export]
 simplify_tolerance_px = 0.5

@@ -7,6 +7,7 @@ Append new zoo members at the end of the file; do not change existing ones.
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 import numpy as np
@@ -32,8 +33,10 @@ __all__ = [
 ]
 
 REPO = Path(__file__).resolve().parents[1]
-#: Open datasets shared beside the project (never copied into it; see their SOURCE.md).
-DATASETS = REPO.parent / "shared" / "datasets"
+#: The folder of open datasets, read in place and never copied into the repository: the
+#: ``LABELER_DATASETS`` environment variable, else ``shared/datasets`` beside the
+#: repository (README, "Data and licences", names each dataset and its source).
+DATASETS = Path(os.environ.get("LABELER_DATASETS") or REPO.parent / "shared" / "datasets")
 PEANUT = DATASETS / "peanut-weed"
 SOYBEAN = DATASETS / "soybean-rust"
 
@@ -41,7 +44,10 @@ SOYBEAN = DATASETS / "soybean-rust"
 def require_dataset(folder: Path) -> Path:
     """Skip the calling test with a clear reason when ``folder`` is absent."""
     if not folder.is_dir():
-        pytest.skip(f"open dataset folder {folder} is absent (see ../shared/datasets/*/SOURCE.md)")
+        pytest.skip(
+            f"open dataset folder {folder} is absent; set LABELER_DATASETS to the folder of "
+            "the open datasets (README, 'Data and licences')"
+        )
     return folder
 
 

@@ -1,4 +1,4 @@
-"""Label schema and palette (DESIGN section 2)."""
+"""Label schema and palette (labeler/classes.py)."""
 
 import numpy as np
 import pytest

@@ -2,7 +2,7 @@
 
 import pytest
 
-from labeler.settings import SETTINGS_FILE, default_settings_text, load_settings
+from labeler.settings import RETIRED_OPTIONS, SETTINGS_FILE, default_settings_text, load_settings
 
 
 def test_defaults_without_file(tmp_path):
@@ -52,7 +52,9 @@ def test_custom_classes(tmp_path):
         ('[model]\naugment = "rotate"\n', {}, "model.augment: expected one of auto, features, images"),
         ("[model]\npatience = 0\n", {}, "model.patience: expected at least 1 epoch, got 0"),
         ("[tiles]\nsize = 64\noverlap = 64\n", {}, "tiles.overlap"),
-        ("", {"LABELER_PICKER_VEGETATION_ONLY": "perhaps"}, "expected true or false"),
+        ("", {"LABELER_PICKER_K": "some"}, "picker.k: expected an integer, got 'some'"),
+        ("[picker]\nk = true\n", {}, "picker.k: expected an integer, got True"),
+        ('[editor]\nopacity = "half"\n', {}, "editor.opacity: expected a number"),
         ("[classes]\nsoil = { index = 0 }\nweed = { index = 0 }\n", {}, "used twice"),
     ],
 )
@@ -66,3 +68,20 @@ def test_errors_name_the_option(tmp_path, text, env, match):
 def test_replace_one_option(tmp_path):
     s = load_settings(tmp_path, environ={}).replace(model={"mc_samples": 3})
     assert s.model.mc_samples == 3 and s.model.seed == 0
+
+
+def test_retired_options_are_ignored_so_older_projects_open(tmp_path):
+    # a settings file written by an older version still carries these two options
+    (tmp_path / SETTINGS_FILE).write_text(
+        "[picker]\nvegetation_only = true\nk = 5\n[agreement]\nboundary_tolerance_px = 2\n"
+    )
+    s = load_settings(tmp_path, environ={})
+    assert s.picker.k == 5
+    assert not hasattr(s.picker, "vegetation_only")
+    assert not hasattr(s.agreement, "boundary_tolerance_px")
+    for section, options in RETIRED_OPTIONS.items():
+        for option in options:
+            assert option not in default_settings_text()
+            (tmp_path / SETTINGS_FILE).write_text(f"[{section}]\n{option}_x = 1\n")
+            with pytest.raises(ValueError, match=rf"unknown option\(s\) {option}_x"):
+                load_settings(tmp_path, environ={})

@@ -9,15 +9,17 @@ truth (:mod:`labeler.demo.annotator`); no real person's work is involved.
 
 from __future__ import annotations
 
-import shutil
 from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
 
 from labeler.errors import LabelerError
+from labeler.fileio import atomic_write_text, remove_marked_folder
+from labeler.imagery.read import read_index_png
 from labeler.metrics import format_iou
 from labeler.project import Project, init_project
+from labeler.settings import SETTINGS_FILE
 
 __all__ = [
     "DEMO_FIELDS",
@@ -92,12 +94,12 @@ def build_demo_project(
             raise LabelerError(
                 f"{out}: a demo project is already there; pass --fresh to rebuild it"
             )
-        shutil.rmtree(out)
+        remove_marked_folder(out, marker=DEMO_MARKER)
         lines.append(f"removed the earlier demo project in {out}")
     images = demo_images(fields)
     init_project(out).close()
-    (out / "labeler.toml").write_text(DEMO_SETTINGS, encoding="utf-8")
-    (out / DEMO_MARKER).write_text("built by 'labeler demo'; safe to delete\n", encoding="utf-8")
+    atomic_write_text(out / SETTINGS_FILE, DEMO_SETTINGS)
+    atomic_write_text(out / DEMO_MARKER, "built by 'labeler demo'; safe to delete\n")
     project = open_project(out)
     try:
         results = add_images(project, images, progress=progress or (lambda *a: None))
@@ -108,15 +110,10 @@ def build_demo_project(
     return project, lines
 
 
-def _truths(project: Project, fields: Path | None) -> dict[str, np.ndarray]:
-    from PIL import Image
-
+def _truths(names: set[str], fields: Path | None) -> dict[str, np.ndarray]:
+    """The ground-truth masks of the demo plots named ``names``, by name."""
     by_stem = {p.stem: p for p in demo_images(fields)}
-    out = {}
-    for im in project.store.images():
-        with Image.open(truth_path(by_stem[im.name])) as t:
-            out[im.name] = np.asarray(t).copy()
-    return out
+    return {name: read_index_png(truth_path(by_stem[name])) for name in sorted(names)}
 
 
 def run_demo_round(
@@ -130,51 +127,53 @@ def run_demo_round(
     """Play one round of the loop on a demo project (see the module docstring)."""
     from labeler.demo.annotator import simulate_annotation
     from labeler.workflow import (
+        project_status,
         propose,
         queue_rows,
         rank_tiles,
         retrain,
+        save_basis,
         save_tile_mask,
+        tile_places,
         write_agreement,
     )
     from labeler.workflow.exporting import export_project
 
     prog = progress or (lambda *a: None)
-    store = project.store
-    truths = _truths(project, fields)
-    names = {im.id: im.name for im in store.images()}
+    places = tile_places(project)
+    truths = _truths({p.image for p in places.values()}, fields)
     res = propose(project, progress=prog)
     say(f"1. proposed {res.proposed} tiles with {res.model_version.name}")
     ranked = rank_tiles(project, progress=prog)
     batch = [i.tile_id for i in ranked.items if i.in_batch]
     say(f"2. the picker chose {len(batch)} tiles ({ranked.strategy}): {', '.join(map(str, batch))}")
     rng = np.random.default_rng(seed)
-    overlap = {t.id for t in store.tiles(overlap=True)}
+    overlap = {tid for tid, p in places.items() if p.overlap}
     extra = sorted(overlap - set(batch))[:4]  # a few overlap tiles so both annotators meet
     saved = 0
     for tid in batch + extra:
-        tile = store.tile(tid)
-        truth = truths[names[tile.image_id]][tile.window.slices]
+        place = places[tid]
+        truth = truths[place.image][place.window.slices]
         who = [a for a, _ in DEMO_ANNOTATORS] if tid in overlap else [DEMO_ANNOTATORS[saved % 2][0]]
         for name in who:
             skill = dict(DEMO_ANNOTATORS)[name]
             mask = simulate_annotation(truth, rng=rng, skill=skill)
-            prop = store.latest_proposal(tid)
+            basis = save_basis(project, tid, name)
             save_tile_mask(
                 project,
                 tid,
                 name,
                 mask,
-                parent_version=store.lineage_head(tid, name),
+                parent_version=basis.parent_version,
                 seconds=float(rng.uniform(20, 90)),
                 actions=int(rng.integers(3, 25)),
                 source="demo",
-                proposal_id=None if prop is None else prop.id,
+                proposal_id=basis.proposal_id,
             )
         saved += 1
-    counts = store.state_counts()
+    counts = project_status(project).by_state
     say(
-        f"3. simulated annotators saved {saved} tiles ({counts['contested']} contested on overlap tiles)"
+        f"3. simulated annotators saved {saved} tiles ({counts.get('contested', 0)} contested on overlap tiles)"
     )
     rep_dir = project.root / "reports" / "agreement"
     summary, files = write_agreement(project, rep_dir, progress=prog)

@@ -18,10 +18,10 @@ labelling loop.
 
 Ground truth is exact: every shape (leaf, blade, stone, lesion) is rasterised once, and
 the same pixels receive both the colour in the image and the class in the truth mask
-(DESIGN section 2: 0 soil, 1 crop, 2 weed, 3 symptom). Only the image is blurred a little
-at the end (lens softness), so edges blend in the image but never in the truth. A
-lesion's symptom pixels are its centre and rim on the visible leaf; the halo changes the
-colour of surrounding leaf pixels, which stay crop.
+(the default schema of :mod:`labeler.classes`: 0 soil, 1 crop, 2 weed, 3 symptom). Only
+the image is blurred a little at the end (lens softness), so edges blend in the image but
+never in the truth. A lesion's symptom pixels are its centre and rim on the visible leaf;
+the halo changes the colour of surrounding leaf pixels, which stay crop.
 
 Crop and weed are given overlapping colours on purpose: a colour index alone cannot
 tell them apart; only where a plant grows (on the row or between rows) and its shape
@@ -46,7 +46,19 @@ import numpy as np
 from affine import Affine
 from scipy import ndimage
 
-from labeler.imagery.write import atomic_write_bytes, write_geotiff, write_png
+from labeler.demo.drawing import (
+    Plant,
+    broadleaf_weed,
+    crop_plant,
+    draw_stones,
+    grass_weed,
+    noise_field,
+    patch,
+    rasterise,
+    soil_texture,
+)
+from labeler.fileio import atomic_write_bytes
+from labeler.imagery.write import write_geotiff, write_png
 
 __all__ = [
     "FARM",
@@ -143,208 +155,6 @@ def truth_path_for(image_path: str | Path) -> Path:
     """``<folder>/<plot>_truth.png`` beside ``<folder>/<plot>.tif``."""
     p = Path(image_path)
     return p.with_name(f"{p.stem}_truth.png")
-
-
-# --------------------------------------------------------------------------------------
-# textures
-
-
-def _noise_field(rng: np.random.Generator, shape: tuple[int, int], scale: float) -> np.ndarray:
-    """Smooth noise of zero mean and unit standard deviation with features of ``scale`` px."""
-    h, w = shape
-    gh = max(2, int(math.ceil(h / scale)) + 2)
-    gw = max(2, int(math.ceil(w / scale)) + 2)
-    coarse = rng.standard_normal((gh, gw)).astype(np.float32)
-    big = cv2.resize(
-        coarse, (int(round(gw * scale)), int(round(gh * scale))), interpolation=cv2.INTER_CUBIC
-    )
-    out = big[:h, :w].astype(np.float64)
-    sd = out.std()
-    return (out - out.mean()) / (sd if sd > 0 else 1.0)
-
-
-def _soil(rng: np.random.Generator, shape: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:
-    """Brown loam with clods and moist patches; returns (rgb float, moisture 0..1)."""
-    h, w = shape
-    base = np.array([139.0, 96.0, 74.0]) * rng.uniform(0.9, 1.08)
-    base = base * (1.0 + rng.normal(0.0, 0.03, 3))
-    tex = (
-        0.05 * _noise_field(rng, shape, 90.0)
-        + 0.05 * _noise_field(rng, shape, 22.0)
-        + 0.06 * _noise_field(rng, shape, 6.0)
-        + 0.05 * rng.standard_normal(shape)
-    )
-    moist_field = _noise_field(rng, shape, 160.0) + 0.35 * _noise_field(rng, shape, 40.0)
-    level = rng.uniform(0.4, 1.1)
-    moisture = np.clip((moist_field - level) / 0.6, 0.0, 1.0)
-    moisture = moisture * moisture * (3 - 2 * moisture)  # smoothstep
-    rgb = base[None, None, :] * (1.0 + tex)[..., None]
-    wet = np.array([0.76, 0.73, 0.73])  # moist loam is darker, a touch redder
-    rgb = rgb * (1.0 - moisture[..., None] * (1.0 - wet[None, None, :]))
-    return rgb, moisture
-
-
-def _patch(centre: tuple[float, float], radius: float, shape: tuple[int, int]):
-    """Slices and local coordinates (rows, cols relative to ``centre``) of a square patch."""
-    h, w = shape
-    r0 = max(0, int(math.floor(centre[0] - radius)))
-    r1 = min(h, int(math.ceil(centre[0] + radius)) + 1)
-    c0 = max(0, int(math.floor(centre[1] - radius)))
-    c1 = min(w, int(math.ceil(centre[1] + radius)) + 1)
-    if r0 >= r1 or c0 >= c1:
-        return None
-    rr = np.arange(r0, r1, dtype=np.float64)[:, None] - centre[0]
-    cc = np.arange(c0, c1, dtype=np.float64)[None, :] - centre[1]
-    return (slice(r0, r1), slice(c0, c1)), rr, cc
-
-
-def _draw_stones(
-    rng: np.random.Generator, rgb: np.ndarray, light: tuple[float, float]
-) -> None:
-    """Paint stones (soil class) into ``rgb`` in place: shaded ellipses with a shadow."""
-    h, w = rgb.shape[:2]
-    n = int(rng.integers(25, 90))
-    for _ in range(n):
-        centre = (rng.uniform(0, h), rng.uniform(0, w))
-        a = rng.uniform(1.8, 9.0)
-        b = a * rng.uniform(0.55, 1.0)
-        phi = rng.uniform(0, math.pi)
-        tone = rng.uniform(135, 205)
-        colour = np.array([tone * 1.03, tone, tone * 0.93]) * (1 + rng.normal(0, 0.03, 3))
-        got = _patch(centre, a + 3.0, (h, w))
-        if got is None:
-            continue
-        sl, rr, cc = got
-        u = rr * math.cos(phi) + cc * math.sin(phi)
-        v = -rr * math.sin(phi) + cc * math.cos(phi)
-        q = (u / a) ** 2 + (v / b) ** 2
-        inside = q <= 1.0
-        su = (rr - light[0] * 1.6) * math.cos(phi) + (cc - light[1] * 1.6) * math.sin(phi)
-        sv = -(rr - light[0] * 1.6) * math.sin(phi) + (cc - light[1] * 1.6) * math.cos(phi)
-        shadow = ((su / a) ** 2 + (sv / b) ** 2 <= 1.0) & ~inside
-        region = rgb[sl]
-        region[shadow] *= 0.72
-        lit = 1.0 + 0.18 * (-(rr * light[0] + cc * light[1]) / max(a, 1.0)).clip(-1, 1)
-        shade = (lit * (1.0 - 0.12 * q))[inside]
-        region[inside] = colour[None, :] * shade[:, None]
-
-
-# --------------------------------------------------------------------------------------
-# plants
-
-
-@dataclass
-class _Plant:
-    kind: str  # "crop", "grass", "broadleaf"
-    centre: tuple[float, float]
-    radius: float  # bounding radius in px
-    leaves: list[tuple[float, ...]]  # per leaf: angle, length, width, bend, gain
-    colour: np.ndarray  # base RGB
-    z: float
-
-
-def _plant_colour(rng: np.random.Generator, kind: str) -> np.ndarray:
-    """Base RGB of a plant. Crop and weed colours overlap on purpose."""
-    g = rng.uniform(92.0, 168.0)
-    if kind == "crop":
-        rg, bg = rng.uniform(0.44, 0.76), rng.uniform(0.30, 0.56)
-    elif kind == "grass":
-        rg, bg = rng.uniform(0.48, 0.82), rng.uniform(0.26, 0.50)
-    else:
-        rg, bg = rng.uniform(0.46, 0.80), rng.uniform(0.28, 0.54)
-    return np.array([g * rg, g, g * bg])
-
-
-def _crop_plant(rng: np.random.Generator, centre: tuple[float, float], size: float) -> _Plant:
-    n = int(rng.integers(6, 11))
-    phase = rng.uniform(0, 2 * math.pi)
-    leaves = []
-    for i in range(n):
-        angle = phase + 2 * math.pi * i / n + rng.normal(0, 0.18)
-        young = i >= n - 2  # the two youngest leaves are shorter
-        length = size * rng.uniform(0.78, 1.05) * (rng.uniform(0.5, 0.7) if young else 1.0)
-        width = length * rng.uniform(0.36, 0.47)
-        bend = rng.normal(0, 0.12)
-        gain = rng.uniform(0.88, 1.1)
-        leaves.append((angle, length, width, bend, gain))
-    leaves.sort(key=lambda leaf: -leaf[1])  # older, longer leaves below younger ones
-    return _Plant("crop", centre, size * 1.1 + 2, leaves, _plant_colour(rng, "crop"), 0.0)
-
-
-def _grass_weed(rng: np.random.Generator, centre: tuple[float, float]) -> _Plant:
-    n = int(rng.integers(2, 7))
-    main = rng.uniform(0, 2 * math.pi)
-    scale = rng.uniform(0.45, 1.0)
-    leaves = []
-    for _ in range(n):
-        angle = main + rng.normal(0, 0.7)
-        length = rng.uniform(14.0, 46.0) * scale
-        half_width = rng.uniform(1.1, 1.75)
-        bend = rng.normal(0, 0.35)
-        leaves.append((angle, length, half_width, bend, rng.uniform(0.9, 1.1)))
-    radius = max(leaf[1] for leaf in leaves) + 3
-    return _Plant("grass", centre, radius, leaves, _plant_colour(rng, "grass"), 0.0)
-
-
-def _broadleaf_weed(rng: np.random.Generator, centre: tuple[float, float]) -> _Plant:
-    n = int(rng.choice([2, 2, 3, 4, 4, 5, 6]))
-    scale = rng.uniform(0.5, 1.0)
-    phase = rng.uniform(0, 2 * math.pi)
-    leaves = []
-    for i in range(n):
-        angle = phase + 2 * math.pi * i / n + rng.normal(0, 0.25)
-        blade = rng.uniform(3.0, 8.0) * scale + 1.5  # blade radius
-        length = blade * rng.uniform(2.2, 2.7)
-        width = 2 * blade * rng.uniform(0.78, 1.0)
-        leaves.append((angle, length, width, rng.normal(0, 0.1), rng.uniform(0.9, 1.1)))
-    radius = max(leaf[1] for leaf in leaves) + 3
-    return _Plant("broadleaf", centre, radius, leaves, _plant_colour(rng, "broadleaf"), 0.0)
-
-
-def _rasterise(plant: _Plant, shape: tuple[int, int]):
-    """Leaf pixels of ``plant``: (slices, leaf index (-1 none), shading factor) or None."""
-    got = _patch(plant.centre, plant.radius, shape)
-    if got is None:
-        return None
-    sl, rr, cc = got
-    owner = np.full(np.broadcast_shapes(rr.shape, cc.shape), -1, np.int16)
-    shade = np.ones(owner.shape, np.float64)
-    for k, (angle, length, width, bend, gain) in enumerate(plant.leaves):
-        ca, sa = math.cos(angle), math.sin(angle)
-        u = rr * ca + cc * sa
-        v = -rr * sa + cc * ca
-        vb = v - bend * u * u / max(length, 1.0)
-        if plant.kind == "grass":
-            t = np.clip(u / length, 0.0, 1.0)
-            half = width * (1.0 - 0.55 * t**1.5)
-            inside = (u >= 0) & (u <= length) & (np.abs(vb) <= half)
-            leaf_shade = gain * (1.0 + 0.12 * (vb / np.maximum(half, 0.5)) * 0.5 - 0.1 * (1 - t))
-        else:
-            if plant.kind == "crop":
-                stalk = 0.3 * length
-                stalk_half = 1.1
-            else:
-                stalk = length - width  # short petiole, round blade
-                stalk_half = 0.8
-            a = (length - stalk) / 2.0
-            uc = stalk + a
-            b = width / 2.0
-            du = (u - uc) / a
-            taper = 1.0 - 0.18 * du if plant.kind == "crop" else 1.0
-            blade = du**2 + (vb / (b * np.maximum(taper, 0.3))) ** 2 <= 1.0
-            petiole = (u >= 0) & (u <= stalk + 1.0) & (np.abs(vb) <= stalk_half)
-            inside = blade | petiole
-            midrib = blade & (np.abs(vb) <= 0.75) & (du < 0.8)
-            leaf_shade = gain * (
-                1.0 + 0.08 * np.clip(vb / b, -1, 1) - 0.12 * np.clip(1 - u / length, 0, 1)
-            )
-            leaf_shade = np.where(midrib, leaf_shade * 1.12, leaf_shade)
-            leaf_shade = np.where(petiole & ~blade, leaf_shade * 1.06, leaf_shade)
-        owner[inside] = k
-        shade = np.where(inside, leaf_shade, shade)
-    if (owner < 0).all():
-        return None
-    return sl, owner, shade
 
 
 # --------------------------------------------------------------------------------------
@@ -459,14 +269,14 @@ def make_plot(
     light_angle = rng_light.uniform(0, 2 * math.pi)
     light = (math.cos(light_angle), math.sin(light_angle))  # direction shadows fall
 
-    soil, moisture = _soil(rng_soil, shape)
-    _draw_stones(rng_soil, soil, light)
+    soil, moisture = soil_texture(rng_soil, shape)
+    draw_stones(rng_soil, soil, light)
 
     layout = _row_layout(rng_layout, shape)
-    plants: list[_Plant] = []
+    plants: list[Plant] = []
     for centre in layout["plants"]:
         size = rng_layout.uniform(19.0, 31.0)
-        plants.append(_crop_plant(rng_colour, centre, size))
+        plants.append(crop_plant(rng_colour, centre, size))
     crop_plants = list(plants)
 
     n_weeds = int(round(rng_weeds.uniform(0.8, 1.25) * 18.0 * h * w * GSD_M**2 * weed_density))
@@ -490,9 +300,9 @@ def make_plot(
         if not (-40 < centre[0] < h + 40 and -40 < centre[1] < w + 40):
             continue
         if rng_weeds.random() < 0.45:
-            plants.append(_grass_weed(rng_weeds, centre))
+            plants.append(grass_weed(rng_weeds, centre))
         else:
-            plants.append(_broadleaf_weed(rng_weeds, centre))
+            plants.append(broadleaf_weed(rng_weeds, centre))
 
     # painter's order: mostly weeds under the beet canopy, some on top
     for p in plants:
@@ -502,10 +312,10 @@ def make_plot(
     image = soil.copy()
     truth = np.zeros(shape, np.uint8)
     owner = np.full(shape, -1, np.int32)
-    leaf_tex = 1.0 + 0.045 * _noise_field(rng_colour, shape, 3.0)
+    leaf_tex = 1.0 + 0.045 * noise_field(rng_colour, shape, 3.0)
     for i in order:
         p = plants[i]
-        got = _rasterise(p, shape)
+        got = rasterise(p, shape)
         if got is None:
             continue
         sl, leaf, shade = got
@@ -530,7 +340,7 @@ def make_plot(
     for i, p in enumerate(plants):
         if p.kind != "crop" or rng_spots.random() >= symptom_share:
             continue
-        got = _patch(p.centre, p.radius + 9, shape)
+        got = patch(p.centre, p.radius + 9, shape)
         if got is None:
             continue
         sl, rr, cc = got
@@ -570,7 +380,7 @@ def make_plot(
         rows, cols = np.indices(shape, dtype=np.float64)
         ang = rng_light.uniform(0, 2 * math.pi)
         edge = (rows - h / 2) * math.cos(ang) + (cols - w / 2) * math.sin(ang)
-        edge = edge + 25.0 * _noise_field(rng_light, shape, 120.0)
+        edge = edge + 25.0 * noise_field(rng_light, shape, 120.0)
         cut = rng_light.uniform(0.25, 0.45) * min(h, w)
         image *= (1.0 - 0.42 / (1.0 + np.exp(-(edge - cut) / 18.0)))[..., None]
 

@@ -46,7 +46,6 @@ advice come first.
 from __future__ import annotations
 
 import json
-import math
 import os
 import warnings
 from collections.abc import Callable, Iterable, Mapping, Sequence
@@ -57,28 +56,28 @@ import numpy as np
 import shapely
 from affine import Affine
 from rasterio.crs import CRS
-from rasterio.errors import CRSError
-from rasterio.warp import transform as warp_transform
 
 from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
 from labeler.errors import InputError
+from labeler.export.crs import (
+    WGS84,
+    affine_mapper,
+    as_crs,
+    coordinate_decimals,
+    ground_sampling_distance,
+    local_equal_area,
+    reprojector,
+)
+from labeler.export.geometry import encode_geometries
+from labeler.fileio import atomic_write_bytes
 from labeler.imagery.tiling import Window, owner_map
-from labeler.imagery.write import atomic_write_bytes
 from labeler.masks.polygons import Region, mask_to_polygons
 from labeler.states import STATES
 
 __all__ = [
     "COORDINATES_MEMBER",
-    "WGS84",
-    "TILE_STATES",
     "NotRFC7946Warning",
     "TileInfo",
-    "as_crs",
-    "reprojector",
-    "ground_sampling_distance",
-    "coordinate_decimals",
-    "geometry_to_geojson",
-    "geometry_from_geojson",
     "image_feature_collection",
     "merge_feature_collections",
     "write_geojson",
@@ -87,14 +86,7 @@ __all__ = [
 
 #: Top-level member that marks a file in pixel coordinates (not RFC 7946).
 COORDINATES_MEMBER = "labeler:coordinates"
-#: WGS 84 longitude/latitude (rasterio keeps the longitude-first order).
-WGS84 = CRS.from_epsg(4326)
-#: Tile states of DESIGN section 3, in life-cycle order.
-#: Tile states, in life-cycle order (DESIGN section 3; defined in labeler.states).
-TILE_STATES = STATES
 _SOURCES = ("annotation", "proposal")
-#: Metres per degree of latitude, upper bound (at the poles; 110.6 km at the equator).
-_METRES_PER_DEGREE = 111_700.0
 
 
 class NotRFC7946Warning(UserWarning):
@@ -110,7 +102,7 @@ class TileInfo:
     tile_id : int or str
         The tile's id in the store.
     state : str
-        Tile state (DESIGN section 3), e.g. ``"accepted"``.
+        Tile state (:data:`labeler.states.STATES`), e.g. ``"accepted"``.
     annotator : str or None
         Who saved the mask used for export; None for a proposal nobody reviewed.
     model_version : int, str or None
@@ -126,277 +118,12 @@ class TileInfo:
     source: str = "annotation"
 
     def __post_init__(self) -> None:
-        if self.state not in TILE_STATES:
+        if self.state not in STATES:
             raise ValueError(
-                f"state: expected one of {', '.join(TILE_STATES)}, got {self.state!r}"
+                f"state: expected one of {', '.join(STATES)}, got {self.state!r}"
             )
         if self.source not in _SOURCES:
             raise ValueError(f"source: expected 'annotation' or 'proposal', got {self.source!r}")
-
-
-# -- georeferencing helpers -----------------------------------------------------------
-
-
-def as_crs(crs: CRS | str, *, name: str = "crs") -> CRS:
-    """A :class:`rasterio.crs.CRS` from a CRS, ``"EPSG:32631"``, WKT or PROJ string."""
-    if isinstance(crs, CRS):
-        return crs
-    try:
-        return CRS.from_user_input(crs)
-    except (CRSError, TypeError, ValueError) as err:
-        raise ValueError(
-            f"{name}: could not read {crs!r} as a coordinate reference system ({err}); "
-            "pass e.g. 'EPSG:32631'"
-        ) from None
-
-
-def _affine_coords(transform: Affine) -> Callable[[np.ndarray], np.ndarray]:
-    a, b, c, d, e, f = transform.a, transform.b, transform.c, transform.d, transform.e, transform.f
-
-    def apply(xy: np.ndarray) -> np.ndarray:
-        x, y = xy[:, 0], xy[:, 1]
-        return np.column_stack([a * x + b * y + c, d * x + e * y + f])
-
-    return apply
-
-
-def reprojector(src: CRS | str, dst: CRS | str) -> Callable[[np.ndarray], np.ndarray]:
-    """A function mapping (N, 2) x, y arrays from ``src`` to ``dst`` (rasterio/PROJ).
-
-    Longitude comes first for geographic CRSs (rasterio's traditional GIS order).
-    """
-    src, dst = as_crs(src, name="src"), as_crs(dst, name="dst")
-
-    def apply(xy: np.ndarray) -> np.ndarray:
-        if len(xy) == 0:
-            return xy
-        xs, ys = warp_transform(src, dst, xy[:, 0], xy[:, 1])
-        return np.column_stack([np.asarray(xs, np.float64), np.asarray(ys, np.float64)])
-
-    return apply
-
-
-def _local_equal_area(lon: float, lat: float) -> CRS:
-    """Lambert azimuthal equal-area projection centred on ``(lon, lat)`` (WGS 84, metres)."""
-    return CRS.from_proj4(
-        f"+proj=laea +lat_0={lat:.9f} +lon_0={lon:.9f} +x_0=0 +y_0=0 +datum=WGS84 +units=m"
-    )
-
-
-def ground_sampling_distance(
-    transform: Affine, crs: CRS | str, *, shape: tuple[int, int]
-) -> float:
-    """Ground size of a pixel at the image centre, in metres (the shorter pixel side).
-
-    The centre pixel's corners are reprojected to WGS 84 and then to a local equal-area
-    projection, so projected and geographic CRSs are treated alike.
-    """
-    src = as_crs(crs)
-    r, c = shape[0] // 2, shape[1] // 2
-    corners = np.array([[c, r], [c + 1, r], [c, r + 1]], np.float64)
-    lonlat = reprojector(src, WGS84)(_affine_coords(transform)(corners))
-    local = reprojector(WGS84, _local_equal_area(*lonlat[0]))(lonlat)
-    side_x = float(np.hypot(*(local[1] - local[0])))
-    side_y = float(np.hypot(*(local[2] - local[0])))
-    gsd = min(side_x, side_y)
-    if not gsd > 0 or not math.isfinite(gsd):
-        raise ValueError(
-            f"transform: expected pixels of positive ground size, got {gsd} m from {transform!r}"
-        )
-    return gsd
-
-
-def coordinate_decimals(
-    gsd_m: float | None, *, fraction: float = 0.1, pixel: bool = False
-) -> int:
-    """Decimals of longitude/latitude that keep rounding below ``fraction`` of a pixel.
-
-    Rounding to ``d`` decimals moves each coordinate by at most ``0.5 * 10**-d`` degrees,
-    a vertex by at most ``sqrt(2) * 0.5 * 10**-d * 111.7 km`` (a degree of latitude is
-    at most 111.7 km, a degree of longitude at most 111.3 km). The smallest ``d`` that
-    keeps this below ``fraction * gsd_m`` is returned: 6 for 1 m pixels (RFC 7946
-    section 11.2: 6 decimals are about 10 cm), 8 for 1 cm, 9 for 1 mm.
-
-    Parameters
-    ----------
-    gsd_m : float or None
-        Ground sampling distance in metres; ignored when ``pixel``.
-    fraction : float
-        Largest vertex displacement, as a share of a pixel.
-    pixel : bool
-        Coordinates are pixels (x = column, y = row) rather than degrees.
-
-    Returns
-    -------
-    decimals : int, in 0..15
-    """
-    if not 0 < fraction <= 1:
-        raise ValueError(f"fraction: expected a share of a pixel in (0, 1], got {fraction}")
-    if pixel:
-        unit_per_pixel = 1.0
-        scale = 1.0
-    else:
-        if gsd_m is None or not gsd_m > 0:
-            raise ValueError(f"gsd_m: expected a positive ground sampling distance, got {gsd_m}")
-        unit_per_pixel = float(gsd_m)
-        scale = _METRES_PER_DEGREE
-    bound = fraction * unit_per_pixel / (0.5 * math.sqrt(2.0) * scale)  # 10**-d must be below
-    d = max(0, math.ceil(-math.log10(bound)))
-    while 10.0**-d >= bound:  # floating-point edges of the logarithm
-        d += 1
-    while d > 0 and 10.0 ** -(d - 1) < bound:
-        d -= 1
-    return int(min(max(d, 0), 15))
-
-
-# -- geometry <-> GeoJSON ----------------------------------------------------------
-
-
-def _encode(
-    geoms: np.ndarray, *, decimals: int | None, orient: bool
-) -> tuple[list[dict], np.ndarray]:
-    """GeoJSON geometry objects and bboxes of many polygons/multipolygons at once.
-
-    Returns the geometry dicts and an (n, 4) array of ``[west, south, east, north]``
-    computed from the written (rounded) positions.
-    """
-    n = len(geoms)
-    if n == 0:
-        return [], np.zeros((0, 4))
-    if orient:
-        geoms = shapely.orient_polygons(geoms, exterior_cw=False)
-    types = shapely.get_type_id(geoms)
-    parts, part_geom = shapely.get_parts(geoms, return_index=True)
-    rings, ring_part = shapely.get_rings(parts, return_index=True)
-    coords, coord_ring = shapely.get_coordinates(rings, return_index=True)
-    if decimals is not None:
-        coords = np.round(coords, decimals) + 0.0  # + 0.0 turns -0.0 into 0.0
-    coord_geom = part_geom[ring_part[coord_ring]]
-    geom_start = np.searchsorted(coord_geom, np.arange(n))
-    lo = np.minimum.reduceat(coords, geom_start, axis=0)
-    hi = np.maximum.reduceat(coords, geom_start, axis=0)
-    bbox = np.column_stack([lo, hi])
-    positions = coords.tolist()
-    ring_bounds = np.searchsorted(coord_ring, np.arange(len(rings) + 1)).tolist()
-    ring_lists = [positions[a:b] for a, b in zip(ring_bounds[:-1], ring_bounds[1:], strict=True)]
-    part_bounds = np.searchsorted(ring_part, np.arange(len(parts) + 1)).tolist()
-    part_lists = [
-        ring_lists[a:b] for a, b in zip(part_bounds[:-1], part_bounds[1:], strict=True)
-    ]
-    geom_bounds = np.searchsorted(part_geom, np.arange(n + 1)).tolist()
-    out = []
-    for k in range(n):
-        a, b = geom_bounds[k], geom_bounds[k + 1]
-        if types[k] == 3:  # Polygon
-            out.append({"type": "Polygon", "coordinates": part_lists[a]})
-        else:
-            out.append({"type": "MultiPolygon", "coordinates": part_lists[a:b]})
-    return out, bbox
-
-
-def geometry_to_geojson(
-    geometry: shapely.Polygon | shapely.MultiPolygon,
-    *,
-    decimals: int | None = None,
-    orient: bool = True,
-) -> dict:
-    """GeoJSON geometry object of a polygon or multipolygon.
-
-    Parameters
-    ----------
-    geometry : shapely.Polygon or shapely.MultiPolygon
-        Non-empty; in the coordinates the file will hold.
-    decimals : int or None
-        Round positions to this many decimals (None keeps full precision).
-    orient : bool
-        Orient rings by RFC 7946 section 3.1.6 (exterior counterclockwise, holes
-        clockwise) in the given coordinates first.
-
-    Returns
-    -------
-    geometry : dict
-        ``{"type": "Polygon" | "MultiPolygon", "coordinates": [...]}``, closed rings.
-    """
-    if not isinstance(geometry, shapely.Polygon | shapely.MultiPolygon) or geometry.is_empty:
-        raise ValueError(
-            f"geometry: expected a non-empty Polygon or MultiPolygon, got {geometry.geom_type}"
-        )
-    arr = np.empty(1, dtype=object)
-    arr[0] = geometry
-    return _encode(arr, decimals=decimals, orient=orient)[0][0]
-
-
-def _ring_from_positions(positions: object, where: str) -> np.ndarray:
-    if not isinstance(positions, list):
-        raise ValueError(f"{where}: expected a list of positions, got {type(positions).__name__}")
-    if len(positions) < 4:
-        raise ValueError(
-            f"{where}: a linear ring needs at least 4 positions (RFC 7946 section 3.1.6), "
-            f"got {len(positions)}"
-        )
-    rows = []
-    for k, p in enumerate(positions):
-        if (
-            not isinstance(p, list)
-            or len(p) < 2
-            or not all(isinstance(v, int | float) and not isinstance(v, bool) for v in p)
-        ):
-            raise ValueError(f"{where}, position {k}: expected [x, y] numbers, got {p!r}")
-        rows.append((float(p[0]), float(p[1])))
-    xy = np.asarray(rows, np.float64)
-    if not np.isfinite(xy).all():
-        raise ValueError(f"{where}: positions must be finite numbers")
-    if not np.array_equal(xy[0], xy[-1]):
-        raise ValueError(
-            f"{where}: ring is not closed, first position {positions[0]!r} differs from the "
-            f"last {positions[-1]!r} (RFC 7946 section 3.1.6)"
-        )
-    return xy
-
-
-def _polygon_from_positions(rings: object, where: str) -> shapely.Polygon:
-    if not isinstance(rings, list) or not rings:
-        raise ValueError(f"{where}: expected a non-empty list of linear rings, got {rings!r}")
-    parts = [_ring_from_positions(r, f"{where}, ring {k}") for k, r in enumerate(rings)]
-    return shapely.Polygon(parts[0], parts[1:])
-
-
-def geometry_from_geojson(geometry: object, *, where: str = "geometry") -> shapely.Geometry:
-    """Shapely Polygon or MultiPolygon from a GeoJSON geometry object.
-
-    Checks the structure of RFC 7946 section 3.1: a ``type`` of Polygon or MultiPolygon,
-    closed rings of at least 4 positions, numeric positions (a third coordinate is
-    dropped). Ring orientation is not checked (section 3.1.6: parsers should not reject
-    the other order). Validity in the OGC sense is left to the caller
-    (:func:`shapely.is_valid_reason`).
-
-    Raises
-    ------
-    ValueError
-        Naming ``where`` and the problem.
-    """
-    if not isinstance(geometry, Mapping):
-        raise ValueError(f"{where}: expected a GeoJSON geometry object, got {geometry!r}")
-    kind = geometry.get("type")
-    coords = geometry.get("coordinates")
-    if kind == "Polygon":
-        return _polygon_from_positions(coords, where)
-    if kind == "MultiPolygon":
-        if not isinstance(coords, list) or not coords:
-            raise ValueError(f"{where}: MultiPolygon needs a non-empty list of polygons")
-        return shapely.MultiPolygon(
-            [_polygon_from_positions(p, f"{where}, polygon {k}") for k, p in enumerate(coords)]
-        )
-    raise ValueError(
-        f"{where}: expected geometry type Polygon or MultiPolygon, got {kind!r}; "
-        "masks are areas, so points and lines cannot be read"
-    )
-
-
-def _bbox_of(positions_xy: np.ndarray) -> list[float]:
-    lo = positions_xy.min(axis=0)
-    hi = positions_xy.max(axis=0)
-    return [float(lo[0]), float(lo[1]), float(hi[0]), float(hi[1])]
 
 
 def _collection_bbox(features: Sequence[Mapping]) -> list[float] | None:
@@ -458,7 +185,7 @@ def _tile_properties(infos: Sequence[TileInfo], default_source: str) -> dict:
     return {
         "tiles": [t.tile_id for t in infos],
         "annotators": _distinct(t.annotator for t in infos),
-        "states": _distinct((t.state for t in infos), order=TILE_STATES),
+        "states": _distinct((t.state for t in infos), order=STATES),
         "model_version": (
             None if not versions else versions[0] if len(versions) == 1 else list(versions)
         ),
@@ -588,22 +315,22 @@ def image_feature_collection(
     else:
         src = as_crs(crs)
         decimals = coordinate_decimals(ground_sampling_distance(transform, src, shape=m.shape))
-        mapped = shapely.transform(geoms, _affine_coords(transform))
+        mapped = shapely.transform(geoms, affine_mapper(transform))
         lonlat = shapely.transform(mapped, reprojector(src, WGS84))
         if src.is_projected:
             unit = float(src.linear_units_factor[1])
             area_m2 = shapely.area(mapped) * unit * unit
         else:
             centre = reprojector(src, WGS84)(
-                _affine_coords(transform)(np.array([[m.shape[1] / 2.0, m.shape[0] / 2.0]]))
+                affine_mapper(transform)(np.array([[m.shape[1] / 2.0, m.shape[0] / 2.0]]))
             )[0]
             local = shapely.transform(
-                lonlat, reprojector(WGS84, _local_equal_area(*centre))
+                lonlat, reprojector(WGS84, local_equal_area(*centre))
             )
             area_m2 = shapely.area(local)
         out_geoms = lonlat
 
-    geometries, boxes = _encode(out_geoms, decimals=decimals, orient=True)
+    geometries, boxes = encode_geometries(out_geoms, decimals=decimals, orient=True)
     owner = owner_map(windows, shape=m.shape) if windows else None
     tile_props: dict[tuple[int, ...], dict] = {}  # the same tile set recurs: build once
     names = {c.index: c.name for c in schema.classes}

@@ -19,7 +19,7 @@ Each line holds:
 ``image_sha256``
     SHA-256 of the image file.
 ``tile_states``
-    How many of the image's tiles are in each state (DESIGN section 3).
+    How many of the image's tiles are in each state (:data:`labeler.states.STATES`).
 ``filled_from_proposals``
     How many tiles had no saved annotation and were filled from a model proposal.
 
@@ -58,14 +58,13 @@ from pathlib import Path
 import numpy as np
 
 from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
-from labeler.export.geojson import TILE_STATES
-from labeler.imagery.write import atomic_write_bytes
+from labeler.fileio import atomic_write_bytes
+from labeler.states import STATES
 
 __all__ = [
     "MANIFEST_NAME",
     "SPLITS",
     "split_for",
-    "file_sha256",
     "manifest_row",
     "write_manifest",
     "read_manifest",
@@ -82,7 +81,7 @@ def _check_sha(sha: str, name: str = "image_sha256") -> str:
     if len(text) != 64 or not set(text) <= _HEX:
         raise ValueError(
             f"{name}: expected 64 hexadecimal digits (a SHA-256), got {sha!r}; "
-            "compute it with file_sha256(path)"
+            "compute it with labeler.fileio.sha256_file(path)"
         )
     return text
 
@@ -107,15 +106,6 @@ def split_for(image_sha256: str, *, seed: int = 0, val_share: float = 0.2) -> st
     digest = hashlib.sha256(f"labeler-split:{int(seed)}:{sha}".encode("ascii")).digest()
     u = int.from_bytes(digest[:8], "big") / 2.0**64
     return "val" if u < val_share else "train"
-
-
-def file_sha256(path: str | os.PathLike[str], *, chunk: int = 1 << 20) -> str:
-    """SHA-256 hex digest of a file, read in chunks."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        while block := fh.read(chunk):
-            h.update(block)
-    return h.hexdigest()
 
 
 def _relative(path: str | os.PathLike[str], root: Path) -> str:
@@ -150,7 +140,7 @@ def manifest_row(
     mask : ndarray, shape (H, W), uint8
         The exported mask (gives the size and the classes present).
     image_sha256 : str
-        SHA-256 of the image file (:func:`file_sha256`).
+        SHA-256 of the image file (:func:`labeler.fileio.sha256_file`).
     schema : ClassSchema
     tile_states : iterable of str
         State of each of the image's tiles.
@@ -163,8 +153,8 @@ def manifest_row(
     schema.check_mask(m, name="mask")
     states = list(tile_states)
     for s in states:
-        if s not in TILE_STATES:
-            raise ValueError(f"tile_states: expected states of {TILE_STATES}, got {s!r}")
+        if s not in STATES:
+            raise ValueError(f"tile_states: expected states of {STATES}, got {s!r}")
     if (
         not isinstance(filled_from_proposals, int | np.integer)
         or not 0 <= filled_from_proposals
@@ -186,7 +176,7 @@ def manifest_row(
         "unlabelled_px": int(counts[UNLABELLED]),
         "split": split_for(image_sha256, seed=seed, val_share=val_share),
         "image_sha256": _check_sha(image_sha256),
-        "tile_states": {s: counted[s] for s in TILE_STATES if counted[s]},
+        "tile_states": {s: counted[s] for s in STATES if counted[s]},
         "filled_from_proposals": int(filled_from_proposals),
     }
 

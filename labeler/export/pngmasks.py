@@ -6,7 +6,7 @@ Per image two files may be written into an output folder:
     Single-channel 8-bit class indices of the schema; 255 stays 255 (unlabelled), which
     training code should ignore (e.g. ``ignore_index=255`` in a cross-entropy loss).
 ``<stem>_preview.png``
-    RGB: the image blended with the class palette of DESIGN section 2 (Okabe & Ito 2008
+    RGB: the image blended with the class palette of :mod:`labeler.classes` (Okabe & Ito 2008
     colours) at opacity 0.45. Soil (no overlay colour) and unlabelled pixels show the
     plain image.
 
@@ -26,6 +26,7 @@ import numpy as np
 
 from labeler.classes import DEFAULT_SCHEMA, ClassSchema
 from labeler.imagery.write import write_png
+from labeler.masks.overlay import overlay_mask
 
 __all__ = ["MaskFiles", "check_stem", "preview_rgb", "write_class_mask", "write_image_masks"]
 
@@ -74,13 +75,14 @@ def preview_rgb(
     schema : ClassSchema
         Gives the overlay colours (:meth:`ClassSchema.lut_rgb`).
     opacity : float
-        Weight of the overlay colour, 0..1.
+        Weight of the overlay colour, 0..1 (to the nearest thousandth).
 
     Returns
     -------
     preview : ndarray, shape (H, W, 3), uint8
-        ``round((1 - opacity) * image + opacity * colour)`` where the class has an
-        overlay colour, the plain image elsewhere.
+        ``round_half_up((1 - opacity) * image + opacity * colour)`` where the class has
+        an overlay colour, the plain image elsewhere
+        (:func:`labeler.masks.overlay.overlay_mask`).
     """
     img = np.asarray(image)
     m = np.asarray(mask)
@@ -98,16 +100,7 @@ def preview_rgb(
             f"mask: expected shape {img.shape[:2]} like the image, got {m.shape}; pass the "
             "mask of this image"
         )
-    if not 0.0 <= opacity <= 1.0:
-        raise ValueError(f"opacity: expected a value in [0, 1], got {opacity}")
-    colours, has_overlay = schema.lut_rgb()
-    blended = np.rint(
-        (1.0 - opacity) * img.astype(np.float64) + opacity * colours[m].astype(np.float64)
-    )
-    out = img.copy()
-    sel = has_overlay[m]
-    out[sel] = np.clip(blended[sel], 0, 255).astype(np.uint8)
-    return out
+    return overlay_mask(np.ascontiguousarray(img), m, schema=schema, opacity=opacity)
 
 
 def write_class_mask(

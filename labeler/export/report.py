@@ -2,8 +2,8 @@
 
 Everything shown comes from an :class:`labeler.agreement.AgreementSummary`; this module
 only lays it out. Plots are drawn with matplotlib's Agg canvas (no display, no global
-pyplot state). Mask overlays are blended with numpy in the palette of the schema
-(DESIGN section 2). Every file is written atomically (temporary file + rename).
+pyplot state). Mask overlays are blended by :func:`labeler.masks.overlay.overlay_mask` in the
+palette of the schema. Every file is written atomically (temporary file + rename).
 
 Files written into ``out_dir``:
 
@@ -53,12 +53,13 @@ from labeler.agreement import (
     landis_koch_band,
 )
 from labeler.classes import ClassSchema
-from labeler.imagery.write import atomic_write_bytes, png_bytes
+from labeler.fileio import atomic_write_bytes
+from labeler.imagery.write import png_bytes
+from labeler.masks.overlay import overlay_mask
 
 __all__ = [
     "OverlaySource",
     "ReportFiles",
-    "overlay_mask",
     "figure_rows",
     "format_agreement_table",
     "write_agreement_report",
@@ -110,50 +111,6 @@ def _check_schema(summary: AgreementSummary, schema: ClassSchema) -> None:
             f"schema: classes {schema.indices} differ from the summary's "
             f"{summary.class_indices}; pass the schema the summary was made with"
         )
-
-
-def overlay_mask(
-    rgb: np.ndarray, mask: np.ndarray, *, schema: ClassSchema, opacity: float = 0.45
-) -> np.ndarray:
-    """Blend a class mask over an image in the schema's palette.
-
-    Parameters
-    ----------
-    rgb : ndarray, shape (H, W, 3), uint8
-    mask : ndarray, shape (H, W), integer
-        Class indices; classes without a colour (the background) and unlabelled pixels
-        (255) are left as they are.
-    schema : ClassSchema
-    opacity : float
-        Weight of the class colour, 0..1: ``out = (1 - opacity) * rgb + opacity *
-        colour``, rounded to the nearest integer (halves up).
-
-    Returns
-    -------
-    ndarray, shape (H, W, 3), uint8
-    """
-    img = np.asarray(rgb)
-    m = np.asarray(mask)
-    if img.dtype != np.uint8 or img.ndim != 3 or img.shape[2] != 3:
-        raise ValueError(f"rgb: expected a uint8 (H, W, 3) image, got {img.dtype} {img.shape}")
-    if m.shape != img.shape[:2]:
-        raise ValueError(
-            f"mask: expected shape {img.shape[:2]} like rgb, got {m.shape}; pass the mask "
-            "of this image"
-        )
-    if m.dtype.kind not in "ui":
-        raise TypeError(f"mask: expected integer class indices, got dtype {m.dtype}")
-    if not 0.0 <= float(opacity) <= 1.0:
-        raise ValueError(f"opacity: expected a weight in 0..1, got {opacity}")
-    colours, has = schema.lut_rgb()
-    idx = np.clip(m, 0, 255).astype(np.intp)
-    sel = has[idx] & (m >= 0) & (m <= 255)
-    out = img.copy()
-    blend = (1.0 - opacity) * img[sel].astype(np.float64) + opacity * colours[idx[sel]]
-    # half up, with a little slack so that 158.49999999999997 (from 0.55 * 100 + 0.45 *
-    # 230 in floating point) rounds like the exact 158.5
-    out[sel] = np.clip(np.floor(blend + 0.5 + 1e-9), 0, 255).astype(np.uint8)
-    return out
 
 
 # ---------------------------------------------------------------------------------------

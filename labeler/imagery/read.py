@@ -20,7 +20,6 @@ Rules (documented here once):
 
 from __future__ import annotations
 
-import hashlib
 import os
 import warnings
 from dataclasses import dataclass
@@ -43,10 +42,10 @@ __all__ = [
     "ImageInfo",
     "ImageReader",
     "sniff_format",
-    "sha256_file",
     "open_image",
     "inspect_image",
     "read_image",
+    "read_index_png",
     "to_rgb8",
 ]
 
@@ -83,18 +82,6 @@ def sniff_format(path: str | os.PathLike[str]) -> str:
     raise InputError(
         f"{p}: unsupported file type (first bytes {head[:4]!r}); expected PNG, JPEG, TIFF or GeoTIFF"
     )
-
-
-def sha256_file(path: str | os.PathLike[str], *, chunk: int = 1 << 20) -> str:
-    """Hex SHA-256 of a file's bytes, read in chunks."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        while True:
-            block = fh.read(chunk)
-            if not block:
-                break
-            h.update(block)
-    return h.hexdigest()
 
 
 @dataclass(frozen=True)
@@ -369,3 +356,46 @@ def read_image(path: str | os.PathLike[str]) -> np.ndarray:
     """The whole image as (H, W, 3) uint8 RGB (use :func:`open_image` for windows)."""
     with open_image(path) as reader:
         return reader.read()
+
+
+def read_index_png(path: str | os.PathLike[str]) -> np.ndarray:
+    """A single-channel 8-bit PNG of indices (a class mask as written by ``write_png``).
+
+    Unlike :func:`read_image` the values are kept as stored: no conversion to RGB, no
+    palette expansion, no EXIF orientation (a mask is never rotated by its viewer).
+
+    Parameters
+    ----------
+    path : path-like
+        A PNG file of mode ``L`` (8-bit grey).
+
+    Returns
+    -------
+    ndarray, shape (H, W), uint8
+
+    Raises
+    ------
+    InputError
+        For a missing, non-PNG, damaged or empty file, or a PNG that is not 8-bit
+        single-channel; the message names the file.
+    """
+    p = Path(path)
+    fmt = sniff_format(p)
+    if fmt != "png":
+        raise InputError(f"{p}: expected a PNG mask, got a {fmt.upper()} file")
+    try:
+        with Image.open(p) as im:
+            im.load()
+            if im.mode != "L":
+                raise InputError(
+                    f"{p}: expected an 8-bit single-channel (mode L) PNG of indices, got mode "
+                    f"{im.mode}; save the mask as 8-bit grey"
+                )
+            values = np.asarray(im).copy()
+    except InputError:
+        raise
+    except (OSError, UnidentifiedImageError, SyntaxError, ValueError) as exc:
+        raise InputError(f"{p}: damaged, truncated or unreadable PNG ({exc})") from None
+    if values.size == 0:
+        raise InputError(f"{p}: the mask has no pixels")
+    return values

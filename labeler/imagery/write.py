@@ -1,6 +1,7 @@
 """Writing rasters: GeoTIFF images and PNG masks, atomically (temp file + rename).
 
-A crash while writing leaves either the old file or the new one, never half a file.
+A crash while writing leaves either the old file or the new one, never half a file; the
+generic atomic write itself is :func:`labeler.fileio.atomic_write_bytes`.
 """
 
 from __future__ import annotations
@@ -15,45 +16,14 @@ import rasterio
 from affine import Affine
 from PIL import Image
 
+from labeler.fileio import atomic_write_bytes, file_mode
+
 __all__ = [
-    "file_mode",
-    "atomic_write_bytes",
     "write_geotiff",
     "write_png",
     "png_bytes",
     "png_decode",
 ]
-
-
-def file_mode() -> int:
-    """Permission bits of a new file under the current umask (``0o666 & ~umask``)."""
-    mask = os.umask(0)
-    os.umask(mask)
-    return 0o666 & ~mask
-
-
-def atomic_write_bytes(path: str | os.PathLike[str], data: bytes, *, fsync: bool = True) -> Path:
-    """Write ``data`` to ``path`` through a temporary file in the same folder and rename.
-
-    A crash leaves the old file or the new one, never half of one. ``fsync=False`` skips
-    flushing to disk (for derivable data whose readers verify a checksum anyway, such as
-    the feature cache).
-    """
-    target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            if fsync:
-                fh.flush()
-                os.fsync(fh.fileno())
-        os.chmod(tmp, file_mode())  # mkstemp makes 0600; give the file the usual mode
-        os.replace(tmp, target)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return target
 
 
 def png_bytes(array: np.ndarray) -> bytes:

@@ -1,4 +1,7 @@
-"""Pure numpy mask work: edits, components, vegetation index, refinement, polygons.
+"""Mask work without I/O: edits, components, vegetation index, rows, refinement, polygons.
 
-Nothing here opens files, imports torch or imports textual.
+Arrays in, arrays out, with numpy, scipy, OpenCV (no windows), scikit-image, Shapely and
+rasterio's rasterisation; nothing here opens a file, imports torch or imports textual
+(``tests/test_rooms.py`` and the import contracts check it). The colour overlay every
+picture uses is :mod:`labeler.masks.overlay`.
 """

@@ -31,7 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
-from labeler.imagery.write import atomic_write_bytes
+from labeler.fileio import atomic_write_bytes
 from labeler.model.encoder import FEATURE_CHANNELS, encode_tiles, feature_shapes
 
 __all__ = ["FeatureCache", "MAGIC"]

@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from labeler.imagery.write import atomic_write_bytes
+from labeler.fileio import atomic_write_bytes
 from labeler.model.head import HeadConfig, ProposalHead
 
 __all__ = ["CheckpointMeta", "save_checkpoint", "load_checkpoint", "FORMAT"]

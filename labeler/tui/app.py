@@ -190,6 +190,18 @@ class QueueApp(App[int]):
 def run_queue(project_dir: str | os.PathLike[str], *, annotator: str) -> int:
     """Open the project in ``project_dir`` and run the terminal queue until the user quits.
 
+    Parameters
+    ----------
+    project_dir : path-like
+        The project folder.
+    annotator : str
+        Who is working (shown in the header, recorded with every save).
+
+    Returns
+    -------
+    int
+        The exit code, 0.
+
     Raises
     ------
     LabelerError

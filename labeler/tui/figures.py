@@ -8,9 +8,9 @@ from datetime import UTC
 
 from labeler.agreement import AgreementSummary, landis_koch_band
 from labeler.classes import ClassSchema
-from labeler.store.records import ModelVersionRecord
 from labeler.tui.rows import format_number, format_who
 from labeler.workflow.annotating import QueueRow
+from labeler.workflow.views import ModelVersionRecord
 
 __all__ = [
     "AGREEMENT_COLUMNS",
@@ -35,6 +35,18 @@ def agreement_cells(summary: AgreementSummary, *, schema: ClassSchema) -> list[t
     classes (Cohen's kappa of the pooled confusion matrix, its Landis & Koch band, mean
     IoU), then one row per class (one-vs-rest kappa, IoU). Figures have 3 decimals;
     undefined ones are ``"-"``. The pair name is written on the block's first row only.
+
+    Parameters
+    ----------
+    summary : AgreementSummary
+        The project's agreement figures (:func:`labeler.workflow.agreement_summary`).
+    schema : ClassSchema
+        The project's classes; must be those of the summary.
+
+    Returns
+    -------
+    list of tuple of str
+        The table rows.
 
     Raises
     ------
@@ -65,7 +77,18 @@ def agreement_cells(summary: AgreementSummary, *, schema: ClassSchema) -> list[t
 
 
 def contested_cells(row: QueueRow) -> tuple[str, ...]:
-    """One row of the contested tiles table, in :data:`CONTESTED_COLUMNS` order."""
+    """One row of the contested tiles table, in :data:`CONTESTED_COLUMNS` order.
+
+    Parameters
+    ----------
+    row : QueueRow
+        A contested tile's queue row.
+
+    Returns
+    -------
+    tuple of str
+        Tile id, image, position, agreement (3 decimals or ``"-"``), who saved it.
+    """
     return (
         str(row.tile_id),
         row.image,
@@ -76,7 +99,18 @@ def contested_cells(row: QueueRow) -> tuple[str, ...]:
 
 
 def model_columns(schema: ClassSchema) -> tuple[str, ...]:
-    """Column headings of the model table: one validation IoU column per class."""
+    """Column headings of the model table: one validation IoU column per class.
+
+    Parameters
+    ----------
+    schema : ClassSchema
+        The project's classes.
+
+    Returns
+    -------
+    tuple of str
+        Version, kind, when made, training tiles, ``<class> IoU`` per class, mIoU.
+    """
     return ("version", "kind", "made (UTC)", "tiles", *(f"{n} IoU" for n in schema.names), "mIoU")
 
 
@@ -85,6 +119,18 @@ def model_cells(version: ModelVersionRecord, *, schema: ClassSchema) -> tuple[st
 
     Classes missing from ``val_iou`` (or ``None`` there: absent from the validation
     tiles) show ``"-"``, as do versions without validation figures (cold start).
+
+    Parameters
+    ----------
+    version : ModelVersionRecord
+        A model version (:func:`labeler.workflow.model_versions`).
+    schema : ClassSchema
+        The project's classes.
+
+    Returns
+    -------
+    tuple of str
+        The cells; the time is shown in UTC.
     """
     iou = version.val_iou or {}
     made = "-"
@@ -104,7 +150,18 @@ def model_cells(version: ModelVersionRecord, *, schema: ClassSchema) -> tuple[st
 
 
 def miou_series(versions: Sequence[ModelVersionRecord]) -> list[float]:
-    """mIoU of every version that has one, oldest first (for the trend line)."""
+    """mIoU of every version that has one, oldest first (for the trend line).
+
+    Parameters
+    ----------
+    versions : sequence of ModelVersionRecord
+        Model versions, oldest first.
+
+    Returns
+    -------
+    list of float
+        The finite validation mIoU values, in order.
+    """
     out = []
     for v in versions:
         if v.miou is not None and not math.isnan(float(v.miou)):

@@ -20,7 +20,13 @@ _CAUTION = (
 
 
 def key_table() -> Table:
-    """The keys as a Rich table: key, where it works, what it does."""
+    """The keys as a Rich table: key, where it works, what it does.
+
+    Returns
+    -------
+    rich.table.Table
+        One row per key of the queue, the agreement and model screens and the app.
+    """
     table = Table(box=None, pad_edge=False, show_header=True, header_style="bold")
     table.add_column("key", no_wrap=True)
     table.add_column("where", no_wrap=True)

@@ -76,5 +76,16 @@ SUBSCREEN_KEYS: tuple[Key, ...] = (
 
 
 def bindings(keys: tuple[Key, ...]) -> list[Binding]:
-    """Textual bindings of ``keys`` (footer label = ``Key.label``)."""
+    """Textual bindings of ``keys`` (footer label = ``Key.label``).
+
+    Parameters
+    ----------
+    keys : tuple of Key
+        A screen's keys.
+
+    Returns
+    -------
+    list of textual.binding.Binding
+        One binding per key, shown in the footer when ``Key.shown``.
+    """
     return [Binding(k.key, k.action, k.label, show=k.shown) for k in keys]

@@ -28,6 +28,17 @@ def display_available(
 
     Windows and macOS always have a desktop; elsewhere the ``DISPLAY`` environment
     variable must name an X display (an empty value counts as none).
+
+    Parameters
+    ----------
+    environ : mapping, optional
+        Environment to look in (default ``os.environ``).
+    platform : str, optional
+        ``sys.platform`` value to judge (default this machine's).
+
+    Returns
+    -------
+    bool
     """
     env = os.environ if environ is None else environ
     plat = sys.platform if platform is None else platform
@@ -48,6 +59,30 @@ def editor_command(
 
     ``python`` defaults to the interpreter running the queue, so the editor uses the
     same installation.
+
+    Parameters
+    ----------
+    project_dir : path-like
+        The project folder.
+    tile_id : int
+        The tile to open.
+    annotator : str
+        Who edits; not empty.
+    settle : bool
+        Open it for a reviewer to settle a contested tile.
+    python : str, optional
+        The Python interpreter to run.
+
+    Returns
+    -------
+    list of str
+        ``[python, "-m", "labeler.cli", "edit", project_dir, tile_id, "--annotator",
+        annotator]``, plus ``"--settle"``.
+
+    Raises
+    ------
+    ValueError
+        If ``annotator`` is empty.
     """
     if not annotator:
         raise ValueError("annotator: expected a name, got an empty string")
@@ -67,7 +102,20 @@ def editor_command(
 
 
 def no_display_message(tile_id: int, *, settle: bool = False) -> str:
-    """What the queue says instead of opening the editor without a display."""
+    """What the queue says instead of opening the editor without a display.
+
+    Parameters
+    ----------
+    tile_id : int
+        The tile the annotator wanted to open.
+    settle : bool
+        Whether a reviewer wanted to settle it (which needs the editor).
+
+    Returns
+    -------
+    str
+        The message, with what to do instead.
+    """
     first = (
         f"No display here (DISPLAY is not set), so the editor window for tile {tile_id} "
         "cannot open."
@@ -84,7 +132,18 @@ def no_display_message(tile_id: int, *, settle: bool = False) -> str:
 
 
 def run_editor(command: Sequence[str]) -> subprocess.CompletedProcess[str]:
-    """Run the editor and wait for it (its output is captured for error messages)."""
+    """Run the editor and wait for it (its output is captured for error messages).
+
+    Parameters
+    ----------
+    command : sequence of str
+        The command line (:func:`editor_command`).
+
+    Returns
+    -------
+    subprocess.CompletedProcess
+        With the exit code and the captured stdout and stderr text.
+    """
     return subprocess.run(
         list(command),
         stdin=subprocess.DEVNULL,
@@ -95,7 +154,22 @@ def run_editor(command: Sequence[str]) -> subprocess.CompletedProcess[str]:
 
 
 def failure_message(tile_id: int, returncode: int, stderr: str | None) -> str:
-    """One line explaining a failed editor run: the editor's own last error line."""
+    """One line explaining a failed editor run: the editor's own last error line.
+
+    Parameters
+    ----------
+    tile_id : int
+        The tile the editor was opened on.
+    returncode : int
+        The editor's exit code.
+    stderr : str or None
+        What it wrote to stderr.
+
+    Returns
+    -------
+    str
+        ``"editor on tile <id> failed: <reason>"``.
+    """
     lines = [line.strip() for line in (stderr or "").splitlines() if line.strip()]
     detail = lines[-1] if lines else f"it stopped with exit code {returncode}"
     prefix = "labeler: error: "

@@ -8,6 +8,7 @@ from textual.screen import Screen
 from textual.widgets import DataTable, Footer, Header, Label, Sparkline, Static
 from textual.worker import get_current_worker
 
+import labeler.workflow as workflow
 from labeler.tui.figures import miou_series, model_cells, model_columns
 from labeler.tui.keys import HEADER_ICON, SUBSCREEN_KEYS, bindings
 
@@ -42,7 +43,7 @@ class ModelScreen(Screen):
     def _load(self) -> None:
         worker = get_current_worker()
         try:
-            versions = self.app.project.store.model_versions()
+            versions = workflow.model_versions(self.app.project)
         except Exception as exc:  # noqa: BLE001 - shown to the user
             self.app.call_from_thread(self.app.report_error, exc, doing="reading model versions")
             return

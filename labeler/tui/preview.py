@@ -20,7 +20,7 @@ from rich.style import Style
 from rich.text import Text
 
 from labeler.classes import ClassSchema
-from labeler.export.report import overlay_mask
+from labeler.masks.overlay import overlay_mask
 
 __all__ = [
     "HALF_BLOCK",
@@ -146,11 +146,11 @@ def overlay(
         Class indices of the proposal (or a saved mask); classes without a colour (soil)
         and unlabelled pixels (255) get no overlay. ``None`` gives the bare tile.
     schema : ClassSchema
-        Palette (DESIGN section 2).
+        Gives the overlay colours.
     opacity : float
         Weight of the class colour, 0..1 (the project's ``editor.opacity``, 0.45):
-        ``round_half_up((1 - opacity) * pixel + opacity * colour)``, as in the agreement
-        report (:func:`labeler.export.report.overlay_mask`).
+        ``round_half_up((1 - opacity) * pixel + opacity * colour)``, the one overlay of
+        every picture (:func:`labeler.masks.overlay.overlay_mask`).
 
     Returns
     -------
@@ -167,6 +167,18 @@ def fit_picture(picture: np.ndarray, *, cols: int, rows: int) -> np.ndarray:
 
     Blocks are averaged (:func:`box_downsample`) to the size :func:`fit_pixels` gives,
     so a thin weed still tints its block.
+
+    Parameters
+    ----------
+    picture : ndarray, shape (H, W, 3), uint8
+        The picture to shrink.
+    cols, rows : int
+        Cells available (each cell shows one pixel across and two pixels down).
+
+    Returns
+    -------
+    ndarray, shape (h, w, 3), uint8
+        The shrunk picture, ``(h, w)`` from :func:`fit_pixels`.
     """
     img = _check_rgb(picture, "picture")
     return box_downsample(img, fit_pixels(img.shape[:2], cols=cols, rows=rows))
@@ -182,6 +194,19 @@ def tile_picture(
     rows: int,
 ) -> np.ndarray:
     """What the preview shows: :func:`overlay` then :func:`fit_picture`.
+
+    Parameters
+    ----------
+    rgb : ndarray, shape (H, W, 3), uint8
+        Tile pixels.
+    mask : ndarray, shape (H, W), integer, or None
+        The mask to blend over them (None: the bare tile).
+    schema : ClassSchema
+        Gives the overlay colours.
+    opacity : float
+        Weight of the class colour, 0..1.
+    cols, rows : int
+        Cells available.
 
     Returns
     -------

@@ -17,12 +17,18 @@ from textual.widgets import DataTable, Footer, Header, Input, Label, Select, Sta
 from textual.worker import get_current_worker
 
 import labeler.workflow as workflow
-from labeler.imagery.read import open_image
 from labeler.metrics import format_iou
 from labeler.states import STATES
 from labeler.tui.keys import HEADER_ICON, QUEUE_KEYS, bindings
 from labeler.tui.preview import overlay
-from labeler.tui.rows import NOBODY, QUEUE_COLUMNS, RowFilter, filter_rows, queue_cells
+from labeler.tui.rows import (
+    NOBODY,
+    QUEUE_COLUMNS,
+    RowFilter,
+    filter_rows,
+    preview_caption,
+    queue_cells,
+)
 from labeler.tui.widgets import TilePreview, WorkBar, palette_legend
 from labeler.workflow.annotating import QueueRow
 
@@ -111,7 +117,7 @@ class QueueScreen(Screen):
         worker = get_current_worker()
         try:
             rows = workflow.queue_rows(self.project)
-            people = tuple(self.project.store.annotators())
+            people = tuple(workflow.annotators(self.project))
         except Exception as exc:  # noqa: BLE001 - shown to the user, the queue keeps running
             self.app.call_from_thread(self.app.report_error, exc, doing="reading the queue")
             return
@@ -233,28 +239,11 @@ class QueueScreen(Screen):
     @work(thread=True, exclusive=True, group="preview", exit_on_error=False)
     def _load_preview(self, tile_id: int) -> None:
         worker = get_current_worker()
-        store = self.project.store
         try:
-            tile = store.tile(tile_id)
-            image = store.image(tile.image_id)
-            with open_image(self.project.image_path(image)) as reader:
-                rgb = reader.read(tile.window)
-            # on an overlap tile an annotator never sees another annotator's mask
-            saved = store.visible_annotation(tile_id, self.app.annotator)
-            proposal = store.latest_proposal(tile_id)
-            if saved is not None:
-                mask = saved.mask()
-                what = f"saved by {saved.annotator} (v{saved.version}, {saved.state})"
-            elif proposal is not None:
-                mask = proposal.mask()
-                names = {m.id: m.name for m in store.model_versions()}
-                what = f"proposal of {names.get(proposal.model_version_id, 'a model')}"
-            else:
-                mask = None
-                what = "no proposal yet"
-            caption = f"tile {tile_id} · {image.name} r{tile.row} c{tile.col} · {what}"
+            view = workflow.tile_view(self.project, tile_id, annotator=self.app.annotator)
+            caption = preview_caption(view)
             picture = overlay(
-                rgb, mask, schema=self.schema, opacity=self.project.settings.editor.opacity
+                view.rgb, view.mask, schema=self.schema, opacity=self.project.settings.editor.opacity
             )
         except Exception as exc:  # noqa: BLE001 - shown in the preview, not fatal
             if not worker.is_cancelled:

@@ -1,7 +1,7 @@
-"""What the queue table shows: cell texts of a queue row and the row filters.
+"""What the queue screen shows: cell texts of a queue row, the row filters, the caption.
 
-Plain Python over :class:`labeler.workflow.QueueRow` (no textual here), so the screens
-stay thin and these rules are tested on their own.
+Plain Python over :class:`labeler.workflow.QueueRow` and :class:`labeler.workflow.TileView`
+(no textual here), so the screens stay thin and these rules are tested on their own.
 """
 
 from __future__ import annotations
@@ -13,6 +13,7 @@ from dataclasses import dataclass
 from labeler.classes import ClassSchema
 from labeler.states import STATES
 from labeler.workflow.annotating import QueueRow
+from labeler.workflow.views import TileView
 
 __all__ = [
     "QUEUE_COLUMNS",
@@ -25,6 +26,7 @@ __all__ = [
     "format_number",
     "format_who",
     "queue_cells",
+    "preview_caption",
 ]
 
 #: Column headings of the queue table, in order.
@@ -91,6 +93,19 @@ def _class_share(row: QueueRow, class_name: str, schema: ClassSchema) -> float |
 def keep_row(row: QueueRow, flt: RowFilter, *, schema: ClassSchema) -> bool:
     """True if ``row`` passes every set field of ``flt``.
 
+    Parameters
+    ----------
+    row : QueueRow
+        One tile of the queue.
+    flt : RowFilter
+        The filters set on the screen (``None`` fields are not applied).
+    schema : ClassSchema
+        The project's classes (for the class filter).
+
+    Returns
+    -------
+    bool
+
     Raises
     ------
     KeyError
@@ -114,7 +129,27 @@ def keep_row(row: QueueRow, flt: RowFilter, *, schema: ClassSchema) -> bool:
 def filter_rows(
     rows: Iterable[QueueRow], flt: RowFilter, *, schema: ClassSchema
 ) -> list[QueueRow]:
-    """The rows that pass ``flt``, in their given (queue) order."""
+    """The rows that pass ``flt``, in their given (queue) order.
+
+    Parameters
+    ----------
+    rows : iterable of QueueRow
+        The queue.
+    flt : RowFilter
+        The filters set on the screen.
+    schema : ClassSchema
+        The project's classes.
+
+    Returns
+    -------
+    list of QueueRow
+        The rows :func:`keep_row` keeps.
+
+    Raises
+    ------
+    KeyError
+        If ``flt.class_name`` is not a class of ``schema``.
+    """
     return [r for r in rows if keep_row(r, flt, schema=schema)]
 
 
@@ -161,14 +196,38 @@ def format_shares(
 
 
 def format_number(value: float | None, digits: int = 3) -> str:
-    """``value`` with ``digits`` decimals; ``None`` and NaN give ``"-"``."""
+    """``value`` with ``digits`` decimals; ``None`` and NaN give ``"-"``.
+
+    Parameters
+    ----------
+    value : float or None
+        The figure.
+    digits : int
+        Decimals shown.
+
+    Returns
+    -------
+    str
+    """
     if value is None or math.isnan(float(value)):
         return "-"
     return f"{float(value):.{digits}f}"
 
 
 def format_who(row: QueueRow) -> str:
-    """Who holds the tile and who saved it: ``"ana (open) bo"``; ``""`` for no one."""
+    """Who holds the tile and who saved it: ``"ana (open) bo"``; ``""`` for no one.
+
+    Parameters
+    ----------
+    row : QueueRow
+        One tile of the queue.
+
+    Returns
+    -------
+    str
+        The holder first (``"(open)"``, ``"(open, saved)"`` when they saved it too), then
+        the others who saved it.
+    """
     parts = []
     if row.held_by:
         parts.append(f"{row.held_by} (open)")
@@ -184,6 +243,18 @@ def queue_cells(row: QueueRow, *, schema: ClassSchema) -> tuple[str, ...]:
     The rank is counted from 1 (``"-"``: not ranked yet); the agreement column is empty
     for tiles with one annotator, ``"overlap"`` for an overlap tile still waiting for its
     second mask. The tile's position in its image is in the preview caption.
+
+    Parameters
+    ----------
+    row : QueueRow
+        One tile of the queue.
+    schema : ClassSchema
+        The project's classes (for the predicted class shares).
+
+    Returns
+    -------
+    tuple of str
+        Rank, tile, image, state, who, class shares, agreement, score, reason.
     """
     agreement = format_number(row.agreement) if row.overlap else ""
     if row.overlap and row.agreement is None:
@@ -199,3 +270,25 @@ def queue_cells(row: QueueRow, *, schema: ClassSchema) -> tuple[str, ...]:
         format_number(row.score),
         row.reason or "",
     )
+
+
+def preview_caption(view: TileView) -> str:
+    """The caption of the tile preview: the tile, where it lies and which mask is shown.
+
+    Parameters
+    ----------
+    view : TileView
+        What :func:`labeler.workflow.tile_view` returned.
+
+    Returns
+    -------
+    str
+        E.g. ``"tile 7 · plot-a r0 c224 · proposal of head-2"``.
+    """
+    if view.shows == "saved":
+        what = f"saved by {view.saved_by} (v{view.saved_version}, {view.saved_state})"
+    elif view.shows == "proposal":
+        what = f"proposal of {view.model or 'a model'}"
+    else:
+        what = "no proposal yet"
+    return f"tile {view.tile_id} · {view.image} r{view.row} c{view.col} · {what}"

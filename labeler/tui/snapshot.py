@@ -18,6 +18,7 @@ from pathlib import Path
 from textual.worker import WorkerState
 
 from labeler.errors import LabelerError
+from labeler.fileio import atomic_write_bytes, atomic_write_text
 from labeler.project import open_project
 from labeler.tui.app import QueueApp
 
@@ -31,6 +32,13 @@ async def wait_idle(pilot, *, timeout: float = 60.0) -> None:
 
     Workers start other workers (a save reloads the queue, which loads the preview), so
     this waits in rounds until a round finds nothing left to do.
+
+    Parameters
+    ----------
+    pilot : textual.pilot.Pilot
+        The pilot driving the headless app.
+    timeout : float
+        Seconds to wait at most.
 
     Raises
     ------
@@ -69,13 +77,15 @@ def save_screenshot(
     Parameters
     ----------
     project_dir : path
+        The project folder; it is opened and closed here.
     svg_path : path
-        File to write (its folder must exist).
+        File to write, atomically.
     annotator : str
         Name shown in the header.
     tile : int, optional
         Tile to select in the queue before the screenshot.
     screen : {"queue", "agreement", "models"}
+        Which screen to show.
     size : (int, int)
         Terminal columns and rows.
 
@@ -100,7 +110,7 @@ def save_screenshot(
             if key is not None:
                 await pilot.press(key)
                 await wait_idle(pilot)
-            app.save_screenshot(filename=out.name, path=str(out.parent))
+            atomic_write_text(out, app.export_screenshot())
             app.exit(0)
 
         app.run(headless=True, size=size, auto_pilot=drive)
@@ -110,7 +120,19 @@ def save_screenshot(
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Command line of the snapshot tool; returns the exit code."""
+    """Command line of the snapshot tool.
+
+    Parameters
+    ----------
+    argv : sequence of str, optional
+        Arguments (default ``sys.argv[1:]``).
+
+    Returns
+    -------
+    int
+        0 on success, 1 when the project cannot be opened or cairosvg is missing for
+        ``--png``.
+    """
     parser = argparse.ArgumentParser(
         prog="python -m labeler.tui.snapshot",
         description="Save a screen of the terminal queue as SVG (optionally PNG).",
@@ -136,9 +158,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         except ImportError:
             print("snapshot: error: --png needs the cairosvg package", file=sys.stderr)
             return 1
-        tmp = args.png.with_name(args.png.name + ".part")
-        cairosvg.svg2png(url=str(svg), write_to=str(tmp), output_width=args.png_width)
-        os.replace(tmp, args.png)
+        png = cairosvg.svg2png(url=str(svg), output_width=args.png_width)
+        atomic_write_bytes(args.png, png)
     return 0
 
 

@@ -16,7 +16,18 @@ __all__ = ["TilePreview", "WorkBar", "palette_legend"]
 
 
 def palette_legend(schema: ClassSchema) -> Text:
-    """One line naming each overlay class in its own colour (``"■ crop  ■ weed ..."``)."""
+    """One line naming each overlay class in its own colour (``"■ crop  ■ weed ..."``).
+
+    Parameters
+    ----------
+    schema : ClassSchema
+        The project's classes; those without an overlay colour are left out.
+
+    Returns
+    -------
+    rich.text.Text
+        The legend, or a note when no class has a colour.
+    """
     text = Text(no_wrap=True, overflow="ellipsis")
     for c in schema:
         if c.colour is None:

@@ -2,10 +2,26 @@
 
 Each function takes an open :class:`labeler.project.Project`, calls the rooms that own
 the work (store, imagery, masks, model, picker, agreement, export) and returns plain
-results for the CLI or the terminal queue to show. Nothing here prints.
+results for the CLI or the terminal queue to show. Nothing here prints. One module per
+stage:
+
+========================  ===========================================================
+``adding``                images into the project (``labeler add``)
+``status``                tiles per state, image and annotator (``labeler status``)
+``proposing``             proposals from the cold start or the newest head
+``picking``               the queue order from the active-learning picker
+``annotating``            saves, accepting, parking, the queue, the next tile
+``editing``               the store behind the mask editor
+``agreeing``              agreement figures, report and contested tiles
+``retraining``            a new head on every saved mask
+``exporting``             GeoJSON, PNG masks, manifest; importing masks
+``views``                 read-only views for the edges (preview, places, lists)
+``features``              encoder features and their cache (proposing, retraining)
+``progress``              the ``progress(done, total, label)`` callback type
+========================  ===========================================================
 """
 
-from labeler.workflow.adding import AddResult, Progress, ProjectStatus, add_images, project_status
+from labeler.workflow.adding import AddResult, add_images
 from labeler.workflow.agreeing import (
     agreement_summary,
     compared_images,
@@ -24,17 +40,25 @@ from labeler.workflow.annotating import (
 )
 from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
 from labeler.workflow.exporting import ExportResult, ImportResult, export_project, import_masks
-from labeler.workflow.picking import RankResult, rank_tiles
-from labeler.workflow.proposing import (
-    ProposeResult,
-    RetrainResult,
-    labelled_tiles,
-    propose,
-    retrain,
+from labeler.workflow.picking import RankedTile, RankResult, rank_tiles
+from labeler.workflow.progress import Progress, no_progress
+from labeler.workflow.proposing import ProposeResult, propose
+from labeler.workflow.retraining import LabelledTile, RetrainResult, labelled_tiles, retrain
+from labeler.workflow.status import ProjectStatus, project_status
+from labeler.workflow.views import (
+    SaveBasis,
+    TilePlace,
+    TileView,
+    annotators,
+    model_versions,
+    save_basis,
+    tile_places,
+    tile_view,
 )
 
 __all__ = [
     "Progress",
+    "no_progress",
     "AddResult",
     "add_images",
     "ProjectStatus",
@@ -47,6 +71,7 @@ __all__ = [
     "queue_rows",
     "save_state",
     "save_tile_mask",
+    "RankedTile",
     "RankResult",
     "rank_tiles",
     "agreement_summary",
@@ -62,8 +87,17 @@ __all__ = [
     "export_project",
     "import_masks",
     "ProposeResult",
+    "propose",
+    "LabelledTile",
     "RetrainResult",
     "labelled_tiles",
-    "propose",
     "retrain",
+    "annotators",
+    "model_versions",
+    "TileView",
+    "tile_view",
+    "TilePlace",
+    "tile_places",
+    "SaveBasis",
+    "save_basis",
 ]

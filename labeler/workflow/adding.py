@@ -1,35 +1,28 @@
-"""Adding images to a project, and its status."""
+"""Adding images to a project (``labeler add``).
+
+Each image is all or nothing: its format is checked from its bytes, every tile window is
+read once (a damaged file is found now, not in the middle of labelling), the file is copied
+into ``images/`` by :func:`labeler.imagery.intake.copy_image` and the image and its tiles
+are written to the store in one transaction; a failure removes the copy again.
+"""
 
 from __future__ import annotations
 
 import os
 import re
-import shutil
-import tempfile
-from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
 
-from labeler.errors import InputError
-from labeler.imagery.read import open_image, sha256_file
+from labeler.fileio import sha256_file
+from labeler.imagery.intake import ImageCopy, copy_image
+from labeler.imagery.read import open_image
 from labeler.imagery.tiling import tile_grid
 from labeler.project import Project
 from labeler.store import NewImage
+from labeler.workflow.progress import Progress, no_progress
 
-__all__ = [
-    "Progress",
-    "AddResult",
-    "add_images",
-    "ProjectStatus",
-    "project_status",
-]
-
-#: ``progress(done, total, label)``; the CLI draws a bar, the queue a progress widget.
-Progress = Callable[[int, int, str], None]
-
-
-def _no_progress(done: int, total: int, label: str) -> None:
-    return None
+__all__ = ["AddResult", "add_images"]
 
 
 def _safe_name(stem: str) -> str:
@@ -39,10 +32,24 @@ def _safe_name(stem: str) -> str:
 
 @dataclass(frozen=True)
 class AddResult:
-    """What happened to one image given to :func:`add_images`."""
+    """What happened to one image given to :func:`add_images`.
+
+    Attributes
+    ----------
+    path : Path
+        The file as given.
+    status : {"added", "skipped"}
+        ``skipped`` when the same content is already in the project.
+    name : str
+        The image's name in the project (of the earlier copy when skipped).
+    tiles : int
+        Tiles cut from it (0 when skipped).
+    message : str
+        Why it was skipped.
+    """
 
     path: Path
-    status: str  # "added" or "skipped"
+    status: str
     name: str
     tiles: int = 0
     message: str = ""
@@ -53,15 +60,27 @@ def add_images(
     paths: Sequence[str | os.PathLike[str]],
     *,
     copy: bool = True,
-    progress: Progress = _no_progress,
+    progress: Progress = no_progress,
 ) -> list[AddResult]:
     """Add images to the project, each all-or-nothing.
 
-    For each image: the format is checked from its bytes, every tile window is read
-    once (a damaged file is found now, not in the middle of labelling), the file is
-    copied into ``images/`` (unless ``copy=False``) and the image and its tiles are
-    written to the store in one transaction. An image already present (same sha256)
-    is skipped with a message.
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    paths : sequence of path-like
+        PNG, JPEG, TIFF or GeoTIFF files.
+    copy : bool
+        Copy each file (with its world file and ``.prj``) into the project's ``images/``
+        folder (default); ``False`` refers to the file where it is.
+    progress : Progress
+        Called as ``progress(done, total, label)``.
+
+    Returns
+    -------
+    list of AddResult
+        One per path, in order. An image already present (same SHA-256) is skipped with
+        a message.
 
     Raises
     ------
@@ -75,7 +94,6 @@ def add_images(
     known = {im.name for im in store.images()}
     for n, raw in enumerate(paths):
         src = Path(raw)
-        sha = None
         with open_image(src) as reader:
             info = reader.info
             sha = sha256_file(src)
@@ -101,27 +119,11 @@ def add_images(
         name, i = base, 2
         while name in known:
             name, i = f"{base}-{i}", i + 1
-        target: Path | None = None
+        copied: ImageCopy | None = None
         stored_path = str(src.resolve())
         if copy:
-            project.images_dir.mkdir(parents=True, exist_ok=True)
-            target = project.images_dir / f"{name}{src.suffix.lower()}"
-            fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".part", dir=project.images_dir)
-            os.close(fd)
-            try:
-                shutil.copyfile(src, tmp)
-                if sha256_file(tmp) != sha:
-                    raise InputError(
-                        f"{src}: the file changed while it was being copied; add it again"
-                    )
-                os.replace(tmp, target)
-                # world file / .prj beside the copy keep the georeferencing of PNG/JPEG
-                for side in _sidecars(src):
-                    shutil.copyfile(side, project.images_dir / f"{name}{side.suffix.lower()}")
-            except BaseException:
-                Path(tmp).unlink(missing_ok=True)
-                raise
-            stored_path = str(target.relative_to(project.root))
+            copied = copy_image(src, project.images_dir, name, sha256=sha)
+            stored_path = str(copied.image.relative_to(project.root))
         g = info.georef
         try:
             store.add_image(
@@ -142,66 +144,10 @@ def add_images(
                 overlap_seed=settings.picker.seed,
             )
         except BaseException:
-            if target is not None:
-                target.unlink(missing_ok=True)
-                for side in _sidecars(src):
-                    (project.images_dir / f"{name}{side.suffix.lower()}").unlink(missing_ok=True)
+            if copied is not None:
+                copied.remove()
             raise
         known.add(name)
         results.append(AddResult(src, "added", name, tiles=len(windows)))
         progress(n + 1, len(paths), src.name)
     return results
-
-
-def _sidecars(src: Path) -> list[Path]:
-    from labeler.imagery.georef import find_world_file
-
-    out = []
-    wf = find_world_file(src)
-    if wf is not None:
-        out.append(wf)
-    prj = src.with_suffix(".prj")
-    if prj.is_file():
-        out.append(prj)
-    return out
-
-
-@dataclass(frozen=True)
-class ProjectStatus:
-    """Counts for ``labeler status``."""
-
-    folder: Path
-    images: int
-    tiles: int
-    by_state: dict[str, int]
-    by_image: list[tuple[str, int, dict[str, int], bool]] = field(
-        default_factory=list
-    )  # name, tiles, states, georef
-    by_annotator: dict[str, dict[str, float]] = field(default_factory=dict)
-    model_versions: int = 0
-    latest_model: str | None = None
-    latest_miou: float | None = None
-
-
-def project_status(project: Project) -> ProjectStatus:
-    """Tiles per state, per image and per annotator."""
-    store = project.store
-    images = store.images()
-    per_image = []
-    for im in images:
-        counts = store.state_counts(image_id=im.id)
-        per_image.append((im.name, sum(counts.values()), counts, im.transform is not None))
-    total = store.state_counts()
-    models = store.model_versions()
-    latest = models[-1] if models else None
-    return ProjectStatus(
-        folder=project.root,
-        images=len(images),
-        tiles=sum(total.values()),
-        by_state=total,
-        by_image=per_image,
-        by_annotator=store.annotator_counts(),
-        model_versions=len(models),
-        latest_model=None if latest is None else latest.name,
-        latest_miou=None if latest is None else latest.miou,
-    )

@@ -15,8 +15,8 @@ from labeler.imagery.read import open_image
 from labeler.imagery.tiling import stitch
 from labeler.project import Project
 from labeler.states import CONTESTED, SETTLED
-from labeler.workflow.adding import Progress, _no_progress
 from labeler.workflow.annotating import QueueRow, queue_rows
+from labeler.workflow.progress import Progress, no_progress
 
 __all__ = ["compared_images", "agreement_summary", "write_agreement", "contested_tiles"]
 
@@ -29,6 +29,16 @@ def compared_images(project: Project) -> list[ComparedImage]:
     do not, they are decisions, not opinions). Pixels of tiles an annotator did not
     save are unlabelled (255) in that annotator's mask, so pair figures pool exactly
     the image pixels both labelled, each once.
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+
+    Returns
+    -------
+    list of ComparedImage
+        In image order; images with fewer than two annotators are left out.
     """
     store = project.store
     tiles = {t.id: t for t in store.tiles()}
@@ -58,11 +68,12 @@ def compared_images(project: Project) -> list[ComparedImage]:
     return out
 
 
-def agreement_summary(
-    project: Project, *, since: date | datetime | None = None, progress: Progress = _no_progress
+def _summarise(
+    project: Project,
+    items: list[ComparedImage],
+    since: date | datetime | None,
+    progress: Progress,
 ) -> AgreementSummary:
-    """Agreement figures of the project: per annotator pair, class, image, tile and day."""
-    items = compared_images(project)
     return summarise_agreement(
         items,
         schema=project.settings.classes,
@@ -72,23 +83,61 @@ def agreement_summary(
     )
 
 
+def agreement_summary(
+    project: Project, *, since: date | datetime | None = None, progress: Progress = no_progress
+) -> AgreementSummary:
+    """Agreement figures of the project: per annotator pair, class, image, tile and day.
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    since : date or datetime, optional
+        Only pairs whose later save is on or after this day or moment count.
+    progress : Progress
+        Called as ``progress(done, total, label)`` over the images compared.
+
+    Returns
+    -------
+    AgreementSummary
+        Cohen's kappa with its Landis & Koch band and IoU per pair and class, pooled and
+        per image, tile and day; the metric of the ``agreement.metric`` setting.
+    """
+    return _summarise(project, compared_images(project), since, progress)
+
+
 def write_agreement(
     project: Project,
     out_dir: str | os.PathLike[str],
     *,
     since: date | datetime | None = None,
     least: int = 10,
-    progress: Progress = _no_progress,
+    progress: Progress = no_progress,
 ) -> tuple[AgreementSummary, ReportFiles]:
-    """Compute the summary and write the HTML report, plots and CSV into ``out_dir``."""
+    """Compute the summary and write the HTML report, plots and CSV into ``out_dir``.
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    out_dir : path-like
+        Report folder (created if missing); its files are replaced atomically.
+    since : date or datetime, optional
+        Only pairs whose later save is on or after this day or moment count.
+    least : int
+        How many least-agreed images the report shows side by side.
+    progress : Progress
+        Called as ``progress(done, total, label)``.
+
+    Returns
+    -------
+    summary : AgreementSummary
+        The figures (as :func:`agreement_summary`).
+    files : ReportFiles
+        Paths of the HTML report, the CSV and the plots.
+    """
     items = compared_images(project)
-    summary = summarise_agreement(
-        items,
-        schema=project.settings.classes,
-        metric=project.settings.agreement.metric,
-        since=since,
-        progress=lambda done, total: progress(done, total, "comparing masks"),
-    )
+    summary = _summarise(project, items, since, progress)
     wanted = {e.image for e in summary.least_agreed(least)}
     by_name = {im.name: im for im in project.store.images()}
     overlays = {}
@@ -103,7 +152,18 @@ def write_agreement(
 
 
 def contested_tiles(project: Project) -> list[QueueRow]:
-    """Queue rows of the tiles a reviewer must settle, least agreed first."""
+    """Queue rows of the tiles a reviewer must settle, least agreed first.
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+
+    Returns
+    -------
+    list of QueueRow
+        The ``contested`` tiles, lowest agreement first (unknown agreement last).
+    """
     rows = [r for r in queue_rows(project) if r.state == CONTESTED]
     rows.sort(key=lambda r: (np.inf if r.agreement is None else r.agreement, r.tile_id))
     return rows

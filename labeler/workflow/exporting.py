@@ -21,7 +21,7 @@ from labeler.export.geojson import (
     write_geojson,
 )
 from labeler.export.importing import match_mask_to_image, read_mask_file
-from labeler.export.manifest import manifest_row, write_manifest
+from labeler.export.manifest import MANIFEST_NAME, manifest_row, write_manifest
 from labeler.export.pngmasks import write_image_masks
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import stitch
@@ -29,7 +29,7 @@ from labeler.project import Project
 from labeler.states import ACCEPTED, AMENDED, SETTLED, STATES
 from labeler.store import NewAnnotation
 from labeler.store.records import ImageRecord
-from labeler.workflow.adding import Progress, _no_progress
+from labeler.workflow.progress import Progress, no_progress
 
 __all__ = [
     "EXPORT_FORMATS",
@@ -91,6 +91,22 @@ def image_export_mask(
     (a settled tile its reviewer's mask). With ``proposals`` every other tile
     contributes its newest model proposal, marked as such, so a field manager gets a
     whole-field map. Tiles contributing nothing are unlabelled (255).
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    image : ImageRecord
+        The image.
+    states : iterable of str
+        Tile states whose saved masks are exported.
+    proposals : bool
+        Fill the other tiles with their newest proposal.
+
+    Returns
+    -------
+    ImageExport
+        The stitched (H, W) uint8 mask, the windows and tile details of every part.
     """
     store = project.store
     wanted = set(states)
@@ -153,7 +169,7 @@ def export_project(
     proposals: bool = False,
     pixel_coordinates: bool = False,
     previews: bool = True,
-    progress: Progress = _no_progress,
+    progress: Progress = no_progress,
 ) -> ExportResult:
     """Export the project's masks.
 
@@ -161,6 +177,32 @@ def export_project(
     for the whole project (RFC 7946: WGS 84 longitude/latitude), and/or
     ``masks/<image>.png`` (single-channel class indices, 255 unlabelled) with
     ``masks/<image>_preview.png`` and ``manifest.jsonl`` (one JSON object per image).
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    out : path-like
+        Output folder (created if missing).
+    formats : {"geojson", "masks", "all"}
+        What to write.
+    states : sequence of str
+        Tile states whose saved masks are exported.
+    proposals : bool
+        Fill tiles without an exported mask with their newest proposal (marked
+        ``"source": "proposal"`` in the GeoJSON and the manifest).
+    pixel_coordinates : bool
+        Allow images without georeferencing in GeoJSON, in pixel positions (such a
+        file is NOT RFC 7946 GeoJSON).
+    previews : bool
+        Write the colour previews beside the PNG masks.
+    progress : Progress
+        Called as ``progress(done, total, label)`` per image.
+
+    Returns
+    -------
+    ExportResult
+        The files written and the counts of features, images and tiles.
 
     Raises
     ------
@@ -260,7 +302,7 @@ def export_project(
         path = write_geojson(folder / f"{project.root.resolve().name}.geojson", merged)
         result.geojson.append(Path(path))
     if do_masks and rows:
-        path = write_manifest(folder / "manifest.jsonl", rows)
+        path = write_manifest(folder / MANIFEST_NAME, rows)
         result = _replace(result, manifest=Path(path))
     progress(len(images), len(images), "done")
     store.log_event(
@@ -302,7 +344,7 @@ def import_masks(
     annotator: str,
     image: str | None = None,
     fill: str = "unlabelled",
-    progress: Progress = _no_progress,
+    progress: Progress = no_progress,
 ) -> ImportResult:
     """Read PNG class masks or GeoJSON polygons into annotations of ``annotator``.
 
@@ -316,9 +358,25 @@ def import_masks(
 
     Parameters
     ----------
+    project : Project
+        An open project.
+    files : sequence of path-like
+        PNG class masks or GeoJSON files.
+    annotator : str
+        Whose masks these are.
+    image : str, optional
+        The image of a single file whose name does not tell.
     fill : {"unlabelled", "soil"}
         GeoJSON only: pixels no polygon covers stay unlabelled (a weak label), or are
         soil (the polygons cover every non-soil pixel, as labeler's own export writes).
+    progress : Progress
+        Called as ``progress(done, total, label)`` per file.
+
+    Returns
+    -------
+    ImportResult
+        The files and their images, and how many tiles became full, weak or stayed
+        uncovered.
 
     Raises
     ------

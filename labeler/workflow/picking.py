@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -13,22 +13,70 @@ from labeler.picker import CandidatePool, select_batch
 from labeler.project import Project
 from labeler.states import SETTLED
 from labeler.store.records import RankingItem
-from labeler.workflow.adding import Progress, _no_progress
 from labeler.workflow.annotating import overlap_agreement
+from labeler.workflow.progress import Progress, no_progress
 
-__all__ = ["RankResult", "rank_tiles"]
+__all__ = ["RankedTile", "RankResult", "rank_tiles"]
+
+
+@dataclass(frozen=True)
+class RankedTile:
+    """A tile of the new batch and where it lies, for showing the batch.
+
+    Attributes
+    ----------
+    rank : int
+        Place in the queue, from 0.
+    tile_id : int
+    image : str
+        Name of the tile's image.
+    row, col : int
+        Top-left pixel of the tile in its image.
+    score : float
+        The picker's score.
+    reason : str
+        Why the picker chose it.
+    """
+
+    rank: int
+    tile_id: int
+    image: str
+    row: int
+    col: int
+    score: float
+    reason: str
 
 
 @dataclass(frozen=True)
 class RankResult:
-    """What ``labeler pick`` did."""
+    """What ``labeler pick`` did.
 
-    strategy: str  # the strategy used (cold-start proposals carry no uncertainty: coreset)
+    Attributes
+    ----------
+    strategy : str
+        The strategy used (cold-start proposals carry no uncertainty, so the uncertainty
+        strategies fall back to ``coreset`` until a head is trained).
+    requested : str
+        The strategy asked for.
+    k : int
+        Batch size.
+    items : list of RankingItem
+        Every ranked tile in queue order, as written to the store.
+    unranked : int
+        Tiles without a proposal (not ranked).
+    note : str
+        Why the strategy used differs from the one asked for, if it does.
+    batch : list of RankedTile
+        The first ``k`` tiles with their image and position.
+    """
+
+    strategy: str
     requested: str
     k: int
     items: list[RankingItem]
-    unranked: int  # tiles without a proposal (not ranked)
+    unranked: int
     note: str = ""
+    batch: list[RankedTile] = field(default_factory=list)
 
 
 def rank_tiles(
@@ -37,13 +85,14 @@ def rank_tiles(
     strategy: str | None = None,
     k: int | None = None,
     seed: int | None = None,
-    progress: Progress = _no_progress,
+    progress: Progress = no_progress,
 ) -> RankResult:
     """Rank every proposed tile and write the queue order to the store.
 
     Parameters
     ----------
     project : Project
+        An open project.
     strategy : str, optional
         One of random, entropy, margin, bald, coreset, mixed (default: the setting).
     k : int, optional
@@ -51,6 +100,13 @@ def rank_tiles(
         the batch.
     seed : int, optional
         Seed for ``random`` (default: the setting).
+    progress : Progress
+        Called as ``progress(done, total, label)``.
+
+    Returns
+    -------
+    RankResult
+        The ranking written to the store and the new batch.
 
     Raises
     ------
@@ -143,6 +199,20 @@ def rank_tiles(
     progress(2, 3, "writing the queue")
     store.write_ranking(strategy=used, k=k, seed=seed, items=items)
     progress(3, 3, "done")
+    by_id = {t.id: t for t in tiles}
+    names = {im.id: im.name for im in store.images()}
+    batch = [
+        RankedTile(
+            rank=item.rank,
+            tile_id=item.tile_id,
+            image=names[by_id[item.tile_id].image_id],
+            row=by_id[item.tile_id].row,
+            col=by_id[item.tile_id].col,
+            score=item.score,
+            reason=item.reason,
+        )
+        for item in items[:k]
+    ]
     return RankResult(
         strategy=used,
         requested=strategy,
@@ -150,4 +220,5 @@ def rank_tiles(
         items=items,
         unranked=len(tiles) - len(ids),
         note=note,
+        batch=batch,
     )

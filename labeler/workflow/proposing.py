@@ -1,55 +1,35 @@
-"""Proposals and retraining (``labeler propose``, ``labeler retrain``).
+"""Proposals (``labeler propose``).
 
 ``propose`` uses the newest trained head, or the vegetation-index cold start when no head
 exists yet; only tiles whose newest proposal comes from another model version are
-proposed again. Encoder features are cached per tile under ``<project>/cache/features``.
-``retrain`` trains a new head on every saved full mask (accepted, amended, settled,
-imported) and every scribble, and records it as a model version with its per-class
-validation IoU. Both pass the tiles' pixels to the model room: the head learns a
-full-resolution refinement of its stride-4 proposals from them, and proposing uses them
-to refine each mask (the uncertainty maps stay on the stride-4 grid). The ``model.augment``
-setting chooses how training augments (``labeler.model.train``): by default the tiles
-themselves go through the encoder each epoch while there are at most 24 labelled tiles,
-and the cached features are turned beyond that.
+proposed again. Encoder features are cached per tile under ``<project>/cache/features``
+(:mod:`labeler.workflow.features`). The tiles' pixels go to the model room too: the head
+refines each stride-4 proposal to full resolution with them (the uncertainty maps stay on
+the stride-4 grid). Training the head is :mod:`labeler.workflow.retraining`.
 """
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
-from labeler.classes import UNLABELLED
 from labeler.errors import InputError, LabelerError
-from labeler.imagery.read import ImageReader, open_image
+from labeler.imagery.read import open_image
 from labeler.imagery.tiling import Window
 from labeler.masks.coldstart import cold_start_proposal, detect_image_rows
 from labeler.metrics import class_fractions
 from labeler.project import Project
-from labeler.states import CONTESTED, SETTLED
 from labeler.store import NewProposal
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
-from labeler.workflow.adding import Progress, _no_progress
+from labeler.workflow.features import encoder_and_cache, tile_features
+from labeler.workflow.progress import Progress, no_progress
 
-__all__ = [
-    "ROW_BLOCK_PX",
-    "tile_key",
-    "ProposeResult",
-    "propose",
-    "labelled_tiles",
-    "RetrainResult",
-    "retrain",
-]
+__all__ = ["ROW_BLOCK_PX", "ProposeResult", "propose"]
 
 #: Crop rows are found on blocks of up to this many pixels a side (whole image if smaller).
 ROW_BLOCK_PX = 4096
-
-
-def tile_key(image: ImageRecord, tile: TileRecord) -> str:
-    """Feature-cache key of a tile: image content hash and window."""
-    return f"{image.sha256}:{tile.row}:{tile.col}:{tile.height}:{tile.width}"
 
 
 @dataclass(frozen=True)
@@ -62,36 +42,6 @@ class ProposeResult:
     up_to_date: int
     cache_hits: int = 0
     cache_misses: int = 0
-
-
-def _encoder_and_cache(project: Project):
-    from labeler.model.cache import FeatureCache
-    from labeler.model.encoder import load_encoder
-    from labeler.model.runtime import configure_threads
-
-    configure_threads(project.settings.model.threads)
-    encoder = load_encoder()
-    cache = FeatureCache(project.cache_dir / "features", encoder_version=encoder.version)
-    return encoder, cache
-
-
-def _features(
-    cache,
-    encoder,
-    reader: ImageReader,
-    image: ImageRecord,
-    tiles: Sequence[TileRecord],
-    progress=None,
-):
-    keys = [tile_key(image, t) for t in tiles]
-    windows = {k: t.window for k, t in zip(keys, tiles, strict=True)}
-    return cache.get_or_compute(
-        keys,
-        lambda ks: [reader.read(windows[k]) for k in ks],
-        encoder,
-        tile_shapes=[t.shape for t in tiles],
-        progress=progress,
-    )
 
 
 def _cold_start_version(project: Project) -> ModelVersionRecord:
@@ -136,11 +86,24 @@ def _part(rgb: np.ndarray, block: Window, w: Window) -> np.ndarray:
     ]
 
 
-def propose(project: Project, *, progress: Progress = _no_progress) -> ProposeResult:
+def propose(project: Project, *, progress: Progress = no_progress) -> ProposeResult:
     """Propose masks for every tile whose proposal is older than the newest model.
 
     Each image's proposals are stored in one transaction as soon as they are made, so
     an interrupted run keeps what it finished. Unseen tiles become ``proposed``.
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    progress : Progress
+        Called as ``progress(done, total, label)`` over the tiles to propose.
+
+    Returns
+    -------
+    ProposeResult
+        The model version used, how many tiles were proposed or already up to date,
+        and the feature cache's hits and misses.
 
     Raises
     ------
@@ -152,7 +115,7 @@ def propose(project: Project, *, progress: Progress = _no_progress) -> ProposeRe
     settings = project.settings
     schema = settings.classes
     head_mv = store.latest_model_version(kind="head")
-    encoder, cache = _encoder_and_cache(project)
+    encoder, cache = encoder_and_cache(project)
     head = None
     if head_mv is not None:
         from labeler.model.checkpoint import load_checkpoint
@@ -200,7 +163,7 @@ def propose(project: Project, *, progress: Progress = _no_progress) -> ProposeRe
                     f"stored {im.shape}; the image file was changed after it was added"
                 )
             for block, members in _blocks(tiles, im):
-                feats = _features(
+                feats = tile_features(
                     cache,
                     encoder,
                     reader,
@@ -269,171 +232,4 @@ def propose(project: Project, *, progress: Progress = _no_progress) -> ProposeRe
         up_to_date=up_to_date,
         cache_hits=cache.hits,
         cache_misses=cache.misses,
-    )
-
-
-@dataclass(frozen=True)
-class LabelledTile:
-    """A tile with the mask training uses."""
-
-    tile: TileRecord
-    image: ImageRecord
-    mask: np.ndarray  # (H, W) uint8, 255 unlabelled
-    kind: str  # "full" or "scribble"
-
-
-def labelled_tiles(project: Project) -> list[LabelledTile]:
-    """Every tile with a saved mask training may use.
-
-    A tile's newest full mask (accepted, amended, settled or imported) is used; on a
-    contested tile only a reviewer's settled mask counts (the annotators' masks are in
-    dispute). Tiles without a full mask use their newest scribbles (weak labels).
-    """
-    store = project.store
-    images = {im.id: im for im in store.images()}
-    out = []
-    newest_full: dict[int, object] = {}
-    newest_weak: dict[int, object] = {}
-    for a in store.annotations(kind=None):  # oldest first: later rows win
-        (newest_full if a.kind == "full" else newest_weak)[a.tile_id] = a
-    for t in store.tiles():
-        ann = newest_full.get(t.id)
-        if t.state == CONTESTED:
-            ann = None
-        if t.state == SETTLED:
-            settled = [
-                a for a in store.annotation_history(t.id) if a.state == SETTLED and a.kind == "full"
-            ]
-            ann = settled[-1] if settled else ann
-        kind = "full"
-        if ann is None:
-            ann = newest_weak.get(t.id)
-            kind = "scribble"
-        if ann is None:
-            continue
-        mask = ann.mask()
-        if (mask == UNLABELLED).all():
-            continue
-        out.append(LabelledTile(tile=t, image=images[t.image_id], mask=mask, kind=kind))
-    return out
-
-
-@dataclass(frozen=True)
-class RetrainResult:
-    """What ``labeler retrain`` did."""
-
-    model_version: ModelVersionRecord
-    n_full: int
-    n_scribble: int
-    n_train: int
-    n_val: int
-    best_epoch: int
-    mode: str
-    history: list[dict] = field(default_factory=list)
-
-
-def retrain(project: Project, *, progress: Progress = _no_progress) -> RetrainResult:
-    """Train a new head on every saved mask and record it as a model version.
-
-    Raises
-    ------
-    LabelerError
-        When there are fewer labelled tiles than the ``model.min_labelled_tiles``
-        setting (the message says how many more are needed).
-    """
-    from labeler.model.checkpoint import save_checkpoint
-    from labeler.model.train import train_head
-
-    settings = project.settings
-    schema = settings.classes
-    items = labelled_tiles(project)
-    need = settings.model.min_labelled_tiles
-    if len(items) < need:
-        raise LabelerError(
-            f"retrain needs at least {need} labelled tiles (the model.min_labelled_tiles setting), found "
-            f"{len(items)}; accept or correct {need - len(items)} more tiles first"
-        )
-    encoder, cache = _encoder_and_cache(project)
-    feats: list = [None] * len(items)
-    pixels: list = [None] * len(items)
-    by_image: dict[int, list[int]] = {}
-    for i, it in enumerate(items):
-        by_image.setdefault(it.image.id, []).append(i)
-    done = 0
-    for idx in by_image.values():
-        image = items[idx[0]].image
-        with open_image(project.image_path(image)) as reader:
-            got = _features(cache, encoder, reader, image, [items[i].tile for i in idx])
-            for i in idx:
-                pixels[i] = reader.read(items[i].tile.window)
-        for i, f in zip(idx, got, strict=True):
-            feats[i] = f
-        done += len(idx)
-        progress(done, len(items), "encoding labelled tiles")
-    n_epochs = settings.model.epochs
-
-    def on_epoch(epoch: int, total: int, metrics: dict) -> None:
-        miou = metrics.get("val_miou")
-        label = f"epoch {epoch}/{total}" + (
-            "" if miou is None or math.isnan(miou) else f", val mIoU {miou:.3f}"
-        )
-        progress(epoch, total, label)
-
-    try:
-        result = train_head(
-            [it.mask for it in items],
-            class_indices=schema.indices,
-            features=feats,
-            images=pixels,
-            encoder=encoder,
-            settings=settings.model,
-            mode=settings.model.augment,
-            progress=on_epoch,
-        )
-    except InputError as exc:
-        raise LabelerError(str(exc)) from None
-    store = project.store
-    n = len([m for m in store.model_versions() if m.kind == "head"]) + 1
-    name = f"head-{n}"
-    ckpt = project.models_dir / f"{name}.pt"
-    val = {
-        c.name: (None if math.isnan(v) else float(v))
-        for c, v in zip(schema.classes, result.val_iou, strict=True)
-    }
-    finite = [v for v in val.values() if v is not None]
-    miou = float(np.mean(finite)) if finite else None
-    save_checkpoint(
-        ckpt,
-        result.head,
-        encoder_version=encoder.version,
-        val_iou=result.val_iou,
-        extra={"name": name, "n_train": result.n_train, "n_val": result.n_val},
-    )
-    mv = store.add_model_version(
-        kind="head",
-        name=name,
-        encoder_version=encoder.version,
-        checkpoint=str(ckpt.relative_to(project.root)),
-        n_train_tiles=result.n_train,
-        val_iou=val,
-        miou=miou,
-        details={
-            "best_epoch": result.best_epoch,
-            "mode": result.mode,
-            "n_val": result.n_val,
-            "full_tiles": sum(it.kind == "full" for it in items),
-            "scribble_tiles": sum(it.kind == "scribble" for it in items),
-            "epochs_max": n_epochs,
-            "refine_channels": result.head.config.refine_channels,
-        },
-    )
-    return RetrainResult(
-        model_version=mv,
-        n_full=sum(it.kind == "full" for it in items),
-        n_scribble=sum(it.kind == "scribble" for it in items),
-        n_train=result.n_train,
-        n_val=result.n_val,
-        best_epoch=result.best_epoch,
-        mode=result.mode,
-        history=list(result.history),
     )

@@ -14,19 +14,17 @@ from rasterio.warp import transform as warp_transform
 from rasterio.warp import transform_geom
 
 from labeler.errors import InputError
+from labeler.export.crs import coordinate_decimals, ground_sampling_distance
 from labeler.export.geojson import (
     COORDINATES_MEMBER,
     NotRFC7946Warning,
     TileInfo,
-    coordinate_decimals,
-    geometry_from_geojson,
-    geometry_to_geojson,
-    ground_sampling_distance,
     image_feature_collection,
     merge_feature_collections,
     read_geojson,
     write_geojson,
 )
+from labeler.export.geometry import geometry_from_geojson, geometry_to_geojson
 from labeler.imagery.tiling import cut, stitch, tile_grid
 from tests.common import zoo_four_classes, zoo_ring, zoo_square
 
@@ -364,7 +362,7 @@ def test_argument_errors():
 
 def test_vectorised_encoding_matches_shapely_mapping_per_geometry():
     # slow reference: shapely.geometry.mapping of each oriented geometry, rounded
-    from labeler.export.geojson import _encode
+    from labeler.export.geometry import encode_geometries
 
     rng = np.random.default_rng(4)
     geoms = []
@@ -379,7 +377,7 @@ def test_vectorised_encoding_matches_shapely_mapping_per_geometry():
         geoms.append(shell)
     arr = np.empty(len(geoms), dtype=object)
     arr[:] = geoms
-    got, boxes = _encode(arr, decimals=3, orient=True)
+    got, boxes = encode_geometries(arr, decimals=3, orient=True)
     for g, out, box in zip(geoms, got, boxes, strict=True):
         ref = shapely.geometry.mapping(shapely.orient_polygons(g, exterior_cw=False))
         polys = [ref["coordinates"]] if ref["type"] == "Polygon" else ref["coordinates"]

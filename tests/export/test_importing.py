@@ -1,4 +1,4 @@
-"""Tests of labeler.export.importing: GeoJSON and PNG masks back into class masks."""
+"""Importing masks (labeler/export/importing.py, geojson_import.py, png_import.py)."""
 
 from __future__ import annotations
 
@@ -12,19 +12,15 @@ from hypothesis import strategies as st
 from PIL import Image
 from skimage.measure import label as sk_label
 
+from labeler.errors import MaskImportError
 from labeler.export.geojson import (
     NotRFC7946Warning,
     image_feature_collection,
     write_geojson,
 )
-from labeler.export.importing import (
-    MaskImportError,
-    features_to_mask,
-    match_mask_to_image,
-    read_geojson_mask,
-    read_mask_file,
-    read_png_mask,
-)
+from labeler.export.geojson_import import features_to_mask, read_geojson_mask
+from labeler.export.importing import match_mask_to_image, read_mask_file
+from labeler.export.png_import import read_png_mask
 from tests.common import PEANUT, SOYBEAN, require_dataset, zoo_four_classes, zoo_ring
 
 UTM31 = "EPSG:32631"

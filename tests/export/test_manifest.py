@@ -13,28 +13,19 @@ from scipy.stats import binomtest
 
 import labeler.export.manifest as manifest_module
 from labeler.export.manifest import (
-    file_sha256,
     manifest_row,
     read_manifest,
     split_for,
     write_manifest,
 )
 from labeler.export.pngmasks import write_image_masks
+from labeler.fileio import sha256_file
 from labeler.imagery.write import write_png
 from tests.common import zoo_four_classes
 
 
 def fake_sha(k: int) -> str:
     return hashlib.sha256(f"image {k}".encode()).hexdigest()
-
-
-def test_file_sha256_of_the_fips_example(tmp_path):
-    # FIPS 180-2, Appendix B.1: SHA-256("abc")
-    p = tmp_path / "abc.bin"
-    p.write_bytes(b"abc")
-    assert file_sha256(p, chunk=2) == (
-        "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
-    )
 
 
 def test_split_share_is_binomial_and_stable_when_images_are_added():
@@ -140,7 +131,7 @@ def test_the_documented_pytorch_dataset_reads_the_manifest(tmp_path):
         files = write_image_masks(out / "masks", f"plot-{k}", mask)
         masks[f"plot-{k}"] = (image, mask)
         rows.append(manifest_row(image_path=image_path, mask_path=files.mask, manifest_dir=out,
-                                 mask=mask, image_sha256=file_sha256(image_path),
+                                 mask=mask, image_sha256=sha256_file(image_path),
                                  val_share=split_share))
     write_manifest(out / "manifest.jsonl", rows)
     namespace: dict = {}

@@ -29,7 +29,7 @@ def test_class_mask_png_is_single_channel_with_unlabelled_kept(tmp_path):
 
 def test_preview_matches_opencv_add_weighted():
     # oracle: cv2.addWeighted(image, 0.55, palette colour, 0.45, 0) where a class has a
-    # colour; DESIGN section 2 colours (Okabe & Ito 2008): crop #0072B2, weed #E69F00,
+    # colour; default palette colours (Okabe & Ito 2008): crop #0072B2, weed #E69F00,
     # symptom #CC79A7
     img = field_image()
     m = zoo_four_classes()
@@ -77,7 +77,7 @@ def test_errors(tmp_path):
         write_image_masks(tmp_path, "../escape", m)
     with pytest.raises(ValueError, match=r"mask: expected shape \(8, 8\) like the image"):
         preview_rgb(field_image(), np.zeros((8, 9), np.uint8))
-    with pytest.raises(ValueError, match=r"opacity: expected a value in \[0, 1\]"):
+    with pytest.raises(ValueError, match=r"opacity: expected a weight in 0..1"):
         preview_rgb(field_image(), m, opacity=1.5)
     with pytest.raises(ValueError, match="image: expected uint8 RGB"):
         preview_rgb(field_image().astype(np.float32), m)

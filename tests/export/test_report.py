@@ -19,6 +19,7 @@ from PIL import Image
 from labeler import agreement as ag
 from labeler.classes import DEFAULT_SCHEMA, ClassSchema, LabelClass
 from labeler.export import report as rp
+from labeler.masks.overlay import overlay_mask
 
 T0 = datetime(2025, 6, 2, 9, 0)
 
@@ -40,30 +41,6 @@ def build(n_plots: int = 4, tiles: bool = True):
         sources[name] = rp.OverlaySource(rng.integers(0, 256, (40, 48, 3), dtype=np.uint8),
                                          masks)
     return ag.summarise_agreement(items, schema=DEFAULT_SCHEMA), sources
-
-
-def test_overlay_mask_exact_blend():
-    rgb = np.full((1, 4, 3), 100, np.uint8)
-    mask = np.array([[0, 1, 2, 255]], np.uint8)
-    out = rp.overlay_mask(rgb, mask, schema=DEFAULT_SCHEMA, opacity=0.45)
-    # DESIGN section 2 / Okabe & Ito 2008: crop #0072B2 = (0, 114, 178),
-    # weed #E69F00 = (230, 159, 0); 0.55 * 100 + 0.45 * colour, halves rounded up
-    np.testing.assert_array_equal(out[0, 0], [100, 100, 100])  # background: no overlay
-    np.testing.assert_array_equal(out[0, 1], [55, 106, 135])
-    np.testing.assert_array_equal(out[0, 2], [159, 127, 55])
-    np.testing.assert_array_equal(out[0, 3], [100, 100, 100])  # unlabelled untouched
-    np.testing.assert_array_equal(rp.overlay_mask(rgb, mask, schema=DEFAULT_SCHEMA,
-                                                  opacity=0.0), rgb)
-
-
-def test_overlay_mask_errors():
-    rgb = np.zeros((2, 2, 3), np.uint8)
-    with pytest.raises(ValueError, match=r"mask: expected shape \(2, 2\) like rgb"):
-        rp.overlay_mask(rgb, np.zeros((2, 3), np.uint8), schema=DEFAULT_SCHEMA)
-    with pytest.raises(ValueError, match=r"rgb: expected a uint8 \(H, W, 3\) image"):
-        rp.overlay_mask(rgb[..., 0], np.zeros((2, 2), np.uint8), schema=DEFAULT_SCHEMA)
-    with pytest.raises(ValueError, match="opacity: expected a weight in 0..1"):
-        rp.overlay_mask(rgb, np.zeros((2, 2), np.uint8), schema=DEFAULT_SCHEMA, opacity=2)
 
 
 def test_report_files_are_self_contained_and_complete(tmp_path):
@@ -115,7 +92,7 @@ def test_overlay_strip_shows_each_annotator(tmp_path):
     np.testing.assert_array_equal(arr[::zoom, : w * zoom : zoom], crop)
     # the second panel is marek's overlay (annotators in name order)
     start = w * zoom + 6
-    expected = rp.overlay_mask(crop, src.masks["marek"][r0:r0 + h, c0:c0 + w],
+    expected = overlay_mask(crop, src.masks["marek"][r0:r0 + h, c0:c0 + w],
                                schema=DEFAULT_SCHEMA)
     np.testing.assert_array_equal(arr[::zoom, start: start + w * zoom: zoom], expected)
 

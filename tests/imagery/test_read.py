@@ -196,3 +196,21 @@ def test_large_geotiff_is_read_by_window_never_whole(tmp_path):
     assert tile.shape == (256, 256, 3)
     np.testing.assert_array_equal(tile, np.broadcast_to(expected[:, None, None], tile.shape))
     assert peak < 20e6  # bytes: a window, not the 432 MB image
+
+
+def test_index_png_keeps_values_and_refuses_other_forms(tmp_path, rgb):
+    from labeler.imagery.read import read_index_png
+    from labeler.imagery.write import write_png
+
+    mask = np.array([[0, 1, 2], [3, 255, 0]], np.uint8)
+    write_png(tmp_path / "m.png", mask)
+    np.testing.assert_array_equal(read_index_png(tmp_path / "m.png"), mask)
+    Image.fromarray(rgb).save(tmp_path / "rgb.png")
+    with pytest.raises(InputError, match=r"rgb.png: expected an 8-bit single-channel \(mode L\)"):
+        read_index_png(tmp_path / "rgb.png")
+    Image.fromarray(rgb).save(tmp_path / "photo.jpg")
+    with pytest.raises(InputError, match="photo.jpg: expected a PNG mask, got a JPEG file"):
+        read_index_png(tmp_path / "photo.jpg")
+    (tmp_path / "cut.png").write_bytes((tmp_path / "m.png").read_bytes()[:40])
+    with pytest.raises(InputError, match="cut.png: damaged, truncated or unreadable PNG"):
+        read_index_png(tmp_path / "cut.png")

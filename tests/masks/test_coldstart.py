@@ -23,7 +23,7 @@ from tests.common import REPO
 
 DEMO = REPO / "demo_fields"
 SOIL_RGB = (130, 100, 75)  # brown: ExG - ExR < 0
-PLANT_RGB = (60, 120, 40)  # ExG - ExR = 0.8 (notes-checks.md, recomputed)
+PLANT_RGB = (60, 120, 40)  # ExG - ExR = 0.8 (Woebbecke 1995, Meyer & Neto 2008; by hand)
 
 def _load(path, mode: str | None = None) -> np.ndarray:
     """Pixels of an image file (closed again at once)."""

@@ -22,7 +22,7 @@ from labeler.masks.vegetation import (
 )
 from tests.common import PEANUT, require_dataset
 
-# Pixel values recomputed from the published formulas (notes-checks.md "Vegetation index"):
+# Pixel values recomputed by hand from the published formulas:
 # ExG = 2g - r - b (Woebbecke et al. 1995, Trans. ASAE 38(1)); ExR = 1.4 r - g and
 # ExGR = ExG - ExR (Meyer & Neto 2008, Comput. Electron. Agric. 63);
 # CIVE = 0.441 R - 0.811 G + 0.385 B + 18.78745 (Kataoka et al. 2003). Recomputed.
@@ -64,7 +64,7 @@ def test_older_excess_red_coefficient():
 
 
 def test_black_pixel_guard_gives_zero_coordinates():
-    # R + G + B = 0: chromatic coordinates all 0 (guard, notes-checks.md), no warning
+    # R + G + B = 0: chromatic coordinates all 0 (guard; common practice, no source), no warning
     img = np.zeros((2, 3, 3), np.uint8)
     np.testing.assert_array_equal(chromatic_coordinates(img), 0.0)
     np.testing.assert_array_equal(excess_green(img), 0.0)
@@ -127,7 +127,7 @@ def test_chromatic_indices_ignore_brightness(img, gain):
 
 def test_otsu_on_the_scikit_image_example():
     # scikit-image's own Otsu test image has threshold 2; foreground = image > 2
-    # (notes-checks.md "Vegetation index"; Otsu 1979)
+    # (skimage.filters.threshold_otsu test data; Otsu 1979)
     image = np.array(
         [[0, 0, 1, 3, 5], [0, 1, 4, 3, 4], [1, 2, 5, 4, 1], [2, 4, 5, 2, 1], [4, 5, 1, 0, 0]]
     )

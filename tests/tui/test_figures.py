@@ -54,7 +54,7 @@ def test_landis_koch_band_in_rows():
     a, b, summary = _summary()
     rows = agreement_cells(summary, schema=DEFAULT_SCHEMA)
     kappa = cohen_kappa_score(a.ravel(), b.ravel())
-    # Landis & Koch (1977) bands as in notes-checks.md (upper bound inclusive)
+    # Landis & Koch (1977), Biometrics 33(1) p. 165 bands (upper bound inclusive)
     expected = next(name for upper, name in ((0.2, "slight"), (0.4, "fair"), (0.6, "moderate"),
                                              (0.8, "substantial"), (1.0, "almost perfect"))
                     if kappa <= upper)

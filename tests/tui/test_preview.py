@@ -155,7 +155,7 @@ def test_tile_picture_overlay_colours_exact():
     mask = np.repeat(np.array([0, 1, 2, 3, 255], np.uint8), 2)[None, :].repeat(2, axis=0)
     pic = tile_picture(rgb, mask, schema=DEFAULT_SCHEMA, opacity=0.45, cols=5, rows=1)
     assert pic.shape == (1, 5, 3)
-    # out = round_half_up(0.55 * 100 + 0.45 * colour) with the DESIGN section 2 colours
+    # out = round_half_up(0.55 * 100 + 0.45 * colour) with the default palette colours
     # (Okabe & Ito 2008): crop #0072B2, weed #E69F00, symptom #CC79A7; worked by hand
     assert pic[0].tolist() == [
         [100, 100, 100],  # soil: no overlay

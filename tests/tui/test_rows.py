@@ -1,5 +1,6 @@
 """Cell texts of the queue table and the row filters, on hand-made rows."""
 
+import numpy as np
 import pytest
 
 from labeler.classes import DEFAULT_SCHEMA
@@ -12,9 +13,11 @@ from labeler.tui.rows import (
     format_shares,
     format_who,
     keep_row,
+    preview_caption,
     queue_cells,
 )
 from labeler.workflow.annotating import QueueRow
+from labeler.workflow.views import TileView
 
 
 def _row(tile_id, *, state="proposed", fractions=(0.52, 0.41, 0.07, 0.0), held_by=None,
@@ -95,3 +98,19 @@ def test_filter_errors():
         RowFilter(min_share=2)
     with pytest.raises(KeyError, match="class 'grass' is not in the schema"):
         keep_row(_row(1), RowFilter(class_name="grass"), schema=DEFAULT_SCHEMA)
+
+
+def test_preview_caption_says_which_mask_is_shown():
+    rgb = np.zeros((2, 2, 3), np.uint8)
+    place = dict(tile_id=7, image="north-strip", row=0, col=224, rgb=rgb)
+    saved = TileView(**place, mask=np.zeros((2, 2), np.uint8), shows="saved", saved_by="ines",
+                     saved_version=3, saved_state="amended")
+    assert preview_caption(saved) == "tile 7 · north-strip r0 c224 · saved by ines (v3, amended)"
+    proposal = TileView(**place, mask=np.zeros((2, 2), np.uint8), shows="proposal",
+                        model="head-2")
+    assert preview_caption(proposal).endswith("· proposal of head-2")
+    nameless = TileView(**place, mask=np.zeros((2, 2), np.uint8), shows="proposal")
+    assert preview_caption(nameless).endswith("· proposal of a model")
+    assert preview_caption(TileView(**place, mask=None, shows="nothing")).endswith(
+        "· no proposal yet"
+    )

@@ -1,25 +1,33 @@
-"""The ``labeler`` command: parses arguments, calls :mod:`labeler.workflow`, prints.
+"""The commands of ``labeler``: each calls :mod:`labeler.workflow` and prints the result.
 
-Exit codes: 0 success; 1 a user error (one clear line on stderr); 2 a usage error.
+A command takes the parsed arguments (:mod:`labeler.cli.arguments`) and returns the exit
+code; a :class:`labeler.errors.LabelerError` it raises becomes one line on stderr
+(:func:`labeler.cli.main`).
 """
 
 from __future__ import annotations
 
-import argparse
 import sys
 from collections.abc import Sequence
 from pathlib import Path
 
-from labeler import __version__
 from labeler.errors import LabelerError
-from labeler.settings import STRATEGIES
 
-__all__ = ["main", "build_parser"]
-
-EPILOG = (
-    "Masks are decision support only: before any spraying or fungicide decision, local "
-    "regulations and licensed agronomic advice come first."
-)
+__all__ = [
+    "cmd_init",
+    "cmd_add",
+    "cmd_status",
+    "cmd_demo",
+    "cmd_pick",
+    "cmd_agreement",
+    "cmd_edit",
+    "cmd_export",
+    "cmd_import",
+    "cmd_queue",
+    "cmd_propose",
+    "cmd_retrain",
+    "format_status",
+]
 
 
 class _Bar:
@@ -188,26 +196,15 @@ def cmd_pick(args) -> int:
 
     with open_project(args.dir) as project, _Bar("ranking") as bar:
         result = rank_tiles(project, strategy=args.strategy, k=args.k, seed=args.seed, progress=bar)
-        images = {t.id: t for t in project.store.tiles()}
-        names = {im.id: im.name for im in project.store.images()}
     if result.note:
         print(f"note: {result.note}")
     print(
         f"ranked {len(result.items)} tiles with strategy {result.strategy}; the next batch of {result.k}:"
     )
-    rows = []
-    for item in result.items[: result.k]:
-        t = images[item.tile_id]
-        rows.append(
-            (
-                item.rank + 1,
-                item.tile_id,
-                names[t.image_id],
-                f"{t.row},{t.col}",
-                f"{item.score:.4f}",
-                item.reason,
-            )
-        )
+    rows = [
+        (t.rank + 1, t.tile_id, t.image, f"{t.row},{t.col}", f"{t.score:.4f}", t.reason)
+        for t in result.batch
+    ]
     print(_table(["rank", "tile", "image", "row,col", "score", "why"], rows))
     if result.unranked:
         print(
@@ -376,258 +373,3 @@ def cmd_retrain(args) -> int:
     print(f"validation IoU: {format_iou(mv.val_iou, miou=mv.miou)}")
     print("run 'labeler propose' to refresh the proposals with it")
     return 0
-
-
-# -- parser -----------------------------------------------------------------------------
-def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
-        prog="labeler",
-        description="Pixel masks of crop, weed and disease symptom regions from field imagery.",
-        epilog=EPILOG,
-    )
-    parser.add_argument("--version", action="version", version=f"labeler {__version__}")
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
-
-    p = sub.add_parser(
-        "init",
-        help="create a project folder",
-        description="Create a project folder "
-        "with a commented settings file (labeler.toml) and an empty store.",
-    )
-    p.add_argument("dir", metavar="DIR", help="project folder to create")
-    p.set_defaults(func=cmd_init)
-
-    p = sub.add_parser(
-        "add",
-        help="add images to a project",
-        description="Add PNG, JPEG, TIFF or GeoTIFF "
-        "images. Each image is checked, copied into the project and cut into tiles, all or "
-        "nothing; an image already present (same content) is skipped.",
-    )
-    p.add_argument("dir", metavar="DIR", help="project folder")
-    p.add_argument("images", metavar="IMAGE", nargs="+", help="image files")
-    p.add_argument(
-        "--in-place",
-        action="store_true",
-        help="refer to the files where they are instead of copying",
-    )
-    p.set_defaults(func=cmd_add)
-
-    p = sub.add_parser(
-        "status",
-        help="tiles per state, image and annotator",
-        description="Show tiles per state, per image and per annotator.",
-    )
-    p.add_argument("dir", metavar="DIR", help="project folder")
-    p.set_defaults(func=cmd_status)
-
-    p = sub.add_parser(
-        "demo",
-        help="build a demo project from demo_fields/",
-        description="Build a demo project from the invented plots in demo_fields/ and show "
-        "its status.",
-    )
-    p.add_argument(
-        "--out",
-        default="demo-project",
-        metavar="DIR",
-        help="project folder to build (default: %(default)s)",
-    )
-    p.add_argument(
-        "--fields",
-        default=None,
-        metavar="DIR",
-        help="folder of demo plots (default: the repository's demo_fields/)",
-    )
-    p.add_argument(
-        "--fresh", action="store_true", help="delete an earlier demo project in DIR first"
-    )
-    p.add_argument("--setup-only", action="store_true", help="only build the project; skip the demo round")
-    p.set_defaults(func=cmd_demo)
-
-    p = sub.add_parser(
-        "propose",
-        help="propose masks (cold start, or the newest trained model)",
-        description="Propose a mask for every tile whose proposal is older than the newest model. "
-        "Before any model is trained, a vegetation index (ExG - ExR) and the crop rows give the cold "
-        "start: vegetation on a row is crop, between rows weed. " + EPILOG,
-    )
-    p.add_argument("dir", metavar="DIR", help="project folder")
-    p.set_defaults(func=cmd_propose)
-
-    p = sub.add_parser(
-        "retrain",
-        help="train a new model on every saved mask and scribble",
-        description="Train a new proposal head on every saved full mask (accepted, amended, settled, "
-        "imported) and every scribble; prints the per-class validation IoU.",
-    )
-    p.add_argument("dir", metavar="DIR", help="project folder")
-    p.set_defaults(func=cmd_retrain)
-
-    p = sub.add_parser(
-        "pick",
-        help="order the queue: most informative tiles first",
-        description="Rank every proposed tile with the active-learning picker and write the "
-        "queue order (with each tile's score and reason) to the store.",
-    )
-    p.add_argument("dir", metavar="DIR", help="project folder")
-    p.add_argument(
-        "--strategy",
-        choices=STRATEGIES,
-        default=None,
-        help="random, entropy, margin, bald, coreset or mixed (default: the project setting, mixed)",
-    )
-    p.add_argument(
-        "--k",
-        type=_positive_int,
-        default=None,
-        metavar="N",
-        help="batch size (default: the setting, 20)",
-    )
-    p.add_argument(
-        "--seed", type=int, default=None, help="seed for the random strategy (default: the setting)"
-    )
-    p.set_defaults(func=cmd_pick)
-
-    p = sub.add_parser(
-        "edit",
-        help="open a tile in the mask editor",
-        description="Open a tile in the mask editor window (needs a display). Enter saves the "
-        "mask, recorded as 'accepted' when the proposal is kept, 'amended' when changed "
-        "('settled' with --settle); p saves the scribbles alone as a 'weak' label. The state "
-        "recorded is printed. A draft is autosaved; a save after someone else's is refused "
-        "and kept as a draft.",
-    )
-    p.add_argument("dir", metavar="DIR", help="project folder")
-    p.add_argument(
-        "tile",
-        metavar="TILE",
-        nargs="?",
-        type=int,
-        default=None,
-        help="tile id (see 'labeler pick')",
-    )
-    p.add_argument("--annotator", required=True, metavar="NAME", help="who is annotating")
-    p.add_argument(
-        "--next", action="store_true", help="open the next tile of the queue for this annotator"
-    )
-    p.add_argument(
-        "--settle",
-        action="store_true",
-        help="as a reviewer, decide a contested tile (starts from the STAPLE consensus, shows both masks)",
-    )
-    p.set_defaults(func=cmd_edit)
-
-    p = sub.add_parser(
-        "export",
-        help="write GeoJSON polygons, PNG class masks and a manifest",
-        description="Export saved masks as RFC 7946 GeoJSON (WGS 84 longitude/latitude; one file per "
-        "image and one for the project) and as PNG class masks with colour previews and a JSON-lines "
-        "manifest for training. " + EPILOG,
-    )
-    p.add_argument("dir", metavar="DIR", help="project folder")
-    p.add_argument(
-        "--format",
-        choices=("geojson", "masks", "all"),
-        default="all",
-        help="what to write (default: all)",
-    )
-    p.add_argument(
-        "--states",
-        default="accepted,amended,settled",
-        help="tile states whose masks are exported (default: %(default)s)",
-    )
-    p.add_argument(
-        "--proposals",
-        action="store_true",
-        help="fill tiles without a saved mask with the newest model proposal (marked as such)",
-    )
-    p.add_argument(
-        "--pixel-coordinates",
-        action="store_true",
-        help="allow images without georeferencing: pixel positions, NOT RFC 7946 GeoJSON",
-    )
-    p.add_argument(
-        "--out",
-        default=None,
-        metavar="FOLDER",
-        help="output folder (default: exports/<project name>)",
-    )
-    p.set_defaults(func=cmd_export)
-
-    p = sub.add_parser(
-        "import",
-        help="read PNG class masks or GeoJSON polygons as annotations",
-        description="Import masks made elsewhere as annotations of a named annotator. A mask file is "
-        "matched to its image by name (<image>.png, <image>_mask.png, <image>_annotation.png, "
-        "<image>.geojson) or by --image. Nothing is imported when any file has a problem.",
-    )
-    p.add_argument("dir", metavar="DIR", help="project folder")
-    p.add_argument("files", metavar="FILE", nargs="+", help="PNG or GeoJSON mask files")
-    p.add_argument("--annotator", required=True, metavar="NAME", help="whose masks these are")
-    p.add_argument("--image", default=None, metavar="NAME", help="the image of a single mask file")
-    p.add_argument(
-        "--fill",
-        choices=("unlabelled", "soil"),
-        default="unlabelled",
-        help="GeoJSON: pixels outside every polygon are unlabelled (default) or soil",
-    )
-    p.set_defaults(func=cmd_import)
-
-    p = sub.add_parser(
-        "queue",
-        help="the terminal queue: work through tiles, watch agreement and models",
-        description="Open the terminal queue: tiles in picker order with a colour preview; accept, "
-        "park, open the editor, re-rank and retrain from the keyboard (press ? for the keys).",
-    )
-    p.add_argument("dir", metavar="DIR", help="project folder")
-    p.add_argument("--annotator", required=True, metavar="NAME", help="who is annotating")
-    p.set_defaults(func=cmd_queue)
-
-    p = sub.add_parser(
-        "agreement",
-        help="how well annotators agree: table, HTML report, CSV",
-        description="Compare the masks of annotators who labelled the same images: Cohen's kappa "
-        "with its Landis & Koch band and IoU per annotator pair and class. Writes an HTML report "
-        "with plots and a CSV of every figure.",
-    )
-    p.add_argument("dir", metavar="DIR", help="project folder")
-    p.add_argument(
-        "--since", default=None, metavar="DATE", help="only saves on or after DATE (YYYY-MM-DD)"
-    )
-    p.add_argument(
-        "--out",
-        default=None,
-        metavar="FOLDER",
-        help="report folder (default: DIR/reports/agreement)",
-    )
-    p.set_defaults(func=cmd_agreement)
-    return parser
-
-
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"expected at least 1, got {value}")
-    return value
-
-
-def main(argv: Sequence[str] | None = None) -> int:
-    """Run the command line; returns the exit code."""
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    try:
-        return int(args.func(args) or 0)
-    except LabelerError as exc:
-        print(f"labeler: error: {exc}", file=sys.stderr)
-        return 1
-    except KeyboardInterrupt:
-        print("labeler: interrupted; saved work is kept", file=sys.stderr)
-        return 130
-
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())

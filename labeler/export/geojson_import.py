@@ -1,0 +1,312 @@
+"""Reading GeoJSON polygon files made elsewhere back into class masks.
+
+A FeatureCollection written by :mod:`labeler.export.geojson` or by a GIS. Each feature
+names its class by ``class`` (a name of the schema, case-insensitive) or
+``class_index``. Positions are WGS 84 longitude/latitude (RFC 7946); they are
+reprojected into the image's CRS and then, through the inverse of the image transform,
+into its pixel grid. A file marked ``"labeler:coordinates": "pixel"`` (our export of an
+image without georeferencing) holds pixel coordinates and is read without
+reprojection. A pixel takes the class of a polygon that contains its centre; later
+features overwrite earlier ones where they overlap.
+
+What the pixels that no polygon covers become is the caller's choice, ``fill``:
+
+* ``fill=255`` (default): they stay unlabelled, so a file that outlines only some
+  plants is a weak label. A file that also has soil (class 0) polygons wherever the
+  ground is bare covers the whole image and becomes a full mask.
+* ``fill=0``: they become soil. Use this for files in which the features cover every
+  non-soil pixel, which is what our own export writes (it drops soil polygons unless
+  asked for them).
+
+Every problem raises :class:`labeler.errors.MaskImportError` naming the file and the
+problem; nothing partial is returned.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping
+from pathlib import Path
+
+import numpy as np
+import shapely
+from affine import Affine
+from rasterio.crs import CRS
+
+from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
+from labeler.errors import MaskImportError
+from labeler.export.crs import WGS84, as_crs, reprojector
+from labeler.export.geojson import COORDINATES_MEMBER, read_geojson
+from labeler.export.geometry import geometry_from_geojson
+from labeler.masks.polygons import polygons_to_mask
+
+__all__ = ["features_to_mask", "read_geojson_mask"]
+
+#: Names under which an old-style GeoJSON ``crs`` member means WGS 84 longitude/latitude.
+_CRS84_NAMES = {
+    "urn:ogc:def:crs:ogc:1.3:crs84",
+    "urn:ogc:def:crs:ogc::crs84",
+    "ogc:crs84",
+    "crs84",
+}
+
+
+
+def _class_of(props: object, schema: ClassSchema, where: str) -> int:
+    if not isinstance(props, Mapping):
+        raise ValueError(f"{where}: no properties; give each feature a 'class' or 'class_index'")
+    name = props.get("class")
+    index = props.get("class_index")
+    by_name: int | None = None
+    if name is not None:
+        folded = {n.casefold(): c.index for n, c in zip(schema.names, schema.classes, strict=True)}
+        if not isinstance(name, str) or name.casefold() not in folded:
+            raise ValueError(
+                f"{where}: unknown class {name!r}; known classes: {', '.join(schema.names)}"
+            )
+        by_name = folded[name.casefold()]
+    by_index: int | None = None
+    if index is not None:
+        if isinstance(index, bool) or not isinstance(index, int | float) or int(index) != index:
+            raise ValueError(f"{where}: class_index must be an integer, got {index!r}")
+        if int(index) not in schema.indices:
+            raise ValueError(
+                f"{where}: unknown class_index {index!r}; known indices: "
+                + ", ".join(f"{c.index} ({c.name})" for c in schema.classes)
+            )
+        by_index = int(index)
+    if by_name is None and by_index is None:
+        raise ValueError(
+            f"{where}: no 'class' or 'class_index' property; known classes: "
+            f"{', '.join(schema.names)}"
+        )
+    if by_name is not None and by_index is not None and by_name != by_index:
+        raise ValueError(
+            f"{where}: class {name!r} (index {by_name}) contradicts class_index {by_index}"
+        )
+    return by_name if by_name is not None else int(by_index)  # type: ignore[arg-type]
+
+
+def _check_crs_member(collection: Mapping, name: str) -> None:
+    if "crs" not in collection:
+        return
+    crs = collection["crs"]
+    label = None
+    if isinstance(crs, Mapping):
+        props = crs.get("properties")
+        if isinstance(props, Mapping):
+            label = props.get("name")
+    if isinstance(label, str) and label.strip().casefold() in _CRS84_NAMES:
+        return
+    raise MaskImportError(
+        f"{name}: wrong CRS: the file names {label or crs!r}, but RFC 7946 GeoJSON holds WGS 84 "
+        "longitude/latitude and has no 'crs' member; export it again from your GIS as "
+        "GeoJSON in EPSG:4326 (longitude/latitude)"
+    )
+
+
+def features_to_mask(
+    collection: Mapping,
+    *,
+    shape: tuple[int, int],
+    transform: Affine | None = None,
+    crs: CRS | str | None = None,
+    schema: ClassSchema = DEFAULT_SCHEMA,
+    fill: int = UNLABELLED,
+    image: str | None = None,
+    name: str = "<collection>",
+) -> np.ndarray:
+    """Rasterise a GeoJSON FeatureCollection (as a dict) onto an image's pixel grid.
+
+    Parameters
+    ----------
+    collection : mapping
+        A FeatureCollection or a single Feature.
+    shape : (int, int)
+        ``(height, width)`` of the image.
+    transform : affine.Affine or None
+        The image's pixel-corner transform; needed unless the file is in pixel
+        coordinates.
+    crs : rasterio CRS, str or None
+        The image's CRS; needed with ``transform``.
+    schema : ClassSchema
+    fill : int
+        Value of pixels no polygon covers: 255 (unlabelled, a weak label) or 0 (soil,
+        when the features cover every non-soil pixel); see the module docstring.
+    image : str or None
+        Keep only features whose ``image`` property is this name (features without an
+        ``image`` property are kept). None accepts a file naming at most one image.
+    name : str
+        How to name the source in error messages (the file path).
+
+    Returns
+    -------
+    mask : ndarray, shape ``shape``, uint8
+
+    Raises
+    ------
+    MaskImportError
+    """
+    try:
+        return _features_to_mask(
+            collection, shape=shape, transform=transform, crs=crs, schema=schema,
+            fill=fill, image=image, name=name,
+        )
+    except MaskImportError:
+        raise
+    except ValueError as err:
+        raise MaskImportError(f"{name}: {err}") from None
+
+
+def _features_to_mask(
+    collection: Mapping,
+    *,
+    shape: tuple[int, int],
+    transform: Affine | None,
+    crs: CRS | str | None,
+    schema: ClassSchema,
+    fill: int,
+    image: str | None,
+    name: str,
+) -> np.ndarray:
+    if fill != UNLABELLED and fill not in schema.indices:
+        raise ValueError(
+            f"fill: expected 255 (unlabelled) or a class index {schema.indices}, got {fill!r}"
+        )
+    height, width = int(shape[0]), int(shape[1])
+    if not isinstance(collection, Mapping):
+        raise ValueError("not a GeoJSON object")
+    kind = collection.get("type")
+    if kind == "FeatureCollection":
+        features = collection.get("features")
+        if not isinstance(features, list):
+            raise ValueError("FeatureCollection without a 'features' list (RFC 7946 section 3.3)")
+    elif kind == "Feature":
+        features = [collection]
+    else:
+        raise ValueError(
+            f"expected a GeoJSON FeatureCollection or Feature, got type {kind!r}"
+        )
+    _check_crs_member(collection, name)
+    pixel_mode = collection.get(COORDINATES_MEMBER) == "pixel"
+    if not pixel_mode and (transform is None or crs is None):
+        raise ValueError(
+            "the file holds longitude/latitude, but the image has no georeferencing "
+            "(transform and crs), so the polygons cannot be placed on its pixels"
+        )
+
+    images_named = sorted(
+        {
+            f["properties"]["image"]
+            for f in features
+            if isinstance(f, Mapping)
+            and isinstance(f.get("properties"), Mapping)
+            and isinstance(f["properties"].get("image"), str)
+        }
+    )
+    if image is None and len(images_named) > 1:
+        raise ValueError(
+            f"the file holds features of {len(images_named)} images "
+            f"({', '.join(images_named[:5])}{', ...' if len(images_named) > 5 else ''}); "
+            "name the image to import"
+        )
+    geoms: list[shapely.Geometry] = []
+    values: list[int] = []
+    labels: list[str] = []
+    for k, feature in enumerate(features):
+        fid = feature.get("id") if isinstance(feature, Mapping) else None
+        where = f"feature {k}" + (f" (id {fid!r})" if fid is not None else "")
+        if not isinstance(feature, Mapping) or feature.get("type") != "Feature":
+            raise ValueError(f"{where}: expected an object of type 'Feature'")
+        props = feature.get("properties")
+        if image is not None and isinstance(props, Mapping):
+            named = props.get("image")
+            if isinstance(named, str) and named != image:
+                continue
+        if feature.get("geometry") is None:
+            continue  # an unlocated feature (RFC 7946 section 3.2) marks no pixel
+        value = _class_of(props, schema, where)
+        geom = geometry_from_geojson(feature.get("geometry"), where=where)
+        if not shapely.is_valid(geom):
+            raise ValueError(
+                f"{where}: invalid polygon ({shapely.is_valid_reason(geom)}); repair it in "
+                "your GIS (e.g. a 'fix geometries' tool) and export again"
+            )
+        if not pixel_mode:
+            xy = shapely.get_coordinates(geom)
+            if (np.abs(xy[:, 0]) > 180).any() or (np.abs(xy[:, 1]) > 90).any():
+                raise ValueError(
+                    f"{where}: positions outside longitude -180..180 / latitude -90..90; "
+                    "the file is not in WGS 84 longitude/latitude (wrong CRS)"
+                )
+        geoms.append(geom)
+        values.append(value)
+        labels.append(where)
+    if image is not None and features and not geoms and images_named and image not in images_named:
+        raise ValueError(
+            f"no feature belongs to image {image!r}; the file names "
+            f"{', '.join(images_named[:5])}"
+        )
+    if not geoms:
+        return np.full((height, width), fill, np.uint8)
+    arr = np.empty(len(geoms), dtype=object)
+    arr[:] = geoms
+    if not pixel_mode:
+        src = as_crs(crs)
+        inverse = ~transform
+        a, b, c, d, e, f = inverse.a, inverse.b, inverse.c, inverse.d, inverse.e, inverse.f
+
+        def to_pixel(xy: np.ndarray) -> np.ndarray:
+            x, y = xy[:, 0], xy[:, 1]
+            return np.column_stack([a * x + b * y + c, d * x + e * y + f])
+
+        arr = shapely.transform(shapely.transform(arr, reprojector(WGS84, src)), to_pixel)
+    bounds = shapely.bounds(arr)
+    tol = 0.5
+    outside = (
+        (bounds[:, 0] < -tol)
+        | (bounds[:, 1] < -tol)
+        | (bounds[:, 2] > width + tol)
+        | (bounds[:, 3] > height + tol)
+        | ~np.isfinite(bounds).all(axis=1)
+    )
+    if outside.any():
+        k = int(np.flatnonzero(outside)[0])
+        x0, y0, x1, y1 = bounds[k]
+        raise ValueError(
+            f"{labels[k]}: lies outside the image ({int(outside.sum())} feature(s) do): it spans "
+            f"columns {x0:.1f}..{x1:.1f} and rows {y0:.1f}..{y1:.1f}, the image is "
+            f"{width} columns x {height} rows; is it the right image and georeferencing?"
+        )
+    return polygons_to_mask(list(zip(arr, values, strict=True)), shape=(height, width), fill=fill)
+
+
+def read_geojson_mask(
+    path: str | os.PathLike[str],
+    *,
+    shape: tuple[int, int],
+    transform: Affine | None = None,
+    crs: CRS | str | None = None,
+    schema: ClassSchema = DEFAULT_SCHEMA,
+    fill: int = UNLABELLED,
+    image: str | None = None,
+) -> np.ndarray:
+    """Read a GeoJSON file into a class mask; see :func:`features_to_mask`.
+
+    Raises
+    ------
+    MaskImportError
+        Naming the file: unreadable, not JSON, not RFC 7946, wrong CRS, unknown class,
+        invalid or out-of-image polygon.
+    """
+    p = Path(path)
+    try:
+        collection = read_geojson(p)
+    except OSError as err:
+        raise MaskImportError(f"{p}: cannot be read ({err.strerror or err})") from None
+    except ValueError as err:
+        raise MaskImportError(str(err)) from None
+    return features_to_mask(
+        collection, shape=shape, transform=transform, crs=crs, schema=schema, fill=fill,
+        image=image, name=str(p),
+    )

@@ -1,0 +1,199 @@
+"""Generic file writes that never leave half a file: write, copy, and remove a marked folder.
+
+Every write goes to a temporary file in the target's own folder and is renamed over the
+target (``os.replace``, atomic on POSIX and Windows within one file system), so a crash, a
+kill or a full disk leaves either the old file or the new one, never half of one.
+
+This module knows nothing about images, masks or models: the rooms that own a kind of
+file (``imagery/`` and ``export/`` for image and GeoJSON files, ``model/`` for checkpoints
+and the feature cache, ``project`` for the settings file) encode their bytes and hand them
+here. It imports only the standard library and :mod:`labeler.errors`.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+from labeler.errors import InputError, LabelerError
+
+__all__ = [
+    "file_mode",
+    "atomic_write_bytes",
+    "atomic_write_text",
+    "atomic_copy_file",
+    "remove_marked_folder",
+    "sha256_file",
+]
+
+
+def file_mode() -> int:
+    """Permission bits of a new file under the current umask.
+
+    Returns
+    -------
+    int
+        ``0o666 & ~umask``, the mode ``open(path, "w")`` would give a new file.
+    """
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
+def _temporary_beside(target: Path, suffix: str) -> tuple[int, str]:
+    target.parent.mkdir(parents=True, exist_ok=True)
+    return tempfile.mkstemp(prefix=f".{target.name}.", suffix=suffix, dir=target.parent)
+
+
+def atomic_write_bytes(path: str | os.PathLike[str], data: bytes, *, fsync: bool = True) -> Path:
+    """Write ``data`` to ``path`` through a temporary file in the same folder and rename.
+
+    Parameters
+    ----------
+    path : path-like
+        Target file; missing parent folders are created.
+    data : bytes
+        The whole new content.
+    fsync : bool
+        Flush the file to disk before the rename (default). ``False`` is for derivable
+        data whose readers verify a checksum anyway, such as the feature cache.
+
+    Returns
+    -------
+    Path
+        The target path.
+    """
+    target = Path(path)
+    fd, tmp = _temporary_beside(target, ".tmp")
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            if fsync:
+                fh.flush()
+                os.fsync(fh.fileno())
+        os.chmod(tmp, file_mode())  # mkstemp makes 0600; give the file the usual mode
+        os.replace(tmp, target)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return target
+
+
+def atomic_write_text(
+    path: str | os.PathLike[str], text: str, *, encoding: str = "utf-8"
+) -> Path:
+    """Write ``text`` to ``path`` atomically (see :func:`atomic_write_bytes`).
+
+    Parameters
+    ----------
+    path : path-like
+        Target file; missing parent folders are created.
+    text : str
+        The whole new content.
+    encoding : str
+        Text encoding (default UTF-8).
+
+    Returns
+    -------
+    Path
+        The target path.
+    """
+    return atomic_write_bytes(path, text.encode(encoding))
+
+
+def sha256_file(path: str | os.PathLike[str], *, chunk: int = 1 << 20) -> str:
+    """SHA-256 of a file's bytes, read in chunks.
+
+    Parameters
+    ----------
+    path : path-like
+        File to hash.
+    chunk : int
+        Bytes read at a time.
+
+    Returns
+    -------
+    str
+        The digest as 64 lower-case hex digits.
+    """
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while block := fh.read(chunk):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def atomic_copy_file(
+    source: str | os.PathLike[str],
+    path: str | os.PathLike[str],
+    *,
+    sha256: str | None = None,
+) -> Path:
+    """Copy ``source`` to ``path`` through a temporary file in the target folder and rename.
+
+    Parameters
+    ----------
+    source : path-like
+        File to copy.
+    path : path-like
+        Target file; missing parent folders are created; an existing file is replaced.
+    sha256 : str, optional
+        Expected SHA-256 (hex) of the content. The copy is hashed before the rename and
+        dropped if it differs (the source changed since it was checked).
+
+    Returns
+    -------
+    Path
+        The target path.
+
+    Raises
+    ------
+    InputError
+        If the copy's SHA-256 differs from ``sha256``; the target is left as it was.
+    """
+    src = Path(source)
+    target = Path(path)
+    fd, tmp = _temporary_beside(target, ".part")
+    os.close(fd)
+    try:
+        shutil.copyfile(src, tmp)
+        if sha256 is not None and sha256_file(tmp) != sha256:
+            raise InputError(f"{src}: the file changed while it was being copied; add it again")
+        os.chmod(tmp, file_mode())
+        os.replace(tmp, target)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return target
+
+
+def remove_marked_folder(folder: str | os.PathLike[str], *, marker: str) -> None:
+    """Delete ``folder`` and everything in it, but only if it holds the file ``marker``.
+
+    Used to rebuild folders this program made itself (the demo project); a folder
+    without the marker may hold someone's work and is never deleted.
+
+    Parameters
+    ----------
+    folder : path-like
+        Folder to delete.
+    marker : str
+        Name of the file that marks the folder as one this program may delete.
+
+    Raises
+    ------
+    LabelerError
+        If ``folder`` is not a folder or does not hold ``marker``; nothing is deleted.
+    """
+    root = Path(folder)
+    if not root.is_dir():
+        raise LabelerError(f"{root}: expected a folder to delete, found none")
+    if not (root / marker).is_file():
+        raise LabelerError(
+            f"{root}: holds no {marker} file, so it was not made by labeler and is not "
+            "deleted; choose another folder"
+        )
+    shutil.rmtree(root)

@@ -1,0 +1,70 @@
+"""The documents in the repository keep up with the code.
+
+The README's layout section and docs/architecture.md name every top-level module of the
+package, the architecture page names every import contract, and neither they nor the
+package point to files outside the repository.
+"""
+
+from __future__ import annotations
+
+import re
+import tomllib
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+PACKAGE = ROOT / "labeler"
+
+
+def top_level_names() -> set[str]:
+    """Top-level modules and packages of labeler/ (``cli`` for cli/, ``fileio`` for fileio.py)."""
+    names = {p.stem for p in PACKAGE.glob("*.py") if p.name != "__init__.py"}
+    names |= {p.name for p in PACKAGE.iterdir() if (p / "__init__.py").is_file()}
+    return names
+
+
+def readme_layout() -> str:
+    text = (ROOT / "README.md").read_text(encoding="utf-8")
+    match = re.search(r"^## How the code is laid out\n(.*?)^## ", text, re.S | re.M)
+    assert match, "README.md: no section '## How the code is laid out'"
+    return match.group(1)
+
+
+def architecture() -> str:
+    return (ROOT / "docs" / "architecture.md").read_text(encoding="utf-8")
+
+
+def test_readme_layout_names_every_top_level_module():
+    listed = set(re.findall(r"^      ([a-z_]+)(?:/|\.py)\s", readme_layout(), re.M))
+    assert top_level_names() <= listed, sorted(top_level_names() - listed)
+    for folder in ("tests", "benchmarks", "demo_fields", "docs"):
+        assert (ROOT / folder).is_dir()
+        assert re.search(rf"^    {folder}/", readme_layout(), re.M), folder
+
+
+def test_architecture_names_every_room_and_contract():
+    text = architecture()
+    rooms = set(re.findall(r"^\| `([a-z_]+)(?:/|\.py)` \|", text, re.M))
+    assert top_level_names() <= rooms, sorted(top_level_names() - rooms)
+    config = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))
+    for contract in config["tool"]["importlinter"]["contracts"]:
+        assert f"`{contract['id']}`" in text, contract["id"]
+    layers = config["tool"]["importlinter"]["contracts"][0]["layers"]
+    section = text.split("\n## Layers\n", 1)[1].split("\n## ", 1)[0]
+    drawn = [line.strip() for line in section.splitlines() if line.startswith("    ")]
+    assert drawn == [layer.strip("()") for layer in layers]
+
+
+@pytest.mark.parametrize(
+    "path",
+    sorted(
+        [ROOT / "README.md", ROOT / "docs" / "architecture.md", ROOT / "pyproject.toml",
+         ROOT / "Makefile", *PACKAGE.rglob("*.py")]
+    ),
+    ids=lambda p: p.relative_to(ROOT).as_posix(),
+)
+def test_no_reference_outside_the_repository(path):
+    text = path.read_text(encoding="utf-8")
+    for outside in ("../shared", "notes-checks", "DESIGN.md", "/work/", "/tmp/bash_jobs"):
+        assert outside not in text, f"{path.relative_to(ROOT)} mentions {outside!r}"
