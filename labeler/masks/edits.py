@@ -226,7 +226,9 @@ def polygon_patch(
         # half-open rule: the edge counts for rows in [min, max) so shared vertices count once
         lo, hi = min(a[0], b[0]), max(a[0], b[0])
         spans = (rr >= lo) & (rr < hi)
-        col_at = a[1] + (rr - a[0]) * (b[1] - a[1]) / (b[0] - a[0])
+        with np.errstate(over="ignore", invalid="ignore"):
+            # a near-horizontal edge overflows only on rows outside its span (masked below)
+            col_at = a[1] + (rr - a[0]) * (b[1] - a[1]) / (b[0] - a[0])
         inside ^= spans & (cc < col_at)
     return Patch(r0, c0, inside | on_edge)
 
