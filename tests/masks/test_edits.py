@@ -10,6 +10,7 @@ import pytest
 import shapely
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from scipy import ndimage as ndi
 from skimage.draw import disk
 from skimage.measure import label
 from skimage.segmentation import flood
@@ -23,6 +24,7 @@ from labeler.masks.edits import (
     stroke_patch,
 )
 from tests.common import zoo_diagonal, zoo_ring, zoo_square, zoo_two_touching
+from tests.masks.scenes import disc, plant_scene
 
 
 # ------------------------------------------------------------------ slow references
@@ -273,3 +275,27 @@ def test_region_errors():
         region_at(m, (0, 0), connectivity=6)
     with pytest.raises(ValueError, match="mask: expected a non-empty 2-D"):
         region_at(np.zeros(5, np.uint8), (0, 0))
+
+
+# ------------------------------------------------------------------ fill bounded by colour edges
+# Hand-made scenes (tests/masks/scenes.py): leaf-green plants on brown soil, about 64
+# Delta E*ab apart. An empty mask is all soil, so the same-class region of any click is
+# the whole tile; the colour edges must bound it (common practice, no source).
+@pytest.mark.xfail(strict=True, reason="a fill click floods the whole tile (issue 16)")
+def test_fill_click_on_a_plant_in_an_empty_mask_takes_the_plant():
+    plant = disc((48, 48), (24, 20), 8)
+    image = plant_scene((48, 48), [plant])
+    got = region_at(np.zeros((48, 48), np.uint8), (24, 20), image=image).full((48, 48))
+    assert not (got & ~ndi.binary_dilation(plant)).any()  # one pixel of slack on the edge
+    assert (got & plant).sum() / (got | plant).sum() >= 0.95
+
+
+@pytest.mark.xfail(strict=True, reason="a fill click floods the whole tile (issue 16)")
+def test_fill_click_on_soil_leaves_the_plants_out():
+    plants = [disc((48, 48), (14, 14), 6), disc((48, 48), (32, 34), 7)]
+    image = plant_scene((48, 48), plants)
+    got = region_at(np.zeros((48, 48), np.uint8), (40, 6), image=image).full((48, 48))
+    for plant in plants:
+        assert not (got & ndi.binary_erosion(plant)).any()
+    soil = ~ndi.binary_dilation(plants[0] | plants[1])
+    assert got[soil].all()
