@@ -121,9 +121,10 @@ def colour_regions(
     connectivity : {4, 8}
         Neighbourhood of flat areas and of the watershed.
     seed_points : sequence of (int, int)
-        ``(row, col)`` pixels that start a region of their own when they are edge pixels
-        (a click on a thin blade keeps the blade apart from the soil beside it). Points
-        on a flat area or outside ``within`` change nothing.
+        ``(row, col)`` pixels (clicks) that start a region of their own when they are edge
+        pixels whose colour lies more than ``2 * edge_threshold`` from the region they
+        would join: a click on a blade too thin for a flat core keeps the blade apart from
+        the soil beside it. Other points change nothing.
 
     Returns
     -------
@@ -146,26 +147,33 @@ def colour_regions(
     if connectivity not in _STRUCTURES:
         raise ValueError(f"connectivity: expected 4 or 8, got {connectivity!r}")
     structure = _STRUCTURES[connectivity]
-    gradient = colour_gradient(img, sigma=sigma)
-    flat = (gradient < edge_threshold) & inside
-    markers, n = ndi.label(flat, structure=structure)
-    markers = markers.astype(np.int32)
+    points = []
     for point in seed_points:
         r, c = int(point[0]), int(point[1])
         if not (0 <= r < shape[0] and 0 <= c < shape[1]):
             raise ValueError(
                 f"seed_points: expected pixels inside the image of shape {shape}, got ({r}, {c})"
             )
-        if inside[r, c] and markers[r, c] == 0:
+        points.append((r, c))
+    gradient = colour_gradient(img, sigma=sigma)
+    lab = rgb2lab(img)
+    flat = (gradient < edge_threshold) & inside
+    markers, n = ndi.label(flat, structure=structure)
+    markers = markers.astype(np.int32)
+    regions, means = _grow(lab, gradient, markers, n, inside, connectivity)
+    # a seed point on an edge pixel whose colour is far from the region it joined (more
+    # than twice the threshold: such a pixel alone would make a strong edge beside it)
+    # starts a region of its own, e.g. a click on a blade too thin for a flat core
+    apart = [
+        (r, c) for r, c in points
+        if inside[r, c] and markers[r, c] == 0
+        and np.linalg.norm(lab[r, c] - means[regions[r, c]]) > 2 * edge_threshold
+    ]
+    if apart:
+        for r, c in apart:
             n += 1
             markers[r, c] = n
-    if n:
-        regions = watershed(
-            gradient, markers, mask=inside, connectivity=1 if connectivity == 4 else 2
-        ).astype(np.int32)
-        regions = _nearest_colour_side(img, regions, markers, n, inside)
-    else:
-        regions = np.zeros(shape, np.int32)
+        regions, _ = _grow(lab, gradient, markers, n, inside, connectivity)
     rest = inside & (regions == 0)
     if rest.any():
         extra, _ = ndi.label(rest, structure=structure)
@@ -173,8 +181,41 @@ def colour_regions(
     return regions
 
 
+def _grow(
+    lab: np.ndarray,
+    gradient: np.ndarray,
+    markers: np.ndarray,
+    n: int,
+    inside: np.ndarray,
+    connectivity: int,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Watershed of the gradient from the markers, then edge pixels to their nearest
+    colour side; returns the regions and the mean Lab colour of each marker (row 0 unused).
+    """
+    means = _marker_means(lab, markers, n)
+    if n == 0:
+        return np.zeros(markers.shape, np.int32), means
+    regions = watershed(
+        gradient, markers, mask=inside, connectivity=1 if connectivity == 4 else 2
+    ).astype(np.int32)
+    return _nearest_colour_side(lab, regions, markers, means, inside), means
+
+
+def _marker_means(lab: np.ndarray, markers: np.ndarray, n: int) -> np.ndarray:
+    """Mean Lab colour of each marker, shape (n + 1, 3); row 0 (no marker) is zero."""
+    on = markers > 0
+    ids = markers[on]
+    counts = np.bincount(ids, minlength=n + 1).astype(np.float64)
+    means = np.zeros((n + 1, 3))
+    for ch in range(3):
+        means[:, ch] = np.bincount(ids, weights=lab[..., ch][on], minlength=n + 1)
+    means[1:] /= np.maximum(counts[1:], 1.0)[:, None]
+    return means
+
+
 def _nearest_colour_side(
-    image: np.ndarray, regions: np.ndarray, markers: np.ndarray, n: int, inside: np.ndarray
+    lab: np.ndarray, regions: np.ndarray, markers: np.ndarray, means: np.ndarray,
+    inside: np.ndarray,
 ) -> np.ndarray:
     """Hand each edge pixel to the bordering region whose marker colour is nearest.
 
@@ -183,13 +224,7 @@ def _nearest_colour_side(
     colour settles them. Candidates are the pixel's region and those of its four
     neighbours; the distance is Delta E*ab to the mean Lab colour of each marker.
     """
-    lab = rgb2lab(image)
-    ids = markers[markers > 0]
-    counts = np.bincount(ids, minlength=n + 1).astype(np.float64)
-    means = np.zeros((n + 1, 3))
-    for ch in range(3):
-        means[:, ch] = np.bincount(ids, weights=lab[..., ch][markers > 0], minlength=n + 1)
-    means[1:] /= np.maximum(counts[1:], 1.0)[:, None]
+    n = len(means) - 1
     edge = inside & (markers == 0) & (regions > 0) & (regions <= n)
     if not edge.any():
         return regions

@@ -106,14 +106,25 @@ def test_within_limits_the_regions():
     assert len(np.unique(regions[within])) == 2
 
 
-def test_seed_on_an_edge_pixel_starts_a_region_of_its_own():
-    image = _halves()
+def test_seed_on_a_blade_without_flat_core_starts_a_region_of_its_own():
+    blade = np.zeros((16, 20), bool)
+    blade[7:9, 2:18] = True  # two pixels wide: both lie on the edge, none is flat
+    image = plant_scene((16, 20), [blade], noise_sd=0)
     plain = colour_regions(image)
-    seeded = colour_regions(image, seed_points=[(4, 5)])  # (4, 5) lies on the step
-    assert seeded[4, 5] not in np.unique(plain)
-    assert (seeded > 0).all()
-    # a seed on a flat pixel changes nothing
-    np.testing.assert_array_equal(colour_regions(image, seed_points=[(4, 0)]), plain)
+    for k in np.unique(plain[blade]):  # the blade went to the soil around it
+        assert (~blade & (plain == k)).any()
+    seeded = colour_regions(image, seed_points=[(7, 9)])
+    np.testing.assert_array_equal(seeded == seeded[7, 9], blade)
+
+
+def test_seed_on_an_edge_pixel_of_a_plant_joins_the_plant():
+    bar = np.zeros((12, 16), bool)
+    bar[3:6, 2:11] = True  # three pixels tall: a flat core along the middle row
+    image = plant_scene((12, 16), [bar], noise_sd=0)
+    plain = colour_regions(image)
+    np.testing.assert_array_equal(plain == plain[4, 5], bar)
+    # (4, 3) lies on the edge at the bar's end but has the bar's colour: nothing changes
+    np.testing.assert_array_equal(colour_regions(image, seed_points=[(4, 3), (0, 0)]), plain)
 
 
 def test_within_without_any_flat_pixel_is_still_labelled():
@@ -154,8 +165,11 @@ def test_edge_pixels_go_to_the_nearest_colour_side_like_a_slow_loop():
     markers = np.where(rng.random((9, 10)) < 0.4, regions, 0).astype(np.int32)
     markers[0, 0], markers[0, 1], markers[0, 2] = 1, 2, 3  # every region has a marker
     inside = np.ones((9, 10), bool)
-    got = _nearest_colour_side(image, regions, markers, 3, inside)
     lab = rgb2lab(image)
+    table = np.zeros((4, 3))
+    for k in (1, 2, 3):
+        table[k] = lab[markers == k].mean(axis=0)
+    got = _nearest_colour_side(lab, regions, markers, table, inside)
     means = {k: lab[markers == k].mean(axis=0) for k in (1, 2, 3)}
     expected = regions.copy()
     for r in range(9):
