@@ -7,12 +7,9 @@ mask itself, so what it measures is the effort the editor asks of a person.
 
 Where it acts
     As in the interactive segmentation protocol of Xu et al. (2016, "Deep Interactive
-    Object Selection", CVPR) and its common reference implementations: the error regions
-    are the 4-connected sets of wrongly labelled pixels of one target class; the next
-    action goes to the largest of them (ties: the one whose first pixel comes first in
-    row-major order), at its interior point, the maximum of its Euclidean distance
-    transform with the tile border counting as outside (ties: first in row-major order),
-    with the target class there (:func:`next_click`).
+    Object Selection", CVPR) and its common reference implementations: at the interior
+    point of the largest error region, with the target class there
+    (:func:`labeler.demo.clicks.next_click`).
 
 What it does there (the policy)
     The tools are tried in the order of ``ProtocolOptions.tools`` (fill, scribble, brush
@@ -54,6 +51,7 @@ from scipy import ndimage as ndi
 
 from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
 from labeler.demo.annotator import AnnotatorProfile, simulate_annotation
+from labeler.demo.clicks import ErrorClick, next_click
 from labeler.demo.effort import NOC_CAP, NOC_THRESHOLD, noc_at, tile_iou
 from labeler.editor.state import EditorState
 from labeler.masks.edits import region_at, stroke_patch
@@ -62,17 +60,14 @@ __all__ = [
     "TOOLS",
     "AnnotatorHabits",
     "ProtocolOptions",
-    "ErrorClick",
     "ProtocolStep",
     "ProtocolRun",
-    "next_click",
     "run_protocol",
 ]
 
 #: The tools the simulated annotator may use, in their default order.
 TOOLS = ("fill", "scribble", "brush")
 _SOIL = 0
-_FOUR = ndi.generate_binary_structure(2, 1)
 
 
 @dataclass(frozen=True)
@@ -188,29 +183,6 @@ class ProtocolOptions:
 
 
 @dataclass(frozen=True)
-class ErrorClick:
-    """Where the protocol acts next.
-
-    Attributes
-    ----------
-    point : (int, int)
-        ``(row, col)`` interior point of the largest error region.
-    cls : int
-        Target class at the point.
-    depth_px : float
-        Distance transform value there (distance to the nearest pixel outside the
-        region, the tile border counting as outside), at least 1.
-    region : ndarray, shape (H, W), bool
-        The error region.
-    """
-
-    point: tuple[int, int]
-    cls: int
-    depth_px: float
-    region: np.ndarray = field(repr=False)
-
-
-@dataclass(frozen=True)
 class ProtocolStep:
     """One decision of the session: a tool used at a point.
 
@@ -263,52 +235,6 @@ class ProtocolRun:
     def noc(self, *, threshold: float = NOC_THRESHOLD, cap: int = NOC_CAP) -> int:
         """Actions to reach ``threshold`` (:func:`labeler.demo.effort.noc_at`)."""
         return noc_at(self.ious, threshold=threshold, cap=cap)
-
-
-def next_click(target: np.ndarray, mask: np.ndarray) -> ErrorClick | None:
-    """The interior point of the largest error region (see the module notes).
-
-    Parameters
-    ----------
-    target : ndarray, shape (H, W), uint8
-        The mask aimed at; 255 pixels are never errors.
-    mask : ndarray, shape (H, W), uint8
-        The current mask.
-
-    Returns
-    -------
-    ErrorClick or None
-        None when the mask equals the target wherever the target is labelled.
-    """
-    t = np.asarray(target)
-    m = np.asarray(mask)
-    if t.ndim != 2 or t.shape != m.shape:
-        raise ValueError(
-            f"mask: expected a 2-D mask of the target's shape {t.shape}, got shape {m.shape}"
-        )
-    error = (m != t) & (t != UNLABELLED)
-    if not error.any():
-        return None
-    regions = np.zeros(t.shape, np.int64)
-    n = 0
-    for cls in np.unique(t[error]):
-        lab, k = ndi.label(error & (t == cls), structure=_FOUR)
-        regions[lab > 0] = lab[lab > 0] + n
-        n += k
-    sizes = np.bincount(regions.ravel(), minlength=n + 1)[1:]
-    flat = np.arange(regions.size).reshape(regions.shape)
-    first = np.asarray(ndi.minimum(flat, regions, np.arange(1, n + 1)), np.int64)
-    best = int(np.lexsort((first, -sizes))[0]) + 1
-    region = regions == best
-    rows = np.flatnonzero(region.any(axis=1))
-    cols = np.flatnonzero(region.any(axis=0))
-    r0, c0 = int(rows[0]), int(cols[0])
-    crop = region[r0 : int(rows[-1]) + 1, c0 : int(cols[-1]) + 1]
-    # the tile border counts as outside: pad with False before the distance transform
-    depth = ndi.distance_transform_edt(np.pad(crop, 1))[1:-1, 1:-1]
-    i, j = np.unravel_index(int(depth.argmax()), depth.shape)
-    point = (r0 + int(i), c0 + int(j))
-    return ErrorClick(point, int(t[point]), float(depth[i, j]), region)
 
 
 def _axis(region: np.ndarray) -> np.ndarray:
