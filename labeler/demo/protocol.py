@@ -336,7 +336,10 @@ class _Session:
             if kept:
                 return
 
-    def _use(self, tool: str, click: ErrorClick, allowed: np.ndarray, before: float):
+    def _use(
+        self, tool: str, click: ErrorClick, allowed: np.ndarray, before: float
+    ) -> bool | None:
+        """Use one tool at the click: True kept, False taken back, None not used."""
         state, opts = self.state, self.options
         if tool == "fill":
             preview = region_at(

@@ -1,4 +1,5 @@
-"""Pure numpy mask work: edits, components, vegetation index, refinement, polygons.
+"""Pure numpy mask work: edits, components, vegetation index, colour regions, refinement,
+polygons.
 
 Nothing here opens files, imports torch or imports textual.
 """

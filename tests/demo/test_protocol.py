@@ -154,7 +154,8 @@ def _kappa_range(n, area, soil, p_flip, coverage=0.998):
     """The range of Cohen's kappa between two annotators that each call every one of ``n``
     equal small weeds crop with probability ``p_flip``, independently: the exact
     distribution over the multinomial outcomes per weed (both weed, both crop, one each
-    way), then its central ``coverage`` interval."""
+    way), kappa = (p_o - p_e) / (1 - p_e) of Cohen (1960) for each, then its central
+    ``coverage`` interval (derived here from the settings; common practice, no source)."""
     q = 1.0 - p_flip
     probs = (q * q, p_flip * p_flip, p_flip * q, q * p_flip)  # ww, cc, wc, cw
     values = []
