@@ -73,7 +73,7 @@ TOOLS: tuple[Tool, ...] = (
     Tool("brush", "d", "drag to paint the active class"),
     Tool("erase", "x", "drag to put the proposal back under the stroke"),
     Tool("polygon", "v", "click vertices; space, or a click on the first vertex, fills it"),
-    Tool("fill", "f", "click a region: all of it (4-connected) takes the active class"),
+    Tool("fill", "f", "click a region: its 4-connected part up to colour edges takes the class"),
     Tool("box", "o", "drag a box round one plant: GrabCut finds it, in the active class"),
     Tool("scribble", "s", "drag hints of the active class for refine (kept as a weak label)"),
 )

@@ -185,14 +185,17 @@ class EditingTools:
         return self._record([("mask", (rs.start, rs.stop, cs.start, cs.stop))])
 
     def fill_at(self, point: tuple[float, float]) -> bool:
-        """Give the whole connected region under a tile point the active class."""
+        """Give the connected same-class region under a tile point the active class, up to
+        the tile's strong colour edges (:func:`labeler.masks.edits.region_at`)."""
         self._finish_gesture()
         self.note_activity()
         self._count()
         r, c = int(round(point[0])), int(round(point[1]))
         if not (0 <= r < self._shape[0] and 0 <= c < self._shape[1]):
             return False
-        patch = region_at(self._mask, (r, c), connectivity=self.connectivity)
+        patch = region_at(
+            self._mask, (r, c), connectivity=self.connectivity, image=self._image
+        )
         rs, cs = patch.slices
         self._mask[rs, cs][patch.mask] = self._active
         return self._record([("mask", (rs.start, rs.stop, cs.start, cs.stop))])

@@ -1,4 +1,4 @@
-"""Footprints of hand edits: brush strokes, polygons and connected regions (pure numpy).
+"""Footprints of hand edits: brush strokes, polygons and connected regions (numpy, scipy).
 
 Coordinates are ``(row, col)`` in tile pixel index units: the centre of pixel ``(i, j)`` is
 the point ``(i, j)``, so the pixel covers ``[i - 0.5, i + 0.5) x [j - 0.5, j + 0.5)``.
@@ -16,6 +16,12 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import ndimage as ndi
+
+from labeler.masks.colour_regions import (
+    DEFAULT_EDGE_SIGMA,
+    DEFAULT_EDGE_THRESHOLD,
+    colour_regions,
+)
 
 __all__ = [
     "Patch",
@@ -248,12 +254,26 @@ _STRUCTURES = {
 }
 
 
-def region_at(mask: np.ndarray, seed: tuple[int, int], *, connectivity: int = 4) -> Patch:
-    """The connected region of equal class values that contains ``seed``.
+def region_at(
+    mask: np.ndarray,
+    seed: tuple[int, int],
+    *,
+    connectivity: int = 4,
+    image: np.ndarray | None = None,
+    edge_threshold: float = DEFAULT_EDGE_THRESHOLD,
+    edge_sigma: float = DEFAULT_EDGE_SIGMA,
+) -> Patch:
+    """The connected region of equal class values that contains ``seed``, bounded by
+    the strong colour edges of ``image`` when it is given.
 
-    Used by the fill tool: a click reclasses a whole proposed plant. Neighbours are
-    4-connected by default, so two plants that touch only at a corner stay separate;
-    ``connectivity=8`` joins diagonal neighbours too.
+    Used by the fill tool: a click reclasses a proposed plant, or labels a plant that
+    the mask does not have yet. Without ``image`` the region is the whole connected
+    same-class region, which on an empty (all-soil) mask is the whole tile; with
+    ``image`` it is cut at strong colour edges (:func:`labeler.masks.colour_regions.
+    colour_regions` inside the same-class region, the click a seed point), so a click
+    on a plant takes the plant and a click on soil takes the soil around it, never the
+    plants. Neighbours are 4-connected by default, so two plants that touch only at a
+    corner stay separate; ``connectivity=8`` joins diagonal neighbours too.
 
     Parameters
     ----------
@@ -263,11 +283,17 @@ def region_at(mask: np.ndarray, seed: tuple[int, int], *, connectivity: int = 4)
         ``(row, col)`` of the clicked pixel, inside the mask.
     connectivity : {4, 8}
         Neighbourhood of the flood.
+    image : ndarray, shape (H, W, 3), uint8, optional
+        The RGB tile whose colour edges bound the region.
+    edge_threshold : float
+        Colour gradient (Delta E*ab per pixel) that counts as a strong edge.
+    edge_sigma : float
+        Gaussian smoothing before the colour gradient, pixels.
 
     Returns
     -------
     Patch
-        The region, within its bounding box.
+        The region, within its bounding box; it always holds ``seed``.
     """
     m = np.asarray(mask)
     if m.ndim != 2 or m.size == 0:
@@ -279,10 +305,33 @@ def region_at(mask: np.ndarray, seed: tuple[int, int], *, connectivity: int = 4)
         raise ValueError(
             f"seed: expected a pixel inside the mask of shape {m.shape}, got ({r}, {c})"
         )
+    if image is not None:
+        img = np.asarray(image)
+        if img.shape[:2] != m.shape:
+            raise ValueError(
+                f"image: expected the tile of the mask, shape {m.shape} (H, W) plus 3 "
+                f"colours, got shape {img.shape}; pass the image of the same tile"
+            )
     labels, _ = ndi.label(m == m[r, c], structure=_STRUCTURES[connectivity])
     region = labels == labels[r, c]
+    rs, cs = _bounds(region)
+    if image is not None:
+        # the gradient needs a few pixels of context around the region
+        pad = int(np.ceil(4 * max(edge_sigma, 0.0))) + 1
+        ps = slice(max(rs.start - pad, 0), min(rs.stop + pad, m.shape[0]))
+        qs = slice(max(cs.start - pad, 0), min(cs.stop + pad, m.shape[1]))
+        regions = colour_regions(
+            img[ps, qs], within=region[ps, qs], edge_threshold=edge_threshold,
+            sigma=edge_sigma, connectivity=connectivity,
+            seed_points=[(r - ps.start, c - qs.start)],
+        )
+        region = np.zeros_like(region)
+        region[ps, qs] = regions == regions[r - ps.start, c - qs.start]
+        rs, cs = _bounds(region)
+    return Patch(rs.start, cs.start, region[rs, cs].copy())
+
+
+def _bounds(region: np.ndarray) -> tuple[slice, slice]:
     rows = np.flatnonzero(region.any(axis=1))
     cols = np.flatnonzero(region.any(axis=0))
-    rs = slice(int(rows[0]), int(rows[-1]) + 1)
-    cs = slice(int(cols[0]), int(cols[-1]) + 1)
-    return Patch(rs.start, cs.start, region[rs, cs].copy())
+    return slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1)

@@ -7,6 +7,13 @@ Pure array work (numpy, scipy, scikit-image; OpenCV only for the GrabCut maths).
 Refinement is local: only a band of ``band_px`` pixels around the scribbles is decided
 again; outside it the mask is kept, and the band's outer rim acts as seeds carrying the
 current mask's classes, so the new boundary joins the old mask smoothly.
+
+Refinement stops at strong colour edges: the band is cut into colour regions
+(:mod:`labeler.masks.colour_regions`), and a pixel may only take a class whose seeds
+(scribbles or rim) lie in its own region. A region seeded with one class takes it, a
+region seeded with several lets the random walker choose among them, and a region with
+no seed keeps the current mask. So one weed scribble on a plant labels the plant and
+never the soil beyond its edge, whether or not the result is snapped to superpixels.
 """
 
 from __future__ import annotations
@@ -19,6 +26,11 @@ from scipy import ndimage as ndi
 from skimage.segmentation import random_walker, slic
 
 from labeler.classes import UNLABELLED
+from labeler.masks.colour_regions import (
+    DEFAULT_EDGE_SIGMA,
+    DEFAULT_EDGE_THRESHOLD,
+    colour_regions,
+)
 
 __all__ = [
     "scribble_band",
@@ -97,6 +109,8 @@ def refine_random_walker(
     snap: bool = False,
     n_segments: int = 400,
     compactness: float = 10.0,
+    edge_threshold: float | None = DEFAULT_EDGE_THRESHOLD,
+    edge_sigma: float = DEFAULT_EDGE_SIGMA,
 ) -> np.ndarray:
     """Turn scribbles plus the current mask into a full mask by random walker.
 
@@ -104,8 +118,10 @@ def refine_random_walker(
     walker of Grady (2006), ``skimage.segmentation.random_walker(data, labels,
     beta=beta, mode=..., channel_axis=-1)``: scribbled pixels are seeds of their class,
     the rim just outside the band is seeded with the current mask, and the remaining band
-    pixels are unknown. Outside the band the mask is returned unchanged; scribbled pixels
-    always end with their scribble's class.
+    pixels are unknown. Each band pixel then takes, among the classes seeded in its colour
+    region (see the module notes), the one the walker finds most probable; a region
+    without seeds keeps the current mask. Outside the band the mask is returned
+    unchanged; scribbled pixels always end with their scribble's class.
 
     Parameters
     ----------
@@ -125,9 +141,15 @@ def refine_random_walker(
         pixels, which keeps the time predictable, and uses Jacobi-preconditioned
         conjugate gradients ("cg_j") above.
     snap : bool
-        Snap the result to SLIC superpixels (:func:`snap_to_superpixels`).
+        Snap the result to SLIC superpixels (:func:`snap_to_superpixels`); a snapped
+        class that is not seeded in a pixel's colour region is taken back.
     n_segments, compactness
         SLIC options when ``snap`` is true.
+    edge_threshold : float or None
+        Colour gradient (Delta E*ab per pixel) that bounds the colour regions; ``None``
+        treats the band as one region (the plain random walker).
+    edge_sigma : float
+        Gaussian smoothing before the colour gradient, pixels.
 
     Returns
     -------
@@ -151,43 +173,76 @@ def refine_random_walker(
     rim = ndi.binary_dilation(b) & ~b
     rim_ok = rim & (sub_m != UNLABELLED)
     classes = np.unique(np.concatenate([sub_s[seeded], sub_m[rim_ok]]))
-    if len(classes) == 1:
-        # one class among all seeds: the whole band takes it
-        out[rs, cs][b] = classes[0]
-        return out
     lut = np.zeros(256, np.int32)
-    lut[classes] = np.arange(1, len(classes) + 1, dtype=np.int32)
-    labels = np.full(b.shape, -1, np.int32)  # -1: outside band and rim, left out of the graph
-    labels[b] = 0
-    labels[rim_ok] = lut[sub_m[rim_ok]]
-    labels[seeded] = lut[sub_s[seeded]]
-    unknown = int((labels == 0).sum())
-    if unknown == 0:
-        out[rs, cs][seeded] = sub_s[seeded]
-        return out
+    lut[classes] = np.arange(len(classes), dtype=np.int32)
+    seed_class = np.full(b.shape, -1, np.int32)  # index into classes; -1: no seed
+    seed_class[rim_ok] = lut[sub_m[rim_ok]]
+    seed_class[seeded] = lut[sub_s[seeded]]
+    if edge_threshold is None:
+        regions = np.ones(b.shape, np.int32)
+    else:
+        regions = colour_regions(img[rs, cs], edge_threshold=edge_threshold, sigma=edge_sigma)
+    # allowed[region, k]: class k has a seed inside the region
+    allowed = np.zeros((int(regions.max()) + 1, len(classes)), bool)
+    has_seed = seed_class >= 0
+    allowed[regions[has_seed], seed_class[has_seed]] = True
+    n_allowed = allowed.sum(axis=1)[regions]
+    result = sub_m.copy()
+    single = b & (n_allowed == 1)
+    result[single] = classes[allowed[regions[single]].argmax(axis=1)]
+    several = b & (n_allowed >= 2) & ~seeded
+    if several.any():
+        prob = _walker_probabilities(img[rs, cs], b, seed_class, len(classes), beta, mode)
+        prob = np.where(allowed[regions].transpose(2, 0, 1), prob, -1.0)
+        best = prob.argmax(axis=0)
+        decided = several & (prob.max(axis=0) > 0)  # pixels cut off from every seed stay
+        result[decided] = classes[best[decided]]
+    if snap:
+        snapped = snap_to_superpixels(
+            img[rs, cs], result, region=b, n_segments=n_segments, compactness=compactness
+        )
+        k = lut[snapped]
+        known = np.isin(snapped, classes)
+        ok = known & allowed[regions, np.where(known, k, 0)]
+        result = np.where(ok & (n_allowed > 0), snapped, result)
+    result[seeded] = sub_s[seeded]
+    out[rs, cs] = np.where(b, result, sub_m)
+    return out
+
+
+def _walker_probabilities(
+    image: np.ndarray,
+    band: np.ndarray,
+    seed_class: np.ndarray,
+    n_classes: int,
+    beta: float,
+    mode: str,
+) -> np.ndarray:
+    """Random-walker probabilities ``(n_classes, h, w)`` on the band; 0 where undecided."""
+    labels = np.full(band.shape, -1, np.int32)  # -1: outside band and rim, left out
+    labels[band] = 0
+    labels[seed_class >= 0] = seed_class[seed_class >= 0] + 1
+    prob = np.zeros((n_classes, *band.shape))
+    unknown = labels == 0
+    # scikit-image solves nothing (and returns another layout) when no unknown pixel is
+    # joined to a seed; those pixels stay undecided
+    reachable = ndi.binary_propagation(labels > 0, mask=labels >= 0) & unknown
+    if not reachable.any():
+        return prob
     solver = mode
     if mode == "auto":
-        solver = "bf" if unknown <= DIRECT_SOLVE_MAX else "cg_j"
+        solver = "bf" if int(unknown.sum()) <= DIRECT_SOLVE_MAX else "cg_j"
     with warnings.catch_warnings():
         # the iterative solvers stop at tol=1e-3, so probabilities may leave [0, 1] by a
         # little; only their argmax is used, which that does not change in practice
         warnings.filterwarnings("ignore", message="The probability range is outside")
         warnings.filterwarnings("ignore", message="Conjugate gradient convergence")
-        # pixels cut off from every seed by the band's shape stay as they were
-        warnings.filterwarnings("ignore", message="All unlabeled pixels are isolated")
         walked = random_walker(
-            img[rs, cs], labels, beta=beta, mode=solver, channel_axis=-1
+            image, labels, beta=beta, mode=solver, channel_axis=-1, return_full_prob=True
         )
-    decided = b & (walked > 0)
-    result = sub_m.copy()
-    result[decided] = classes[walked[decided] - 1]
-    if snap:
-        result = snap_to_superpixels(
-            img[rs, cs], result, region=b, n_segments=n_segments, compactness=compactness
-        )
-    result[seeded] = sub_s[seeded]
-    out[rs, cs] = np.where(b, result, sub_m)
-    return out
+    present = np.unique(labels[labels > 0]) - 1  # scikit-image numbers present labels only
+    prob[present] = walked
+    return prob
 
 
 def snap_to_superpixels(

@@ -49,12 +49,29 @@ def test_fill_reclasses_one_connected_region():
 
 
 def test_fill_connectivity_4_and_8():
-    four = make_state(zoo_diagonal(), shape=(6, 6), active_class=2)
+    # a flat tile: no colour edge limits the fill, only the mask's connectivity
+    flat = np.full((6, 6, 3), 128, np.uint8)
+    four = EditorState(flat, zoo_diagonal(), active_class=2, view_shape=(64, 64))
     four.fill_at((2, 2))
     assert (four.mask == 2).sum() == 1
-    eight = make_state(zoo_diagonal(), shape=(6, 6), active_class=2, connectivity=8)
+    eight = EditorState(
+        flat, zoo_diagonal(), active_class=2, connectivity=8, view_shape=(64, 64)
+    )
     eight.fill_at((2, 2))
     assert (eight.mask == 2).sum() == 6
+
+
+def test_fill_on_an_empty_mask_stops_at_the_plant_edge():
+    # a green 5 x 5 plant on brown soil, nothing labelled yet: a click on the plant takes
+    # the plant only, never the whole tile (hand-made scene)
+    rgb = np.zeros((12, 12, 3), np.uint8)
+    rgb[:] = (120, 90, 60)
+    rgb[3:8, 4:9] = (40, 160, 40)
+    s = EditorState(rgb, np.zeros((12, 12), np.uint8), active_class=1, view_shape=(64, 64))
+    s.fill_at((5, 6))
+    expected = np.zeros((12, 12), np.uint8)
+    expected[3:8, 4:9] = 1
+    np.testing.assert_array_equal(s.mask, expected)
 
 
 def test_polygon_fills_with_the_active_class():

@@ -10,6 +10,7 @@ import pytest
 import shapely
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from scipy import ndimage as ndi
 from skimage.draw import disk
 from skimage.measure import label
 from skimage.segmentation import flood
@@ -23,6 +24,7 @@ from labeler.masks.edits import (
     stroke_patch,
 )
 from tests.common import zoo_diagonal, zoo_ring, zoo_square, zoo_two_touching
+from tests.masks.scenes import disc, plant_scene
 
 
 # ------------------------------------------------------------------ slow references
@@ -273,3 +275,60 @@ def test_region_errors():
         region_at(m, (0, 0), connectivity=6)
     with pytest.raises(ValueError, match="mask: expected a non-empty 2-D"):
         region_at(np.zeros(5, np.uint8), (0, 0))
+
+
+# ------------------------------------------------------------------ fill bounded by colour edges
+# Hand-made scenes (tests/masks/scenes.py): leaf-green plants on brown soil, about 64
+# Delta E*ab apart. An empty mask is all soil, so the same-class region of any click is
+# the whole tile; the colour edges must bound it (common practice, no source).
+def test_fill_click_on_a_plant_in_an_empty_mask_takes_the_plant():
+    plant = disc((48, 48), (24, 20), 8)
+    image = plant_scene((48, 48), [plant])
+    got = region_at(np.zeros((48, 48), np.uint8), (24, 20), image=image).full((48, 48))
+    assert not (got & ~ndi.binary_dilation(plant)).any()  # one pixel of slack on the edge
+    assert (got & plant).sum() / (got | plant).sum() >= 0.95
+
+
+def test_fill_click_on_soil_leaves_the_plants_out():
+    plants = [disc((48, 48), (14, 14), 6), disc((48, 48), (32, 34), 7)]
+    image = plant_scene((48, 48), plants)
+    got = region_at(np.zeros((48, 48), np.uint8), (40, 6), image=image).full((48, 48))
+    for plant in plants:
+        assert not (got & ndi.binary_erosion(plant)).any()
+    soil = ~ndi.binary_dilation(plants[0] | plants[1])
+    assert got[soil].all()
+
+
+def test_fill_on_a_flat_image_is_the_same_class_region():
+    rng = np.random.default_rng(7)
+    flat = np.full((9, 11, 3), 128, np.uint8)  # no colour edge at all
+    for conn in (4, 8):
+        m = rng.integers(0, 3, size=(9, 11)).astype(np.uint8)
+        seed = (int(rng.integers(0, 9)), int(rng.integers(0, 11)))
+        got = region_at(m, seed, connectivity=conn, image=flat).full(m.shape)
+        # oracle: skimage.segmentation.flood (connectivity 1 = 4-neighbours, 2 = 8)
+        np.testing.assert_array_equal(got, flood(m, seed, connectivity=1 if conn == 4 else 2))
+
+
+def test_fill_with_the_image_stays_inside_the_same_class_region():
+    rng = np.random.default_rng(8)
+    for _ in range(8):
+        m = rng.integers(0, 2, size=(16, 16)).astype(np.uint8)
+        image = rng.integers(0, 256, size=(16, 16, 3), dtype=np.uint8)
+        seed = (int(rng.integers(0, 16)), int(rng.integers(0, 16)))
+        got = region_at(m, seed, image=image).full(m.shape)
+        assert got[seed] and not (got & ~flood(m, seed, connectivity=1)).any()
+
+
+def test_fill_click_on_a_thin_blade_takes_the_blade():
+    blade = np.zeros((32, 40), bool)
+    blade[15:17, 4:36] = True  # two pixels wide
+    image = plant_scene((32, 40), [blade], noise_sd=3)
+    got = region_at(np.zeros((32, 40), np.uint8), (15, 20), image=image).full((32, 40))
+    assert not (got & ~ndi.binary_dilation(blade)).any()
+    assert got[blade].mean() >= 0.9
+
+
+def test_fill_image_must_be_the_tile_of_the_mask():
+    with pytest.raises(ValueError, match=r"image: expected the tile of the mask, shape \(8, 8\)"):
+        region_at(zoo_square(), (0, 0), image=np.zeros((8, 9, 3), np.uint8))

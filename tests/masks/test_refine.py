@@ -14,6 +14,7 @@ from labeler.masks.refine import (
     scribble_band,
     snap_to_superpixels,
 )
+from tests.masks.scenes import disc, plant_scene
 
 
 def _iou(a: np.ndarray, b: np.ndarray) -> float:
@@ -204,3 +205,94 @@ def test_rim_pixels_without_label_give_no_seed():
     assert set(np.unique(out[band]).tolist()) <= {1, 2}
     assert (out[~band] == 255).all()
     assert ndi.label(out == 1)[0].max() >= 1
+
+
+# ------------------------------------------------------------------ strong colour edges
+# Hand-made scenes (tests/masks/scenes.py): a leaf-green plant on brown soil, about 64
+# Delta E*ab apart. One weed scribble on the plant must never turn soil beyond the plant's
+# edge into weed (common practice, no source: a class stops at a strong colour edge).
+def _one_weed_scribble(shape, centre):
+    s = np.full(shape, 255, np.uint8)
+    s[centre[0], centre[1] - 3 : centre[1] + 4] = 2
+    return s
+
+
+def _soil_turned_weed(out, plant):
+    beyond = ~ndi.binary_dilation(plant)  # one pixel of slack on the blended edge
+    return int(((out == 2) & beyond).sum())
+
+
+@pytest.mark.parametrize("snap", [False, True])
+def test_weed_scribble_on_a_weak_label_tile_keeps_to_the_plant(snap):
+    # the tile holds weak labels only (255 everywhere): no soil seed lies on the band's rim
+    plant = disc((64, 64), (32, 32), 9)
+    image = plant_scene((64, 64), [plant])
+    mask = np.full((64, 64), 255, np.uint8)
+    out = refine_random_walker(image, mask, _one_weed_scribble((64, 64), (32, 32)), snap=snap)
+    assert _soil_turned_weed(out, plant) == 0
+    assert _iou(out == 2, plant) >= 0.9
+
+
+@pytest.mark.parametrize("snap", [False, True])
+def test_weed_scribble_with_a_band_wider_than_the_tile_keeps_to_the_plant(snap):
+    # the band covers the whole tile, so there is no rim and no soil seed at all
+    plant = disc((40, 40), (20, 20), 8)
+    image = plant_scene((40, 40), [plant])
+    mask = np.zeros((40, 40), np.uint8)
+    out = refine_random_walker(
+        image, mask, _one_weed_scribble((40, 40), (20, 20)), band_px=40, snap=snap
+    )
+    assert _soil_turned_weed(out, plant) == 0
+    assert _iou(out == 2, plant) >= 0.9
+
+
+def test_snapped_weed_scribble_on_soil_mask_keeps_to_the_plant():
+    plant = disc((64, 64), (32, 32), 9)
+    image = plant_scene((64, 64), [plant])
+    mask = np.zeros((64, 64), np.uint8)
+    out = refine_random_walker(image, mask, _one_weed_scribble((64, 64), (32, 32)), snap=True)
+    assert _soil_turned_weed(out, plant) == 0
+    assert _iou(out == 2, plant) >= 0.9
+
+
+def test_weed_scribble_on_soil_mask_keeps_to_the_plant_without_snapping():
+    plant = disc((64, 64), (32, 32), 9)
+    image = plant_scene((64, 64), [plant])
+    mask = np.zeros((64, 64), np.uint8)
+    out = refine_random_walker(image, mask, _one_weed_scribble((64, 64), (32, 32)))
+    assert _soil_turned_weed(out, plant) == 0
+    assert _iou(out == 2, plant) >= 0.9
+
+
+def test_weed_scribble_on_a_blurred_plant_takes_the_whole_plant():
+    # lens softness blends the edge over a few pixels; the colour region still ends there,
+    # so one scribble labels the plant and not only the part near the scribble
+    plant = disc((64, 64), (32, 32), 10)
+    image = plant_scene((64, 64), [plant], blur_sigma=1.0)
+    mask = np.zeros((64, 64), np.uint8)
+    out = refine_random_walker(image, mask, _one_weed_scribble((64, 64), (32, 32)), band_px=12)
+    assert _soil_turned_weed(out, plant) == 0
+    assert _iou(out == 2, plant) >= 0.95
+
+
+def test_a_second_plant_without_scribble_keeps_its_class():
+    first, second = disc((64, 64), (20, 20), 7), disc((64, 64), (40, 40), 7)
+    image = plant_scene((64, 64), [first, second])
+    mask = np.zeros((64, 64), np.uint8)
+    mask[second] = 1  # proposed as crop; the band around the scribble covers it
+    scribbles = _one_weed_scribble((64, 64), (20, 20))
+    assert scribble_band(scribbles, band_px=40)[second].all()
+    out = refine_random_walker(image, mask, scribbles, band_px=40)
+    np.testing.assert_array_equal(out[second], 1)
+    assert _iou(out == 2, first) >= 0.9
+
+
+def test_without_edge_threshold_refine_is_the_plain_random_walker():
+    # the weak-label tile of the test above: one class among all seeds fills the band
+    plant = disc((64, 64), (32, 32), 9)
+    image = plant_scene((64, 64), [plant])
+    scribbles = _one_weed_scribble((64, 64), (32, 32))
+    mask = np.full((64, 64), 255, np.uint8)
+    out = refine_random_walker(image, mask, scribbles, edge_threshold=None)
+    band = scribble_band(scribbles, band_px=24)
+    np.testing.assert_array_equal(out, np.where(band, 2, 255).astype(np.uint8))

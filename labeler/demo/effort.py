@@ -1,0 +1,159 @@
+"""Annotation effort of simulated sessions: tile IoU and the number of actions to IoU 0.90.
+
+NoC@90 ("number of clicks" to reach an IoU of 0.90) is the effort measure of the
+interactive segmentation literature since Xu et al. (2016, "Deep Interactive Object
+Selection", CVPR): a simulated user acts until the IoU with the truth reaches 0.90, at
+most 20 times, and a session that never gets there counts as 20. Here an action is one
+counted editor action (:attr:`labeler.editor.state.EditorState.actions`: a fill click, a
+stroke, a refine, an undo), the same count the product records for every save, and the
+IoU is :func:`tile_iou`. A tile whose starting mask is already good enough costs 0.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from labeler.classes import UNLABELLED
+from labeler.metrics import confusion_matrix, iou_per_class
+
+__all__ = [
+    "NOC_THRESHOLD",
+    "NOC_CAP",
+    "tile_iou",
+    "noc_at",
+    "NocSummary",
+    "summarise_noc",
+]
+
+#: IoU a session must reach.
+NOC_THRESHOLD = 0.90
+#: Most actions counted per tile (a session that does not reach the IoU counts this many).
+NOC_CAP = 20
+
+
+def tile_iou(truth: np.ndarray, mask: np.ndarray, *, n_classes: int) -> float:
+    """Mean IoU of a tile's mask against its truth, over the classes present.
+
+    The mean runs over the classes present in the truth or in the mask (Long, Shelhamer &
+    Darrell 2015, as :func:`labeler.agreement.mean_iou`), from
+    :func:`labeler.agreement.iou_per_class`. Truth pixels of 255 (unlabelled)
+    are left out; a mask pixel of 255 where the truth has a class counts as wrong (it
+    labels nothing).
+
+    Parameters
+    ----------
+    truth : ndarray, shape (H, W), uint8
+        Class indices 0..n_classes-1, or 255.
+    mask : ndarray, shape (H, W), uint8
+        Class indices 0..n_classes-1, or 255.
+    n_classes : int
+        Number of classes K.
+
+    Returns
+    -------
+    iou : float
+        In 0..1; 1.0 when the truth holds no labelled pixel.
+    """
+    t = np.asarray(truth)
+    m = np.asarray(mask)
+    if t.shape != m.shape or t.ndim != 2:
+        raise ValueError(
+            f"mask: expected a 2-D mask of the truth's shape {t.shape}, got shape {m.shape}"
+        )
+    labelled = t != UNLABELLED
+    if not labelled.any():
+        return 1.0
+    # an unlabelled mask pixel becomes an extra class K that no truth pixel holds: a
+    # false negative of its truth class; class K itself stays out of the mean
+    m = np.where(m == UNLABELLED, n_classes, m)
+    cm = confusion_matrix(t[labelled], m[labelled], n_classes=n_classes + 1, ignore=None)
+    iou = iou_per_class(cm)[:n_classes]
+    present = ~np.isnan(iou)
+    return float(iou[present].mean()) if present.any() else 1.0
+
+
+def noc_at(
+    ious: Sequence[float], *, threshold: float = NOC_THRESHOLD, cap: int = NOC_CAP
+) -> int:
+    """Actions needed to reach ``threshold``: the first ``n`` with ``ious[n] >= threshold``.
+
+    Parameters
+    ----------
+    ious : sequence of float
+        The tile IoU after 0, 1, 2, ... actions (``ious[0]``: the starting mask).
+    threshold : float
+        IoU to reach, in 0..1.
+    cap : int
+        Most actions counted; a session that does not reach ``threshold`` within ``cap``
+        actions counts ``cap``.
+
+    Returns
+    -------
+    n : int
+        In 0..cap.
+    """
+    if not 0.0 <= threshold <= 1.0:
+        raise ValueError(f"threshold: expected an IoU in 0..1, got {threshold}")
+    if cap < 1:
+        raise ValueError(f"cap: expected at least 1 action, got {cap}")
+    if len(ious) == 0:
+        raise ValueError("ious: expected the IoU before the first action at least, got none")
+    for n, value in enumerate(ious[: cap + 1]):
+        if value >= threshold:
+            return n
+    return cap
+
+
+@dataclass(frozen=True)
+class NocSummary:
+    """NoC figures over a set of tiles.
+
+    Attributes
+    ----------
+    mean : float
+        Mean actions per tile (capped tiles count ``cap``).
+    n_tiles : int
+    n_capped : int
+        Tiles counted ``cap`` actions: they reached the threshold only at the cap, or
+        never.
+    n_unchanged : int
+        Tiles good enough before any action (0 actions).
+    cap : int
+    """
+
+    mean: float
+    n_tiles: int
+    n_capped: int
+    n_unchanged: int
+    cap: int
+
+
+def summarise_noc(
+    runs: Sequence[Sequence[float]], *, threshold: float = NOC_THRESHOLD, cap: int = NOC_CAP
+) -> NocSummary:
+    """:func:`noc_at` over several tiles' IoU traces, summarised.
+
+    Parameters
+    ----------
+    runs : sequence of sequences of float
+        One IoU trace per tile (see :func:`noc_at`); at least one.
+    threshold, cap
+        As :func:`noc_at`.
+
+    Returns
+    -------
+    NocSummary
+    """
+    if len(runs) == 0:
+        raise ValueError("runs: expected the IoU trace of at least one tile, got none")
+    counts = np.array([noc_at(r, threshold=threshold, cap=cap) for r in runs])
+    return NocSummary(
+        mean=float(counts.mean()),
+        n_tiles=int(counts.size),
+        n_capped=int((counts == cap).sum()),
+        n_unchanged=int((counts == 0).sum()),
+        cap=int(cap),
+    )

@@ -1,0 +1,442 @@
+"""A simulated annotator that corrects a tile in the editor by the interactive protocol.
+
+It stands in for a person at the mask editor: it works only through the editor's own
+operations (:class:`labeler.editor.state.EditorState`: ``active_class``, ``radius``,
+``fill_at``, ``scribble``, ``refine``, ``paint``, ``undo``, ``mask``) and never writes a
+mask itself, so what it measures is the effort the editor asks of a person.
+
+Where it acts
+    As in the interactive segmentation protocol of Xu et al. (2016, "Deep Interactive
+    Object Selection", CVPR) and its common reference implementations: at the interior
+    point of the largest error region, with the target class there
+    (:func:`labeler.demo.clicks.next_click`).
+
+What it does there (the policy)
+    The tools are tried in the order of ``ProtocolOptions.tools`` (fill, scribble, brush
+    by default):
+
+    * **fill**: used when the region the fill would take (the same-class region of the
+      mask bounded by colour edges, :func:`labeler.masks.edits.region_at` on the tile
+      image, as a person who knows the tool expects) is at least ``fill_precision`` of
+      the target class; then one fill click.
+    * **scribble**: a scribble of the target class through the interior point along the
+      error region's long axis, kept inside the target class, then refine (two actions).
+    * **brush**: a brush stroke along the same line, its radius the interior depth less
+      half a pixel, so it covers the point's neighbourhood and never leaves the target
+      class. It always helps, so it ends the list.
+
+    A fill or refine that does not raise the tile's IoU with the target is taken back with
+    undo (one more action), as a person takes back an edit that made things worse, and the
+    next tool is tried at the same point. The session stops when the IoU reaches
+    ``target_iou`` (0.90) or after ``max_actions`` (20) counted editor actions.
+
+Noise (:class:`AnnotatorHabits`)
+    A person works towards the mask they see: the target is the truth changed by the
+    annotator's habits, drawn once per session from a seeded generator: a systematic edge
+    habit (``edge_bias_px``: plants drawn larger, or smaller, by whole pixels) and the
+    errors of :class:`labeler.demo.annotator.AnnotatorProfile` (local boundary shifts,
+    missed small weeds, weed/crop confusion on small plants, lesions missed or enlarged).
+    Several annotators with their own generators then differ as people do.
+
+IoU is :func:`labeler.demo.effort.tile_iou`: the mean over the classes present in the
+target or the mask.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import ndimage as ndi
+
+from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
+from labeler.demo.annotator import AnnotatorProfile, simulate_annotation
+from labeler.demo.clicks import ErrorClick, next_click
+from labeler.demo.effort import NOC_CAP, NOC_THRESHOLD, noc_at, tile_iou
+from labeler.editor.state import EditorState
+from labeler.masks.edits import region_at, stroke_patch
+
+__all__ = [
+    "TOOLS",
+    "AnnotatorHabits",
+    "ProtocolOptions",
+    "ProtocolStep",
+    "ProtocolRun",
+    "run_protocol",
+]
+
+#: The tools the simulated annotator may use, in their default order.
+TOOLS = ("fill", "scribble", "brush")
+_SOIL = 0
+
+
+@dataclass(frozen=True)
+class AnnotatorHabits:
+    """How one simulated annotator sees a tile (see the module notes).
+
+    Attributes
+    ----------
+    profile : AnnotatorProfile or None
+        Boundary shifts, missed small weeds, weed/crop confusion on small plants, lesion
+        errors; ``None``: none of these.
+    edge_bias_px : int
+        Systematic edge habit: plants (every class but soil) grown into the soil by this
+        many pixels (Euclidean), or shrunk when negative; -4..4.
+    """
+
+    profile: AnnotatorProfile | None = None
+    edge_bias_px: int = 0
+
+    def __post_init__(self) -> None:
+        if int(self.edge_bias_px) != self.edge_bias_px or abs(self.edge_bias_px) > 4:
+            raise ValueError(
+                f"edge_bias_px: expected a whole number of pixels in -4..4, got "
+                f"{self.edge_bias_px}"
+            )
+
+    def perceive(self, truth: np.ndarray, *, rng: np.random.Generator) -> np.ndarray:
+        """The mask this annotator works towards on a tile of ``truth``.
+
+        Parameters
+        ----------
+        truth : ndarray, shape (H, W), uint8
+        rng : numpy.random.Generator
+            Used only when ``profile`` is set.
+
+        Returns
+        -------
+        target : ndarray, shape (H, W), uint8
+            255 (unlabelled) wherever the truth holds it.
+        """
+        t = np.asarray(truth)
+        out = t.copy() if self.profile is None else simulate_annotation(
+            t, rng=rng, profile=self.profile
+        )
+        bias = int(self.edge_bias_px)
+        labelled = t != UNLABELLED
+        plant = (out != _SOIL) & labelled
+        if bias > 0 and plant.any():
+            dist, (ir, ic) = ndi.distance_transform_edt(~plant, return_indices=True)
+            grow = labelled & ~plant & (dist <= bias)
+            out[grow] = out[ir[grow], ic[grow]]
+        elif bias < 0:
+            soil = ~plant
+            if soil.any():
+                dist = ndi.distance_transform_edt(~soil)
+                out[plant & (dist <= -bias)] = _SOIL
+        out[~labelled] = UNLABELLED
+        return out
+
+
+@dataclass(frozen=True)
+class ProtocolOptions:
+    """The session's rules (see the module notes).
+
+    Attributes
+    ----------
+    target_iou : float
+        Stop at this IoU with the target (0.90).
+    max_actions : int
+        Stop after this many counted editor actions (20).
+    tools : tuple of str
+        Tools to try, in order, from :data:`TOOLS`.
+    fill_precision : float
+        Least share of the target class in the region a fill would take for a fill.
+    scribble_radius_px : float
+        Radius of a scribble stroke (at most the interior depth less half a pixel).
+    stroke_length_px : float
+        Longest stroke along the error region's axis.
+    snap : bool
+        Refine with superpixel snapping.
+    """
+
+    target_iou: float = NOC_THRESHOLD
+    max_actions: int = NOC_CAP
+    tools: tuple[str, ...] = TOOLS
+    fill_precision: float = 0.9
+    scribble_radius_px: float = 1.5
+    stroke_length_px: float = 48.0
+    snap: bool = False
+
+    def __post_init__(self) -> None:
+        if not 0.0 < self.target_iou <= 1.0:
+            raise ValueError(f"target_iou: expected an IoU in (0, 1], got {self.target_iou}")
+        if self.max_actions < 1:
+            raise ValueError(f"max_actions: expected at least 1, got {self.max_actions}")
+        bad = [t for t in self.tools if t not in TOOLS]
+        if not self.tools or bad:
+            raise ValueError(
+                f"tools: expected one or more of {', '.join(TOOLS)}, got {self.tools!r}"
+            )
+        if not 0.0 < self.fill_precision <= 1.0:
+            raise ValueError(
+                f"fill_precision: expected a share in (0, 1], got {self.fill_precision}"
+            )
+        if self.scribble_radius_px < 0.5:
+            raise ValueError(
+                f"scribble_radius_px: expected at least 0.5, got {self.scribble_radius_px}"
+            )
+        if self.stroke_length_px < 0:
+            raise ValueError(
+                f"stroke_length_px: expected at least 0, got {self.stroke_length_px}"
+            )
+
+
+@dataclass(frozen=True)
+class ProtocolStep:
+    """One decision of the session: a tool used at a point.
+
+    Attributes
+    ----------
+    tool : str
+    point : (int, int)
+    cls : int
+    actions : int
+        Editor actions it cost (undo included).
+    kept : bool
+        False when it was taken back with undo.
+    """
+
+    tool: str
+    point: tuple[int, int]
+    cls: int
+    actions: int
+    kept: bool
+
+
+@dataclass(frozen=True)
+class ProtocolRun:
+    """The outcome of one simulated session on one tile.
+
+    Attributes
+    ----------
+    mask : ndarray, shape (H, W), uint8
+        The editor's mask at the end.
+    target : ndarray, shape (H, W), uint8
+        The mask the annotator worked towards (the truth seen through the habits).
+    ious : tuple of float
+        Tile IoU with the target after 0, 1, 2, ... counted editor actions.
+    steps : tuple of ProtocolStep
+    iou_truth : float
+        Tile IoU of the final mask with the truth.
+    """
+
+    mask: np.ndarray = field(repr=False)
+    target: np.ndarray = field(repr=False)
+    ious: tuple[float, ...]
+    steps: tuple[ProtocolStep, ...]
+    iou_truth: float
+
+    @property
+    def actions(self) -> int:
+        """Counted editor actions."""
+        return len(self.ious) - 1
+
+    def noc(self, *, threshold: float = NOC_THRESHOLD, cap: int = NOC_CAP) -> int:
+        """Actions to reach ``threshold`` (:func:`labeler.demo.effort.noc_at`)."""
+        return noc_at(self.ious, threshold=threshold, cap=cap)
+
+
+def _axis(region: np.ndarray) -> np.ndarray:
+    """Unit ``(row, col)`` direction of the region's long axis (principal component)."""
+    coords = np.argwhere(region).astype(np.float64)
+    if len(coords) < 2:
+        return np.array([0.0, 1.0])
+    cov = np.cov(coords.T)
+    _, vectors = np.linalg.eigh(cov)
+    return vectors[:, -1]
+
+
+def _stroke_line(
+    allowed: np.ndarray, click: ErrorClick, *, radius: float, length: float
+) -> list[tuple[float, float]]:
+    """Samples of a stroke through the click along the region's axis.
+
+    From the interior point the stroke extends one pixel at a time in both directions
+    while the footprint of the new segment (:func:`labeler.masks.edits.stroke_patch`,
+    what the editor paints) stays inside ``allowed``; at most ``length / 2`` each way.
+    """
+    shape = allowed.shape
+    direction = _axis(click.region)
+    start = (float(click.point[0]), float(click.point[1]))
+    sides: list[list[tuple[float, float]]] = []
+    for sign in (-1.0, 1.0):
+        side: list[tuple[float, float]] = []
+        last = start
+        for step in range(1, int(length // 2) + 1):
+            q = np.rint(np.asarray(start) + sign * step * direction)
+            p = (float(q[0]), float(q[1]))
+            if p == last:
+                continue
+            if not (0 <= p[0] < shape[0] and 0 <= p[1] < shape[1]):
+                break
+            patch = stroke_patch([last, p], radius=radius, shape=shape)
+            if not allowed[patch.slices][patch.mask].all():
+                break
+            side.append(p)
+            last = p
+        sides.append(side)
+    return [*reversed(sides[0]), start, *sides[1]]
+
+
+class _Session:
+    """The loop of one tile: the editor state, the target and the IoU trace."""
+
+    def __init__(self, state: EditorState, target: np.ndarray, options: ProtocolOptions,
+                 n_classes: int) -> None:
+        self.state = state
+        self.target = target
+        self.options = options
+        self.n_classes = n_classes
+        self.ious = [self.iou()]
+        self.steps: list[ProtocolStep] = []
+
+    def iou(self) -> float:
+        return tile_iou(self.target, self.state.mask, n_classes=self.n_classes)
+
+    @property
+    def budget(self) -> int:
+        return self.options.max_actions - self.state.actions
+
+    def note(self) -> None:
+        """Record the IoU after each editor action counted since the last note."""
+        value = self.iou()
+        while len(self.ious) <= self.state.actions:
+            self.ious.append(value)
+
+    def done(self) -> bool:
+        return self.ious[-1] >= self.options.target_iou or self.budget <= 0
+
+    def undo_if_worse(self, before: float, changed: bool) -> bool:
+        """Undo the last edit when it did not raise the IoU; True when it was kept."""
+        if not changed:
+            return False
+        if self.ious[-1] > before:
+            return True
+        if self.budget > 0:
+            self.state.undo()
+            self.note()
+        return False
+
+    def act(self, click: ErrorClick) -> None:
+        k = click.cls
+        allowed = self.target == k
+        self.state.active_class = k
+        for tool in self.options.tools:
+            if self.budget <= 0:
+                return
+            first = self.state.actions
+            before = self.ious[-1]
+            kept = self._use(tool, click, allowed, before)
+            if kept is None:
+                continue  # the tool did not fit here; nothing was done
+            self.steps.append(
+                ProtocolStep(tool, click.point, k, self.state.actions - first, kept)
+            )
+            if kept:
+                return
+
+    def _use(
+        self, tool: str, click: ErrorClick, allowed: np.ndarray, before: float
+    ) -> bool | None:
+        """Use one tool at the click: True kept, False taken back, None not used."""
+        state, opts = self.state, self.options
+        if tool == "fill":
+            preview = region_at(
+                state.mask, click.point, connectivity=state.connectivity, image=state.image
+            ).full(state.shape)
+            if allowed[preview].mean() < opts.fill_precision:
+                return None
+            changed = state.fill_at(click.point)
+            self.note()
+            return self.undo_if_worse(before, changed)
+        if tool == "scribble":
+            if self.budget < 2:
+                return None
+            radius = min(opts.scribble_radius_px, max(click.depth_px - 0.5, 0.5))
+            state.radius = radius
+            line = _stroke_line(allowed, click, radius=radius, length=opts.stroke_length_px)
+            state.scribble(line)
+            self.note()
+            changed = state.refine(snap=opts.snap)
+            self.note()
+            return self.undo_if_worse(before, changed)
+        radius = max(click.depth_px - 0.5, 0.5)
+        state.radius = radius
+        state.paint(_stroke_line(allowed, click, radius=state.radius,
+                                 length=opts.stroke_length_px))
+        self.note()
+        return True
+
+
+def run_protocol(
+    image: np.ndarray,
+    truth: np.ndarray,
+    *,
+    start: np.ndarray | None = None,
+    habits: AnnotatorHabits | None = None,
+    rng: np.random.Generator | None = None,
+    options: ProtocolOptions | None = None,
+    schema: ClassSchema = DEFAULT_SCHEMA,
+) -> ProtocolRun:
+    """Correct one tile in the editor by the protocol (see the module notes).
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W, 3), uint8
+        The RGB tile.
+    truth : ndarray, shape (H, W), uint8
+        Exact classes of ``schema``; 255 pixels are never errors.
+    start : ndarray, shape (H, W), uint8, optional
+        The mask the editor opens with (the proposal); default an empty mask (all soil).
+    habits : AnnotatorHabits, optional
+        The annotator's noise; default none (the target is the truth).
+    rng : numpy.random.Generator, optional
+        Needed when ``habits`` has a profile.
+    options : ProtocolOptions, optional
+        Target IoU, action cap, tools; default the protocol's (0.90, 20, all tools).
+    schema : ClassSchema
+        Classes of the masks.
+
+    Returns
+    -------
+    ProtocolRun
+    """
+    t = np.asarray(truth)
+    if t.ndim != 2 or t.dtype != np.uint8:
+        raise ValueError(
+            f"truth: expected a 2-D uint8 class mask, got shape {t.shape} dtype {t.dtype}"
+        )
+    known = set(schema.indices) | {UNLABELLED}
+    stray = sorted(set(np.unique(t).tolist()) - known)
+    if stray:
+        raise ValueError(
+            f"truth: expected class indices {schema.indices} or 255, got also {stray}; "
+            "pass the schema the truth was made with"
+        )
+    opts = ProtocolOptions() if options is None else options
+    habits = AnnotatorHabits() if habits is None else habits
+    if habits.profile is not None and not isinstance(rng, np.random.Generator):
+        raise TypeError(
+            f"rng: expected a numpy Generator for an annotator with a profile, got "
+            f"{type(rng).__name__}; pass np.random.default_rng(seed)"
+        )
+    target = habits.perceive(t, rng=rng)
+    proposal = np.zeros(t.shape, np.uint8) if start is None else np.asarray(start)
+    state = EditorState(image, proposal, schema=schema)
+    session = _Session(state, target, opts, max(schema.indices) + 1)
+    while not session.done():
+        click = next_click(target, state.mask)
+        if click is None:
+            break
+        spent = state.actions
+        session.act(click)
+        if state.actions == spent:
+            break  # no listed tool fits the largest error: a person would stop here too
+    return ProtocolRun(
+        mask=state.mask,
+        target=target,
+        ious=tuple(session.ious),
+        steps=tuple(session.steps),
+        iou_truth=tile_iou(t, state.mask, n_classes=max(schema.indices) + 1),
+    )
