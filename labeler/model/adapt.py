@@ -75,7 +75,16 @@ class AdaptConfig:
     batch_size : int
         Positive pairs per step (at least 2; fewer when there are fewer tiles).
     view_size : int or None
-        View side in pixels (a multiple of 32); default three quarters of the first tile.
+        View side in pixels (a multiple of 32); default
+        :func:`~labeler.model.views.default_view_size` of the first tile (128 for 256-pixel
+        tiles: a training step costs about the square of it).
+    frozen_prefixes : tuple of str
+        Encoder parameters whose names start with one of these are not trained. The
+        default keeps EfficientNet-Lite0's stem and its stride-2 and stride-4 blocks as
+        pretrained: generic edge and colour filters, and the dearest to train (the
+        largest activations); measured on a loaded two-core machine, a step on 16 views
+        of 128 pixels took about a quarter less time with them fixed. Names that match
+        nothing (another encoder) fix nothing.
     scale_range : (float, float)
         Source pixels per view pixel (ground sampling distance jitter).
     min_overlap : float
@@ -104,6 +113,7 @@ class AdaptConfig:
     method: str = "dense"
     batch_size: int = 8
     view_size: int | None = None
+    frozen_prefixes: tuple[str, ...] = ("stem.", "blocks.0.", "blocks.1.", "blocks.2.")
     scale_range: tuple[float, float] = (0.7, 1.4)
     min_overlap: float = 0.3
     learning_rate: float = 1e-4
@@ -180,8 +190,11 @@ def _keep_batchnorm_statistics(module: nn.Module) -> None:
 
 
 @contextlib.contextmanager
-def _trainable(encoder: nn.Module, threads: int | None) -> Iterator[None]:
-    """Encoder in training mode with gradients (batch norms in eval); restored after."""
+def _trainable(
+    encoder: nn.Module, threads: int | None, frozen_prefixes: Sequence[str]
+) -> Iterator[None]:
+    """Encoder in training mode with gradients (batch norms in eval, parameters named
+    with ``frozen_prefixes`` fixed); mode, flags and threads restored after."""
     frozen = getattr(encoder, "frozen", None)
     flags = [p.requires_grad for p in encoder.parameters()]
     was_training = encoder.training
@@ -190,7 +203,8 @@ def _trainable(encoder: nn.Module, threads: int | None) -> Iterator[None]:
         torch.set_num_threads(max(1, threads))
     if frozen is not None:
         encoder.frozen = False
-    encoder.requires_grad_(True)
+    for name, p in encoder.named_parameters():
+        p.requires_grad_(not name.startswith(tuple(frozen_prefixes)))
     encoder.train(True)
     _keep_batchnorm_statistics(encoder)
     try:
@@ -277,6 +291,7 @@ def adapt_encoder(
     KeyboardInterrupt
         Re-raised after writing the last finished step to ``checkpoint``.
     """
+    start = time.monotonic()  # the budget counts the setup too
     config = config or AdaptConfig()
     if seconds <= 0:
         raise ValueError(f"seconds: expected a positive time budget, got {seconds}")
@@ -299,13 +314,16 @@ def adapt_encoder(
             "choose dense_strides among them"
         )
     settings = {**config.as_dict(), "view_size": size, "seed": seed}
-    with torch.random.fork_rng(), _trainable(encoder, threads):
+    with torch.random.fork_rng(), _trainable(encoder, threads, config.frozen_prefixes):
         torch.manual_seed(seed)
         dense = config.dense_strides if config.method == "dense" else ()
         heads = ProjectionHeads(channels, strides, dense_strides=dense, dim=config.projector_dim)
         optimizer = torch.optim.AdamW(
             [
-                {"params": list(encoder.parameters()), "lr": config.learning_rate},
+                {
+                    "params": [p for p in encoder.parameters() if p.requires_grad],
+                    "lr": config.learning_rate,
+                },
                 {"params": list(heads.parameters()), "lr": config.heads_learning_rate},
             ],
             weight_decay=config.weight_decay,
@@ -316,17 +334,23 @@ def adapt_encoder(
         if checkpoint is not None and os.path.exists(checkpoint):
             state = load_adapt_checkpoint(checkpoint)
             _check_settings(checkpoint, state.settings, settings)
-            encoder.load_state_dict(state.encoder_state, strict=True)
-            heads.load_state_dict(state.heads_state, strict=True)
-            optimizer.load_state_dict(state.optimizer_state)
+            try:
+                encoder.load_state_dict(state.encoder_state, strict=True)
+                heads.load_state_dict(state.heads_state, strict=True)
+                optimizer.load_state_dict(state.optimizer_state)
+            except (RuntimeError, ValueError, KeyError) as exc:
+                first = str(exc).splitlines()[0]
+                raise ValueError(
+                    f"{checkpoint}: the checkpoint does not fit this encoder ({first}); "
+                    "resume with the encoder it was made from, or delete the file"
+                ) from None
             torch.set_rng_state(state.torch_rng)
             rng.bit_generator.state = state.numpy_rng
             step, used, losses = state.step, state.elapsed, list(state.losses)
         resumed_from = step
         objective = AdaptObjective(encoder, heads, strides, config)
         plants: dict = {}
-        start = time.monotonic()
-        last_save = start
+        last_save = time.monotonic()
         saved_step = step
         step_time = None
         updating = False

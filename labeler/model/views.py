@@ -162,8 +162,13 @@ class ViewPair:
 
 
 def default_view_size(height: int, width: int) -> int:
-    """Three quarters of the tile's shorter side, down to a multiple of 32 (at least 32)."""
-    return max(32, int(0.75 * min(height, width)) // 32 * 32)
+    """Three quarters of the tile's shorter side, down to a multiple of 32, within 32..128.
+
+    128 pixels for the usual 256-pixel tiles: the cost of a training step on a CPU grows
+    with the square of the view side, and a view of 128 pixels at scales 0.7 to 1.4
+    still spans a third to two thirds of such a tile.
+    """
+    return min(128, max(32, int(0.75 * min(height, width)) // 32 * 32))
 
 
 def cell_pairs(geometry_a: ViewGeometry, geometry_b: ViewGeometry, *, stride: int) -> np.ndarray:

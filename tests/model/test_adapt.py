@@ -108,7 +108,9 @@ def test_short_run_lowers_the_loss(method, tmp_path):
 
 def test_lite0_state_loads_into_a_new_encoder(tiles, tmp_path):
     encoder = load_encoder(fold=False, channels_last=False)
-    before = encoder.stem.conv.weight.detach().clone()
+    stem = encoder.stem.conv.weight.detach().clone()
+    early = encoder.blocks[2].project.conv.weight.detach().clone()
+    late = encoder.blocks[10].project.conv.weight.detach().clone()
     stats = encoder.blocks[5].depthwise.bn.running_var.clone()
     result = adapt_encoder(
         encoder,
@@ -125,8 +127,12 @@ def test_lite0_state_loads_into_a_new_encoder(tiles, tmp_path):
     torch.testing.assert_close(encoder.blocks[5].depthwise.bn.running_var, stats, rtol=0, atol=0)
     again = Lite0Encoder()
     again.load_state_dict(load_adapt_checkpoint(tmp_path / "lite0.pt").encoder_state, strict=True)
-    assert not torch.equal(again.stem.conv.weight, before)
-    torch.testing.assert_close(again.stem.conv.weight, result.encoder_state["stem.conv.weight"])
+    # the stem and the stride-4 blocks stay as pretrained (frozen_prefixes), later ones learn
+    assert torch.equal(again.stem.conv.weight, stem)
+    assert torch.equal(again.blocks[2].project.conv.weight, early)
+    assert not torch.equal(again.blocks[10].project.conv.weight, late)
+    key = "blocks.10.project.conv.weight"
+    torch.testing.assert_close(again.blocks[10].project.conv.weight, result.encoder_state[key])
 
 
 def test_checkpoint_is_plain_data(tiles, tmp_path):
@@ -234,6 +240,15 @@ def test_resume_refuses_other_settings(tiles, tmp_path):
         ValueError, match=r"a.pt: the checkpoint was made with other settings \(dense_strides"
     ):
         adapt_encoder(TinyEncoder(), tiles, config=other, max_steps=2, checkpoint=path)
+
+
+def test_resume_refuses_another_encoder(tiles, tmp_path):
+    path = tmp_path / "tiny.pt"
+    adapt_encoder(TinyEncoder(), tiles, config=SMALL, max_steps=1, checkpoint=path, threads=1)
+    wider = TinyEncoder()
+    wider.stages[0][0] = nn.Conv2d(3, 8, 5, 4, 2, bias=False)  # same shapes out, other kernel
+    with pytest.raises(ValueError, match="tiny.pt: the checkpoint does not fit this encoder"):
+        adapt_encoder(wider, tiles, config=SMALL, max_steps=2, checkpoint=path, threads=1)
 
 
 def test_errors(tiles, tmp_path):

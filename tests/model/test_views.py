@@ -174,6 +174,8 @@ def test_bare_soil_tile_still_gives_views():
     pair = field_views(soil_tile(), rng=np.random.default_rng(0))
     assert pair.a.shape == pair.b.shape == (96, 96, 3)
     assert default_view_size(128, 200) == 96
+    assert default_view_size(256, 256) == 128
+    assert default_view_size(40, 40) == 32
 
 
 def test_crops_overlap_as_asked():
