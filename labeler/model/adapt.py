@@ -136,6 +136,11 @@ class AdaptConfig:
             raise ValueError(f"alpha: expected a weight in [0, 1], got {self.alpha}")
         if not 0 <= self.revisit_share <= 1:
             raise ValueError(f"revisit_share: expected a share in [0, 1], got {self.revisit_share}")
+        if self.view_size is not None and (self.view_size < 32 or self.view_size % 32):
+            raise ValueError(
+                f"view_size: expected a positive multiple of 32 (the coarsest feature stride), "
+                f"got {self.view_size}"
+            )
         if self.warmup_steps < 0:
             raise ValueError(f"warmup_steps: expected 0 or more, got {self.warmup_steps}")
 

@@ -267,6 +267,12 @@ def test_errors(tiles, tmp_path):
         AdaptConfig(method="colour")
     with pytest.raises(ValueError, match="batch_size: expected at least 2"):
         AdaptConfig(batch_size=1)
+    with pytest.raises(ValueError, match="view_size: expected a positive multiple of 32"):
+        AdaptConfig(view_size=100)
+    with pytest.raises(ValueError, match="alpha: expected a weight"):
+        AdaptConfig(alpha=2.0)
+    with pytest.raises(ValueError, match="revisit_share: expected a share"):
+        AdaptConfig(revisit_share=-0.1)
     bad = tmp_path / "bad.pt"
     bad.write_bytes(b"not a checkpoint")
     with pytest.raises(ValueError, match="bad.pt: refused, not a plain-data adaptation checkpoint"):
