@@ -20,7 +20,7 @@ from pathlib import Path
 import torch
 
 # the generic atomic write; it moves to labeler.fileio with the architecture work
-from labeler.imagery.write import atomic_write_bytes
+from labeler.fileio import atomic_write_bytes
 
 __all__ = ["ADAPT_FORMAT", "AdaptCheckpoint", "save_adapt_checkpoint", "load_adapt_checkpoint"]
 
