@@ -24,11 +24,12 @@ from typing import Protocol, runtime_checkable
 import numpy as np
 
 from labeler.errors import ConflictError
+from labeler.states import AMENDED, KIND_FULL, KIND_WEAK
 
 __all__ = ["Draft", "SavedDraft", "SavedLabel", "EditorBackend", "MemoryBackend", "SAVE_KINDS"]
 
 #: What a save sends: the whole mask, or the scribbles alone.
-SAVE_KINDS = ("full", "scribble")
+SAVE_KINDS = (KIND_FULL, KIND_WEAK)
 
 
 @dataclass(frozen=True)
@@ -145,7 +146,7 @@ class MemoryBackend:
     draft: Draft | None = None
     conflict: np.ndarray | bool = False
     tile_id: int = 0
-    state: str = "amended"
+    state: str = AMENDED
     saved: list[SavedLabel] = field(default_factory=list)
     drafts_written: int = 0
 

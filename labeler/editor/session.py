@@ -38,6 +38,7 @@ from labeler.editor.keys import ANSWER_NO, ANSWER_YES, class_for, command_for, h
 from labeler.editor.panels import STATUS_ROWS, panel, status_strip, table_panel
 from labeler.editor.state import EditorState
 from labeler.errors import ConflictError, LabelerError
+from labeler.states import KIND_FULL, KIND_WEAK
 
 __all__ = ["EditorOutcome", "EditorSession"]
 
@@ -223,9 +224,9 @@ class EditorSession:
             if not s.has_scribbles:
                 self.message = "no scribbles to save (scribble tool: s)"
                 return
-            label, kind = s.scribbles, "scribble"
+            label, kind = s.scribbles, KIND_WEAK
         else:
-            label, kind = s.mask, "full"
+            label, kind = s.mask, KIND_FULL
         s.note_activity()
         try:
             state = self.backend.save(label, kind=kind, actions=s.actions, seconds=s.seconds)

@@ -24,7 +24,15 @@ from sqlalchemy.exc import IntegrityError
 
 from labeler.errors import ConflictError, LabelerError
 from labeler.imagery.write import png_bytes
-from labeler.states import AMENDED, ANNOTATION_KINDS, ANNOTATION_STATES, SETTLED
+from labeler.states import (
+    AMENDED,
+    ANNOTATION_KINDS,
+    ANNOTATION_STATES,
+    IMPORTED,
+    KIND_FULL,
+    SETTLED,
+    WEAK,
+)
 from labeler.store import schema as t
 from labeler.store.base import now
 from labeler.store.history import HistoryMixin, annotation_query, annotation_row, lineage_head_in
@@ -45,8 +53,8 @@ class NewAnnotation:
     annotator: str
     mask: np.ndarray
     parent_version: int | None
-    kind: str = "full"
-    state: str = "amended"
+    kind: str = KIND_FULL
+    state: str = AMENDED
     seconds: float = 0.0
     actions: int = 0
     source: str = "editor"
@@ -72,9 +80,9 @@ def tile_state_after_save(kind: str, state: str, tile_state: str | None = None) 
         ``tile_state`` if given; else ``state`` for full masks (``amended`` for
         ``imported`` ones); None for scribbles and for ``weak`` full masks.
     """
-    if tile_state is not None or kind != "full":
+    if tile_state is not None or kind != KIND_FULL:
         return tile_state
-    return {"imported": AMENDED, "weak": None}.get(state, state)
+    return {IMPORTED: AMENDED, WEAK: None}.get(state, state)
 
 
 def _conflict(
@@ -218,7 +226,7 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
         mask: np.ndarray,
         *,
         parent_version: int | None,
-        kind: str = "full",
+        kind: str = KIND_FULL,
         state: str = AMENDED,
         seconds: float = 0.0,
         actions: int = 0,

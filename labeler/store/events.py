@@ -12,7 +12,7 @@ from datetime import datetime
 
 import sqlalchemy as sa
 
-from labeler.states import STATES
+from labeler.states import KIND_FULL, STATES
 from labeler.store import schema as t
 from labeler.store.base import StoreBase, as_utc
 from labeler.store.records import EventRecord
@@ -130,7 +130,7 @@ class EventsMixin(StoreBase):
         with self._read() as conn:
             for name, kind, n, secs, acts in conn.execute(q):
                 d = out.setdefault(name, {"tiles": 0, "scribbles": 0, "seconds": 0.0, "actions": 0})
-                d["tiles" if kind == "full" else "scribbles"] += int(n)
+                d["tiles" if kind == KIND_FULL else "scribbles"] += int(n)
                 d["seconds"] += float(secs or 0.0)
                 d["actions"] += int(acts or 0)
         return out

@@ -15,7 +15,7 @@ from datetime import datetime
 import sqlalchemy as sa
 
 from labeler.errors import NotFoundError
-from labeler.states import SETTLED
+from labeler.states import KIND_FULL, SETTLED
 from labeler.store import schema as t
 from labeler.store.base import as_utc
 from labeler.store.images import ImagesMixin
@@ -90,7 +90,7 @@ class HistoryMixin(ImagesMixin):
             return [annotation_row(r) for r in conn.execute(q)]
 
     def latest_annotation(
-        self, tile_id: int, *, annotator: str | None = None, kind: str | None = "full"
+        self, tile_id: int, *, annotator: str | None = None, kind: str | None = KIND_FULL
     ) -> AnnotationRecord | None:
         """The newest annotation of a tile, of one annotator and/or kind.
 
@@ -171,7 +171,7 @@ class HistoryMixin(ImagesMixin):
         self,
         *,
         since: datetime | None = None,
-        kind: str | None = "full",
+        kind: str | None = KIND_FULL,
         tile_ids: Iterable[int] | None = None,
     ) -> list[AnnotationRecord]:
         """Annotation rows (every version), filtered by time, kind and tiles.

@@ -17,11 +17,29 @@ import numpy as np
 from labeler.agreement import tile_agreement
 from labeler.errors import LabelerError, NotFoundError
 from labeler.project import Project
-from labeler.states import ACCEPTED, AMENDED, CONTESTED, PARKED, SETTLED
+from labeler.states import (
+    ACCEPTED,
+    AMENDED,
+    CONTESTED,
+    KIND_FULL,
+    KIND_WEAK,
+    PARKED,
+    SETTLED,
+    WEAK,
+)
 from labeler.store.records import AnnotationRecord
 
-#: Annotation state of a scribble-only save (a weak label).
-WEAK = "weak"
+__all__ = [
+    "save_state",
+    "save_tile_mask",
+    "accept_tile",
+    "park_tile",
+    "after_save",
+    "overlap_agreement",
+    "QueueRow",
+    "queue_rows",
+    "next_tile",
+]
 
 
 def save_state(
@@ -46,28 +64,15 @@ def save_state(
         ``weak`` for scribbles; else ``settled`` for a reviewer's decision; else
         ``accepted`` when the mask equals the proposal exactly; else ``amended``.
     """
-    if kind == "scribble":
+    if kind == KIND_WEAK:
         return WEAK
-    if kind != "full":
-        raise ValueError(f"kind: expected 'full' or 'scribble', got {kind!r}")
+    if kind != KIND_FULL:
+        raise ValueError(f"kind: expected {KIND_FULL!r} or {KIND_WEAK!r}, got {kind!r}")
     if settling:
         return SETTLED
     if proposal is not None and np.array_equal(proposal, mask):
         return ACCEPTED
     return AMENDED
-
-__all__ = [
-    "WEAK",
-    "save_state",
-    "save_tile_mask",
-    "accept_tile",
-    "park_tile",
-    "after_save",
-    "overlap_agreement",
-    "QueueRow",
-    "queue_rows",
-    "next_tile",
-]
 
 
 def save_tile_mask(
@@ -77,7 +82,7 @@ def save_tile_mask(
     mask: np.ndarray,
     *,
     parent_version: int | None,
-    kind: str = "full",
+    kind: str = KIND_FULL,
     seconds: float = 0.0,
     actions: int = 0,
     source: str = "editor",
@@ -100,7 +105,7 @@ def save_tile_mask(
     annotator : str
         Who saves.
     mask : ndarray, shape (H, W), uint8
-        The whole mask (``kind="full"``) or the scribbles (255 where not scribbled).
+        The whole mask (``kind=KIND_FULL``) or the scribbles (255 where not scribbled).
     parent_version : int or None
         The lineage version the edit started from (None for the first save).
     kind : {"full", "scribble"}
@@ -126,7 +131,7 @@ def save_tile_mask(
     """
     store = project.store
     proposal = None
-    if kind == "full" and not settling and proposal_id is not None:
+    if kind == KIND_FULL and not settling and proposal_id is not None:
         proposal = store.proposal(proposal_id).mask()
     state = save_state(kind=kind, settling=settling, mask=mask, proposal=proposal)
     rec = store.save_annotation(
@@ -141,7 +146,7 @@ def save_tile_mask(
         source=source,
         proposal_id=proposal_id,
     )
-    if kind == "full" and not settling:
+    if kind == KIND_FULL and not settling:
         after_save(project, tile_id)
     return rec
 
@@ -261,7 +266,7 @@ def queue_rows(project: Project) -> list[QueueRow]:
     ranking = {item.tile_id: item for item in store.latest_ranking()}
     proposals = store.latest_proposals()
     savers: dict[int, set[str]] = {}
-    for a in store.annotations(kind="full"):
+    for a in store.annotations(kind=KIND_FULL):
         if a.state != SETTLED:
             savers.setdefault(a.tile_id, set()).add(a.annotator)
     rows = []

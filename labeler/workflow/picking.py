@@ -11,7 +11,7 @@ from labeler.errors import LabelerError
 from labeler.metrics import class_fractions
 from labeler.picker import CandidatePool, select_batch
 from labeler.project import Project
-from labeler.states import SETTLED
+from labeler.states import KIND_FULL, SETTLED
 from labeler.store.records import RankingItem
 from labeler.workflow.annotating import overlap_agreement
 from labeler.workflow.progress import Progress, no_progress
@@ -123,7 +123,7 @@ def rank_tiles(
     proposals = store.latest_proposals()
     progress(0, 3, "reading proposals")
     savers: dict[int, set[str]] = {}
-    for a in store.annotations(kind="full"):
+    for a in store.annotations(kind=KIND_FULL):
         if a.state != SETTLED:
             savers.setdefault(a.tile_id, set()).add(a.annotator)
     ids, emb, ent, mar, lc, bald, frac, ann, agr = [], [], [], [], [], [], [], [], []
