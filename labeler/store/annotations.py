@@ -67,8 +67,8 @@ def tile_state_after_save(kind: str, state: str, tile_state: str | None = None) 
 
     Parameters
     ----------
-    kind : {"full", "scribble"}
-        The annotation's kind.
+    kind : {KIND_FULL, KIND_WEAK}
+        The annotation's kind: a full mask or a weak label (:mod:`labeler.states`).
     state : str
         The annotation's state (one of :data:`labeler.states.ANNOTATION_STATES`).
     tile_state : str, optional
@@ -78,7 +78,7 @@ def tile_state_after_save(kind: str, state: str, tile_state: str | None = None) 
     -------
     str or None
         ``tile_state`` if given; else ``state`` for full masks (``amended`` for
-        ``imported`` ones); None for scribbles and for ``weak`` full masks.
+        ``imported`` ones); None for weak labels and for ``weak`` full masks.
     """
     if tile_state is not None or kind != KIND_FULL:
         return tile_state
@@ -249,7 +249,8 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
         parent_version : int or None
             The version this mask was based on: the newest version of the tile's
             lineage (None when the lineage has no saved version yet).
-        kind : {"full", "scribble"}
+        kind : {KIND_FULL, KIND_WEAK}
+            A full mask or a weak label (:mod:`labeler.states`).
         state : {"accepted", "amended", "settled", "imported", "weak"}
             What the annotation records (decided by the workflow).
         seconds, actions : float, int
@@ -260,7 +261,7 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
             The proposal the annotator started from.
         tile_state : str, optional
             Tile state after the save (default: see :func:`tile_state_after_save`:
-            ``state`` for full masks, unchanged for scribbles; ``imported`` full masks
+            ``state`` for full masks, unchanged for weak labels; ``imported`` full masks
             leave the tile ``amended``). Checked against the life cycle.
 
         Returns

@@ -110,7 +110,7 @@ class EventsMixin(StoreBase):
         -------
         dict of str to dict
             Per annotator name: ``tiles`` (distinct tiles with a full save),
-            ``scribbles`` (distinct tiles with a scribble save), ``seconds`` and
+            ``weak_labels`` (distinct tiles with a weak-label save), ``seconds`` and
             ``actions`` (summed over every save).
         """
         q = (
@@ -129,8 +129,10 @@ class EventsMixin(StoreBase):
         out: dict[str, dict[str, float]] = {}
         with self._read() as conn:
             for name, kind, n, secs, acts in conn.execute(q):
-                d = out.setdefault(name, {"tiles": 0, "scribbles": 0, "seconds": 0.0, "actions": 0})
-                d["tiles" if kind == KIND_FULL else "scribbles"] += int(n)
+                d = out.setdefault(
+                    name, {"tiles": 0, "weak_labels": 0, "seconds": 0.0, "actions": 0}
+                )
+                d["tiles" if kind == KIND_FULL else "weak_labels"] += int(n)
                 d["seconds"] += float(secs or 0.0)
                 d["actions"] += int(acts or 0)
         return out

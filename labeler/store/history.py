@@ -99,7 +99,7 @@ class HistoryMixin(ImagesMixin):
         tile_id : int
         annotator : str, optional
             Only this annotator's saves.
-        kind : {"full", "scribble"} or None
+        kind : {KIND_FULL, KIND_WEAK} or None
             Only saves of this kind; None for any.
 
         Returns
@@ -180,7 +180,7 @@ class HistoryMixin(ImagesMixin):
         ----------
         since : datetime, optional
             Only rows saved at or after this time (timezone-aware).
-        kind : {"full", "scribble"} or None
+        kind : {KIND_FULL, KIND_WEAK} or None
             Only rows of this kind; None for any.
         tile_ids : iterable of int, optional
             Only rows of these tiles.

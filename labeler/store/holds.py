@@ -248,7 +248,7 @@ class HoldsMixin(ImagesMixin):
         Parameters
         ----------
         tile_id : int
-        kind : {"full", "scribble"}
+        kind : {KIND_FULL, KIND_WEAK}
 
         Returns
         -------

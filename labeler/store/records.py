@@ -109,7 +109,7 @@ class TileRecord:
 
 @dataclass(frozen=True)
 class AnnotationRecord:
-    """One saved version of a tile's mask (full or scribble), never changed."""
+    """One saved version of a tile's mask (full mask or weak label), never changed."""
 
     id: int
     tile_id: int
@@ -147,7 +147,7 @@ class DraftRecord:
     actions: int
     saved_at: datetime
     mask: np.ndarray = field(repr=False)
-    scribbles: np.ndarray | None = field(repr=False)
+    weak_label: np.ndarray | None = field(repr=False)
 
 
 @dataclass(frozen=True)

@@ -49,8 +49,8 @@ def save_state(
 
     Parameters
     ----------
-    kind : {"full", "scribble"}
-        A whole mask, or scribbles alone.
+    kind : {KIND_FULL, KIND_WEAK}
+        A whole mask, or a weak label (:mod:`labeler.states`).
     settling : bool
         True when a reviewer saves the decision on a contested tile.
     mask : ndarray, shape (H, W), uint8
@@ -61,7 +61,7 @@ def save_state(
     Returns
     -------
     state : str
-        ``weak`` for scribbles; else ``settled`` for a reviewer's decision; else
+        ``weak`` for a weak label; else ``settled`` for a reviewer's decision; else
         ``accepted`` when the mask equals the proposal exactly; else ``amended``.
     """
     if kind == KIND_WEAK:
@@ -92,7 +92,7 @@ def save_tile_mask(
     """Save a mask of a tile, deciding the annotation state it records.
 
     The state is decided here and nowhere else (:func:`save_state`): ``weak`` for
-    scribbles, ``settled`` for a reviewer's decision, ``accepted`` when a full mask
+    a weak label, ``settled`` for a reviewer's decision, ``accepted`` when a full mask
     equals the proposal it started from, else ``amended``. After the save an overlap tile
     whose annotators all saved is checked for agreement (:func:`after_save`).
 
@@ -105,10 +105,10 @@ def save_tile_mask(
     annotator : str
         Who saves.
     mask : ndarray, shape (H, W), uint8
-        The whole mask (``kind=KIND_FULL``) or the scribbles (255 where not scribbled).
+        The whole mask (``kind=KIND_FULL``) or the weak label (255 where not marked).
     parent_version : int or None
         The lineage version the edit started from (None for the first save).
-    kind : {"full", "scribble"}
+    kind : {KIND_FULL, KIND_WEAK}
         What is saved.
     seconds, actions : float, int
         Effort spent, for the statistics.

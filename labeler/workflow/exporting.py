@@ -361,9 +361,9 @@ def import_masks(
     ``<stem>_annotation.png``, or ``.geojson``) or by ``image``, read and checked in the
     image's pixel grid, and cut into tiles. A tile the file covers completely becomes a
     full annotation (``imported``); a tile with unlabelled pixels (255) becomes a weak
-    label (scribble kind); a tile the file does not touch is left alone. Every file is
-    read and checked before anything is saved, and all tiles are saved in ONE
-    transaction: on any error nothing is imported.
+    label (kind :data:`~labeler.states.KIND_WEAK`, state ``weak``); a tile the file does
+    not touch is left alone. Every file is read and checked before anything is saved, and
+    all tiles are saved in ONE transaction: on any error nothing is imported.
 
     Parameters
     ----------

@@ -1,7 +1,7 @@
 """Retraining the proposal head on every saved mask (``labeler retrain``).
 
 ``retrain`` trains a new head on every saved full mask (accepted, amended, settled,
-imported) and every scribble (weak labels), and records it as a model version with its
+imported) and every weak label, and records it as a model version with its
 per-class validation IoU. The tiles' pixels go to the model room as well: the head learns
 a full-resolution refinement of its stride-4 proposals from them. The ``model.augment``
 setting chooses how training augments (:mod:`labeler.model.train`): by default the tiles
@@ -39,8 +39,8 @@ class LabelledTile:
         The tile's image.
     mask : ndarray, shape (H, W), uint8
         Class indices, 255 unlabelled.
-    kind : {"full", "scribble"}
-        A full mask or scribbles (a weak label).
+    kind : {KIND_FULL, KIND_WEAK}
+        A full mask or a weak label (:mod:`labeler.states`).
     """
 
     tile: TileRecord
@@ -54,7 +54,7 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
 
     A tile's newest full mask (accepted, amended, settled or imported) is used; on a
     contested tile only a reviewer's settled mask counts (the annotators' masks are in
-    dispute). Tiles without a full mask use their newest scribbles (weak labels).
+    dispute). Tiles without a full mask use their newest weak label.
 
     Parameters
     ----------
@@ -101,7 +101,7 @@ class RetrainResult:
 
     model_version: ModelVersionRecord
     n_full: int
-    n_scribble: int
+    n_weak: int
     n_train: int
     n_val: int
     best_epoch: int
@@ -215,7 +215,7 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
             "mode": result.mode,
             "n_val": result.n_val,
             "full_tiles": sum(it.kind == KIND_FULL for it in items),
-            "scribble_tiles": sum(it.kind == KIND_WEAK for it in items),
+            "weak_tiles": sum(it.kind == KIND_WEAK for it in items),
             "epochs_max": n_epochs,
             "refine_channels": result.head.config.refine_channels,
         },
@@ -223,7 +223,7 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
     return RetrainResult(
         model_version=mv,
         n_full=sum(it.kind == KIND_FULL for it in items),
-        n_scribble=sum(it.kind == KIND_WEAK for it in items),
+        n_weak=sum(it.kind == KIND_WEAK for it in items),
         n_train=result.n_train,
         n_val=result.n_val,
         best_epoch=result.best_epoch,

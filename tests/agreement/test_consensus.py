@@ -168,7 +168,7 @@ def test_staple_identical_raters_and_unlabelled():
         np.testing.assert_allclose(np.diag(res.performance[j]), 1.0, atol=1e-6)
 
 
-def test_staple_partial_labels_use_only_labelled_votes():
+def test_staple_weak_labels_use_only_labelled_votes():
     # a rater who left half the tile unlabelled is scored on his labelled half only
     rng = np.random.default_rng(1)
     truth = (rng.random((60, 60)) < 0.4).astype(np.uint8)

@@ -1,4 +1,4 @@
-"""Rendering of the view: overlay, outlines, scribbles, heat map, panes, cursor."""
+"""Rendering of the view: overlay, outlines, weak label, heat map, panes, cursor."""
 
 from __future__ import annotations
 
@@ -21,7 +21,7 @@ def _render_loop(s: EditorState, *, outlines: bool) -> np.ndarray:
     a = int(round(s.opacity * 256))
     vh, vw = s.view_shape
     out = np.zeros((vh, vw, 3), np.uint8)
-    mask, scrib, img = s.mask, s.scribbles, s.image
+    mask, weak, img = s.mask, s.weak_label, s.image
     h, w = s.shape
     for vr in range(vh):
         for vc in range(vw):
@@ -39,8 +39,8 @@ def _render_loop(s: EditorState, *, outlines: bool) -> np.ndarray:
                 if outlines and any(0 <= q < h and 0 <= p < w and mask[q, p] != m
                                     for q, p in nbrs):
                     px = col
-            if scrib[r, c] != 255:
-                k = int(scrib[r, c])
+            if weak[r, c] != 255:
+                k = int(weak[r, c])
                 px = ([int(colours[k, 2]), int(colours[k, 1]), int(colours[k, 0])] if has[k]
                       else [225, 225, 225])
             out[vr, vc] = px
@@ -139,19 +139,19 @@ def test_renderer_redraws_the_boxes_reported_and_nothing_else():
 
     image = np.zeros((8, 8, 3), np.uint8)
     mask = np.zeros((8, 8), np.uint8)
-    scrib = np.full((8, 8), 255, np.uint8)
+    weak = np.full((8, 8), 255, np.uint8)
     r = Renderer(image, schema=DEFAULT_SCHEMA, opacity=1.0)
     r.show_outlines = False
     vp = Viewport((8, 8), (64, 64))
-    r.render(mask, scrib, viewport=vp)
+    r.render(mask, weak, viewport=vp)
     mask[1, 1] = 1
     r.touched((1, 2, 1, 2))
     mask[6, 6] = 2  # changed but not reported: the cached composite keeps soil there
-    frame = r.render(mask, scrib, viewport=vp)
+    frame = r.render(mask, weak, viewport=vp)
     assert tuple(frame[1 * 8 + 4, 1 * 8 + 4]) == CROP_BGR
     assert tuple(frame[6 * 8 + 4, 6 * 8 + 4]) == (0, 0, 0)
     r.opacity = 1.0  # a style change composes the whole tile again
-    assert tuple(r.render(mask, scrib, viewport=vp)[6 * 8 + 4, 6 * 8 + 4]) == WEED_BGR
+    assert tuple(r.render(mask, weak, viewport=vp)[6 * 8 + 4, 6 * 8 + 4]) == WEED_BGR
 
 
 def test_renderer_heat_map_stays_off_without_a_map():

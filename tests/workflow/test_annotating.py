@@ -49,7 +49,7 @@ _Q = np.array([[0, 1], [2, 2]], np.uint8)
 
 
 # the rule of DESIGN section 3 (accepted = proposal kept unchanged, amended = corrected,
-# settled = a reviewer decided) plus the weak-label state of scribble-only saves, written
+# settled = a reviewer decided) plus the state of weak-label saves, written
 # out case by case: (kind, settling, mask, proposal) -> state
 @pytest.mark.parametrize(
     ("kind", "settling", "mask", "proposal", "state"),
@@ -68,17 +68,17 @@ def test_save_state_table(kind, settling, mask, proposal, state):
 
 
 def test_save_state_refuses_an_unknown_kind():
-    with pytest.raises(ValueError, match="kind: expected 'full' or 'scribble', got 'partial'"):
-        save_state(kind="partial", settling=False, mask=_P, proposal=None)
+    with pytest.raises(ValueError, match="kind: expected 'full' or 'scribble', got 'outline'"):
+        save_state(kind="outline", settling=False, mask=_P, proposal=None)
 
 
-def test_scribble_save_records_weak_and_leaves_the_tile_state(project):
+def test_weak_label_save_records_weak_and_leaves_the_tile_state(project):
     fake_proposals(project)
     t = project.store.tiles()[0]
     before = project.store.tile(t.id).state
-    scrib = np.full(t.shape, 255, np.uint8)
-    scrib[5, 5:9] = 2
-    rec = save_tile_mask(project, t.id, "ines", scrib, parent_version=None, kind="scribble")
+    weak = np.full(t.shape, 255, np.uint8)
+    weak[5, 5:9] = 2
+    rec = save_tile_mask(project, t.id, "ines", weak, parent_version=None, kind="scribble")
     assert (rec.kind, rec.state) == ("scribble", "weak")
     assert project.store.tile(t.id).state == before
 
