@@ -118,8 +118,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "pick",
         help="order the queue: most informative tiles first",
-        description="Rank every proposed tile with the active-learning picker and write the "
-        "queue order (with each tile's score and reason) to the store.",
+        description="Pick with the active-learning picker: put every proposed tile in order and "
+        "write the queue order (with each tile's score and reason) to the store.",
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
     p.add_argument(
@@ -229,7 +229,7 @@ def build_parser() -> argparse.ArgumentParser:
         "queue",
         help="the terminal queue: work through tiles, watch agreement and models",
         description="Open the terminal queue: tiles in picker order with a colour preview; accept, "
-        "park, open the editor, re-rank and retrain from the keyboard (press ? for the keys).",
+        "park, open the editor, re-pick and retrain from the keyboard (press ? for the keys).",
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
     p.add_argument("--annotator", required=True, metavar="NAME", help="who is annotating")

@@ -192,23 +192,25 @@ def cmd_demo(args) -> int:
 
 def cmd_pick(args) -> int:
     from labeler.project import open_project
-    from labeler.workflow import rank_tiles
+    from labeler.workflow import pick_tiles
 
-    with open_project(args.dir) as project, _Bar("ranking") as bar:
-        result = rank_tiles(project, strategy=args.strategy, k=args.k, seed=args.seed, progress=bar)
+    with open_project(args.dir) as project, _Bar("picking") as bar:
+        result = pick_tiles(project, strategy=args.strategy, k=args.k, seed=args.seed, progress=bar)
     if result.note:
         print(f"note: {result.note}")
     print(
-        f"ranked {len(result.items)} tiles with strategy {result.strategy}; the next batch of {result.k}:"
+        f"picked from {len(result.items)} tiles with strategy {result.strategy}; "
+        f"the next batch of {result.k}:"
     )
     rows = [
         (t.rank + 1, t.tile_id, t.image, f"{t.row},{t.col}", f"{t.score:.4f}", t.reason)
         for t in result.batch
     ]
     print(_table(["rank", "tile", "image", "row,col", "score", "why"], rows))
-    if result.unranked:
+    if result.without_proposal:
         print(
-            f"{result.unranked} tiles have no proposal yet and are not ranked (run 'labeler propose')"
+            f"{result.without_proposal} tiles have no proposal yet and are left out "
+            "(run 'labeler propose')"
         )
     return 0
 

@@ -1,7 +1,7 @@
 """The event log and the figures counted from the store.
 
 The event log only ever gets new rows: every save, hold, state move, proposal batch,
-ranking and model version appends one (inside the same transaction as the change, see
+pick and model version appends one (inside the same transaction as the change, see
 :meth:`labeler.store.base.StoreBase._event`). The counts here are what the status and
 effort screens show.
 """

@@ -18,7 +18,7 @@ __all__ = [
     "DraftRecord",
     "ModelVersionRecord",
     "ProposalRecord",
-    "RankingItem",
+    "PickItem",
     "EventRecord",
     "decode_mask",
     "npy_bytes",
@@ -203,7 +203,7 @@ class ProposalRecord:
 
 
 @dataclass(frozen=True)
-class RankingItem:
+class PickItem:
     """One tile's place in a queue order written by the picker."""
 
     tile_id: int

@@ -268,7 +268,7 @@ class QueueScreen(Screen):
     def _tile_or_say(self) -> int | None:
         tile = self.selected_tile()
         if tile is None:
-            self.app.tell("no tile is selected; clear the filters or re-rank", severity="warning")
+            self.app.tell("no tile is selected; clear the filters or re-pick", severity="warning")
         return tile
 
     def _claim(self, tile_id: int) -> bool:
@@ -364,28 +364,28 @@ class QueueScreen(Screen):
         self._end()
         self.app.report_error(exc, doing=doing)
 
-    def action_rerank(self) -> None:
-        if self._begin("re-ranking the queue"):
-            self._rerank()
+    def action_repick(self) -> None:
+        if self._begin("re-picking the queue"):
+            self._repick()
 
     @work(thread=True, group="long", exit_on_error=False)
-    def _rerank(self) -> None:
+    def _repick(self) -> None:
         try:
-            result = workflow.rank_tiles(self.project, progress=self._progress)
+            result = workflow.pick_tiles(self.project, progress=self._progress)
         except Exception as exc:  # noqa: BLE001
-            self.app.call_from_thread(self._failed, exc, "re-ranking")
+            self.app.call_from_thread(self._failed, exc, "re-picking")
             return
-        self.app.call_from_thread(self._reranked, result)
+        self.app.call_from_thread(self._repicked, result)
 
-    def _reranked(self, result) -> None:
+    def _repicked(self, result) -> None:
         self._end()
         batch = sum(1 for i in result.items if i.in_batch)
         message = (
-            f"queue re-ranked ({result.strategy}): {len(result.items)} tiles, the first "
+            f"queue re-picked ({result.strategy}): {len(result.items)} tiles, the first "
             f"{batch} form the batch"
         )
-        if result.unranked:
-            message += f"; {result.unranked} without a proposal stay at the end"
+        if result.without_proposal:
+            message += f"; {result.without_proposal} without a proposal stay at the end"
         if result.note:
             message += f". {result.note}"
         self.app.tell(message)

@@ -40,7 +40,7 @@ from labeler.workflow.annotating import (
 )
 from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
 from labeler.workflow.exporting import ExportResult, ImportResult, export_project, import_masks
-from labeler.workflow.picking import RankedTile, RankResult, rank_tiles
+from labeler.workflow.picking import PickedTile, PickResult, pick_tiles
 from labeler.workflow.progress import Progress, no_progress
 from labeler.workflow.proposing import ProposeResult, propose
 from labeler.workflow.retraining import LabelledTile, RetrainResult, labelled_tiles, retrain
@@ -71,9 +71,9 @@ __all__ = [
     "queue_rows",
     "save_state",
     "save_tile_mask",
-    "RankedTile",
-    "RankResult",
-    "rank_tiles",
+    "PickedTile",
+    "PickResult",
+    "pick_tiles",
     "agreement_summary",
     "compared_images",
     "contested_tiles",

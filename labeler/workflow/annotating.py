@@ -260,10 +260,10 @@ class QueueRow:
 
 
 def queue_rows(project: Project) -> list[QueueRow]:
-    """Every tile in queue order: the newest ranking first, then unranked tiles by id."""
+    """Every tile in queue order: the newest pick first, then tiles outside it by id."""
     store = project.store
     images = {im.id: im.name for im in store.images()}
-    ranking = {item.tile_id: item for item in store.latest_ranking()}
+    picked = {item.tile_id: item for item in store.latest_pick()}
     proposals = store.latest_proposals()
     savers: dict[int, set[str]] = {}
     for a in store.annotations(kind=KIND_FULL):
@@ -271,7 +271,7 @@ def queue_rows(project: Project) -> list[QueueRow]:
             savers.setdefault(a.tile_id, set()).add(a.annotator)
     rows = []
     for t in store.tiles():
-        item = ranking.get(t.id)
+        item = picked.get(t.id)
         prop = proposals.get(t.id)
         agreement = None
         if t.overlap and len(savers.get(t.id, ())) >= 2:

@@ -27,10 +27,10 @@ def loop_majority(masks: np.ndarray, ignore: int = 255) -> np.ndarray:
             votes = Counter(int(v) for v in masks[:, i, j] if v != ignore)
             if not votes:
                 continue
-            ranked = votes.most_common()
-            if len(ranked) > 1 and ranked[0][1] == ranked[1][1]:
+            counts = votes.most_common()
+            if len(counts) > 1 and counts[0][1] == counts[1][1]:
                 continue
-            out[i, j] = ranked[0][0]
+            out[i, j] = counts[0][0]
     return out
 
 

@@ -123,9 +123,9 @@ def test_agreeing_overlap_tile_stays(overlap_project):
 
 def test_queue_order_and_next(project):
     fake_proposals(project)
-    from labeler.workflow import rank_tiles
+    from labeler.workflow import pick_tiles
 
-    result = rank_tiles(project, strategy="entropy", k=2)
+    result = pick_tiles(project, strategy="entropy", k=2)
     rows = queue_rows(project)
     assert [r.tile_id for r in rows] == [i.tile_id for i in result.items]
     ent = {t: project.store.latest_proposal(t).mean_entropy for t in [r.tile_id for r in rows]}
