@@ -7,9 +7,11 @@ caller reports as touched (:meth:`Renderer.touched`), so a brush segment costs t
 proportion to the segment, not the tile.
 
 Overlay
-    A class pixel of a class with an overlay colour is ``(base * (256 - a) + colour * a) >> 8``
-    with ``a = round(opacity * 256)``; on the region outline (a 4-neighbour holds another
-    value) it takes the class colour itself. Pixels of the weak label show their class
+    A class pixel of a class with an overlay colour is blended by
+    :func:`labeler.masks.overlay.blend_palette`, the one rule of every picture the program
+    draws: ``round_half_up((1 - opacity) * base + opacity * colour)``, the opacity taken
+    to the nearest thousandth. On the region outline (a 4-neighbour holds another value)
+    it takes the class colour itself. Pixels of the weak label show their class
     colour (light grey for a class without overlay, e.g. soil).
 """
 
@@ -24,6 +26,7 @@ import numpy as np
 from labeler.classes import UNLABELLED, ClassSchema
 from labeler.editor.history import Box
 from labeler.editor.view import PANE_GAP, Viewport
+from labeler.masks.overlay import blend_palette
 
 __all__ = ["Marks", "Renderer", "check_uncertainty"]
 
@@ -213,11 +216,9 @@ class Renderer:
             out[r0:r1, c0:c1] = base
             return
         m = mask[r0:r1, c0:c1]
-        has = self._has_overlay[m]
-        a = int(round(self._opacity * 256))
-        col = self._lut_bgr[m]
-        blend = ((base.astype(np.uint16) * (256 - a) + col.astype(np.uint16) * a) >> 8)
-        res = np.where(has[:, :, None], blend.astype(np.uint8), base)
+        res = blend_palette(
+            base, m, colours=self._lut_bgr, has_colour=self._has_overlay, opacity=self._opacity
+        )
         if self._show_outlines:
             # a class pixel is on the outline when a 4-neighbour holds another value
             h, w = self._shape
@@ -228,8 +229,9 @@ class Renderer:
             edge[:-1, :] |= ext[:-1, :] != ext[1:, :]
             edge[:, 1:] |= ext[:, 1:] != ext[:, :-1]
             edge[:, :-1] |= ext[:, :-1] != ext[:, 1:]
-            edge = edge[r0 - e0 : r0 - e0 + (r1 - r0), c0 - f0 : c0 - f0 + (c1 - c0)] & has
-            res[edge] = col[edge]
+            edge = edge[r0 - e0 : r0 - e0 + (r1 - r0), c0 - f0 : c0 - f0 + (c1 - c0)]
+            edge &= self._has_overlay[m]
+            res[edge] = self._lut_bgr[m[edge]]
         if weak is not None:
             s = weak[r0:r1, c0:c1]
             on = s != UNLABELLED
