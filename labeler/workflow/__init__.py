@@ -37,6 +37,7 @@ from labeler.workflow.annotating import (
     queue_rows,
     save_state,
     save_tile_mask,
+    weak_label_tile_state,
 )
 from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
 from labeler.workflow.exporting import ExportResult, ImportResult, export_project, import_masks
@@ -71,6 +72,7 @@ __all__ = [
     "queue_rows",
     "save_state",
     "save_tile_mask",
+    "weak_label_tile_state",
     "PickedTile",
     "PickResult",
     "pick_tiles",

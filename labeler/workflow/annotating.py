@@ -1,9 +1,10 @@
 """Saving annotations, accepting and parking tiles, the queue, contested tiles.
 
 This is the one place that decides the annotation state of a save
-(:func:`save_state`): every save, from the editor, the queue or a script, goes through
-:func:`save_tile_mask`, which records the state it decided and returns the row written.
-The editor proposes no state; it shows the one returned.
+(:func:`save_state`) and the tile state a weak-label save leaves
+(:func:`weak_label_tile_state`): every save, from the editor, the queue or a script,
+goes through :func:`save_tile_mask`, which records the state it decided and returns the
+row written. The editor proposes no state; it shows the one returned.
 """
 
 from __future__ import annotations
@@ -21,16 +22,20 @@ from labeler.states import (
     ACCEPTED,
     AMENDED,
     CONTESTED,
+    HELD,
     KIND_FULL,
     KIND_WEAK,
     PARKED,
+    PROPOSED,
     SETTLED,
+    UNSEEN,
     WEAK,
 )
 from labeler.store.records import AnnotationRecord
 
 __all__ = [
     "save_state",
+    "weak_label_tile_state",
     "save_tile_mask",
     "accept_tile",
     "park_tile",
@@ -75,6 +80,40 @@ def save_state(
     return AMENDED
 
 
+def weak_label_tile_state(
+    tile_state: str, *, held_by: str | None, annotator: str, has_proposal: bool
+) -> str | None:
+    """The tile state a weak-label save leaves: None keeps the tile's state.
+
+    A weak label is no full mask, so it never makes a tile saved. But the save ends the
+    saver's hold (the store clears the holder), and a tile left ``held`` without a holder
+    would be handed to nobody and released by nobody. So a tile ``held`` by the saver (or
+    by nobody) goes back to where a release takes it: ``proposed`` when it has a proposal,
+    else ``unseen``. A tile held by another annotator, and a tile in any other state,
+    keeps its state.
+
+    Parameters
+    ----------
+    tile_state : str
+        The tile's state before the save (one of :data:`labeler.states.STATES`).
+    held_by : str or None
+        Who holds the tile before the save.
+    annotator : str
+        Who saves the weak label.
+    has_proposal : bool
+        Whether the tile has a proposal.
+
+    Returns
+    -------
+    str or None
+        ``proposed`` or ``unseen`` for a tile held by the saver or by nobody; None
+        (the state stays) otherwise.
+    """
+    if tile_state != HELD or held_by not in (None, annotator):
+        return None
+    return PROPOSED if has_proposal else UNSEEN
+
+
 def save_tile_mask(
     project: Project,
     tile_id: int,
@@ -94,7 +133,10 @@ def save_tile_mask(
     The state is decided here and nowhere else (:func:`save_state`): ``weak`` for
     a weak label, ``settled`` for a reviewer's decision, ``accepted`` when a full mask
     equals the proposal it started from, else ``amended``. After the save an overlap tile
-    whose annotators all saved is checked for agreement (:func:`after_save`).
+    whose annotators all saved is checked for agreement (:func:`after_save`). A weak label
+    leaves the tile's state as it is, except that a tile the saver held goes back to
+    ``proposed`` or ``unseen`` (:func:`weak_label_tile_state`), as when the editor closes
+    without a save.
 
     Parameters
     ----------
@@ -134,6 +176,15 @@ def save_tile_mask(
     if kind == KIND_FULL and not settling and proposal_id is not None:
         proposal = store.proposal(proposal_id).mask()
     state = save_state(kind=kind, settling=settling, mask=mask, proposal=proposal)
+    tile_state = None
+    if kind == KIND_WEAK:
+        tile = store.tile(tile_id)
+        tile_state = weak_label_tile_state(
+            tile.state,
+            held_by=tile.held_by,
+            annotator=annotator,
+            has_proposal=store.latest_proposal(tile_id) is not None,
+        )
     rec = store.save_annotation(
         tile_id,
         annotator,
@@ -145,6 +196,7 @@ def save_tile_mask(
         actions=actions,
         source=source,
         proposal_id=proposal_id,
+        tile_state=tile_state,
     )
     if kind == KIND_FULL and not settling:
         after_save(project, tile_id)

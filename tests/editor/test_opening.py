@@ -49,7 +49,8 @@ def test_cli_prints_the_state_the_store_recorded(project, monkeypatch, capsys, s
     assert saved.annotator == "ines" and saved.source == "editor"
     assert out.startswith(f"tile {tile.id}: {printed};")
     assert f"saved as {saved.state} (" in out  # the word is the store's
-    assert project.store.tile(tile.id).held_by is None
+    after = project.store.tile(tile.id)
+    assert after.held_by is None and after.state != "held"  # nobody holds it any more
 
 
 def test_edit_tile_reports_the_state_written_and_releases_the_tile(project):  # noqa: F811
