@@ -96,7 +96,13 @@ class QueueScreen(Screen):
 
     # -- rows ---------------------------------------------------------------------------
     def selected_tile(self) -> int | None:
-        """Id of the tile under the table cursor, or None when the table is empty."""
+        """The tile under the table cursor.
+
+        Returns
+        -------
+        int or None
+            Its id; None when the table is empty.
+        """
         table = self.query_one("#queue", DataTable)
         if table.row_count == 0:
             return None
@@ -104,12 +110,24 @@ class QueueScreen(Screen):
         return int(row_key.value)
 
     def table_order(self) -> list[int]:
-        """Tile ids in the order the table shows them."""
+        """The tiles in the order the table shows them.
+
+        Returns
+        -------
+        list of int
+            Tile ids, top row first (the filters applied).
+        """
         table = self.query_one("#queue", DataTable)
         return [int(r.key.value) for r in table.ordered_rows]
 
     def reload(self, *, select: int | None = None) -> None:
-        """Read the queue from the store again (in a worker) and redraw the table."""
+        """Read the queue from the store again (in a worker) and redraw the table.
+
+        Parameters
+        ----------
+        select : int, optional
+            Tile to put the cursor on afterwards (default: the tile under it now).
+        """
         self._load_rows(select)
 
     @work(thread=True, exclusive=True, group="rows", exit_on_error=False)
@@ -194,7 +212,16 @@ class QueueScreen(Screen):
     def select_tile(self, tile_id: int) -> bool:
         """Move the cursor to ``tile_id``, clearing the filters if they hide it.
 
-        Returns False (and says so) when the project has no such tile.
+        Parameters
+        ----------
+        tile_id : int
+            The tile to show.
+
+        Returns
+        -------
+        bool
+            True when the cursor is on the tile; False (and the app says so) when the
+            project has no such tile.
         """
         if tile_id not in {r.tile_id for r in self.rows}:
             self.app.tell(

@@ -208,6 +208,27 @@ def accept_tile(
 ) -> AnnotationRecord:
     """Keep the tile's newest proposal unchanged as ``annotator``'s mask (``accepted``).
 
+    The save names the annotator's newest version of the tile as its parent and counts as
+    one action.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        The tile accepted.
+    annotator : str
+        Who accepts.
+    seconds : float
+        Time spent looking at the tile, for the statistics.
+    source : str
+        Where the accept came from (``"queue"``, ``"script"``, ...).
+
+    Returns
+    -------
+    AnnotationRecord
+        The row written (state ``accepted``).
+
     Raises
     ------
     LabelerError
@@ -236,15 +257,43 @@ def accept_tile(
 
 
 def park_tile(project: Project, tile_id: int, annotator: str) -> None:
-    """Set a tile aside (``parked``); it returns to the queue when someone opens it."""
+    """Set a tile aside (``parked``); it returns to the queue when someone opens it.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        The tile parked.
+    annotator : str
+        Who parks it (recorded in the event log).
+
+    Raises
+    ------
+    labeler.errors.LabelerError
+        If the life cycle does not allow parking the tile (e.g. a contested tile).
+    """
     project.store.set_state(tile_id, PARKED, annotator=annotator, reason="parked by annotator")
 
 
 def overlap_agreement(project: Project, tile_id: int) -> float | None:
     """Lowest pairwise agreement of the newest full masks on an overlap tile.
 
-    ``None`` when fewer than two annotators have saved; NaN when they share no
-    labelled pixel. The metric (kappa or IoU) is the project setting.
+    The metric (Cohen's kappa or IoU, :func:`labeler.agreement.tile_agreement`) is the
+    project setting ``agreement.metric``; a reviewer's settled masks do not count.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        The tile.
+
+    Returns
+    -------
+    float or None
+        The lowest agreement over every pair of annotators; None when fewer than two
+        annotators have saved; NaN when no pair shares a labelled pixel.
     """
     store = project.store
     savers = store.savers(tile_id)
@@ -266,7 +315,20 @@ def after_save(project: Project, tile_id: int) -> float | None:
 
     Once the configured number of annotators has saved, the lowest pairwise agreement
     is compared with the project threshold; below it, the tile becomes ``contested``
-    (a reviewer settles it). Returns the agreement (None when not yet comparable).
+    (a reviewer settles it). Ordinary and settled tiles are left alone.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        The tile just saved.
+
+    Returns
+    -------
+    float or None
+        The agreement (:func:`overlap_agreement`); None when the tile is no overlap tile,
+        is settled, or not enough annotators have saved yet.
     """
     store = project.store
     tile = store.tile(tile_id)
@@ -293,7 +355,34 @@ def after_save(project: Project, tile_id: int) -> float | None:
 
 @dataclass(frozen=True)
 class QueueRow:
-    """One line of the annotators' queue."""
+    """One line of the annotators' queue.
+
+    Attributes
+    ----------
+    rank : int or None
+        Place in the newest pick's queue order, from 0; None for a tile outside it.
+    tile_id : int
+    image : str
+        Name of the tile's image.
+    row, col : int
+        Top-left pixel of the tile in its image.
+    score, reason : float or None, str or None
+        The picker's score and reason (None outside the pick).
+    class_fractions : tuple of float or None
+        Share of each class in the newest proposal (None without one).
+    state : str
+        The tile's life-cycle state.
+    held_by : str or None
+        Who has the tile open.
+    saved_by : tuple of str
+        Annotators with a saved full mask (a reviewer's settled mask not counted).
+    overlap : bool
+        True for a tile given to several annotators.
+    agreement : float or None
+        :func:`overlap_agreement` once two annotators have saved an overlap tile.
+    in_batch : bool
+        True for a tile of the newest pick's batch.
+    """
 
     rank: int | None
     tile_id: int
@@ -312,7 +401,18 @@ class QueueRow:
 
 
 def queue_rows(project: Project) -> list[QueueRow]:
-    """Every tile in queue order: the newest pick first, then tiles outside it by id."""
+    """Every tile in queue order: the newest pick first, then tiles outside it by id.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+
+    Returns
+    -------
+    list of QueueRow
+        One row per tile of the project.
+    """
     store = project.store
     images = {im.id: im.name for im in store.images()}
     picked = {item.tile_id: item for item in store.latest_pick()}
@@ -354,6 +454,22 @@ def queue_rows(project: Project) -> list[QueueRow]:
 
 def next_tile(project: Project, annotator: str) -> int:
     """The first tile in queue order that ``annotator`` may be handed.
+
+    Parked tiles come last. Which tiles an annotator may be handed is told by
+    :meth:`labeler.store.Store.available_for` (overlap tiles go to
+    ``agreement.annotators_per_tile`` annotators).
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    annotator : str
+        Who asks.
+
+    Returns
+    -------
+    int
+        The tile id.
 
     Raises
     ------

@@ -142,8 +142,14 @@ class StoreBackend:
         )
 
     def load_draft(self) -> DraftRecord | None:
-        """The draft of an earlier session, with its weak label (all 255 when it kept
-        none), or None."""
+        """The draft of an earlier session, for the editor to offer back.
+
+        Returns
+        -------
+        DraftRecord or None
+            The draft with its weak label (all 255 when it kept none); None when there
+            is no draft.
+        """
         d = self.project.store.load_draft(self.tile_id, self.annotator)
         if d is None:
             return None
