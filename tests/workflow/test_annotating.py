@@ -48,9 +48,10 @@ _P = np.array([[0, 1], [2, 3]], np.uint8)
 _Q = np.array([[0, 1], [2, 2]], np.uint8)
 
 
-# the rule of DESIGN section 3 (accepted = proposal kept unchanged, amended = corrected,
-# settled = a reviewer decided) plus the state of weak-label saves, written
-# out case by case: (kind, settling, mask, proposal) -> state
+# the rule of the tile life cycle (docs/architecture.md, "Tile life cycle": accepted =
+# proposal kept unchanged, amended = corrected, settled = a reviewer decided) plus the
+# state of weak-label saves, written out case by case: (kind, settling, mask, proposal)
+# -> state
 @pytest.mark.parametrize(
     ("kind", "settling", "mask", "proposal", "state"),
     [
