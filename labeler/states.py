@@ -2,14 +2,18 @@
 
 ``unseen`` (no proposal) -> ``proposed`` (a model version proposed a mask) -> ``held``
 (an annotator has it open) -> ``accepted`` (proposal kept unchanged) or ``amended``
-(corrected) -> optionally ``contested`` (annotators disagree beyond the project's
-threshold) -> ``settled`` (a reviewer decided). ``parked`` = set aside by an annotator.
+(corrected) or ``imported`` (a mask brought in from elsewhere by ``labeler import``) ->
+optionally ``contested`` (annotators disagree beyond the project's threshold) ->
+``settled`` (a reviewer decided). ``parked`` = set aside by an annotator.
 
 The allowed moves are the table ``_MOVES`` below; :func:`check_move` is the one
 life-cycle check, applied by the store to every change of a tile's state (see
-:func:`labeler.store.holds.checked_move`). A mask brought in by ``labeler import`` is
-recorded as an ``imported`` annotation and leaves its tile ``amended``; ``weak`` (a
-scribble-only save) leaves the tile's state as it is.
+:func:`labeler.store.holds.checked_move`). A full mask brought in by ``labeler import``
+is recorded as an ``imported`` annotation and leaves its tile ``imported`` (a saved
+state like ``accepted`` and ``amended``); ``weak`` (a weak-label save) leaves the
+tile's state as it is. A ``contested`` tile takes no import (a reviewer settles it
+first); a ``settled`` one may be moved to ``imported`` (the workflow does so only when
+the import is asked to replace reviewed work).
 """
 
 from __future__ import annotations
@@ -20,6 +24,7 @@ __all__ = [
     "HELD",
     "ACCEPTED",
     "AMENDED",
+    "IMPORTED",
     "CONTESTED",
     "SETTLED",
     "PARKED",
@@ -36,29 +41,31 @@ PROPOSED = "proposed"
 HELD = "held"
 ACCEPTED = "accepted"
 AMENDED = "amended"
+IMPORTED = "imported"
 CONTESTED = "contested"
 SETTLED = "settled"
 PARKED = "parked"
 
 #: Every tile state, in life-cycle order.
-STATES = (UNSEEN, PROPOSED, HELD, ACCEPTED, AMENDED, CONTESTED, SETTLED, PARKED)
+STATES = (UNSEEN, PROPOSED, HELD, ACCEPTED, AMENDED, IMPORTED, CONTESTED, SETTLED, PARKED)
 #: States of a tile that has a saved full mask.
-SAVED_STATES = (ACCEPTED, AMENDED, CONTESTED, SETTLED)
+SAVED_STATES = (ACCEPTED, AMENDED, IMPORTED, CONTESTED, SETTLED)
 #: States an annotation row records (``imported`` = read from a file by ``labeler import``;
 #: ``weak`` = scribbles only).
-ANNOTATION_STATES = (ACCEPTED, AMENDED, SETTLED, "imported", "weak")
+ANNOTATION_STATES = (ACCEPTED, AMENDED, SETTLED, IMPORTED, "weak")
 #: Kinds of annotation masks.
 ANNOTATION_KINDS = ("full", "scribble")
 
 _MOVES: dict[str, frozenset[str]] = {
-    UNSEEN: frozenset({PROPOSED, HELD, ACCEPTED, AMENDED, PARKED, CONTESTED}),
-    PROPOSED: frozenset({PROPOSED, HELD, ACCEPTED, AMENDED, PARKED, CONTESTED}),
-    HELD: frozenset({PROPOSED, UNSEEN, HELD, ACCEPTED, AMENDED, PARKED, CONTESTED}),
-    ACCEPTED: frozenset({HELD, ACCEPTED, AMENDED, CONTESTED, SETTLED, PROPOSED}),
-    AMENDED: frozenset({HELD, ACCEPTED, AMENDED, CONTESTED, SETTLED, PROPOSED}),
+    UNSEEN: frozenset({PROPOSED, HELD, ACCEPTED, AMENDED, IMPORTED, PARKED, CONTESTED}),
+    PROPOSED: frozenset({PROPOSED, HELD, ACCEPTED, AMENDED, IMPORTED, PARKED, CONTESTED}),
+    HELD: frozenset({PROPOSED, UNSEEN, HELD, ACCEPTED, AMENDED, IMPORTED, PARKED, CONTESTED}),
+    ACCEPTED: frozenset({HELD, ACCEPTED, AMENDED, IMPORTED, CONTESTED, SETTLED, PROPOSED}),
+    AMENDED: frozenset({HELD, ACCEPTED, AMENDED, IMPORTED, CONTESTED, SETTLED, PROPOSED}),
+    IMPORTED: frozenset({HELD, ACCEPTED, AMENDED, IMPORTED, CONTESTED, SETTLED, PROPOSED}),
     CONTESTED: frozenset({SETTLED, CONTESTED, HELD}),
-    SETTLED: frozenset({HELD, AMENDED, ACCEPTED, CONTESTED, SETTLED}),
-    PARKED: frozenset({HELD, PROPOSED, ACCEPTED, AMENDED, PARKED, UNSEEN}),
+    SETTLED: frozenset({HELD, AMENDED, ACCEPTED, IMPORTED, CONTESTED, SETTLED}),
+    PARKED: frozenset({HELD, PROPOSED, ACCEPTED, AMENDED, IMPORTED, PARKED, UNSEEN}),
 }
 
 

@@ -11,12 +11,17 @@ Which version is the parent a save must name (its lineage) is told by
 
 A save that changes the tile's state passes the life-cycle check
 (:func:`labeler.store.holds.checked_move`) inside its transaction.
+
+Saves come one at a time (:meth:`AnnotationsMixin.save_annotation`), as a batch that
+lands whole or not at all (:meth:`AnnotationsMixin.save_annotations`), or as a batch
+that saves every item whose tile is still as its parent version says and reports the
+others (:meth:`AnnotationsMixin.save_if_unchanged`, used by imports).
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from dataclasses import dataclass
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, replace
 
 import numpy as np
 import sqlalchemy as sa
@@ -29,7 +34,7 @@ from labeler.store import schema as t
 from labeler.store.base import now
 from labeler.store.history import HistoryMixin, annotation_query, annotation_row, lineage_head_in
 from labeler.store.holds import HoldsMixin, checked_move
-from labeler.store.records import AnnotationRecord, TileRecord
+from labeler.store.records import AnnotationRecord, SaveOutcome, TileRecord
 
 __all__ = ["NewAnnotation", "AnnotationsMixin", "tile_state_after_save"]
 
@@ -69,12 +74,17 @@ def tile_state_after_save(kind: str, state: str, tile_state: str | None = None) 
     Returns
     -------
     str or None
-        ``tile_state`` if given; else ``state`` for full masks (``amended`` for
-        ``imported`` ones); None for scribbles and for ``weak`` full masks.
+        ``tile_state`` if given; else ``state`` for full masks (an ``imported`` full
+        mask leaves the tile ``imported``); None for weak labels (scribble kind) and
+        for ``weak`` full masks.
     """
     if tile_state is not None or kind != "full":
         return tile_state
-    return {"imported": AMENDED, "weak": None}.get(state, state)
+    return None if state == "weak" else state
+
+
+class _RefusedMove(LabelerError):
+    """The life cycle does not allow the state a save asks for (nothing was saved)."""
 
 
 def _conflict(
@@ -127,8 +137,13 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
         tile: TileRecord,
         data: bytes,
         tile_state: str | None,
-    ) -> int:
-        """Write one checked save inside ``conn``'s transaction; the new row's id."""
+    ) -> tuple[int, int]:
+        """Write one checked save inside ``conn``'s transaction; the new row's id and version.
+
+        Raises (before writing anything of this save) :class:`ConflictError` when the
+        lineage moved past ``item.parent_version`` and :class:`_RefusedMove` when the life
+        cycle refuses the tile's move.
+        """
         tile_id = item.tile_id
         parent_version = item.parent_version
         row = conn.execute(sa.select(t.tiles).where(t.tiles.c.id == tile_id)).one()
@@ -140,7 +155,7 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
             try:
                 checked_move(row.state, tile_state, tile_id=tile_id)
             except LabelerError as exc:
-                raise LabelerError(f"{exc}; nothing was saved") from None
+                raise _RefusedMove(f"{exc}; nothing was saved") from None
         top = conn.execute(
             sa.select(sa.func.max(t.annotations.c.version)).where(
                 t.annotations.c.tile_id == tile_id
@@ -193,14 +208,14 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
                 "source": item.source,
             },
         )
-        return int(res.inserted_primary_key[0])
+        return int(res.inserted_primary_key[0]), version
 
     def _write_annotations(self, items: Sequence[NewAnnotation]) -> list[AnnotationRecord]:
         prepared = [(item, *self._prepare(item)) for item in items]
         for attempt in range(_SAVE_RETRIES):
             try:
                 with self._write() as conn:
-                    ids = [self._insert_annotation(conn, *p) for p in prepared]
+                    ids = [self._insert_annotation(conn, *p)[0] for p in prepared]
                     rows = conn.execute(annotation_query().where(t.annotations.c.id.in_(ids))).all()
                 by_id = {r.id: annotation_row(r) for r in rows}
                 return [by_id[i] for i in ids]
@@ -252,8 +267,8 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
             The proposal the annotator started from.
         tile_state : str, optional
             Tile state after the save (default: see :func:`tile_state_after_save`:
-            ``state`` for full masks, unchanged for scribbles; ``imported`` full masks
-            leave the tile ``amended``). Checked against the life cycle.
+            ``state`` for full masks, unchanged for weak labels). Checked against the
+            life cycle.
 
         Returns
         -------
@@ -313,3 +328,58 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
         if not items:
             return []
         return self._write_annotations(items)
+
+    def save_if_unchanged(self, items: Iterable[NewAnnotation]) -> list[SaveOutcome]:
+        """Save every item whose tile is unchanged since its parent version, in ONE transaction.
+
+        An item whose lineage moved past its ``parent_version`` (someone saved the tile
+        since), or whose tile is now in a state the life cycle does not leave for this
+        save (e.g. found ``contested`` meanwhile), is not saved and is reported; every
+        other item is saved. The items that are saved land together or not at all (a
+        kill leaves none of them). Used by imports, where one tile changed by someone
+        else must neither be overwritten nor stop the rest.
+
+        Parameters
+        ----------
+        items : iterable of NewAnnotation
+            May be a generator: the items are taken one at a time, each mask checked
+            and encoded as it comes (only its PNG bytes are kept), all before the write
+            transaction opens, so memory holds one mask at a time and an error raised
+            by the generator saves nothing.
+
+        Returns
+        -------
+        list of SaveOutcome
+            One per item, in the items' order.
+
+        Raises
+        ------
+        ValueError, NotFoundError
+            As :meth:`save_annotation`, for the first item with a bad mask, kind or
+            state or an unknown tile; nothing is written.
+        """
+        prepared = []
+        for item in items:
+            tile, data, tile_state = self._prepare(item)
+            prepared.append((replace(item, mask=None), tile, data, tile_state))
+        if not prepared:
+            return []
+        for attempt in range(_SAVE_RETRIES):
+            try:
+                out: list[SaveOutcome] = []
+                with self._write() as conn:
+                    for p in prepared:
+                        tile_id = p[0].tile_id
+                        try:
+                            _, version = self._insert_annotation(conn, *p)
+                        except (ConflictError, _RefusedMove) as exc:
+                            out.append(SaveOutcome(tile_id, None, str(exc)))
+                        else:
+                            out.append(SaveOutcome(tile_id, version))
+                return out
+            except IntegrityError:
+                # another writer took a version number between our read and insert (not
+                # on SQLite, whose writers queue); re-read: a stale parent is reported
+                if attempt == _SAVE_RETRIES - 1:
+                    raise
+        raise AssertionError("unreachable")  # pragma: no cover

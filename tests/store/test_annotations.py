@@ -72,7 +72,7 @@ def test_scribbles_keep_unlabelled_and_state(store):
         ("full", "accepted", None, "accepted"),
         ("full", "amended", None, "amended"),
         ("full", "settled", None, "settled"),
-        ("full", "imported", None, "amended"),
+        ("full", "imported", None, "imported"),
         ("full", "weak", None, None),
         ("scribble", "weak", None, None),
         ("scribble", "amended", None, None),
@@ -160,7 +160,7 @@ def test_save_annotations_all_or_nothing(store):
         (a.id, 1, "imported"),
         (c.id, 1, "amended"),
     ]
-    assert store.tile(a.id).state == "amended"  # an imported full mask leaves it amended
+    assert store.tile(a.id).state == "imported"  # an imported full mask: a state of its own
 
 
 def test_save_keeps_effort_and_origin(store):
