@@ -144,7 +144,7 @@ def read_mask_file(
     colours: Mapping[tuple[int, int, int], int] | None = None,
     values: Mapping[int, int] | None = None,
 ) -> np.ndarray:
-    """Read a whole ``.png`` mask or ``.geojson``/``.json`` polygon file; see :func:`open_mask_file`.
+    """Read a whole ``.png`` or ``.geojson``/``.json`` mask file; see :func:`open_mask_file`.
 
     Returns
     -------

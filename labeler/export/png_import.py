@@ -9,7 +9,9 @@ when every value is a valid 8-bit class value (or is in the ``values`` table), r
 otherwise. Grey PNGs of fewer than 8 bits and 16-bit colour PNGs are refused.
 
 The file's header (PNG specification, W3C 2nd edition 2003, section 11.2.2 ``IHDR``) is
-read and checked first: signature, size against the image, colour type and bit depth.
+read and checked first: signature, size against the image, colour type and bit depth;
+then every chunk's CRC (section 5.3), so that a damaged or truncated file is refused
+before any pixel is decoded.
 Only then are pixels decoded, through GDAL's PNG driver, a band of rows at a time and
 strictly from top to bottom (a PNG is one compressed stream; going back means decoding
 from the start again), so a mask as large as a 20000 x 20000 orthomosaic is never held
@@ -104,8 +106,8 @@ def read_png_header(path: str | os.PathLike[str]) -> PngHeader:
     ------
     MaskImportError
         Naming the file: missing, not a regular file, unreadable, not a PNG, damaged
-        header (bad CRC, zero size, a colour type or bit depth the specification does
-        not define).
+        header (zero size, a colour type or bit depth the specification does not
+        define), a chunk failing its CRC check, or truncated.
     """
     p = Path(path)
     name = str(p)
@@ -135,9 +137,61 @@ def read_png_header(path: str | os.PathLike[str]) -> PngHeader:
         )
     if compression != 0 or filtering != 0 or interlace not in (0, 1):
         raise MaskImportError(f"{name}: damaged PNG (unknown compression, filter or interlace)")
+    _check_chunks(p, name)
     return PngHeader(
         height=height, width=width, bit_depth=depth, colour_type=ctype, interlaced=bool(interlace)
     )
+
+
+def _check_chunks(path: Path, name: str) -> None:
+    """Walk every chunk: each must pass its CRC check, and IEND must end the image data.
+
+    PNG specification section 5.3: the CRC-32 covers the chunk type and data. Reading the
+    file once this way (a megabyte at a time) finds damage and truncation before any
+    pixel is decoded; a damaged stream could otherwise decode to plausible class values.
+    """
+    seen_data = False
+    try:
+        with open(path, "rb") as fh:
+            fh.seek(len(_SIGNATURE))
+            while True:
+                at = fh.tell()
+                head = fh.read(8)
+                if len(head) < 8:
+                    raise MaskImportError(
+                        f"{name}: truncated PNG (the file ends at byte {at} before its IEND "
+                        "chunk); copy or export it again"
+                    )
+                length, kind = struct.unpack(">I", head[:4])[0], head[4:]
+                if length >= 2**31 or not kind.isalpha():
+                    raise MaskImportError(f"{name}: damaged PNG (no valid chunk at byte {at})")
+                crc = zlib.crc32(kind)
+                left = length
+                while left:
+                    piece = fh.read(min(left, 2**20))
+                    if not piece:
+                        break
+                    crc = zlib.crc32(piece, crc)
+                    left -= len(piece)
+                stored = fh.read(4)
+                label = kind.decode("ascii")
+                if left or len(stored) < 4:
+                    raise MaskImportError(
+                        f"{name}: truncated PNG (the file ends inside its {label} chunk at "
+                        f"byte {at}); copy or export it again"
+                    )
+                if struct.unpack(">I", stored)[0] != crc:
+                    raise MaskImportError(
+                        f"{name}: damaged PNG (its {label} chunk at byte {at} fails its CRC "
+                        "check); copy or export it again"
+                    )
+                seen_data |= kind == b"IDAT"
+                if kind == b"IEND":
+                    break
+    except OSError as err:
+        raise MaskImportError(f"{name}: cannot be read ({err.strerror or err})") from None
+    if not seen_data:
+        raise MaskImportError(f"{name}: damaged PNG (no IDAT image data chunk)")
 
 
 def _check_table_values(table: Mapping, schema: ClassSchema, name: str, what: str) -> None:

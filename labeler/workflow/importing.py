@@ -11,7 +11,8 @@ here, against what the tile held when the import began (:meth:`Store.tile_work`)
   and an ordinary tile whose newest mask (full mask, accepted proposal, earlier import or
   weak label) was saved by another annotator. On an overlap tile every annotator keeps
   an own lineage, so an import there stands beside the others' masks, is compared with
-  them and may make the tile ``contested``, as an editor save would;
+  them and may make the tile ``contested``, as an editor save would (a settled overlap
+  tile whose decision an import replaced is compared again the same way);
 * every other tile is saved as a new version of the importing annotator: a tile the
   file covers completely as a full mask (annotation state and tile state
   ``imported``), a partly covered tile as a weak label (the tile's state unchanged).

@@ -183,3 +183,70 @@ def test_save_keeps_effort_and_origin(store):
         None,
     )
     assert rec.created_at.utcoffset().total_seconds() == 0
+
+
+# -- saves that skip tiles changed in the meantime (imports) ------------------------------
+
+
+def test_save_if_unchanged_saves_the_current_and_reports_the_stale(store):
+    a, b, c, d = store.tiles()[:4]
+    store.save_annotation(b.id, "tomas", _mask(b, 2), parent_version=None)  # b is now at v1
+    store.set_state(d.id, "parked")
+    items = [
+        NewAnnotation(a.id, "ines", _mask(a, 1), None, state="imported"),
+        NewAnnotation(b.id, "ines", _mask(b, 1), None, state="imported"),  # stale: v1 exists
+        NewAnnotation(c.id, "ines", _mask(c, 255), None, kind="scribble", state="weak"),
+        NewAnnotation(d.id, "ines", _mask(d, 3), None, state="imported"),
+    ]
+    out = store.save_if_unchanged(items)
+    assert [(o.tile_id, o.version) for o in out] == [(a.id, 1), (b.id, None), (c.id, 1), (d.id, 1)]
+    assert out[1].problem == (
+        f"tile {b.id}: this mask was based on version None, but version 1 was saved by tomas "
+        "in the meantime; nothing was overwritten. Reopen the tile to see both masks."
+    )
+    assert out[0].problem is None and out[2].problem is None
+    # tomas's mask is untouched; the saved tiles moved as a save moves them
+    assert [h.annotator for h in store.annotation_history(b.id)] == ["tomas"]
+    assert (store.tile(a.id).state, store.tile(c.id).state) == ("imported", "unseen")
+    assert store.tile(d.id).state == "imported"  # parked -> imported is allowed
+    assert store.latest_annotation(a.id).source == "editor"
+
+
+def test_save_if_unchanged_reports_a_refused_move_and_saves_the_rest(tmp_path):
+    store = make_store(tmp_path / "o.db", overlap_share=1.0)
+    a, b = store.tiles()[:2]
+    store.save_annotation(a.id, "tomas", _mask(a, 2), parent_version=None)
+    store.set_state(a.id, "contested")
+    out = store.save_if_unchanged([
+        NewAnnotation(a.id, "ines", _mask(a, 1), None, state="imported"),
+        NewAnnotation(b.id, "ines", _mask(b, 1), None, state="imported"),
+    ])
+    assert out[0].version is None and out[1].version == 1
+    assert out[0].problem.startswith(
+        f"tile {a.id}: cannot move from 'contested' to 'imported'; allowed from 'contested':"
+    ) and out[0].problem.endswith("; nothing was saved")
+    assert store.tile(a.id).state == "contested" and len(store.annotation_history(a.id)) == 1
+    store.close()
+
+
+def test_save_if_unchanged_takes_a_generator_and_saves_nothing_when_it_fails(store):
+    tiles = store.tiles()
+    taken = []
+
+    def items(fail_at):
+        for k, t in enumerate(tiles):
+            if k == fail_at:
+                raise ValueError("the file broke off")
+            taken.append(t.id)
+            yield NewAnnotation(t.id, "ines", _mask(t, 1), None, state="imported")
+
+    with pytest.raises(ValueError, match="the file broke off"):
+        store.save_if_unchanged(items(fail_at=4))
+    assert taken == [t.id for t in tiles[:4]]
+    assert store.annotations(kind=None) == []  # nothing of the first four was written
+    with pytest.raises(ValueError, match="not class indices"):
+        store.save_if_unchanged([NewAnnotation(tiles[0].id, "ines", _mask(tiles[0], 9), None)])
+    assert store.annotations(kind=None) == []
+    assert store.save_if_unchanged(iter(())) == []
+    out = store.save_if_unchanged(items(fail_at=None))
+    assert [o.version for o in out] == [1] * len(tiles)
