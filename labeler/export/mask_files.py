@@ -1,7 +1,8 @@
 """Mask files given to an import: which paths are read, and which image each belongs to.
 
 A mask file must be a regular file (not a folder, pipe, device or socket: reading a pipe
-or a device could wait for ever or never end) with one of the extensions of
+or a device could wait for ever or never end), with a name that prints on one line (no
+control characters, valid UTF-8), with one of the extensions of
 :data:`MASK_FILE_EXTENSIONS`. Its name ties it to an image of the project
 (:func:`match_mask_to_image`). Readers of mask files share one way of being read, a band
 of rows at a time (:class:`MaskSource`).
@@ -73,9 +74,22 @@ def check_mask_path(path: str | os.PathLike[str]) -> int:
     Raises
     ------
     MaskImportError
-        Naming the path: missing, a folder, a pipe, device or socket, or not readable.
+        Naming the path: a name with control characters or not UTF-8 (it could not be
+        shown on one line), missing, a folder, a pipe, device or socket, or not readable.
     """
     p = Path(path)
+    text = str(p)
+    if any(ord(ch) < 32 or ord(ch) == 127 for ch in text):
+        raise MaskImportError(
+            f"{text!r}: a file name with control characters (newline, tab, ...) is not read; "
+            "rename the file"
+        )
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        raise MaskImportError(
+            f"{text!r}: the file name is not valid UTF-8 text; rename the file"
+        ) from None
     try:
         st = p.stat()
     except FileNotFoundError:

@@ -205,6 +205,14 @@ def _check_table_values(table: Mapping, schema: ClassSchema, name: str, what: st
             )
 
 
+def _innermost(err: BaseException) -> str:
+    """The message of the first error in a chain (the decoder's own words), on one line."""
+    seen = err
+    while (seen.__cause__ or seen.__context__) is not None:
+        seen = seen.__cause__ or seen.__context__  # type: ignore[assignment]
+    return " ".join(str(seen).split()) or type(seen).__name__
+
+
 def _colour_key(rgb: np.ndarray) -> np.ndarray:
     return (rgb[..., 0].astype(np.int64) << 16) | (rgb[..., 1].astype(np.int64) << 8) | rgb[..., 2]
 
@@ -316,7 +324,9 @@ class PngMaskReader:
                 with rasterio.Env(GDAL_CACHEMAX=_GDAL_CACHE_MB):
                     return rasterio.open(self.path, driver="PNG")
         except (RasterioError, OSError) as err:
-            raise MaskImportError(f"{self.name}: not a readable PNG image ({err})") from None
+            raise MaskImportError(
+                f"{self.name}: not a readable PNG image ({_innermost(err)})"
+            ) from None
 
     def _read_palette(self) -> dict[int, int]:
         try:
@@ -335,7 +345,7 @@ class PngMaskReader:
         except (RasterioError, OSError) as err:
             raise MaskImportError(
                 f"{self.name}: damaged or truncated PNG: rows {start}..{stop - 1} cannot be "
-                f"decoded ({err})"
+                f"decoded ({_innermost(err)})"
             ) from None
 
     # -- values ----------------------------------------------------------------------

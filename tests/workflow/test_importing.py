@@ -324,6 +324,13 @@ def _bad_inputs(tmp_path):
          error=LabelerError, annotator=" ")
     case("unmatched name", [put(tmp_path, full_mask(1), "west-block.png")],
          r"west-block.png: no image of the project is called 'west-block'")
+    newline = put(tmp_path, full_mask(1), "east\nblock.png")
+    case("a newline in the name", [newline], r"east\\nblock.png': a file name with control "
+         r"characters .* is not read; rename the file", image="east-block")
+    undecodable = tmp_path / os.fsdecode(b"east-block-\xff.png")
+    undecodable.write_bytes(b"")
+    case("a name that is not UTF-8", [undecodable], r"east-block-\\udcff.png': the file name "
+         r"is not valid UTF-8 text", image="east-block")
     return cases
 
 
@@ -333,7 +340,7 @@ def test_bad_inputs_import_nothing_and_change_nothing(project, tmp_path):
     save_tile_mask(project, t[0].id, "tomas", np.full(t[0].shape, 2, np.uint8),
                    parent_version=None)
     cases = _bad_inputs(tmp_path)
-    assert len(cases) == 16
+    assert len(cases) == 18
     before = project_fingerprint(project)
     for label, files, options, error, match in cases:
         options = {"annotator": "survey", **options}
