@@ -8,10 +8,9 @@ datasets), or by colour when a ``colours`` table is given. 16-bit grey PNGs are 
 when every value is a valid 8-bit class value (or is in the ``values`` table), refused
 otherwise. Grey PNGs of fewer than 8 bits and 16-bit colour PNGs are refused.
 
-The file's header (PNG specification, W3C 2nd edition 2003, section 11.2.2 ``IHDR``) is
-read and checked first: signature, size against the image, colour type and bit depth;
-then every chunk's CRC (section 5.3), so that a damaged or truncated file is refused
-before any pixel is decoded.
+The file's header and chunks are checked first (:mod:`labeler.export.png_header`):
+signature, every chunk's CRC, the end of the file, then the size against the image, the
+colour type and the bit depth, all before any pixel is decoded.
 Only then are pixels decoded, through GDAL's PNG driver, a band of rows at a time and
 strictly from top to bottom (a PNG is one compressed stream; going back means decoding
 from the start again), so a mask as large as a 20000 x 20000 orthomosaic is never held
@@ -25,11 +24,8 @@ problem.
 from __future__ import annotations
 
 import os
-import struct
 import warnings
-import zlib
 from collections.abc import Mapping
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -39,161 +35,14 @@ from rasterio.windows import Window
 
 from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
 from labeler.errors import MaskImportError
-from labeler.export.mask_files import check_mask_path
+from labeler.export.png_header import COLOUR_TYPES, read_png_header
 
-__all__ = ["MAX_INTERLACED_BYTES", "PngHeader", "read_png_header", "PngMaskReader", "read_png_mask"]
+__all__ = ["MAX_INTERLACED_BYTES", "PngMaskReader", "read_png_mask"]
 
 #: Largest pixel data (bytes) of an interlaced PNG that is read (it is decoded whole).
 MAX_INTERLACED_BYTES = 256 * 2**20
 #: GDAL block cache (MB) while a mask is read: rows are read once, top to bottom.
 _GDAL_CACHE_MB = 32
-_SIGNATURE = b"\x89PNG\r\n\x1a\n"
-#: Colour type -> (name, channels, allowed bit depths); PNG specification table 11.1.
-_COLOUR_TYPES = {
-    0: ("grey", 1, (1, 2, 4, 8, 16)),
-    2: ("RGB", 3, (8, 16)),
-    3: ("palette", 1, (1, 2, 4, 8)),
-    4: ("grey with alpha", 2, (8, 16)),
-    6: ("RGBA", 4, (8, 16)),
-}
-
-
-@dataclass(frozen=True)
-class PngHeader:
-    """The ``IHDR`` chunk of a PNG file.
-
-    Attributes
-    ----------
-    height, width : int
-        Size in pixels.
-    bit_depth : int
-        Bits per sample (per palette index for palette images).
-    colour_type : int
-        0 grey, 2 RGB, 3 palette, 4 grey with alpha, 6 RGBA.
-    interlaced : bool
-        Adam7 interlacing.
-    """
-
-    height: int
-    width: int
-    bit_depth: int
-    colour_type: int
-    interlaced: bool
-
-    @property
-    def kind(self) -> str:
-        """E.g. ``"8-bit grey"``, ``"16-bit RGB"``, ``"4-bit palette"``."""
-        return f"{self.bit_depth}-bit {_COLOUR_TYPES[self.colour_type][0]}"
-
-    @property
-    def channels(self) -> int:
-        """Samples per pixel as stored (1 for palette images)."""
-        return _COLOUR_TYPES[self.colour_type][1]
-
-
-def read_png_header(path: str | os.PathLike[str]) -> PngHeader:
-    """Read and check the signature and ``IHDR`` chunk of a PNG file (no pixel is decoded).
-
-    Parameters
-    ----------
-    path : path-like
-
-    Returns
-    -------
-    PngHeader
-
-    Raises
-    ------
-    MaskImportError
-        Naming the file: missing, not a regular file, unreadable, not a PNG, damaged
-        header (zero size, a colour type or bit depth the specification does not
-        define), a chunk failing its CRC check, or truncated.
-    """
-    p = Path(path)
-    name = str(p)
-    check_mask_path(p)
-    try:
-        with open(p, "rb") as fh:
-            head = fh.read(33)
-    except OSError as err:
-        raise MaskImportError(f"{name}: cannot be read ({err.strerror or err})") from None
-    if not head.startswith(_SIGNATURE):
-        what = "an empty file" if not head else "no PNG signature"
-        raise MaskImportError(
-            f"{name}: not a PNG file ({what}); class masks are read from PNG or GeoJSON files"
-        )
-    if len(head) < 33 or head[12:16] != b"IHDR" or struct.unpack(">I", head[8:12])[0] != 13:
-        raise MaskImportError(f"{name}: damaged PNG (no complete IHDR header chunk)")
-    body = head[16:29]
-    if struct.unpack(">I", head[29:33])[0] != zlib.crc32(head[12:29]):
-        raise MaskImportError(f"{name}: damaged PNG (the IHDR header chunk fails its CRC check)")
-    width, height, depth, ctype, compression, filtering, interlace = struct.unpack(">IIBBBBB", body)
-    if width == 0 or height == 0 or width >= 2**31 or height >= 2**31:
-        raise MaskImportError(f"{name}: damaged PNG (it declares {width} x {height} pixels)")
-    if ctype not in _COLOUR_TYPES or depth not in _COLOUR_TYPES[ctype][2]:
-        raise MaskImportError(
-            f"{name}: damaged PNG (colour type {ctype} with bit depth {depth} is not defined "
-            "by the PNG specification)"
-        )
-    if compression != 0 or filtering != 0 or interlace not in (0, 1):
-        raise MaskImportError(f"{name}: damaged PNG (unknown compression, filter or interlace)")
-    _check_chunks(p, name)
-    return PngHeader(
-        height=height, width=width, bit_depth=depth, colour_type=ctype, interlaced=bool(interlace)
-    )
-
-
-def _check_chunks(path: Path, name: str) -> None:
-    """Walk every chunk: each must pass its CRC check, and IEND must end the image data.
-
-    PNG specification section 5.3: the CRC-32 covers the chunk type and data. Reading the
-    file once this way (a megabyte at a time) finds damage and truncation before any
-    pixel is decoded; a damaged stream could otherwise decode to plausible class values.
-    """
-    seen_data = False
-    try:
-        with open(path, "rb") as fh:
-            fh.seek(len(_SIGNATURE))
-            while True:
-                at = fh.tell()
-                head = fh.read(8)
-                if len(head) < 8:
-                    raise MaskImportError(
-                        f"{name}: truncated PNG (the file ends at byte {at} before its IEND "
-                        "chunk); copy or export it again"
-                    )
-                length, kind = struct.unpack(">I", head[:4])[0], head[4:]
-                if length >= 2**31 or not kind.isalpha():
-                    raise MaskImportError(f"{name}: damaged PNG (no valid chunk at byte {at})")
-                crc = zlib.crc32(kind)
-                left = length
-                while left:
-                    piece = fh.read(min(left, 2**20))
-                    if not piece:
-                        break
-                    crc = zlib.crc32(piece, crc)
-                    left -= len(piece)
-                stored = fh.read(4)
-                label = kind.decode("ascii")
-                if left or len(stored) < 4:
-                    raise MaskImportError(
-                        f"{name}: truncated PNG (the file ends inside its {label} chunk at "
-                        f"byte {at}); copy or export it again"
-                    )
-                if struct.unpack(">I", stored)[0] != crc:
-                    raise MaskImportError(
-                        f"{name}: damaged PNG (its {label} chunk at byte {at} fails its CRC "
-                        "check); copy or export it again"
-                    )
-                seen_data |= kind == b"IDAT"
-                if kind == b"IEND":
-                    break
-    except OSError as err:
-        raise MaskImportError(f"{name}: cannot be read ({err.strerror or err})") from None
-    if not seen_data:
-        raise MaskImportError(f"{name}: damaged PNG (no IDAT image data chunk)")
-
-
 def _check_table_values(table: Mapping, schema: ClassSchema, name: str, what: str) -> None:
     for key, value in table.items():
         if not isinstance(value, int | np.integer) or (
@@ -294,7 +143,7 @@ class PngMaskReader:
             )
         if ctype in (2, 6) and colours is None:
             raise MaskImportError(
-                f"{name}: an {_COLOUR_TYPES[ctype][0]} mask needs a colour table (colour -> "
+                f"{name}: an {COLOUR_TYPES[ctype][0]} mask needs a colour table (colour -> "
                 "class); pass colours, or save the mask as 8-bit single-channel class indices"
             )
         stored = header.height * header.width * header.channels * max(1, depth // 8)
