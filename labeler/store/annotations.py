@@ -308,7 +308,8 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
     def save_annotations(self, items: Sequence[NewAnnotation]) -> list[AnnotationRecord]:
         """Save several annotations in ONE transaction: all land or none does.
 
-        Used by imports, where a file covering many tiles must not land half-way.
+        For a batch that must land whole (a conflict on any tile refuses all of it);
+        imports use :meth:`save_if_unchanged`, which saves the tiles still unchanged.
         Every item is checked as in :meth:`save_annotation` before anything is written.
 
         Parameters

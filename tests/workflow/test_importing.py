@@ -382,3 +382,34 @@ def test_a_bad_second_file_stops_the_first(project, tmp_path):
     with pytest.raises(MaskImportError, match=r"west-block_mask.png: holds values \[9\]"):
         import_masks(project, files, annotator="survey")
     assert project_fingerprint(project) == before
+
+
+def test_the_command_prints_one_line_per_outcome(project, tmp_path, capsys):
+    t = project.store.tiles()
+    ids = ", ".join(str(x.id) for x in t)
+    path = put(tmp_path, full_mask(1))
+    argv = ["import", str(project.root), str(path), "--annotator"]
+    assert main([*argv, "survey"]) == 0
+    assert capsys.readouterr().out.splitlines() == [
+        f"{path} -> image east-block",
+        "imported 6 full masks and 0 partial masks (weak labels) as survey",
+    ]
+    assert main([*argv, "ines"]) == 0
+    assert capsys.readouterr().out.splitlines()[1:] == [
+        "imported 0 full masks and 0 partial masks (weak labels) as ines",
+        "6 tiles already held these masks; nothing saved",
+    ]
+    other = put(tmp_path, full_mask(2), "east-block.png")
+    assert main([*argv[:2], str(other), "--annotator", "ines"]) == 0
+    assert capsys.readouterr().out.splitlines()[1:] == [
+        "imported 0 full masks and 0 partial masks (weak labels) as ines",
+        "skipped 6 tiles holding a mask another annotator saved (pass --replace to replace "
+        f"them; the earlier versions stay in the history): tiles {ids}",
+    ]
+    assert main([*argv[:2], str(other), "--annotator", "ines", "--replace"]) == 0
+    assert capsys.readouterr().out.splitlines()[1:] == [
+        "imported 6 full masks and 0 partial masks (weak labels) as ines",
+        "replaced reviewed work on 6 tiles (--replace; the earlier versions stay in the "
+        f"history): tiles {ids}",
+    ]
+    assert [len(project.store.annotation_history(x.id)) for x in t] == [2] * 6
