@@ -32,7 +32,7 @@ from labeler.imagery.write import png_bytes
 from labeler.states import AMENDED, ANNOTATION_KINDS, ANNOTATION_STATES, SETTLED
 from labeler.store import schema as t
 from labeler.store.base import now
-from labeler.store.history import HistoryMixin, annotation_query, annotation_row, lineage_head_in
+from labeler.store.history import HistoryMixin, annotation_query, annotation_row
 from labeler.store.holds import HoldsMixin, checked_move
 from labeler.store.records import AnnotationRecord, SaveOutcome, TileRecord
 
@@ -40,6 +40,12 @@ __all__ = ["NewAnnotation", "AnnotationsMixin", "tile_state_after_save"]
 
 #: Attempts of a save that lost a race for a version number before giving up.
 _SAVE_RETRIES = 8
+#: Tile ids per IN list (well under the parameter limits of SQLite and PostgreSQL).
+_CHUNK = 500
+
+
+def _chunks(ids: Sequence[int]) -> list[Sequence[int]]:
+    return [ids[k : k + _CHUNK] for k in range(0, len(ids), _CHUNK)]
 
 
 @dataclass(frozen=True)
@@ -113,13 +119,16 @@ def _conflict(
 class AnnotationsMixin(HistoryMixin, HoldsMixin):
     """Versioned annotation saves of :class:`labeler.store.Store`."""
 
-    def _prepare(self, item: NewAnnotation) -> tuple[TileRecord, bytes, str | None]:
+    def _prepare(
+        self, item: NewAnnotation, tile: TileRecord | None = None
+    ) -> tuple[TileRecord, bytes, str | None]:
         """Check one save before any transaction; its tile, PNG bytes and asked state."""
         if item.kind not in ANNOTATION_KINDS:
             raise ValueError(f"kind: expected one of {ANNOTATION_KINDS}, got {item.kind!r}")
         if item.state not in ANNOTATION_STATES:
             raise ValueError(f"state: expected one of {ANNOTATION_STATES}, got {item.state!r}")
-        tile = self.tile(item.tile_id)
+        if tile is None:
+            tile = self.tile(item.tile_id)
         mask = np.asarray(item.mask)
         if mask.shape != tile.shape:
             raise ValueError(
@@ -130,95 +139,183 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
         data = png_bytes(mask.astype(np.uint8, copy=False))
         return tile, data, tile_state_after_save(item.kind, item.state, item.tile_state)
 
-    def _insert_annotation(
+    def _insert_saves(
         self,
         conn: sa.Connection,
-        item: NewAnnotation,
-        tile: TileRecord,
-        data: bytes,
-        tile_state: str | None,
-    ) -> tuple[int, int]:
-        """Write one checked save inside ``conn``'s transaction; the new row's id and version.
+        prepared: Sequence[tuple[NewAnnotation, TileRecord, bytes, str | None]],
+        *,
+        skip_changed: bool,
+    ) -> list[tuple[int | None, str | None]]:
+        """Write checked saves inside ``conn``'s transaction, in order.
 
-        Raises (before writing anything of this save) :class:`ConflictError` when the
-        lineage moved past ``item.parent_version`` and :class:`_RefusedMove` when the life
-        cycle refuses the tile's move.
+        Each save names its parent version; it is written when that is still its
+        lineage's newest version (the rule of
+        :func:`labeler.store.history.lineage_head_in`, counting the saves
+        of this batch written before it) and the life cycle allows the tile's move.
+        Statements go per chunk of tiles, not per save, so that a batch of thousands of
+        tiles holds the write lock briefly.
+
+        Returns
+        -------
+        list of (version, problem)
+            Per save: the version written and None, or None and why nothing was
+            written (only with ``skip_changed``).
+
+        Raises
+        ------
+        ConflictError, LabelerError
+            Without ``skip_changed``: for the first stale parent or refused move (the
+            caller's transaction then rolls back).
         """
-        tile_id = item.tile_id
-        parent_version = item.parent_version
-        row = conn.execute(sa.select(t.tiles).where(t.tiles.c.id == tile_id)).one()
-        aid = self._annotator_id(conn, item.annotator)
-        head = lineage_head_in(conn, row, aid, settling=item.state == SETTLED)
-        if head != parent_version:
-            raise _conflict(conn, tile_id, parent_version, head)
-        if tile_state is not None:
-            try:
-                checked_move(row.state, tile_state, tile_id=tile_id)
-            except LabelerError as exc:
-                raise _RefusedMove(f"{exc}; nothing was saved") from None
-        top = conn.execute(
-            sa.select(sa.func.max(t.annotations.c.version)).where(
-                t.annotations.c.tile_id == tile_id
+        aids: dict[str, int] = {}
+        for item, *_ in prepared:
+            if item.annotator not in aids:
+                aids[item.annotator] = self._annotator_id(conn, item.annotator)
+        tile_ids = sorted({item.tile_id for item, *_ in prepared})
+        rows: dict[int, sa.Row] = {}
+        top: dict[int, int] = {}  # newest version of each tile
+        own: dict[tuple[int, int], int] = {}  # newest version of each (tile, annotator)
+        for chunk in _chunks(tile_ids):
+            tiles = conn.execute(sa.select(t.tiles).where(t.tiles.c.id.in_(chunk)))
+            rows.update((r.id, r) for r in tiles)
+            newest = (
+                sa.select(
+                    t.annotations.c.tile_id,
+                    t.annotations.c.annotator_id,
+                    sa.func.max(t.annotations.c.version),
+                )
+                .where(t.annotations.c.tile_id.in_(chunk))
+                .group_by(t.annotations.c.tile_id, t.annotations.c.annotator_id)
             )
-        ).scalar()
-        version = (top or 0) + 1
+            for tid, aid, version in conn.execute(newest):
+                own[(tid, aid)] = version
+                top[tid] = max(top.get(tid, 0), version)
+        state = {tid: r.state for tid, r in rows.items()}
+        held = {tid: r.held_by for tid, r in rows.items()}
         stamp = now()
-        res = conn.execute(
-            t.annotations.insert().values(
-                tile_id=tile_id,
-                version=version,
-                parent_version=parent_version,
-                annotator_id=aid,
-                kind=item.kind,
-                state=item.state,
-                mask_png=data,
-                height=tile.height,
-                width=tile.width,
-                seconds=float(item.seconds),
-                actions=int(item.actions),
-                proposal_id=item.proposal_id,
-                source=item.source,
-                created_at=stamp,
+        inserts: list[dict] = []
+        events: list[dict] = []
+        updates: dict[int, dict[str, object]] = {}
+        outcomes: list[tuple[int | None, str | None]] = []
+        for item, tile, data, tile_state in prepared:
+            tid, aid = item.tile_id, aids[item.annotator]
+            row = rows[tid]
+            if row.overlap and item.state != SETTLED and state[tid] != SETTLED:
+                head = own.get((tid, aid))  # an annotator's own lineage (lineage_head_in)
+            else:
+                head = top.get(tid)
+            if head != item.parent_version:
+                conflict = _conflict(conn, tid, item.parent_version, head)
+                if not skip_changed:
+                    raise conflict
+                outcomes.append((None, str(conflict)))
+                continue
+            if tile_state is not None:
+                try:
+                    checked_move(state[tid], tile_state, tile_id=tid)
+                except LabelerError as exc:
+                    refused = _RefusedMove(f"{exc}; nothing was saved")
+                    if not skip_changed:
+                        raise refused from None
+                    outcomes.append((None, str(refused)))
+                    continue
+            version = top.get(tid, 0) + 1
+            top[tid] = own[(tid, aid)] = version
+            inserts.append(
+                {
+                    "tile_id": tid,
+                    "version": version,
+                    "parent_version": item.parent_version,
+                    "annotator_id": aid,
+                    "kind": item.kind,
+                    "state": item.state,
+                    "mask_png": data,
+                    "height": tile.height,
+                    "width": tile.width,
+                    "seconds": float(item.seconds),
+                    "actions": int(item.actions),
+                    "proposal_id": item.proposal_id,
+                    "source": item.source,
+                    "created_at": stamp,
+                }
             )
-        )
-        values: dict[str, object] = {"updated_at": stamp}
-        if tile_state is not None:
-            values["state"] = tile_state
-        if row.held_by == aid:
-            values["held_by"] = None
-        conn.execute(t.tiles.update().where(t.tiles.c.id == tile_id).values(**values))
-        self._assign(conn, tile_id, aid)
-        conn.execute(
-            t.drafts.delete().where(
-                (t.drafts.c.tile_id == tile_id) & (t.drafts.c.annotator_id == aid)
+            before = state[tid]
+            values = updates.setdefault(tid, {"updated_at": stamp})
+            if tile_state is not None:
+                values["state"] = state[tid] = tile_state
+            if held[tid] == aid:
+                values["held_by"] = held[tid] = None
+            events.append(
+                {
+                    "at": stamp,
+                    "kind": "save",
+                    "tile_id": tid,
+                    "annotator_id": aid,
+                    "detail": {
+                        "version": version,
+                        "parent": item.parent_version,
+                        "kind": item.kind,
+                        "state": item.state,
+                        "from": before,
+                        "to": tile_state or before,
+                        "source": item.source,
+                    },
+                }
             )
-        )
-        self._event(
-            conn,
-            "save",
-            tile_id=tile_id,
-            annotator_id=aid,
-            detail={
-                "version": version,
-                "parent": parent_version,
-                "kind": item.kind,
-                "state": item.state,
-                "from": row.state,
-                "to": tile_state or row.state,
-                "source": item.source,
-            },
-        )
-        return int(res.inserted_primary_key[0]), version
+            outcomes.append((version, None))
+        if not inserts:
+            return outcomes
+        conn.execute(t.annotations.insert(), inserts)
+        same: dict[tuple, list[int]] = {}
+        for tid, values in updates.items():
+            same.setdefault(tuple(sorted(values.items())), []).append(tid)
+        for values, tids in same.items():
+            for chunk in _chunks(tids):
+                conn.execute(t.tiles.update().where(t.tiles.c.id.in_(chunk)).values(**dict(values)))
+        saved: dict[int, set[int]] = {}
+        for row in inserts:
+            saved.setdefault(row["annotator_id"], set()).add(row["tile_id"])
+        for aid, tids in saved.items():
+            for chunk in _chunks(sorted(tids)):
+                handed = set(
+                    conn.execute(
+                        sa.select(t.assignments.c.tile_id).where(
+                            (t.assignments.c.annotator_id == aid)
+                            & t.assignments.c.tile_id.in_(chunk)
+                        )
+                    ).scalars()
+                )
+                new = [
+                    {"tile_id": tid, "annotator_id": aid, "assigned_at": stamp}
+                    for tid in chunk
+                    if tid not in handed
+                ]
+                if new:
+                    conn.execute(t.assignments.insert(), new)
+                conn.execute(
+                    t.drafts.delete().where(
+                        t.drafts.c.tile_id.in_(chunk) & (t.drafts.c.annotator_id == aid)
+                    )
+                )
+        conn.execute(t.events.insert(), events)
+        return outcomes
 
     def _write_annotations(self, items: Sequence[NewAnnotation]) -> list[AnnotationRecord]:
         prepared = [(item, *self._prepare(item)) for item in items]
         for attempt in range(_SAVE_RETRIES):
             try:
                 with self._write() as conn:
-                    ids = [self._insert_annotation(conn, *p)[0] for p in prepared]
-                    rows = conn.execute(annotation_query().where(t.annotations.c.id.in_(ids))).all()
-                by_id = {r.id: annotation_row(r) for r in rows}
-                return [by_id[i] for i in ids]
+                    written = self._insert_saves(conn, prepared, skip_changed=False)
+                    out = []
+                    for (item, *_), (version, _) in zip(prepared, written, strict=True):
+                        row = conn.execute(
+                            annotation_query().where(
+                                (t.annotations.c.tile_id == item.tile_id)
+                                & (t.annotations.c.version == version)
+                            )
+                        ).one()
+                        out.append(annotation_row(row))
+                return out
             except IntegrityError:
                 # another writer took a version number between our read and insert;
                 # re-read: if our parent is now stale the lineage check raises ConflictError
@@ -360,24 +457,23 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
             state or an unknown tile; nothing is written.
         """
         prepared = []
+        known: dict[int, TileRecord] = {}  # the tiles of every image met so far
         for item in items:
-            tile, data, tile_state = self._prepare(item)
+            if item.tile_id not in known:
+                image_id = self.tile(item.tile_id).image_id
+                known.update((x.id, x) for x in self.tiles(image_id=image_id))
+            tile, data, tile_state = self._prepare(item, known[item.tile_id])
             prepared.append((replace(item, mask=None), tile, data, tile_state))
         if not prepared:
             return []
         for attempt in range(_SAVE_RETRIES):
             try:
-                out: list[SaveOutcome] = []
                 with self._write() as conn:
-                    for p in prepared:
-                        tile_id = p[0].tile_id
-                        try:
-                            _, version = self._insert_annotation(conn, *p)
-                        except (ConflictError, _RefusedMove) as exc:
-                            out.append(SaveOutcome(tile_id, None, str(exc)))
-                        else:
-                            out.append(SaveOutcome(tile_id, version))
-                return out
+                    written = self._insert_saves(conn, prepared, skip_changed=True)
+                return [
+                    SaveOutcome(item.tile_id, version, problem)
+                    for (item, *_), (version, problem) in zip(prepared, written, strict=True)
+                ]
             except IntegrityError:
                 # another writer took a version number between our read and insert (not
                 # on SQLite, whose writers queue); re-read: a stale parent is reported

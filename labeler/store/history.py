@@ -9,7 +9,7 @@ before saving (:meth:`HistoryMixin.visible_annotation`).
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from datetime import datetime
 
 import sqlalchemy as sa
@@ -144,6 +144,31 @@ class HistoryMixin(ImagesMixin):
                 raise NotFoundError(f"tile {tile_id} is not in this project")
             aid = self._known_annotator_id(conn, annotator)
             return lineage_head_in(conn, row, -1 if aid is None else aid, settling=settling)
+
+    def annotations_at(
+        self, versions: Sequence[tuple[int, int]]
+    ) -> dict[tuple[int, int], AnnotationRecord]:
+        """The saved versions named by ``(tile_id, version)`` pairs, in few queries.
+
+        Parameters
+        ----------
+        versions : sequence of (int, int)
+            Tile ids and version numbers.
+
+        Returns
+        -------
+        dict of (int, int) to AnnotationRecord
+            The versions found (a pair that names no saved version is left out).
+        """
+        out: dict[tuple[int, int], AnnotationRecord] = {}
+        pairs = sorted(set(versions))
+        with self._read() as conn:
+            for k in range(0, len(pairs), 500):
+                chunk = pairs[k : k + 500]
+                key = sa.tuple_(t.annotations.c.tile_id, t.annotations.c.version)
+                for r in conn.execute(annotation_query().where(key.in_(chunk))):
+                    out[(r.tile_id, r.version)] = annotation_row(r)
+        return out
 
     def visible_annotation(self, tile_id: int, annotator: str) -> AnnotationRecord | None:
         """The newest full mask ``annotator`` may see on the tile.

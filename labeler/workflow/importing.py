@@ -177,16 +177,6 @@ class _Plan:
     pending: list[tuple[int, str, bool]] = field(default_factory=list)  # tile, kind, replaces
 
 
-def _same_as_head(project: Project, work: TileWork, annotator: str, part: np.ndarray) -> bool:
-    """Whether the version the save would name as parent holds exactly ``part``."""
-    store = project.store
-    own_lineage = work.tile.overlap and work.tile.state != SETTLED
-    ann = store.latest_annotation(
-        work.tile.id, annotator=annotator if own_lineage else None, kind=None
-    )
-    return ann is not None and ann.version == work.head and np.array_equal(ann.mask(), part)
-
-
 def _tile_saves(
     project: Project,
     planned: Sequence[tuple[Path, ImageRecord]],
@@ -213,6 +203,7 @@ def _tile_saves(
             for start, stop, tiles in _bands(store.tiles(image_id=rec.id)):
                 progress(done + start, total, f"reading {path.name}")
                 band = source.read_rows(start, stop)
+                parts = []
                 for tile in tiles:
                     part = np.ascontiguousarray(
                         band[tile.row - start : tile.row - start + tile.height,
@@ -222,11 +213,16 @@ def _tile_saves(
                     if unlabelled.all():
                         result.not_covered.append(tile.id)
                         continue
-                    kind = "scribble" if unlabelled.any() else "full"
+                    parts.append((tile, part, "scribble" if unlabelled.any() else "full"))
+                # the versions these saves would be based on, to leave identical masks alone
+                heads = store.annotations_at(
+                    [(t.id, work[t.id].head) for t, _, kind in parts
+                     if work[t.id].head is not None and work[t.id].head_kind == kind]
+                )
+                for tile, part, kind in parts:
                     w = work[tile.id]
-                    if w.head is not None and w.head_kind == kind and _same_as_head(
-                        project, w, annotator, part
-                    ):
+                    head = heads.get((tile.id, w.head))
+                    if head is not None and np.array_equal(head.mask(), part):
                         result.unchanged.append(tile.id)
                         continue
                     if w.tile.state == CONTESTED:

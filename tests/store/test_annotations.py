@@ -250,3 +250,46 @@ def test_save_if_unchanged_takes_a_generator_and_saves_nothing_when_it_fails(sto
     assert store.save_if_unchanged(iter(())) == []
     out = store.save_if_unchanged(items(fail_at=None))
     assert [o.version for o in out] == [1] * len(tiles)
+
+
+def test_a_batch_larger_than_one_chunk_of_statements(tmp_path):
+    # 729 tiles (27 x 27 of 256 px) pass the 500-id chunks of the batched statements
+    from labeler.imagery.tiling import tile_grid
+    from labeler.store import NewImage, Store
+
+    store = Store(f"sqlite:///{tmp_path / 'big.db'}", create=True)
+    store.add_image(
+        NewImage(name="field", path="images/field.tif", sha256="c" * 64, width=6080,
+                 height=6080, bands=3, dtype="uint8"),
+        tile_grid(6080, 6080, size=256, overlap=32),
+    )
+    tiles = store.tiles()
+    assert len(tiles) == 729
+    store.save_annotation(tiles[600].id, "tomas", _mask(tiles[600], 2), parent_version=None)
+    store.hold(tiles[700].id, "ines")
+    out = store.save_if_unchanged(
+        NewAnnotation(t.id, "ines", _mask(t, 1), None, state="imported") for t in tiles
+    )
+    saved = [o.tile_id for o in out if o.version == 1]
+    assert len(saved) == 728 and [o.tile_id for o in out if o.version is None] == [tiles[600].id]
+    assert store.state_counts()["imported"] == 728
+    assert store.tile(tiles[700].id).held_by is None  # her save ends her hold, as any save
+    assert all(store.assigned(t.id) == ["ines"] for t in tiles[695:705])
+    assert len(store.events(kind="save")) == 1 + 728
+    store.close()
+
+
+def test_saves_of_one_tile_chained_in_one_batch(store):
+    a = store.tiles()[0]
+    first, second = store.save_annotations([
+        NewAnnotation(a.id, "ines", _mask(a, 1), None),
+        NewAnnotation(a.id, "ines", _mask(a, 2), 1),  # based on the save just before it
+    ])
+    assert (first.version, second.version, second.parent_version) == (1, 2, 1)
+    # the second names version 1, but the first of the batch comes as version 3
+    with pytest.raises(ConflictError, match="based on version 1, but version 3 was saved"):
+        store.save_annotations([
+            NewAnnotation(a.id, "ines", _mask(a, 3), 2),
+            NewAnnotation(a.id, "tomas", _mask(a, 3), 1),
+        ])
+    assert [h.version for h in store.annotation_history(a.id)] == [1, 2]  # none of them

@@ -140,3 +140,14 @@ def test_tile_work_agrees_with_lineage_head_and_latest_annotation(tmp_path):
     assert store.tile_work("ines", image_id=999) == []
     assert len(store.tile_work("ines", image_id=tiles[0].image_id)) == len(tiles)
     store.close()
+
+
+def test_annotations_at_reads_the_named_versions(store):
+    a, b = store.tiles()[:2]
+    for k in range(3):
+        store.save_annotation(a.id, "ines", _mask(a, k), parent_version=k or None)
+    store.save_annotation(b.id, "tomas", _mask(b, 3), parent_version=None)
+    got = store.annotations_at([(a.id, 2), (b.id, 1), (b.id, 7), (a.id, 2)])
+    assert set(got) == {(a.id, 2), (b.id, 1)}  # version 7 does not exist
+    assert (got[(a.id, 2)].mask() == 1).all() and got[(b.id, 1)].annotator == "tomas"
+    assert store.annotations_at([]) == {}
