@@ -24,10 +24,15 @@ from labeler.workflow import add_images, import_masks, save_tile_mask
 from tests.common import REPO
 
 N_TILES = 12
+#: Statements of the saves' transaction with a new annotator: BEGIN IMMEDIATE; the
+#: annotator looked up and added; tiles and newest versions read; annotations inserted;
+#: tiles updated; assignments read and added; drafts deleted; events inserted.
+WRITE_STATEMENTS = 11
 
 #: A child import that stops at its k-th step of one phase, says "ready" and waits:
 #: "read" counts progress reports while the files are read (before any write), "write"
-#: counts annotation rows inserted inside the write transaction, "after" stops once the
+#: counts the statements of the saves' write transaction (BEGIN IMMEDIATE, then
+#: WRITE_STATEMENTS - 1 reads and writes before its commit), "after" stops once the
 #: import has returned (committed).
 CHILD = textwrap.dedent(
     """
@@ -51,9 +56,16 @@ CHILD = textwrap.dedent(
             if seen[0] == k:
                 pause()
 
+    commits = [0]
+
+    @event.listens_for(project.store.engine, "commit")
+    def committed(conn):
+        if conn.get_execution_options().get("write"):
+            commits[0] += 1
+
     @event.listens_for(project.store.engine, "after_cursor_execute")
-    def inserted(conn, cursor, statement, params, context, executemany):
-        if phase == "write" and statement.startswith("INSERT INTO annotations"):
+    def executed(conn, cursor, statement, params, context, executemany):
+        if phase == "write" and not commits[0] and conn.get_execution_options().get("write"):
             seen[0] += 1
             if seen[0] == k:
                 pause()
@@ -136,15 +148,15 @@ def test_sigkill_during_imports_loses_no_committed_mask(tmp_path):
     project.close()
     rng = np.random.default_rng(2027)
     rounds = [("read", int(rng.integers(1, 4))), ("write", 1),
-              ("write", int(rng.integers(2, N_TILES))), ("write", N_TILES), ("after", 1),
-              ("write", int(rng.integers(1, N_TILES + 1)))]
+              ("write", int(rng.integers(2, WRITE_STATEMENTS))), ("write", WRITE_STATEMENTS),
+              ("after", 1), ("write", int(rng.integers(1, WRITE_STATEMENTS + 1)))]
     for n, (phase, k) in enumerate(rounds):
         mask = tmp_path / f"round-{n}" / "far-strip_mask.png"
         mask.parent.mkdir()
         write_png(mask, np.random.default_rng(n).integers(0, 4, (700, 900)).astype(np.uint8))
         before = _committed(url)
         line, err = _run_child(root, mask, f"import-{n}", phase, k)
-        assert line == "ready", err
+        assert line == "ready", (phase, k, line, err)
         store = Store(url)
         try:
             assert store.integrity_check() == "ok"  # SQLite PRAGMA integrity_check
