@@ -1,4 +1,4 @@
-"""Export (GeoJSON, PNG class masks, manifest) and import of masks (``labeler export/import``)."""
+"""Export of masks: GeoJSON, PNG class masks, manifest (``labeler export``)."""
 
 from __future__ import annotations
 
@@ -20,23 +20,12 @@ from labeler.export.geojson import (
     merge_feature_collections,
     write_geojson,
 )
-from labeler.export.importing import match_mask_to_image, read_mask_file
 from labeler.export.manifest import MANIFEST_NAME, manifest_row, write_manifest
 from labeler.export.pngmasks import write_image_masks
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import stitch
 from labeler.project import Project
-from labeler.states import (
-    ACCEPTED,
-    AMENDED,
-    IMPORTED,
-    KIND_FULL,
-    KIND_WEAK,
-    SETTLED,
-    STATES,
-    WEAK,
-)
-from labeler.store import NewAnnotation
+from labeler.states import ACCEPTED, AMENDED, IMPORTED, KIND_FULL, SETTLED, STATES
 from labeler.store.records import ImageRecord
 from labeler.workflow.progress import Progress, no_progress
 
@@ -47,13 +36,11 @@ __all__ = [
     "ExportResult",
     "image_export_mask",
     "export_project",
-    "ImportResult",
-    "import_masks",
 ]
 
 EXPORT_FORMATS = ("geojson", "masks", "all")
 #: Tile states whose saved masks are exported by default.
-DEFAULT_EXPORT_STATES = (ACCEPTED, AMENDED, SETTLED)
+DEFAULT_EXPORT_STATES = (ACCEPTED, AMENDED, IMPORTED, SETTLED)
 
 
 @dataclass(frozen=True)
@@ -334,131 +321,3 @@ def _replace(r: ExportResult, **changes) -> ExportResult:
     from dataclasses import replace
 
     return replace(r, **changes)
-
-
-@dataclass(frozen=True)
-class ImportResult:
-    """What ``labeler import`` saved."""
-
-    files: list[tuple[Path, str]]  # (mask file, image name)
-    full_tiles: int
-    weak_tiles: int
-    empty_tiles: int
-
-
-def import_masks(
-    project: Project,
-    files: Sequence[str | os.PathLike[str]],
-    *,
-    annotator: str,
-    image: str | None = None,
-    fill: str = "unlabelled",
-    progress: Progress = no_progress,
-) -> ImportResult:
-    """Read PNG class masks or GeoJSON polygons into annotations of ``annotator``.
-
-    Each file is matched to its image by name (``<stem>.png``, ``<stem>_mask.png``,
-    ``<stem>_annotation.png``, or ``.geojson``) or by ``image``, read and checked in the
-    image's pixel grid, and cut into tiles. A tile the file covers completely becomes a
-    full annotation (``imported``); a tile with unlabelled pixels (255) becomes a weak
-    label (kind :data:`~labeler.states.KIND_WEAK`, state ``weak``); a tile the file does
-    not touch is left alone. Every file is read and checked before anything is saved, and
-    all tiles are saved in ONE transaction: on any error nothing is imported.
-
-    Parameters
-    ----------
-    project : Project
-        An open project.
-    files : sequence of path-like
-        PNG class masks or GeoJSON files.
-    annotator : str
-        Whose masks these are.
-    image : str, optional
-        The image of a single file whose name does not tell.
-    fill : {"unlabelled", "soil"}
-        GeoJSON only: pixels no polygon covers stay unlabelled (a weak label), or are
-        soil (the polygons cover every non-soil pixel, as labeler's own export writes).
-    progress : Progress
-        Called as ``progress(done, total, label)`` per file.
-
-    Returns
-    -------
-    ImportResult
-        The files and their images, and how many tiles became full, weak or stayed
-        uncovered.
-
-    Raises
-    ------
-    InputError
-        Naming the file: unmatched name, wrong size, unknown class, invalid geometry,
-        wrong CRS, polygons outside the image.
-    """
-    if fill not in ("unlabelled", "soil"):
-        raise LabelerError(f"--fill: expected 'unlabelled' or 'soil', got {fill!r}")
-    if image is not None and len(files) != 1:
-        raise LabelerError("--image: name one mask file when giving its image explicitly")
-    store = project.store
-    schema = project.settings.classes
-    images = {im.name: im for im in store.images()}
-    if not images:
-        raise LabelerError("the project has no images; add them with 'labeler add' first")
-    planned: list[tuple[Path, ImageRecord, np.ndarray]] = []
-    for n, raw in enumerate(files):
-        path = Path(raw)
-        progress(n, len(files), f"reading {path.name}")
-        if image is not None:
-            if image not in images:
-                raise LabelerError(
-                    f"--image: {image!r} is not in this project; known: {', '.join(sorted(images))}"
-                )
-            name = image
-        else:
-            name = match_mask_to_image(path, images)
-        rec = images[name]
-        mask = read_mask_file(
-            path,
-            shape=rec.shape,
-            transform=_transform(rec),
-            crs=rec.crs,
-            schema=schema,
-            fill=0 if fill == "soil" else UNLABELLED,
-            image=name,
-        )
-        planned.append((path, rec, mask))
-    items: list[NewAnnotation] = []
-    full = weak = empty = 0
-    store.ensure_annotator(annotator)
-    for path, rec, mask in planned:
-        for tile in store.tiles(image_id=rec.id):
-            part = np.ascontiguousarray(mask[tile.window.slices])
-            unl = part == UNLABELLED
-            if unl.all():
-                empty += 1
-                continue
-            kind, state = (KIND_WEAK, WEAK) if unl.any() else (KIND_FULL, IMPORTED)
-            full += kind == KIND_FULL
-            weak += kind == KIND_WEAK
-            items.append(
-                NewAnnotation(
-                    tile_id=tile.id,
-                    annotator=annotator,
-                    mask=part,
-                    parent_version=store.lineage_head(tile.id, annotator),
-                    kind=kind,
-                    state=state,
-                    source=f"import:{path.name}",
-                )
-            )
-    store.save_annotations(items)
-    store.log_event(
-        "import",
-        annotator=annotator,
-        detail={"files": [str(p) for p, _, _ in planned], "full": full, "weak": weak},
-    )
-    progress(len(files), len(files), "saved")
-    return ImportResult(
-        files=[(p, r.name) for p, r, _ in planned],
-        full_tiles=full,
-        weak_tiles=weak,
-        empty_tiles=empty,
-    )
