@@ -70,8 +70,8 @@ from labeler.export.crs import (
 )
 from labeler.export.geometry import encode_geometries
 from labeler.fileio import atomic_write_bytes
-from labeler.imagery.tiling import Window, owner_map
-from labeler.masks.polygons import Region, mask_to_polygons
+from labeler.imagery.tiling import TileLayout, Window
+from labeler.masks.strip_outlines import outline_strips
 from labeler.states import STATES
 
 __all__ = [
@@ -194,7 +194,7 @@ def _tile_properties(infos: Sequence[TileInfo], default_source: str) -> dict:
 
 
 def image_feature_collection(
-    mask: np.ndarray,
+    mask,
     *,
     image: str,
     transform: Affine | None = None,
@@ -215,10 +215,12 @@ def image_feature_collection(
 
     Parameters
     ----------
-    mask : ndarray, shape (H, W), uint8
-        The stitched image mask (tile seams already merged by
-        :func:`labeler.imagery.tiling.stitch`, so a region cut by a tile border is one
-        region here). Values are schema indices or 255.
+    mask : ndarray, shape (H, W), uint8, or a raster read by rows
+        The stitched image mask (tile seams already merged, so a region cut by a tile
+        border is one region here), as an array or as a
+        :class:`labeler.imagery.tiling.StitchedMask` that is stitched strip by strip
+        while it is outlined (:func:`labeler.masks.strip_outlines.outline_strips`: a big
+        image is never held whole). Values are schema indices or 255.
     image : str
         Image name, stored in each feature's ``image`` property and its ``id``.
     transform : affine.Affine or None
@@ -243,7 +245,7 @@ def image_feature_collection(
         Passed to :func:`labeler.masks.polygons.mask_to_polygons` (``smooth=True`` cuts
         staircase corners before simplifying: fewer vertices, not pixel-exact).
     progress : callable(done, total) or None
-        Called after each class.
+        Called after each strip of the mask with the rows outlined and the height.
 
     Returns
     -------
@@ -257,13 +259,16 @@ def image_feature_collection(
     ValueError
         Bad mask, classes, windows or tiles.
     """
-    m = np.asarray(mask)
-    schema.check_mask(m, name="mask")
+    m = mask
+    if isinstance(m, np.ndarray) or not hasattr(m, "shape"):
+        m = np.asarray(m)
+        schema.check_mask(m, name="mask")
+    shape = (int(m.shape[0]), int(m.shape[1]))
     if not isinstance(image, str) or not image:
         raise ValueError(f"image: expected a non-empty image name, got {image!r}")
     if source not in _SOURCES:
         raise ValueError(f"source: expected 'annotation' or 'proposal', got {source!r}")
-    _check_windows(windows, tiles, m.shape)
+    _check_windows(windows, tiles, shape)
     if classes is None:
         wanted = [c.index for c in schema.classes if c.index != 0]
     else:
@@ -291,20 +296,20 @@ def image_feature_collection(
             "or pass pixel_coordinates=True for a pixel-coordinate file (not RFC 7946)"
         )
 
-    regions: list[Region] = []
-    for k, ci in enumerate(wanted):
-        regions.extend(
-            mask_to_polygons(
-                m,
-                class_index=ci,
-                simplify_tolerance_px=simplify_tolerance_px,
-                min_area_px=min_area_px,
-                connectivity=connectivity,
-                smooth=smooth,
-            )
-        )
-        if progress is not None:
-            progress(k + 1, len(wanted))
+    layout = TileLayout(windows, shape=shape) if windows else None
+    regions = outline_strips(
+        m,
+        class_indices=wanted,
+        owner=None if layout is None else layout.owner,
+        simplify_tolerance_px=simplify_tolerance_px,
+        min_area_px=min_area_px,
+        connectivity=connectivity,
+        smooth=smooth,
+        check=None
+        if isinstance(m, np.ndarray)
+        else lambda part, w: schema.check_mask(part, name=f"mask rows {w.row}..{w.row + w.height}"),
+        progress=progress,
+    )
 
     geoms = np.empty(len(regions), dtype=object)
     geoms[:] = [r.geometry for r in regions]
@@ -314,7 +319,7 @@ def image_feature_collection(
         out_geoms = geoms
     else:
         src = as_crs(crs)
-        decimals = coordinate_decimals(ground_sampling_distance(transform, src, shape=m.shape))
+        decimals = coordinate_decimals(ground_sampling_distance(transform, src, shape=shape))
         mapped = shapely.transform(geoms, affine_mapper(transform))
         lonlat = shapely.transform(mapped, reprojector(src, WGS84))
         if src.is_projected:
@@ -322,7 +327,7 @@ def image_feature_collection(
             area_m2 = shapely.area(mapped) * unit * unit
         else:
             centre = reprojector(src, WGS84)(
-                affine_mapper(transform)(np.array([[m.shape[1] / 2.0, m.shape[0] / 2.0]]))
+                affine_mapper(transform)(np.array([[shape[1] / 2.0, shape[0] / 2.0]]))
             )[0]
             local = shapely.transform(
                 lonlat, reprojector(WGS84, local_equal_area(*centre))
@@ -331,15 +336,11 @@ def image_feature_collection(
         out_geoms = lonlat
 
     geometries, boxes = encode_geometries(out_geoms, decimals=decimals, orient=True)
-    owner = owner_map(windows, shape=m.shape) if windows else None
     tile_props: dict[tuple[int, ...], dict] = {}  # the same tile set recurs: build once
     names = {c.index: c.name for c in schema.classes}
     features = []
     for k, region in enumerate(regions):
-        touched: tuple[int, ...] = ()
-        if owner is not None:
-            ids = np.unique(owner[region.window.slices][region.pixels])
-            touched = tuple(int(i) for i in ids if i >= 0)
+        touched = tuple(i for i in region.owners if i >= 0)
         props = tile_props.get(touched)
         if props is None:
             props = tile_props[touched] = _tile_properties(
