@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
 import warnings
 from collections.abc import Iterable, Sequence
@@ -24,7 +25,7 @@ from labeler.export.importing import match_mask_to_image, read_mask_file
 from labeler.export.manifest import MANIFEST_NAME, manifest_row, write_manifest
 from labeler.export.pngmasks import write_image_masks
 from labeler.imagery.read import open_image
-from labeler.imagery.tiling import stitch
+from labeler.imagery.tiling import LazyRaster, StitchedMask, TileLayout
 from labeler.project import Project
 from labeler.states import ACCEPTED, AMENDED, SETTLED, STATES
 from labeler.store import NewAnnotation
@@ -49,10 +50,15 @@ DEFAULT_EXPORT_STATES = (ACCEPTED, AMENDED, SETTLED)
 
 @dataclass(frozen=True)
 class ImageExport:
-    """One image's stitched export mask and where each tile's part came from."""
+    """One image's export mask and where each tile's part came from.
+
+    ``mask`` is a :class:`~labeler.imagery.tiling.StitchedMask` of shape (H, W), uint8,
+    255 where no exported tile covers: it is stitched window by window as it is read
+    (``mask[r0:r1]``), so a big image's mask is never held whole.
+    """
 
     image: ImageRecord
-    mask: np.ndarray  # (H, W) uint8, 255 where no exported tile covers
+    mask: StitchedMask
     windows: list
     tiles: list[TileInfo]
     filled_from_proposals: int
@@ -106,11 +112,12 @@ def image_export_mask(
     Returns
     -------
     ImageExport
-        The stitched (H, W) uint8 mask, the windows and tile details of every part.
+        The (H, W) uint8 mask, stitched when read, the windows and tile details of
+        every part. The tiles' masks stay PNG-compressed until a window needs them.
     """
     store = project.store
     wanted = set(states)
-    masks, windows, infos, tile_states = [], [], [], []
+    records, windows, infos, tile_states = [], [], [], []
     names = {m.id: m.name for m in store.model_versions()}
     filled = 0
     for tile in store.tiles(image_id=image.id):
@@ -119,7 +126,7 @@ def image_export_mask(
         if tile.state in wanted:
             ann = store.latest_annotation(tile.id, kind="full")
         if ann is not None:
-            masks.append(ann.mask())
+            records.append(ann)
             windows.append(tile.window)
             mv = None
             if ann.proposal_id is not None:
@@ -137,7 +144,7 @@ def image_export_mask(
         if proposals:
             prop = store.latest_proposal(tile.id)
             if prop is not None:
-                masks.append(prop.mask())
+                records.append(prop)
                 windows.append(tile.window)
                 infos.append(
                     TileInfo(
@@ -149,7 +156,8 @@ def image_export_mask(
                     )
                 )
                 filled += 1
-    mask = stitch(masks, windows, shape=image.shape, fill=UNLABELLED)
+    layout = TileLayout(windows, shape=image.shape)
+    mask = StitchedMask(layout, lambda k: records[k].mask(), fill=UNLABELLED)
     return ImageExport(
         image=image,
         mask=mask,
@@ -270,18 +278,19 @@ def export_project(
             result = _add(result, features=len(coll["features"]))
             collections.append(coll)
         if do_masks:
-            rgb = None
-            if previews:
-                with open_image(project.image_path(image)) as reader:
-                    rgb = reader.read()
-            files = write_image_masks(
-                folder / "masks",
-                image.name,
-                ex.mask,
-                schema=project.settings.classes,
-                image=rgb,
-                opacity=project.settings.editor.opacity,
-            )
+            with contextlib.ExitStack() as stack:
+                rgb = None
+                if previews:
+                    reader = stack.enter_context(open_image(project.image_path(image)))
+                    rgb = LazyRaster(reader.read, shape=(*reader.info.shape, 3))
+                files = write_image_masks(
+                    folder / "masks",
+                    image.name,
+                    ex.mask,
+                    schema=project.settings.classes,
+                    image=rgb,
+                    opacity=project.settings.editor.opacity,
+                )
             result.masks.append(Path(files.mask))
             rows.append(
                 manifest_row(
