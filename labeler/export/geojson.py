@@ -48,8 +48,8 @@ from __future__ import annotations
 import json
 import os
 import warnings
-from collections.abc import Callable, Iterable, Mapping, Sequence
-from dataclasses import dataclass
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -71,13 +71,16 @@ from labeler.export.crs import (
 from labeler.export.geometry import encode_geometries
 from labeler.fileio import atomic_write_bytes
 from labeler.imagery.tiling import TileLayout, Window
-from labeler.masks.strip_outlines import outline_strips
+from labeler.masks.strip_outlines import OutlinedRegion, outline_strips
 from labeler.states import STATES
 
 __all__ = [
     "COORDINATES_MEMBER",
     "NotRFC7946Warning",
     "TileInfo",
+    "FEATURE_BATCH",
+    "ImageFeatures",
+    "image_features",
     "image_feature_collection",
     "merge_feature_collections",
     "write_geojson",
@@ -86,6 +89,8 @@ __all__ = [
 
 #: Top-level member that marks a file in pixel coordinates (not RFC 7946).
 COORDINATES_MEMBER = "labeler:coordinates"
+#: Regions turned into Feature dicts at once when features are made in batches.
+FEATURE_BATCH = 10_000
 _SOURCES = ("annotation", "proposal")
 
 
@@ -193,7 +198,32 @@ def _tile_properties(infos: Sequence[TileInfo], default_source: str) -> dict:
     }
 
 
-def image_feature_collection(
+@dataclass(frozen=True, eq=False)
+class ImageFeatures:
+    """The features of one image, made batch by batch (see :func:`image_features`).
+
+    Attributes
+    ----------
+    regions : list of OutlinedRegion
+        The outlined regions (pixel coordinates), one feature each, in feature order.
+    pixel_coordinates : bool
+        Whether the features are in pixel coordinates (not RFC 7946).
+    """
+
+    regions: list[OutlinedRegion]
+    pixel_coordinates: bool
+    make: Callable[[Sequence[OutlinedRegion]], list[dict]] = field(repr=False)
+
+    def __len__(self) -> int:
+        return len(self.regions)
+
+    def batches(self, size: int = FEATURE_BATCH) -> Iterator[list[dict]]:
+        """The GeoJSON Feature dicts, ``size`` regions at a time, in order."""
+        for a in range(0, len(self.regions), max(1, int(size))):
+            yield self.make(self.regions[a : a + size])
+
+
+def image_features(
     mask,
     *,
     image: str,
@@ -211,7 +241,11 @@ def image_feature_collection(
     smooth: bool = False,
     progress: Callable[[int, int], None] | None = None,
 ) -> dict:
-    """One image's class mask as a GeoJSON FeatureCollection (see module docstring).
+    """One image's class mask as GeoJSON Features (see module docstring), made in batches.
+
+    The regions are outlined here (strip by strip for a mask read by rows); each
+    batch's features (reprojected, rounded, with their properties) are made only when
+    :meth:`ImageFeatures.batches` reaches it, so a writer can stream them to a file.
 
     Parameters
     ----------
@@ -249,8 +283,8 @@ def image_feature_collection(
 
     Returns
     -------
-    collection : dict
-        A FeatureCollection with ``bbox`` (absent when there is no feature).
+    ImageFeatures
+        The regions and the maker of their features.
 
     Raises
     ------
@@ -311,68 +345,90 @@ def image_feature_collection(
         progress=progress,
     )
 
-    geoms = np.empty(len(regions), dtype=object)
-    geoms[:] = [r.geometry for r in regions]
-    area_m2: np.ndarray | None = None
     if pixel_coordinates:
         decimals = coordinate_decimals(None, pixel=True)
-        out_geoms = geoms
+        src = centre = None
     else:
         src = as_crs(crs)
         decimals = coordinate_decimals(ground_sampling_distance(transform, src, shape=shape))
-        mapped = shapely.transform(geoms, affine_mapper(transform))
-        lonlat = shapely.transform(mapped, reprojector(src, WGS84))
-        if src.is_projected:
-            unit = float(src.linear_units_factor[1])
-            area_m2 = shapely.area(mapped) * unit * unit
-        else:
+        centre = None
+        if not src.is_projected:  # areas in a local equal-area projection at the centre
             centre = reprojector(src, WGS84)(
                 affine_mapper(transform)(np.array([[shape[1] / 2.0, shape[0] / 2.0]]))
             )[0]
-            local = shapely.transform(
-                lonlat, reprojector(WGS84, local_equal_area(*centre))
-            )
-            area_m2 = shapely.area(local)
-        out_geoms = lonlat
-
-    geometries, boxes = encode_geometries(out_geoms, decimals=decimals, orient=True)
-    tile_props: dict[tuple[int, ...], dict] = {}  # the same tile set recurs: build once
     names = {c.index: c.name for c in schema.classes}
-    features = []
-    for k, region in enumerate(regions):
-        touched = tuple(i for i in region.owners if i >= 0)
-        props = tile_props.get(touched)
-        if props is None:
-            props = tile_props[touched] = _tile_properties(
-                [tiles[i] for i in touched] if tiles is not None else [], source
+    tile_props: dict[tuple[int, ...], dict] = {}  # the same tile set recurs: build once
+
+    def make(batch: Sequence[OutlinedRegion]) -> list[dict]:
+        geoms = np.empty(len(batch), dtype=object)
+        geoms[:] = [r.geometry for r in batch]
+        area_m2: np.ndarray | None = None
+        if src is None:
+            out_geoms = geoms
+        else:
+            mapped = shapely.transform(geoms, affine_mapper(transform))
+            out_geoms = shapely.transform(mapped, reprojector(src, WGS84))
+            if centre is None:
+                unit = float(src.linear_units_factor[1])
+                area_m2 = shapely.area(mapped) * unit * unit
+            else:
+                local = shapely.transform(out_geoms, reprojector(WGS84, local_equal_area(*centre)))
+                area_m2 = shapely.area(local)
+        geometries, boxes = encode_geometries(out_geoms, decimals=decimals, orient=True)
+        features = []
+        for k, region in enumerate(batch):
+            touched = tuple(i for i in region.owners if i >= 0)
+            props = tile_props.get(touched)
+            if props is None:
+                props = tile_props[touched] = _tile_properties(
+                    [tiles[i] for i in touched] if tiles is not None else [], source
+                )
+            name = names[region.class_index]
+            features.append(
+                {
+                    "type": "Feature",
+                    "id": f"{image}:{name}:{region.label}",
+                    "bbox": boxes[k].tolist(),
+                    "geometry": geometries[k],
+                    "properties": {
+                        "class": name,
+                        "class_index": region.class_index,
+                        "image": image,
+                        "tiles": list(props["tiles"]),
+                        "annotators": list(props["annotators"]),
+                        "states": list(props["states"]),
+                        "model_version": (
+                            list(props["model_version"])
+                            if isinstance(props["model_version"], list)
+                            else props["model_version"]
+                        ),
+                        "source": props["source"],
+                        "area_m2": None if area_m2 is None else float(f"{area_m2[k]:.12g}"),
+                        "area_px": region.area_px,
+                    },
+                }
             )
-        name = names[region.class_index]
-        features.append(
-            {
-                "type": "Feature",
-                "id": f"{image}:{name}:{region.label}",
-                "bbox": boxes[k].tolist(),
-                "geometry": geometries[k],
-                "properties": {
-                    "class": name,
-                    "class_index": region.class_index,
-                    "image": image,
-                    "tiles": list(props["tiles"]),
-                    "annotators": list(props["annotators"]),
-                    "states": list(props["states"]),
-                    "model_version": (
-                        list(props["model_version"])
-                        if isinstance(props["model_version"], list)
-                        else props["model_version"]
-                    ),
-                    "source": props["source"],
-                    "area_m2": None if area_m2 is None else float(f"{area_m2[k]:.12g}"),
-                    "area_px": region.area_px,
-                },
-            }
-        )
+        return features
+
+    return ImageFeatures(regions=regions, pixel_coordinates=pixel_coordinates, make=make)
+
+
+def image_feature_collection(mask, **options) -> dict:
+    """One image's class mask as a GeoJSON FeatureCollection (see module docstring).
+
+    Takes the arguments of :func:`image_features` and holds every feature at once; for
+    a big image write the batches of :func:`image_features` to a
+    :class:`~labeler.export.geojson_stream.FeatureCollectionWriter` instead.
+
+    Returns
+    -------
+    collection : dict
+        A FeatureCollection with ``bbox`` (absent when there is no feature).
+    """
+    made = image_features(mask, **options)
+    features = [f for batch in made.batches() for f in batch]
     collection: dict = {"type": "FeatureCollection"}
-    if pixel_coordinates:
+    if made.pixel_coordinates:
         collection[COORDINATES_MEMBER] = "pixel"
     box = _collection_bbox(features)
     if box is not None:

@@ -127,15 +127,16 @@ def cut(image: np.ndarray, windows: Sequence[Window]) -> list[np.ndarray]:
     return [np.array(image[w.slices]) for w in windows]
 
 
-def row_strips(height: int, width: int, *, max_px: int = STRIP_PX) -> list[Window]:
+def row_strips(height: int, width: int, *, max_px: int | None = None) -> list[Window]:
     """Full-width strips covering an image top to bottom, each at most ``max_px`` pixels.
 
     Parameters
     ----------
     height, width : int
         Image size in pixels.
-    max_px : int
-        Largest strip; a strip has at least one row however wide the image.
+    max_px : int, optional
+        Largest strip (default :data:`STRIP_PX`); a strip has at least one row however
+        wide the image.
 
     Returns
     -------
@@ -144,6 +145,8 @@ def row_strips(height: int, width: int, *, max_px: int = STRIP_PX) -> list[Windo
     """
     if height < 0 or width < 0:
         raise ValueError(f"height, width: expected sizes >= 0, got {height} x {width}")
+    if max_px is None:
+        max_px = STRIP_PX
     if max_px < 1:
         raise ValueError(f"max_px: expected at least 1 pixel, got {max_px}")
     step = max(1, int(max_px) // max(1, int(width)))

@@ -35,7 +35,7 @@ import cv2
 import numpy as np
 import shapely
 
-from labeler.imagery.tiling import STRIP_PX, Window, row_strips
+from labeler.imagery.tiling import Window, row_strips
 from labeler.masks.polygons import Geometry, _simplify, _trace_regions
 
 __all__ = ["CROP_BUDGET_PX", "HELD_BYTES", "OutlinedRegion", "outline_strips"]
@@ -257,7 +257,7 @@ def outline_strips(
     connectivity: int = 8,
     max_change: float = 0.02,
     smooth: bool = False,
-    strip_px: int = STRIP_PX,
+    strip_px: int | None = None,
     crop_budget_px: int = CROP_BUDGET_PX,
     held_bytes: int = HELD_BYTES,
     check: Callable[[np.ndarray, Window], None] | None = None,
@@ -279,8 +279,9 @@ def outline_strips(
         gives :attr:`OutlinedRegion.owners`. Values below 0 are kept like any other.
     simplify_tolerance_px, min_area_px, connectivity, max_change, smooth
         As for :func:`labeler.masks.polygons.mask_to_polygons`.
-    strip_px : int
-        Pixels read at once (a strip has at least one row).
+    strip_px : int, optional
+        Pixels read at once (default :data:`labeler.imagery.tiling.STRIP_PX`; a strip
+        has at least one row).
     crop_budget_px : int
         Largest bounding box of a region outlined from one crop (module docstring).
     held_bytes : int
