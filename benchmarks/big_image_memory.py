@@ -1,8 +1,8 @@
 """Peak memory of each command on one big orthomosaic (default 20000 x 20000 pixels).
 
-Prints ONE JSON line. The figures are the peak resident memory (maximum RSS, in MB) of
-each ``labeler`` command, each run as its own process (``python -m labeler.cli``) and
-measured with ``os.wait4`` (the child's own ``ru_maxrss``):
+Prints ONE JSON line. The figures are the peak resident memory (in MB) of each ``labeler``
+command, each run as its own process and measured by that process itself: its
+``VmHWM`` (high-water resident set, Linux ``/proc/self/status``) read at exit:
 
 ``add_mb``
     ``labeler add`` of the GeoTIFF (header check, every tile window read once, the copy).
@@ -148,21 +148,41 @@ def generate(folder: Path, size: int) -> dict[str, Path]:
     return {"image": tif, **masks}
 
 
+#: Runs one labeler command and writes its own peak RSS (VmHWM, kB) to a file at exit.
+#: VmHWM belongs to the process's memory after exec; the rusage ru_maxrss of a child is
+#: at least the parent's size when it forked, which would hide small figures.
+_WRAPPER = """
+import atexit, sys
+def _report(path=sys.argv[1]):
+    with open("/proc/self/status") as fh:
+        hwm = [line.split()[1] for line in fh if line.startswith("VmHWM:")]
+    with open(path, "w") as out:
+        out.write(hwm[0] if hwm else "")
+atexit.register(_report)
+sys.argv = ["labeler", *sys.argv[2:]]
+from labeler.cli import main
+sys.exit(main())
+"""
+
+
 def run(cmd: list[str], log: Path) -> tuple[float, float, int, str]:
     """Run one labeler command; its peak RSS (MB), seconds, exit code, last error line."""
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    peak_file = log.with_suffix(".peak")
     t0 = time.perf_counter()
     with open(log, "w") as out:
         proc = subprocess.Popen(
-            [sys.executable, "-m", "labeler.cli", *cmd], stdout=out, stderr=subprocess.STDOUT,
-            env=env, cwd=log.parent,
+            [sys.executable, "-c", _WRAPPER, str(peak_file), *cmd], stdout=out,
+            stderr=subprocess.STDOUT, env=env, cwd=log.parent,
         )
         _, status, usage = os.wait4(proc.pid, 0)
         proc.returncode = os.waitstatus_to_exitcode(status)
     seconds = time.perf_counter() - t0
+    text = peak_file.read_text().strip() if peak_file.exists() else ""
+    peak_mb = int(text) / 1024.0 if text else usage.ru_maxrss / 1024.0  # fallback: an upper bound
     lines = [ln for ln in log.read_text(errors="replace").splitlines() if ln.strip()]
     last = lines[-1][-300:] if lines else ""
-    return usage.ru_maxrss / 1024.0, seconds, proc.returncode, last
+    return peak_mb, seconds, proc.returncode, last
 
 
 def main() -> None:

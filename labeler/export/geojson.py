@@ -360,8 +360,7 @@ def image_features(
     tile_props: dict[tuple[int, ...], dict] = {}  # the same tile set recurs: build once
 
     def make(batch: Sequence[OutlinedRegion]) -> list[dict]:
-        geoms = np.empty(len(batch), dtype=object)
-        geoms[:] = [r.geometry for r in batch]
+        geoms = shapely.from_wkb(np.asarray([r.wkb for r in batch], dtype=object))
         area_m2: np.ndarray | None = None
         if src is None:
             out_geoms = geoms

@@ -39,9 +39,9 @@ __all__ = [
     "owner_map",
 ]
 
-#: Pixels of one strip when a big image is read strip by strip (16 Mpx: 16 MB of mask,
-#: 48 MB of RGB).
-STRIP_PX = 1 << 24
+#: Pixels of one strip when a big image is read strip by strip (4 Mpx: 4 MB of mask,
+#: 12 MB of RGB; labelling its regions takes some 30 bytes per pixel for a moment).
+STRIP_PX = 1 << 22
 
 
 @dataclass(frozen=True, order=True)

@@ -46,14 +46,19 @@ CROP_BUDGET_PX = 1 << 24
 HELD_BYTES = 1 << 27
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(slots=True, eq=False)
 class OutlinedRegion:
     """One connected region of one class of a mask read strip by strip.
 
+    The outline is kept as well-known binary (a few hundred bytes for a plant, about a
+    third of a live geometry), so the regions of a whole orthomosaic fit in memory;
+    :attr:`geometry` decodes it (:func:`shapely.from_wkb` does many at once).
+
     Attributes
     ----------
-    geometry : shapely.Polygon or shapely.MultiPolygon
-        Outline in pixel-corner coordinates of the whole mask (x = column, y = row).
+    wkb : bytes
+        Outline in pixel-corner coordinates of the whole mask (x = column, y = row), a
+        Polygon or MultiPolygon as WKB.
     class_index : int
         Mask value of the region.
     label : int
@@ -67,12 +72,17 @@ class OutlinedRegion:
         the tiles its pixels come from); empty without an owner raster.
     """
 
-    geometry: Geometry
+    wkb: bytes
     class_index: int
     label: int
     area_px: int
     window: Window
     owners: tuple[int, ...]
+
+    @property
+    def geometry(self) -> Geometry:
+        """The outline, a shapely Polygon or MultiPolygon."""
+        return shapely.from_wkb(self.wkb)
 
 
 @dataclass(eq=False)
@@ -146,7 +156,7 @@ class _ClassState:
     bottom: np.ndarray | None = None  # component numbers of the last row read
     regions: list[_Open] = field(default_factory=list)  # component number -> region
     open: set = field(default_factory=set)  # regions touching the last row read
-    done: list[tuple[_Open, Geometry]] = field(default_factory=list)
+    done: list[tuple[int, OutlinedRegion]] = field(default_factory=list)  # (first pixel, region)
 
 
 def _pieces(
@@ -320,9 +330,16 @@ def outline_strips(
                 r.crops, r.geoms = [], []
             elif r.whole and r.box_px > crop_budget_px:
                 r.to_pieces()
-        state.done.extend(
-            _finish(kept, c, tolerance=tol, max_change=max_change, smooth=smooth)
-        )
+        finished = _finish(kept, c, tolerance=tol, max_change=max_change, smooth=smooth)
+        if not finished:
+            return
+        wkbs = shapely.to_wkb(np.asarray([g for _, g in finished], dtype=object))
+        for (r, _), wkb in zip(finished, wkbs, strict=True):
+            owners = np.unique(np.concatenate(r.owners)).tolist() if r.owners else ()
+            window = Window(r.r0, r.c0, r.r1 - r.r0, r.c1 - r.c0)
+            state.done.append(
+                (r.first, OutlinedRegion(wkb, c, 0, int(r.area), window, tuple(owners)))
+            )
 
     for window in row_strips(height, width, max_px=strip_px):
         strip = np.asarray(mask[window.row : window.row + window.height])
@@ -372,20 +389,9 @@ def outline_strips(
     for c in classes:
         state = states[c]
         close(state, list(state.open), c)
-        state.done.sort(key=lambda item: item[0].first)
-        for label, (r, geom) in enumerate(state.done, start=1):
-            owners = (
-                tuple(int(v) for v in np.unique(np.concatenate(r.owners))) if r.owners else ()
-            )
-            out.append(
-                OutlinedRegion(
-                    geometry=geom,
-                    class_index=c,
-                    label=label,
-                    area_px=int(r.area),
-                    window=Window(r.r0, r.c0, r.r1 - r.r0, r.c1 - r.c0),
-                    owners=owners,
-                )
-            )
+        state.done.sort(key=lambda item: item[0])
+        for label, (_, region) in enumerate(state.done, start=1):
+            region.label = label
+            out.append(region)
         state.done = []
     return out
