@@ -20,8 +20,8 @@ from sqlalchemy.exc import OperationalError
 
 from labeler.classes import DEFAULT_SCHEMA, ClassSchema
 from labeler.errors import LabelerError, StoreError
-from labeler.store import schema as t
 from labeler.store import dialect
+from labeler.store import schema as t
 from labeler.store.dialect import integrity_check, make_engine, sqlite_access, sqlite_file
 from labeler.store.failures import display_name, engine_failure, install
 
