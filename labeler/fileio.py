@@ -16,6 +16,8 @@ import hashlib
 import os
 import shutil
 import tempfile
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 from labeler.errors import InputError, LabelerError
@@ -27,6 +29,8 @@ __all__ = [
     "atomic_copy_file",
     "remove_marked_folder",
     "sha256_file",
+    "staged_folder",
+    "check_output_folder",
 ]
 
 
@@ -38,9 +42,7 @@ def file_mode() -> int:
     int
         ``0o666 & ~umask``, the mode ``open(path, "w")`` would give a new file.
     """
-    mask = os.umask(0)
-    os.umask(mask)
-    return 0o666 & ~mask
+    return 0o666 & ~_umask()
 
 
 def _temporary_beside(target: Path, suffix: str) -> tuple[int, str]:
@@ -82,9 +84,7 @@ def atomic_write_bytes(path: str | os.PathLike[str], data: bytes, *, fsync: bool
     return target
 
 
-def atomic_write_text(
-    path: str | os.PathLike[str], text: str, *, encoding: str = "utf-8"
-) -> Path:
+def atomic_write_text(path: str | os.PathLike[str], text: str, *, encoding: str = "utf-8") -> Path:
     """Write ``text`` to ``path`` atomically (see :func:`atomic_write_bytes`).
 
     Parameters
@@ -197,3 +197,91 @@ def remove_marked_folder(folder: str | os.PathLike[str], *, marker: str) -> None
             "deleted; choose another folder"
         )
     shutil.rmtree(root)
+
+
+def check_output_folder(folder: str | os.PathLike[str], *, what: str = "output folder") -> Path:
+    """Check that ``folder`` is, or can become, a folder; nothing is created.
+
+    Parameters
+    ----------
+    folder : path-like
+        Where a command is about to write.
+    what : str
+        How messages name it (e.g. ``"--out"``).
+
+    Returns
+    -------
+    Path
+
+    Raises
+    ------
+    LabelerError
+        If ``folder`` is a file, or one of its parents is a file (no folder can be made
+        under a file).
+    """
+    target = Path(folder)
+    if target.exists() and not target.is_dir():
+        raise LabelerError(f"{what} {target}: is a file, expected a folder; choose another folder")
+    for parent in target.parents:
+        if parent.exists():
+            if not parent.is_dir():
+                raise LabelerError(
+                    f"{what} {target}: {parent} is a file, so no folder can be made under it; "
+                    "choose another folder"
+                )
+            break
+    return target
+
+
+@contextmanager
+def staged_folder(folder: str | os.PathLike[str]) -> Iterator[Path]:
+    """Write a set of files all or nothing: into a staging folder, moved into place at the end.
+
+    The caller writes into the yielded folder (a new hidden folder beside ``folder``, on
+    the same file system and at the same depth, so relative paths computed in it hold
+    for ``folder`` too). When the block ends normally every file is renamed into
+    ``folder`` (replacing files of the same name, keeping others); when it raises,
+    the staging folder is deleted and ``folder`` is as it was. Folders created for it
+    are removed again on failure.
+
+    Parameters
+    ----------
+    folder : path-like
+        The final folder (created if missing).
+
+    Yields
+    ------
+    Path
+        The staging folder to write into.
+    """
+    target = Path(folder)
+    made = [p for p in (target.parent, *target.parent.parents) if not p.exists()]
+    target.parent.mkdir(parents=True, exist_ok=True)
+    stage = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".staging", dir=target.parent))
+    try:
+        os.chmod(stage, 0o777 & ~_umask())  # mkdtemp makes 0700; give the usual mode
+        yield stage
+        if not target.exists():
+            os.replace(stage, target)
+            return
+        for path in sorted(stage.rglob("*")):
+            if path.is_dir():
+                continue
+            final = target / path.relative_to(stage)
+            final.parent.mkdir(parents=True, exist_ok=True)
+            os.replace(path, final)
+        shutil.rmtree(stage)
+    except BaseException:
+        shutil.rmtree(stage, ignore_errors=True)
+        for parent in made:  # nearest first; only if still empty
+            try:
+                parent.rmdir()
+            except OSError:
+                break
+        raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask

@@ -277,7 +277,7 @@ def cmd_export(args) -> int:
 
     states = [s.strip() for s in args.states.split(",") if s.strip()]
     with open_project(args.dir) as project, _Bar("exporting") as bar:
-        out = Path(args.out) if args.out else Path("exports") / project.root.resolve().name
+        out = Path(args.out) if args.out else project.root / "exports"
         result = export_project(
             project,
             out,
