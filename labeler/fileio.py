@@ -20,6 +20,11 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
+try:  # POSIX: claims are locked, so a claim whose process died can be told from a live one
+    import fcntl
+except ImportError:  # pragma: no cover - Windows: claims are never judged stale
+    fcntl = None
+
 from labeler.errors import InputError, LabelerError
 
 __all__ = [
@@ -31,6 +36,9 @@ __all__ = [
     "sha256_file",
     "staged_folder",
     "check_output_folder",
+    "Claim",
+    "claim",
+    "claim_is_live",
 ]
 
 
@@ -285,3 +293,97 @@ def _umask() -> int:
     mask = os.umask(0)
     os.umask(mask)
     return mask
+
+
+class Claim:
+    """A marker file this process holds (see :func:`claim`); :meth:`release` drops it."""
+
+    def __init__(self, path: Path, fd: int) -> None:
+        self.path = path
+        self._fd = fd
+
+    def release(self) -> None:
+        """Delete the marker and let go of it (a second call does nothing)."""
+        if self._fd < 0:
+            return
+        try:
+            self.path.unlink(missing_ok=True)
+        finally:
+            os.close(self._fd)
+            self._fd = -1
+
+    def __enter__(self) -> Claim:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.release()
+
+
+def claim(path: str | os.PathLike[str], *, text: str = "") -> Claim | None:
+    """Create the marker file ``path`` unless it exists, and hold it while this process lives.
+
+    A claim reserves a name among processes (creating it is atomic: only one of two
+    processes gets it) and says "work in progress": the marker is locked (``flock``) from
+    the moment it appears until :meth:`Claim.release` or the end of the process, so
+    :func:`claim_is_live` can tell the claim of a killed process from a live one.
+
+    Parameters
+    ----------
+    path : path-like
+        The marker file; its folder must exist.
+    text : str
+        Written into the marker (for a person who finds it).
+
+    Returns
+    -------
+    Claim or None
+        None when the marker exists already (someone else holds the name, or held it and
+        died; see :func:`claim_is_live`).
+    """
+    target = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    try:
+        os.write(fd, text.encode("utf-8"))
+        if fcntl is not None:
+            fcntl.flock(fd, fcntl.LOCK_EX)  # locked before it has its name
+        try:
+            os.link(tmp, target)  # atomic; fails when the name is taken
+        except FileExistsError:
+            os.close(fd)
+            return None
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    Path(tmp).unlink(missing_ok=True)
+    return Claim(target, fd)
+
+
+def claim_is_live(path: str | os.PathLike[str]) -> bool:
+    """True if the marker ``path`` is held by a running process (or cannot be judged).
+
+    Parameters
+    ----------
+    path : path-like
+        A marker made by :func:`claim`.
+
+    Returns
+    -------
+    bool
+        False only when the marker exists and no process holds its lock: the process
+        that made it ended without releasing it (it was killed).
+    """
+    if fcntl is None:
+        return True
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except FileNotFoundError:
+        return False
+    except OSError:
+        return True
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        return True
+    finally:
+        os.close(fd)  # closing drops our lock, if we got it
+    return False
