@@ -22,6 +22,7 @@ from labeler.classes import DEFAULT_SCHEMA, ClassSchema
 from labeler.errors import LabelerError, StoreError
 from labeler.store import dialect
 from labeler.store import schema as t
+from labeler.store.class_record import check_classes, record_classes
 from labeler.store.dialect import integrity_check, make_engine, sqlite_access, sqlite_file
 from labeler.store.failures import display_name, engine_failure, install
 
@@ -129,6 +130,15 @@ class StoreBase:
             raise engine_failure(exc, url=url) or exc from None
         install(self.engine, url=url, busy_seconds=dialect.BUSY_TIMEOUT_MS / 1000)
         try:
+            self._open(create=create, where=where)
+        except BaseException:
+            self.engine.dispose()
+            raise
+
+    def _open(self, *, create: bool, where: str) -> None:
+        """Check (or create) the tables, the schema version and the class record."""
+        schema = self.schema
+        try:
             insp = sa.inspect(self.engine)
             has_tables = insp.has_table("meta")
         except OperationalError as exc:
@@ -148,6 +158,7 @@ class StoreBase:
                 conn.execute(
                     t.meta.insert(), [{"key": "schema_version", "value": str(t.SCHEMA_VERSION)}]
                 )
+                record_classes(conn, schema)
         else:
             with self.engine.connect() as conn:
                 found = conn.execute(
@@ -159,6 +170,7 @@ class StoreBase:
                     f"{t.SCHEMA_VERSION}; use the matching labeler release",
                     kind="version",
                 )
+            check_classes(self.engine, schema, where=where, read_only=self.read_only)
 
     # -- transactions -------------------------------------------------------------------
     @contextmanager
