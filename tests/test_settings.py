@@ -115,7 +115,11 @@ def test_bad_values_name_the_file_line_and_option(tmp_path, text, line, match):
         ("LABELER_MODEL_EPOCHS", "nan", r"model\.epochs: .*finite.*got 'nan'"),
         ("LABELER_MODEL_EPOCHS", "1e400", r"model\.epochs: .*finite.*got '1e400'"),
         ("LABELER_MODEL_BATCH_SIZE", "0", r"model\.batch_size: .* at least 1, got 0"),
-        ("LABELER_TILES_OVERLAP", "300", r"tiles\.overlap: expected fewer pixels than tiles\.size \(256\)"),
+        (
+            "LABELER_TILES_OVERLAP",
+            "300",
+            r"tiles\.overlap: expected fewer pixels than tiles\.size \(256\)",
+        ),
         ("LABELER_AGREEMENT_THRESHOLD", "inf", r"agreement\.threshold: .*finite"),
         ("LABELER_STORE_URL", "not a url", r"store\.url: expected a database URL"),
     ],
@@ -138,7 +142,9 @@ def test_store_url_is_not_echoed(tmp_path):
 
 def test_settings_file_that_is_a_folder(tmp_path):
     (tmp_path / SETTINGS_FILE).mkdir()
-    with pytest.raises(SettingsError, match=r"labeler\.toml: is a folder, expected the settings file"):
+    with pytest.raises(
+        SettingsError, match=r"labeler\.toml: is a folder, expected the settings file"
+    ):
         load_settings(tmp_path, environ={})
 
 
