@@ -22,6 +22,7 @@ Rules (documented here once):
 from __future__ import annotations
 
 import os
+import re
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -286,18 +287,33 @@ def _open_tiff(p: Path) -> ImageReader:
         raise
 
 
+def _too_large(p: Path, size: str) -> InputError:
+    return InputError(
+        f"{p}: {size} is too large to decode whole (limit {MAX_DECODED_PIXELS:,} pixels); "
+        "PNG/JPEG have no windowed read: convert it to a tiled GeoTIFF (e.g. gdal_translate "
+        "-co TILED=YES) and add that"
+    )
+
+
 def _open_pil(p: Path, fmt: str) -> ImageReader:
     try:
-        with Image.open(p) as im:
+        with warnings.catch_warnings():
+            # Pillow's own size alarm is replaced by MAX_DECODED_PIXELS below (one clear
+            # line instead of a library warning); far beyond it Pillow refuses at open
+            warnings.simplefilter("ignore", Image.DecompressionBombWarning)
+            im = Image.open(p)
+    except Image.DecompressionBombError as exc:
+        found = re.search(r"\((\d+) pixels\)", str(exc))
+        raise _too_large(p, f"{int(found.group(1)):,} pixels" if found else "the image") from None
+    except (OSError, UnidentifiedImageError, SyntaxError, ValueError) as exc:
+        raise InputError(f"{p}: damaged, truncated or unreadable {fmt.upper()} ({exc})") from None
+    try:
+        with im:
             w0, h0 = im.size
             if w0 * h0 > MAX_DECODED_PIXELS:
-                raise InputError(
-                    f"{p}: {w0} x {h0} pixels is too large to decode whole (limit "
-                    f"{MAX_DECODED_PIXELS:,}); PNG/JPEG have no windowed read: convert it to a tiled "
-                    "GeoTIFF (e.g. gdal_translate -co TILED=YES) and add that"
-                )
+                raise _too_large(p, f"{w0} x {h0} pixels")
             with warnings.catch_warnings():
-                warnings.simplefilter("error", Image.DecompressionBombWarning)
+                warnings.simplefilter("ignore", Image.DecompressionBombWarning)
                 im.load()
             im = ImageOps.exif_transpose(im)
             mode = im.mode
