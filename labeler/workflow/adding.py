@@ -14,7 +14,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
-from labeler.errors import InputError
+from labeler.errors import InputError, LabelerError
 from labeler.fileio import sha256_file
 from labeler.imagery.intake import ImageCopy, copy_image, reserve_image_name
 from labeler.imagery.read import open_image
@@ -97,7 +97,15 @@ def add_images(
     InputError
         For the first image that cannot be used (unless ``keep_going``); images before it
         stay added, the failing one leaves no trace (no copy, no rows).
+    LabelerError
+        If the project is read-only for this user.
     """
+    if project.read_only:
+        raise LabelerError(
+            f"{project.root}: the project is read-only for you (its labeler.db cannot be "
+            "written); adding images needs write access: ask its owner for it, or work on a "
+            "copy of the project folder"
+        )
     results: list[AddResult] = []
     known = {im.name for im in project.store.images()}
 
