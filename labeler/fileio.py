@@ -350,12 +350,13 @@ def claim(path: str | os.PathLike[str], *, text: str = "") -> Claim | None:
             os.link(tmp, target)  # atomic; fails when the name is taken
         except FileExistsError:
             os.close(fd)
-            return None
+            fd = -1
     except BaseException:
+        os.close(fd)
         Path(tmp).unlink(missing_ok=True)
         raise
     Path(tmp).unlink(missing_ok=True)
-    return Claim(target, fd)
+    return None if fd < 0 else Claim(target, fd)
 
 
 def claim_is_live(path: str | os.PathLike[str]) -> bool:
