@@ -50,9 +50,7 @@ def test_a_prj_that_is_not_a_file_is_not_copied(tmp_path, plot_png):
     (plot_png.parent / "Plot 7.prj").mkdir()  # a folder where the .prj should be: skipped
     assert [p.suffix for p in side_files(plot_png)] == [".pgw"]
     copied = copy_image(plot_png, tmp_path / "images", "plot-7")
-    assert copied == ImageCopy(
-        tmp_path / "images" / "plot-7.png", (tmp_path / "images" / "plot-7.pgw",)
-    )
+    assert copied == ImageCopy(tmp_path / "images" / "plot-7.png", (tmp_path / "images" / "plot-7.pgw",))
 
 
 def test_a_side_file_that_cannot_be_copied_removes_the_image_copy(tmp_path, plot_png, monkeypatch):
