@@ -92,7 +92,9 @@ def atomic_write_bytes(path: str | os.PathLike[str], data: bytes, *, fsync: bool
     return target
 
 
-def atomic_write_text(path: str | os.PathLike[str], text: str, *, encoding: str = "utf-8") -> Path:
+def atomic_write_text(
+    path: str | os.PathLike[str], text: str, *, encoding: str = "utf-8"
+) -> Path:
     """Write ``text`` to ``path`` atomically (see :func:`atomic_write_bytes`).
 
     Parameters
