@@ -610,3 +610,20 @@ def test_really_full_disk_during_add_and_export(template, small_disk, tmp_path, 
     assert fingerprint(project) == before
     code, _, err = run(["export", project, "--format", "masks"], capsys)  # space again
     assert code == 0, err
+
+
+def test_image_copies_and_database_get_the_same_mode(tmp_path, incoming, capsys):
+    import os
+    import stat
+
+    old = os.umask(0o027)
+    try:
+        assert run(["init", tmp_path / "p"], capsys)[0] == 0
+        assert run(["add", tmp_path / "p", incoming["strip"], incoming["leaf"]], capsys)[0] == 0
+    finally:
+        os.umask(old)
+    modes = {
+        p.name: stat.S_IMODE(p.stat().st_mode)
+        for p in [tmp_path / "p" / "labeler.db", *(tmp_path / "p" / "images").iterdir()]
+    }
+    assert modes == {"labeler.db": 0o640, "north-strip.tif": 0o640, "leaf.png": 0o640}
