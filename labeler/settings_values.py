@@ -74,10 +74,16 @@ class Range:
 #: every database column hold it). Common practice, no source.
 INT_MAX = 2**31 - 1
 
+
+def _cap(limits: Range) -> int:
+    """Largest size of a whole number: INT_MAX unless the option's range allows more."""
+    return max(INT_MAX, int(limits.high)) if limits.high is not None else INT_MAX
+
+
 #: Allowed values of every numeric option (checked when the settings are made). Options
 #: not listed need only be finite numbers (whole numbers for counts).
 RANGES: dict[str, dict[str, Range]] = {
-    "tiles": {"size": Range(16, 16384), "overlap": Range(0), "max_image_px": Range(1)},
+    "tiles": {"size": Range(16, 16384), "overlap": Range(0), "max_image_px": Range(1, 10**12)},
     "cold_start": {"exr_coefficient": Range(0), "min_object_px": Range(0)},
     "model": {
         "mc_samples": Range(1, 1000),
@@ -132,7 +138,7 @@ class Checked:
                 raise bad_value(
                     self._section, f.name, limits.describe(whole=whole) + " (finite)", value
                 )
-            if whole and (value != int(value) or abs(value) > INT_MAX):
+            if whole and (value != int(value) or abs(value) > _cap(limits)):
                 raise bad_value(self._section, f.name, limits.describe(whole=True), value)
             if value not in limits:
                 raise bad_value(self._section, f.name, limits.describe(whole=whole), value)
@@ -213,9 +219,10 @@ def coerce(where: str, value: object, target: type, *, limits: Range | None = No
         number = float(value)  # type: ignore[arg-type]
     except (TypeError, ValueError, OverflowError):
         raise bad_value(*where.split(".", 1), expected, value) from None
-    if not math.isfinite(number) or (isinstance(value, int) and abs(value) > INT_MAX):
+    cap = _cap(limits or Range())
+    if not math.isfinite(number) or (isinstance(value, int) and abs(value) > cap):
         raise bad_value(
-            *where.split(".", 1), f"{expected} (finite, at most {INT_MAX:,} in size)", value
+            *where.split(".", 1), f"{expected} (finite, at most {cap:,} in size)", value
         )
     if whole:
         if number != int(number):

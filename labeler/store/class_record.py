@@ -28,12 +28,31 @@ CLASSES_KEY = "classes"
 
 
 def class_table(schema: ClassSchema) -> dict[int, str]:
-    """Index -> name of every class of ``schema``."""
+    """Index -> name of every class of ``schema``.
+
+    Parameters
+    ----------
+    schema : ClassSchema
+        The project's label schema.
+
+    Returns
+    -------
+    dict of int to str
+        Class index to class name.
+    """
     return {c.index: c.name for c in schema.classes}
 
 
 def record_classes(conn: sa.Connection, schema: ClassSchema) -> None:
-    """Write (or replace) the class record inside the caller's transaction."""
+    """Write (or replace) the class record inside the caller's transaction.
+
+    Parameters
+    ----------
+    conn : sqlalchemy.Connection
+        An open write transaction.
+    schema : ClassSchema
+        The classes saved masks use from now on.
+    """
     value = json.dumps({str(i): n for i, n in sorted(class_table(schema).items())})
     conn.execute(t.meta.delete().where(t.meta.c.key == CLASSES_KEY))
     conn.execute(t.meta.insert().values(key=CLASSES_KEY, value=value))

@@ -53,6 +53,16 @@ def is_sqlite(engine: sa.Engine) -> bool:
 def sqlite_file(url: str) -> Path | None:
     """The database file of a SQLite URL; None for other databases and in-memory SQLite.
 
+    Parameters
+    ----------
+    url : str
+        SQLAlchemy database URL.
+
+    Returns
+    -------
+    Path or None
+        The file, or None.
+
     Raises
     ------
     sqlalchemy.exc.ArgumentError
@@ -72,6 +82,16 @@ def sqlite_access(path: Path) -> tuple[bool, bool]:
     Read-only when this user may not write the file or its folder (SQLite writes its
     ``-wal`` and ``-shm`` files beside the database); immutable when, besides, the folder
     is read-only and no ``-wal`` file shows another process using the database.
+
+    Parameters
+    ----------
+    path : Path
+        An existing SQLite database file.
+
+    Returns
+    -------
+    read_only, immutable : bool
+        How to open it.
     """
     folder = path.parent
     writable = os.access(path, os.W_OK) and os.access(folder, os.W_OK)

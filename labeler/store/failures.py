@@ -59,7 +59,18 @@ def redacted_url(url: str) -> str:
 
 
 def display_name(url: str) -> str:
-    """How messages name the database: the file of a SQLite URL, else the redacted URL."""
+    """How messages name the database: the file of a SQLite URL, else the redacted URL.
+
+    Parameters
+    ----------
+    url : str
+        SQLAlchemy database URL (may carry a password).
+
+    Returns
+    -------
+    str
+        The name to show; never the password.
+    """
     try:
         parsed = sa.engine.make_url(url)
     except Exception:  # noqa: BLE001
@@ -74,6 +85,16 @@ def sqlite_kind(name: str | None) -> str | None:
 
     SQLite result codes: https://www.sqlite.org/rescode.html (extended codes such as
     ``SQLITE_IOERR_WRITE`` belong to their primary code's kind).
+
+    Parameters
+    ----------
+    name : str or None
+        The result-code name the driver reports.
+
+    Returns
+    -------
+    str or None
+        The problem kind, or None when the code is not one the store words.
     """
     if not name:
         return None
@@ -104,6 +125,16 @@ def sqlstate_kind(code: str | None) -> str | None:
     not available, 57014 query canceled (a lock or statement timeout), class 57 operator
     intervention, class 58 system error, XX001/XX002 data or index corrupted, 25006
     read-only transaction.
+
+    Parameters
+    ----------
+    code : str or None
+        The five-character SQLSTATE the driver reports.
+
+    Returns
+    -------
+    str or None
+        The problem kind, or None.
     """
     if not code:
         return None
