@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from labeler.errors import InputError, LabelerError
+from labeler.errors import InputError
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import Window
 from labeler.masks.coldstart import cold_start_proposal, detect_image_rows
@@ -23,7 +23,7 @@ from labeler.metrics import class_fractions
 from labeler.project import Project
 from labeler.store import NewProposal
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
-from labeler.workflow.features import encoder_and_cache, tile_features
+from labeler.workflow.features import encoder_and_cache, head_features, load_head, tile_features
 from labeler.workflow.progress import Progress, no_progress
 
 __all__ = ["ROW_BLOCK_PX", "ProposeResult", "propose"]
@@ -116,22 +116,9 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
     schema = settings.classes
     head_mv = store.latest_model_version(kind="head")
     encoder, cache = encoder_and_cache(project)
-    head = None
+    head = tail = None
     if head_mv is not None:
-        from labeler.model.checkpoint import load_checkpoint
-
-        path = project.resolve(head_mv.checkpoint or "", what=f"checkpoint of model {head_mv.name}")
-        try:
-            head, meta = load_checkpoint(path)
-        except (OSError, ValueError, RuntimeError) as exc:
-            raise LabelerError(
-                f"{path}: cannot load the model {head_mv.name} ({exc}); run 'labeler retrain'"
-            ) from None
-        if meta.encoder_version != encoder.version:
-            raise LabelerError(
-                f"model {head_mv.name} was trained on encoder {meta.encoder_version}, the installed encoder "
-                f"is {encoder.version}; run 'labeler retrain'"
-            )
+        head, tail = load_head(project, head_mv, encoder)  # with its tuned encoder stages
         mv = head_mv
     else:
         mv = _cold_start_version(project)
@@ -200,19 +187,22 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
                     pixels = [_part(rgb, block, t.window) for t in members]
                     props = propose_tiles(
                         head,
-                        feats,
+                        head_features(tail, feats),
                         tile_shapes=[t.shape for t in members],
                         mc_samples=settings.model.mc_samples,
                         seed=settings.model.seed,
                         images=pixels,
                     )
-                    for t, p in zip(members, props, strict=True):
+                    for t, p, f in zip(members, props, feats, strict=True):
                         items.append(
                             NewProposal(
                                 tile_id=t.id,
                                 mask=p.mask,
                                 uncertainty=p.uncertainty,
-                                embedding=p.embedding,
+                                # the installed encoder's pooled features, comparable across heads
+                                embedding=p.embedding
+                                if tail is None
+                                else np.asarray(f[3], np.float32).mean(axis=(1, 2)),
                                 mean_entropy=p.mean_entropy,
                                 mean_margin=p.mean_margin,
                                 mean_least_confidence=p.mean_least_confidence,

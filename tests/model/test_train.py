@@ -67,7 +67,7 @@ def test_training_on_features_returns_head_and_val_iou(tiles):
     )
     assert res.mode == "features" and res.n_train == 2 and res.n_val == 1
     assert [s[:2] for s in seen] == [(1, 2), (2, 2)]
-    assert seen[0][2] == ["epoch", "train_loss", "val_loss", "val_miou"]
+    assert seen[0][2] == ["epoch", "step", "train_loss", "val_loss", "val_miou"]
     assert res.val_iou.shape == (3,)
     assert np.isfinite(res.val_iou[:2]).all() and np.isnan(res.val_iou[2])  # no weed in validation
     assert 1 <= res.best_epoch <= 2 and not res.head.training
@@ -198,7 +198,10 @@ def test_learns_the_invented_disk_scene(tiles):
 @pytest.mark.parametrize(
     ("kwargs", "match"),
     [
-        ({"mode": "sideways"}, "mode: expected 'auto', 'features' or 'images', got 'sideways'"),
+        (
+            {"mode": "sideways"},
+            "mode: expected one of 'auto', 'turns', 'features', 'images', got 'sideways'",
+        ),
         ({"mode": "images"}, "mode: 'images' needs both images and encoder"),
         ({"patience": 0}, "patience: expected at least 1 epoch, got 0"),
         ({"min_steps_per_epoch": 0}, "min_steps_per_epoch: expected at least 1, got 0"),
