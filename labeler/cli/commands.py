@@ -371,5 +371,7 @@ def cmd_retrain(args) -> int:
         f"({result.n_train} training, {result.n_val} validation tiles; best epoch {result.best_epoch})"
     )
     print(f"validation IoU: {format_iou(mv.val_iou, miou=mv.miou)}")
+    tuned = f"; encoder stages tuned: {result.tuned_stages}" if result.tuned_stages else ""
+    print(f"took {result.seconds:.1f} s ({result.steps} optimiser steps{tuned})")
     print("run 'labeler propose' to refresh the proposals with it")
     return 0

@@ -168,5 +168,7 @@ def _tail_state(obj: object) -> dict[str, object] | None:
     if obj is None:
         return None
     if not isinstance(obj, dict) or not isinstance(obj.get("state_dict"), dict):
-        raise ValueError(f"encoder_tail: expected a dict with a state_dict, got {type(obj).__name__}")
+        raise ValueError(
+            f"encoder_tail: expected a dict with a state_dict, got {type(obj).__name__}"
+        )
     return dict(obj)

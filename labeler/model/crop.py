@@ -86,7 +86,8 @@ def crop_logits(
     window: CropWindow,
     *,
     margin: int = MARGIN_CELLS,
-) -> tuple[torch.Tensor, torch.Tensor | None]:
+    coarse: bool = True,
+) -> tuple[torch.Tensor | None, torch.Tensor | None]:
     """The whole tile's full-resolution logits inside ``window``, computed on it alone.
 
     Parameters
@@ -101,11 +102,14 @@ def crop_logits(
         From :func:`draw_crop`.
     margin : int
         Stride-4 cells of context kept around the window.
+    coarse : bool
+        Compute the coarse logits too.
 
     Returns
     -------
-    coarse : Tensor, shape (B, K, h, w)
-        The stride-4 logits (``head.classify``) bilinearly upsampled, inside the window.
+    coarse : Tensor, shape (B, K, h, w), or None
+        The stride-4 logits (``head.classify``) bilinearly upsampled, inside the window;
+        None when not asked for.
     refined : Tensor, shape (B, K, h, w), or None
         ``head.refine`` inside the window; None without pixels or refinement.
     """
@@ -119,10 +123,12 @@ def crop_logits(
     rows = slice(top, top + window.height)
     cols = slice(left, left + window.width)
     size = (4 * (b - a), 4 * (d - c))
-    coarse = F.interpolate(head.classify(zc), size=size, mode="bilinear", align_corners=False)
-    coarse = coarse[:, :, rows, cols]
+    up = None
+    if coarse:
+        up = F.interpolate(head.classify(zc), size=size, mode="bilinear", align_corners=False)
+        up = up[:, :, rows, cols]
     if pixels is None or not head.config.refines:
-        return coarse, None
+        return up, None
     part = pixels[:, :, 4 * a : 4 * b, 4 * c : 4 * d]
     refined = head.refine(zc, pixel_input(part))[:, :, rows, cols]
-    return coarse, refined
+    return up, refined

@@ -24,7 +24,7 @@ from torchvision.transforms import v2
 from labeler.model.augment import feature_batch, image_batch, turned_batch
 from labeler.model.crop import crop_logits, draw_crop
 from labeler.model.head import ProposalHead
-from labeler.model.loss import partial_cross_entropy
+from labeler.model.loss import cell_cross_entropy, partial_cross_entropy
 from labeler.model.refine import pixel_input
 from labeler.model.tail import TAIL_LR_FACTOR, EncoderTail
 from labeler.model.trainset import TrainingSet
@@ -77,31 +77,47 @@ def batch_loss(
     crop: int,
     rng: np.random.Generator,
     tail: EncoderTail | None = None,
+    coarse_loss: str = "cells",
 ) -> torch.Tensor | None:
     """Loss of one batch: coarse logits alone, or refined plus ``aux_weight`` x coarse.
 
-    With ``crop`` > 0 the full-resolution losses are taken on one random window of the
-    batch (:mod:`labeler.model.crop`); the trunk always sees the whole tiles.
+    ``coarse_loss="cells"`` scores the stride-4 logits on their own grid over the whole
+    tiles (:func:`labeler.model.loss.cell_cross_entropy`); ``"pixels"`` upsamples them
+    bilinearly and scores every pixel. With ``crop`` > 0 the full-resolution losses (the
+    refined logits, and the coarse ones with ``"pixels"``) are taken on one random window
+    of the batch (:mod:`labeler.model.crop`); the trunk always sees the whole tiles.
     """
     target = target.to(torch.long)
     if tail is not None:
         levels = tail(levels)
     z = head.trunk(levels)
+    cells = coarse_loss == "cells"
+    loss = cell_cross_entropy(head.classify(z), target, weight) if cells else None
+    refines = head.config.refines and pixels is not None
     window = draw_crop(tuple(target.shape[-2:]), crop, rng) if crop else None
+    coarse = refined = None
     if window is not None:
-        coarse, refined = crop_logits(head, z, pixels, window)
+        coarse, refined = crop_logits(
+            head, z, pixels if refines else None, window, coarse=not cells
+        )
         target = target[
             :, window.row : window.row + window.height, window.col : window.col + window.width
         ]
     else:
-        coarse = F.interpolate(
-            head.classify(z), size=tuple(target.shape[-2:]), mode="bilinear", align_corners=False
-        )
-        refined = head.refine(z, pixel_input(pixels)) if head.config.refines else None
-    loss = partial_cross_entropy(coarse, target, weight)
+        if not cells:
+            coarse = F.interpolate(
+                head.classify(z),
+                size=tuple(target.shape[-2:]),
+                mode="bilinear",
+                align_corners=False,
+            )
+        refined = head.refine(z, pixel_input(pixels)) if refines else None
+    if not cells:
+        loss = partial_cross_entropy(coarse, target, weight)
     if loss is None or refined is None:
         return loss
-    return partial_cross_entropy(refined, target, weight) + aux_weight * loss
+    fine = partial_cross_entropy(refined, target, weight)
+    return aux_weight * loss if fine is None else fine + aux_weight * loss
 
 
 def train_epoch(
@@ -121,6 +137,7 @@ def train_epoch(
     encoder: Callable | None,
     tail: EncoderTail | None,
     scheduler: torch.optim.lr_scheduler.LRScheduler | None = None,
+    coarse_loss: str = "cells",
 ) -> tuple[float, int]:
     """One epoch of at most ``max_steps`` optimiser steps.
 
@@ -164,6 +181,7 @@ def train_epoch(
             crop=crop,
             rng=rng,
             tail=tail,
+            coarse_loss=coarse_loss,
         )
         steps += 1  # a batch without labelled pixels still spends its step
         if loss is None:

@@ -159,6 +159,7 @@ def _check_options(
     has_images: bool,
     steps: int | None,
     schedule: str,
+    coarse_loss: str,
 ) -> None:
     if cfg.class_indices != idx:
         raise ValueError(
@@ -174,6 +175,8 @@ def _check_options(
         raise ValueError(f"patience: expected at least 1 epoch, got {patience}")
     if aux_weight < 0:
         raise ValueError(f"aux_weight: expected a weight >= 0, got {aux_weight}")
+    if coarse_loss not in ("cells", "pixels"):
+        raise ValueError(f"coarse_loss: expected 'cells' or 'pixels', got {coarse_loss!r}")
     if schedule not in ("cosine", "constant"):
         raise ValueError(f"schedule: expected 'cosine' or 'constant', got {schedule!r}")
     if steps is not None and steps < 1:
@@ -219,9 +222,10 @@ def train_head(
     config: HeadConfig | None = None,
     patience: int | None = None,
     steps: int | None = None,
-    crop: int = CROP_SIZE,
+    crop: int = 0,
     finetune_stages: int | None = None,
     schedule: str = "cosine",
+    coarse_loss: str = "cells",
     lr: float = 3e-3,
     weight_decay: float = 1e-4,
     image_mode_max_tiles: int = IMAGE_MODE_MAX_TILES,
@@ -273,6 +277,10 @@ def train_head(
     schedule : {"cosine", "constant"}
         Learning rate over the steps: a short warm-up and a cosine decay to zero at the
         end of the budget (:func:`labeler.model.steps.cosine_schedule`), or constant.
+    coarse_loss : {"cells", "pixels"}
+        How the stride-4 logits are scored: on their own 4 x 4 cells over the whole tiles
+        (:func:`labeler.model.loss.cell_cross_entropy`), or bilinearly upsampled to every
+        pixel of the training window.
     lr, weight_decay : float
         AdamW options (peak rate; the tail uses a tenth of ``lr`` and no decay).
     image_mode_max_tiles : int
@@ -314,6 +322,7 @@ def train_head(
         has_images=images is not None,
         steps=steps,
         schedule=schedule,
+        coarse_loss=coarse_loss,
     )
     rng = np.random.default_rng(s.seed)  # the split, then every epoch's shuffles and turns
     data = prepare_training_set(
@@ -365,6 +374,7 @@ def train_head(
                 encoder=encoder,
                 tail=tail,
                 scheduler=scheduler,
+                coarse_loss=coarse_loss,
             )
             done += made
             if tail is not None:
