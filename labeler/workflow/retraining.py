@@ -1,7 +1,7 @@
 """Retraining the proposal head on every saved mask (``labeler retrain``).
 
 ``retrain`` trains a new head on every saved full mask (accepted, amended, settled,
-imported) and every scribble (weak labels), and records it as a model version with its
+imported) and every weak label, and records it as a model version with its
 per-class validation IoU and the seconds it took. The model room does the training
 (:func:`labeler.model.fit.fit_head`): the flips and quarter turns of each labelled tile
 are encoded once into the project's feature cache and reused by every later retrain, the
@@ -28,7 +28,7 @@ from labeler.classes import UNLABELLED
 from labeler.errors import InputError, LabelerError
 from labeler.imagery.read import open_image
 from labeler.project import Project
-from labeler.states import CONTESTED, SETTLED
+from labeler.states import CONTESTED, KIND_FULL, KIND_WEAK, SETTLED
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
 from labeler.workflow.features import encoder_and_cache, tile_key
 from labeler.workflow.progress import Progress, no_progress
@@ -47,8 +47,8 @@ class LabelledTile:
         The tile's image.
     mask : ndarray, shape (H, W), uint8
         Class indices, 255 unlabelled.
-    kind : {"full", "scribble"}
-        A full mask or scribbles (a weak label).
+    kind : {KIND_FULL, KIND_WEAK}
+        A full mask or a weak label (:mod:`labeler.states`).
     """
 
     tile: TileRecord
@@ -62,7 +62,7 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
 
     A tile's newest full mask (accepted, amended, settled or imported) is used; on a
     contested tile only a reviewer's settled mask counts (the annotators' masks are in
-    dispute). Tiles without a full mask use their newest scribbles (weak labels).
+    dispute). Tiles without a full mask use their newest weak label.
 
     Parameters
     ----------
@@ -80,20 +80,20 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
     newest_full: dict[int, object] = {}
     newest_weak: dict[int, object] = {}
     for a in store.annotations(kind=None):  # oldest first: later rows win
-        (newest_full if a.kind == "full" else newest_weak)[a.tile_id] = a
+        (newest_full if a.kind == KIND_FULL else newest_weak)[a.tile_id] = a
     for t in store.tiles():
         ann = newest_full.get(t.id)
         if t.state == CONTESTED:
             ann = None
         if t.state == SETTLED:
             settled = [
-                a for a in store.annotation_history(t.id) if a.state == SETTLED and a.kind == "full"
+                a for a in store.annotation_history(t.id) if a.state == SETTLED and a.kind == KIND_FULL
             ]
             ann = settled[-1] if settled else ann
-        kind = "full"
+        kind = KIND_FULL
         if ann is None:
             ann = newest_weak.get(t.id)
-            kind = "scribble"
+            kind = KIND_WEAK
         if ann is None:
             continue
         mask = ann.mask()
@@ -111,8 +111,8 @@ class RetrainResult:
     ----------
     model_version : ModelVersionRecord
         The new model version.
-    n_full, n_scribble : int
-        Labelled tiles with a full mask and with scribbles only.
+    n_full, n_weak : int
+        Labelled tiles with a full mask and with weak labels only.
     n_train, n_val : int
         Tiles that trained and that validated.
     best_epoch : int
@@ -133,7 +133,7 @@ class RetrainResult:
 
     model_version: ModelVersionRecord
     n_full: int
-    n_scribble: int
+    n_weak: int
     n_train: int
     n_val: int
     best_epoch: int
@@ -275,7 +275,7 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
             "mode": result.mode,
             "n_val": result.n_val,
             "full_tiles": n_full,
-            "scribble_tiles": len(items) - n_full,
+            "weak_tiles": len(items) - n_full,
             "epochs_max": settings.model.epochs,
             "steps": result.steps,
             "step_budget": result.budget,
@@ -288,7 +288,7 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
     return RetrainResult(
         model_version=mv,
         n_full=n_full,
-        n_scribble=len(items) - n_full,
+        n_weak=len(items) - n_full,
         n_train=result.n_train,
         n_val=result.n_val,
         best_epoch=result.best_epoch,
