@@ -19,6 +19,7 @@ multiples of 4, or not larger than ``size``, is used whole.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -87,6 +88,7 @@ def crop_logits(
     *,
     margin: int = MARGIN_CELLS,
     coarse: bool = True,
+    jitter: Callable[[torch.Tensor], torch.Tensor] | None = None,
 ) -> tuple[torch.Tensor | None, torch.Tensor | None]:
     """The whole tile's full-resolution logits inside ``window``, computed on it alone.
 
@@ -104,6 +106,9 @@ def crop_logits(
         Stride-4 cells of context kept around the window.
     coarse : bool
         Compute the coarse logits too.
+    jitter : callable, optional
+        Colour jitter applied to each tile's pixels inside the window and its margin
+        only (the pixels outside are never used, so jittering them would be wasted work).
 
     Returns
     -------
@@ -130,5 +135,7 @@ def crop_logits(
     if pixels is None or not head.config.refines:
         return up, None
     part = pixels[:, :, 4 * a : 4 * b, 4 * c : 4 * d]
+    if jitter is not None:
+        part = torch.stack([jitter(p) for p in part])
     refined = head.refine(zc, pixel_input(part))[:, :, rows, cols]
     return up, refined

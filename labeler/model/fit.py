@@ -16,6 +16,7 @@ from collections.abc import Callable, Sequence
 import numpy as np
 
 from labeler.model.cache import FeatureCache
+from labeler.model.crop import CROP_SIZE
 from labeler.model.train import ProgressFn, TrainResult, train_head
 from labeler.model.turned import choose_turns, turned_features, turns_per_tile
 from labeler.settings import ModelSettings
@@ -67,7 +68,9 @@ def fit_head(
         lacked them.
     **options
         Passed on to :func:`~labeler.model.train.train_head` (``steps``, ``crop``,
-        ``finetune_stages``, ...).
+        ``finetune_stages``, ...); ``crop`` defaults to
+        :data:`~labeler.model.crop.CROP_SIZE` (the full-resolution losses on a random
+        128 x 128 window of each batch).
 
     Returns
     -------
@@ -84,6 +87,7 @@ def fit_head(
         rng = np.random.default_rng(settings.seed + TURN_SEED_OFFSET)
         codes = choose_turns(turns_per_tile(len(masks)), rng)
     turned = turned_features(cache, encoder, keys, images, codes, progress=encode_progress)
+    options.setdefault("crop", CROP_SIZE)
     given = {"turned": turned} if use_turns else {"features": [t[0] for t in turned]}
     return train_head(
         masks,

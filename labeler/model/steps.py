@@ -78,6 +78,7 @@ def batch_loss(
     rng: np.random.Generator,
     tail: EncoderTail | None = None,
     coarse_loss: str = "cells",
+    jitter: Callable[[torch.Tensor], torch.Tensor] | None = None,
 ) -> torch.Tensor | None:
     """Loss of one batch: coarse logits alone, or refined plus ``aux_weight`` x coarse.
 
@@ -86,6 +87,8 @@ def batch_loss(
     bilinearly and scores every pixel. With ``crop`` > 0 the full-resolution losses (the
     refined logits, and the coarse ones with ``"pixels"``) are taken on one random window
     of the batch (:mod:`labeler.model.crop`); the trunk always sees the whole tiles.
+    ``jitter`` (colour jitter per tile) acts on the pixels the refinement reads: the
+    window and its margin, or the whole tiles without a window.
     """
     target = target.to(torch.long)
     if tail is not None:
@@ -98,7 +101,7 @@ def batch_loss(
     coarse = refined = None
     if window is not None:
         coarse, refined = crop_logits(
-            head, z, pixels if refines else None, window, coarse=not cells
+            head, z, pixels if refines else None, window, coarse=not cells, jitter=jitter
         )
         target = target[
             :, window.row : window.row + window.height, window.col : window.col + window.width
@@ -111,6 +114,8 @@ def batch_loss(
                 mode="bilinear",
                 align_corners=False,
             )
+        if refines and jitter is not None:
+            pixels = torch.stack([jitter(p) for p in pixels])
         refined = head.refine(z, pixel_input(pixels)) if refines else None
     if not cells:
         loss = partial_cross_entropy(coarse, target, weight)
@@ -157,7 +162,7 @@ def train_epoch(
             break
         if data.mode == "turns":
             levels, target, pixels = turned_batch(
-                batch, data.turned, data.masks, rng, images=data.images, jitter=jitter
+                batch, data.turned, data.masks, rng, images=data.images
             )
         elif data.mode == "features":
             levels, target, pixels = feature_batch(
@@ -167,7 +172,6 @@ def train_epoch(
                 data.shape_of,
                 rng,
                 images=data.images,
-                jitter=jitter,
             )
         else:
             levels, target, pixels = image_batch(batch, data.images, data.masks, augment, encoder)
@@ -182,6 +186,7 @@ def train_epoch(
             rng=rng,
             tail=tail,
             coarse_loss=coarse_loss,
+            jitter=None if data.mode == "images" else jitter,  # images mode jitters in augment
         )
         steps += 1  # a batch without labelled pixels still spends its step
         if loss is None:

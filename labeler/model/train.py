@@ -74,7 +74,6 @@ import torch
 
 from labeler.model.augment import colour_jitter, image_augmentation
 from labeler.model.budget import step_budget, validation_sample
-from labeler.model.crop import CROP_SIZE
 from labeler.model.head import REFINE_CHANNELS, HeadConfig, ProposalHead
 from labeler.model.loss import class_weights
 from labeler.model.steps import cosine_schedule, epoch_batches, optimiser, train_epoch
