@@ -16,7 +16,10 @@ from collections.abc import Iterator
 
 import torch
 
-__all__ = ["configure_threads", "available_cores", "free_cores", "inference"]
+__all__ = ["configure_threads", "available_cores", "free_cores", "inference", "thread_cap"]
+
+#: Most torch threads while background work runs (:func:`thread_cap`); None: no cap.
+_CAP: list[int | None] = [None]
 
 
 def available_cores() -> int:
@@ -59,7 +62,8 @@ def configure_threads(threads: int = 0) -> int:
     ----------
     threads : int
         Threads to use; 0 means one per free core (:func:`free_cores`; the
-        ``model.threads`` default).
+        ``model.threads`` default). Never more than the cap of :func:`thread_cap`
+        while one is in force.
 
     Returns
     -------
@@ -77,6 +81,8 @@ def configure_threads(threads: int = 0) -> int:
             "set model.threads in labeler.toml"
         )
     wanted = threads or free_cores()
+    if _CAP[0] is not None:
+        wanted = min(wanted, _CAP[0])
     if torch.get_num_threads() != wanted:
         torch.set_num_threads(wanted)
     return torch.get_num_threads()
@@ -87,3 +93,37 @@ def inference() -> Iterator[None]:
     """Context for prediction: ``torch.inference_mode`` (no gradients, no version counters)."""
     with torch.inference_mode():
         yield
+
+
+@contextlib.contextmanager
+def thread_cap(*, spare: int = 1) -> Iterator[int]:
+    """Cap torch's threads for background work, leaving ``spare`` free cores to the rest.
+
+    Inside the context, torch uses at most ``free_cores() - spare`` threads (at least
+    one), and :func:`configure_threads` never sets more; the count in force before is
+    restored on leaving. Torch's thread count is one per process: meant for one
+    background job at a time, beside an interface that needs a core to stay responsive.
+
+    Parameters
+    ----------
+    spare : int
+        Free cores left to other work (>= 0).
+
+    Yields
+    ------
+    int
+        The cap.
+    """
+    if spare < 0:
+        raise ValueError(f"spare: expected 0 or more cores left free, got {spare}")
+    before, old_cap = torch.get_num_threads(), _CAP[0]
+    cap = max(1, free_cores() - spare)
+    _CAP[0] = cap
+    if torch.get_num_threads() > cap:
+        torch.set_num_threads(cap)
+    try:
+        yield cap
+    finally:
+        _CAP[0] = old_cap
+        if torch.get_num_threads() != before:
+            torch.set_num_threads(before)

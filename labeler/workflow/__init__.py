@@ -14,6 +14,7 @@ stage:
 ``editing``               the store behind the mask editor
 ``agreeing``              agreement figures, report and contested tiles
 ``retraining``            a new head on every saved mask
+``renewing``              new proposals for the open tiles after a retrain
 ``exporting``             GeoJSON, PNG masks, manifest; importing masks
 ``views``                 read-only views for the edges (preview, places, lists)
 ``features``              encoder features and their cache (proposing, retraining)
@@ -44,6 +45,7 @@ from labeler.workflow.exporting import ExportResult, ImportResult, export_projec
 from labeler.workflow.picking import PickedTile, PickResult, pick_tiles
 from labeler.workflow.progress import Progress, no_progress
 from labeler.workflow.proposing import ProposeResult, propose
+from labeler.workflow.renewing import RenewResult, background_work, renew_proposals
 from labeler.workflow.retraining import LabelledTile, RetrainResult, labelled_tiles, retrain
 from labeler.workflow.status import ProjectStatus, project_status
 from labeler.workflow.views import (
@@ -94,6 +96,9 @@ __all__ = [
     "RetrainResult",
     "labelled_tiles",
     "retrain",
+    "RenewResult",
+    "renew_proposals",
+    "background_work",
     "annotators",
     "model_versions",
     "TileView",

@@ -21,6 +21,7 @@ from labeler.imagery.tiling import Window
 from labeler.masks.coldstart import cold_start_proposal, detect_image_rows
 from labeler.metrics import class_fractions
 from labeler.project import Project
+from labeler.states import HELD, SAVED_STATES
 from labeler.store import NewProposal
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
 from labeler.workflow.features import encoder_and_cache, head_features, load_head, tile_features
@@ -42,6 +43,7 @@ class ProposeResult:
     up_to_date: int
     cache_hits: int = 0
     cache_misses: int = 0
+    left_alone: int = 0  # with only_open: tiles with a saved mask or held, not proposed
 
 
 def _cold_start_version(project: Project) -> ModelVersionRecord:
@@ -86,7 +88,9 @@ def _part(rgb: np.ndarray, block: Window, w: Window) -> np.ndarray:
     ]
 
 
-def propose(project: Project, *, progress: Progress = no_progress) -> ProposeResult:
+def propose(
+    project: Project, *, progress: Progress = no_progress, only_open: bool = False
+) -> ProposeResult:
     """Propose masks for every tile whose proposal is older than the newest model.
 
     Each image's proposals are stored in one transaction as soon as they are made, so
@@ -98,6 +102,10 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
         An open project.
     progress : Progress
         Called as ``progress(done, total, label)`` over the tiles to propose.
+    only_open : bool
+        Renew only the tiles without a saved full mask that nobody holds (checked again
+        when each image's proposals are written, so a tile opened meanwhile is left
+        alone); the others keep their proposals and count as ``left_alone``.
 
     Returns
     -------
@@ -126,13 +134,21 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
     images = store.images()
     todo = {}
     up_to_date = 0
+    left_alone = 0
     for im in images:
+        all_tiles = store.tiles(image_id=im.id)
         tiles = [
             t
-            for t in store.tiles(image_id=im.id)
+            for t in all_tiles
             if latest.get(t.id) is None or latest[t.id].model_version_id != mv.id
         ]
-        up_to_date += len(store.tiles(image_id=im.id)) - len(tiles)
+        up_to_date += len(all_tiles) - len(tiles)
+        if only_open:
+            open_tiles = [
+                t for t in tiles if t.state not in (HELD, *SAVED_STATES) and t.held_by is None
+            ]
+            left_alone += len(tiles) - len(open_tiles)
+            tiles = open_tiles
         if tiles:
             todo[im.id] = tiles
     total = sum(len(v) for v in todo.values())
@@ -212,8 +228,9 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
                         )
                 done += len(members)
                 progress(done, total, f"{im.name}: proposed")
-        store.add_proposals(mv.id, items)
-        proposed += len(items)
+        written = store.add_proposals(mv.id, items, only_open=only_open)
+        proposed += len(written)
+        left_alone += len(items) - len(written)
     progress(total, total, "done")
     return ProposeResult(
         model_version=mv,
@@ -222,4 +239,5 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
         up_to_date=up_to_date,
         cache_hits=cache.hits,
         cache_misses=cache.misses,
+        left_alone=left_alone,
     )
