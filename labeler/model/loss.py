@@ -114,8 +114,8 @@ def cell_cross_entropy(
     labelled = target != UNLABELLED
     if not bool(labelled.any()):
         return None
-    onehot = F.one_hot(torch.where(labelled, target, 0), k).to(logits.dtype)
-    onehot = (onehot * labelled[..., None]).permute(0, 3, 1, 2)
+    # (B, K, H, W) indicator of each class; unlabelled pixels (255) match no class
+    onehot = torch.stack([target == c for c in range(k)], dim=1).to(logits.dtype)
     onehot = F.pad(onehot, (0, CELL * w4 - width, 0, CELL * h4 - height))
     counts = F.avg_pool2d(onehot, CELL, divisor_override=1)  # (B, K, h4, w4) pixels per class
     weighted = counts * weight.to(logits.dtype)[None, :, None, None]
