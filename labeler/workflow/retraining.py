@@ -13,7 +13,8 @@ the head's checkpoint), which ``labeler propose`` loads with the head
 (:func:`labeler.workflow.features.load_head`).
 
 Progress goes first over the tiles read and encoded, then over the optimiser steps, with
-the validation mIoU and an estimate of the time left.
+the validation mIoU and an estimate of the time left. Renewing the proposals of the open
+tiles with the new model afterwards is :mod:`labeler.workflow.renewing`.
 """
 
 from __future__ import annotations
