@@ -17,8 +17,15 @@ Prints ONE JSON line with
   on soybean leaves"; MIT badge): seeded 48 / 15 split, IoU of the symptom class against
   the experts' consensus mask (``binary_mask`` 255 = two or more of three votes).
 
-The head is trained as ``labeler retrain`` trains it, with the tiles' pixels, so it
-learns the full-resolution refinement (``labeler.model.refine``). Every figure is given
+The head is trained as ``labeler retrain`` trains it (``labeler.model.fit.fit_head``: the
+exact flips and turns of the training tiles encoded once into the feature cache, a step
+budget that grows sub-linearly with the tiles, the tiles' pixels for the full-resolution
+refinement, ``labeler.model.refine``), with the default settings for the keys above, and
+again with the last encoder stages fine-tuned on the labels (``model.finetune_stages``,
+``--finetune-stages``; ``labeler.model.tail``) for the keys ``demo_miou_10pct_finetuned``,
+``open_miou_finetuned`` and ``lesion_iou_finetuned``. ``demo_train_s``, ``open_train_s``
+and ``lesion_train_s`` (each also ``_finetuned``) are the seconds of each training,
+encoding of the turned tiles included. Every figure is given
 for the mask as ``labeler propose`` makes it from the tile's pixels (the refined logits,
 ``propose_tiles(images=...)``) and, under keys ending ``_coarse``, for the same head's
 stride-4 probabilities upsampled bilinearly (the mask without the refinement, as
@@ -28,7 +35,7 @@ The open datasets are read in place from the open-dataset folder
 (:data:`benchmarks.datasets.DATASETS`, outside the repository) and never copied; a
 missing dataset gives null with a reason under ``reasons``. Features are cached in a
 temporary folder (``--cache`` keeps them between runs). The encoder is the
-frozen ImageNet-1k EfficientNet-Lite0; only the head learns. Training on the open
+ImageNet-1k EfficientNet-Lite0. Training on the open
 datasets uses a seeded subset of the training tiles (``--train-tiles-per-image``) to keep
 the run to minutes on a CPU; evaluation uses every tile of the evaluation images.
 
@@ -46,6 +53,7 @@ import sys
 import tempfile
 import time
 from collections.abc import Callable
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -60,13 +68,16 @@ from labeler.imagery.write import png_decode  # noqa: E402
 from labeler.metrics import confusion_matrix, iou_per_class  # noqa: E402
 from labeler.model.cache import FeatureCache  # noqa: E402
 from labeler.model.encoder import load_encoder  # noqa: E402
+from labeler.model.fit import fit_head  # noqa: E402
 from labeler.model.predict import propose_tiles  # noqa: E402
 from labeler.model.runtime import configure_threads  # noqa: E402
-from labeler.model.train import train_head  # noqa: E402
+from labeler.model.tail import tail_features  # noqa: E402
 from labeler.settings import ModelSettings  # noqa: E402
 
 DEMO = REPO / "demo_fields"
 TILE = 256
+#: Encoder stages fine-tuned for the ``_finetuned`` keys (``--finetune-stages``).
+FINETUNED_STAGES = 2
 
 
 def log(msg: str) -> None:
@@ -105,33 +116,44 @@ def _features(cache: FeatureCache, encoder, src: TileSource, idx: list[int]):
     return cache.get_or_compute(keys, src.tiles, encoder, tile_shapes=shapes, batch_size=4)
 
 
-def _train(masks, feats, images, encoder, classes, settings: ModelSettings, label: str):
+def _train(masks, images, keys, cache, encoder, classes, settings: ModelSettings, label: str):
+    """Train as ``labeler retrain`` does; returns the result and the seconds it took."""
     t0 = time.perf_counter()
 
-    def progress(epoch: int, total: int, m: dict) -> None:
+    def progress(step: int, total: int, m: dict) -> None:
         log(
-            f"{label}: epoch {epoch}/{total} train {m['train_loss']:.4f} "
+            f"{label}: epoch {m['epoch']:.0f}, step {step}/{total} train {m['train_loss']:.4f} "
             f"val {m['val_loss']:.4f} mIoU {m['val_miou']:.3f}"
         )
 
-    res = train_head(
+    res = fit_head(
         masks,
+        images,
+        keys,
         class_indices=classes,
-        features=feats,
-        images=images,
+        cache=cache,
         encoder=encoder,
         settings=settings,
         progress=progress,
     )
+    seconds = time.perf_counter() - t0
     log(
-        f"{label}: trained in {time.perf_counter() - t0:.0f} s, mode {res.mode}, "
+        f"{label}: trained in {seconds:.0f} s, mode {res.mode}, {res.steps}/{res.budget} steps, "
         f"best epoch {res.best_epoch}, {res.n_train} train / {res.n_val} val tiles"
     )
-    return res
+    return res, seconds
+
+
+def _eval_features(res, feats):
+    """The features the trained head reads: the cached ones, through the tuned tail if any."""
+    return feats if res.tail is None else tail_features(res.tail, feats)
 
 
 # -- demo scenario -------------------------------------------------------------------------------
-def run_demo(encoder, cache: FeatureCache, settings: ModelSettings, seed: int) -> dict:
+def run_demo(
+    encoder, cache: FeatureCache, variants: list[tuple[str, ModelSettings]], seed: int
+) -> dict:
+    settings = variants[0][1]
     try:
         from labeler.masks.coldstart import image_vegetation
     except ImportError as exc:
@@ -168,29 +190,42 @@ def run_demo(encoder, cache: FeatureCache, settings: ModelSettings, seed: int) -
             ims.append(src.tiles([src.keys[i]])[0])
         return feats, masks, ims
 
-    feats, masks, ims = tile_data(train_ids)
-    res = _train(masks, feats, ims, encoder, (0, 1, 2, 3), settings, "demo")
-    cm = {"refined": np.zeros((4, 4), np.int64), "coarse": np.zeros((4, 4), np.int64)}
-    for start in range(0, len(eval_ids), 32):
-        f, m, ims = tile_data(eval_ids[start : start + 32])
-        for kind, guide in (("refined", ims), ("coarse", None)):
-            props = propose_tiles(
-                res.head, f, mc_samples=settings.mc_samples, seed=seed, images=guide
+    _, masks, ims = tile_data(train_ids)
+    keys = [items[k][0].keys[items[k][2]] for k in train_ids]
+    for suffix, variant in variants:
+        res, seconds = _train(
+            masks, ims, keys, cache, encoder, (0, 1, 2, 3), variant, "demo" + suffix
+        )
+        out[f"demo_train_s{suffix}"] = round(seconds, 1)
+        cm = {"refined": np.zeros((4, 4), np.int64), "coarse": np.zeros((4, 4), np.int64)}
+        for start in range(0, len(eval_ids), 32):
+            f, m, eims = tile_data(eval_ids[start : start + 32])
+            f = _eval_features(res, f)
+            kinds = (("refined", eims), ("coarse", None)) if not suffix else (("refined", eims),)
+            for kind, guide in kinds:
+                props = propose_tiles(
+                    res.head, f, mc_samples=settings.mc_samples, seed=seed, images=guide
+                )
+                for p, t in zip(props, m, strict=True):
+                    cm[kind] += confusion_matrix(t, p.mask, n_classes=4)
+        for kind in ("refined", "coarse") if not suffix else ("refined",):
+            miou, iou = _iou_report(cm[kind], (0, 1, 2, 3))
+            log(
+                f"demo{suffix}: 10 % ({n_train} tiles), {kind} -> mIoU {miou:.4f} on "
+                f"{len(eval_ids)} tiles, per class {iou}"
             )
-            for p, t in zip(props, m, strict=True):
-                cm[kind] += confusion_matrix(t, p.mask, n_classes=4)
-    for kind in ("refined", "coarse"):
-        miou, iou = _iou_report(cm[kind], (0, 1, 2, 3))
-        log(
-            f"demo: 10 % ({n_train} tiles), {kind} -> mIoU {miou:.4f} on {len(eval_ids)} tiles, "
-            f"per class {iou}"
-        )
-        suffix = "" if kind == "refined" else "_coarse"
-        out[f"demo_miou_10pct{suffix}"] = round(miou, 4)
-        out[f"demo_iou_per_class{suffix}"] = dict(
-            zip(("soil", "crop", "weed", "symptom"), _round(iou), strict=True)
-        )
-    out["demo_tiles"] = {"train": int(n_train), "eval": len(eval_ids), "mode": res.mode}
+            tag = suffix + ("" if kind == "refined" else "_coarse")
+            out[f"demo_miou_10pct{tag}"] = round(miou, 4)
+            out[f"demo_iou_per_class{tag}"] = dict(
+                zip(("soil", "crop", "weed", "symptom"), _round(iou), strict=True)
+            )
+        out[f"demo_tiles{suffix}"] = {
+            "train": int(n_train),
+            "eval": len(eval_ids),
+            "mode": res.mode,
+            "steps": res.steps,
+            "best_epoch": res.best_epoch,
+        }
     return out
 
 
@@ -214,18 +249,23 @@ def run_split(
     *,
     encoder,
     cache: FeatureCache,
-    settings: ModelSettings,
+    variants: list[tuple[str, ModelSettings]],
     seed: int,
     tiles_per_image: int,
     overlap: int,
-) -> tuple[dict[str, np.ndarray], dict]:
+) -> dict[str, tuple[dict[str, np.ndarray], dict]]:
+    """Train each variant on the training split, score all on the evaluation images.
+
+    Returns ``{suffix: (confusion matrices by kind, info)}``; the coarse matrix only for
+    the first (default) variant.
+    """
     rng = np.random.default_rng(seed)
     order = rng.permutation(len(pairs))
     train_pairs = [pairs[i] for i in order[:n_train]]
     eval_pairs = [pairs[i] for i in order[n_train:]]
-    feats, masks, pixels = [], [], []
+    keys, masks, pixels = [], [], []
     t0 = time.perf_counter()
-    for k, (ident, image_path, label_path) in enumerate(train_pairs):
+    for ident, image_path, label_path in train_pairs:
         src = TileSource(name, ident, read_image(image_path), overlap=overlap)
         truth = truth_fn(read_image(label_path), label_path.name)
         pick = sorted(
@@ -233,45 +273,56 @@ def run_split(
                 len(src.windows), size=min(tiles_per_image, len(src.windows)), replace=False
             ).tolist()
         )
-        feats += _features(cache, encoder, src, pick)
+        keys += [src.keys[i] for i in pick]
         masks += [np.array(truth[src.windows[i].slices]) for i in pick]
         pixels += src.tiles([src.keys[i] for i in pick])
-        if (k + 1) % 25 == 0:
-            log(f"{name}: encoded training image {k + 1}/{len(train_pairs)}")
-    log(f"{name}: {len(masks)} training tiles ready in {time.perf_counter() - t0:.0f} s")
-    res = _train(masks, feats, pixels, None, classes, settings, name)
-    del feats, pixels
+    log(f"{name}: {len(masks)} training tiles read in {time.perf_counter() - t0:.0f} s")
+    trained = []
+    for suffix, variant in variants:
+        res, seconds = _train(masks, pixels, keys, cache, encoder, classes, variant, name + suffix)
+        trained.append((suffix, res, seconds))
+    del pixels
     n = max(classes) + 1
-    cm = {"refined": np.zeros((n, n), np.int64), "coarse": np.zeros((n, n), np.int64)}
+    cms = {
+        suffix: {"refined": np.zeros((n, n), np.int64), "coarse": np.zeros((n, n), np.int64)}
+        for suffix, _, _ in trained
+    }
+    mc = variants[0][1].mc_samples
     t0 = time.perf_counter()
     for k, (ident, image_path, label_path) in enumerate(eval_pairs):
         image = read_image(image_path)
         src = TileSource(name, ident, image, overlap=overlap)
         truth = truth_fn(read_image(label_path), label_path.name)
-        f = _features(cache, encoder, src, list(range(len(src.windows))))
+        base = _features(cache, encoder, src, list(range(len(src.windows))))
         shapes = [(w.height, w.width) for w in src.windows]
-        for kind, guide in (("refined", src.tiles(src.keys)), ("coarse", None)):
-            props = propose_tiles(
-                res.head,
-                f,
-                tile_shapes=shapes,
-                mc_samples=settings.mc_samples,
-                seed=seed,
-                images=guide,
-            )
-            pred = stitch([p.mask for p in props], src.windows, shape=image.shape[:2])
-            cm[kind] += confusion_matrix(truth, pred, n_classes=n)
+        for suffix, res, _ in trained:
+            f = _eval_features(res, base)
+            kinds = (("refined", src.tiles(src.keys)), ("coarse", None))
+            for kind, guide in kinds if not suffix else kinds[:1]:
+                props = propose_tiles(
+                    res.head, f, tile_shapes=shapes, mc_samples=mc, seed=seed, images=guide
+                )
+                pred = stitch([p.mask for p in props], src.windows, shape=image.shape[:2])
+                cms[suffix][kind] += confusion_matrix(truth, pred, n_classes=n)
         if (k + 1) % 25 == 0:
             log(f"{name}: evaluated image {k + 1}/{len(eval_pairs)}")
     log(f"{name}: evaluation in {time.perf_counter() - t0:.0f} s")
-    info = {
-        "train_images": len(train_pairs),
-        "eval_images": len(eval_pairs),
-        "train_tiles": res.n_train,
-        "val_tiles": res.n_val,
-        "best_epoch": res.best_epoch,
-    }
-    return cm, info
+    out = {}
+    for suffix, res, seconds in trained:
+        out[suffix] = (
+            cms[suffix],
+            {
+                "train_images": len(train_pairs),
+                "eval_images": len(eval_pairs),
+                "train_tiles": res.n_train,
+                "val_tiles": res.n_val,
+                "best_epoch": res.best_epoch,
+                "steps": res.steps,
+                "mode": res.mode,
+                "train_s": round(seconds, 1),
+            },
+        )
+    return out
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -282,10 +333,23 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--threads", type=int, default=0)
     ap.add_argument("--epochs", type=int, default=ModelSettings().epochs)
     ap.add_argument("--train-tiles-per-image", type=int, default=4)
+    ap.add_argument(
+        "--finetune-stages",
+        type=int,
+        choices=(2, 4),
+        default=FINETUNED_STAGES,
+        help="encoder stages trained with the head for the _finetuned keys",
+    )
+    ap.add_argument(
+        "--skip-finetuned", action="store_true", help="leave the _finetuned keys out (faster)"
+    )
     args = ap.parse_args(argv)
     which = set(args.only or ("demo", "peanut", "soybean"))
     threads = configure_threads(args.threads)
     settings = ModelSettings(seed=args.seed, epochs=args.epochs)
+    variants = [("", settings)]
+    if not args.skip_finetuned:
+        variants.append(("_finetuned", replace(settings, finetune_stages=args.finetune_stages)))
     encoder = load_encoder()
     result: dict[str, object] = {
         "demo_cold_vegetation_iou": None,
@@ -294,6 +358,9 @@ def main(argv: list[str] | None = None) -> int:
         "open_miou": None,
         "open_iou_per_class": None,
         "lesion_iou": None,
+        "demo_miou_10pct_finetuned": None,
+        "open_miou_finetuned": None,
+        "lesion_iou_finetuned": None,
     }
     reasons: dict[str, str] = {}
     info: dict[str, object] = {}
@@ -302,11 +369,12 @@ def main(argv: list[str] | None = None) -> int:
         folder = args.cache if args.cache is not None else Path(tmp)
         cache = FeatureCache(folder, encoder_version=encoder.version)
         if "demo" in which:
-            demo = run_demo(encoder, cache, settings, args.seed)
+            demo = run_demo(encoder, cache, variants, args.seed)
             if "reason" in demo:
                 reasons["demo"] = str(demo["reason"])
             else:
-                info["demo"] = demo.pop("demo_tiles")
+                for suffix, _ in variants:
+                    info["demo" + suffix] = demo.pop("demo_tiles" + suffix)
                 result.update(demo)
         if "peanut" in which:
             if not (PEANUT / "images").is_dir():
@@ -316,7 +384,7 @@ def main(argv: list[str] | None = None) -> int:
                     (p.stem, p, PEANUT / "labels" / f"{p.stem}.png")
                     for p in sorted((PEANUT / "images").glob("*.jpg"))
                 ]
-                cm, info["peanut"] = run_split(
+                runs = run_split(
                     "peanut",
                     pairs,
                     peanut_truth,
@@ -324,17 +392,22 @@ def main(argv: list[str] | None = None) -> int:
                     300,
                     encoder=encoder,
                     cache=cache,
-                    settings=settings,
+                    variants=variants,
                     seed=args.seed,
                     tiles_per_image=args.train_tiles_per_image,
                     overlap=0,
                 )
-                for kind, suffix in (("refined", ""), ("coarse", "_coarse")):
-                    miou, iou = _iou_report(cm[kind], (0, 1, 2))
-                    result[f"open_miou{suffix}"] = round(miou, 4)
-                    result[f"open_iou_per_class{suffix}"] = dict(
-                        zip(("soil", "crop", "weed"), _round(iou), strict=True)
-                    )
+                for suffix, (cm, run_info) in runs.items():
+                    info["peanut" + suffix] = run_info
+                    result["open_train_s" + suffix] = run_info["train_s"]
+                    for kind, tag in (("refined", ""), ("coarse", "_coarse")):
+                        if kind == "coarse" and suffix:
+                            continue
+                        miou, iou = _iou_report(cm[kind], (0, 1, 2))
+                        result[f"open_miou{suffix}{tag}"] = round(miou, 4)
+                        result[f"open_iou_per_class{suffix}{tag}"] = dict(
+                            zip(("soil", "crop", "weed"), _round(iou), strict=True)
+                        )
         if "soybean" in which:
             if not (SOYBEAN / "original_images").is_dir():
                 reasons["lesion"] = absent_reason(SOYBEAN, expected="original_images/")
@@ -347,7 +420,7 @@ def main(argv: list[str] | None = None) -> int:
                     )
                     for n in range(1, 64)
                 ]
-                cm, info["soybean"] = run_split(
+                runs = run_split(
                     "soybean",
                     pairs,
                     _soybean_truth,
@@ -355,18 +428,25 @@ def main(argv: list[str] | None = None) -> int:
                     48,
                     encoder=encoder,
                     cache=cache,
-                    settings=settings,
+                    variants=variants,
                     seed=args.seed,
                     tiles_per_image=args.train_tiles_per_image,
                     overlap=0,
                 )
-                result["lesion_iou"] = round(float(iou_per_class(cm["refined"])[3]), 4)
-                result["lesion_iou_coarse"] = round(float(iou_per_class(cm["coarse"])[3]), 4)
+                for suffix, (cm, run_info) in runs.items():
+                    info["soybean" + suffix] = run_info
+                    result["lesion_train_s" + suffix] = run_info["train_s"]
+                    result["lesion_iou" + suffix] = round(float(iou_per_class(cm["refined"])[3]), 4)
+                    if not suffix:
+                        result["lesion_iou_coarse"] = round(
+                            float(iou_per_class(cm["coarse"])[3]), 4
+                        )
     result["reasons"] = reasons
     result["context"] = {
         "seed": args.seed,
         "threads": threads,
         "epochs_max": args.epochs,
+        "finetune_stages": {suffix or "default": v.finetune_stages for suffix, v in variants},
         "train_tiles_per_image": args.train_tiles_per_image,
         "tile": TILE,
         "seconds": round(time.perf_counter() - t_start, 1),

@@ -23,12 +23,15 @@ Sections and options (defaults in brackets):
     ``mc_samples`` [8] MC-dropout passes for uncertainty; ``seed`` [0]; ``epochs`` [40]
     upper bound, early stopping decides; ``batch_size`` [8]; ``min_labelled_tiles`` [3]
     fewest labelled tiles ``retrain`` accepts; ``val_share`` [0.2] held-out slice for early
-    stopping; ``threads`` [0] torch threads (0 = all cores); ``augment`` ["auto"] how
-    ``retrain`` augments: ``"images"`` flips, turns and colour-jitters the tiles and passes
-    them through the encoder every epoch (better with few labels, slower),
-    ``"features"`` turns the cached features (fast), ``"auto"`` images for up to 24
-    labelled tiles, else features; ``patience`` [10] epochs without a lower validation
-    loss before training stops (a few labelled tiles give a noisy validation loss).
+    stopping; ``threads`` [0] torch threads (0 = the free cores); ``augment`` ["auto"]
+    how ``retrain`` augments: ``"turns"`` the flips and quarter turns of each labelled
+    tile, encoded once and cached (exact, fast), ``"images"`` flips, turns and
+    colour-jitters the tiles and passes them through the encoder every step (slow),
+    ``"features"`` turns the cached features (approximate), ``"auto"`` turns;
+    ``patience`` [10] epochs without a lower validation loss before training stops (a
+    few labelled tiles give a noisy validation loss); ``finetune_stages`` [0] encoder
+    stages trained with the head on the project's labels: 0 (frozen encoder), 2 or 4
+    (the last stages, at a tenth of the head's learning rate; a new encoder version).
 ``[picker]``
     ``strategy`` ["mixed"] one of random, entropy, margin, bald, coreset, mixed;
     ``k`` [20] tiles per batch; ``seed`` [0].
@@ -89,6 +92,7 @@ __all__ = [
     "Settings",
     "STRATEGIES",
     "AUGMENT_MODES",
+    "FINETUNE_STAGES",
     "RETIRED_OPTIONS",
     "RANGES",
     "Range",
@@ -104,7 +108,10 @@ STRATEGIES = ("random", "entropy", "margin", "bald", "coreset", "mixed")
 #: the one list of their names (picker, model and workflow use it).
 UNCERTAINTY_MEASURES = ("entropy", "margin", "least_confidence", "bald")
 #: Augmentation modes of head training (``model.augment``; see labeler.model.train).
-AUGMENT_MODES = ("auto", "features", "images")
+AUGMENT_MODES = ("auto", "turns", "features", "images")
+#: Encoder stages ``retrain`` may train with the head (``model.finetune_stages``; see
+#: labeler.model.tail): none, the last two (6-7) or the last four (4-7).
+FINETUNE_STAGES = (0, 2, 4)
 
 
 @dataclass(frozen=True)
@@ -160,9 +167,11 @@ class ModelSettings(Checked):
     threads: int = 0
     augment: str = "auto"
     patience: int = 10
+    finetune_stages: int = 0
 
     def _check(self) -> None:
         check_choice("model", "augment", self.augment, AUGMENT_MODES)
+        check_choice("model", "finetune_stages", self.finetune_stages, FINETUNE_STAGES)
 
 
 @dataclass(frozen=True)
@@ -485,8 +494,9 @@ epochs = 40
 batch_size = 8
 min_labelled_tiles = 3
 val_share = 0.2
-augment = "auto"          # "auto", "images" (few labels, slower) or "features" (fast)
+augment = "auto"          # "auto", "turns" (exact, cached), "images" (slow) or "features"
 patience = 10             # epochs without a lower validation loss before stopping
+finetune_stages = 0       # encoder stages trained with the head: 0, 2 or 4
 
 [picker]
 strategy = "mixed"        # random, entropy, margin, bald, coreset, mixed

@@ -148,9 +148,11 @@ class Checked:
         """Checks between options of the section (after each option's own range)."""
 
 
-def check_choice(section: str, option: str, value: str, choices: tuple[str, ...]) -> None:
+def check_choice(
+    section: str, option: str, value: str | int, choices: tuple[str, ...] | tuple[int, ...]
+) -> None:
     if value not in choices:
-        raise bad_value(section, option, "one of " + ", ".join(choices), value)
+        raise bad_value(section, option, "one of " + ", ".join(map(str, choices)), value)
 
 
 _HEADER = re.compile(r"^\s*\[\s*([A-Za-z0-9_\-]+)\s*\]\s*(#.*)?$")

@@ -115,7 +115,9 @@ def build_parser() -> argparse.ArgumentParser:
         "retrain",
         help="train a new model on every saved mask and weak label",
         description="Train a new proposal head on every saved full mask (accepted, amended, settled, "
-        "imported) and every weak label; prints the per-class validation IoU.",
+        "imported) and every weak label; prints the per-class validation IoU, then gives every "
+        "tile without a saved mask that nobody holds a new proposal from it and re-picks the "
+        "queue.",
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
     p.set_defaults(func=cmd_retrain)

@@ -381,15 +381,33 @@ def cmd_propose(args) -> int:
 def cmd_retrain(args) -> int:
     from labeler.metrics import format_iou
     from labeler.project import open_project
-    from labeler.workflow import retrain
+    from labeler.workflow import renew_proposals, retrain
 
-    with open_project(args.dir) as project, _Bar("training") as bar:
-        result = retrain(project, progress=bar)
+    with open_project(args.dir) as project:
+        with _Bar("training") as bar:
+            result = retrain(project, progress=bar)
+        with _Bar("renewing proposals") as bar:
+            renewed = renew_proposals(project, progress=bar)
     mv = result.model_version
     print(
         f"trained {mv.name} on {result.n_full} full masks and {result.n_weak} weak labels "
         f"({result.n_train} training, {result.n_val} validation tiles; best epoch {result.best_epoch})"
     )
     print(f"validation IoU: {format_iou(mv.val_iou, miou=mv.miou)}")
-    print("run 'labeler propose' to refresh the proposals with it")
+    tuned = f"; encoder stages tuned: {result.tuned_stages}" if result.tuned_stages else ""
+    print(f"took {result.seconds:.1f} s ({result.steps} optimiser steps{tuned})")
+    print(_renewal_line(renewed, mv.name))
     return 0
+
+
+def _renewal_line(renewed, name: str) -> str:
+    """One line on the proposals renewed after a retrain."""
+    p = renewed.proposals
+    line = f"renewed the proposals of {p.proposed} tiles with {name} in {renewed.seconds:.1f} s"
+    if p.left_alone:
+        line += f"; {p.left_alone} tiles with a saved mask or held by someone keep theirs"
+    if renewed.picked is not None:
+        line += "; the queue is re-picked"
+    elif renewed.note:
+        line += f"; the queue was not re-picked ({renewed.note})"
+    return line

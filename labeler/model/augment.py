@@ -1,5 +1,10 @@
-"""Augmentation of head training: the two ways a training batch is built and moved.
+"""Augmentation of head training: the ways a training batch is built and moved.
 
+``"turns"`` mode (:func:`turned_batch`)
+    Each batch takes one of the eight flips/quarter turns of the square, chosen among the
+    turns cached for every tile: the encoder features of the turned tiles themselves
+    (:mod:`labeler.model.turned`, exact), with the masks and pixels turned alike by
+    :func:`dihedral`, and :func:`colour_jitter` on the pixels (each tile its own draw).
 ``"features"`` mode (:func:`feature_batch`)
     Works on cached encoder features: each batch gets one of the eight flips/quarter
     turns of the square (:func:`dihedral`), applied to the four feature maps, the masks
@@ -17,14 +22,14 @@
     passes the augmented batch through the frozen encoder. Truer augmentation, but one
     encoder pass per tile per epoch.
 
-Random draws: ``feature_batch`` draws its flip/turn from the numpy generator it is given;
+Random draws: ``turned_batch`` and ``feature_batch`` draw their flip/turn from the numpy generator it is given;
 the torchvision transforms (and the jitter) draw from torch's global generator, which
 :func:`labeler.model.train.train_head` seeds inside a forked RNG state.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 
 import numpy as np
 import torch
@@ -41,6 +46,7 @@ __all__ = [
     "can_turn",
     "feature_batch",
     "image_batch",
+    "turned_batch",
 ]
 
 
@@ -211,3 +217,49 @@ def image_batch(
             t.to(torch.float32).contiguous(memory_format=torch.channels_last) for t in encoder(x)
         ]
     return levels, torch.stack(tgs), torch.stack(ims)
+
+
+def turned_batch(
+    batch: list[int],
+    turned: Sequence[Mapping[int, Sequence[np.ndarray]]],
+    channel_masks: Sequence[np.ndarray],
+    rng: np.random.Generator,
+    *,
+    images: Sequence[np.ndarray] | None = None,
+    jitter: v2.Transform | None = None,
+) -> tuple[list[torch.Tensor], torch.Tensor, torch.Tensor | None]:
+    """Features of one cached turn of the batch's tiles, with masks and pixels turned alike.
+
+    Parameters
+    ----------
+    batch : list of int
+        Tile numbers of the batch; all of one shape and holding the same turn codes.
+    turned : sequence of mappings
+        Per tile number ``{code: four feature maps of the turned tile}``.
+    channel_masks : sequence of ndarray, each (H, W) uint8
+        Truth per tile number as head channels, 255 unlabelled (unturned).
+    rng : numpy.random.Generator
+        Draws the turn among the codes of the batch's first tile.
+    images : sequence of ndarray, each (H, W, 3) uint8, optional
+        The tiles' pixels (unturned), for a refining head.
+    jitter : torchvision transform, optional
+        Applied to each tile's turned pixels on its own.
+
+    Returns
+    -------
+    levels : list of 4 Tensor, each (B, C_i, h_i, w_i) float32, channels-last
+    target : Tensor, shape (B, H', W'), uint8
+        The turned masks (``H' = W`` and ``W' = H`` after an odd number of quarter turns).
+    pixels : Tensor, shape (B, 3, H', W'), uint8, or None without ``images``
+    """
+    codes = sorted(turned[batch[0]])
+    code = codes[int(rng.integers(len(codes)))]
+    levels = features_to_tensors([turned[i][code] for i in batch])
+    target = dihedral(torch.from_numpy(np.stack([channel_masks[i] for i in batch])), code)
+    pixels = None
+    if images is not None:
+        pixels = torch.from_numpy(np.stack([np.asarray(images[i]) for i in batch]))
+        pixels = dihedral(pixels.permute(0, 3, 1, 2), code)
+        if jitter is not None:
+            pixels = torch.stack([jitter(p) for p in pixels])
+    return levels, target.contiguous(), pixels

@@ -2,13 +2,16 @@
 
 A checkpoint is one ``torch.save`` file holding only plain data: the head's state dict
 (tensors), its :class:`~labeler.model.head.HeadConfig` as a dict, the schema class
-indices, the encoder version the head was trained on, the per-class validation IoU and
-optional extra scalars. It is written atomically (temporary file + ``os.replace``) and
+indices, the encoder version the head was trained on, the per-class validation IoU,
+optional extra scalars and, when the encoder's last stages were fine-tuned with the head,
+their weights (:meth:`labeler.model.tail.EncoderTail.state`: base encoder version, stages,
+state dict), so the head and the encoder version it reads travel together. It is written atomically (temporary file + ``os.replace``) and
 read with ``torch.load(..., weights_only=True)``, which refuses any pickled object that
 is not plain data, so a tampered file cannot run code.
 
 Format versions: 1 = the head alone; 2 = the head with its optional full-resolution
-refinement (``HeadConfig.refine_channels``). A file of another version is refused with a
+refinement (``HeadConfig.refine_channels``); 3 = version 2 with the optional fine-tuned
+encoder stages. Versions 2 and 3 are read; a file of another version is refused with a
 message to retrain (``labeler retrain``): version-1 heads are not read, because their
 masks would silently lack the refinement.
 """
@@ -32,7 +35,8 @@ __all__ = ["CheckpointMeta", "save_checkpoint", "load_checkpoint", "FORMAT"]
 
 #: Format tag stored in every checkpoint.
 FORMAT = "labeler-head"
-_FORMAT_VERSION = 2
+_FORMAT_VERSION = 3
+_READABLE = (2, 3)
 
 
 @dataclass(frozen=True)
@@ -48,12 +52,16 @@ class CheckpointMeta:
         Per-class validation IoU (NaN where a class was absent), in head channel order.
     extra : dict
         Extra scalars (str, int, float, bool) the caller stored.
+    encoder_tail : dict or None
+        The fine-tuned encoder stages (:func:`labeler.model.tail.tail_from_state` rebuilds
+        them on the base encoder), or None when the encoder was frozen.
     """
 
     config: HeadConfig
     encoder_version: str
     val_iou: tuple[float, ...]
     extra: dict[str, object] = field(default_factory=dict)
+    encoder_tail: dict[str, object] | None = None
 
     @property
     def class_indices(self) -> tuple[int, ...]:
@@ -67,8 +75,12 @@ def save_checkpoint(
     encoder_version: str,
     val_iou: Sequence[float] | np.ndarray,
     extra: Mapping[str, object] | None = None,
+    encoder_tail: Mapping[str, object] | None = None,
 ) -> Path:
     """Write ``head`` and its metadata to ``path`` atomically.
+
+    ``encoder_tail`` is :meth:`labeler.model.tail.EncoderTail.state` of the encoder
+    stages fine-tuned with the head (then ``encoder_version`` is the tail's version).
 
     Raises
     ------
@@ -94,6 +106,7 @@ def save_checkpoint(
         "encoder_version": str(encoder_version),
         "val_iou": iou,
         "extra": plain,
+        "encoder_tail": dict(encoder_tail) if encoder_tail is not None else None,
         "state_dict": {k_: v.detach().cpu().contiguous() for k_, v in head.state_dict().items()},
     }
     buf = io.BytesIO()
@@ -129,10 +142,10 @@ def load_checkpoint(path: str | os.PathLike[str]) -> tuple[ProposalHead, Checkpo
         ) from None
     if not isinstance(obj, dict) or obj.get("format") != FORMAT:
         raise ValueError(f"{p}: not a labeler head checkpoint (no format tag {FORMAT!r})")
-    if obj.get("format_version") != _FORMAT_VERSION:
+    if obj.get("format_version") not in _READABLE:
         raise ValueError(
             f"{p}: checkpoint format version {obj.get('format_version')!r}, this labeler reads "
-            f"{_FORMAT_VERSION}; retrain the head ('labeler retrain')"
+            f"{' and '.join(map(str, _READABLE))}; retrain the head ('labeler retrain')"
         )
     try:
         config = HeadConfig.from_dict(obj["config"])
@@ -143,8 +156,19 @@ def load_checkpoint(path: str | os.PathLike[str]) -> tuple[ProposalHead, Checkpo
             encoder_version=str(obj["encoder_version"]),
             val_iou=tuple(float(v) if v == v else math.nan for v in obj["val_iou"]),
             extra=dict(obj.get("extra", {})),
+            encoder_tail=_tail_state(obj.get("encoder_tail")),
         )
     except (KeyError, TypeError, ValueError, RuntimeError) as exc:
         raise ValueError(f"{p}: damaged checkpoint ({type(exc).__name__}: {exc})") from None
     head.eval()
     return head, meta
+
+
+def _tail_state(obj: object) -> dict[str, object] | None:
+    if obj is None:
+        return None
+    if not isinstance(obj, dict) or not isinstance(obj.get("state_dict"), dict):
+        raise ValueError(
+            f"encoder_tail: expected a dict with a state_dict, got {type(obj).__name__}"
+        )
+    return dict(obj)

@@ -7,6 +7,11 @@ for weakly-supervised CNN segmentation", CVPR). Class weights counter imbalance:
 ``w_k = f_k ** -0.5 / sum_j f_j ** 0.5`` (inverse square root of the frequency, scaled so
 that the mean weight per labelled pixel is 1; common practice, no source), clipped to
 ``[0.1, 10]``; classes absent from training get weight 1 (it never applies).
+
+The stride-4 logits can also be scored on their own grid (:func:`cell_cross_entropy`):
+the same weighted pixel cross-entropy, with each logit held constant over its 4 x 4
+cell of pixels. It reads the labels once per cell (the class counts of the cell) instead
+of upsampling the logits to every pixel, so it costs a sixteenth of the pixel loss.
 """
 
 from __future__ import annotations
@@ -17,7 +22,10 @@ import torch.nn.functional as F
 
 from labeler.classes import UNLABELLED
 
-__all__ = ["class_weights", "partial_cross_entropy"]
+__all__ = ["class_weights", "partial_cross_entropy", "cell_cross_entropy", "CELL"]
+
+#: Pixels per side of a cell of the stride-4 logits.
+CELL = 4
 
 
 def class_weights(counts: np.ndarray, *, clip: tuple[float, float] = (0.1, 10.0)) -> np.ndarray:
@@ -68,3 +76,47 @@ def partial_cross_entropy(
     if not bool((target != UNLABELLED).any()):
         return None
     return F.cross_entropy(logits, target, weight=weight, ignore_index=UNLABELLED)
+
+
+def cell_cross_entropy(
+    logits: torch.Tensor, target: torch.Tensor, weight: torch.Tensor
+) -> torch.Tensor | None:
+    """Weighted cross-entropy of stride-4 logits held constant over their cells.
+
+    Parameters
+    ----------
+    logits : Tensor, shape (B, K, ceil(H / 4), ceil(W / 4))
+        One logit vector per 4 x 4 cell of pixels.
+    target : Tensor, shape (B, H, W), int64
+        Head channel per pixel, 255 unlabelled (ignored).
+    weight : Tensor, shape (K,)
+        Class weights.
+
+    Returns
+    -------
+    loss : scalar Tensor, or None when no pixel is labelled
+        ``sum_i w[y_i] * -log softmax(x_cell(i))[y_i] / sum_i w[y_i]`` over labelled
+        pixels i, ``cell(i)`` the cell holding pixel i: with ``n_ck`` the labelled
+        pixels of class k in cell c, ``sum_ck w_k n_ck (-log p_ck) / sum_ck w_k n_ck``.
+
+    Raises
+    ------
+    ValueError
+        If the logits' grid is not ``ceil(H / 4) x ceil(W / 4)``.
+    """
+    b, k, h4, w4 = logits.shape
+    height, width = target.shape[-2:]
+    if (h4, w4) != (-(-height // CELL), -(-width // CELL)):
+        raise ValueError(
+            f"logits: expected a grid of ceil({height} / 4) x ceil({width} / 4) cells for a "
+            f"{height} x {width} target, got {h4} x {w4}"
+        )
+    labelled = target != UNLABELLED
+    if not bool(labelled.any()):
+        return None
+    # (B, K, H, W) indicator of each class; unlabelled pixels (255) match no class
+    onehot = torch.stack([target == c for c in range(k)], dim=1).to(logits.dtype)
+    onehot = F.pad(onehot, (0, CELL * w4 - width, 0, CELL * h4 - height))
+    counts = F.avg_pool2d(onehot, CELL, divisor_override=1)  # (B, K, h4, w4) pixels per class
+    weighted = counts * weight.to(logits.dtype)[None, :, None, None]
+    return -(weighted * F.log_softmax(logits, dim=1)).sum() / weighted.sum()

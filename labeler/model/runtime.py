@@ -1,7 +1,10 @@
 """CPU runtime settings of the model room: torch threads and the inference context.
 
 Everything runs on the CPU. ``configure_threads`` applies the ``model.threads`` setting
-(0 = one thread per core); ``inference`` is the context every prediction runs under
+(0 = one thread per free core: the cores this process may use less those the 1-minute
+load average says are busy, at least one; more threads than free cores make every
+thread wait for the others, which once turned a 6-tile retrain on a loaded 2-core machine
+from seconds into minutes); ``inference`` is the context every prediction runs under
 (``torch.inference_mode``: no autograd bookkeeping at all).
 """
 
@@ -13,7 +16,10 @@ from collections.abc import Iterator
 
 import torch
 
-__all__ = ["configure_threads", "available_cores", "inference"]
+__all__ = ["configure_threads", "available_cores", "free_cores", "inference", "thread_cap"]
+
+#: Most torch threads while background work runs (:func:`thread_cap`); None: no cap.
+_CAP: list[int | None] = [None]
 
 
 def available_cores() -> int:
@@ -24,13 +30,40 @@ def available_cores() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+def free_cores(*, load: float | None = None) -> int:
+    """Cores not busy with other work: :func:`available_cores` less the busy ones.
+
+    Parameters
+    ----------
+    load : float, optional
+        Load average to use; default the 1-minute load average of the system. A core
+        counts as busy for every whole unit of load (``floor(load)``).
+
+    Returns
+    -------
+    int
+        Between 1 and :func:`available_cores`.
+    """
+    cores = available_cores()
+    if load is None:
+        try:
+            load = os.getloadavg()[0]
+        except (AttributeError, OSError):  # not every OS has a load average
+            return cores
+    if not load >= 0:  # NaN or negative: no information
+        return cores
+    return max(1, min(cores, cores - int(load)))
+
+
 def configure_threads(threads: int = 0) -> int:
     """Set the number of torch intra-op threads.
 
     Parameters
     ----------
     threads : int
-        Threads to use; 0 means one per available core (the ``model.threads`` default).
+        Threads to use; 0 means one per free core (:func:`free_cores`; the
+        ``model.threads`` default). Never more than the cap of :func:`thread_cap`
+        while one is in force.
 
     Returns
     -------
@@ -44,10 +77,12 @@ def configure_threads(threads: int = 0) -> int:
     """
     if threads < 0:
         raise ValueError(
-            f"threads: expected 0 (all cores) or a positive count, got {threads}; "
+            f"threads: expected 0 (the free cores) or a positive count, got {threads}; "
             "set model.threads in labeler.toml"
         )
-    wanted = threads or available_cores()
+    wanted = threads or free_cores()
+    if _CAP[0] is not None:
+        wanted = min(wanted, _CAP[0])
     if torch.get_num_threads() != wanted:
         torch.set_num_threads(wanted)
     return torch.get_num_threads()
@@ -58,3 +93,37 @@ def inference() -> Iterator[None]:
     """Context for prediction: ``torch.inference_mode`` (no gradients, no version counters)."""
     with torch.inference_mode():
         yield
+
+
+@contextlib.contextmanager
+def thread_cap(*, spare: int = 1) -> Iterator[int]:
+    """Cap torch's threads for background work, leaving ``spare`` free cores to the rest.
+
+    Inside the context, torch uses at most ``free_cores() - spare`` threads (at least
+    one), and :func:`configure_threads` never sets more; the count in force before is
+    restored on leaving. Torch's thread count is one per process: meant for one
+    background job at a time, beside an interface that needs a core to stay responsive.
+
+    Parameters
+    ----------
+    spare : int
+        Free cores left to other work (>= 0).
+
+    Yields
+    ------
+    int
+        The cap.
+    """
+    if spare < 0:
+        raise ValueError(f"spare: expected 0 or more cores left free, got {spare}")
+    before, old_cap = torch.get_num_threads(), _CAP[0]
+    cap = max(1, free_cores() - spare)
+    _CAP[0] = cap
+    if torch.get_num_threads() > cap:
+        torch.set_num_threads(cap)
+    try:
+        yield cap
+    finally:
+        _CAP[0] = old_cap
+        if torch.get_num_threads() != before:
+            torch.set_num_threads(before)

@@ -5,24 +5,32 @@ label leaves open contribute nothing, so full masks and weak labels mix freely.
 
 Augmentation modes (how a batch is built and moved: :mod:`labeler.model.augment`):
 
+``"turns"``
+    The exact flips and quarter turns of the tiles: the encoder features of each turned
+    tile were computed once and cached (:mod:`labeler.model.turned`); each batch reads the
+    features of one of the turns, with the masks and pixels turned alike, and colour
+    jitter on the pixels of the refinement. No encoder pass while training.
 ``"features"``
-    Cached encoder features, one flip/quarter turn of the square per batch for features,
-    masks and pixels together. Fast: no encoder pass at all.
+    Cached encoder features of the tiles themselves, turned as feature maps (an
+    approximation: the encoder is not equivariant to flips and turns). For callers that
+    have only the tiles' features.
 ``"images"``
     Joint ``torchvision.transforms.v2`` augmentation of images and masks, each augmented
-    batch through the frozen encoder. Truer augmentation, but one encoder pass per tile
-    per epoch.
+    batch through the frozen encoder: one encoder pass per tile per step (slow).
 ``"auto"`` (default)
-    ``"images"`` when images and an encoder are given and the label set is small
-    (at most ``image_mode_max_tiles`` = 24 training tiles, where the encoder cost is a few
-    seconds per epoch and augmentation matters most), else ``"features"``.
+    ``"turns"`` when the turned tiles' features are given, else ``"images"`` when images
+    and an encoder are given and at most ``image_mode_max_tiles`` (24) tiles train, else
+    ``"features"``.
 
-An epoch is one shuffled pass over the training tiles, repeated until it has made at
-least ``min_steps_per_epoch`` (16) optimiser steps, so that a dozen labelled tiles still
-train for a useful number of steps per epoch. A held-out slice of the labelled tiles
-(``val_share``, at least one tile; none when ``val_share`` is 0 or only one tile is
-labelled, and then the last epoch is kept) drives early stopping: training stops after
-``patience`` epochs without a lower validation loss and the best state is kept
+Budget. An epoch is one shuffled pass over the training tiles, repeated until it has
+made at least ``min_steps_per_epoch`` (16) optimiser steps. Training runs for at most
+``model.epochs`` epochs and at most a budget of optimiser steps that grows sub-linearly
+with the number of training tiles (:func:`labeler.model.budget.step_budget`), whichever
+ends first. A held-out slice of the labelled tiles (``val_share``, at least one tile;
+none when ``val_share`` is 0 or only one tile is labelled, and then the last epoch is
+kept) drives early stopping: after each epoch a fixed sample of at most 32 held-out
+tiles is scored (:func:`labeler.model.budget.validation_sample`), training stops after
+``patience`` epochs without a lower validation loss, and the best state is kept
 (:mod:`labeler.model.validation`).
 
 Refinement. When the tiles' pixels are given (``images=``) the default head also learns a
@@ -31,25 +39,25 @@ cross-entropy of the refined logits plus ``aux_weight`` (0.4) times that of the 
 logits (dropout active, bilinearly upsampled): an auxiliary loss on the intermediate
 output as in deep supervision (Lee et al. 2015, "Deeply-supervised nets", AISTATS;
 PSPNet, Zhao et al. 2017, uses the weight 0.4), which keeps the stride-4 classifier,
-whose dropout passes give the uncertainty maps, a segmenter in its own right. Validation
-loss and IoU are those of the refined output. In ``"features"`` mode the pixels get the
-same flip/turn as features and masks, and colour jitter (the same ranges as in
-``"images"`` mode) on the pixels only; in ``"images"`` mode the refinement sees the
-augmented image the encoder sees.
+whose dropout passes give the uncertainty maps, a segmenter in its own right. Both
+full-resolution losses are taken on a random ``crop`` x ``crop`` window of each batch
+(:mod:`labeler.model.crop`; the trunk still sees the whole tiles). Validation loss and
+IoU are those of the refined output on whole tiles.
 
-Measured on the demo scenario with 12 labelled tiles (bilinear masks, no refinement):
-"images" mode reached mIoU 0.60-0.63, "features" mode 0.56. With the refinement, in
-"images" mode on the quality benchmark's split (10 training and 2 validation tiles):
-0.695 with a patience of 5 epochs, 0.729 with 10 (the ``model.patience`` default); the
-two-tile validation loss is noisy, and a longer patience lets training run on.
+Encoder fine-tuning. With ``finetune_stages`` (the ``model.finetune_stages`` setting) 2 or
+4, the last stages of the encoder train together with the head, from the cached feature
+level before them, at a tenth of the head's learning rate
+(:mod:`labeler.model.tail`); the result carries the trained :class:`EncoderTail`, a new
+encoder version.
+
 Everything is seeded (``torch.manual_seed`` inside a forked RNG state, so the caller's
-global RNG is left as it was; a numpy generator for the split, the shuffles and the
-flips/turns of ``"features"`` mode).
+global RNG is left as it was; a numpy generator for the split, the validation sample,
+the shuffles, the turns and the crops).
 
 :func:`train_head` runs in steps: check the options; prepare the labelled tiles
 (:func:`labeler.model.trainset.prepare_training_set`: check the inputs, map the masks to
 head channels, split training from validation, resolve the augmentation mode); weigh the
-classes; then, epoch by epoch, fit (:func:`_train_epoch`), validate
+classes; then, epoch by epoch, fit (:func:`labeler.model.steps.train_epoch`), validate
 (:func:`labeler.model.validation.validate`) and apply the stopping rule
 (:func:`labeler.model.validation.early_stopping`), keeping the state of the best epoch.
 """
@@ -58,19 +66,19 @@ from __future__ import annotations
 
 import copy
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 import torch
-import torch.nn.functional as F
-from torchvision.transforms import v2
 
-from labeler.model.augment import colour_jitter, feature_batch, image_augmentation, image_batch
+from labeler.model.augment import colour_jitter, image_augmentation
+from labeler.model.budget import step_budget, validation_sample
 from labeler.model.head import REFINE_CHANNELS, HeadConfig, ProposalHead
-from labeler.model.loss import class_weights, partial_cross_entropy
-from labeler.model.refine import pixel_input
-from labeler.model.trainset import TrainingSet, prepare_training_set
+from labeler.model.loss import class_weights
+from labeler.model.steps import cosine_schedule, epoch_batches, optimiser, train_epoch
+from labeler.model.tail import EncoderTail
+from labeler.model.trainset import prepare_training_set
 from labeler.model.validation import early_stopping, iou_from, validate
 from labeler.settings import AUGMENT_MODES, ModelSettings
 
@@ -88,9 +96,11 @@ AUX_WEIGHT = 0.4
 
 #: Fewest optimiser steps per epoch: small label sets are passed over several times.
 MIN_STEPS_PER_EPOCH = 16
-#: Largest training set for which ``mode="auto"`` augments images through the encoder.
+#: Largest training set for which ``mode="auto"`` augments images through the encoder
+#: (when no turned tiles are given).
 IMAGE_MODE_MAX_TILES = 24
 
+#: ``progress(step, total_steps, metrics)`` after each epoch.
 ProgressFn = Callable[[int, int, dict[str, float]], None]
 
 
@@ -108,13 +118,19 @@ class TrainResult:
     best_epoch : int
         1-based epoch whose state was kept.
     history : list of dict
-        Per epoch: ``epoch``, ``train_loss``, ``val_loss``, ``val_miou``.
+        Per epoch: ``epoch``, ``step``, ``train_loss``, ``val_loss``, ``val_miou``.
     n_train, n_val : int
-        Tiles used for training and for validation.
+        Tiles used for training and held out for validation.
     mode : str
-        ``"features"`` or ``"images"``.
+        ``"turns"``, ``"features"`` or ``"images"``.
     class_weights : ndarray, shape (K,)
         Loss weight per head class.
+    tail : EncoderTail or None
+        The fine-tuned encoder stages in their best state (eval mode), or None when the
+        encoder stayed frozen.
+    steps, budget : int
+        Optimiser steps made, and the most that were allowed (the step budget, or the
+        steps of ``model.epochs`` epochs if fewer).
     """
 
     head: ProposalHead
@@ -125,37 +141,9 @@ class TrainResult:
     n_val: int = 0
     mode: str = "features"
     class_weights: np.ndarray = field(default_factory=lambda: np.ones(0))
-
-
-def epoch_batches(
-    groups: dict[tuple, list[int]], batch_size: int, rng: np.random.Generator, *, min_steps: int = 1
-) -> list[list[int]]:
-    """The batches of one epoch: shuffled batches of equal-shape tiles.
-
-    Parameters
-    ----------
-    groups : dict
-        Tile numbers by tile shape; a batch never mixes shapes.
-    batch_size : int
-        Most tiles per batch.
-    rng : numpy.random.Generator
-        Shuffles the tiles of each shape, then the order of the batches.
-    min_steps : int
-        Whole shuffled passes are repeated until there are at least this many batches.
-
-    Returns
-    -------
-    batches : list of list of int
-    """
-    out: list[list[int]] = []
-    while True:
-        one = []
-        for members in groups.values():
-            order = rng.permutation(members).tolist()
-            one += [order[i : i + batch_size] for i in range(0, len(order), batch_size)]
-        out += [one[i] for i in rng.permutation(len(one))]
-        if len(out) >= min_steps or not one:
-            return out
+    tail: EncoderTail | None = None
+    steps: int = 0
+    budget: int = 0
 
 
 # -- the steps of train_head ----------------------------------------------------------------------
@@ -168,19 +156,32 @@ def _check_options(
     patience: int,
     aux_weight: float,
     has_images: bool,
+    steps: int | None,
+    schedule: str,
+    coarse_loss: str,
 ) -> None:
     if cfg.class_indices != idx:
         raise ValueError(
             f"config: class_indices {cfg.class_indices} differ from class_indices {idx}"
         )
     if mode not in AUGMENT_MODES:
-        raise ValueError(f"mode: expected 'auto', 'features' or 'images', got {mode!r}")
+        raise ValueError(
+            f"mode: expected one of {', '.join(repr(m) for m in AUGMENT_MODES)}, got {mode!r}"
+        )
     if min_steps_per_epoch < 1:
         raise ValueError(f"min_steps_per_epoch: expected at least 1, got {min_steps_per_epoch}")
     if patience < 1:
         raise ValueError(f"patience: expected at least 1 epoch, got {patience}")
     if aux_weight < 0:
         raise ValueError(f"aux_weight: expected a weight >= 0, got {aux_weight}")
+    if coarse_loss not in ("cells", "pixels"):
+        raise ValueError(f"coarse_loss: expected 'cells' or 'pixels', got {coarse_loss!r}")
+    if schedule not in ("cosine", "constant"):
+        raise ValueError(f"schedule: expected 'cosine' or 'constant', got {schedule!r}")
+    if steps is not None and steps < 1:
+        raise ValueError(
+            f"steps: expected at least 1 optimiser step (or None: automatic), got {steps}"
+        )
     if cfg.refines and not has_images:
         raise ValueError(
             f"images: a head with refinement (config.refine_channels = {cfg.refine_channels}) "
@@ -188,67 +189,22 @@ def _check_options(
         )
 
 
-def _batch_loss(
-    head: ProposalHead,
-    levels: list[torch.Tensor],
-    target: torch.Tensor,
-    pixels: torch.Tensor | None,
-    weight: torch.Tensor,
-    *,
-    aux_weight: float,
-) -> torch.Tensor | None:
-    """Loss of one batch: coarse logits alone, or refined plus ``aux_weight`` x coarse."""
-    target = target.to(torch.long)
-    z = head.trunk(levels)
-    coarse = F.interpolate(
-        head.classify(z), size=tuple(target.shape[-2:]), mode="bilinear", align_corners=False
-    )
-    loss = partial_cross_entropy(coarse, target, weight)
-    if loss is None or not head.config.refines:
-        return loss
-    refined = head.refine(z, pixel_input(pixels))
-    return partial_cross_entropy(refined, target, weight) + aux_weight * loss
+def _epoch_steps(groups: dict[tuple, list[int]], batch_size: int, min_steps: int) -> int:
+    """Steps of one epoch: whole passes (batches per shape) until ``min_steps`` are made."""
+    one = sum(-(-len(m) // batch_size) for m in groups.values())
+    return one * -(-min_steps // one) if one else 0
 
 
-def _train_epoch(
-    head: ProposalHead,
-    opt: torch.optim.Optimizer,
-    data: TrainingSet,
-    rng: np.random.Generator,
-    weight: torch.Tensor,
-    *,
-    batch_size: int,
-    min_steps: int,
-    aux_weight: float,
-    augment: v2.Transform,
-    jitter: v2.Transform | None,
-    encoder: Callable | None,
-) -> float:
-    """One epoch of optimiser steps; returns the mean loss per tile (NaN if none counted)."""
-    head.train()
-    total, seen = 0.0, 0
-    for batch in epoch_batches(data.groups, batch_size, rng, min_steps=min_steps):
-        if data.mode == "features":
-            levels, target, pixels = feature_batch(
-                batch,
-                data.features,
-                data.masks,
-                data.shape_of,
-                rng,
-                images=data.images,
-                jitter=jitter,
-            )
-        else:
-            levels, target, pixels = image_batch(batch, data.images, data.masks, augment, encoder)
-        loss = _batch_loss(head, levels, target, pixels, weight, aux_weight=aux_weight)
-        if loss is None:
-            continue
-        opt.zero_grad(set_to_none=True)
-        loss.backward()
-        opt.step()
-        total += loss.item() * len(batch)
-        seen += len(batch)
-    return total / seen if seen else math.nan
+def _make_tail(encoder: Callable | None, stages: int) -> EncoderTail | None:
+    if stages == 0:
+        return None
+    if not hasattr(encoder, "blocks") or not hasattr(encoder, "taps"):
+        raise ValueError(
+            f"encoder: fine-tuning {stages} encoder stages (finetune_stages) needs the encoder "
+            f"itself (load_encoder()), got {type(encoder).__name__}; pass encoder= or set "
+            "finetune_stages=0"
+        )
+    return EncoderTail(encoder, stages=stages)  # type: ignore[arg-type]
 
 
 # -- training -------------------------------------------------------------------------------------
@@ -259,10 +215,16 @@ def train_head(
     features: Sequence[Sequence[np.ndarray]] | None = None,
     images: Sequence[np.ndarray] | None = None,
     encoder: Callable | None = None,
+    turned: Sequence[Mapping[int, Sequence[np.ndarray]]] | None = None,
     settings: ModelSettings | None = None,
     mode: str = "auto",
     config: HeadConfig | None = None,
     patience: int | None = None,
+    steps: int | None = None,
+    crop: int = 0,
+    finetune_stages: int | None = None,
+    schedule: str = "cosine",
+    coarse_loss: str = "cells",
     lr: float = 3e-3,
     weight_decay: float = 1e-4,
     image_mode_max_tiles: int = IMAGE_MODE_MAX_TILES,
@@ -280,16 +242,20 @@ def train_head(
     class_indices : sequence of int
         Schema indices the head predicts (channel order), e.g. ``(0, 1, 2, 3)``.
     features : sequence of N tuples of 4 arrays, optional
-        Cached encoder features of the tiles (needed for ``"features"`` mode).
+        Cached encoder features of the tiles (``"features"`` mode; default the turn 0
+        entries of ``turned``).
     images : sequence of N ndarray, each (H, W, 3) uint8, optional
         The tiles themselves: needed for ``"images"`` mode (with ``encoder``) and for a
         head with refinement, which the default config adds when they are given.
     encoder : Lite0Encoder or callable, optional
-        Frozen encoder for ``"images"`` mode.
+        Frozen encoder for ``"images"`` mode, and the base of a fine-tuned tail.
+    turned : sequence of N mappings, optional
+        Per tile ``{code: features of the turned tile}`` (:mod:`labeler.model.turned`),
+        code 0 included, the same codes for every tile (``"turns"`` mode).
     settings : ModelSettings, optional
-        ``seed``, ``epochs`` (upper bound), ``batch_size``, ``min_labelled_tiles`` and
-        ``val_share``; defaults when omitted.
-    mode : {"auto", "features", "images"}
+        ``seed``, ``epochs`` (upper bound), ``batch_size``, ``min_labelled_tiles``,
+        ``val_share``, ``patience`` and ``finetune_stages``; defaults when omitted.
+    mode : {"auto", "turns", "features", "images"}
         Augmentation mode; see the module docstring.
     config : HeadConfig, optional
         Head shape; default width 32, dropout 0.2, with ``class_indices``, and a
@@ -297,19 +263,35 @@ def train_head(
         without them).
     patience : int, optional
         Epochs without a lower validation loss before stopping; default the
-        ``model.patience`` setting (10).
+        ``model.patience`` setting.
+    steps : int, optional
+        Most optimiser steps; default :func:`labeler.model.budget.step_budget` of the
+        number of training tiles.
+    crop : int
+        Side in pixels of the window the full-resolution losses are taken on (a multiple
+        of 4); 0 uses whole tiles.
+    finetune_stages : int, optional
+        Encoder stages trained with the head (0, 2 or 4); default the
+        ``model.finetune_stages`` setting. Needs ``encoder``.
+    schedule : {"cosine", "constant"}
+        Learning rate over the steps: a short warm-up and a cosine decay to zero at the
+        end of the budget (:func:`labeler.model.steps.cosine_schedule`), or constant.
+    coarse_loss : {"cells", "pixels"}
+        How the stride-4 logits are scored: on their own 4 x 4 cells over the whole tiles
+        (:func:`labeler.model.loss.cell_cross_entropy`), or bilinearly upsampled to every
+        pixel of the training window.
     lr, weight_decay : float
-        AdamW options.
+        AdamW options (peak rate; the tail uses a tenth of ``lr`` and no decay).
     image_mode_max_tiles : int
-        ``"auto"`` picks ``"images"`` up to this many training tiles.
+        ``"auto"`` picks ``"images"`` up to this many training tiles (without ``turned``).
     min_steps_per_epoch : int
         An epoch repeats whole shuffled passes over the training tiles until it has
-        made at least this many optimiser steps (with fresh augmentations), so that small
-        label sets train, and early stopping counts, in meaningful amounts.
+        made at least this many optimiser steps.
     aux_weight : float
         Weight of the coarse logits' loss beside the refined logits' (refining heads).
     progress : callable, optional
-        ``progress(epoch, n_epochs, metrics)`` after each epoch (metrics as in history).
+        ``progress(step, total_steps, metrics)`` after each epoch (metrics as in history;
+        ``total_steps`` is the most steps allowed, early stopping may end sooner).
 
     Returns
     -------
@@ -328,6 +310,7 @@ def train_head(
         class_indices=idx, refine_channels=REFINE_CHANNELS if images is not None else 0
     )
     patience = s.patience if patience is None else patience
+    stages = s.finetune_stages if finetune_stages is None else finetune_stages
     _check_options(
         cfg,
         idx,
@@ -336,6 +319,9 @@ def train_head(
         patience=patience,
         aux_weight=aux_weight,
         has_images=images is not None,
+        steps=steps,
+        schedule=schedule,
+        coarse_loss=coarse_loss,
     )
     rng = np.random.default_rng(s.seed)  # the split, then every epoch's shuffles and turns
     data = prepare_training_set(
@@ -345,11 +331,15 @@ def train_head(
         features=features,
         images=images,
         encoder=encoder,
+        turned=turned,
         settings=s,
         mode=mode,
         image_mode_max_tiles=image_mode_max_tiles,
         rng=rng,
     )
+    budget = step_budget(len(data.train_ids)) if steps is None else int(steps)
+    budget = min(budget, s.epochs * _epoch_steps(data.groups, s.batch_size, min_steps_per_epoch))
+    val_groups = data.groups_of(validation_sample(data.val_ids, rng))
     weights = class_weights(data.class_counts)
     weight_t = torch.as_tensor(weights, dtype=torch.float32)
     augment = image_augmentation()
@@ -358,11 +348,16 @@ def train_head(
     with torch.random.fork_rng(devices=[]):
         torch.manual_seed(s.seed)
         head = ProposalHead(cfg)
-        opt = torch.optim.AdamW(head.parameters(), lr=lr, weight_decay=weight_decay)
+        tail = _make_tail(encoder, stages)
+        opt = optimiser(head, tail, lr=lr, weight_decay=weight_decay)
+        scheduler = cosine_schedule(opt, budget) if schedule == "cosine" else None
         best_epoch, best_state, best_cm = 0, None, None
         history: list[dict[str, float]] = []
-        for epoch in range(1, s.epochs + 1):
-            train_loss = _train_epoch(
+        done = 0
+        epoch = 0
+        while epoch < s.epochs and done < budget:
+            epoch += 1
+            train_loss, made = train_epoch(
                 head,
                 opt,
                 data,
@@ -370,24 +365,33 @@ def train_head(
                 weight_t,
                 batch_size=s.batch_size,
                 min_steps=min_steps_per_epoch,
+                max_steps=budget - done,
                 aux_weight=aux_weight,
+                crop=crop,
                 augment=augment,
                 jitter=jitter,
                 encoder=encoder,
+                tail=tail,
+                scheduler=scheduler,
+                coarse_loss=coarse_loss,
             )
+            done += made
+            if tail is not None:
+                tail.eval()
             val_loss, cm = validate(
-                head, data.features, data.masks, data.val_groups, weight_t, cfg, images=images
+                head, data.features, data.masks, val_groups, weight_t, cfg, images=images, tail=tail
             )
             iou = iou_from(cm)
             metrics = {
                 "epoch": float(epoch),
+                "step": float(done),
                 "train_loss": train_loss,
                 "val_loss": val_loss,
                 "val_miou": float(np.nanmean(iou)) if np.isfinite(iou).any() else math.nan,
             }
             history.append(metrics)
             if progress is not None:
-                progress(epoch, s.epochs, dict(metrics))
+                progress(done, budget, dict(metrics))
             stop = False
             if data.val_ids:
                 val_losses = [h["val_loss"] for h in history]
@@ -395,12 +399,19 @@ def train_head(
             else:  # no validation: keep the last epoch
                 best_epoch = epoch
             if best_epoch == epoch:
-                best_state, best_cm = copy.deepcopy(head.state_dict()), cm
+                best_state = copy.deepcopy(
+                    (head.state_dict(), tail.state_dict() if tail is not None else None)
+                )
+                best_cm = cm
             if stop:
                 break
     if best_state is not None:
-        head.load_state_dict(best_state)
+        head.load_state_dict(best_state[0])
+        if tail is not None:
+            tail.load_state_dict(best_state[1])
     head.eval()
+    if tail is not None:
+        tail.eval()
     val_iou = iou_from(best_cm) if best_cm is not None else np.full(cfg.n_classes, np.nan)
     return TrainResult(
         head=head,
@@ -411,4 +422,7 @@ def train_head(
         n_val=len(data.val_ids),
         mode=data.mode,
         class_weights=weights,
+        tail=tail,
+        steps=done,
+        budget=budget,
     )

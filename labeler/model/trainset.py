@@ -10,17 +10,19 @@
    and validation: a seeded permutation, the first ``round(val_share * n)`` tiles (at
    least one, at most ``n - 1``; none when ``val_share`` is 0 or only one tile is
    labelled) validate;
-4. the augmentation mode is resolved (``"auto"``: ``"images"`` when images and an encoder
-   are given and at most ``image_mode_max_tiles`` tiles train, else ``"features"``);
+4. the augmentation mode is resolved (``"auto"``: ``"turns"`` when the turned tiles'
+   features are given, else ``"images"`` when images and an encoder are given and at
+   most ``image_mode_max_tiles`` tiles train, else ``"features"``);
 5. without cached features (``"images"`` mode) the validation tiles are encoded once;
-6. in ``"features"`` mode every labelled tile's stride-4 features must match its mask;
+6. in ``"features"`` and ``"turns"`` modes every labelled tile's stride-4 features must
+   match its mask (``"turns"``: every tile holds the same turns, each of the turned size);
 7. the labelled pixels per class of the training tiles are counted (for the class weights).
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -46,12 +48,14 @@ class TrainingSet:
     features : sequence of tuples of 4 ndarray
         Encoder features per tile number (in ``"images"`` mode without a cache, only the
         validation tiles' entries are set, the others are None).
+    turned : sequence of mappings, or None
+        Per tile number ``{code: features of the turned tile}`` (``"turns"`` mode).
     images : sequence of ndarray, each (H, W, 3) uint8, or None
         The tiles' pixels, when given.
     train_ids, val_ids : list of int
         Tile numbers that train and that validate, ascending.
     mode : str
-        ``"features"`` or ``"images"``.
+        ``"turns"``, ``"features"`` or ``"images"``.
     shape_of : dict
         ``(H, W)`` of each labelled tile number.
     class_counts : ndarray, shape (K,), int64
@@ -66,6 +70,7 @@ class TrainingSet:
     mode: str
     shape_of: dict[int, tuple[int, int]]
     class_counts: np.ndarray
+    turned: Sequence[Mapping[int, Sequence[np.ndarray]]] | None = None
 
     @property
     def groups(self) -> dict[tuple[int, int], list[int]]:
@@ -76,6 +81,10 @@ class TrainingSet:
     def val_groups(self) -> dict[tuple[int, int], list[int]]:
         """Validation tile numbers by tile shape."""
         return _by_shape(self.val_ids, self.shape_of)
+
+    def groups_of(self, ids: Sequence[int]) -> dict[tuple[int, int], list[int]]:
+        """The tile numbers ``ids`` by tile shape."""
+        return _by_shape(ids, self.shape_of)
 
 
 def to_channels(masks: Sequence[np.ndarray], class_indices: Sequence[int]) -> list[np.ndarray]:
@@ -129,6 +138,7 @@ def prepare_training_set(
     mode: str,
     image_mode_max_tiles: int,
     rng: np.random.Generator,
+    turned: Sequence[Mapping[int, Sequence[np.ndarray]]] | None = None,
 ) -> TrainingSet:
     """Check, map, split and group the labelled tiles (the steps in the module docstring).
 
@@ -146,9 +156,12 @@ def prepare_training_set(
         The tiles' pixels.
     encoder : callable, optional
         Frozen encoder (``"images"`` mode).
+    turned : sequence of N mappings, optional
+        Per tile ``{code: features of the turned tile}``, code 0 included, the same codes
+        for every tile (``"turns"`` mode); ``features`` defaults to their code-0 entries.
     settings : ModelSettings
         ``min_labelled_tiles`` and ``val_share``.
-    mode : {"auto", "features", "images"}
+    mode : {"auto", "turns", "features", "images"}
         Requested augmentation mode.
     image_mode_max_tiles : int
         ``"auto"`` picks ``"images"`` up to this many training tiles.
@@ -167,25 +180,30 @@ def prepare_training_set(
         Inputs that do not match each other, or a mode the inputs cannot serve.
     """
     n = len(masks)
-    for name, seq in (("features", features), ("images", images)):
+    for name, seq in (("features", features), ("images", images), ("turned", turned)):
         if seq is not None and len(seq) != n:
             raise ValueError(f"{name}: expected one entry per mask ({n}), got {len(seq)}")
     channel_masks = to_channels(masks, class_indices)
     if images is not None:
         _check_images(images, channel_masks)
+    if turned is not None and features is None:
+        features = [_turn_zero(t, i) for i, t in enumerate(turned)]
     train_ids, val_ids = _split(channel_masks, settings, rng)
     mode = _resolve_mode(
         mode,
         n_train=len(train_ids),
         can_images=images is not None and encoder is not None,
         has_features=features is not None,
+        has_turned=turned is not None,
         image_mode_max_tiles=image_mode_max_tiles,
     )
     if features is None:  # images mode without a cache
         features = _validation_features(images, val_ids, encoder, n)
     shape_of = {i: channel_masks[i].shape for i in sorted(train_ids + val_ids)}
-    if mode == "features":
+    if mode in ("features", "turns"):
         _check_feature_shapes(features, shape_of)
+    if mode == "turns":
+        _check_turned(turned, shape_of)
     counts = np.zeros(n_classes, np.int64)
     for i in train_ids:
         counts += np.bincount(channel_masks[i].ravel(), minlength=256)[:n_classes]
@@ -198,6 +216,7 @@ def prepare_training_set(
         mode=mode,
         shape_of=shape_of,
         class_counts=counts,
+        turned=turned if mode == "turns" else None,
     )
 
 
@@ -230,10 +249,23 @@ def _split(
 
 
 def _resolve_mode(
-    mode: str, *, n_train: int, can_images: bool, has_features: bool, image_mode_max_tiles: int
+    mode: str,
+    *,
+    n_train: int,
+    can_images: bool,
+    has_features: bool,
+    has_turned: bool,
+    image_mode_max_tiles: int,
 ) -> str:
-    if mode == "auto":
+    if mode == "auto" and has_turned:
+        mode = "turns"
+    elif mode == "auto":
         mode = "images" if can_images and n_train <= image_mode_max_tiles else "features"
+    if mode == "turns" and not has_turned:
+        raise ValueError(
+            "turned: 'turns' mode needs the features of the turned tiles "
+            "(labeler.model.turned.turned_features); pass turned= or use 'features'"
+        )
     if mode == "images" and not can_images:
         raise ValueError(
             "mode: 'images' needs both images and encoder; pass them or use 'features'"
@@ -253,6 +285,36 @@ def _validation_features(
             feats = encoder(to_input(images[i], memory_format=torch.channels_last))
             features[i] = tuple(f[0].to(torch.float16).numpy() for f in feats)
     return features
+
+
+def _turn_zero(entry: Mapping[int, Sequence[np.ndarray]], i: int) -> Sequence[np.ndarray]:
+    if 0 not in entry:
+        raise ValueError(
+            f"turned: tile {i} has no entry for code 0 (the tile itself), got codes "
+            f"{sorted(entry)}; include 0 in the codes"
+        )
+    return entry[0]
+
+
+def _check_turned(turned: Sequence[Mapping[int, Sequence]], shape_of: dict) -> None:
+    codes = None
+    for i, shape in shape_of.items():
+        got = sorted(turned[i])
+        if codes is None:
+            codes = got
+        if got != codes or not all(0 <= c < 8 for c in got):
+            raise ValueError(
+                f"turned: tile {i} holds the turns {got}, tile {min(shape_of)} holds {codes}; "
+                "every tile must hold the same codes in 0..7"
+            )
+        for c in got:
+            h, w = shape if c % 2 == 0 else shape[::-1]
+            h4, w4 = np.shape(turned[i][c][0])[-2:]
+            if (math.ceil(h / 4), math.ceil(w / 4)) != (h4, w4):
+                raise ValueError(
+                    f"turned: tile {i} turn {c} has stride-4 features {h4} x {w4}, expected "
+                    f"those of a {h} x {w} tile; pass the features of the turned tiles"
+                )
 
 
 def _check_feature_shapes(features: Sequence, shape_of: dict[int, tuple[int, int]]) -> None:

@@ -78,6 +78,7 @@ def validate(
     cfg: HeadConfig,
     *,
     images: Sequence[np.ndarray] | None = None,
+    tail: torch.nn.Module | None = None,
 ) -> tuple[float, np.ndarray | None]:
     """Validation loss and confusion matrix of the held-out tiles (head left in eval mode).
 
@@ -97,6 +98,9 @@ def validate(
         The head's configuration (number of classes, refinement).
     images : sequence of ndarray, each (H, W, 3) uint8, optional
         The tiles' pixels; a refining head is scored on its refined output with them.
+    tail : EncoderTail, optional
+        Fine-tuned encoder stages the features pass through first
+        (:mod:`labeler.model.tail`; left in the mode it is in).
 
     Returns
     -------
@@ -118,6 +122,8 @@ def validate(
             for start in range(0, len(members), VALIDATION_BATCH):
                 batch = members[start : start + VALIDATION_BATCH]
                 levels = features_to_tensors([features[i] for i in batch])
+                if tail is not None:
+                    levels = tail(levels)
                 target = torch.from_numpy(np.stack([channel_masks[i] for i in batch])).long()
                 pixels = None
                 if cfg.refines and images is not None:

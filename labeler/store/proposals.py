@@ -18,7 +18,7 @@ import sqlalchemy as sa
 
 from labeler.errors import NotFoundError
 from labeler.imagery.write import png_bytes
-from labeler.states import PROPOSED, UNSEEN
+from labeler.states import HELD, PROPOSED, SAVED_STATES, UNSEEN
 from labeler.store import schema as t
 from labeler.store.base import as_utc, now
 from labeler.store.holds import checked_move
@@ -103,7 +103,9 @@ class ProposalsMixin(ImagesMixin):
             created_at=stamp,
         )
 
-    def add_proposals(self, model_version_id: int, items: Sequence[NewProposal]) -> list[int]:
+    def add_proposals(
+        self, model_version_id: int, items: Sequence[NewProposal], *, only_open: bool = False
+    ) -> list[int]:
         """Store proposals of one model version in one transaction.
 
         Tiles that were ``unseen`` become ``proposed``; every other tile keeps its state.
@@ -115,11 +117,16 @@ class ProposalsMixin(ImagesMixin):
         items : sequence of NewProposal
             At most one per tile is usual; each mask must have its tile's shape and hold
             class indices only (no unlabelled pixels).
+        only_open : bool
+            Store only the proposals of tiles that have no saved full mask and that nobody
+            holds, judged inside the writing transaction (a tile opened in the editor
+            while the proposals were computed is left alone); the others are skipped.
 
         Returns
         -------
         list of int
-            The new proposal ids, in the items' order (empty for no items).
+            The new proposal ids, in the items' order (empty for no items; skipped items
+            have none).
 
         Raises
         ------
@@ -140,6 +147,21 @@ class ProposalsMixin(ImagesMixin):
             rows.append(self._proposal_values(p, tile, model_version_id, stamp))
         ids = []
         with self._write() as conn:
+            if only_open:
+                closed = set(
+                    conn.execute(
+                        sa.select(t.tiles.c.id).where(
+                            t.tiles.c.id.in_([r["tile_id"] for r in rows])
+                            & (
+                                t.tiles.c.state.in_((HELD, *SAVED_STATES))
+                                | t.tiles.c.held_by.is_not(None)
+                            )
+                        )
+                    ).scalars()
+                )
+                rows = [r for r in rows if r["tile_id"] not in closed]
+                if not rows:
+                    return []
             for r in rows:
                 ids.append(
                     int(conn.execute(t.proposals.insert().values(**r)).inserted_primary_key[0])

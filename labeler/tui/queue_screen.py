@@ -425,15 +425,38 @@ class QueueScreen(Screen):
 
     @work(thread=True, group="long", exit_on_error=False)
     def _retrain(self) -> None:
-        try:
-            result = workflow.retrain(self.project, progress=self._progress)
-        except Exception as exc:  # noqa: BLE001
-            self.app.call_from_thread(self._failed, exc, "retraining")
-            return
-        self.app.call_from_thread(self._retrained, result)
+        # a worker thread of its own: lowered priority, torch on the free cores less one
+        with workflow.background_work():
+            try:
+                result = workflow.retrain(self.project, progress=self._progress)
+            except Exception as exc:  # noqa: BLE001
+                self.app.call_from_thread(self._failed, exc, "retraining")
+                return
+            self.app.call_from_thread(self._retrained, result)
+            try:
+                renewed = workflow.renew_proposals(self.project, progress=self._renewing)
+            except Exception as exc:  # noqa: BLE001
+                self.app.call_from_thread(self._failed, exc, "renewing the proposals")
+                return
+        self.app.call_from_thread(self._renewed, renewed)
+
+    def _renewing(self, done: int, total: int, label: str = "") -> None:
+        """Renewal progress; the rows follow each image's proposals as they land."""
+        self._progress(done, total, label)
+        if label.endswith(": proposed"):
+            self.app.call_from_thread(self.reload)
+
+    def _renewed(self, renewed) -> None:
+        self._end()
+        p = renewed.proposals
+        message = f"proposals renewed on {p.proposed} tiles"
+        if p.left_alone:
+            message += f"; {p.left_alone} saved or held tiles keep theirs"
+        self.app.tell(message + ("; queue re-picked" if renewed.picked is not None else ""))
+        self.reload()
 
     def _retrained(self, result) -> None:
-        self._end()
+        self.query_one(WorkBar).start("renewing the proposals")
         mv = result.model_version
         miou = "-" if mv.miou is None else f"{mv.miou:.3f}"
         self.app.tell(
@@ -442,4 +465,3 @@ class QueueScreen(Screen):
             title="retrained",
             timeout=30,
         )
-        self.reload()

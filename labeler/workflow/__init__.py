@@ -14,6 +14,7 @@ stage:
 ``editing``               the store behind the mask editor
 ``agreeing``              agreement figures, report and contested tiles
 ``retraining``            a new head on every saved mask
+``renewing``              new proposals for the open tiles after a retrain
 ``exporting``             GeoJSON, PNG masks, manifest
 ``importing``             masks made elsewhere, saved tile by tile like any save
 ``views``                 read-only views for the edges (preview, places, lists)
@@ -46,6 +47,7 @@ from labeler.workflow.importing import ImportResult, import_masks
 from labeler.workflow.picking import PickedTile, PickResult, pick_tiles
 from labeler.workflow.progress import Progress, no_progress
 from labeler.workflow.proposing import ProposeResult, propose
+from labeler.workflow.renewing import RenewResult, background_work, renew_proposals
 from labeler.workflow.retraining import LabelledTile, RetrainResult, labelled_tiles, retrain
 from labeler.workflow.status import ProjectStatus, project_status
 from labeler.workflow.views import (
@@ -96,6 +98,9 @@ __all__ = [
     "RetrainResult",
     "labelled_tiles",
     "retrain",
+    "RenewResult",
+    "renew_proposals",
+    "background_work",
     "annotators",
     "model_versions",
     "TileView",

@@ -3,7 +3,11 @@
 Both stages run the installed encoder (:mod:`labeler.model.encoder`) over tiles and keep
 the multi-scale features in the project's feature cache under ``<project>/cache/features``,
 keyed by the image's content hash and the tile's window, so a tile is encoded once per
-encoder version. The model room is imported only when a function here is called.
+encoder version. A head trained with fine-tuned encoder stages reads the features of its
+own encoder version: :func:`load_head` rebuilds those stages on the installed encoder
+and :func:`head_features` derives the head's features from the cached ones through them
+(the cache holds the installed encoder's features only). The model room is imported only
+when a function here is called.
 """
 
 from __future__ import annotations
@@ -11,15 +15,16 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from typing import TYPE_CHECKING
 
+from labeler.errors import LabelerError
 from labeler.imagery.read import ImageReader
 from labeler.project import Project
-from labeler.store.records import ImageRecord, TileRecord
+from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
 
 if TYPE_CHECKING:  # the model room is imported only when a function here is called
     from labeler.model.cache import FeatureCache
     from labeler.model.encoder import Lite0Encoder
 
-__all__ = ["tile_key", "encoder_and_cache", "tile_features"]
+__all__ = ["tile_key", "encoder_and_cache", "tile_features", "load_head", "head_features"]
 
 
 def tile_key(image: ImageRecord, tile: TileRecord) -> str:
@@ -108,3 +113,71 @@ def tile_features(
         tile_shapes=[t.shape for t in tiles],
         progress=progress,
     )
+
+
+def load_head(project: Project, model: ModelVersionRecord, encoder):
+    """The head of a model version and the encoder stages it was fine-tuned with.
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    model : ModelVersionRecord
+        A model version of kind ``"head"``.
+    encoder : labeler.model.encoder.Lite0Encoder
+        The installed encoder (:func:`encoder_and_cache`).
+
+    Returns
+    -------
+    head : labeler.model.head.ProposalHead
+    tail : labeler.model.tail.EncoderTail or None
+        The fine-tuned encoder stages, or None when the head reads the installed
+        encoder's features as they are.
+
+    Raises
+    ------
+    LabelerError
+        If the checkpoint is missing or unreadable, or the head was trained on another
+        encoder version than the installed encoder (or a tuned version of it); the
+        message says to retrain.
+    """
+    from labeler.model.checkpoint import load_checkpoint
+    from labeler.model.tail import tail_from_state
+
+    path = project.resolve(model.checkpoint or "", what=f"checkpoint of model {model.name}")
+    try:
+        head, meta = load_checkpoint(path)
+        tail = tail_from_state(encoder, meta.encoder_tail) if meta.encoder_tail else None
+    except (OSError, ValueError, RuntimeError) as exc:
+        raise LabelerError(
+            f"{path}: cannot load the model {model.name} ({exc}); run 'labeler retrain'"
+        ) from None
+    reads = tail.version if tail is not None else encoder.version
+    if meta.encoder_version != reads:
+        raise LabelerError(
+            f"model {model.name} was trained on encoder {meta.encoder_version}, the installed "
+            f"encoder gives {reads}; run 'labeler retrain'"
+        )
+    return head, tail
+
+
+def head_features(tail, features: Sequence) -> list:
+    """The features a head reads: the cached ones, or those of its tuned encoder version.
+
+    Parameters
+    ----------
+    tail : labeler.model.tail.EncoderTail or None
+        From :func:`load_head`.
+    features : sequence of tuples of 4 ndarray
+        The installed encoder's features of the tiles (:func:`tile_features`).
+
+    Returns
+    -------
+    list of tuple of 4 ndarray
+        ``features`` unchanged without a tail, else with the tuned stages' levels.
+    """
+    if tail is None:
+        return list(features)
+    from labeler.model.tail import tail_features
+
+    return tail_features(tail, features)

@@ -15,16 +15,17 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from labeler.errors import InputError, LabelerError
+from labeler.errors import InputError
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import Window
 from labeler.masks.coldstart import cold_start_proposal, detect_image_rows
 from labeler.metrics import class_fractions
 from labeler.project import Project
 from labeler.settings import Settings
+from labeler.states import HELD, SAVED_STATES
 from labeler.store import NewProposal
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
-from labeler.workflow.features import encoder_and_cache, tile_features
+from labeler.workflow.features import encoder_and_cache, head_features, load_head, tile_features
 from labeler.workflow.progress import Progress, no_progress
 
 __all__ = ["ROW_BLOCK_PX", "ProposeResult", "propose"]
@@ -46,6 +47,7 @@ class ProposeResult:
     up_to_date: int
     cache_hits: int = 0
     cache_misses: int = 0
+    left_alone: int = 0  # with only_open: tiles with a saved mask or held, not proposed
 
 
 def _cold_start_name(project: Project) -> str:
@@ -119,6 +121,7 @@ def _block_proposals(
     feats: list,
     *,
     head,
+    tail=None,
     settings: Settings,
 ) -> list[NewProposal]:
     """Proposals of the tiles of one block.
@@ -135,6 +138,8 @@ def _block_proposals(
         Their encoder features, in order (:func:`labeler.workflow.features.tile_features`).
     head : labeler.model.head.ProposalHead or None
         The trained head, or None for the vegetation-index cold start.
+    tail : labeler.model.tail.EncoderTail or None
+        The encoder stages fine-tuned with the head (:func:`load_head`), or None.
     settings : Settings
         The project's settings (cold start, model, classes).
 
@@ -171,19 +176,22 @@ def _block_proposals(
         pixels = [_part(rgb, block, t.window) for t in members]
         props = propose_tiles(
             head,
-            feats,
+            head_features(tail, feats),
             tile_shapes=[t.shape for t in members],
             mc_samples=settings.model.mc_samples,
             seed=settings.model.seed,
             images=pixels,
         )
-        for t, p in zip(members, props, strict=True):
+        for t, p, f in zip(members, props, feats, strict=True):
             items.append(
                 NewProposal(
                     tile_id=t.id,
                     mask=p.mask,
                     uncertainty=p.uncertainty,
-                    embedding=p.embedding,
+                    # the installed encoder's pooled features, comparable across heads
+                    embedding=p.embedding
+                    if tail is None
+                    else np.asarray(f[3], np.float32).mean(axis=(1, 2)),
                     mean_entropy=p.mean_entropy,
                     mean_margin=p.mean_margin,
                     mean_least_confidence=p.mean_least_confidence,
@@ -194,7 +202,9 @@ def _block_proposals(
     return items
 
 
-def propose(project: Project, *, progress: Progress = no_progress) -> ProposeResult:
+def propose(
+    project: Project, *, progress: Progress = no_progress, only_open: bool = False
+) -> ProposeResult:
     """Propose masks for every tile whose proposal is older than the newest model.
 
     Tiles are proposed block by block (:data:`ROW_BLOCK_PX`): only one block's pixels,
@@ -208,6 +218,10 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
         An open project.
     progress : Progress
         Called as ``progress(done, total, label)`` over the tiles to propose.
+    only_open : bool
+        Renew only the tiles without a saved full mask that nobody holds (checked again
+        when each block's proposals are written, so a tile opened meanwhile is left
+        alone); the others keep their proposals and count as ``left_alone``.
 
     Returns
     -------
@@ -225,22 +239,9 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
     settings = project.settings
     head_mv = store.latest_model_version(kind="head")
     encoder, cache = encoder_and_cache(project)
-    head = None
+    head = tail = None
     if head_mv is not None:
-        from labeler.model.checkpoint import load_checkpoint
-
-        path = project.resolve(head_mv.checkpoint or "", what=f"checkpoint of model {head_mv.name}")
-        try:
-            head, meta = load_checkpoint(path)
-        except (OSError, ValueError, RuntimeError) as exc:
-            raise LabelerError(
-                f"{path}: cannot load the model {head_mv.name} ({exc}); run 'labeler retrain'"
-            ) from None
-        if meta.encoder_version != encoder.version:
-            raise LabelerError(
-                f"model {head_mv.name} was trained on encoder {meta.encoder_version}, the installed encoder "
-                f"is {encoder.version}; run 'labeler retrain'"
-            )
+        head, tail = load_head(project, head_mv, encoder)  # with its tuned encoder stages
         mv = head_mv
     else:
         mv = _cold_start_version(project)  # made when its first proposals are stored
@@ -249,13 +250,21 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
     images = store.images()
     todo = {}
     up_to_date = 0
+    left_alone = 0
     for im in images:
+        all_tiles = store.tiles(image_id=im.id)
         tiles = [
             t
-            for t in store.tiles(image_id=im.id)
+            for t in all_tiles
             if latest.get(t.id) is None or latest[t.id].model_version_id != mv_id
         ]
-        up_to_date += len(store.tiles(image_id=im.id)) - len(tiles)
+        up_to_date += len(all_tiles) - len(tiles)
+        if only_open:
+            open_tiles = [
+                t for t in tiles if t.state not in (HELD, *SAVED_STATES) and t.held_by is None
+            ]
+            left_alone += len(tiles) - len(open_tiles)
+            tiles = open_tiles
         if tiles:
             todo[im.id] = tiles
     _check_image_files(project, [im for im in images if im.id in todo])
@@ -284,13 +293,20 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
                     ),
                 )
                 items = _block_proposals(
-                    reader.read(block), block, members, feats, head=head, settings=settings
+                    reader.read(block),
+                    block,
+                    members,
+                    feats,
+                    head=head,
+                    tail=tail,
+                    settings=settings,
                 )
                 del feats  # one block's features at a time
                 if mv is None:
                     mv = _new_cold_start_version(project)
-                store.add_proposals(mv.id, items)
-                proposed += len(items)
+                written = store.add_proposals(mv.id, items, only_open=only_open)
+                proposed += len(written)
+                left_alone += len(items) - len(written)
                 done += len(members)
                 progress(done, total, f"{im.name}: proposed")
     progress(total, total, "done")
@@ -303,4 +319,5 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
         up_to_date=up_to_date,
         cache_hits=cache.hits,
         cache_misses=cache.misses,
+        left_alone=left_alone,
     )

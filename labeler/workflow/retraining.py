@@ -2,16 +2,25 @@
 
 ``retrain`` trains a new head on every saved full mask (accepted, amended, settled,
 imported) and every weak label, and records it as a model version with its
-per-class validation IoU. The tiles' pixels go to the model room as well: the head learns
-a full-resolution refinement of its stride-4 proposals from them. The ``model.augment``
-setting chooses how training augments (:mod:`labeler.model.train`): by default the tiles
-themselves go through the encoder each epoch while there are at most 24 labelled tiles,
-and the cached features are turned beyond that.
+per-class validation IoU and the seconds it took. The model room does the training
+(:func:`labeler.model.fit.fit_head`): the flips and quarter turns of each labelled tile
+are encoded once into the project's feature cache and reused by every later retrain, the
+step budget grows sub-linearly with the labelled tiles, and the tiles' pixels teach the
+head a full-resolution refinement of its stride-4 proposals. With
+``model.finetune_stages`` set, the encoder's last stages train with the head: the
+model version then names a new encoder version (base encoder plus tuned stages, saved in
+the head's checkpoint), which ``labeler propose`` loads with the head
+(:func:`labeler.workflow.features.load_head`).
+
+Progress goes first over the tiles read and encoded, then over the optimiser steps, with
+the validation mIoU and an estimate of the time left. Renewing the proposals of the open
+tiles with the new model afterwards is :mod:`labeler.workflow.renewing`.
 """
 
 from __future__ import annotations
 
 import math
+import time
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -22,7 +31,7 @@ from labeler.imagery.read import open_image
 from labeler.project import Project
 from labeler.states import CONTESTED, KIND_FULL, KIND_WEAK, SETTLED
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
-from labeler.workflow.features import encoder_and_cache, tile_features
+from labeler.workflow.features import encoder_and_cache, tile_key
 from labeler.workflow.progress import Progress, no_progress
 
 __all__ = ["LabelledTile", "labelled_tiles", "RetrainResult", "retrain"]
@@ -97,7 +106,31 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
 
 @dataclass(frozen=True)
 class RetrainResult:
-    """What ``labeler retrain`` did."""
+    """What ``labeler retrain`` did.
+
+    Attributes
+    ----------
+    model_version : ModelVersionRecord
+        The new model version.
+    n_full, n_weak : int
+        Labelled tiles with a full mask and with weak labels only.
+    n_train, n_val : int
+        Tiles that trained and that validated.
+    best_epoch : int
+        The epoch whose state was kept.
+    mode : str
+        Augmentation mode (``"turns"``, ``"features"`` or ``"images"``).
+    history : list of dict
+        Per epoch: epoch, step, train and validation loss, validation mIoU.
+    steps : int
+        Optimiser steps made.
+    seconds : float
+        Wall-clock time of the whole retrain.
+    encoder_version : str
+        The encoder version the head reads (a new one when encoder stages were tuned).
+    tuned_stages : int
+        Encoder stages fine-tuned with the head (0: the encoder stayed frozen).
+    """
 
     model_version: ModelVersionRecord
     n_full: int
@@ -107,26 +140,58 @@ class RetrainResult:
     best_epoch: int
     mode: str
     history: list[dict] = field(default_factory=list)
+    steps: int = 0
+    seconds: float = 0.0
+    encoder_version: str = ""
+    tuned_stages: int = 0
+
+
+def _time_left(elapsed: float, done: int, total: int) -> str:
+    """``", about N s left"`` from the pace so far (empty before the first step)."""
+    if done <= 0 or total <= done:
+        return ""
+    left = elapsed / done * (total - done)
+    return f", about {left:.0f} s left" if left < 120 else f", about {left / 60:.0f} min left"
+
+
+def _read_tiles(
+    project: Project, items: list[LabelledTile], progress: Progress
+) -> tuple[list[np.ndarray], list[str]]:
+    """The pixels and feature-cache keys of the labelled tiles, one image open at a time."""
+    pixels: list = [None] * len(items)
+    by_image: dict[int, list[int]] = {}
+    for i, it in enumerate(items):
+        by_image.setdefault(it.image.id, []).append(i)
+    done = 0
+    for idx in by_image.values():
+        with open_image(project.image_path(items[idx[0]].image)) as reader:
+            for i in idx:
+                pixels[i] = reader.read(items[i].tile.window)
+        done += len(idx)
+        progress(done, len(items), "reading labelled tiles")
+    return pixels, [tile_key(it.image, it.tile) for it in items]
 
 
 def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainResult:
     """Train a new head on every saved mask and record it as a model version.
 
-    The head's checkpoint is written to ``<project>/models/head-<n>.pt``.
+    The head's checkpoint (with the fine-tuned encoder stages, if any) is written to
+    ``<project>/models/head-<n>.pt``.
 
     Parameters
     ----------
     project : Project
         An open project.
     progress : Progress
-        Called as ``progress(done, total, label)``: first over the tiles encoded, then
-        over the training epochs (with the validation mIoU).
+        Called as ``progress(done, total, label)``: over the tiles read, over the turned
+        tiles encoded (only those the cache lacks), then over the optimiser steps (with
+        the validation mIoU and the time left).
 
     Returns
     -------
     RetrainResult
         The new model version with its per-class validation IoU, the numbers of tiles
-        used, the best epoch and the training history.
+        used, the best epoch, the training history and the seconds it took.
 
     Raises
     ------
@@ -135,8 +200,9 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
         setting (the message says how many more are needed).
     """
     from labeler.model.checkpoint import save_checkpoint
-    from labeler.model.train import train_head
+    from labeler.model.fit import fit_head
 
+    started = time.perf_counter()
     settings = project.settings
     schema = settings.classes
     items = labelled_tiles(project)
@@ -147,44 +213,36 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
             f"{len(items)}; accept or correct {need - len(items)} more tiles first"
         )
     encoder, cache = encoder_and_cache(project)
-    feats: list = [None] * len(items)
-    pixels: list = [None] * len(items)
-    by_image: dict[int, list[int]] = {}
-    for i, it in enumerate(items):
-        by_image.setdefault(it.image.id, []).append(i)
-    done = 0
-    for idx in by_image.values():
-        image = items[idx[0]].image
-        with open_image(project.image_path(image)) as reader:
-            got = tile_features(cache, encoder, reader, image, [items[i].tile for i in idx])
-            for i in idx:
-                pixels[i] = reader.read(items[i].tile.window)
-        for i, f in zip(idx, got, strict=True):
-            feats[i] = f
-        done += len(idx)
-        progress(done, len(items), "encoding labelled tiles")
-    n_epochs = settings.model.epochs
+    pixels, keys = _read_tiles(project, items, progress)
+    ready = [time.perf_counter()]  # when training began: after the last tile was encoded
 
-    def on_epoch(epoch: int, total: int, metrics: dict) -> None:
+    def on_encode(done: int, total: int) -> None:
+        progress(done, total, "encoding turned tiles")
+        ready[0] = time.perf_counter()
+
+    def on_epoch(step: int, total: int, metrics: dict) -> None:
         miou = metrics.get("val_miou")
-        label = f"epoch {epoch}/{total}" + (
+        label = f"step {step}/{total}" + (
             "" if miou is None or math.isnan(miou) else f", val mIoU {miou:.3f}"
         )
-        progress(epoch, total, label)
+        progress(step, total, label + _time_left(time.perf_counter() - ready[0], step, total))
 
     try:
-        result = train_head(
+        result = fit_head(
             [it.mask for it in items],
+            pixels,
+            keys,
             class_indices=schema.indices,
-            features=feats,
-            images=pixels,
+            cache=cache,
             encoder=encoder,
             settings=settings.model,
-            mode=settings.model.augment,
             progress=on_epoch,
+            encode_progress=on_encode,
         )
     except InputError as exc:
         raise LabelerError(str(exc)) from None
+    tail = result.tail
+    encoder_version = tail.version if tail is not None else encoder.version
     store = project.store
     n = len([m for m in store.model_versions() if m.kind == "head"]) + 1
     name = f"head-{n}"
@@ -198,14 +256,17 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
     save_checkpoint(
         ckpt,
         result.head,
-        encoder_version=encoder.version,
+        encoder_version=encoder_version,
         val_iou=result.val_iou,
         extra={"name": name, "n_train": result.n_train, "n_val": result.n_val},
+        encoder_tail=tail.state() if tail is not None else None,
     )
+    n_full = sum(it.kind == "full" for it in items)
+    seconds = time.perf_counter() - started
     mv = store.add_model_version(
         kind="head",
         name=name,
-        encoder_version=encoder.version,
+        encoder_version=encoder_version,
         checkpoint=str(ckpt.relative_to(project.root)),
         n_train_tiles=result.n_train,
         val_iou=val,
@@ -214,19 +275,28 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
             "best_epoch": result.best_epoch,
             "mode": result.mode,
             "n_val": result.n_val,
-            "full_tiles": sum(it.kind == KIND_FULL for it in items),
-            "weak_tiles": sum(it.kind == KIND_WEAK for it in items),
-            "epochs_max": n_epochs,
+            "full_tiles": n_full,
+            "weak_tiles": len(items) - n_full,
+            "epochs_max": settings.model.epochs,
+            "steps": result.steps,
+            "step_budget": result.budget,
             "refine_channels": result.head.config.refine_channels,
+            "base_encoder_version": encoder.version,
+            "tuned_stages": tail.stages if tail is not None else 0,
+            "seconds": round(seconds, 2),
         },
     )
     return RetrainResult(
         model_version=mv,
-        n_full=sum(it.kind == KIND_FULL for it in items),
-        n_weak=sum(it.kind == KIND_WEAK for it in items),
+        n_full=n_full,
+        n_weak=len(items) - n_full,
         n_train=result.n_train,
         n_val=result.n_val,
         best_epoch=result.best_epoch,
         mode=result.mode,
         history=list(result.history),
+        steps=result.steps,
+        seconds=seconds,
+        encoder_version=encoder_version,
+        tuned_stages=tail.stages if tail is not None else 0,
     )

@@ -98,7 +98,7 @@ def test_checkpoint_of_the_previous_format_asks_for_retraining(tmp_path):
     torch.save(obj, path)
     with pytest.raises(
         ValueError,
-        match=r"old\.pt: checkpoint format version 1, this labeler reads 2; retrain the head "
+        match=r"old\.pt: checkpoint format version 1, this labeler reads 2 and 3; retrain the head "
         r"\('labeler retrain'\)",
     ):
         load_checkpoint(path)

@@ -1,21 +1,49 @@
 import pytest
 import torch
 
-from labeler.model.runtime import available_cores, configure_threads, inference
+from labeler.model import runtime
+from labeler.model.runtime import available_cores, configure_threads, free_cores, inference
 
 
-def test_configure_threads_zero_means_all_cores():
+def test_configure_threads_zero_means_the_free_cores(monkeypatch):
     before = torch.get_num_threads()
     try:
-        assert configure_threads(0) == available_cores()
+        monkeypatch.setattr(runtime, "available_cores", lambda: 4)
+        monkeypatch.setattr(runtime.os, "getloadavg", lambda: (2.7, 1.0, 1.0))
+        assert configure_threads(0) == 2  # 4 cores, 2 busy by the load average
         assert configure_threads(1) == 1
         assert torch.get_num_threads() == 1
     finally:
         torch.set_num_threads(before)
 
 
+@pytest.mark.parametrize(
+    ("load", "want"),
+    [
+        # worked by hand for 4 cores: a core is busy per whole unit of load
+        (0.0, 4),
+        (0.99, 4),
+        (1.0, 3),
+        (3.5, 1),
+        (9.0, 1),  # never fewer than one thread
+        (float("nan"), 4),  # no information: every core
+    ],
+)
+def test_free_cores_subtracts_whole_units_of_load(monkeypatch, load, want):
+    monkeypatch.setattr(runtime, "available_cores", lambda: 4)
+    assert free_cores(load=load) == want
+
+
+def test_free_cores_without_a_load_average_is_every_core(monkeypatch):
+    def no_load():
+        raise OSError("no load average here")
+
+    monkeypatch.setattr(runtime.os, "getloadavg", no_load)
+    assert free_cores() == available_cores()
+
+
 def test_configure_threads_rejects_negative():
-    with pytest.raises(ValueError, match=r"threads: expected 0 \(all cores\).*got -1"):
+    with pytest.raises(ValueError, match=r"threads: expected 0 \(the free cores\).*got -1"):
         configure_threads(-1)
 
 

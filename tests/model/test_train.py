@@ -67,7 +67,7 @@ def test_training_on_features_returns_head_and_val_iou(tiles):
     )
     assert res.mode == "features" and res.n_train == 2 and res.n_val == 1
     assert [s[:2] for s in seen] == [(1, 2), (2, 2)]
-    assert seen[0][2] == ["epoch", "train_loss", "val_loss", "val_miou"]
+    assert seen[0][2] == ["epoch", "step", "train_loss", "val_loss", "val_miou"]
     assert res.val_iou.shape == (3,)
     assert np.isfinite(res.val_iou[:2]).all() and np.isnan(res.val_iou[2])  # no weed in validation
     assert 1 <= res.best_epoch <= 2 and not res.head.training
@@ -198,7 +198,10 @@ def test_learns_the_invented_disk_scene(tiles):
 @pytest.mark.parametrize(
     ("kwargs", "match"),
     [
-        ({"mode": "sideways"}, "mode: expected 'auto', 'features' or 'images', got 'sideways'"),
+        (
+            {"mode": "sideways"},
+            "mode: expected one of 'auto', 'turns', 'features', 'images', got 'sideways'",
+        ),
         ({"mode": "images"}, "mode: 'images' needs both images and encoder"),
         ({"patience": 0}, "patience: expected at least 1 epoch, got 0"),
         ({"min_steps_per_epoch": 0}, "min_steps_per_epoch: expected at least 1, got 0"),
@@ -284,8 +287,13 @@ def test_refinement_recovers_blades_thinner_than_a_cell(pooling_encoder):
     images, masks = blade_tiles(8, seed=1)
     feats = encode_tiles(pooling_encoder, images)
     s = ModelSettings(epochs=6, batch_size=4, val_share=0.0, seed=0, min_labelled_tiles=3)
-    res = train_head(
-        masks[:6], class_indices=(0, 1), features=feats[:6], images=images[:6], settings=s
+    res = train_head(  # a constant rate: the claim is the refinement's, not the schedule's
+        masks[:6],
+        class_indices=(0, 1),
+        features=feats[:6],
+        images=images[:6],
+        settings=s,
+        schedule="constant",
     )
     refined = propose_tiles(res.head, feats[6:], images=images[6:], mc_samples=1)
     coarse = propose_tiles(res.head, feats[6:], mc_samples=1)
@@ -297,3 +305,140 @@ def test_refinement_recovers_blades_thinner_than_a_cell(pooling_encoder):
 
     assert all(p.refined for p in refined)
     assert iou(refined) > 0.8 and iou(refined) > iou(coarse) + 0.2
+
+
+# -- turns mode, step budget, schedule, fine-tuning -------------------------------------------
+@pytest.fixture(scope="module")
+def turned_tiles(encoder, tmp_path_factory):
+    from labeler.model.cache import FeatureCache
+    from labeler.model.turned import turned_features
+
+    images, masks = disk_tiles(3, size=64, seed=0)
+    cache = FeatureCache(tmp_path_factory.mktemp("cache"), encoder_version=encoder.version)
+    keys = [f"disk{i}:0:0:64:64" for i in range(3)]
+    return images, masks, turned_features(cache, encoder, keys, images, (0, 1, 5))
+
+
+def test_turns_mode_reads_the_cached_turns_and_stops_at_the_step_budget(turned_tiles, encoder):
+    images, masks, turned = turned_tiles
+    seen = []
+    res = train_head(
+        masks,
+        class_indices=(0, 1),
+        turned=turned,
+        images=images,
+        encoder=encoder,
+        settings=dataclasses.replace(TINY, epochs=40),
+        steps=20,
+        progress=lambda step, total, m: seen.append((step, total)),
+    )
+    assert res.mode == "turns" and res.steps == res.budget == 20
+    # epochs of 16 steps: one whole epoch, then the 4 steps left of the budget
+    assert seen == [(16, 20), (20, 20)] and [h["step"] for h in res.history] == [16.0, 20.0]
+    assert np.isfinite(res.history[-1]["train_loss"])
+
+
+def test_epochs_bound_the_budget_too(turned_tiles):
+    images, masks, turned = turned_tiles
+    res = fit(masks, class_indices=(0, 1), turned=turned, settings=TINY, steps=500)
+    # 2 epochs x 1 step (min_steps_per_epoch=1, 2 training tiles in one batch of 2)
+    assert res.budget == 2 and res.steps == 2
+
+
+def test_turns_mode_is_repeatable(turned_tiles):
+    images, masks, turned = turned_tiles
+    runs = [
+        fit(masks, class_indices=(0, 1), turned=turned, images=images, settings=TINY)
+        for _ in range(2)
+    ]
+    for k, v in runs[0].head.state_dict().items():
+        torch.testing.assert_close(runs[1].head.state_dict()[k], v, rtol=0, atol=0)
+
+
+def test_fine_tuned_stages_train_and_come_back_in_their_best_state(turned_tiles, encoder):
+    images, masks, turned = turned_tiles
+    s = dataclasses.replace(TINY, finetune_stages=2)
+    res = fit(
+        masks, class_indices=(0, 1), turned=turned, images=images, encoder=encoder, settings=s
+    )
+    assert res.tail is not None and res.tail.stages == 2 and not res.tail.training
+    from labeler.model.tail import EncoderTail
+
+    untouched = EncoderTail(encoder, stages=2)
+    changed = [
+        not torch.equal(a, b)
+        for a, b in zip(
+            res.tail.state_dict().values(), untouched.state_dict().values(), strict=True
+        )
+    ]
+    assert any(changed)  # the tail learned
+    assert res.tail.version != untouched.version
+    again = fit(
+        masks, class_indices=(0, 1), turned=turned, images=images, encoder=encoder, settings=s
+    )
+    assert again.tail.version == res.tail.version  # seeded: the same encoder version again
+    frozen = fit(
+        masks, class_indices=(0, 1), turned=turned, images=images, encoder=encoder, settings=TINY
+    )
+    assert frozen.tail is None
+
+
+def test_cosine_schedule_on_worked_steps():
+    from labeler.model.steps import cosine_schedule
+
+    w = torch.nn.Parameter(torch.zeros(1))
+    opt = torch.optim.SGD([w], lr=2.0)
+    sched = cosine_schedule(opt, 21, warmup=0.05)  # warm-up round(1.05) = 1 step
+    rates = []
+    for _ in range(21):
+        rates.append(opt.param_groups[0]["lr"])
+        opt.step()
+        sched.step()
+    # worked by hand: step 0 of a 1-step warm-up: 2 * 1/1; then 2 * (1 + cos(pi t / 20)) / 2
+    want = [2.0] + [1.0 + math.cos(math.pi * (t - 1) / 20) for t in range(1, 21)]
+    np.testing.assert_allclose(rates, want, atol=1e-12)
+    with pytest.raises(ValueError, match=r"total_steps: expected at least 1 step, got 0"):
+        cosine_schedule(opt, 0)
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "match"),
+    [
+        ({"steps": 0}, r"steps: expected at least 1 optimiser step \(or None: automatic\), got 0"),
+        ({"schedule": "steep"}, r"schedule: expected 'cosine' or 'constant', got 'steep'"),
+        ({"coarse_loss": "tiles"}, r"coarse_loss: expected 'cells' or 'pixels', got 'tiles'"),
+        (
+            {"mode": "turns", "turned": None},
+            r"turned: 'turns' mode needs the features of the turned tiles",
+        ),
+        (
+            {"finetune_stages": 2},
+            r"encoder: fine-tuning 2 encoder stages \(finetune_stages\) needs the encoder itself",
+        ),
+    ],
+)
+def test_bad_budget_and_tuning_options_are_refused(tiles, kwargs, match):
+    images, masks, feats = tiles
+    args = {
+        "class_indices": (0, 1),
+        "features": feats,
+        "settings": TINY,
+        "mode": "features",
+    } | kwargs
+    with pytest.raises(ValueError, match=match):
+        fit(masks, **args)
+
+
+def test_turned_features_must_match_the_tiles(turned_tiles):
+    images, masks, turned = turned_tiles
+    short = [dict(t) for t in turned]
+    del short[1][5]
+    with pytest.raises(
+        ValueError, match=r"turned: tile 1 holds the turns \[0, 1\], tile 0 holds \[0, 1, 5\]"
+    ):
+        fit(masks, class_indices=(0, 1), turned=short, settings=TINY)
+    no_zero = [{c: f for c, f in t.items() if c} for t in turned]
+    with pytest.raises(
+        ValueError, match=r"turned: tile 0 has no entry for code 0 \(the tile itself\)"
+    ):
+        fit(masks, class_indices=(0, 1), turned=no_zero, settings=TINY)

@@ -115,3 +115,28 @@ def test_picks(store):
         "k": 1,
         "tiles": 1,
     }
+
+
+def test_only_open_skips_saved_and_held_tiles_inside_the_write(store):
+    # a tile opened in the editor (held) or saved while proposals were computed keeps
+    # its proposal: the filter is applied in the writing transaction
+    a, b, c, d = store.tiles()[:4]
+    old = store.add_model_version(kind="cold_start", name="vegetation-rows")
+    store.add_proposals(old.id, [NewProposal(t.id, _mask(t, 0)) for t in (a, b, c, d)])
+    store.hold(b.id, "ines")
+    store.save_annotation(c.id, "tomas", _mask(c, 1), parent_version=None)
+    store.hold(d.id, "tomas")
+    store.release(d.id, "tomas")  # released again: open
+    new = store.add_model_version(kind="head", name="head-1")
+    ids = store.add_proposals(
+        new.id, [NewProposal(t.id, _mask(t, 2)) for t in (a, b, c, d)], only_open=True
+    )
+    assert len(ids) == 2
+    latest = store.latest_proposals()
+    assert {t.id: latest[t.id].model_version_id for t in (a, b, c, d)} == {
+        a.id: new.id,
+        b.id: old.id,
+        c.id: old.id,
+        d.id: new.id,
+    }
+    assert store.add_proposals(new.id, [NewProposal(b.id, _mask(b, 3))], only_open=True) == []

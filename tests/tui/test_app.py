@@ -126,14 +126,20 @@ async def test_retrain_shows_progress_and_iou(project, monkeypatch):
         )
         return SimpleNamespace(model_version=mv)
 
+    def fake_renew(project_, *, progress):  # renewal: tests/tui/test_queue_screen.py
+        return SimpleNamespace(
+            proposals=SimpleNamespace(proposed=0, left_alone=0), picked=None, note=""
+        )
+
     monkeypatch.setattr(workflow, "retrain", fake_retrain, raising=False)
+    monkeypatch.setattr(workflow, "renew_proposals", fake_renew, raising=False)
     app = QueueApp(project, annotator="ana")
     async with app.run_test(size=SIZE) as pilot:
         await idle(pilot)
         await pilot.press("t")
         await idle(pilot)
         assert steps == [(0, 2, "training the head"), (2, 2, "proposing")]
-        notice = app.notices[-1]
+        notice = [n for n in app.notices if n.title == "retrained"][-1]
         assert notice.title == "retrained"
         assert "model head-7 trained on 5 tiles" in notice.message
         assert "soil 0.900 · crop 0.812 · weed 0.433 · symptom -" in notice.message

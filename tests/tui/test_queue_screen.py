@@ -206,3 +206,61 @@ async def test_preview_never_shows_another_annotators_mask_on_an_overlap_tile(ov
         caption = str(app.screen.query_one("#preview-caption").render())
         assert f"tile {tile.id}" in caption
         assert "bea" not in caption and "proposal of fake" in caption
+
+
+async def test_retrain_key_renews_the_proposals_in_a_worker_and_the_preview_follows(
+    project, monkeypatch
+):
+    # training and the real renewal are tested in tests/workflow; here the queue's part:
+    # both run in one lowered-priority worker thread, then the rows and preview follow
+    import os
+    import threading
+    from types import SimpleNamespace
+
+    import labeler.workflow as workflow
+
+    fake_proposals(project)
+    first = project.store.tiles()[0]
+    ran = {}
+
+    def fake_retrain(project_, *, progress):
+        mv = project_.store.add_model_version(
+            kind="head", name="head-1", n_train_tiles=3, val_iou={"soil": 0.9}, miou=0.9
+        )
+        return SimpleNamespace(model_version=mv)
+
+    def fake_renew(project_, *, progress):
+        tid = threading.get_native_id()
+        ran["thread"] = threading.current_thread() is not threading.main_thread()
+        main = threading.main_thread().native_id  # on Linux each thread has its own nice
+        ran["nice"] = os.getpriority(os.PRIO_PROCESS, tid) - os.getpriority(os.PRIO_PROCESS, main)
+        mv = project_.store.latest_model_version(kind="head")
+        tiles = project_.store.tiles()
+        items = [NewProposal(t.id, np.full(t.shape, 2, np.uint8)) for t in tiles]
+        written = project_.store.add_proposals(mv.id, items, only_open=True)
+        progress(len(tiles), len(tiles), "east-block: proposed")
+        return SimpleNamespace(
+            proposals=SimpleNamespace(proposed=len(written), left_alone=len(items) - len(written)),
+            picked=None,
+            note="",
+        )
+
+    monkeypatch.setattr(workflow, "retrain", fake_retrain)
+    monkeypatch.setattr(workflow, "renew_proposals", fake_renew)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        screen = app.screen
+        assert screen.selected_tile() == first.id or screen.select_tile(first.id)
+        await idle(pilot)
+        preview = screen.query_one(TilePreview)
+        before = preview.render().spans  # the colours; the text is half blocks
+        await pilot.press("t")
+        await pilot.app.workers.wait_for_complete()
+        await idle(pilot)
+        assert ran["thread"] and ran["nice"] > 0  # a worker thread at a lower priority
+        assert app.notices[-1].message == "proposals renewed on 6 tiles"
+        assert screen.long_work is None
+        caption = str(screen.query_one("#preview-caption").render())
+        assert "proposal of head-1" in caption
+        assert preview.render().spans != before  # the new mask is drawn over the tile

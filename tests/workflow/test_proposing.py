@@ -50,8 +50,8 @@ def test_cold_start_then_head(one_plot, capsys):
     out = capsys.readouterr().out
     assert "trained head-1 on 3 full masks and 1 weak labels" in out and "validation IoU" in out
     mv = store.latest_model_version(kind="head")
-    # model.augment "auto" with 3 training tiles: the tiles go through the encoder
-    assert mv.details["mode"] == "images"
+    # model.augment "auto": the cached features of the turned tiles
+    assert mv.details["mode"] == "turns"
     assert (project.root / mv.checkpoint).exists() and set(mv.val_iou) == {
         "soil",
         "crop",
