@@ -113,6 +113,15 @@ def background_work(*, nice: int = BACKGROUND_NICE) -> Iterator[None]:
     unprivileged thread cannot raise it again: call this in a worker thread of its own),
     and torch uses at most the free cores less one while the context lasts
     (:func:`labeler.model.runtime.thread_cap`).
+
+    Parameters
+    ----------
+    nice : int
+        How much to lower the calling thread's priority (0 leaves it as it is).
+
+    Yields
+    ------
+    None
     """
     from labeler.model.runtime import thread_cap
 

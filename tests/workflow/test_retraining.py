@@ -172,5 +172,5 @@ def test_finetune_stages_setting_is_checked(tmp_path):
     root = tmp_path / "p"
     init_project(root).close()
     (root / "labeler.toml").write_text("[model]\nfinetune_stages = 3\n")
-    with pytest.raises(Exception, match=r"model.finetune_stages: expected one of 0, 2, 4 .*got 3"):
+    with pytest.raises(Exception, match=r"model.finetune_stages: expected one of 0, 2, 4, got 3"):
         open_project(root)
