@@ -16,6 +16,7 @@ from labeler.errors import LabelerError
 __all__ = [
     "cmd_init",
     "cmd_add",
+    "cmd_adapt",
     "cmd_status",
     "cmd_demo",
     "cmd_pick",
@@ -99,12 +100,18 @@ def cmd_add(args) -> int:
     from labeler.workflow import add_images
 
     with open_project(args.dir) as project, _Bar("adding") as bar:
-        results = add_images(project, args.images, copy=not args.in_place, progress=bar)
+        results = add_images(
+            project, args.images, copy=not args.in_place, captured=args.date, progress=bar
+        )
     for r in results:
+        taken = ""
+        if r.captured is not None:
+            how = "as given" if r.date_source == "given" else f"from its {r.date_source} tag"
+            taken = f", taken {r.captured.isoformat()} ({how})"
         if r.status == "added":
-            print(f"added {r.name}: {r.tiles} tiles")
+            print(f"added {r.name}: {r.tiles} tiles{taken}")
         else:
-            print(r.message)
+            print(r.message + taken)
     return 0
 
 
@@ -115,6 +122,10 @@ def format_status(st) -> str:
     if st.latest_model:
         miou = "" if st.latest_miou is None else f", validation mIoU {st.latest_miou:.3f}"
         out.append(f"model versions: {st.model_versions} (newest {st.latest_model}{miou})")
+    head = st.proposing_head or "cold start (no trained head yet)"
+    out.append(f"propose uses: {head} on encoder {st.proposing_encoder}")
+    if st.newest_encoder != st.proposing_encoder:
+        out.append(f"newest encoder: {st.newest_encoder} (used by the next retrain)")
     out.append("")
     out.append("tiles per state")
     out.append(_table(["state", "tiles"], [(s, st.by_state.get(s, 0)) for s in STATES]))
@@ -378,4 +389,42 @@ def cmd_retrain(args) -> int:
     tuned = f"; encoder stages tuned: {result.tuned_stages}" if result.tuned_stages else ""
     print(f"took {result.seconds:.1f} s ({result.steps} optimiser steps{tuned})")
     print("run 'labeler propose' to refresh the proposals with it")
+    return 0
+
+
+def cmd_adapt(args) -> int:
+    from labeler.project import open_project
+    from labeler.workflow import adapt
+
+    with open_project(args.dir) as project, _Bar("adapting") as bar:
+        try:
+            result = adapt(
+                project,
+                minutes=args.minutes,
+                method=args.method,
+                start=args.start,
+                revisits=not args.no_revisits,
+                max_tiles=args.max_tiles,
+                seed=args.seed,
+                progress=bar,
+            )
+        except KeyboardInterrupt:
+            bar.close()
+            print(
+                "interrupted: the last checkpoint is kept under models/adapting/; run the same "
+                "command again to resume",
+                file=sys.stderr,
+            )
+            return 130
+    enc = result.encoder
+    resumed = f", resumed from step {result.resumed_from}" if result.resumed_from else ""
+    print(
+        f"adapted {enc.name} ({enc.encoder_version}) from {result.base_version} with the "
+        f"{result.method} method on {result.tiles} tiles and {result.revisit_pairs} revisit pairs"
+    )
+    print(
+        f"{result.steps} steps in {result.seconds / 60:.1f} min{resumed}; loss "
+        f"{result.first_loss:.3f} -> {result.last_loss:.3f} (stopped by the {result.stopped} budget)"
+    )
+    print("run 'labeler retrain' to train a head on it, then 'labeler propose'")
     return 0

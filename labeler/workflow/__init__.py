@@ -14,6 +14,8 @@ stage:
 ``editing``               the store behind the mask editor
 ``agreeing``              agreement figures, report and contested tiles
 ``retraining``            a new head on every saved mask
+``adapting``              the encoder adapted to the project's tiles without labels
+``encoders``              encoder versions: ImageNet-1k and the adapted ones
 ``exporting``             GeoJSON, PNG masks, manifest; importing masks
 ``views``                 read-only views for the edges (preview, places, lists)
 ``features``              encoder features and their cache (proposing, retraining)
@@ -21,7 +23,8 @@ stage:
 ========================  ===========================================================
 """
 
-from labeler.workflow.adding import AddResult, add_images
+from labeler.workflow.adapting import AdaptOutcome, adapt
+from labeler.workflow.adding import AddResult, add_images, capture_dates, set_capture_date
 from labeler.workflow.agreeing import (
     agreement_summary,
     compared_images,
@@ -40,6 +43,7 @@ from labeler.workflow.annotating import (
     weak_label_tile_state,
 )
 from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
+from labeler.workflow.encoders import encoder_versions
 from labeler.workflow.exporting import ExportResult, ImportResult, export_project, import_masks
 from labeler.workflow.picking import PickedTile, PickResult, pick_tiles
 from labeler.workflow.progress import Progress, no_progress
@@ -62,6 +66,11 @@ __all__ = [
     "no_progress",
     "AddResult",
     "add_images",
+    "capture_dates",
+    "set_capture_date",
+    "AdaptOutcome",
+    "adapt",
+    "encoder_versions",
     "ProjectStatus",
     "project_status",
     "QueueRow",
