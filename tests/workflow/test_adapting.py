@@ -12,6 +12,7 @@ from datetime import date
 import numpy as np
 import pytest
 import torch
+from affine import Affine
 
 from labeler.demo.fields import make_plot
 from labeler.errors import LabelerError
@@ -43,7 +44,8 @@ def _tiny_project(tmp_path, *, second_date=False):
     add_images(project, paths, captured=date(2027, 5, 14))
     if second_date:
         plot = make_plot("long-acre", seed=11, height=128, width=192)
-        shifted = plot.transform * plot.transform.translation(5, 3)  # 5 columns, 3 rows
+        t = plot.transform  # the frame moved by 3 rows and 5 columns
+        shifted = Affine(t.a, t.b, t.c + 5 * t.a, t.d, t.e, t.f + 3 * t.e)
         later = np.ascontiguousarray(np.roll(plot.image, (-3, -5), axis=(0, 1)))
         path = write_geotiff(
             tmp_path / "long-acre-later.tif", later, transform=shifted, crs=plot.crs
