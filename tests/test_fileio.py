@@ -92,3 +92,15 @@ def test_remove_marked_folder_only_with_its_marker(tmp_path):
     (work / ".made-by-us").write_text("")
     remove_marked_folder(work, marker=".made-by-us")
     assert not work.exists()
+
+
+def test_remove_file_deletes_one_file_and_refuses_a_folder(tmp_path):
+    from labeler.fileio import remove_file
+
+    f = tmp_path / "run.ckpt"
+    f.write_bytes(b"x")
+    assert remove_file(f) is True and not f.exists()
+    assert remove_file(f) is False
+    with pytest.raises(LabelerError, match="expected a file to delete, found a folder"):
+        remove_file(tmp_path)
+    assert tmp_path.is_dir()

@@ -23,6 +23,7 @@ import math
 import time
 from dataclasses import dataclass, field
 from datetime import date
+from pathlib import Path
 
 import numpy as np
 from affine import Affine
@@ -86,8 +87,23 @@ class AdaptOutcome:
     losses: list[float] = field(default_factory=list)
 
 
-def adapt_checkpoint_path(project: Project, *, method: str, base_version: str):
-    """Where the checkpoint of a run of ``method`` from ``base_version`` is kept."""
+def adapt_checkpoint_path(project: Project, *, method: str, base_version: str) -> Path:
+    """Where the checkpoint of a run of ``method`` from ``base_version`` is kept.
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    method : str
+        The run's method.
+    base_version : str
+        The encoder version the run started from.
+
+    Returns
+    -------
+    Path
+        ``<project>/models/adapting/<method>-<base_version>.ckpt``.
+    """
     return project.models_dir / "adapting" / f"{method}-{base_version}.ckpt"
 
 

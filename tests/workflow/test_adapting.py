@@ -18,12 +18,24 @@ from labeler.demo.fields import make_plot
 from labeler.errors import LabelerError
 from labeler.imagery.write import write_geotiff
 from labeler.project import init_project, open_project
-from labeler.workflow import adapt, add_images, capture_dates, encoder_versions
+from labeler.workflow import (
+    adapt,
+    add_images,
+    capture_dates,
+    encoder_versions,
+    project_status,
+    propose,
+    retrain,
+    save_tile_mask,
+)
 from labeler.workflow.adapting import adapt_checkpoint_path, revisit_crops
 from labeler.workflow.encoders import load_encoder_version
 from labeler.workflow.features import encoder_and_cache
 
-SMALL = "[tiles]\nsize = 64\noverlap = 0\n[model]\nthreads = 1\n"
+SMALL = (
+    "[tiles]\nsize = 64\noverlap = 0\n"
+    "[model]\nthreads = 1\nepochs = 2\nmc_samples = 2\nmin_labelled_tiles = 3\n"
+)
 
 
 def _tiny_project(tmp_path, *, second_date=False):
@@ -164,3 +176,27 @@ def test_capture_dates_and_revisit_pairs(tmp_path):
         assert date(2027, 6, 1) in capture_dates(project).values()
     finally:
         project.close()
+
+
+def test_retrain_records_the_encoder_and_propose_reads_the_heads_encoder(tiny):
+    first = adapt(tiny, minutes=1.0, max_steps=2, batch_size=2, view_size=64, method="image")
+    truth = make_plot("long-acre", seed=11, height=128, width=192).truth
+    for t in tiny.store.tiles()[:3]:
+        save_tile_mask(tiny, t.id, "survey", truth[t.window.slices], parent_version=None)
+    head = retrain(tiny).model_version
+    assert head.encoder_version == first.encoder.encoder_version  # the newest encoder
+    assert head.details["base_encoder_version"] == first.encoder.encoder_version
+    # a newer encoder does not change what the head reads
+    second = adapt(tiny, minutes=1.0, max_steps=2, batch_size=2, view_size=64, method="image")
+    assert second.encoder.name == "encoder-2" and second.base_version == first.encoder.encoder_version
+    status = project_status(tiny)
+    assert (status.proposing_head, status.proposing_encoder, status.newest_encoder) == (
+        head.name,
+        "encoder-1",
+        "encoder-2",
+    )
+    result = propose(tiny)
+    assert result.mode == "head" and result.model_version.id == head.id and result.proposed == 12
+    versions = {p.name for p in (tiny.cache_dir / "features").iterdir()}
+    assert first.encoder.encoder_version in versions
+    assert second.encoder.encoder_version not in versions
