@@ -196,6 +196,7 @@ def _random_encoder(seed: int):
     from labeler.model.encoder import Lite0Encoder
 
     torch.manual_seed(seed)
+    torch.set_flush_denormal(True)  # random weights shrink activations into slow denormals
     enc = Lite0Encoder()
     enc.version = f"lite0-random-s{seed}"
     return enc
