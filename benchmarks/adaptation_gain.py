@@ -234,13 +234,17 @@ def run_dataset(name: str, args, work: Path) -> dict:
     methods = [m for m in ("dense", "image") if any(s.startswith(f"adapted_{m}") for s in wanted)]
     if "adapted_finetuned" in wanted and "dense" not in methods:
         methods.append("dense")
-    encoders, took = _adapt_runs(
-        name, files, work=work, methods=methods, minutes=args.minutes,
-        revisit_files=later, overlap=overlap, seed=0,
-    )
-    best_adapted = "adapted_dense_revisits" if "adapted_dense_revisits" in encoders else "adapted_dense"
     values: dict[str, dict[str, list[float]]] = {}
+    encoders: dict = {}
+    took: dict = {}
+    best_adapted = "adapted_dense_revisits" if later else "adapted_dense"
     for start in wanted:
+        if start.startswith("adapted") and not took and methods:
+            # the starts without adaptation come first in STARTS: a fault shows early
+            encoders, took = _adapt_runs(
+                name, files, work=work, methods=methods, minutes=args.minutes,
+                revisit_files=later, overlap=overlap, seed=0,
+            )
         if start == "random":
             enc, finetune = _random_encoder(0), False
         elif start.startswith("imagenet"):
