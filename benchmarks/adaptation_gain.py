@@ -120,15 +120,17 @@ def _later_visits(plots: list[str], folder: Path) -> list[Path]:
     return out
 
 
-def _adapt_runs(dataset, files, *, work: Path, methods, minutes, revisit_files, overlap, seed):
-    """Run ``labeler adapt`` per method (and with revisits); weights and minutes per run."""
+def _adapt_runs(dataset, files, *, work: Path, names, minutes, revisit_files, overlap, seed):
+    """Run ``labeler adapt`` for each adapted start named; weights and minutes per run."""
     from labeler.workflow import adapt
     from labeler.workflow.encoders import load_encoder_version
 
     runs, took = {}, {}
-    variants = [(m, False) for m in methods] + [(m, True) for m in methods if revisit_files]
+    variants = [(m, r) for r in (False, True) for m in ("dense", "image")]
     for method, with_later in variants:
         name = f"adapted_{method}" + ("_revisits" if with_later else "")
+        if name not in names or (with_later and not revisit_files):
+            continue
         root = work / f"{dataset}-{name}"
         project = _adapt_project(
             root, files, later=revisit_files if with_later else [], overlap=overlap
@@ -231,18 +233,18 @@ def run_dataset(name: str, args, work: Path) -> dict:
         files = [PEANUT / "images" / f"{p}.jpg" for p in info["pool_images"]]
         later, overlap = [], 0
     wanted = [s for s in STARTS if s in args.starts]
-    methods = [m for m in ("dense", "image") if any(s.startswith(f"adapted_{m}") for s in wanted)]
-    if "adapted_finetuned" in wanted and "dense" not in methods:
-        methods.append("dense")
+    best_adapted = "adapted_dense_revisits" if later else "adapted_dense"
+    runs = {s for s in wanted if s.startswith("adapted_") and s != "adapted_finetuned"}
+    if "adapted_finetuned" in wanted:
+        runs.add(best_adapted)
     values: dict[str, dict[str, list[float]]] = {}
     encoders: dict = {}
     took: dict = {}
-    best_adapted = "adapted_dense_revisits" if later else "adapted_dense"
     for start in wanted:
-        if start.startswith("adapted") and not took and methods:
+        if start.startswith("adapted") and not took and runs:
             # the starts without adaptation come first in STARTS: a fault shows early
             encoders, took = _adapt_runs(
-                name, files, work=work, methods=methods, minutes=args.minutes,
+                name, files, work=work, names=runs, minutes=args.minutes,
                 revisit_files=later, overlap=overlap, seed=0,
             )
         if start == "random":

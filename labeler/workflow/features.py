@@ -55,7 +55,7 @@ def tile_key(image: ImageRecord, tile: TileRecord) -> str:
 
 
 def encoder_and_cache(
-    project: Project, *, encoder: str | None = None
+    project: Project, *, encoder: str | None = None, unknown_is_default: bool = False
 ) -> tuple[Lite0Encoder, FeatureCache]:
     """The encoder of a version and the project's feature cache for it.
 
@@ -69,6 +69,10 @@ def encoder_and_cache(
         Which encoder version (:func:`labeler.workflow.encoders.find_encoder_version`:
         a name such as ``"encoder-2"``, a version string, or ``"imagenet"``); default the
         newest adapted version (``labeler adapt``), else the installed ImageNet encoder.
+    unknown_is_default : bool
+        Use the default when ``encoder`` names no version of the project (a head of
+        an unknown encoder: :func:`load_head` then names the mismatch) instead of
+        raising.
 
     Returns
     -------
@@ -84,9 +88,14 @@ def encoder_and_cache(
     """
     from labeler.model.cache import FeatureCache
     from labeler.model.runtime import configure_threads
-    from labeler.workflow.encoders import load_encoder_version
+    from labeler.workflow.encoders import find_encoder_version, load_encoder_version
 
     configure_threads(project.settings.model.threads)
+    if encoder is not None and unknown_is_default:
+        try:
+            find_encoder_version(project, encoder)
+        except LabelerError:
+            encoder = None
     model = load_encoder_version(project, encoder)
     cache = FeatureCache(project.cache_dir / "features", encoder_version=model.version)
     return model, cache

@@ -123,7 +123,9 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
     head_mv = store.latest_model_version(kind="head")
     # a head reads the encoder version it was trained on; the cold start the newest one
     encoder, cache = encoder_and_cache(
-        project, encoder=None if head_mv is None else head_encoder(head_mv)
+        project,
+        encoder=None if head_mv is None else head_encoder(head_mv),
+        unknown_is_default=True,  # load_head then names the head's own problem
     )
     head = tail = None
     if head_mv is not None:

@@ -16,6 +16,7 @@ from affine import Affine
 
 from labeler.demo.fields import make_plot
 from labeler.errors import LabelerError
+from labeler.model.checkpoint import load_checkpoint
 from labeler.imagery.write import write_geotiff
 from labeler.project import init_project, open_project
 from labeler.workflow import (
@@ -121,6 +122,8 @@ def test_newest_version_is_the_default_and_the_cache_is_kept_per_version(tiny):
     assert again.version == first.version
     with pytest.raises(LabelerError, match=r"encoder 'encoder-9': no such encoder version"):
         encoder_and_cache(tiny, encoder="encoder-9")
+    fallback, _ = encoder_and_cache(tiny, encoder="encoder-9", unknown_is_default=True)
+    assert fallback.version == newest.version
 
 
 def test_interrupt_then_resume_continues_from_the_checkpoint(tiny):
@@ -186,6 +189,8 @@ def test_retrain_records_the_encoder_and_propose_reads_the_heads_encoder(tiny):
     head = retrain(tiny).model_version
     assert head.encoder_version == first.encoder.encoder_version  # the newest encoder
     assert head.details["base_encoder_version"] == first.encoder.encoder_version
+    _, meta = load_checkpoint(tiny.root / head.checkpoint)
+    assert meta.encoder_version == first.encoder.encoder_version  # in the checkpoint too
     # a newer encoder does not change what the head reads
     second = adapt(tiny, minutes=1.0, max_steps=2, batch_size=2, view_size=64, method="image")
     assert second.encoder.name == "encoder-2" and second.base_version == first.encoder.encoder_version
