@@ -16,8 +16,8 @@ from affine import Affine
 
 from labeler.demo.fields import make_plot
 from labeler.errors import LabelerError
-from labeler.model.checkpoint import load_checkpoint
 from labeler.imagery.write import write_geotiff
+from labeler.model.checkpoint import load_checkpoint
 from labeler.project import init_project, open_project
 from labeler.workflow import (
     adapt,
