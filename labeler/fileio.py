@@ -34,6 +34,7 @@ __all__ = [
     "atomic_write_text",
     "atomic_copy_file",
     "atomic_writer",
+    "remove_file",
     "remove_marked_folder",
     "sha256_file",
     "staged_folder",
@@ -180,6 +181,34 @@ def atomic_copy_file(
         Path(tmp).unlink(missing_ok=True)
         raise
     return target
+
+
+def remove_file(path: str | os.PathLike[str]) -> bool:
+    """Delete one file the program wrote (a finished run's checkpoint); absent is fine.
+
+    Parameters
+    ----------
+    path : path-like
+        The file.
+
+    Returns
+    -------
+    bool
+        True if a file was deleted, False if there was none.
+
+    Raises
+    ------
+    LabelerError
+        If ``path`` is a folder (nothing is deleted).
+    """
+    p = Path(path)
+    if p.is_dir():
+        raise LabelerError(f"{p}: expected a file to delete, found a folder; nothing deleted")
+    try:
+        p.unlink()
+    except FileNotFoundError:
+        return False
+    return True
 
 
 def remove_marked_folder(folder: str | os.PathLike[str], *, marker: str) -> None:

@@ -79,3 +79,38 @@ def test_errors_exit_1(tmp_path, capsys):
     assert "already holds a labeler project" in capsys.readouterr().err
     assert main(["add", str(tmp_path / "p"), str(tmp_path / "missing.tif")]) == 1
     assert "missing.tif: no such file" in capsys.readouterr().err
+
+
+def test_add_with_a_date_or_the_tag_date(tmp_path, images, capsys):
+    proj = tmp_path / "proj"
+    main(["init", str(proj)])
+    # EXIF DateTimeOriginal (tag 36867 in the EXIF sub-directory; Exif 2.32, CIPA DC-008-2019)
+    exif = Image.Exif()
+    exif.get_ifd(0x8769)[36867] = "2027:05:14 10:21:00"
+    Image.open(images / "leaf.png").save(tmp_path / "dated.jpg", exif=exif)
+    assert main(["add", str(proj), str(tmp_path / "dated.jpg")]) == 0
+    assert "taken 2027-05-14 (from its DateTimeOriginal tag)" in capsys.readouterr().out
+    assert main(["add", str(proj), str(images / "north-strip.tif"), "--date", "2027-06-02"]) == 0
+    assert "added north-strip: 6 tiles, taken 2027-06-02 (as given)" in capsys.readouterr().out
+    with pytest.raises(SystemExit) as info:
+        main(["add", str(proj), str(images / "leaf.png"), "--date", "14/05/2027"])
+    assert info.value.code == 2
+    assert "expected a date like 2027-05-14 (YYYY-MM-DD), got '14/05/2027'" in capsys.readouterr().err
+
+
+def test_adapt_then_status_names_the_encoder(tmp_path, images, capsys):
+    proj = tmp_path / "proj"
+    main(["init", str(proj)])
+    (proj / "labeler.toml").write_text("[tiles]\nsize = 64\noverlap = 0\n[model]\nthreads = 1\n")
+    main(["add", str(proj), str(images / "leaf.png")])
+    capsys.readouterr()
+    assert main(["adapt", str(proj), "--minutes", "0.25", "--method", "image"]) == 0
+    out = capsys.readouterr().out
+    assert "adapted encoder-1 (lite0-" in out and "with the image method on 16 tiles" in out
+    assert main(["status", str(proj)]) == 0
+    assert "propose uses: cold start (no trained head yet) on encoder encoder-1" in (
+        capsys.readouterr().out
+    )
+    with pytest.raises(SystemExit) as info:
+        main(["adapt", str(proj), "--minutes", "0"])
+    assert info.value.code == 2

@@ -181,3 +181,15 @@ def test_a_claim_of_a_killed_process_is_not_live(tmp_path):
     assert out.strip() == "taken" and (tmp_path / ".adding-x").exists()
     assert not claim_is_live(tmp_path / ".adding-x")
     assert not claim_is_live(tmp_path / ".adding-nothing")  # no marker: nobody holds it
+
+
+def test_remove_file_deletes_one_file_and_refuses_a_folder(tmp_path):
+    from labeler.fileio import remove_file
+
+    f = tmp_path / "run.ckpt"
+    f.write_bytes(b"x")
+    assert remove_file(f) is True and not f.exists()
+    assert remove_file(f) is False
+    with pytest.raises(LabelerError, match="expected a file to delete, found a folder"):
+        remove_file(tmp_path)
+    assert tmp_path.is_dir()

@@ -6,6 +6,7 @@ import argparse
 
 from labeler import __version__
 from labeler.cli.commands import (
+    cmd_adapt,
     cmd_add,
     cmd_agreement,
     cmd_demo,
@@ -67,6 +68,14 @@ def build_parser() -> argparse.ArgumentParser:
         action="store_true",
         help="refer to the files where they are instead of copying",
     )
+    p.add_argument(
+        "--date",
+        type=_iso_date,
+        default=None,
+        metavar="YYYY-MM-DD",
+        help="the day the images were taken (default: the date in their TIFF/EXIF tags, if "
+        "any); images of the same ground on other dates train 'labeler adapt'",
+    )
     p.set_defaults(func=cmd_add)
 
     p = sub.add_parser(
@@ -121,6 +130,54 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
     p.set_defaults(func=cmd_retrain)
+
+    p = sub.add_parser(
+        "adapt",
+        help="adapt the encoder to the project's own tiles, without labels",
+        description="Train the encoder on the project's tiles (labelled or not) without labels, "
+        "within a time budget: two views of each tile (flips, quarter turns, scale, sun and "
+        "shade), and the same ground on two dates where the project has revisits, are pulled "
+        "together. Keeps a checkpoint every few minutes; Ctrl-C keeps the last one and the same "
+        "command resumes. The result is a new encoder version; the next 'labeler retrain' "
+        "uses it.",
+    )
+    p.add_argument("dir", metavar="DIR", help="project folder")
+    p.add_argument(
+        "--minutes",
+        type=_positive_float,
+        default=10.0,
+        metavar="M",
+        help="time budget of the whole run in minutes (default: %(default)s)",
+    )
+    p.add_argument(
+        "--method",
+        choices=("dense", "image"),
+        default="dense",
+        help="dense: features of the same ground agree cell by cell (VICRegL-style, suits "
+        "masks; default); image: whole-view contrast (SimCLR's NT-Xent)",
+    )
+    p.add_argument(
+        "--from",
+        dest="start",
+        default=None,
+        metavar="VERSION",
+        help="encoder version to start from: 'imagenet', a name such as encoder-2 "
+        "(default: the newest)",
+    )
+    p.add_argument(
+        "--no-revisits",
+        action="store_true",
+        help="ignore images of the same ground on other dates",
+    )
+    p.add_argument(
+        "--max-tiles",
+        type=_positive_int,
+        default=512,
+        metavar="N",
+        help="read at most N tiles, a seeded sample (default: %(default)s)",
+    )
+    p.add_argument("--seed", type=int, default=0, help="seed of the sample and the run")
+    p.set_defaults(func=cmd_adapt)
 
     p = sub.add_parser(
         "pick",
@@ -270,6 +327,27 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.set_defaults(func=cmd_agreement)
     return parser
+
+
+def _positive_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not value > 0:
+        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
+    return value
+
+
+def _iso_date(text: str):
+    from datetime import date
+
+    try:
+        return date.fromisoformat(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"expected a date like 2027-05-14 (YYYY-MM-DD), got {text!r}"
+        ) from None
 
 
 def _positive_int(text: str) -> int:

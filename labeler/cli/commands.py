@@ -16,6 +16,7 @@ from labeler.errors import LabelerError
 __all__ = [
     "cmd_init",
     "cmd_add",
+    "cmd_adapt",
     "cmd_status",
     "cmd_demo",
     "cmd_pick",
@@ -107,14 +108,19 @@ def cmd_add(args) -> int:
                 copy=not args.in_place,
                 keep_going=True,
                 on_result=done.append,
+                captured=args.date,
                 progress=bar,
             )
     finally:
         for r in done:
+            taken = ""
+            if r.captured is not None:
+                how = "as given" if r.date_source == "given" else f"from its {r.date_source} tag"
+                taken = f", taken {r.captured.isoformat()} ({how})"
             if r.status == "added":
-                print(f"added {r.name}: {r.tiles} tiles")
+                print(f"added {r.name}: {r.tiles} tiles{taken}")
             elif r.status == "skipped":
-                print(r.message)
+                print(r.message + taken)
             else:
                 print(f"labeler: error: {r.message}", file=sys.stderr)
     failed = [r for r in done if r.status == "failed"]
@@ -134,6 +140,10 @@ def format_status(st) -> str:
     if st.latest_model:
         miou = "" if st.latest_miou is None else f", validation mIoU {st.latest_miou:.3f}"
         out.append(f"model versions: {st.model_versions} (newest {st.latest_model}{miou})")
+    head = st.proposing_head or "cold start (no trained head yet)"
+    out.append(f"propose uses: {head} on encoder {st.proposing_encoder}")
+    if st.newest_encoder != st.proposing_encoder:
+        out.append(f"newest encoder: {st.newest_encoder} (used by the next retrain)")
     out.append("")
     out.append("tiles per state")
     out.append(_table(["state", "tiles"], [(s, st.by_state.get(s, 0)) for s in STATES]))
@@ -411,3 +421,41 @@ def _renewal_line(renewed, name: str) -> str:
     elif renewed.note:
         line += f"; the queue was not re-picked ({renewed.note})"
     return line
+
+
+def cmd_adapt(args) -> int:
+    from labeler.project import open_project
+    from labeler.workflow import adapt
+
+    with open_project(args.dir) as project, _Bar("adapting") as bar:
+        try:
+            result = adapt(
+                project,
+                minutes=args.minutes,
+                method=args.method,
+                start=args.start,
+                revisits=not args.no_revisits,
+                max_tiles=args.max_tiles,
+                seed=args.seed,
+                progress=bar,
+            )
+        except KeyboardInterrupt:
+            bar.close()
+            print(
+                "interrupted: the last checkpoint is kept under models/adapting/; run the same "
+                "command again to resume",
+                file=sys.stderr,
+            )
+            return 130
+    enc = result.encoder
+    resumed = f", resumed from step {result.resumed_from}" if result.resumed_from else ""
+    print(
+        f"adapted {enc.name} ({enc.encoder_version}) from {result.base_version} with the "
+        f"{result.method} method on {result.tiles} tiles and {result.revisit_pairs} revisit pairs"
+    )
+    print(
+        f"{result.steps} steps in {result.seconds / 60:.1f} min{resumed}; loss "
+        f"{result.first_loss:.3f} -> {result.last_loss:.3f} (stopped by the {result.stopped} budget)"
+    )
+    print("run 'labeler retrain' to train a head on it, then 'labeler propose'")
+    return 0

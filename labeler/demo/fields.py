@@ -39,6 +39,7 @@ import math
 import sys
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from datetime import date, datetime, timedelta
 from pathlib import Path
 
 import cv2
@@ -219,6 +220,8 @@ def make_plot(
     gsd_m: float = GSD_M,
     weed_density: float = 1.0,
     symptom_share: float = 0.25,
+    growth: float = 1.0,
+    light_seed: int | None = None,
 ) -> Plot:
     """Generate one invented sample frame of a beet field and its exact truth.
 
@@ -242,6 +245,13 @@ def make_plot(
         Multiplies the number of weeds (1.0: about 18 weeds per square metre).
     symptom_share : float
         Share of beet plants that carry leaf-spot lesions, 0..1.
+    growth : float
+        Multiplies the size of every beet plant (1.0 as first seen; a later visit
+        shows the same plants grown, e.g. 1.15). All random draws stay the same.
+    light_seed : int, optional
+        Seeds the light alone (sun direction and shadows, the hedge's shadow, uneven
+        light, white balance, sensor noise): the same ground under another sky. Default:
+        drawn from ``seed`` like everything else.
 
     Returns
     -------
@@ -259,12 +269,16 @@ def make_plot(
         raise ValueError(f"weed_density: expected a factor >= 0, got {weed_density}")
     if not 0.0 <= symptom_share <= 1.0:
         raise ValueError(f"symptom_share: expected a share in 0..1, got {symptom_share}")
+    if not 0.5 <= growth <= 2.0:
+        raise ValueError(f"growth: expected a size factor in 0.5..2, got {growth}")
     shape = (int(height), int(width))
     h, w = shape
     streams = np.random.SeedSequence(int(seed)).spawn(6)
     rng_layout, rng_soil, rng_weeds, rng_spots, rng_light, rng_colour = (
         np.random.default_rng(s) for s in streams
     )
+    if light_seed is not None:
+        rng_light = np.random.default_rng(np.random.SeedSequence([int(seed), int(light_seed)]))
 
     light_angle = rng_light.uniform(0, 2 * math.pi)
     light = (math.cos(light_angle), math.sin(light_angle))  # direction shadows fall
@@ -275,7 +289,7 @@ def make_plot(
     layout = _row_layout(rng_layout, shape)
     plants: list[Plant] = []
     for centre in layout["plants"]:
-        size = rng_layout.uniform(19.0, 31.0)
+        size = rng_layout.uniform(19.0, 31.0) * growth
         plants.append(crop_plant(rng_colour, centre, size))
     crop_plants = list(plants)
 
@@ -425,6 +439,8 @@ def make_plot(
         "n_lesions": n_spots,
         "n_plants_with_lesions": spot_plants,
         "hedge_shadow": bool(hedge),
+        "growth": float(growth),
+        "light_seed": None if light_seed is None else int(light_seed),
         "invented": True,
     }
     return Plot(name, image, truth, transform, crs, metadata)
@@ -437,13 +453,19 @@ def write_scenario(
     seed: int = DEFAULT_SEED,
     size: tuple[int, int] = DEFAULT_SIZE,
     jpeg_quality: int = 95,
+    revisits: int = 0,
+    first_date: date | None = None,
+    revisit_days: int = 14,
     progress: Callable[[int, int], None] | None = None,
 ) -> list[Path]:
     """Write ``n_plots`` invented plots to ``folder``.
 
     Each plot ``<name>`` becomes ``<name>.tif`` (JPEG-compressed GeoTIFF) and
     ``<name>_truth.png`` (class mask); ``scenario.json`` lists the plots with their seeds
-    and metadata. Files are written atomically.
+    and metadata. The first ``revisits`` plots are seen again ``revisit_days`` later
+    (:func:`labeler.demo.revisit.make_revisit`) as ``<name>-later.tif``. With a ``first_date`` (or any
+    revisits) every image carries its capture date in its TIFF ``DateTime`` tag. Files
+    are written atomically.
 
     Parameters
     ----------
@@ -455,14 +477,28 @@ def write_scenario(
         Scenario seed; plot ``i`` uses ``plot_seed(seed, i)``.
     size : (int, int)
         ``(height, width)`` of each plot.
+    revisits : int
+        Plots (the first ones) seen again on a later date, 0 to ``n_plots``.
+    first_date : date, optional
+        The day of the first visit (default 14 May 2027 when there are revisits).
+    revisit_days : int
+        Days between the two visits, at least 1.
     progress : callable, optional
         Called as ``progress(done, total)`` after each plot.
 
     Returns
     -------
     paths : list of Path
-        The GeoTIFF paths in plot order (truth beside each: :func:`truth_path_for`).
+        The GeoTIFF paths in plot order, then the revisits (truth beside each:
+        :func:`truth_path_for`).
     """
+    if not 0 <= revisits <= n_plots:
+        raise ValueError(f"revisits: expected 0 to n_plots ({n_plots}) plots, got {revisits}")
+    if revisit_days < 1:
+        raise ValueError(f"revisit_days: expected at least 1 day, got {revisit_days}")
+    if first_date is None and revisits:
+        first_date = date(2027, 5, 14)
+    taken = None if first_date is None else datetime(first_date.year, first_date.month, first_date.day, 10)
     if n_plots < 1:
         raise ValueError(f"n_plots: expected at least 1 plot, got {n_plots}")
     if len(size) != 2:
@@ -471,18 +507,30 @@ def write_scenario(
     out.mkdir(parents=True, exist_ok=True)
     paths: list[Path] = []
     entries = []
-    for i in range(n_plots):
+    jobs = [(i, False) for i in range(n_plots)] + [(i, True) for i in range(revisits)]
+    for k, (i, later) in enumerate(jobs):
         name = PLOT_NAMES[i] if i < len(PLOT_NAMES) else f"plot-{i + 1:02d}"
-        plot = make_plot(name, seed=plot_seed(seed, i), height=size[0], width=size[1])
+        when = taken
+        if later:
+            from labeler.demo.revisit import make_revisit  # it builds on make_plot
+
+            plot = make_revisit(name, seed=plot_seed(seed, i), height=size[0], width=size[1])
+            when = taken + timedelta(days=revisit_days)  # type: ignore[operator]
+        else:
+            plot = make_plot(name, seed=plot_seed(seed, i), height=size[0], width=size[1])
+        stem = f"{name}-later" if later else name
         tif = write_geotiff(
-            out / f"{name}.tif", plot.image, transform=plot.transform, crs=plot.crs,
-            compress="jpeg", jpeg_quality=jpeg_quality,
+            out / f"{stem}.tif", plot.image, transform=plot.transform, crs=plot.crs,
+            compress="jpeg", jpeg_quality=jpeg_quality, taken=when,
         )
         write_png(truth_path_for(tif), plot.truth)
         paths.append(tif)
-        entries.append({"image": tif.name, "truth": truth_path_for(tif).name, **plot.metadata})
+        entry = {"image": tif.name, "truth": truth_path_for(tif).name, **plot.metadata}
+        if when is not None:
+            entry["captured"] = when.date().isoformat()
+        entries.append(entry)
         if progress is not None:
-            progress(i + 1, n_plots)
+            progress(k + 1, len(jobs))
     manifest = {
         "scenario": f"{FARM}, {CROP} sample frames (invented)",
         "seed": int(seed),
@@ -504,16 +552,20 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--plots", type=int, default=6, help="number of plots (default 6)")
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="scenario seed")
     parser.add_argument(
+        "--revisits", type=int, default=0,
+        help="plots seen again two weeks later, as <plot>-later.tif (default 0)",
+    )
+    parser.add_argument(
         "--size", type=int, nargs=2, default=list(DEFAULT_SIZE), metavar=("H", "W"),
         help="plot size in pixels (default 768 1024)",
     )
     args = parser.parse_args(argv)
     from tqdm import tqdm
 
-    with tqdm(total=args.plots, desc="plots", unit="plot") as bar:
+    with tqdm(total=args.plots + args.revisits, desc="plots", unit="plot") as bar:
         paths = write_scenario(
             args.out_dir, n_plots=args.plots, seed=args.seed, size=tuple(args.size),
-            progress=lambda done, total: bar.update(1),
+            revisits=args.revisits, progress=lambda done, total: bar.update(1),
         )
     for p in paths:
         print(p)

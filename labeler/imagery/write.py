@@ -9,6 +9,7 @@ from __future__ import annotations
 import io
 import os
 import tempfile
+from datetime import datetime
 from pathlib import Path
 
 import numpy as np
@@ -63,6 +64,7 @@ def write_geotiff(
     crs: str,
     compress: str = "deflate",
     jpeg_quality: int = 92,
+    taken: datetime | None = None,
 ) -> Path:
     """Write an RGB image (H, W, 3) uint8 as a tiled GeoTIFF, atomically.
 
@@ -78,6 +80,9 @@ def write_geotiff(
         Coordinate reference system, e.g. ``"EPSG:32631"``.
     compress : {"deflate", "jpeg", "none"}
         Compression; ``"jpeg"`` is lossy (YCbCr), small and fine for demo photos.
+    taken : datetime, optional
+        Written as the TIFF ``DateTime`` tag (306, ``"YYYY:MM:DD HH:MM:SS"``; TIFF
+        Revision 6.0), which :func:`labeler.imagery.capture_date.read_capture_time` reads.
     """
     a = np.asarray(image)
     if a.dtype != np.uint8 or a.ndim != 3 or a.shape[2] != 3:
@@ -109,6 +114,8 @@ def write_geotiff(
     try:
         with rasterio.open(tmp, "w", **profile) as dst:
             dst.write(np.moveaxis(a, 2, 0))
+            if taken is not None:
+                dst.update_tags(TIFFTAG_DATETIME=taken.strftime("%Y:%m:%d %H:%M:%S"))
         os.chmod(tmp, file_mode())
         os.replace(tmp, target)
     except BaseException:

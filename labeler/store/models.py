@@ -1,4 +1,4 @@
-"""Model versions: the record of every trained head and cold-start rule.
+"""Model versions: the record of every trained head, cold-start rule and adapted encoder.
 
 A model version is only ever added, never changed; proposals name the version that made
 them. The weights themselves live in a checkpoint file (path relative to the project)
@@ -15,8 +15,9 @@ from labeler.store.records import ModelVersionRecord
 
 __all__ = ["ModelsMixin", "MODEL_KINDS"]
 
-#: Kinds of model version: a vegetation-index rule before any labels, or a trained head.
-MODEL_KINDS = ("cold_start", "head")
+#: Kinds of model version: a vegetation-index rule before any labels, a trained head, or
+#: an encoder adapted to the project's tiles without labels (``labeler adapt``).
+MODEL_KINDS = ("cold_start", "head", "encoder")
 
 
 def _finite_or_none(value: float | None) -> float | None:
@@ -58,7 +59,7 @@ class ModelsMixin(StoreBase):
 
         Parameters
         ----------
-        kind : {"cold_start", "head"}
+        kind : {"cold_start", "head", "encoder"}
         name : str
             A name shown to people.
         encoder_version : str, optional
@@ -85,7 +86,7 @@ class ModelsMixin(StoreBase):
             If ``kind`` is not one of :data:`MODEL_KINDS`.
         """
         if kind not in MODEL_KINDS:
-            raise ValueError(f"kind: expected 'cold_start' or 'head', got {kind!r}")
+            raise ValueError(f"kind: expected one of {MODEL_KINDS}, got {kind!r}")
         clean = None if val_iou is None else {k: _finite_or_none(v) for k, v in val_iou.items()}
         with self._write() as conn:
             res = conn.execute(
@@ -126,7 +127,7 @@ class ModelsMixin(StoreBase):
 
         Parameters
         ----------
-        kind : {"cold_start", "head"}, optional
+        kind : {"cold_start", "head", "encoder"}, optional
 
         Returns
         -------

@@ -15,6 +15,8 @@ stage:
 ``agreeing``              agreement figures, report and contested tiles
 ``retraining``            a new head on every saved mask
 ``renewing``              new proposals for the open tiles after a retrain
+``adapting``              the encoder adapted to the project's tiles without labels
+``encoders``              encoder versions: ImageNet-1k and the adapted ones
 ``exporting``             GeoJSON, PNG masks, manifest
 ``importing``             masks made elsewhere, saved tile by tile like any save
 ``views``                 read-only views for the edges (preview, places, lists)
@@ -23,7 +25,8 @@ stage:
 ========================  ===========================================================
 """
 
-from labeler.workflow.adding import AddResult, add_images
+from labeler.workflow.adapting import AdaptOutcome, adapt
+from labeler.workflow.adding import AddResult, add_images, capture_dates, set_capture_date
 from labeler.workflow.agreeing import (
     agreement_summary,
     compared_images,
@@ -42,6 +45,7 @@ from labeler.workflow.annotating import (
     weak_label_tile_state,
 )
 from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
+from labeler.workflow.encoders import encoder_versions
 from labeler.workflow.exporting import ExportResult, export_project
 from labeler.workflow.importing import ImportResult, import_masks
 from labeler.workflow.picking import PickedTile, PickResult, pick_tiles
@@ -66,6 +70,11 @@ __all__ = [
     "no_progress",
     "AddResult",
     "add_images",
+    "capture_dates",
+    "set_capture_date",
+    "AdaptOutcome",
+    "adapt",
+    "encoder_versions",
     "ProjectStatus",
     "project_status",
     "QueueRow",

@@ -4,6 +4,14 @@ Each image is all or nothing: its format is checked from its bytes, every tile w
 read once (a damaged file is found now, not in the middle of labelling), the file is copied
 into ``images/`` by :func:`labeler.imagery.intake.copy_image` and the image and its tiles
 are written to the store in one transaction; a failure removes the copy again.
+
+Capture dates. Images of the same ground from different dates give ``labeler adapt``
+its revisit pairs. An image's capture date is the one given (``labeler add --date``), else
+the date its TIFF/EXIF tags give (:func:`labeler.imagery.capture_date.read_capture_time`);
+it is kept in the event log as a ``capture_date`` event (detail: image id, ISO date and
+where it came from), so the tables stay as they are; the newest such event of an image
+holds (:func:`capture_dates`). Adding an image that is already present with ``--date``
+records the new date for it.
 """
 
 from __future__ import annotations
@@ -12,10 +20,12 @@ import os
 import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from datetime import date
 from pathlib import Path
 
 from labeler.errors import InputError, LabelerError
 from labeler.fileio import sha256_file
+from labeler.imagery.capture_date import read_capture_time
 from labeler.imagery.intake import ImageCopy, copy_image, reserve_image_name
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import tile_grid
@@ -23,7 +33,10 @@ from labeler.project import Project
 from labeler.store import NewImage
 from labeler.workflow.progress import Progress, no_progress
 
-__all__ = ["AddResult", "add_images"]
+__all__ = ["CAPTURE_EVENT", "AddResult", "add_images", "capture_dates", "set_capture_date"]
+
+#: Event kind that records an image's capture date.
+CAPTURE_EVENT = "capture_date"
 
 
 def _safe_name(stem: str) -> str:
@@ -48,6 +61,10 @@ class AddResult:
         Tiles cut from it (0 when skipped).
     message : str
         Why it was skipped, or the one-line error of a failed image.
+    captured : date or None
+        The capture date recorded for it (None: neither given nor in its tags).
+    date_source : str
+        ``"given"``, the tag it came from (``"DateTimeOriginal"``, ...) or ``""``.
     """
 
     path: Path
@@ -55,6 +72,59 @@ class AddResult:
     name: str
     tiles: int = 0
     message: str = ""
+    captured: date | None = None
+    date_source: str = ""
+
+
+def set_capture_date(project: Project, image_id: int, captured: date, *, source: str) -> None:
+    """Record the capture date of an image (the newest record holds).
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    image_id : int
+        The image.
+    captured : date
+        The day it was taken.
+    source : str
+        Where the date came from (``"given"`` or a tag name).
+    """
+    project.store.log_event(
+        CAPTURE_EVENT,
+        detail={"image_id": int(image_id), "date": captured.isoformat(), "source": source},
+    )
+
+
+def capture_dates(project: Project) -> dict[int, date]:
+    """The capture date of every image that has one.
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+
+    Returns
+    -------
+    dict of int -> date
+        Image id to its newest recorded capture date.
+    """
+    out: dict[int, date] = {}
+    for e in project.store.events(kind=CAPTURE_EVENT):
+        d = e.detail or {}
+        try:
+            out[int(d["image_id"])] = date.fromisoformat(str(d["date"]))
+        except (KeyError, TypeError, ValueError):
+            continue  # a damaged record gives no date
+    return out
+
+
+def _tag_date(path: Path) -> tuple[date | None, str]:
+    try:
+        found = read_capture_time(path)
+    except InputError:  # tags unreadable by Pillow: no date from them
+        return None, ""
+    return (None, "") if found is None else (found.when.date(), found.tag)
 
 
 def add_images(
@@ -64,6 +134,7 @@ def add_images(
     copy: bool = True,
     keep_going: bool = False,
     on_result: Callable[[AddResult], None] | None = None,
+    captured: date | None = None,
     progress: Progress = no_progress,
 ) -> list[AddResult]:
     """Add images to the project, each all-or-nothing.
@@ -83,6 +154,10 @@ def add_images(
     on_result : callable, optional
         Called with each result as soon as it is known (so a caller can report what was
         added even when a later image stops the run with an error).
+    captured : date, optional
+        The capture date of every image given (``labeler add --date``); default the
+        date each image's TIFF/EXIF tags give, if any. Also recorded for an image that
+        is already present.
     progress : Progress
         Called as ``progress(done, total, label)``.
 
@@ -118,7 +193,14 @@ def add_images(
         src = Path(raw)
         try:
             result = _add_one(
-                project, src, copy=copy, known=known, n=n, total=len(paths), progress=progress
+                project,
+                src,
+                copy=copy,
+                known=known,
+                n=n,
+                total=len(paths),
+                captured=captured,
+                progress=progress,
             )
         except InputError as exc:
             if not keep_going:
@@ -137,6 +219,7 @@ def _add_one(
     known: set[str],
     n: int,
     total: int,
+    captured: date | None,
     progress: Progress,
 ) -> AddResult:
     """Add one image (all or nothing); ``known`` gets its name."""
@@ -148,11 +231,15 @@ def _add_one(
         sha = sha256_file(src)
         existing = store.image_by_sha(sha)
         if existing is not None:
+            if captured is not None:
+                set_capture_date(project, existing.id, captured, source="given")
             return AddResult(
                 src,
                 "skipped",
                 existing.name,
                 message=f"{src}: already in the project as {existing.name!r} (same content)",
+                captured=captured,
+                date_source="given" if captured is not None else "",
             )
         windows = tile_grid(
             info.height, info.width, size=settings.tiles.size, overlap=settings.tiles.overlap
@@ -171,7 +258,7 @@ def _add_one(
             stored_path = str(copied.image.relative_to(project.root))
         g = info.georef
         try:
-            store.add_image(
+            record = store.add_image(
                 NewImage(
                     name=name,
                     path=stored_path,
@@ -193,4 +280,7 @@ def _add_one(
                 copied.remove()
             raise
     known.add(name)
-    return AddResult(src, "added", name, tiles=len(windows))
+    when, source = (captured, "given") if captured is not None else _tag_date(src)
+    if when is not None:
+        set_capture_date(project, record.id, when, source=source)
+    return AddResult(src, "added", name, tiles=len(windows), captured=when, date_source=source)

@@ -1,7 +1,9 @@
 """Encoder features of tiles, shared by proposing and retraining.
 
-Both stages run the installed encoder (:mod:`labeler.model.encoder`) over tiles and keep
-the multi-scale features in the project's feature cache under ``<project>/cache/features``,
+Both stages run an encoder version (the installed ImageNet-1k encoder of
+:mod:`labeler.model.encoder`, or one adapted to the project's tiles by ``labeler adapt``,
+:mod:`labeler.workflow.encoders`; the newest by default, the head's own when proposing with
+a head: :func:`head_encoder`) over tiles and keep the multi-scale features in the project's feature cache under ``<project>/cache/features``,
 keyed by the image's content hash and the tile's window, so a tile is encoded once per
 encoder version. A head trained with fine-tuned encoder stages reads the features of its
 own encoder version: :func:`load_head` rebuilds those stages on the installed encoder
@@ -24,7 +26,14 @@ if TYPE_CHECKING:  # the model room is imported only when a function here is cal
     from labeler.model.cache import FeatureCache
     from labeler.model.encoder import Lite0Encoder
 
-__all__ = ["tile_key", "encoder_and_cache", "tile_features", "load_head", "head_features"]
+__all__ = [
+    "tile_key",
+    "encoder_and_cache",
+    "head_encoder",
+    "tile_features",
+    "load_head",
+    "head_features",
+]
 
 
 def tile_key(image: ImageRecord, tile: TileRecord) -> str:
@@ -45,8 +54,10 @@ def tile_key(image: ImageRecord, tile: TileRecord) -> str:
     return f"{image.sha256}:{tile.row}:{tile.col}:{tile.height}:{tile.width}"
 
 
-def encoder_and_cache(project: Project) -> tuple[Lite0Encoder, FeatureCache]:
-    """The installed encoder and the project's feature cache for it.
+def encoder_and_cache(
+    project: Project, *, encoder: str | None = None, unknown_is_default: bool = False
+) -> tuple[Lite0Encoder, FeatureCache]:
+    """The encoder of a version and the project's feature cache for it.
 
     Sets the number of torch threads from the ``model.threads`` setting first.
 
@@ -54,6 +65,14 @@ def encoder_and_cache(project: Project) -> tuple[Lite0Encoder, FeatureCache]:
     ----------
     project : Project
         An open project.
+    encoder : str, optional
+        Which encoder version (:func:`labeler.workflow.encoders.find_encoder_version`:
+        a name such as ``"encoder-2"``, a version string, or ``"imagenet"``); default the
+        newest adapted version (``labeler adapt``), else the installed ImageNet encoder.
+    unknown_is_default : bool
+        Use the default when ``encoder`` names no version of the project (a head of
+        an unknown encoder: :func:`load_head` then names the mismatch) instead of
+        raising.
 
     Returns
     -------
@@ -61,15 +80,43 @@ def encoder_and_cache(project: Project) -> tuple[Lite0Encoder, FeatureCache]:
         The frozen encoder.
     cache : labeler.model.cache.FeatureCache
         The cache under ``<project>/cache/features`` keyed by the encoder's version.
+
+    Raises
+    ------
+    LabelerError
+        If ``encoder`` names no version of the project or its weights cannot be read.
     """
     from labeler.model.cache import FeatureCache
-    from labeler.model.encoder import load_encoder
     from labeler.model.runtime import configure_threads
+    from labeler.workflow.encoders import find_encoder_version, load_encoder_version
 
     configure_threads(project.settings.model.threads)
-    encoder = load_encoder()
-    cache = FeatureCache(project.cache_dir / "features", encoder_version=encoder.version)
-    return encoder, cache
+    if encoder is not None and unknown_is_default:
+        try:
+            find_encoder_version(project, encoder)
+        except LabelerError:
+            encoder = None
+    model = load_encoder_version(project, encoder)
+    cache = FeatureCache(project.cache_dir / "features", encoder_version=model.version)
+    return model, cache
+
+
+def head_encoder(model: ModelVersionRecord) -> str | None:
+    """The encoder version whose features a head's tuned stages (if any) start from.
+
+    Parameters
+    ----------
+    model : ModelVersionRecord
+        A model version of kind ``"head"``.
+
+    Returns
+    -------
+    str or None
+        The base encoder version the retrain recorded (``details["base_encoder_version"]``,
+        else the row's ``encoder_version``); None when the row records none.
+    """
+    details = model.details or {}
+    return details.get("base_encoder_version") or model.encoder_version
 
 
 def tile_features(

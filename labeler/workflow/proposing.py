@@ -25,7 +25,13 @@ from labeler.settings import Settings
 from labeler.states import HELD, SAVED_STATES
 from labeler.store import NewProposal
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
-from labeler.workflow.features import encoder_and_cache, head_features, load_head, tile_features
+from labeler.workflow.features import (
+    encoder_and_cache,
+    head_encoder,
+    head_features,
+    load_head,
+    tile_features,
+)
 from labeler.workflow.progress import Progress, no_progress
 
 __all__ = ["ROW_BLOCK_PX", "ProposeResult", "propose"]
@@ -238,7 +244,12 @@ def propose(
     store = project.store
     settings = project.settings
     head_mv = store.latest_model_version(kind="head")
-    encoder, cache = encoder_and_cache(project)
+    # a head reads the encoder version it was trained on; the cold start the newest one
+    encoder, cache = encoder_and_cache(
+        project,
+        encoder=None if head_mv is None else head_encoder(head_mv),
+        unknown_is_default=True,  # load_head then names the head's own problem
+    )
     head = tail = None
     if head_mv is not None:
         head, tail = load_head(project, head_mv, encoder)  # with its tuned encoder stages

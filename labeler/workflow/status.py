@@ -1,4 +1,4 @@
-"""What a project holds (``labeler status``): tiles per state, per image and per annotator."""
+"""What a project holds (``labeler status``): tiles per state, image and annotator, models."""
 
 from __future__ import annotations
 
@@ -6,6 +6,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from labeler.project import Project
+from labeler.workflow.encoders import ENCODER_KIND, IMAGENET
+from labeler.workflow.features import head_encoder
 
 __all__ = ["ProjectStatus", "project_status"]
 
@@ -33,6 +35,13 @@ class ProjectStatus:
         Name of the newest model version.
     latest_miou : float or None
         Its validation mean IoU (None for a cold start).
+    proposing_head : str or None
+        The head ``labeler propose`` uses (the newest), None before any retrain.
+    proposing_encoder : str
+        The encoder version it reads: a row name (``"encoder-2"``) or ``"imagenet"``
+        (with the head's own version string when no row of the project holds it).
+    newest_encoder : str
+        The newest encoder version (what the next retrain uses): a name or ``"imagenet"``.
     """
 
     folder: Path
@@ -44,6 +53,9 @@ class ProjectStatus:
     model_versions: int = 0
     latest_model: str | None = None
     latest_miou: float | None = None
+    proposing_head: str | None = None
+    proposing_encoder: str = IMAGENET
+    newest_encoder: str = IMAGENET
 
 
 def project_status(project: Project) -> ProjectStatus:
@@ -68,6 +80,16 @@ def project_status(project: Project) -> ProjectStatus:
     total = store.state_counts()
     models = store.model_versions()
     latest = models[-1] if models else None
+    encoders = [m for m in models if m.kind == ENCODER_KIND]
+    heads = [m for m in models if m.kind == "head"]
+    newest_encoder = encoders[-1].name if encoders else IMAGENET
+    proposing_encoder = newest_encoder
+    if heads:
+        wanted = head_encoder(heads[-1])
+        names = {m.encoder_version: m.name for m in encoders}
+        proposing_encoder = names.get(wanted) or (
+            IMAGENET if wanted is None or "-ssl-" not in wanted else str(wanted)
+        )
     return ProjectStatus(
         folder=project.root,
         images=len(images),
@@ -78,4 +100,7 @@ def project_status(project: Project) -> ProjectStatus:
         model_versions=len(models),
         latest_model=None if latest is None else latest.name,
         latest_miou=None if latest is None else latest.miou,
+        proposing_head=heads[-1].name if heads else None,
+        proposing_encoder=proposing_encoder,
+        newest_encoder=newest_encoder,
     )

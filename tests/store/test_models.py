@@ -41,6 +41,6 @@ def test_nan_mean_iou_stored_as_null(store):
 
 
 def test_unknown_kind_refused(store):
-    with pytest.raises(ValueError, match="^kind: expected 'cold_start' or 'head', got 'net'$"):
+    with pytest.raises(ValueError, match=r"^kind: expected one of \('cold_start', 'head', 'encoder'\), got 'net'$"):
         store.add_model_version(kind="net", name="x")
     assert store.model_versions() == []
