@@ -154,10 +154,10 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
             n_tiles: int, shares=SHARES, guided_mode: str = "key", mc_samples: int = 8,
             seed: int = 0, log: Callable[[str], None] = print) -> dict:
     """The JSON line of one dataset (see the module notes)."""
+    from labeler.demo.protocol import ProtocolOptions, run_protocol
     from labeler.masks.coldstart import cold_start_proposal
     from labeler.model.ontile import TileLearner
     from labeler.model.predict import propose_tiles
-    from labeler.demo.protocol import ProtocolOptions, run_protocol
 
     rows = np.sort(np.random.default_rng(seed).choice(
         len(heldout), size=min(n_tiles, len(heldout)), replace=False)).tolist()

@@ -95,6 +95,9 @@ BINDINGS: tuple[Binding, ...] = (
     Binding("save-scribbles", "p", _k("p"), "save the scribbles alone as a weak label"),
     Binding("leave", "Esc", _ESCAPE, "close the editor; asks before dropping unsaved work"),
     Binding("refine", "r", _k("r"), "refine: scribbles + mask -> mask near the scribbles"),
+    Binding("relearn", "i", _k("i"),
+            "learn from your marks on this tile: the model re-proposes the whole tile "
+            "(your scribbles and hand edits are kept)"),
     Binding("snap", "n", _k("n"), "refine snaps to superpixels: on / off"),
     Binding("undo", "u", _k("u"), "undo the last edit"),
     Binding("redo", "a", _k("a"), "redo (again)"),

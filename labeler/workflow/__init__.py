@@ -11,7 +11,8 @@ stage:
 ``proposing``             proposals from the cold start or the newest head
 ``picking``               the queue order from the active-learning picker
 ``annotating``            saves, accepting, parking, the queue, the next tile
-``editing``               the store behind the mask editor
+``editing``               the store behind the mask editor, learning on one tile
+``effort``                actions, seconds and accepted share per model version
 ``agreeing``              agreement figures, report and contested tiles
 ``retraining``            a new head on every saved mask
 ``exporting``             GeoJSON, PNG masks, manifest; importing masks
@@ -39,6 +40,7 @@ from labeler.workflow.annotating import (
     save_tile_mask,
 )
 from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
+from labeler.workflow.effort import VersionEffort, effort_by_model
 from labeler.workflow.exporting import ExportResult, ImportResult, export_project, import_masks
 from labeler.workflow.picking import RankedTile, RankResult, rank_tiles
 from labeler.workflow.progress import Progress, no_progress
@@ -57,6 +59,8 @@ from labeler.workflow.views import (
 )
 
 __all__ = [
+    "VersionEffort",
+    "effort_by_model",
     "Progress",
     "no_progress",
     "AddResult",

@@ -16,6 +16,7 @@ from labeler.imagery.tiling import stitch
 from labeler.project import Project
 from labeler.states import CONTESTED, SETTLED
 from labeler.workflow.annotating import QueueRow, queue_rows
+from labeler.workflow.effort import effort_by_model
 from labeler.workflow.progress import Progress, no_progress
 
 __all__ = ["compared_images", "agreement_summary", "write_agreement", "contested_tiles"]
@@ -146,7 +147,8 @@ def write_agreement(
             with open_image(project.image_path(by_name[item.image])) as reader:
                 overlays[item.image] = OverlaySource(rgb=reader.read(), masks=dict(item.masks))
     files = write_agreement_report(
-        summary, Path(out_dir), schema=project.settings.classes, overlays=overlays, least=least
+        summary, Path(out_dir), schema=project.settings.classes, overlays=overlays, least=least,
+        effort=effort_by_model(project),
     )
     return summary, files
 

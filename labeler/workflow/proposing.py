@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from labeler.errors import InputError, LabelerError
+from labeler.errors import InputError
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import Window
 from labeler.masks.coldstart import cold_start_proposal, detect_image_rows
@@ -24,6 +24,7 @@ from labeler.project import Project
 from labeler.store import NewProposal
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
 from labeler.workflow.features import encoder_and_cache, tile_features
+from labeler.workflow.learning import newest_head
 from labeler.workflow.progress import Progress, no_progress
 
 __all__ = ["ROW_BLOCK_PX", "ProposeResult", "propose"]
@@ -114,25 +115,11 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
     store = project.store
     settings = project.settings
     schema = settings.classes
-    head_mv = store.latest_model_version(kind="head")
     encoder, cache = encoder_and_cache(project)
+    found = newest_head(project, encoder_version=encoder.version)
     head = None
-    if head_mv is not None:
-        from labeler.model.checkpoint import load_checkpoint
-
-        path = project.resolve(head_mv.checkpoint or "", what=f"checkpoint of model {head_mv.name}")
-        try:
-            head, meta = load_checkpoint(path)
-        except (OSError, ValueError, RuntimeError) as exc:
-            raise LabelerError(
-                f"{path}: cannot load the model {head_mv.name} ({exc}); run 'labeler retrain'"
-            ) from None
-        if meta.encoder_version != encoder.version:
-            raise LabelerError(
-                f"model {head_mv.name} was trained on encoder {meta.encoder_version}, the installed encoder "
-                f"is {encoder.version}; run 'labeler retrain'"
-            )
-        mv = head_mv
+    if found is not None:
+        head, mv = found
     else:
         mv = _cold_start_version(project)
     latest = store.latest_proposals()

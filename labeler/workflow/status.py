@@ -1,4 +1,5 @@
-"""What a project holds (``labeler status``): tiles per state, per image and per annotator."""
+"""What a project holds (``labeler status``): tiles per state, per image and per annotator,
+and the annotation effort per model version (:mod:`labeler.workflow.effort`)."""
 
 from __future__ import annotations
 
@@ -6,6 +7,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from labeler.project import Project
+from labeler.workflow.effort import VersionEffort, effort_by_model
 
 __all__ = ["ProjectStatus", "project_status"]
 
@@ -33,6 +35,9 @@ class ProjectStatus:
         Name of the newest model version.
     latest_miou : float or None
         Its validation mean IoU (None for a cold start).
+    effort : list of VersionEffort
+        Per model version, oldest first: median actions and seconds per saved tile and
+        the share accepted unchanged (:func:`labeler.workflow.effort.effort_by_model`).
     """
 
     folder: Path
@@ -44,6 +49,7 @@ class ProjectStatus:
     model_versions: int = 0
     latest_model: str | None = None
     latest_miou: float | None = None
+    effort: list[VersionEffort] = field(default_factory=list)
 
 
 def project_status(project: Project) -> ProjectStatus:
@@ -78,4 +84,5 @@ def project_status(project: Project) -> ProjectStatus:
         model_versions=len(models),
         latest_model=None if latest is None else latest.name,
         latest_miou=None if latest is None else latest.miou,
+        effort=effort_by_model(project),
     )
