@@ -7,8 +7,9 @@ proposal, then times on :class:`labeler.editor.state.EditorState`:
   1024 x 1024 view, on a 256 x 256 tile shown at zoom 4 (target <= 16 ms, median);
 * ``brush_render_tile1024_ms``: the same on a 1024 x 1024 tile at zoom 1;
 * ``brush_window_frame_ms``: a brush segment plus the whole window image (view, status
-  strip, text) as :class:`labeler.editor.window.EditorSession` draws it (no ``imshow``);
-* ``refine_ms``: one random-walker refine on a 256 tile with 5 scribbles (target <= 300 ms);
+  strip, text) as :class:`labeler.editor.session.EditorSession` draws it (no ``imshow``);
+* ``refine_ms``: one random-walker refine on a 256 tile with a weak label of 5 scribble
+  strokes (target <= 300 ms);
 * ``undo_ms``: undo of one brush stroke (target <= 5 ms), and ``undo_render_ms`` with the
   following render.
 
@@ -30,8 +31,8 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from labeler.editor.backend import MemoryBackend  # noqa: E402
+from labeler.editor.session import EditorSession  # noqa: E402
 from labeler.editor.state import EditorState  # noqa: E402
-from labeler.editor.window import EditorSession  # noqa: E402
 
 REPEATS_BRUSH = 300
 REPEATS_REFINE = 9
@@ -117,7 +118,7 @@ def time_brush_frame() -> tuple[float, float]:
 def time_refine() -> tuple[float, float]:
     image, proposal = field_tile(256)
     state = EditorState(image, proposal, radius=2, view_shape=VIEW)
-    strokes = [  # five scribbles: three on plants and weeds, two on soil
+    strokes = [  # five scribble strokes: three on plants and weeds, two on soil
         (1, [(128, 40), (128, 62)]),
         (1, [(122, 150), (134, 160)]),
         (2, [(40, 200), (46, 206)]),

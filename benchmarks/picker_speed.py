@@ -1,8 +1,8 @@
-"""Speed of the active-learning picker: rank 100 000 candidate tiles.
+"""Speed of the active-learning picker: pick from 100 000 candidate tiles.
 
 Builds a seeded synthetic pool (random embeddings of width 320, the encoder's deepest
 level; random tile scalars and class fractions; a few hundred labelled and overlapped
-tiles), then times ``select_batch`` with the default strategy ``mixed`` and with
+tiles), then times ``pick_batch`` with the default strategy ``mixed`` and with
 ``coreset`` at k = 100. Prints one JSON line of figures. The pool is synthetic: it
 measures speed only, not label efficiency.
 
@@ -20,7 +20,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from labeler.picker import CandidatePool, select_batch  # noqa: E402
+from labeler.picker import CandidatePool, pick_batch  # noqa: E402
 
 N_TILES = 100_000
 DIM = 320
@@ -69,23 +69,23 @@ def main() -> None:
         annotators=pool.annotators[:600],
         agreement=pool.agreement[:600],
     )
-    select_batch(small, strategy="mixed", k=10)
+    pick_batch(small, strategy="mixed", k=10)
     timings: dict[str, float] = {}
-    ranked: dict[str, int] = {}
+    ordered: dict[str, int] = {}
     for strategy in ("mixed", "coreset"):
         t0 = time.perf_counter()
-        selection = select_batch(pool, strategy=strategy, k=K, seed=0)
+        pick = pick_batch(pool, strategy=strategy, k=K, seed=0)
         timings[strategy] = time.perf_counter() - t0
-        ranked[strategy] = len(selection)
-        if selection.n_chosen != K:
-            raise RuntimeError(f"{strategy}: chose {selection.n_chosen} tiles, expected {K}")
+        ordered[strategy] = len(pick)
+        if pick.n_chosen != K:
+            raise RuntimeError(f"{strategy}: chose {pick.n_chosen} tiles, expected {K}")
     print(
         json.dumps(
             {
                 "n_tiles": N_TILES,
                 "dim": DIM,
                 "k": K,
-                "n_ranked": ranked["mixed"],
+                "n_ordered": ordered["mixed"],
                 "n_labelled": N_LABELLED + N_OVERLAPPED,
                 "seconds_pool": round(seconds_pool, 3),
                 "seconds_mixed": round(timings["mixed"], 3),

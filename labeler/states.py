@@ -8,8 +8,13 @@ threshold) -> ``settled`` (a reviewer decided). ``parked`` = set aside by an ann
 The allowed moves are the table ``_MOVES`` below; :func:`check_move` is the one
 life-cycle check, applied by the store to every change of a tile's state (see
 :func:`labeler.store.holds.checked_move`). A mask brought in by ``labeler import`` is
-recorded as an ``imported`` annotation and leaves its tile ``amended``; ``weak`` (a
-scribble-only save) leaves the tile's state as it is.
+recorded as an ``imported`` annotation and leaves its tile ``amended``.
+
+Annotations also carry codes of their own, stored in the database as written here:
+their state (the tile states above that a save records, plus :data:`IMPORTED` and
+:data:`WEAK`) and their kind (:data:`KIND_FULL`, a whole mask, or :data:`KIND_WEAK`, a
+weak label: a class index where marked, 255 elsewhere). Code uses these constants, never
+the string codes.
 """
 
 from __future__ import annotations
@@ -23,6 +28,10 @@ __all__ = [
     "CONTESTED",
     "SETTLED",
     "PARKED",
+    "IMPORTED",
+    "WEAK",
+    "KIND_FULL",
+    "KIND_WEAK",
     "STATES",
     "SAVED_STATES",
     "ANNOTATION_STATES",
@@ -44,11 +53,23 @@ PARKED = "parked"
 STATES = (UNSEEN, PROPOSED, HELD, ACCEPTED, AMENDED, CONTESTED, SETTLED, PARKED)
 #: States of a tile that has a saved full mask.
 SAVED_STATES = (ACCEPTED, AMENDED, CONTESTED, SETTLED)
-#: States an annotation row records (``imported`` = read from a file by ``labeler import``;
-#: ``weak`` = scribbles only).
-ANNOTATION_STATES = (ACCEPTED, AMENDED, SETTLED, "imported", "weak")
+
+#: Annotation state of a mask read from a file by ``labeler import``.
+IMPORTED = "imported"
+#: Annotation state of a weak label (a save of a weak label, or an import with unlabelled
+#: pixels).
+WEAK = "weak"
+#: States an annotation row records.
+ANNOTATION_STATES = (ACCEPTED, AMENDED, SETTLED, IMPORTED, WEAK)
+
+#: Annotation kind of a whole mask (every pixel has a class).
+KIND_FULL = "full"
+#: Annotation kind of a weak label (class index where marked, 255 elsewhere). The stored
+#: code is "scribble", the name of the editor tool that makes most weak labels; it stays
+#: as written in existing databases until a migration renames it.
+KIND_WEAK = "scribble"
 #: Kinds of annotation masks.
-ANNOTATION_KINDS = ("full", "scribble")
+ANNOTATION_KINDS = (KIND_FULL, KIND_WEAK)
 
 _MOVES: dict[str, frozenset[str]] = {
     UNSEEN: frozenset({PROPOSED, HELD, ACCEPTED, AMENDED, PARKED, CONTESTED}),

@@ -1,8 +1,9 @@
 """The documents in the repository keep up with the code.
 
 The README's layout section and docs/architecture.md name every top-level module of the
-package, the architecture page names every import contract, and neither they nor the
-package point to files outside the repository.
+package and every module of editor/ and demo/, the architecture page names every import
+contract, every Python file the documents name exists, and neither they nor the package,
+the tests or the benchmarks point to files outside the repository.
 """
 
 from __future__ import annotations
@@ -60,11 +61,36 @@ def test_architecture_names_every_room_and_contract():
     "path",
     sorted(
         [ROOT / "README.md", ROOT / "docs" / "architecture.md", ROOT / "pyproject.toml",
-         ROOT / "Makefile", *PACKAGE.rglob("*.py")]
+         ROOT / "Makefile", *PACKAGE.rglob("*.py"), *(ROOT / "benchmarks").rglob("*.py"),
+         *(p for p in (ROOT / "tests").rglob("*.py") if p.name != "test_docs.py")]
     ),
     ids=lambda p: p.relative_to(ROOT).as_posix(),
 )
 def test_no_reference_outside_the_repository(path):
     text = path.read_text(encoding="utf-8")
-    for outside in ("../shared", "notes-checks", "DESIGN.md", "/work/", "/tmp/bash_jobs"):
+    for outside in ("../shared", "notes-checks", "DESIGN.md", "DESIGN section", "/work/",
+                    "/tmp/bash_jobs"):
         assert outside not in text, f"{path.relative_to(ROOT)} mentions {outside!r}"
+
+
+@pytest.mark.parametrize("package", ["editor", "demo"])
+def test_layout_and_architecture_name_every_module_of_the_edge_packages(package):
+    modules = {p.name for p in (PACKAGE / package).glob("*.py") if p.name != "__init__.py"}
+    readme = readme_layout()
+    page = architecture()
+    for name in sorted(modules):
+        assert name in readme, f"README layout section does not name {package}/{name}"
+        assert f"`{name}`" in page, f"docs/architecture.md does not name {package}/{name}"
+    assert "colour_regions.py" in readme and "`colour_regions.py`" in architecture()
+
+
+@pytest.mark.parametrize("path", ["README.md", "docs/architecture.md", "docs/label_efficiency.md"])
+def test_every_python_file_the_documents_name_exists(path):
+    text = (ROOT / path).read_text(encoding="utf-8")
+    files = {p.relative_to(ROOT).as_posix() for p in ROOT.rglob("*.py") if ".venv" not in p.parts}
+    names = {f.rsplit("/", 1)[-1] for f in files}
+    for mention in set(re.findall(r"`([\w/.-]+\.py)`", text)):
+        if "/" in mention:
+            assert any(f == mention or f.endswith("/" + mention) for f in files), (path, mention)
+        else:
+            assert mention in names, (path, mention)

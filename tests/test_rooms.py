@@ -76,7 +76,7 @@ STORE_STATE_METHODS = frozenset({"hold", "release"})
 WRITERS = ("fileio.py", "imagery/", "export/", "store/")
 IMAGE_ROOMS = ("imagery/", "export/")
 WINDOW_ROOM = ("editor/window.py",)
-PURE_CORE = ("masks/", "picker/", "picker.py", "agreement/", "agreement.py", "metrics.py")
+PURE_CORE = ("masks/", "picker/", "agreement/", "metrics.py")
 EDGES = ("cli.py", "cli/", "tui/", "demo/", "editor/")
 STATE_ROOMS = ("workflow/", "store/")
 

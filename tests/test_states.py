@@ -109,6 +109,11 @@ def test_state_groups():
     assert set(states.SAVED_STATES) <= set(states.STATES)
     assert states.ANNOTATION_STATES == ("accepted", "amended", "settled", "imported", "weak")
     assert states.ANNOTATION_KINDS == ("full", "scribble")
+    # the stored codes of the annotation constants; a weak label's kind keeps the code
+    # "scribble" that existing databases hold
+    assert (states.IMPORTED, states.WEAK) == ("imported", "weak")
+    assert (states.KIND_FULL, states.KIND_WEAK) == states.ANNOTATION_KINDS
+    assert not set(states.ANNOTATION_KINDS) & set(states.STATES)
     # the constants are the names of the table
     named = [getattr(states, n.upper()) for n in COLUMNS]
     assert named == list(COLUMNS)

@@ -10,7 +10,7 @@ For every strategy and every seed (:func:`run_curves`):
 3. the head proposes on the unlabelled pool tiles with MC-dropout (``propose_tiles``),
    which gives the scalars ``labeler pick`` reads from the store: mean entropy, mean
    margin, mean least confidence, mean BALD, class fractions (of the proposed mask; of
-   the truth for labelled tiles), and the pooled encoder embedding. ``select_batch`` then
+   the truth for labelled tiles), and the pooled encoder embedding. ``pick_batch`` then
    picks the next ``k`` tiles; their truth is revealed, and the loop goes back to step 2.
 
 Random and coreset need no proposals (coreset uses the encoder embedding only), so the
@@ -34,7 +34,7 @@ import numpy as np
 from benchmarks.label_efficiency.curves import round_sizes, rounded, summarise_curves
 from benchmarks.label_efficiency.tiles import TileSet
 from labeler.metrics import class_fractions, confusion_matrix, mean_iou
-from labeler.picker import CandidatePool, select_batch
+from labeler.picker import CandidatePool, pick_batch
 from labeler.settings import STRATEGIES, ModelSettings
 
 __all__ = ["NEEDS_PROPOSALS", "PoolScores", "run_curves"]
@@ -149,8 +149,8 @@ def _pick(
         class_fractions=np.where(labelled[:, None], truth_fractions, scores.fractions),
         annotators=labelled.astype(np.int64),
     )
-    sel = select_batch(pool, strategy=strategy, k=k, seed=seed)
-    return np.asarray(sel.positions[: sel.n_chosen], np.int64)
+    pick = pick_batch(pool, strategy=strategy, k=k, seed=seed)
+    return np.asarray(pick.positions[: pick.n_chosen], np.int64)
 
 
 # -- the simulation -------------------------------------------------------------------------------
@@ -158,7 +158,7 @@ def _check(strategies, seeds, n_initial: int, heldout: TileSet, settings: ModelS
     unknown = [s for s in strategies if s not in STRATEGIES]
     if unknown or not strategies:
         raise ValueError(
-            f"strategies: expected a non-empty selection of {', '.join(STRATEGIES)}, "
+            f"strategies: expected one or more of {', '.join(STRATEGIES)}, "
             f"got {list(strategies)}"
         )
     if not seeds:

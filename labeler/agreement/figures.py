@@ -172,7 +172,7 @@ class AgreementSummary:
         """The ``n`` least agreed tiles (or images, when no tile windows were given).
 
         Sorted by ``agreement`` ascending; entries with ``nan`` (nothing compared) are
-        left out. Tiles are ranked when any image carries tile windows.
+        left out. Tiles are listed when any image carries tile windows.
         """
         has_tiles = any(img.tiles for img in self.images)
         pool: list[ImageFigures | TileFigures] = []

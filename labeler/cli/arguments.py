@@ -108,9 +108,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser(
         "retrain",
-        help="train a new model on every saved mask and scribble",
+        help="train a new model on every saved mask and weak label",
         description="Train a new proposal head on every saved full mask (accepted, amended, settled, "
-        "imported) and every scribble; prints the per-class validation IoU.",
+        "imported) and every weak label; prints the per-class validation IoU.",
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
     p.set_defaults(func=cmd_retrain)
@@ -118,8 +118,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "pick",
         help="order the queue: most informative tiles first",
-        description="Rank every proposed tile with the active-learning picker and write the "
-        "queue order (with each tile's score and reason) to the store.",
+        description="Pick with the active-learning picker: put every proposed tile in order and "
+        "write the queue order (with each tile's score and reason) to the store.",
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
     p.add_argument(
@@ -145,7 +145,7 @@ def build_parser() -> argparse.ArgumentParser:
         help="open a tile in the mask editor",
         description="Open a tile in the mask editor window (needs a display). Enter saves the "
         "mask, recorded as 'accepted' when the proposal is kept, 'amended' when changed "
-        "('settled' with --settle); p saves the scribbles alone as a 'weak' label. The state "
+        "('settled' with --settle); p saves the weak label alone (state 'weak'). The state "
         "recorded is printed. A draft is autosaved; a save after someone else's is refused "
         "and kept as a draft.",
     )
@@ -229,7 +229,7 @@ def build_parser() -> argparse.ArgumentParser:
         "queue",
         help="the terminal queue: work through tiles, watch agreement and models",
         description="Open the terminal queue: tiles in picker order with a colour preview; accept, "
-        "park, open the editor, re-rank and retrain from the keyboard (press ? for the keys).",
+        "park, open the editor, re-pick and retrain from the keyboard (press ? for the keys).",
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
     p.add_argument("--annotator", required=True, metavar="NAME", help="who is annotating")

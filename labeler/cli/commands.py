@@ -137,12 +137,12 @@ def format_status(st) -> str:
     if st.by_annotator:
         out.append(
             _table(
-                ["annotator", "tiles saved", "scribble saves", "actions", "minutes"],
+                ["annotator", "tiles saved", "weak labels saved", "actions", "minutes"],
                 [
                     (
                         a,
                         int(d["tiles"]),
-                        int(d["scribbles"]),
+                        int(d["weak_labels"]),
                         int(d["actions"]),
                         f"{d['seconds'] / 60:.1f}",
                     )
@@ -211,23 +211,25 @@ def cmd_demo(args) -> int:
 
 def cmd_pick(args) -> int:
     from labeler.project import open_project
-    from labeler.workflow import rank_tiles
+    from labeler.workflow import pick_tiles
 
-    with open_project(args.dir) as project, _Bar("ranking") as bar:
-        result = rank_tiles(project, strategy=args.strategy, k=args.k, seed=args.seed, progress=bar)
+    with open_project(args.dir) as project, _Bar("picking") as bar:
+        result = pick_tiles(project, strategy=args.strategy, k=args.k, seed=args.seed, progress=bar)
     if result.note:
         print(f"note: {result.note}")
     print(
-        f"ranked {len(result.items)} tiles with strategy {result.strategy}; the next batch of {result.k}:"
+        f"picked from {len(result.items)} tiles with strategy {result.strategy}; "
+        f"the next batch of {result.k}:"
     )
     rows = [
         (t.rank + 1, t.tile_id, t.image, f"{t.row},{t.col}", f"{t.score:.4f}", t.reason)
         for t in result.batch
     ]
     print(_table(["rank", "tile", "image", "row,col", "score", "why"], rows))
-    if result.unranked:
+    if result.without_proposal:
         print(
-            f"{result.unranked} tiles have no proposal yet and are not ranked (run 'labeler propose')"
+            f"{result.without_proposal} tiles have no proposal yet and are left out "
+            "(run 'labeler propose')"
         )
     return 0
 
@@ -267,6 +269,7 @@ def cmd_agreement(args) -> int:
 def cmd_edit(args) -> int:
     from labeler.editor.opening import edit_tile
     from labeler.project import open_project
+    from labeler.states import KIND_FULL, KIND_WEAK
 
     if args.tile is None and not args.next:
         raise LabelerError("edit: name a TILE id or pass --next for the next tile of your queue")
@@ -276,7 +279,8 @@ def cmd_edit(args) -> int:
         tile_id, outcome = edit_tile(project, args.tile, args.annotator, settle=args.settle)
     what = {
         # the state the store recorded, as the workflow decided it (never the editor's)
-        "saved": f"saved as {outcome.state} ({outcome.kind})",
+        "saved": f"saved as {outcome.state} "
+        f"({ {KIND_FULL: 'full mask', KIND_WEAK: 'weak label'}.get(outcome.kind, outcome.kind)})",
         "discarded": "left without saving",
         "left": "left without changes",
         "closed": "window closed",
@@ -343,7 +347,7 @@ def cmd_import(args) -> int:
     for path, name in result.files:
         print(f"{path} -> image {name}")
     print(
-        f"imported {result.full_tiles} full tiles and {result.weak_tiles} partial tiles (weak labels) "
+        f"imported {result.full_tiles} full masks and {result.weak_tiles} weak labels "
         f"as {args.annotator}; {result.empty_tiles} tiles not covered"
     )
     return 0
@@ -386,7 +390,7 @@ def cmd_retrain(args) -> int:
         result = retrain(project, progress=bar)
     mv = result.model_version
     print(
-        f"trained {mv.name} on {result.n_full} full masks and {result.n_scribble} scribbled tiles "
+        f"trained {mv.name} on {result.n_full} full masks and {result.n_weak} weak labels "
         f"({result.n_train} training, {result.n_val} validation tiles; best epoch {result.best_epoch})"
     )
     print(f"validation IoU: {format_iou(mv.val_iou, miou=mv.miou)}")

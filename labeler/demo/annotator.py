@@ -1,4 +1,4 @@
-"""A simulated annotator: noisy corrections and scribbles made from an exact truth mask.
+"""A simulated annotator: noisy corrections and weak labels made from an exact truth mask.
 
 Pure numpy (and scipy.ndimage). The demo and the agreement tests use it to stand in for
 people: two simulated annotators with their own generators disagree the way two people
@@ -32,7 +32,7 @@ from labeler.classes import UNLABELLED
 __all__ = [
     "AnnotatorProfile",
     "simulate_annotation",
-    "simulate_scribbles",
+    "simulate_weak_label",
 ]
 
 SOIL, CROP, WEED, SYMPTOM = 0, 1, 2, 3
@@ -273,7 +273,7 @@ def _stroke_points(
     return points
 
 
-def simulate_scribbles(
+def simulate_weak_label(
     truth: np.ndarray,
     *,
     rng: np.random.Generator,
@@ -298,7 +298,7 @@ def simulate_scribbles(
     width_px, length_px : float
         Stroke width and typical length (each stroke is 0.5 to 1.5 times as long).
     classes : tuple of int, optional
-        Classes to scribble; default every class present except 255.
+        Classes to mark; default every class present except 255.
 
     Returns
     -------

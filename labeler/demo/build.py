@@ -127,10 +127,10 @@ def run_demo_round(
     """Play one round of the loop on a demo project (see the module docstring)."""
     from labeler.demo.annotator import simulate_annotation
     from labeler.workflow import (
+        pick_tiles,
         project_status,
         propose,
         queue_rows,
-        rank_tiles,
         retrain,
         save_basis,
         save_tile_mask,
@@ -144,9 +144,9 @@ def run_demo_round(
     truths = _truths({p.image for p in places.values()}, fields)
     res = propose(project, progress=prog)
     say(f"1. proposed {res.proposed} tiles with {res.model_version.name}")
-    ranked = rank_tiles(project, progress=prog)
-    batch = [i.tile_id for i in ranked.items if i.in_batch]
-    say(f"2. the picker chose {len(batch)} tiles ({ranked.strategy}): {', '.join(map(str, batch))}")
+    picked = pick_tiles(project, progress=prog)
+    batch = [i.tile_id for i in picked.items if i.in_batch]
+    say(f"2. the picker chose {len(batch)} tiles ({picked.strategy}): {', '.join(map(str, batch))}")
     rng = np.random.default_rng(seed)
     overlap = {tid for tid, p in places.items() if p.overlap}
     extra = sorted(overlap - set(batch))[:4]  # a few overlap tiles so both annotators meet
@@ -190,7 +190,7 @@ def run_demo_round(
     )
     res = propose(project, progress=prog)
     say(f"6. re-proposed {res.proposed} tiles with {res.model_version.name}")
-    ranked = rank_tiles(project, progress=prog)
+    pick_tiles(project, progress=prog)
     top = queue_rows(project)[:3]
     say("7. the queue now starts with tiles " + ", ".join(f"{r.tile_id} ({r.reason})" for r in top))
     out = project.root / "exports"

@@ -5,8 +5,9 @@ backend is :class:`labeler.workflow.editing.StoreBackend`, which implements the 
 methods over the store.
 
 Kinds passed to :meth:`EditorBackend.save`
-    ``kind="full"`` with the whole mask, or ``kind="scribble"`` with the scribble mask
-    (class index where scribbled, 255 elsewhere) as a weak label.
+    ``kind=KIND_FULL`` with the whole mask, or ``kind=KIND_WEAK`` with the weak label
+    (class index where marked, 255 elsewhere); the constants are
+    :data:`labeler.states.KIND_FULL` and :data:`labeler.states.KIND_WEAK`.
 
 Learning on the tile
     :meth:`EditorBackend.relearn` takes the annotator's marks (class index where marked,
@@ -19,7 +20,7 @@ The annotation state of a save
     The editor proposes none. The backend decides what the save records and returns that
     state; in a project the workflow decides it (``accepted`` when the full mask equals
     the proposal it started from, ``amended`` when changed, ``settled`` when a reviewer
-    settles, ``weak`` for scribbles; :func:`labeler.workflow.annotating.save_state`). The
+    settles, ``weak`` for a weak label; :func:`labeler.workflow.annotating.save_state`). The
     editor reports the returned state.
 """
 
@@ -32,11 +33,12 @@ from typing import Protocol, runtime_checkable
 import numpy as np
 
 from labeler.errors import ConflictError
+from labeler.states import AMENDED, KIND_FULL, KIND_WEAK
 
 __all__ = ["Draft", "SavedDraft", "SavedLabel", "EditorBackend", "MemoryBackend", "SAVE_KINDS"]
 
-#: What a save sends: the whole mask, or the scribbles alone.
-SAVE_KINDS = ("full", "scribble")
+#: What a save sends: the whole mask, or the weak label alone.
+SAVE_KINDS = (KIND_FULL, KIND_WEAK)
 
 
 @dataclass(frozen=True)
@@ -46,8 +48,8 @@ class Draft:
     Parameters
     ----------
     mask : ndarray, shape (H, W), uint8
-    scribbles : ndarray, shape (H, W), uint8
-        Class index where scribbled, 255 elsewhere.
+    weak_label : ndarray, shape (H, W), uint8
+        Class index where marked, 255 elsewhere.
     actions : int
         Edit actions spent so far.
     seconds : float
@@ -55,7 +57,7 @@ class Draft:
     """
 
     mask: np.ndarray
-    scribbles: np.ndarray
+    weak_label: np.ndarray
     actions: int = 0
     seconds: float = 0.0
 
@@ -65,7 +67,7 @@ class SavedDraft(Protocol):
     the same four attributes."""
 
     mask: np.ndarray
-    scribbles: np.ndarray
+    weak_label: np.ndarray
     actions: int
     seconds: float
 
@@ -80,9 +82,10 @@ class EditorBackend(Protocol):
         Parameters
         ----------
         mask : ndarray, shape (H, W), uint8
-            The mask (``kind="full"``) or the scribbles (``kind="scribble"``, 255 where
-            not scribbled).
-        kind : {"full", "scribble"}
+            The mask (``kind=KIND_FULL``) or the weak label (``kind=KIND_WEAK``, 255
+            where not marked).
+        kind : {KIND_FULL, KIND_WEAK}
+            One of :data:`SAVE_KINDS`.
         actions, seconds : int, float
             Edit actions and active seconds spent.
 
@@ -100,7 +103,7 @@ class EditorBackend(Protocol):
         ...
 
     def save_draft(
-        self, mask: np.ndarray, scribbles: np.ndarray, *, actions: int, seconds: float
+        self, mask: np.ndarray, weak_label: np.ndarray, *, actions: int, seconds: float
     ) -> None:
         """Keep unsaved work (replacing an earlier draft of the same tile)."""
         ...
@@ -169,7 +172,7 @@ class MemoryBackend:
     draft: Draft | None = None
     conflict: np.ndarray | bool = False
     tile_id: int = 0
-    state: str = "amended"
+    state: str = AMENDED
     learner: Callable[[np.ndarray], np.ndarray] | None = None
     saved: list[SavedLabel] = field(default_factory=list)
     drafts_written: int = 0
@@ -191,10 +194,10 @@ class MemoryBackend:
         return self.state
 
     def save_draft(
-        self, mask: np.ndarray, scribbles: np.ndarray, *, actions: int, seconds: float
+        self, mask: np.ndarray, weak_label: np.ndarray, *, actions: int, seconds: float
     ) -> None:
         """Keep the draft in :attr:`draft`, counting the writes."""
-        self.draft = Draft(np.array(mask, np.uint8), np.array(scribbles, np.uint8),
+        self.draft = Draft(np.array(mask, np.uint8), np.array(weak_label, np.uint8),
                            int(actions), float(seconds))
         self.drafts_written += 1
 

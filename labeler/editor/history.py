@@ -1,6 +1,6 @@
 """Undo history of the editor: unlimited, stored as compact per-edit diffs.
 
-The editor edits its layers (the mask and the scribbles, each an (H, W) uint8 array) in
+The editor edits its layers (the mask and the weak label, each an (H, W) uint8 array) in
 place; :meth:`EditHistory.record` then compares the edited region with the last recorded
 copy and keeps only the bounding box of the pixels that changed, with their values before
 and after. Undo and redo copy those boxes back, so they cost time and memory in proportion
@@ -27,7 +27,7 @@ class Change:
     Parameters
     ----------
     layer : str
-        Name of the layer (``"mask"`` or ``"scribbles"`` in the editor).
+        Name of the layer (``"mask"`` or ``"weak_label"`` in the editor).
     row, col : int
         Top-left pixel of the box.
     before, after : ndarray, shape (h, w), uint8

@@ -75,7 +75,7 @@ TOOLS: tuple[Tool, ...] = (
     Tool("polygon", "v", "click vertices; space, or a click on the first vertex, fills it"),
     Tool("fill", "f", "click a region: its 4-connected part up to colour edges takes the class"),
     Tool("box", "o", "drag a box round one plant: GrabCut finds it, in the active class"),
-    Tool("scribble", "s", "drag hints of the active class for refine (kept as a weak label)"),
+    Tool("scribble", "s", "drag marks of the active class into the weak label (for refine)"),
 )
 TOOL_NAMES: tuple[str, ...] = tuple(t.name for t in TOOLS)
 
@@ -92,16 +92,16 @@ def _k(ch: str) -> tuple[int, ...]:
 BINDINGS: tuple[Binding, ...] = (
     *(Binding(f"tool:{t.name}", t.key, _k(t.key), f"tool {t.name}: {t.use}") for t in TOOLS),
     Binding("save", "Enter", _ENTER, "save the mask (accepted if unchanged, amended if changed)"),
-    Binding("save-scribbles", "p", _k("p"), "save the scribbles alone as a weak label"),
+    Binding("save-weak-label", "p", _k("p"), "save the weak label alone"),
     Binding("leave", "Esc", _ESCAPE, "close the editor; asks before dropping unsaved work"),
-    Binding("refine", "r", _k("r"), "refine: scribbles + mask -> mask near the scribbles"),
+    Binding("refine", "r", _k("r"), "refine: weak label + mask -> mask near the marks"),
     Binding("relearn", "i", _k("i"),
             "learn from your marks on this tile: the model re-proposes the whole tile "
-            "(your scribbles and hand edits are kept)"),
+            "(your weak label and hand edits are kept)"),
     Binding("snap", "n", _k("n"), "refine snaps to superpixels: on / off"),
     Binding("undo", "u", _k("u"), "undo the last edit"),
     Binding("redo", "a", _k("a"), "redo (again)"),
-    Binding("clear-scribbles", "c", _k("c"), "clear all scribbles"),
+    Binding("clear-weak-label", "c", _k("c"), "clear the weak label"),
     Binding("close-polygon", "space", _k(" "), "close and fill the open polygon"),
     Binding("drop-vertex", "Backspace", _BACKSPACE, "drop the last polygon vertex"),
     Binding("radius-down", ",", _k(","), "smaller brush"),

@@ -1,15 +1,17 @@
-"""Rendering of the editor's view: tile, class overlay, outlines, scribbles, marks.
+"""Rendering of the editor's view: tile, class overlay, outlines, weak label, marks.
 
 :class:`Renderer` draws the view of one tile as a BGR array; it never opens a window
 (OpenCV is used only to draw onto arrays). It keeps a composite of the whole tile (image,
-overlay, outlines, scribbles) and the view sampled from it, and redraws only the boxes the
+overlay, outlines, weak label) and the view sampled from it, and redraws only the boxes the
 caller reports as touched (:meth:`Renderer.touched`), so a brush segment costs time in
 proportion to the segment, not the tile.
 
 Overlay
-    A class pixel of a class with an overlay colour is ``(base * (256 - a) + colour * a) >> 8``
-    with ``a = round(opacity * 256)``; on the region outline (a 4-neighbour holds another
-    value) it takes the class colour itself. Scribbled pixels show the scribble's class
+    A class pixel of a class with an overlay colour is blended by
+    :func:`labeler.masks.overlay.blend_palette`, the one rule of every picture the program
+    draws: ``round_half_up((1 - opacity) * base + opacity * colour)``, the opacity taken
+    to the nearest thousandth. On the region outline (a 4-neighbour holds another value)
+    it takes the class colour itself. Pixels of the weak label show their class
     colour (light grey for a class without overlay, e.g. soil).
 """
 
@@ -24,12 +26,13 @@ import numpy as np
 from labeler.classes import UNLABELLED, ClassSchema
 from labeler.editor.history import Box
 from labeler.editor.view import PANE_GAP, Viewport
+from labeler.masks.overlay import blend_palette
 
 __all__ = ["Marks", "Renderer", "check_uncertainty"]
 
 _BACKDROP = (38, 38, 38)  # BGR of view pixels outside the tile
 _GAP_COLOUR = (200, 200, 200)  # BGR of the gap between the two panes
-_SCRIBBLE_NO_COLOUR = (225, 225, 225)  # scribbles of a class without overlay (soil)
+_WEAK_NO_COLOUR = (225, 225, 225)  # weak label of a class without overlay (soil)
 _WHITE = (255, 255, 255)
 
 
@@ -48,7 +51,7 @@ class Marks:
     cursor_radius : float
         Brush radius in tile pixels.
     cursor_class : int
-        Class whose scribble colour rings the cursor.
+        Class whose weak-label colour rings the cursor.
     """
 
     polygon: Sequence[tuple[float, float]] = ()
@@ -103,8 +106,8 @@ class Renderer:
         self._shape = (int(image.shape[0]), int(image.shape[1]))
         colours_rgb, self._has_overlay = schema.lut_rgb()
         self._lut_bgr = np.ascontiguousarray(colours_rgb[:, ::-1])
-        self._scrib_bgr = self._lut_bgr.copy()
-        self._scrib_bgr[~self._has_overlay] = _SCRIBBLE_NO_COLOUR
+        self._weak_bgr = self._lut_bgr.copy()
+        self._weak_bgr[~self._has_overlay] = _WEAK_NO_COLOUR
         self._uncertainty = None if uncertainty is None else check_uncertainty(uncertainty)
         self._opacity = float(np.clip(opacity, 0.0, 1.0))
         self._show_outlines = True
@@ -144,7 +147,7 @@ class Renderer:
 
     @property
     def show_overlay(self) -> bool:
-        """Mask overlay and scribbles drawn (off: the bare tile)."""
+        """Mask overlay and weak label drawn (off: the bare tile)."""
         return self._show_overlay
 
     @show_overlay.setter
@@ -178,13 +181,13 @@ class Renderer:
         self._restyle()
 
     @property
-    def scribble_colours(self) -> np.ndarray:
-        """BGR colour of a scribble per class value, shape (n_values, 3), uint8."""
-        return self._scrib_bgr
+    def weak_label_colours(self) -> np.ndarray:
+        """BGR colour of the weak label per class value, shape (n_values, 3), uint8."""
+        return self._weak_bgr
 
     # -------------------------------------------------------------- what changed
     def touched(self, box: Box) -> None:
-        """The mask or the scribbles changed inside ``box``: redraw it next frame."""
+        """The mask or the weak label changed inside ``box``: redraw it next frame."""
         self._dirty.append(box)
 
     def compare_changed(self) -> None:
@@ -205,7 +208,7 @@ class Renderer:
             bgr = cv2.addWeighted(bgr, 0.5, heat, 0.5, 0.0)
         return bgr
 
-    def _compose(self, mask: np.ndarray, scrib: np.ndarray | None, out: np.ndarray,
+    def _compose(self, mask: np.ndarray, weak: np.ndarray | None, out: np.ndarray,
                  r0: int, r1: int, c0: int, c1: int) -> None:
         """Write the composite of rows r0:r1, cols c0:c1 into ``out``."""
         base = self._base[r0:r1, c0:c1]
@@ -213,11 +216,9 @@ class Renderer:
             out[r0:r1, c0:c1] = base
             return
         m = mask[r0:r1, c0:c1]
-        has = self._has_overlay[m]
-        a = int(round(self._opacity * 256))
-        col = self._lut_bgr[m]
-        blend = ((base.astype(np.uint16) * (256 - a) + col.astype(np.uint16) * a) >> 8)
-        res = np.where(has[:, :, None], blend.astype(np.uint8), base)
+        res = blend_palette(
+            base, m, colours=self._lut_bgr, has_colour=self._has_overlay, opacity=self._opacity
+        )
         if self._show_outlines:
             # a class pixel is on the outline when a 4-neighbour holds another value
             h, w = self._shape
@@ -228,13 +229,14 @@ class Renderer:
             edge[:-1, :] |= ext[:-1, :] != ext[1:, :]
             edge[:, 1:] |= ext[:, 1:] != ext[:, :-1]
             edge[:, :-1] |= ext[:, :-1] != ext[:, 1:]
-            edge = edge[r0 - e0 : r0 - e0 + (r1 - r0), c0 - f0 : c0 - f0 + (c1 - c0)] & has
-            res[edge] = col[edge]
-        if scrib is not None:
-            s = scrib[r0:r1, c0:c1]
+            edge = edge[r0 - e0 : r0 - e0 + (r1 - r0), c0 - f0 : c0 - f0 + (c1 - c0)]
+            edge &= self._has_overlay[m]
+            res[edge] = self._lut_bgr[m[edge]]
+        if weak is not None:
+            s = weak[r0:r1, c0:c1]
             on = s != UNLABELLED
             if on.any():
-                res[on] = self._scrib_bgr[s[on]]
+                res[on] = self._weak_bgr[s[on]]
         out[r0:r1, c0:c1] = res
 
     def _gather(self, comp: np.ndarray, view: np.ndarray, col_off: int,
@@ -255,7 +257,7 @@ class Renderer:
         block = comp[ri[vr]][:, ci[vc]]
         view[vr[0] : vr[-1] + 1, col_off + vc[0] : col_off + vc[-1] + 1] = block
 
-    def _refresh(self, mask: np.ndarray, scrib: np.ndarray, viewport: Viewport,
+    def _refresh(self, mask: np.ndarray, weak: np.ndarray, viewport: Viewport,
                  compare: np.ndarray | None) -> None:
         h, w = self._shape
         drawn = (viewport.transform, viewport.view_shape, viewport.split)
@@ -263,7 +265,7 @@ class Renderer:
         if self._base is None:
             self._base = self._build_base()
             self._comp = np.empty_like(self._base)
-            self._compose(mask, scrib, self._comp, 0, h, 0, w)
+            self._compose(mask, weak, self._comp, 0, h, 0, w)
             self._comp_other = None
             self._dirty.clear()
         if compare is not None and self._comp_other is None:
@@ -274,7 +276,7 @@ class Renderer:
         for r0, r1, c0, c1 in dirty:
             e0, e1 = max(r0 - 1, 0), min(r1 + 1, h)
             f0, f1 = max(c0 - 1, 0), min(c1 + 1, w)
-            self._compose(mask, scrib, self._comp, e0, e1, f0, f1)
+            self._compose(mask, weak, self._comp, e0, e1, f0, f1)
             if not full_view:
                 self._gather(self._comp, self._view, 0, e0, e1, f0, f1)
         if full_view:
@@ -295,22 +297,22 @@ class Renderer:
     def render(
         self,
         mask: np.ndarray,
-        scribbles: np.ndarray,
+        weak_label: np.ndarray,
         *,
         viewport: Viewport,
         compare: np.ndarray | None = None,
         compare_label: str = "",
         marks: Marks | None = None,
     ) -> np.ndarray:
-        """The view as a BGR image: tile, overlay, outlines, scribbles, then the marks.
+        """The view as a BGR image: tile, overlay, outlines, weak label, then the marks.
 
         Parameters
         ----------
         mask : ndarray, shape (H, W), uint8
             The mask being edited (every change since the last frame reported through
             :meth:`touched`).
-        scribbles : ndarray, shape (H, W), uint8
-            Class index where scribbled, 255 elsewhere.
+        weak_label : ndarray, shape (H, W), uint8
+            Class index where marked, 255 elsewhere.
         viewport : Viewport
             View size, transform and split.
         compare : ndarray, shape (H, W), uint8, optional
@@ -325,7 +327,7 @@ class Renderer:
         frame : ndarray, shape (rows, cols, 3), uint8, BGR
             A new array of ``viewport.view_shape`` the caller may draw on.
         """
-        self._refresh(mask, scribbles, viewport, compare if viewport.split else None)
+        self._refresh(mask, weak_label, viewport, compare if viewport.split else None)
         frame = self._view.copy()
         marks = Marks() if marks is None else marks
         t = viewport.transform
@@ -352,7 +354,7 @@ class Renderer:
         if marks.cursor is not None:
             cy, cx = marks.cursor
             rad = max(int(round(marks.cursor_radius * t.zoom)), 1)
-            colour = tuple(int(v) for v in self._scrib_bgr[marks.cursor_class])
+            colour = tuple(int(v) for v in self._weak_bgr[marks.cursor_class])
             centre = (int(round(cx)), int(round(cy)))
             cv2.circle(frame, centre, rad, (0, 0, 0), 3)
             cv2.circle(frame, centre, rad, colour, 1)

@@ -8,13 +8,13 @@ key codes and mouse events (the table in :mod:`labeler.editor.keys`) to operatio
 Tests drive it with a scripted stand-in for the window.
 
 Saving
-    The session sends the mask (Enter) or the scribbles alone (``p``) with the effort
+    The session sends the mask (Enter) or the weak label alone (``p``) with the effort
     counters; the backend decides and records the annotation state (in a project, the
     workflow does) and returns it, and the session reports that state, never its own.
 
 Never losing work:
     * every ``autosave_seconds`` a draft is written through the backend when the mask or
-      the scribbles changed since the last draft;
+      the weak label changed since the last draft;
     * a draft found at start is offered back (restore? y / n; n discards it);
     * Escape with unsaved work asks first (y drops the work and its draft, n goes back);
     * closing the window from its frame keeps the work as a draft;
@@ -38,6 +38,7 @@ from labeler.editor.keys import ANSWER_NO, ANSWER_YES, class_for, command_for, h
 from labeler.editor.panels import STATUS_ROWS, panel, status_strip, table_panel
 from labeler.editor.state import EditorState
 from labeler.errors import ConflictError, LabelerError
+from labeler.states import KIND_FULL, KIND_WEAK
 
 __all__ = ["EditorOutcome", "EditorSession"]
 
@@ -58,7 +59,7 @@ class EditorOutcome:
         its frame; work kept as a draft), ``"conflict"`` (a save was refused; work kept as
         a draft).
     kind : str or None
-        What was saved: ``"full"`` (the mask) or ``"scribble"`` (the scribbles alone).
+        What was saved: ``KIND_FULL`` (the mask) or ``KIND_WEAK`` (the weak label alone).
     state : str or None
         The annotation state the backend reports it recorded for the save (in a project:
         ``accepted``, ``amended``, ``settled`` or ``weak``, as the workflow decided).
@@ -144,8 +145,8 @@ class EditorSession:
 
     @property
     def has_work(self) -> bool:
-        """True when closing now would lose something (mask changed or scribbles)."""
-        return self.state.changed or self.state.has_scribbles
+        """True when closing now would lose something (mask changed or a weak label)."""
+        return self.state.changed or self.state.has_weak_label
 
     def start(self) -> None:
         """Look for a draft of an earlier session and offer it back."""
@@ -153,7 +154,7 @@ class EditorSession:
         draft = self.backend.load_draft()
         if draft is None:
             return
-        if draft.mask.shape != self.state.shape or draft.scribbles.shape != self.state.shape:
+        if draft.mask.shape != self.state.shape or draft.weak_label.shape != self.state.shape:
             self.message = (
                 f"a draft of another size {draft.mask.shape} was found and left alone"
             )
@@ -171,7 +172,7 @@ class EditorSession:
     def _write_draft(self) -> bool:
         s = self.state
         try:
-            self.backend.save_draft(s.mask, s.scribbles, actions=s.actions, seconds=s.seconds)
+            self.backend.save_draft(s.mask, s.weak_label, actions=s.actions, seconds=s.seconds)
         except (OSError, LabelerError) as exc:
             self.message = f"could not write a draft: {exc}"
             return False
@@ -215,19 +216,19 @@ class EditorSession:
             raise err
 
     # -------------------------------------------------------------- saving
-    def _save(self, *, scribbles_only: bool) -> None:
+    def _save(self, *, weak_label_only: bool) -> None:
         s = self.state
         if self.blocked:
             self.message = ("this tile was saved by someone else: your work is in a draft; "
                             "Esc closes, reopen the tile to go on")
             return
-        if scribbles_only:
-            if not s.has_scribbles:
-                self.message = "no scribbles to save (scribble tool: s)"
+        if weak_label_only:
+            if not s.has_weak_label:
+                self.message = "no weak label to save (mark one with the scribble tool: s)"
                 return
-            label, kind = s.scribbles, "scribble"
+            label, kind = s.weak_label, KIND_WEAK
         else:
-            label, kind = s.mask, "full"
+            label, kind = s.mask, KIND_FULL
         s.note_activity()
         try:
             state = self.backend.save(label, kind=kind, actions=s.actions, seconds=s.seconds)
@@ -332,7 +333,7 @@ class EditorSession:
         elif question == "restore":
             draft, self._pending_draft = self._pending_draft, None
             if yes:
-                self.state.restore_draft(draft.mask, draft.scribbles, actions=draft.actions,
+                self.state.restore_draft(draft.mask, draft.weak_label, actions=draft.actions,
                                          seconds=draft.seconds)
                 self._draft_revision = self.state.revision
                 self.message = "draft restored"
@@ -357,7 +358,7 @@ class EditorSession:
             "relearn": self._relearn,
             "undo": s.undo,
             "redo": s.redo,
-            "clear-scribbles": s.clear_scribbles,
+            "clear-weak-label": s.clear_weak_label,
             "close-polygon": s.polygon_close,
             "drop-vertex": s.polygon_drop,
             "whole": s.fit_view,
@@ -368,9 +369,9 @@ class EditorSession:
         if command in simple:
             simple[command]()
         elif command == "save":
-            self._save(scribbles_only=False)
-        elif command == "save-scribbles":
-            self._save(scribbles_only=True)
+            self._save(weak_label_only=False)
+        elif command == "save-weak-label":
+            self._save(weak_label_only=True)
         elif command == "leave":
             self._leave()
         elif command == "snap":

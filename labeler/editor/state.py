@@ -1,7 +1,7 @@
 """The editor's state, free of any window: one tile being edited and every operation on it.
 
 :class:`EditorState` is the facade the window (and the tests) talk to. It holds the image,
-the proposal, the mask and the scribbles and puts together the parts that live in their
+the proposal, the mask and the weak label and puts together the parts that live in their
 own modules:
 
 * :mod:`labeler.editor.view` -- view geometry: tile <-> view coordinates, zoom, pan, panes;
@@ -15,7 +15,7 @@ It never opens a window, so all of it is tested on tiny arrays.
 Counters
     ``actions`` counts the gestures that edit or build an edit: a stroke (press, drag,
     release), a polygon vertex, a click that closes or fills, a box, and the commands
-    refine, relearn, clear scribbles, undo, redo and restoring a draft. Selecting a class or tool,
+    refine, relearn, clear the weak label, undo, redo and restoring a draft. Selecting a class or tool,
     zooming, panning and toggling views are not counted. ``seconds`` is active time: the
     wall-clock gaps between consecutive events (:meth:`EditorState.note_activity`), where
     a gap longer than ``idle_seconds`` (60 s by default) counts as a break and is left out
@@ -53,7 +53,7 @@ RADIUS_RANGE = (0.5, 128.0)
 
 
 class EditorState(EditingTools):
-    """One tile in the editor: image, proposal, mask, scribbles, tools, history, view.
+    """One tile in the editor: image, proposal, mask, weak label, tools, history, view.
 
     Parameters
     ----------
@@ -66,8 +66,8 @@ class EditorState(EditingTools):
         own).
     mask : ndarray, shape (H, W), uint8, optional
         Starting mask (default: a copy of the proposal).
-    scribbles : ndarray, shape (H, W), uint8, optional
-        Starting scribbles (class index where scribbled, 255 elsewhere; default none).
+    weak_label : ndarray, shape (H, W), uint8, optional
+        Starting weak label (class index where marked, 255 elsewhere; default none).
     uncertainty : ndarray, shape (h, w), float, optional
         Per-pixel uncertainty at any resolution, upsampled for the heat map.
     active_class : int, optional
@@ -81,7 +81,7 @@ class EditorState(EditingTools):
     connectivity : {4, 8}
         Neighbourhood of the fill tool.
     band_px : float
-        Half-width of the band around scribbles that refine decides again.
+        Half-width of the band around the weak label that refine decides again.
     view_shape : (int, int)
         ``(rows, cols)`` of the rendered view.
     idle_seconds : float
@@ -97,7 +97,7 @@ class EditorState(EditingTools):
         *,
         schema: ClassSchema = DEFAULT_SCHEMA,
         mask: np.ndarray | None = None,
-        scribbles: np.ndarray | None = None,
+        weak_label: np.ndarray | None = None,
         uncertainty: np.ndarray | None = None,
         active_class: int | None = None,
         tool: str = "brush",
@@ -122,10 +122,10 @@ class EditorState(EditingTools):
         self._proposal = self._checked(proposal, "proposal").copy()
         self._proposal.setflags(write=False)
         self._mask = (self._proposal if mask is None else self._checked(mask, "mask")).copy()
-        if scribbles is None:
-            self._scrib = np.full(self._shape, UNLABELLED, np.uint8)
+        if weak_label is None:
+            self._weak = np.full(self._shape, UNLABELLED, np.uint8)
         else:
-            self._scrib = self._checked(scribbles, "scribbles").copy()
+            self._weak = self._checked(weak_label, "weak_label").copy()
         if connectivity not in (4, 8):
             raise ValueError(f"connectivity: expected 4 or 8, got {connectivity!r}")
         self.connectivity = connectivity
@@ -138,7 +138,7 @@ class EditorState(EditingTools):
         # the model's layer: the proposal, replaced by each on-tile re-fit (relearn)
         self._base = self._proposal.copy()
         self._history = EditHistory(
-            {"mask": self._mask, "scribbles": self._scrib, "base": self._base}
+            {"mask": self._mask, "weak_label": self._weak, "base": self._base}
         )
         self._clock = clock
         self.idle_seconds = float(idle_seconds)
@@ -147,7 +147,7 @@ class EditorState(EditingTools):
         self._actions = 0
         self._revision = 0
         self._changed_cache: tuple[int, bool] | None = None
-        self._scrib_cache: tuple[int, bool] | None = None
+        self._weak_cache: tuple[int, bool] | None = None
         self._compare: np.ndarray | None = None
         self._compare_label = ""
         self.notice = ""
@@ -205,16 +205,16 @@ class EditorState(EditingTools):
         return self._base.copy()
 
     @property
-    def scribbles(self) -> np.ndarray:
-        """A copy of the scribble mask: class index where scribbled, 255 elsewhere."""
-        return self._scrib.copy()
+    def weak_label(self) -> np.ndarray:
+        """A copy of the weak label: class index where marked, 255 elsewhere."""
+        return self._weak.copy()
 
     @property
-    def has_scribbles(self) -> bool:
-        """True when any pixel is scribbled."""
-        if self._scrib_cache is None or self._scrib_cache[0] != self._revision:
-            self._scrib_cache = (self._revision, bool((self._scrib != UNLABELLED).any()))
-        return self._scrib_cache[1]
+    def has_weak_label(self) -> bool:
+        """True when the weak label marks any pixel."""
+        if self._weak_cache is None or self._weak_cache[0] != self._revision:
+            self._weak_cache = (self._revision, bool((self._weak != UNLABELLED).any()))
+        return self._weak_cache[1]
 
     @property
     def changed(self) -> bool:
@@ -227,7 +227,7 @@ class EditorState(EditingTools):
 
     @property
     def revision(self) -> int:
-        """Increases with every change of the mask or the scribbles."""
+        """Increases with every change of the mask or the weak label."""
         return self._revision
 
     @property
@@ -345,7 +345,7 @@ class EditorState(EditingTools):
 
     # ------------------------------------------------------------------ history
     def _touch(self, box: Box) -> None:
-        """A live change of the mask or the scribbles inside ``box``."""
+        """A live change of the mask or the weak label inside ``box``."""
         self._revision += 1
         self._renderer.touched(box)
 
@@ -392,13 +392,13 @@ class EditorState(EditingTools):
         return self._step(True)
 
     def restore_draft(
-        self, mask: np.ndarray, scribbles: np.ndarray, *, actions: int = 0, seconds: float = 0.0
+        self, mask: np.ndarray, weak_label: np.ndarray, *, actions: int = 0, seconds: float = 0.0
     ) -> bool:
         """Load a saved draft (one undoable action); its counters are added to ours.
 
         Parameters
         ----------
-        mask, scribbles : ndarray, shape (H, W), uint8
+        mask, weak_label : ndarray, shape (H, W), uint8
             The draft's layers.
         actions, seconds : int, float
             Effort already spent on the draft.
@@ -406,17 +406,17 @@ class EditorState(EditingTools):
         Returns
         -------
         bool
-            True when the draft differs from the current mask or scribbles.
+            True when the draft differs from the current mask or weak label.
         """
         m = self._checked(mask, "mask")
-        s = self._checked(scribbles, "scribbles")
+        s = self._checked(weak_label, "weak_label")
         self._finish_gesture()
         self._mask[:] = m
-        self._scrib[:] = s
+        self._weak[:] = s
         self._actions += int(actions)
         self._seconds += float(seconds)
         self._count()
-        return self._record([("mask", None), ("scribbles", None)])
+        return self._record([("mask", None), ("weak_label", None)])
 
     # ------------------------------------------------------------------ view
     @property
@@ -492,7 +492,7 @@ class EditorState(EditingTools):
 
     # ------------------------------------------------------------------ rendering
     def render(self) -> np.ndarray:
-        """The view as a BGR image of ``view_shape``: tile, overlay, outlines, scribbles,
+        """The view as a BGR image of ``view_shape``: tile, overlay, outlines, weak label,
         the open polygon or box, the brush cursor; two panes when comparing.
 
         Returns
@@ -508,6 +508,6 @@ class EditorState(EditingTools):
             cursor_class=self._active,
         )
         return self._renderer.render(
-            self._mask, self._scrib, viewport=self._viewport, compare=self._compare,
+            self._mask, self._weak, viewport=self._viewport, compare=self._compare,
             compare_label=self._compare_label, marks=marks,
         )

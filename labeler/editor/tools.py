@@ -12,7 +12,7 @@ Erase
     class 0 (soil).
 
 Relearn (learning from the marks on this tile)
-    The marks are the scribbles and every pixel corrected by hand (where the mask differs
+    The marks are the weak label and every pixel corrected by hand (where the mask differs
     from the model's layer), with their classes. :meth:`EditingTools.relearn` hands them
     to the state's ``learner`` (in a project: the head's classifier re-fitted on this
     tile's cached features, :mod:`labeler.model.ontile`), which returns a new proposal of
@@ -22,7 +22,7 @@ Relearn (learning from the marks on this tile)
 
 Actions
     A stroke (press, drag, release), a polygon vertex, a click that closes or fills, a box,
-    and the commands refine and clear scribbles each count as one action, also when they
+    and the commands refine and clear the weak label each count as one action, also when they
     change nothing.
 """
 
@@ -41,7 +41,8 @@ from labeler.masks.refine import grabcut_box, refine_random_walker
 
 __all__ = ["STROKE_KINDS", "CLOSE_PX", "EditingTools"]
 
-#: What a stroke writes: the active class into the mask, the proposal back, or a scribble.
+#: What a stroke writes: the active class into the mask, the proposal back, or marks into
+#: the weak label.
 STROKE_KINDS = ("brush", "erase", "scribble")
 #: A polygon click this close (view pixels) to the first vertex closes the polygon.
 CLOSE_PX = 8.0
@@ -60,10 +61,10 @@ class EditingTools:
     Notes
     -----
     The host class provides the layers ``_image`` (H, W, 3), ``_proposal``, ``_base``
-    (the model's layer), ``_mask`` and ``_scrib`` (H, W) uint8 and ``_shape``; the
+    (the model's layer), ``_mask`` and ``_weak`` (H, W) uint8 and ``_shape``; the
     settings ``_tool``, ``_active``, ``_radius``, ``connectivity``, ``band_px``, ``snap``,
     ``learner``, ``relearn_on_scribble``, ``notice`` and the property
-    ``has_scribbles``; the view (``transform``, ``pane_of``); and the bookkeeping
+    ``has_weak_label``; the view (``transform``, ``pane_of``); and the bookkeeping
     ``note_activity()`` (active time), ``_count()`` (one action), ``_touch(box)`` (a live
     change to redraw) and ``_record(boxes)`` (one undoable history entry; True if anything
     changed). It calls :meth:`_init_tools` from its constructor.
@@ -87,7 +88,7 @@ class EditingTools:
         elif kind == "erase":
             self._mask[rs, cs][sel] = self._base[rs, cs][sel]
         else:
-            self._scrib[rs, cs][sel] = self._active
+            self._weak[rs, cs][sel] = self._active
         self._touch((rs.start, rs.stop, cs.start, cs.stop))
 
     def _grow(self, patch: Patch) -> None:
@@ -133,9 +134,9 @@ class EditingTools:
         if stroke.kind == "scribble":
             if self.relearn_on_scribble and self.learner is not None and self._learn():
                 return self._record(
-                    [("scribbles", (r0, r1, c0, c1)), ("mask", None), ("base", None)]
+                    [("weak_label", (r0, r1, c0, c1)), ("mask", None), ("base", None)]
                 )
-            return self._record([("scribbles", (r0, r1, c0, c1))])
+            return self._record([("weak_label", (r0, r1, c0, c1))])
         return self._record([("mask", (r0, r1, c0, c1))])
 
     def _whole_stroke(self, points: Sequence[tuple[float, float]], kind: str) -> bool:
@@ -156,7 +157,7 @@ class EditingTools:
         return self._whole_stroke(points, "erase")
 
     def scribble(self, points: Sequence[tuple[float, float]]) -> bool:
-        """One scribble stroke of the active class (weak label, for refine)."""
+        """One scribble stroke: marks of the active class into the weak label (for refine)."""
         return self._whole_stroke(points, "scribble")
 
     # ------------------------------------------------------------------ polygon, fill, box
@@ -240,17 +241,17 @@ class EditingTools:
         box: Box = (r0, min(int(row1), self._shape[0]), c0, min(int(col1), self._shape[1]))
         return self._record([("mask", box)])
 
-    # ------------------------------------------------------------------ scribbles, refine
-    def clear_scribbles(self) -> bool:
-        """Remove every scribble (one action, undoable)."""
+    # ---------------------------------------------------------------- weak label, refine
+    def clear_weak_label(self) -> bool:
+        """Clear the weak label (one action, undoable)."""
         self._finish_gesture()
         self.note_activity()
         self._count()
-        self._scrib[:] = UNLABELLED
-        return self._record([("scribbles", None)])
+        self._weak[:] = UNLABELLED
+        return self._record([("weak_label", None)])
 
     def refine(self, *, snap: bool | None = None) -> bool:
-        """Decide the band around the scribbles again by random walker (one action).
+        """Decide the band around the weak label again by random walker (one action).
 
         Parameters
         ----------
@@ -259,12 +260,12 @@ class EditingTools:
         """
         self._finish_gesture()
         self.note_activity()
-        if not self.has_scribbles:
-            self.notice = "no scribbles yet: pick the scribble tool and mark each class"
+        if not self.has_weak_label:
+            self.notice = "no weak label yet: mark each class with the scribble tool"
             return False
         self._count()
         refined = refine_random_walker(
-            self._image, self._mask, self._scrib, band_px=self.band_px,
+            self._image, self._mask, self._weak, band_px=self.band_px,
             snap=self.snap if snap is None else bool(snap),
         )
         self._mask[:] = refined
@@ -275,12 +276,12 @@ class EditingTools:
     def marks(self) -> np.ndarray:
         """What the annotator told the model on this tile, (H, W) uint8.
 
-        The scribbles where scribbled; elsewhere the mask's class where it was corrected
+        The weak label where marked; elsewhere the mask's class where it was corrected
         by hand (differs from the model's layer); 255 everywhere else.
         """
         out = np.where(self._mask != self._base, self._mask, UNLABELLED).astype(np.uint8)
-        scribbled = self._scrib != UNLABELLED
-        out[scribbled] = self._scrib[scribbled]
+        marked = self._weak != UNLABELLED
+        out[marked] = self._weak[marked]
         return out
 
     def _learn(self) -> bool:

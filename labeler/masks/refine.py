@@ -1,18 +1,18 @@
-"""Weak labels to full masks: random walker from scribbles, superpixel snapping, GrabCut.
+"""Weak labels to full masks: random walker from marked pixels, superpixel snapping, GrabCut.
 
 Pure array work (numpy, scipy, scikit-image; OpenCV only for the GrabCut maths). Masks are
-``(H, W)`` uint8 class indices; a scribble mask holds a class index on scribbled pixels and
+``(H, W)`` uint8 class indices; a weak label holds a class index on marked pixels and
 255 (:data:`labeler.classes.UNLABELLED`) elsewhere. Images are ``(H, W, 3)`` uint8 RGB.
 
-Refinement is local: only a band of ``band_px`` pixels around the scribbles is decided
-again; outside it the mask is kept, and the band's outer rim acts as seeds carrying the
+Refinement is local: only a band of ``band_px`` pixels around the weak label's marks is
+decided again; outside it the mask is kept, and the band's outer rim acts as seeds carrying the
 current mask's classes, so the new boundary joins the old mask smoothly.
 
 Refinement stops at strong colour edges: the band is cut into colour regions
 (:mod:`labeler.masks.colour_regions`), and a pixel may only take a class whose seeds
-(scribbles or rim) lie in its own region. A region seeded with one class takes it, a
+(marks or rim) lie in its own region. A region seeded with one class takes it, a
 region seeded with several lets the random walker choose among them, and a region with
-no seed keeps the current mask. So one weed scribble on a plant labels the plant and
+no seed keeps the current mask. So one weed scribble stroke on a plant labels the plant and
 never the soil beyond its edge, whether or not the result is snapped to superpixels.
 """
 
@@ -33,7 +33,7 @@ from labeler.masks.colour_regions import (
 )
 
 __all__ = [
-    "scribble_band",
+    "weak_label_band",
     "refine_random_walker",
     "snap_to_superpixels",
     "grabcut_box",
@@ -62,24 +62,24 @@ def _check_like(arr: np.ndarray, image: np.ndarray, name: str) -> np.ndarray:
     return a
 
 
-def scribble_band(scribbles: np.ndarray, *, band_px: float) -> np.ndarray:
-    """Pixels within ``band_px`` (Euclidean) of a scribbled pixel, scribbles included.
+def weak_label_band(weak_label: np.ndarray, *, band_px: float) -> np.ndarray:
+    """Pixels within ``band_px`` (Euclidean) of a marked pixel, marks included.
 
     Parameters
     ----------
-    scribbles : ndarray, shape (H, W), uint8
-        Class index on scribbled pixels, 255 elsewhere.
+    weak_label : ndarray, shape (H, W), uint8
+        Class index on marked pixels, 255 elsewhere.
     band_px : float
         Band half-width in pixels, at least 0.
 
     Returns
     -------
     band : ndarray, shape (H, W), bool
-        All False when there is no scribble.
+        All False when nothing is marked.
     """
-    s = np.asarray(scribbles)
+    s = np.asarray(weak_label)
     if s.ndim != 2:
-        raise ValueError(f"scribbles: expected a 2-D array, got shape {s.shape}")
+        raise ValueError(f"weak_label: expected a 2-D array, got shape {s.shape}")
     if not np.isfinite(band_px) or band_px < 0:
         raise ValueError(f"band_px: expected a width of at least 0 pixels, got {band_px}")
     have = s != UNLABELLED
@@ -101,7 +101,7 @@ def _bbox(sel: np.ndarray, pad: int) -> tuple[slice, slice]:
 def refine_random_walker(
     image: np.ndarray,
     mask: np.ndarray,
-    scribbles: np.ndarray,
+    weak_label: np.ndarray,
     *,
     band_px: float = 24.0,
     beta: float = 130.0,
@@ -112,16 +112,16 @@ def refine_random_walker(
     edge_threshold: float | None = DEFAULT_EDGE_THRESHOLD,
     edge_sigma: float = DEFAULT_EDGE_SIGMA,
 ) -> np.ndarray:
-    """Turn scribbles plus the current mask into a full mask by random walker.
+    """Turn a weak label plus the current mask into a full mask by random walker.
 
-    Inside the band around the scribbles every pixel is decided again by the random
+    Inside the band around the marks every pixel is decided again by the random
     walker of Grady (2006), ``skimage.segmentation.random_walker(data, labels,
-    beta=beta, mode=..., channel_axis=-1)``: scribbled pixels are seeds of their class,
+    beta=beta, mode=..., channel_axis=-1)``: marked pixels are seeds of their class,
     the rim just outside the band is seeded with the current mask, and the remaining band
     pixels are unknown. Each band pixel then takes, among the classes seeded in its colour
     region (see the module notes), the one the walker finds most probable; a region
     without seeds keeps the current mask. Outside the band the mask is returned
-    unchanged; scribbled pixels always end with their scribble's class.
+    unchanged; marked pixels always end with their marked class.
 
     Parameters
     ----------
@@ -130,8 +130,8 @@ def refine_random_walker(
     mask : ndarray, shape (H, W), uint8
         Current class mask (the proposal or the edited mask). Rim pixels of value 255
         carry no seed.
-    scribbles : ndarray, shape (H, W), uint8
-        Class index on scribbled pixels, 255 elsewhere.
+    weak_label : ndarray, shape (H, W), uint8
+        Class index on marked pixels, 255 elsewhere.
     band_px : float
         Half-width of the band that is decided again.
     beta : float
@@ -154,15 +154,15 @@ def refine_random_walker(
     Returns
     -------
     refined : ndarray, shape (H, W), uint8
-        A new array; equal to ``mask`` when there is no scribble.
+        A new array; equal to ``mask`` when nothing is marked.
     """
     img = _check_image(image)
     m = _check_like(mask, img, "mask")
-    s = _check_like(scribbles, img, "scribbles")
+    s = _check_like(weak_label, img, "weak_label")
     if mode not in ("auto", "cg_j", "bf", "cg"):
         raise ValueError(f"mode: expected 'auto', 'cg_j', 'bf' or 'cg', got {mode!r}")
     out = m.copy()
-    band = scribble_band(s, band_px=band_px)
+    band = weak_label_band(s, band_px=band_px)
     if not band.any():
         return out
     rs, cs = _bbox(band, 1)

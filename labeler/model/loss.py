@@ -1,7 +1,7 @@
 """The training loss of the proposal head: partial cross-entropy with class weights.
 
 Partial cross-entropy (``ignore_index=255``): pixels a weak label leaves open contribute
-nothing, so full masks and scribbles mix freely (Tang et al. 2018, "Normalized cut loss
+nothing, so full masks and weak labels mix freely (Tang et al. 2018, "Normalized cut loss
 for weakly-supervised CNN segmentation", CVPR). Class weights counter imbalance: with
 ``f_k`` the share of class k among the labelled training pixels,
 ``w_k = f_k ** -0.5 / sum_j f_j ** 0.5`` (inverse square root of the frequency, scaled so

@@ -1,7 +1,7 @@
-"""Training the proposal head on full masks and weak (scribble) masks together.
+"""Training the proposal head on full masks and weak labels together.
 
 Loss: partial cross-entropy with class weights (:mod:`labeler.model.loss`): pixels a weak
-label leaves open contribute nothing, so full masks and scribbles mix freely.
+label leaves open contribute nothing, so full masks and weak labels mix freely.
 
 Augmentation modes (how a batch is built and moved: :mod:`labeler.model.augment`):
 
@@ -275,7 +275,7 @@ def train_head(
     Parameters
     ----------
     masks : sequence of N ndarray, each (H, W) uint8
-        Truth per tile: class indices, 255 where unlabelled (scribbles and full masks
+        Truth per tile: class indices, 255 where unlabelled (weak labels and full masks
         mix). Tiles with no labelled pixel are skipped.
     class_indices : sequence of int
         Schema indices the head predicts (channel order), e.g. ``(0, 1, 2, 3)``.

@@ -11,13 +11,14 @@ nonsense.
 
 from __future__ import annotations
 
-import hashlib
 import os
 from collections.abc import Mapping
 from functools import lru_cache
 from pathlib import Path
 
 import torch
+
+from labeler.fileio import sha256_file
 
 __all__ = [
     "WEIGHTS_FILE",
@@ -70,15 +71,24 @@ def weights_path() -> Path:
 
 @lru_cache(maxsize=8)
 def _digest(path: str, size: int, mtime_ns: int) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
+    """The file's SHA-256, remembered per (path, size, modification time): a file that
+    changes on disk is hashed again."""
+    return sha256_file(path)
 
 
 def weights_digest(path: str | os.PathLike[str] | None = None) -> str:
-    """SHA-256 hex digest of a weights file (the packaged one by default)."""
+    """SHA-256 hex digest of a weights file (the packaged one by default).
+
+    Parameters
+    ----------
+    path : path-like, optional
+        The weights file; default :func:`weights_path`.
+
+    Returns
+    -------
+    str
+        64 lower-case hex digits; computed once per file size and modification time.
+    """
     p = Path(path) if path is not None else weights_path()
     st = p.stat()
     return _digest(str(p), st.st_size, st.st_mtime_ns)

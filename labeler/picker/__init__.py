@@ -9,7 +9,7 @@ Three layers, each taking and returning arrays, one module each:
    :func:`class_rarity`, :func:`rarity_weights`, :func:`disagreement_scores`, the
    scalars a proposal carries in the store.
 3. **Per batch**: the greedy k-center core-set (:mod:`~labeler.picker.coreset`) and
-   :func:`select_batch` (:mod:`~labeler.picker.select`) over a :class:`CandidatePool`
+   :func:`pick_batch` (:mod:`~labeler.picker.pick`) over a :class:`CandidatePool`
    (:mod:`~labeler.picker.pool`): which tiles come next, in order, each with a score and
    a reason out of :data:`REASONS`.
 
@@ -20,8 +20,8 @@ advice; see the README for the cautions on spraying and fungicide decisions.
 from __future__ import annotations
 
 from labeler.picker.coreset import covering_radius, k_center_greedy
+from labeler.picker.pick import REASONS, STRATEGIES, Pick, pick_batch
 from labeler.picker.pool import CandidatePool
-from labeler.picker.select import REASONS, STRATEGIES, Selection, select_batch
 from labeler.picker.tile_scores import (
     TileUncertainty,
     class_rarity,
@@ -55,6 +55,6 @@ __all__ = [
     "CandidatePool",
     "STRATEGIES",
     "REASONS",
-    "Selection",
-    "select_batch",
+    "Pick",
+    "pick_batch",
 ]

@@ -1,4 +1,4 @@
-"""Core-set selection: greedy k-center over tile embeddings (Sener & Savarese 2018).
+"""Core-set: greedy k-center over tile embeddings (Sener & Savarese 2018).
 
 Spelling: "k-center" is the name of the facility-location problem the greedy rule
 approximates; every name here (:func:`k_center_greedy`, ``centers``) uses it.
@@ -63,7 +63,7 @@ class _KCenterRun:
 def _k_center(
     xc: np.ndarray, xl: np.ndarray, k: int, weights: np.ndarray | None
 ) -> _KCenterRun:
-    """Greedy k-center over candidate rows given labelled rows (shared with ``select``).
+    """Greedy k-center over candidate rows given labelled rows (shared with ``pick``).
 
     Parameters
     ----------

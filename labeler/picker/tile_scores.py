@@ -1,7 +1,7 @@
 """Per-tile scores of the picker: mean uncertainty, class rarity, disagreement.
 
 These are the scalars a proposal carries in the store (:class:`TileUncertainty`) and the
-weights :func:`labeler.picker.select.select_batch` multiplies them with.
+weights :func:`labeler.picker.pick.pick_batch` multiplies them with.
 """
 
 from __future__ import annotations

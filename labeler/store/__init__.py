@@ -13,8 +13,8 @@ from labeler.store.records import (
     EventRecord,
     ImageRecord,
     ModelVersionRecord,
+    PickItem,
     ProposalRecord,
-    RankingItem,
     TileRecord,
 )
 from labeler.store.store import Store
@@ -30,6 +30,6 @@ __all__ = [
     "DraftRecord",
     "ModelVersionRecord",
     "ProposalRecord",
-    "RankingItem",
+    "PickItem",
     "EventRecord",
 ]

@@ -24,7 +24,15 @@ from sqlalchemy.exc import IntegrityError
 
 from labeler.errors import ConflictError, LabelerError
 from labeler.imagery.write import png_bytes
-from labeler.states import AMENDED, ANNOTATION_KINDS, ANNOTATION_STATES, SETTLED
+from labeler.states import (
+    AMENDED,
+    ANNOTATION_KINDS,
+    ANNOTATION_STATES,
+    IMPORTED,
+    KIND_FULL,
+    SETTLED,
+    WEAK,
+)
 from labeler.store import schema as t
 from labeler.store.base import now
 from labeler.store.history import HistoryMixin, annotation_query, annotation_row, lineage_head_in
@@ -45,8 +53,8 @@ class NewAnnotation:
     annotator: str
     mask: np.ndarray
     parent_version: int | None
-    kind: str = "full"
-    state: str = "amended"
+    kind: str = KIND_FULL
+    state: str = AMENDED
     seconds: float = 0.0
     actions: int = 0
     source: str = "editor"
@@ -59,8 +67,8 @@ def tile_state_after_save(kind: str, state: str, tile_state: str | None = None) 
 
     Parameters
     ----------
-    kind : {"full", "scribble"}
-        The annotation's kind.
+    kind : {KIND_FULL, KIND_WEAK}
+        The annotation's kind: a full mask or a weak label (:mod:`labeler.states`).
     state : str
         The annotation's state (one of :data:`labeler.states.ANNOTATION_STATES`).
     tile_state : str, optional
@@ -70,11 +78,11 @@ def tile_state_after_save(kind: str, state: str, tile_state: str | None = None) 
     -------
     str or None
         ``tile_state`` if given; else ``state`` for full masks (``amended`` for
-        ``imported`` ones); None for scribbles and for ``weak`` full masks.
+        ``imported`` ones); None for weak labels and for ``weak`` full masks.
     """
-    if tile_state is not None or kind != "full":
+    if tile_state is not None or kind != KIND_FULL:
         return tile_state
-    return {"imported": AMENDED, "weak": None}.get(state, state)
+    return {IMPORTED: AMENDED, WEAK: None}.get(state, state)
 
 
 def _conflict(
@@ -218,7 +226,7 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
         mask: np.ndarray,
         *,
         parent_version: int | None,
-        kind: str = "full",
+        kind: str = KIND_FULL,
         state: str = AMENDED,
         seconds: float = 0.0,
         actions: int = 0,
@@ -241,7 +249,8 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
         parent_version : int or None
             The version this mask was based on: the newest version of the tile's
             lineage (None when the lineage has no saved version yet).
-        kind : {"full", "scribble"}
+        kind : {KIND_FULL, KIND_WEAK}
+            A full mask or a weak label (:mod:`labeler.states`).
         state : {"accepted", "amended", "settled", "imported", "weak"}
             What the annotation records (decided by the workflow).
         seconds, actions : float, int
@@ -252,7 +261,7 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
             The proposal the annotator started from.
         tile_state : str, optional
             Tile state after the save (default: see :func:`tile_state_after_save`:
-            ``state`` for full masks, unchanged for scribbles; ``imported`` full masks
+            ``state`` for full masks, unchanged for weak labels; ``imported`` full masks
             leave the tile ``amended``). Checked against the life cycle.
 
         Returns

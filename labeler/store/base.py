@@ -25,12 +25,29 @@ __all__ = ["StoreBase", "now", "as_utc"]
 
 
 def now() -> datetime:
-    """The current time, UTC, timezone-aware."""
+    """The current time.
+
+    Returns
+    -------
+    datetime
+        UTC, timezone-aware.
+    """
     return datetime.now(UTC)
 
 
 def as_utc(value: datetime | None) -> datetime | None:
-    """``value`` as a timezone-aware UTC time (SQLite returns naive times); None stays None."""
+    """A stored time as a timezone-aware UTC time (SQLite returns naive times).
+
+    Parameters
+    ----------
+    value : datetime or None
+        A time read from the database, naive (meaning UTC) or aware.
+
+    Returns
+    -------
+    datetime or None
+        ``value`` with UTC as its zone when it had none; None stays None.
+    """
     if value is None:
         return None
     return value if value.tzinfo is not None else value.replace(tzinfo=UTC)

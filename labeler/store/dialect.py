@@ -18,7 +18,17 @@ BUSY_TIMEOUT_MS = 30_000
 
 
 def is_sqlite(engine: sa.Engine) -> bool:
-    """True for the embedded SQLite store."""
+    """Whether an engine is the embedded SQLite store.
+
+    Parameters
+    ----------
+    engine : sqlalchemy.Engine
+
+    Returns
+    -------
+    bool
+        True for SQLite, False for a server (PostgreSQL).
+    """
     return engine.dialect.name == "sqlite"
 
 
@@ -26,6 +36,18 @@ def make_engine(url: str) -> sa.Engine:
     """Create an engine for ``url`` with the dialect's safety settings.
 
     Write transactions are opened with ``connection.execution_options(write=True)``.
+    SQLite runs in WAL mode with full synchronous writes, foreign keys on, a busy timeout,
+    and ``BEGIN IMMEDIATE`` for write transactions; a server engine checks its pooled
+    connections before use.
+
+    Parameters
+    ----------
+    url : str
+        SQLAlchemy database URL (``sqlite:///...`` or ``postgresql+psycopg://...``).
+
+    Returns
+    -------
+    sqlalchemy.Engine
     """
     if url.startswith("sqlite"):
         engine = sa.create_engine(url, connect_args={"timeout": BUSY_TIMEOUT_MS / 1000})
@@ -53,10 +75,19 @@ def make_engine(url: str) -> sa.Engine:
 
 
 def integrity_check(engine: sa.Engine) -> str:
-    """Run the database's own consistency check; ``"ok"`` when sound.
+    """Run the database's own consistency check.
 
     SQLite: ``PRAGMA integrity_check``. Other dialects: a trivial query (their servers
     check themselves).
+
+    Parameters
+    ----------
+    engine : sqlalchemy.Engine
+
+    Returns
+    -------
+    str
+        ``"ok"`` when sound, else the problems the database reports, joined by ``"; "``.
     """
     with engine.connect() as conn:
         if is_sqlite(engine):

@@ -32,7 +32,7 @@ class DraftsMixin(ImagesMixin):
         annotator: str,
         mask: np.ndarray,
         *,
-        scribbles: np.ndarray | None = None,
+        weak_label: np.ndarray | None = None,
         parent_version: int | None = None,
         seconds: float = 0.0,
         actions: int = 0,
@@ -46,8 +46,8 @@ class DraftsMixin(ImagesMixin):
             Name; created if new.
         mask : ndarray, shape (H, W), uint8
             The full mask being edited; must have the tile's shape.
-        scribbles : ndarray, shape (H, W), uint8, optional
-            The scribble layer (255 = no scribble); must have the tile's shape.
+        weak_label : ndarray, shape (H, W), uint8, optional
+            The weak label (255 = not marked); must have the tile's shape.
         parent_version : int or None
             The version the edit was based on (the parent of its eventual save).
         seconds, actions : float, int
@@ -60,19 +60,19 @@ class DraftsMixin(ImagesMixin):
         Raises
         ------
         ValueError
-            If ``mask`` or ``scribbles`` does not have the tile's shape.
+            If ``mask`` or ``weak_label`` does not have the tile's shape.
         NotFoundError
             If the tile does not exist.
         """
         tile = self.tile(tile_id)
-        for name, arr in (("mask", mask), ("scribbles", scribbles)):
+        for name, arr in (("mask", mask), ("weak_label", weak_label)):
             if arr is not None and np.asarray(arr).shape != tile.shape:
                 raise ValueError(
                     f"{name}: expected shape {tile.shape} of tile {tile_id}, "
                     f"got {np.asarray(arr).shape}"
                 )
         data = png_bytes(np.asarray(mask, np.uint8))
-        sdata = None if scribbles is None else png_bytes(np.asarray(scribbles, np.uint8))
+        sdata = None if weak_label is None else png_bytes(np.asarray(weak_label, np.uint8))
         with self._write() as conn:
             aid = self._annotator_id(conn, annotator)
             conn.execute(t.drafts.delete().where(_owner(tile_id, aid)))
@@ -126,7 +126,7 @@ class DraftsMixin(ImagesMixin):
             actions=int(r.actions),
             saved_at=as_utc(r.saved_at),
             mask=decode_mask(r.mask_png, shape=tile.shape, what=what),
-            scribbles=None
+            weak_label=None
             if r.scribble_png is None
             else decode_mask(r.scribble_png, shape=tile.shape, what=what),
         )

@@ -1,7 +1,7 @@
 """The event log and the figures counted from the store.
 
 The event log only ever gets new rows: every save, hold, state move, proposal batch,
-ranking and model version appends one (inside the same transaction as the change, see
+pick and model version appends one (inside the same transaction as the change, see
 :meth:`labeler.store.base.StoreBase._event`). The counts here are what the status and
 effort screens show.
 """
@@ -12,7 +12,7 @@ from datetime import datetime
 
 import sqlalchemy as sa
 
-from labeler.states import STATES
+from labeler.states import KIND_FULL, STATES
 from labeler.store import schema as t
 from labeler.store.base import StoreBase, as_utc
 from labeler.store.records import EventRecord
@@ -110,7 +110,7 @@ class EventsMixin(StoreBase):
         -------
         dict of str to dict
             Per annotator name: ``tiles`` (distinct tiles with a full save),
-            ``scribbles`` (distinct tiles with a scribble save), ``seconds`` and
+            ``weak_labels`` (distinct tiles with a weak-label save), ``seconds`` and
             ``actions`` (summed over every save).
         """
         q = (
@@ -129,8 +129,10 @@ class EventsMixin(StoreBase):
         out: dict[str, dict[str, float]] = {}
         with self._read() as conn:
             for name, kind, n, secs, acts in conn.execute(q):
-                d = out.setdefault(name, {"tiles": 0, "scribbles": 0, "seconds": 0.0, "actions": 0})
-                d["tiles" if kind == "full" else "scribbles"] += int(n)
+                d = out.setdefault(
+                    name, {"tiles": 0, "weak_labels": 0, "seconds": 0.0, "actions": 0}
+                )
+                d["tiles" if kind == KIND_FULL else "weak_labels"] += int(n)
                 d["seconds"] += float(secs or 0.0)
                 d["actions"] += int(acts or 0)
         return out

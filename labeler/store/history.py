@@ -15,7 +15,7 @@ from datetime import datetime
 import sqlalchemy as sa
 
 from labeler.errors import NotFoundError
-from labeler.states import SETTLED
+from labeler.states import KIND_FULL, SETTLED
 from labeler.store import schema as t
 from labeler.store.base import as_utc
 from labeler.store.images import ImagesMixin
@@ -25,14 +25,31 @@ __all__ = ["HistoryMixin", "annotation_query", "annotation_row", "lineage_head_i
 
 
 def annotation_query() -> sa.Select:
-    """Annotation rows joined with their annotator's name (column ``annotator``)."""
+    """The query of annotation rows joined with their annotator's name.
+
+    Returns
+    -------
+    sqlalchemy.Select
+        Every column of ``annotations`` plus ``annotator`` (the name); callers add their
+        ``where`` and ``order_by``.
+    """
     return sa.select(t.annotations, t.annotators.c.name.label("annotator")).select_from(
         t.annotations.join(t.annotators, t.annotations.c.annotator_id == t.annotators.c.id)
     )
 
 
 def annotation_row(r: sa.Row) -> AnnotationRecord:
-    """The record of one row of :func:`annotation_query`."""
+    """The record of one row of :func:`annotation_query`.
+
+    Parameters
+    ----------
+    r : sqlalchemy.Row
+        A row of :func:`annotation_query`.
+
+    Returns
+    -------
+    AnnotationRecord
+    """
     return AnnotationRecord(
         id=r.id,
         tile_id=r.tile_id,
@@ -55,10 +72,26 @@ def annotation_row(r: sa.Row) -> AnnotationRecord:
 def lineage_head_in(
     conn: sa.Connection, tile: sa.Row, annotator_id: int, *, settling: bool
 ) -> int | None:
-    """Newest version a save must be based on, inside ``conn`` (None = none saved yet).
+    """The newest version a save must be based on, read inside ``conn``.
 
-    ``tile`` is the tile's row; on an overlap tile that is not settled, only the
-    annotator's own versions count unless ``settling`` (a reviewer's save).
+    On an overlap tile that is not settled, only the annotator's own versions count unless
+    ``settling`` (a reviewer's save).
+
+    Parameters
+    ----------
+    conn : sqlalchemy.Connection
+        The save's transaction.
+    tile : sqlalchemy.Row
+        The tile's row of ``tiles``.
+    annotator_id : int
+        The saver's id.
+    settling : bool
+        True for a reviewer settling a contested tile.
+
+    Returns
+    -------
+    int or None
+        The version; None when the lineage has no saved version yet.
     """
     q = sa.select(sa.func.max(t.annotations.c.version)).where(t.annotations.c.tile_id == tile.id)
     if tile.overlap and not settling and tile.state != SETTLED:
@@ -90,7 +123,7 @@ class HistoryMixin(ImagesMixin):
             return [annotation_row(r) for r in conn.execute(q)]
 
     def latest_annotation(
-        self, tile_id: int, *, annotator: str | None = None, kind: str | None = "full"
+        self, tile_id: int, *, annotator: str | None = None, kind: str | None = KIND_FULL
     ) -> AnnotationRecord | None:
         """The newest annotation of a tile, of one annotator and/or kind.
 
@@ -99,7 +132,7 @@ class HistoryMixin(ImagesMixin):
         tile_id : int
         annotator : str, optional
             Only this annotator's saves.
-        kind : {"full", "scribble"} or None
+        kind : {KIND_FULL, KIND_WEAK} or None
             Only saves of this kind; None for any.
 
         Returns
@@ -171,7 +204,7 @@ class HistoryMixin(ImagesMixin):
         self,
         *,
         since: datetime | None = None,
-        kind: str | None = "full",
+        kind: str | None = KIND_FULL,
         tile_ids: Iterable[int] | None = None,
     ) -> list[AnnotationRecord]:
         """Annotation rows (every version), filtered by time, kind and tiles.
@@ -180,7 +213,7 @@ class HistoryMixin(ImagesMixin):
         ----------
         since : datetime, optional
             Only rows saved at or after this time (timezone-aware).
-        kind : {"full", "scribble"} or None
+        kind : {KIND_FULL, KIND_WEAK} or None
             Only rows of this kind; None for any.
         tile_ids : iterable of int, optional
             Only rows of these tiles.

@@ -13,7 +13,17 @@ import sqlalchemy as sa
 
 from labeler import states
 from labeler.errors import LabelerError, NotFoundError
-from labeler.states import CONTESTED, HELD, PARKED, PROPOSED, SAVED_STATES, SETTLED, STATES, UNSEEN
+from labeler.states import (
+    CONTESTED,
+    HELD,
+    KIND_FULL,
+    PARKED,
+    PROPOSED,
+    SAVED_STATES,
+    SETTLED,
+    STATES,
+    UNSEEN,
+)
 from labeler.store import schema as t
 from labeler.store.base import now
 from labeler.store.images import ImagesMixin
@@ -230,7 +240,7 @@ class HoldsMixin(ImagesMixin):
             )
             return list(conn.execute(q).scalars())
 
-    def savers(self, tile_id: int, *, kind: str = "full") -> list[str]:
+    def savers(self, tile_id: int, *, kind: str = KIND_FULL) -> list[str]:
         """Distinct annotators with a saved annotation of ``kind`` on the tile.
 
         A reviewer's ``settled`` saves do not count.
@@ -238,7 +248,7 @@ class HoldsMixin(ImagesMixin):
         Parameters
         ----------
         tile_id : int
-        kind : {"full", "scribble"}
+        kind : {KIND_FULL, KIND_WEAK}
 
         Returns
         -------
@@ -287,7 +297,7 @@ class HoldsMixin(ImagesMixin):
             saved_by: dict[int, set[int]] = {}
             for tid, aid in conn.execute(
                 sa.select(t.annotations.c.tile_id, t.annotations.c.annotator_id).where(
-                    t.annotations.c.kind == "full"
+                    t.annotations.c.kind == KIND_FULL
                 )
             ):
                 saved_by.setdefault(tid, set()).add(aid)

@@ -1,9 +1,11 @@
-"""Proposals of the model, and the rankings (queue orders) the picker writes.
+"""Proposals of the model, and the picks (queue orders) the picker writes.
 
 Each proposal is a new row tied to the model version that made it; the newest proposal
 of a tile is the one shown. Storing a tile's first proposal moves it from ``unseen`` to
 ``proposed`` (through the life-cycle check); a tile in any later state keeps its state.
-A ranking is a numbered queue order; the queue reads the newest.
+A pick is a numbered queue order (each tile with its rank, the place in the order); the
+queue reads the newest. Picks are stored in the tables ``rankings`` and ``ranking_items``
+and logged as events of kind :data:`PICK_EVENT`, names that existing databases hold.
 """
 
 from __future__ import annotations
@@ -21,9 +23,12 @@ from labeler.store import schema as t
 from labeler.store.base import as_utc, now
 from labeler.store.holds import checked_move
 from labeler.store.images import ImagesMixin
-from labeler.store.records import ProposalRecord, RankingItem, npy_bytes
+from labeler.store.records import PickItem, ProposalRecord, npy_bytes
 
-__all__ = ["NewProposal", "ProposalsMixin"]
+__all__ = ["NewProposal", "ProposalsMixin", "PICK_EVENT"]
+
+#: Event kind of a stored pick (the code existing databases hold).
+PICK_EVENT = "ranked"
 
 
 @dataclass(frozen=True)
@@ -66,7 +71,7 @@ def _proposal_row(r: sa.Row, *, with_blobs: bool = True) -> ProposalRecord:
 
 
 class ProposalsMixin(ImagesMixin):
-    """Proposals and rankings of :class:`labeler.store.Store`."""
+    """Proposals and picks of :class:`labeler.store.Store`."""
 
     def _proposal_values(self, p: NewProposal, tile, model_version_id: int, stamp) -> dict:
         """Check one proposal against its tile and the class schema; its row values."""
@@ -231,9 +236,9 @@ class ProposalsMixin(ImagesMixin):
                 r.tile_id: _proposal_row(r, with_blobs=with_uncertainty) for r in conn.execute(q)
             }
 
-    # -- rankings -----------------------------------------------------------------------
-    def write_ranking(
-        self, *, strategy: str, k: int, seed: int, items: Sequence[RankingItem]
+    # -- picks --------------------------------------------------------------------------
+    def write_pick(
+        self, *, strategy: str, k: int, seed: int, items: Sequence[PickItem]
     ) -> int:
         """Store a new queue order; the queue reads the newest.
 
@@ -245,13 +250,13 @@ class ProposalsMixin(ImagesMixin):
             The batch size asked for.
         seed : int
             The picker's random seed.
-        items : sequence of RankingItem
+        items : sequence of PickItem
             Tiles with rank, score, reason and whether they are in the batch.
 
         Returns
         -------
         int
-            The new ranking's id.
+            The new pick's id.
         """
         with self._write() as conn:
             rid = int(
@@ -276,18 +281,18 @@ class ProposalsMixin(ImagesMixin):
                 )
             self._event(
                 conn,
-                "ranked",
+                PICK_EVENT,
                 detail={"ranking": rid, "strategy": strategy, "k": k, "tiles": len(items)},
             )
         return rid
 
-    def latest_ranking(self) -> list[RankingItem]:
-        """Items of the newest ranking.
+    def latest_pick(self) -> list[PickItem]:
+        """Items of the newest pick.
 
         Returns
         -------
-        list of RankingItem
-            By rank; empty when never ranked.
+        list of PickItem
+            By rank; empty when nothing was picked yet.
         """
         with self._read() as conn:
             rid = conn.execute(sa.select(sa.func.max(t.rankings.c.id))).scalar()
@@ -299,6 +304,6 @@ class ProposalsMixin(ImagesMixin):
                 .order_by(t.ranking_items.c.rank)
             )
             return [
-                RankingItem(r.tile_id, r.rank, r.score, r.reason, bool(r.in_batch))
+                PickItem(r.tile_id, r.rank, r.score, r.reason, bool(r.in_batch))
                 for r in conn.execute(q)
             ]

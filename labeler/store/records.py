@@ -18,7 +18,7 @@ __all__ = [
     "DraftRecord",
     "ModelVersionRecord",
     "ProposalRecord",
-    "RankingItem",
+    "PickItem",
     "EventRecord",
     "decode_mask",
     "npy_bytes",
@@ -28,6 +28,19 @@ __all__ = [
 
 def decode_mask(data: bytes, *, shape: tuple[int, int], what: str) -> np.ndarray:
     """Decode a stored PNG mask and check it against the tile's ``shape``.
+
+    Parameters
+    ----------
+    data : bytes
+        PNG bytes as stored.
+    shape : (int, int)
+        The tile's ``(H, W)``.
+    what : str
+        What the mask is, for the message (e.g. ``"annotation 12 of tile 3"``).
+
+    Returns
+    -------
+    ndarray, shape (H, W), uint8
 
     Raises
     ------
@@ -48,14 +61,36 @@ def decode_mask(data: bytes, *, shape: tuple[int, int], what: str) -> np.ndarray
 
 
 def npy_bytes(array: np.ndarray) -> bytes:
-    """Serialise an array as ``.npy`` bytes (no pickle)."""
+    """Serialise an array as ``.npy`` bytes (no pickle).
+
+    Parameters
+    ----------
+    array : ndarray
+        Any numeric array.
+
+    Returns
+    -------
+    bytes
+        The ``.npy`` file content (C order).
+    """
     buf = io.BytesIO()
     np.save(buf, np.ascontiguousarray(array), allow_pickle=False)
     return buf.getvalue()
 
 
 def npy_decode(data: bytes | None) -> np.ndarray | None:
-    """Inverse of :func:`npy_bytes`; ``None`` stays ``None``."""
+    """Inverse of :func:`npy_bytes`.
+
+    Parameters
+    ----------
+    data : bytes or None
+        ``.npy`` file content.
+
+    Returns
+    -------
+    ndarray or None
+        The array; None stays None.
+    """
     if data is None:
         return None
     return np.load(io.BytesIO(data), allow_pickle=False)
@@ -109,7 +144,7 @@ class TileRecord:
 
 @dataclass(frozen=True)
 class AnnotationRecord:
-    """One saved version of a tile's mask (full or scribble), never changed."""
+    """One saved version of a tile's mask (full mask or weak label), never changed."""
 
     id: int
     tile_id: int
@@ -128,7 +163,13 @@ class AnnotationRecord:
     mask_png: bytes = field(repr=False)
 
     def mask(self) -> np.ndarray:
-        """The mask (H, W) uint8, checked against the tile's shape."""
+        """The saved mask, decoded and checked against the tile's shape.
+
+        Returns
+        -------
+        ndarray, shape (H, W), uint8
+            Class indices; 255 where a weak label leaves pixels unlabelled.
+        """
         return decode_mask(
             self.mask_png,
             shape=(self.height, self.width),
@@ -147,7 +188,7 @@ class DraftRecord:
     actions: int
     saved_at: datetime
     mask: np.ndarray = field(repr=False)
-    scribbles: np.ndarray | None = field(repr=False)
+    weak_label: np.ndarray | None = field(repr=False)
 
 
 @dataclass(frozen=True)
@@ -186,7 +227,12 @@ class ProposalRecord:
     embedding_npy: bytes | None = field(repr=False, default=None)
 
     def mask(self) -> np.ndarray:
-        """The proposed mask (H, W) uint8, checked against the tile's shape."""
+        """The proposed mask, decoded and checked against the tile's shape.
+
+        Returns
+        -------
+        ndarray, shape (H, W), uint8
+        """
         return decode_mask(
             self.mask_png,
             shape=(self.height, self.width),
@@ -194,16 +240,29 @@ class ProposalRecord:
         )
 
     def uncertainty(self) -> np.ndarray | None:
-        """Downsampled uncertainty maps (3, h, w) float16: entropy, margin, BALD."""
+        """The proposal's downsampled uncertainty maps.
+
+        Returns
+        -------
+        ndarray, shape (3, h, w), float16, or None
+            Entropy, margin and BALD per cell; None when the proposal has none (cold
+            start) or was read without them.
+        """
         return npy_decode(self.uncertainty_npy)
 
     def embedding(self) -> np.ndarray | None:
-        """Pooled encoder embedding (D,) float32 for the picker."""
+        """The pooled encoder embedding the picker uses.
+
+        Returns
+        -------
+        ndarray, shape (D,), float32, or None
+            None when the proposal was stored without one.
+        """
         return npy_decode(self.embedding_npy)
 
 
 @dataclass(frozen=True)
-class RankingItem:
+class PickItem:
     """One tile's place in a queue order written by the picker."""
 
     tile_id: int

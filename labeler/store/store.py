@@ -11,7 +11,7 @@ module of this package:
 - :mod:`~labeler.store.history`: saved versions read back, lineage, who sees what;
 - :mod:`~labeler.store.drafts`: unsaved edits;
 - :mod:`~labeler.store.models`: model versions;
-- :mod:`~labeler.store.proposals`: proposals and rankings;
+- :mod:`~labeler.store.proposals`: proposals and picks (queue orders);
 - :mod:`~labeler.store.events`: the event log and counts.
 
 Every change of a tile's state, saves included, passes

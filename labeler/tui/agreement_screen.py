@@ -106,7 +106,13 @@ class AgreementScreen(Screen):
         self.loads += 1
 
     def selected_contested(self) -> int | None:
-        """Id of the contested tile under the cursor, or None."""
+        """The contested tile under the table cursor.
+
+        Returns
+        -------
+        int or None
+            Its id; None when no tile is contested.
+        """
         table = self.query_one("#contested-table", DataTable)
         if table.row_count == 0:
             return None

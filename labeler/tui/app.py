@@ -101,13 +101,33 @@ class QueueApp(App[int]):
         title: str = "",
         timeout: float | None = None,
     ) -> None:
-        """Show a notification (plain text, never markup) and keep it in :attr:`notices`."""
+        """Show a notification (plain text, never markup) and keep it in :attr:`notices`.
+
+        Parameters
+        ----------
+        message : str
+            The text, shown as is.
+        severity : {"information", "warning", "error"}
+            Textual's notification severity.
+        title : str
+            An optional title line.
+        timeout : float, optional
+            Seconds on screen (Textual's default when None).
+        """
         self.notices.append(Notice(severity, message, title))
         self.notify(message, title=title, severity=severity, timeout=timeout, markup=False)
 
     def report_error(self, exc: BaseException, *, doing: str = "") -> None:
-        """Show an error as one notification: the message of a :class:`LabelerError`, or
-        the kind and message of an unexpected error (the traceback goes to the log)."""
+        """Show an error as one notification.
+
+        Parameters
+        ----------
+        exc : BaseException
+            The error: a :class:`LabelerError` shows its message; any other error shows
+            its kind and message (the details go to the log).
+        doing : str
+            What failed (``"re-picking"``, ...), named for an unexpected error.
+        """
         if isinstance(exc, LabelerError):
             message = str(exc)
         else:
@@ -130,7 +150,14 @@ class QueueApp(App[int]):
 
     # -- the editor -----------------------------------------------------------------------
     def has_display(self) -> bool:
-        """True if an editor window can open here."""
+        """Whether an editor window can open here.
+
+        Returns
+        -------
+        bool
+            True on Windows and macOS, elsewhere when ``DISPLAY`` names an X display
+            (:func:`labeler.tui.launch.display_available`).
+        """
         return display_available(os.environ if self.environ is None else self.environ)
 
     def open_editor(
@@ -139,8 +166,20 @@ class QueueApp(App[int]):
         """Open ``tile_id`` in the editor process and wait for it in a worker.
 
         Without a display the app says so and starts nothing. One editor at a time.
-        ``on_done`` runs on the interface thread when the editor has closed.
-        Returns True if the editor was started.
+
+        Parameters
+        ----------
+        tile_id : int
+            The tile to edit.
+        settle : bool
+            Open a contested tile for a reviewer to settle.
+        on_done : callable, optional
+            Called without arguments on the interface thread when the editor has closed.
+
+        Returns
+        -------
+        bool
+            True if the editor was started.
         """
         if not self.has_display():
             self.tell(no_display_message(tile_id, settle=settle), severity="warning", timeout=20)

@@ -55,7 +55,7 @@ QUEUE_KEYS: tuple[Key, ...] = (
         "keep the proposal shown in the preview, unchanged, as your mask of the tile"),
     Key("p", "park", "park", "set the selected tile aside for later"),
     Key("n", "next", "next", "jump to the next tile you may take"),
-    Key("r", "rerank", "re-rank", "ask the picker for a new queue order (runs in the background)"),
+    Key("r", "repick", "re-pick", "ask the picker for a new queue order (runs in the background)"),
     Key("t", "retrain", "retrain",
         "train the model on the saved masks (runs in the background), then show its IoU"),
     Key("slash", "find", "find", "type a tile id in the search box and press Enter",

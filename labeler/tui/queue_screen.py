@@ -96,7 +96,13 @@ class QueueScreen(Screen):
 
     # -- rows ---------------------------------------------------------------------------
     def selected_tile(self) -> int | None:
-        """Id of the tile under the table cursor, or None when the table is empty."""
+        """The tile under the table cursor.
+
+        Returns
+        -------
+        int or None
+            Its id; None when the table is empty.
+        """
         table = self.query_one("#queue", DataTable)
         if table.row_count == 0:
             return None
@@ -104,12 +110,24 @@ class QueueScreen(Screen):
         return int(row_key.value)
 
     def table_order(self) -> list[int]:
-        """Tile ids in the order the table shows them."""
+        """The tiles in the order the table shows them.
+
+        Returns
+        -------
+        list of int
+            Tile ids, top row first (the filters applied).
+        """
         table = self.query_one("#queue", DataTable)
         return [int(r.key.value) for r in table.ordered_rows]
 
     def reload(self, *, select: int | None = None) -> None:
-        """Read the queue from the store again (in a worker) and redraw the table."""
+        """Read the queue from the store again (in a worker) and redraw the table.
+
+        Parameters
+        ----------
+        select : int, optional
+            Tile to put the cursor on afterwards (default: the tile under it now).
+        """
         self._load_rows(select)
 
     @work(thread=True, exclusive=True, group="rows", exit_on_error=False)
@@ -194,7 +212,16 @@ class QueueScreen(Screen):
     def select_tile(self, tile_id: int) -> bool:
         """Move the cursor to ``tile_id``, clearing the filters if they hide it.
 
-        Returns False (and says so) when the project has no such tile.
+        Parameters
+        ----------
+        tile_id : int
+            The tile to show.
+
+        Returns
+        -------
+        bool
+            True when the cursor is on the tile; False (and the app says so) when the
+            project has no such tile.
         """
         if tile_id not in {r.tile_id for r in self.rows}:
             self.app.tell(
@@ -268,7 +295,7 @@ class QueueScreen(Screen):
     def _tile_or_say(self) -> int | None:
         tile = self.selected_tile()
         if tile is None:
-            self.app.tell("no tile is selected; clear the filters or re-rank", severity="warning")
+            self.app.tell("no tile is selected; clear the filters or re-pick", severity="warning")
         return tile
 
     def _claim(self, tile_id: int) -> bool:
@@ -364,28 +391,28 @@ class QueueScreen(Screen):
         self._end()
         self.app.report_error(exc, doing=doing)
 
-    def action_rerank(self) -> None:
-        if self._begin("re-ranking the queue"):
-            self._rerank()
+    def action_repick(self) -> None:
+        if self._begin("re-picking the queue"):
+            self._repick()
 
     @work(thread=True, group="long", exit_on_error=False)
-    def _rerank(self) -> None:
+    def _repick(self) -> None:
         try:
-            result = workflow.rank_tiles(self.project, progress=self._progress)
+            result = workflow.pick_tiles(self.project, progress=self._progress)
         except Exception as exc:  # noqa: BLE001
-            self.app.call_from_thread(self._failed, exc, "re-ranking")
+            self.app.call_from_thread(self._failed, exc, "re-picking")
             return
-        self.app.call_from_thread(self._reranked, result)
+        self.app.call_from_thread(self._repicked, result)
 
-    def _reranked(self, result) -> None:
+    def _repicked(self, result) -> None:
         self._end()
         batch = sum(1 for i in result.items if i.in_batch)
         message = (
-            f"queue re-ranked ({result.strategy}): {len(result.items)} tiles, the first "
+            f"queue re-picked ({result.strategy}): {len(result.items)} tiles, the first "
             f"{batch} form the batch"
         )
-        if result.unranked:
-            message += f"; {result.unranked} without a proposal stay at the end"
+        if result.without_proposal:
+            message += f"; {result.without_proposal} without a proposal stay at the end"
         if result.note:
             message += f". {result.note}"
         self.app.tell(message)

@@ -240,7 +240,7 @@ def format_who(row: QueueRow) -> str:
 def queue_cells(row: QueueRow, *, schema: ClassSchema) -> tuple[str, ...]:
     """The texts of one table row, in :data:`QUEUE_COLUMNS` order.
 
-    The rank is counted from 1 (``"-"``: not ranked yet); the agreement column is empty
+    The rank is counted from 1 (``"-"``: not picked yet); the agreement column is empty
     for tiles with one annotator, ``"overlap"`` for an overlap tile still waiting for its
     second mask. The tile's position in its image is in the preview caption.
 

@@ -66,14 +66,30 @@ class TilePreview(Widget):
         return (2 * len(lines), len(lines[0]))
 
     def show(self, tile_id: int, picture: np.ndarray) -> None:
-        """Show tile ``tile_id``: its picture (H, W, 3) uint8 with the overlay blended in."""
+        """Show a tile's picture.
+
+        Parameters
+        ----------
+        tile_id : int
+            The tile shown.
+        picture : ndarray, shape (H, W, 3), uint8
+            Its RGB picture with the overlay blended in; fitted to the widget when drawn.
+        """
         self.tile_id = tile_id
         self._rgb = picture
         self._cache = None
         self.refresh()
 
     def show_message(self, message: str, *, tile_id: int | None = None) -> None:
-        """Show a line of text instead of a picture (no tile, or the tile cannot be read)."""
+        """Show a line of text instead of a picture (no tile, or the tile cannot be read).
+
+        Parameters
+        ----------
+        message : str
+            The text.
+        tile_id : int, optional
+            The tile the message is about.
+        """
         self.tile_id = tile_id
         self._rgb = None
         self._message = message
@@ -99,13 +115,28 @@ class WorkBar(Horizontal):
         yield ProgressBar(total=None, show_eta=False, id="work-bar")
 
     def start(self, label: str) -> None:
-        """Show the bar for a new piece of work."""
+        """Show the bar for a new piece of work.
+
+        Parameters
+        ----------
+        label : str
+            What the work is, shown beside the bar.
+        """
         self.query_one("#work-label", Label).update(label)
         self.query_one("#work-bar", ProgressBar).update(total=None, progress=0)
         self.add_class("busy")
 
     def step(self, done: int, total: int, label: str = "") -> None:
-        """Move the bar to ``done`` of ``total`` steps; ``label`` names the step."""
+        """Move the bar on.
+
+        Parameters
+        ----------
+        done, total : int
+            Steps done and steps in all (a total of 0 leaves the bar running without an
+            end).
+        label : str
+            Names the step (empty: keep the label).
+        """
         bar = self.query_one("#work-bar", ProgressBar)
         if total and total > 0:
             bar.update(total=total, progress=min(done, total))

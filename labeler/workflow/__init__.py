@@ -38,11 +38,12 @@ from labeler.workflow.annotating import (
     queue_rows,
     save_state,
     save_tile_mask,
+    weak_label_tile_state,
 )
 from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
 from labeler.workflow.effort import VersionEffort, effort_by_model
 from labeler.workflow.exporting import ExportResult, ImportResult, export_project, import_masks
-from labeler.workflow.picking import RankedTile, RankResult, rank_tiles
+from labeler.workflow.picking import PickedTile, PickResult, pick_tiles
 from labeler.workflow.progress import Progress, no_progress
 from labeler.workflow.proposing import ProposeResult, propose
 from labeler.workflow.retraining import LabelledTile, RetrainResult, labelled_tiles, retrain
@@ -75,9 +76,10 @@ __all__ = [
     "queue_rows",
     "save_state",
     "save_tile_mask",
-    "RankedTile",
-    "RankResult",
-    "rank_tiles",
+    "weak_label_tile_state",
+    "PickedTile",
+    "PickResult",
+    "pick_tiles",
     "agreement_summary",
     "compared_images",
     "contested_tiles",

@@ -14,7 +14,7 @@ from labeler.export.report import OverlaySource, ReportFiles, write_agreement_re
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import stitch
 from labeler.project import Project
-from labeler.states import CONTESTED, SETTLED
+from labeler.states import CONTESTED, KIND_FULL, SETTLED
 from labeler.workflow.annotating import QueueRow, queue_rows
 from labeler.workflow.effort import effort_by_model
 from labeler.workflow.progress import Progress, no_progress
@@ -44,7 +44,7 @@ def compared_images(project: Project) -> list[ComparedImage]:
     store = project.store
     tiles = {t.id: t for t in store.tiles()}
     newest: dict[tuple[int, str], object] = {}
-    for a in store.annotations(kind="full"):
+    for a in store.annotations(kind=KIND_FULL):
         if a.state == SETTLED:
             continue
         newest[(a.tile_id, a.annotator)] = a  # oldest first: the last one wins

@@ -1,9 +1,10 @@
 """Saving annotations, accepting and parking tiles, the queue, contested tiles.
 
 This is the one place that decides the annotation state of a save
-(:func:`save_state`): every save, from the editor, the queue or a script, goes through
-:func:`save_tile_mask`, which records the state it decided and returns the row written.
-The editor proposes no state; it shows the one returned.
+(:func:`save_state`) and the tile state a weak-label save leaves
+(:func:`weak_label_tile_state`): every save, from the editor, the queue or a script,
+goes through :func:`save_tile_mask`, which records the state it decided and returns the
+row written. The editor proposes no state; it shows the one returned.
 """
 
 from __future__ import annotations
@@ -17,48 +18,24 @@ import numpy as np
 from labeler.agreement import tile_agreement
 from labeler.errors import LabelerError, NotFoundError
 from labeler.project import Project
-from labeler.states import ACCEPTED, AMENDED, CONTESTED, PARKED, SETTLED
+from labeler.states import (
+    ACCEPTED,
+    AMENDED,
+    CONTESTED,
+    HELD,
+    KIND_FULL,
+    KIND_WEAK,
+    PARKED,
+    PROPOSED,
+    SETTLED,
+    UNSEEN,
+    WEAK,
+)
 from labeler.store.records import AnnotationRecord
 
-#: Annotation state of a scribble-only save (a weak label).
-WEAK = "weak"
-
-
-def save_state(
-    *, kind: str, settling: bool, mask: np.ndarray, proposal: np.ndarray | None
-) -> str:
-    """The annotation state a save records.
-
-    Parameters
-    ----------
-    kind : {"full", "scribble"}
-        A whole mask, or scribbles alone.
-    settling : bool
-        True when a reviewer saves the decision on a contested tile.
-    mask : ndarray, shape (H, W), uint8
-        What is saved.
-    proposal : ndarray, shape (H, W), uint8, or None
-        The proposal the annotator started from (None when the save names none).
-
-    Returns
-    -------
-    state : str
-        ``weak`` for scribbles; else ``settled`` for a reviewer's decision; else
-        ``accepted`` when the mask equals the proposal exactly; else ``amended``.
-    """
-    if kind == "scribble":
-        return WEAK
-    if kind != "full":
-        raise ValueError(f"kind: expected 'full' or 'scribble', got {kind!r}")
-    if settling:
-        return SETTLED
-    if proposal is not None and np.array_equal(proposal, mask):
-        return ACCEPTED
-    return AMENDED
-
 __all__ = [
-    "WEAK",
     "save_state",
+    "weak_label_tile_state",
     "save_tile_mask",
     "accept_tile",
     "park_tile",
@@ -70,6 +47,73 @@ __all__ = [
 ]
 
 
+def save_state(
+    *, kind: str, settling: bool, mask: np.ndarray, proposal: np.ndarray | None
+) -> str:
+    """The annotation state a save records.
+
+    Parameters
+    ----------
+    kind : {KIND_FULL, KIND_WEAK}
+        A whole mask, or a weak label (:mod:`labeler.states`).
+    settling : bool
+        True when a reviewer saves the decision on a contested tile.
+    mask : ndarray, shape (H, W), uint8
+        What is saved.
+    proposal : ndarray, shape (H, W), uint8, or None
+        The proposal the annotator started from (None when the save names none).
+
+    Returns
+    -------
+    state : str
+        ``weak`` for a weak label; else ``settled`` for a reviewer's decision; else
+        ``accepted`` when the mask equals the proposal exactly; else ``amended``.
+    """
+    if kind == KIND_WEAK:
+        return WEAK
+    if kind != KIND_FULL:
+        raise ValueError(f"kind: expected {KIND_FULL!r} or {KIND_WEAK!r}, got {kind!r}")
+    if settling:
+        return SETTLED
+    if proposal is not None and np.array_equal(proposal, mask):
+        return ACCEPTED
+    return AMENDED
+
+
+def weak_label_tile_state(
+    tile_state: str, *, held_by: str | None, annotator: str, has_proposal: bool
+) -> str | None:
+    """The tile state a weak-label save leaves: None keeps the tile's state.
+
+    A weak label is no full mask, so it never makes a tile saved. But the save ends the
+    saver's hold (the store clears the holder), and a tile left ``held`` without a holder
+    would be handed to nobody and released by nobody. So a tile ``held`` by the saver (or
+    by nobody) goes back to where a release takes it: ``proposed`` when it has a proposal,
+    else ``unseen``. A tile held by another annotator, and a tile in any other state,
+    keeps its state.
+
+    Parameters
+    ----------
+    tile_state : str
+        The tile's state before the save (one of :data:`labeler.states.STATES`).
+    held_by : str or None
+        Who holds the tile before the save.
+    annotator : str
+        Who saves the weak label.
+    has_proposal : bool
+        Whether the tile has a proposal.
+
+    Returns
+    -------
+    str or None
+        ``proposed`` or ``unseen`` for a tile held by the saver or by nobody; None
+        (the state stays) otherwise.
+    """
+    if tile_state != HELD or held_by not in (None, annotator):
+        return None
+    return PROPOSED if has_proposal else UNSEEN
+
+
 def save_tile_mask(
     project: Project,
     tile_id: int,
@@ -77,7 +121,7 @@ def save_tile_mask(
     mask: np.ndarray,
     *,
     parent_version: int | None,
-    kind: str = "full",
+    kind: str = KIND_FULL,
     seconds: float = 0.0,
     actions: int = 0,
     source: str = "editor",
@@ -87,9 +131,12 @@ def save_tile_mask(
     """Save a mask of a tile, deciding the annotation state it records.
 
     The state is decided here and nowhere else (:func:`save_state`): ``weak`` for
-    scribbles, ``settled`` for a reviewer's decision, ``accepted`` when a full mask
+    a weak label, ``settled`` for a reviewer's decision, ``accepted`` when a full mask
     equals the proposal it started from, else ``amended``. After the save an overlap tile
-    whose annotators all saved is checked for agreement (:func:`after_save`).
+    whose annotators all saved is checked for agreement (:func:`after_save`). A weak label
+    leaves the tile's state as it is, except that a tile the saver held goes back to
+    ``proposed`` or ``unseen`` (:func:`weak_label_tile_state`), as when the editor closes
+    without a save.
 
     Parameters
     ----------
@@ -100,10 +147,10 @@ def save_tile_mask(
     annotator : str
         Who saves.
     mask : ndarray, shape (H, W), uint8
-        The whole mask (``kind="full"``) or the scribbles (255 where not scribbled).
+        The whole mask (``kind=KIND_FULL``) or the weak label (255 where not marked).
     parent_version : int or None
         The lineage version the edit started from (None for the first save).
-    kind : {"full", "scribble"}
+    kind : {KIND_FULL, KIND_WEAK}
         What is saved.
     seconds, actions : float, int
         Effort spent, for the statistics.
@@ -126,9 +173,18 @@ def save_tile_mask(
     """
     store = project.store
     proposal = None
-    if kind == "full" and not settling and proposal_id is not None:
+    if kind == KIND_FULL and not settling and proposal_id is not None:
         proposal = store.proposal(proposal_id).mask()
     state = save_state(kind=kind, settling=settling, mask=mask, proposal=proposal)
+    tile_state = None
+    if kind == KIND_WEAK:
+        tile = store.tile(tile_id)
+        tile_state = weak_label_tile_state(
+            tile.state,
+            held_by=tile.held_by,
+            annotator=annotator,
+            has_proposal=store.latest_proposal(tile_id) is not None,
+        )
     rec = store.save_annotation(
         tile_id,
         annotator,
@@ -140,8 +196,9 @@ def save_tile_mask(
         actions=actions,
         source=source,
         proposal_id=proposal_id,
+        tile_state=tile_state,
     )
-    if kind == "full" and not settling:
+    if kind == KIND_FULL and not settling:
         after_save(project, tile_id)
     return rec
 
@@ -150,6 +207,27 @@ def accept_tile(
     project: Project, tile_id: int, annotator: str, *, seconds: float = 0.0, source: str = "queue"
 ) -> AnnotationRecord:
     """Keep the tile's newest proposal unchanged as ``annotator``'s mask (``accepted``).
+
+    The save names the annotator's newest version of the tile as its parent and counts as
+    one action.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        The tile accepted.
+    annotator : str
+        Who accepts.
+    seconds : float
+        Time spent looking at the tile, for the statistics.
+    source : str
+        Where the accept came from (``"queue"``, ``"script"``, ...).
+
+    Returns
+    -------
+    AnnotationRecord
+        The row written (state ``accepted``).
 
     Raises
     ------
@@ -179,15 +257,43 @@ def accept_tile(
 
 
 def park_tile(project: Project, tile_id: int, annotator: str) -> None:
-    """Set a tile aside (``parked``); it returns to the queue when someone opens it."""
+    """Set a tile aside (``parked``); it returns to the queue when someone opens it.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        The tile parked.
+    annotator : str
+        Who parks it (recorded in the event log).
+
+    Raises
+    ------
+    labeler.errors.LabelerError
+        If the life cycle does not allow parking the tile (e.g. a contested tile).
+    """
     project.store.set_state(tile_id, PARKED, annotator=annotator, reason="parked by annotator")
 
 
 def overlap_agreement(project: Project, tile_id: int) -> float | None:
     """Lowest pairwise agreement of the newest full masks on an overlap tile.
 
-    ``None`` when fewer than two annotators have saved; NaN when they share no
-    labelled pixel. The metric (kappa or IoU) is the project setting.
+    The metric (Cohen's kappa or IoU, :func:`labeler.agreement.tile_agreement`) is the
+    project setting ``agreement.metric``; a reviewer's settled masks do not count.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        The tile.
+
+    Returns
+    -------
+    float or None
+        The lowest agreement over every pair of annotators; None when fewer than two
+        annotators have saved; NaN when no pair shares a labelled pixel.
     """
     store = project.store
     savers = store.savers(tile_id)
@@ -209,7 +315,20 @@ def after_save(project: Project, tile_id: int) -> float | None:
 
     Once the configured number of annotators has saved, the lowest pairwise agreement
     is compared with the project threshold; below it, the tile becomes ``contested``
-    (a reviewer settles it). Returns the agreement (None when not yet comparable).
+    (a reviewer settles it). Ordinary and settled tiles are left alone.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        The tile just saved.
+
+    Returns
+    -------
+    float or None
+        The agreement (:func:`overlap_agreement`); None when the tile is no overlap tile,
+        is settled, or not enough annotators have saved yet.
     """
     store = project.store
     tile = store.tile(tile_id)
@@ -236,7 +355,34 @@ def after_save(project: Project, tile_id: int) -> float | None:
 
 @dataclass(frozen=True)
 class QueueRow:
-    """One line of the annotators' queue."""
+    """One line of the annotators' queue.
+
+    Attributes
+    ----------
+    rank : int or None
+        Place in the newest pick's queue order, from 0; None for a tile outside it.
+    tile_id : int
+    image : str
+        Name of the tile's image.
+    row, col : int
+        Top-left pixel of the tile in its image.
+    score, reason : float or None, str or None
+        The picker's score and reason (None outside the pick).
+    class_fractions : tuple of float or None
+        Share of each class in the newest proposal (None without one).
+    state : str
+        The tile's life-cycle state.
+    held_by : str or None
+        Who has the tile open.
+    saved_by : tuple of str
+        Annotators with a saved full mask (a reviewer's settled mask not counted).
+    overlap : bool
+        True for a tile given to several annotators.
+    agreement : float or None
+        :func:`overlap_agreement` once two annotators have saved an overlap tile.
+    in_batch : bool
+        True for a tile of the newest pick's batch.
+    """
 
     rank: int | None
     tile_id: int
@@ -255,18 +401,29 @@ class QueueRow:
 
 
 def queue_rows(project: Project) -> list[QueueRow]:
-    """Every tile in queue order: the newest ranking first, then unranked tiles by id."""
+    """Every tile in queue order: the newest pick first, then tiles outside it by id.
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+
+    Returns
+    -------
+    list of QueueRow
+        One row per tile of the project.
+    """
     store = project.store
     images = {im.id: im.name for im in store.images()}
-    ranking = {item.tile_id: item for item in store.latest_ranking()}
+    picked = {item.tile_id: item for item in store.latest_pick()}
     proposals = store.latest_proposals()
     savers: dict[int, set[str]] = {}
-    for a in store.annotations(kind="full"):
+    for a in store.annotations(kind=KIND_FULL):
         if a.state != SETTLED:
             savers.setdefault(a.tile_id, set()).add(a.annotator)
     rows = []
     for t in store.tiles():
-        item = ranking.get(t.id)
+        item = picked.get(t.id)
         prop = proposals.get(t.id)
         agreement = None
         if t.overlap and len(savers.get(t.id, ())) >= 2:
@@ -297,6 +454,22 @@ def queue_rows(project: Project) -> list[QueueRow]:
 
 def next_tile(project: Project, annotator: str) -> int:
     """The first tile in queue order that ``annotator`` may be handed.
+
+    Parked tiles come last. Which tiles an annotator may be handed is told by
+    :meth:`labeler.store.Store.available_for` (overlap tiles go to
+    ``agreement.annotators_per_tile`` annotators).
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    annotator : str
+        Who asks.
+
+    Returns
+    -------
+    int
+        The tile id.
 
     Raises
     ------

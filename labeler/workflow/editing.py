@@ -80,8 +80,9 @@ class StoreBackend:
         Parameters
         ----------
         mask : ndarray, shape (H, W), uint8
-            The mask (``kind="full"``) or the scribbles (``kind="scribble"``).
-        kind : {"full", "scribble"}
+            The mask (``kind=KIND_FULL``) or the weak label (``kind=KIND_WEAK``).
+        kind : {KIND_FULL, KIND_WEAK}
+            A full mask or a weak label (:mod:`labeler.states`).
         actions, seconds : int, float
             Effort spent.
 
@@ -133,7 +134,7 @@ class StoreBackend:
         Parameters
         ----------
         marks : ndarray, shape (H, W), uint8
-            Class index where marked (scribbles, hand corrections), 255 elsewhere.
+            Class index where marked (weak label, hand corrections), 255 elsewhere.
 
         Returns
         -------
@@ -150,13 +151,13 @@ class StoreBackend:
         return self._relearner(marks)
 
     def save_draft(
-        self, mask: np.ndarray, scribbles: np.ndarray, *, actions: int, seconds: float
+        self, mask: np.ndarray, weak_label: np.ndarray, *, actions: int, seconds: float
     ) -> None:
         """Keep unsaved work as the tile's draft for this annotator (replacing an older one).
 
         Parameters
         ----------
-        mask, scribbles : ndarray, shape (H, W), uint8
+        mask, weak_label : ndarray, shape (H, W), uint8
         actions, seconds : int, float
             Effort spent so far.
         """
@@ -164,20 +165,26 @@ class StoreBackend:
             self.tile_id,
             self.annotator,
             mask,
-            scribbles=scribbles,
+            weak_label=weak_label,
             parent_version=self.parent_version,
             seconds=seconds,
             actions=actions,
         )
 
     def load_draft(self) -> DraftRecord | None:
-        """The draft of an earlier session, with scribbles (all 255 when it kept none), or
-        None."""
+        """The draft of an earlier session, for the editor to offer back.
+
+        Returns
+        -------
+        DraftRecord or None
+            The draft with its weak label (all 255 when it kept none); None when there
+            is no draft.
+        """
         d = self.project.store.load_draft(self.tile_id, self.annotator)
         if d is None:
             return None
-        if d.scribbles is None:
-            d = replace(d, scribbles=np.full(d.mask.shape, UNLABELLED, np.uint8))
+        if d.weak_label is None:
+            d = replace(d, weak_label=np.full(d.mask.shape, UNLABELLED, np.uint8))
         return d
 
     def discard_draft(self) -> None:

@@ -5,7 +5,7 @@ proposal the annotator started from (:func:`labeler.workflow.annotating.save_til
 :func:`effort_by_model` groups the full saves by the model version of that proposal and
 gives, per version, the median actions and seconds per saved tile and the share saved
 unchanged (``accepted``). Saves that name no proposal (a reviewer settling a contested
-tile, masks brought in with ``labeler import``) and scribble saves are left out: they do
+tile, masks brought in with ``labeler import``) and weak-label saves are left out: they do
 not measure the work a proposal left to do.
 
 Medians, not means: one tile left open over a break or redrawn from scratch should not
@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from labeler.project import Project
-from labeler.states import ACCEPTED
+from labeler.states import ACCEPTED, KIND_FULL
 
 __all__ = ["SaveEffort", "VersionEffort", "summarise_effort", "effort_by_model"]
 
@@ -135,7 +135,7 @@ def effort_by_model(project: Project) -> list[VersionEffort]:
             seconds=float(a.seconds),
             accepted=a.state == ACCEPTED,
         )
-        for a in store.annotations(kind="full")
+        for a in store.annotations(kind=KIND_FULL)
         if a.proposal_id is not None and a.proposal_id in version_of
     ]
     return summarise_effort(saves, names)

@@ -26,7 +26,16 @@ from labeler.export.pngmasks import write_image_masks
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import stitch
 from labeler.project import Project
-from labeler.states import ACCEPTED, AMENDED, SETTLED, STATES
+from labeler.states import (
+    ACCEPTED,
+    AMENDED,
+    IMPORTED,
+    KIND_FULL,
+    KIND_WEAK,
+    SETTLED,
+    STATES,
+    WEAK,
+)
 from labeler.store import NewAnnotation
 from labeler.store.records import ImageRecord
 from labeler.workflow.progress import Progress, no_progress
@@ -117,7 +126,7 @@ def image_export_mask(
         tile_states.append(tile.state)
         ann = None
         if tile.state in wanted:
-            ann = store.latest_annotation(tile.id, kind="full")
+            ann = store.latest_annotation(tile.id, kind=KIND_FULL)
         if ann is not None:
             masks.append(ann.mask())
             windows.append(tile.window)
@@ -352,9 +361,9 @@ def import_masks(
     ``<stem>_annotation.png``, or ``.geojson``) or by ``image``, read and checked in the
     image's pixel grid, and cut into tiles. A tile the file covers completely becomes a
     full annotation (``imported``); a tile with unlabelled pixels (255) becomes a weak
-    label (scribble kind); a tile the file does not touch is left alone. Every file is
-    read and checked before anything is saved, and all tiles are saved in ONE
-    transaction: on any error nothing is imported.
+    label (kind :data:`~labeler.states.KIND_WEAK`, state ``weak``); a tile the file does
+    not touch is left alone. Every file is read and checked before anything is saved, and
+    all tiles are saved in ONE transaction: on any error nothing is imported.
 
     Parameters
     ----------
@@ -426,9 +435,9 @@ def import_masks(
             if unl.all():
                 empty += 1
                 continue
-            kind, state = ("scribble", "weak") if unl.any() else ("full", "imported")
-            full += kind == "full"
-            weak += kind == "scribble"
+            kind, state = (KIND_WEAK, WEAK) if unl.any() else (KIND_FULL, IMPORTED)
+            full += kind == KIND_FULL
+            weak += kind == KIND_WEAK
             items.append(
                 NewAnnotation(
                     tile_id=tile.id,

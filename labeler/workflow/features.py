@@ -9,10 +9,15 @@ encoder version. The model room is imported only when a function here is called.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
+from typing import TYPE_CHECKING
 
 from labeler.imagery.read import ImageReader
 from labeler.project import Project
 from labeler.store.records import ImageRecord, TileRecord
+
+if TYPE_CHECKING:  # the model room is imported only when a function here is called
+    from labeler.model.cache import FeatureCache
+    from labeler.model.encoder import Lite0Encoder
 
 __all__ = ["tile_key", "encoder_and_cache", "tile_features"]
 
@@ -35,7 +40,7 @@ def tile_key(image: ImageRecord, tile: TileRecord) -> str:
     return f"{image.sha256}:{tile.row}:{tile.col}:{tile.height}:{tile.width}"
 
 
-def encoder_and_cache(project: Project):
+def encoder_and_cache(project: Project) -> tuple[Lite0Encoder, FeatureCache]:
     """The installed encoder and the project's feature cache for it.
 
     Sets the number of torch threads from the ``model.threads`` setting first.

@@ -6,7 +6,7 @@ holds (:meth:`labeler.workflow.editing.StoreBackend.relearn`); the backend gets 
 room needs: the newest trained head (its checkpoint), the tile's cached encoder features
 (computed and cached once if missing) and the tile's pixels. The re-fit itself is
 :class:`labeler.model.ontile.TileLearner`. Nothing is stored: the marks reach the store
-when the annotator saves (the full mask, or the scribbles as a weak label), and the next
+when the annotator saves (the full mask, or the weak label alone), and the next
 ``labeler retrain`` learns from them.
 """
 

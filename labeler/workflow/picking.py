@@ -1,4 +1,4 @@
-"""Ranking the queue with the active-learning picker (``labeler pick``)."""
+"""Picking the queue order with the active-learning picker (``labeler pick``)."""
 
 from __future__ import annotations
 
@@ -9,24 +9,24 @@ import numpy as np
 
 from labeler.errors import LabelerError
 from labeler.metrics import class_fractions
-from labeler.picker import CandidatePool, select_batch
+from labeler.picker import CandidatePool, pick_batch
 from labeler.project import Project
-from labeler.states import SETTLED
-from labeler.store.records import RankingItem
+from labeler.states import KIND_FULL, SETTLED
+from labeler.store.records import PickItem
 from labeler.workflow.annotating import overlap_agreement
 from labeler.workflow.progress import Progress, no_progress
 
-__all__ = ["RankedTile", "RankResult", "rank_tiles"]
+__all__ = ["PickedTile", "PickResult", "pick_tiles"]
 
 
 @dataclass(frozen=True)
-class RankedTile:
+class PickedTile:
     """A tile of the new batch and where it lies, for showing the batch.
 
     Attributes
     ----------
     rank : int
-        Place in the queue, from 0.
+        Place in the queue order, from 0.
     tile_id : int
     image : str
         Name of the tile's image.
@@ -48,7 +48,7 @@ class RankedTile:
 
 
 @dataclass(frozen=True)
-class RankResult:
+class PickResult:
     """What ``labeler pick`` did.
 
     Attributes
@@ -60,34 +60,34 @@ class RankResult:
         The strategy asked for.
     k : int
         Batch size.
-    items : list of RankingItem
-        Every ranked tile in queue order, as written to the store.
-    unranked : int
-        Tiles without a proposal (not ranked).
+    items : list of PickItem
+        Every picked tile in queue order, as written to the store.
+    without_proposal : int
+        Tiles without a proposal (left out of the pick).
     note : str
         Why the strategy used differs from the one asked for, if it does.
-    batch : list of RankedTile
+    batch : list of PickedTile
         The first ``k`` tiles with their image and position.
     """
 
     strategy: str
     requested: str
     k: int
-    items: list[RankingItem]
-    unranked: int
+    items: list[PickItem]
+    without_proposal: int
     note: str = ""
-    batch: list[RankedTile] = field(default_factory=list)
+    batch: list[PickedTile] = field(default_factory=list)
 
 
-def rank_tiles(
+def pick_tiles(
     project: Project,
     *,
     strategy: str | None = None,
     k: int | None = None,
     seed: int | None = None,
     progress: Progress = no_progress,
-) -> RankResult:
-    """Rank every proposed tile and write the queue order to the store.
+) -> PickResult:
+    """Pick: put every proposed tile in queue order and write the order to the store.
 
     Parameters
     ----------
@@ -96,8 +96,8 @@ def rank_tiles(
     strategy : str, optional
         One of random, entropy, margin, bald, coreset, mixed (default: the setting).
     k : int, optional
-        Batch size (default: the setting); the whole pool is ranked, the first k are
-        the batch.
+        Batch size (default: the setting); the whole pool is put in order, the first
+        k are the batch.
     seed : int, optional
         Seed for ``random`` (default: the setting).
     progress : Progress
@@ -105,8 +105,8 @@ def rank_tiles(
 
     Returns
     -------
-    RankResult
-        The ranking written to the store and the new batch.
+    PickResult
+        The queue order written to the store and the new batch.
 
     Raises
     ------
@@ -123,7 +123,7 @@ def rank_tiles(
     proposals = store.latest_proposals()
     progress(0, 3, "reading proposals")
     savers: dict[int, set[str]] = {}
-    for a in store.annotations(kind="full"):
+    for a in store.annotations(kind=KIND_FULL):
         if a.state != SETTLED:
             savers.setdefault(a.tile_id, set()).add(a.annotator)
     ids, emb, ent, mar, lc, bald, frac, ann, agr = [], [], [], [], [], [], [], [], []
@@ -170,7 +170,7 @@ def rank_tiles(
         used = "coreset"
         note = (
             "the proposals come from the cold start and carry no model uncertainty, so tiles are "
-            "ranked for diversity (coreset) until a model is trained"
+            "picked for diversity (coreset) until a model is trained"
         )
     pool = CandidatePool(
         ids=ids,
@@ -183,7 +183,7 @@ def rank_tiles(
         annotators=np.array(ann),
         agreement=np.array(agr),
     )
-    sel = select_batch(
+    pick = pick_batch(
         pool,
         strategy=used,
         k=k,
@@ -191,18 +191,18 @@ def rank_tiles(
         agreement_threshold=project.settings.agreement.threshold,
     )
     items = [
-        RankingItem(
-            tile_id=int(tid), rank=r, score=float(sc), reason=str(rs), in_batch=r < sel.n_chosen
+        PickItem(
+            tile_id=int(tid), rank=r, score=float(sc), reason=str(rs), in_batch=r < pick.n_chosen
         )
-        for r, (tid, sc, rs) in enumerate(zip(sel.ids, sel.scores, sel.reasons, strict=True))
+        for r, (tid, sc, rs) in enumerate(zip(pick.ids, pick.scores, pick.reasons, strict=True))
     ]
     progress(2, 3, "writing the queue")
-    store.write_ranking(strategy=used, k=k, seed=seed, items=items)
+    store.write_pick(strategy=used, k=k, seed=seed, items=items)
     progress(3, 3, "done")
     by_id = {t.id: t for t in tiles}
     names = {im.id: im.name for im in store.images()}
     batch = [
-        RankedTile(
+        PickedTile(
             rank=item.rank,
             tile_id=item.tile_id,
             image=names[by_id[item.tile_id].image_id],
@@ -213,12 +213,12 @@ def rank_tiles(
         )
         for item in items[:k]
     ]
-    return RankResult(
+    return PickResult(
         strategy=used,
         requested=strategy,
         k=k,
         items=items,
-        unranked=len(tiles) - len(ids),
+        without_proposal=len(tiles) - len(ids),
         note=note,
         batch=batch,
     )

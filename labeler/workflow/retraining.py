@@ -1,7 +1,7 @@
 """Retraining the proposal head on every saved mask (``labeler retrain``).
 
 ``retrain`` trains a new head on every saved full mask (accepted, amended, settled,
-imported) and every scribble (weak labels), and records it as a model version with its
+imported) and every weak label, and records it as a model version with its
 per-class validation IoU. The tiles' pixels go to the model room as well: the head learns
 a full-resolution refinement of its stride-4 proposals from them. The ``model.augment``
 setting chooses how training augments (:mod:`labeler.model.train`): by default the tiles
@@ -20,7 +20,7 @@ from labeler.classes import UNLABELLED
 from labeler.errors import InputError, LabelerError
 from labeler.imagery.read import open_image
 from labeler.project import Project
-from labeler.states import CONTESTED, SETTLED
+from labeler.states import CONTESTED, KIND_FULL, KIND_WEAK, SETTLED
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
 from labeler.workflow.features import encoder_and_cache, tile_features
 from labeler.workflow.progress import Progress, no_progress
@@ -39,8 +39,8 @@ class LabelledTile:
         The tile's image.
     mask : ndarray, shape (H, W), uint8
         Class indices, 255 unlabelled.
-    kind : {"full", "scribble"}
-        A full mask or scribbles (a weak label).
+    kind : {KIND_FULL, KIND_WEAK}
+        A full mask or a weak label (:mod:`labeler.states`).
     """
 
     tile: TileRecord
@@ -54,9 +54,9 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
 
     A tile's newest full mask (accepted, amended, settled or imported) is used; on a
     contested tile only a reviewer's settled mask counts (the annotators' masks are in
-    dispute). Tiles without a full mask use their scribbles (weak labels): every scribble
-    save of the tile, by any annotator, merged, the newer save winning where two mark
-    the same pixel.
+    dispute). Tiles without a full mask use their weak labels: every weak-label save of
+    the tile, by any annotator, merged, the newer save winning where two mark the same
+    pixel.
 
     Parameters
     ----------
@@ -74,7 +74,7 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
     newest_full: dict[int, object] = {}
     weak: dict[int, list] = {}
     for a in store.annotations(kind=None):  # oldest first: later rows win
-        if a.kind == "full":
+        if a.kind == KIND_FULL:
             newest_full[a.tile_id] = a
         else:
             weak.setdefault(a.tile_id, []).append(a)
@@ -84,14 +84,14 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
             ann = None
         if t.state == SETTLED:
             settled = [
-                a for a in store.annotation_history(t.id) if a.state == SETTLED and a.kind == "full"
+                a for a in store.annotation_history(t.id) if a.state == SETTLED and a.kind == KIND_FULL
             ]
             ann = settled[-1] if settled else ann
-        kind = "full"
+        kind = KIND_FULL
         if ann is not None:
             mask = ann.mask()
         elif t.id in weak:
-            kind = "scribble"
+            kind = KIND_WEAK
             mask = np.full(t.shape, UNLABELLED, np.uint8)
             for a in weak[t.id]:  # oldest first: a newer save overwrites where it marks
                 m = a.mask()
@@ -110,7 +110,7 @@ class RetrainResult:
 
     model_version: ModelVersionRecord
     n_full: int
-    n_scribble: int
+    n_weak: int
     n_train: int
     n_val: int
     best_epoch: int
@@ -223,16 +223,16 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
             "best_epoch": result.best_epoch,
             "mode": result.mode,
             "n_val": result.n_val,
-            "full_tiles": sum(it.kind == "full" for it in items),
-            "scribble_tiles": sum(it.kind == "scribble" for it in items),
+            "full_tiles": sum(it.kind == KIND_FULL for it in items),
+            "weak_tiles": sum(it.kind == KIND_WEAK for it in items),
             "epochs_max": n_epochs,
             "refine_channels": result.head.config.refine_channels,
         },
     )
     return RetrainResult(
         model_version=mv,
-        n_full=sum(it.kind == "full" for it in items),
-        n_scribble=sum(it.kind == "scribble" for it in items),
+        n_full=sum(it.kind == KIND_FULL for it in items),
+        n_weak=sum(it.kind == KIND_WEAK for it in items),
         n_train=result.n_train,
         n_val=result.n_val,
         best_epoch=result.best_epoch,

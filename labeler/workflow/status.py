@@ -27,7 +27,7 @@ class ProjectStatus:
     by_image : list of (str, int, dict of str to int, bool)
         Per image: name, tiles, tiles per state, and whether it is georeferenced.
     by_annotator : dict of str to dict of str to float
-        Per annotator: ``tiles`` saved, ``scribbles`` (weak-label saves), ``actions`` and
+        Per annotator: ``tiles`` saved, ``weak_labels`` (weak-label saves), ``actions`` and
         ``seconds`` of editing.
     model_versions : int
         Model versions recorded (cold starts and trained heads).

@@ -27,10 +27,10 @@ def loop_majority(masks: np.ndarray, ignore: int = 255) -> np.ndarray:
             votes = Counter(int(v) for v in masks[:, i, j] if v != ignore)
             if not votes:
                 continue
-            ranked = votes.most_common()
-            if len(ranked) > 1 and ranked[0][1] == ranked[1][1]:
+            counts = votes.most_common()
+            if len(counts) > 1 and counts[0][1] == counts[1][1]:
                 continue
-            out[i, j] = ranked[0][0]
+            out[i, j] = counts[0][0]
     return out
 
 
@@ -168,7 +168,7 @@ def test_staple_identical_raters_and_unlabelled():
         np.testing.assert_allclose(np.diag(res.performance[j]), 1.0, atol=1e-6)
 
 
-def test_staple_partial_labels_use_only_labelled_votes():
+def test_staple_weak_labels_use_only_labelled_votes():
     # a rater who left half the tile unlabelled is scored on his labelled half only
     rng = np.random.default_rng(1)
     truth = (rng.random((60, 60)) < 0.4).astype(np.uint8)

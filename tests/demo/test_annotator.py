@@ -1,4 +1,4 @@
-"""The simulated annotator: corrections and scribbles made from a truth mask."""
+"""The simulated annotator: corrections and weak labels made from a truth mask."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ from hypothesis.extra.numpy import arrays
 from scipy import ndimage
 from sklearn.metrics import cohen_kappa_score
 
-from labeler.demo.annotator import AnnotatorProfile, simulate_annotation, simulate_scribbles
+from labeler.demo.annotator import AnnotatorProfile, simulate_annotation, simulate_weak_label
 from labeler.demo.fields import make_plot
 from tests.common import zoo_four_classes, zoo_two_touching
 
@@ -146,21 +146,21 @@ def test_annotation_keeps_the_schema(truth, seed, skill):
     assert set(np.unique(out[truth != 255])) <= {0, 1, 2, 3}
 
 
-def test_scribbles_are_true_strokes_in_every_class(field_truth):
-    weak = simulate_scribbles(field_truth, rng=np.random.default_rng(6), n_per_class=3)
+def test_weak_label_strokes_are_true_in_every_class(field_truth):
+    weak = simulate_weak_label(field_truth, rng=np.random.default_rng(6), n_per_class=3)
     labelled = weak != 255
     np.testing.assert_array_equal(weak[labelled], field_truth[labelled])
     present = set(np.unique(field_truth))
     assert set(np.unique(weak[labelled])) == present
     assert labelled.mean() < 0.05  # a few strokes, not a mask
-    again = simulate_scribbles(field_truth, rng=np.random.default_rng(6), n_per_class=3)
+    again = simulate_weak_label(field_truth, rng=np.random.default_rng(6), n_per_class=3)
     np.testing.assert_array_equal(weak, again)
 
 
-def test_scribbles_on_a_wide_region_keep_off_its_edge():
+def test_weak_label_strokes_on_a_wide_region_keep_off_its_edge():
     truth = zoo_two_touching()  # classes 1 and 2 side by side, 6 x 3 each, in soil
     big = np.kron(truth, np.ones((8, 8), np.uint8))  # 64 x 64, regions 48 x 24
-    weak = simulate_scribbles(big, rng=np.random.default_rng(2), width_px=3, classes=(1, 2))
+    weak = simulate_weak_label(big, rng=np.random.default_rng(2), width_px=3, classes=(1, 2))
     assert set(np.unique(weak)) == {1, 2, 255}  # soil not asked for
     for cls in (1, 2):
         # edge pixels of a region are at distance 1 from outside; stroke pixels are >= 2
@@ -187,10 +187,10 @@ def test_errors_name_the_parameter():
     with pytest.raises(ValueError, match="boundary_scale_px: expected a positive length"):
         AnnotatorProfile(boundary_scale_px=0)
     with pytest.raises(ValueError, match="n_per_class: expected at least 1 stroke"):
-        simulate_scribbles(truth, rng=rng, n_per_class=0)
+        simulate_weak_label(truth, rng=rng, n_per_class=0)
     with pytest.raises(ValueError, match="width_px: expected at least 1 pixel"):
-        simulate_scribbles(truth, rng=rng, width_px=0.5)
+        simulate_weak_label(truth, rng=rng, width_px=0.5)
     with pytest.raises(ValueError, match="length_px: expected at least 1 pixel"):
-        simulate_scribbles(truth, rng=rng, length_px=0)
+        simulate_weak_label(truth, rng=rng, length_px=0)
     with pytest.raises(ValueError, match="truth: expected a non-empty mask"):
-        simulate_scribbles(np.zeros((0, 4), np.uint8), rng=rng)
+        simulate_weak_label(np.zeros((0, 4), np.uint8), rng=rng)

@@ -58,8 +58,8 @@ class FolderBackend:
                       actions=actions, seconds=seconds)
         return self.state
 
-    def save_draft(self, mask, scribbles, *, actions, seconds) -> None:
-        _atomic_savez(self.folder / "draft.npz", mask=mask, scribbles=scribbles,
+    def save_draft(self, mask, weak_label, *, actions, seconds) -> None:
+        _atomic_savez(self.folder / "draft.npz", mask=mask, weak_label=weak_label,
                       actions=actions, seconds=seconds)
 
     def load_draft(self):
@@ -69,7 +69,7 @@ class FolderBackend:
         if not path.exists():
             return None
         with np.load(path) as z:
-            return Draft(z["mask"], z["scribbles"], int(z["actions"]), float(z["seconds"]))
+            return Draft(z["mask"], z["weak_label"], int(z["actions"]), float(z["seconds"]))
 
     def discard_draft(self) -> None:
         (self.folder / "draft.npz").unlink(missing_ok=True)

@@ -26,7 +26,7 @@ def test_memory_backend_returns_its_state_and_keeps_the_label():
     assert (saved.kind, saved.actions, saved.seconds) == ("full", 2, 1.5)
     np.testing.assert_array_equal(saved.mask, mask)
     with pytest.raises(ValueError, match=r"kind: expected one of \('full', 'scribble'\)"):
-        b.save(mask, kind="partial", actions=0, seconds=0.0)
+        b.save(mask, kind="outline", actions=0, seconds=0.0)
 
 
 def test_memory_backend_conflict_carries_theirs_and_writes_nothing():

@@ -45,18 +45,18 @@ def test_record_sees_only_the_given_box_and_nothing_changed_adds_nothing():
 
 def test_undo_redo_write_back_into_the_live_layers():
     mask = np.zeros((6, 6), np.uint8)
-    scrib = np.full((6, 6), 255, np.uint8)
-    h = EditHistory({"mask": mask, "scribbles": scrib})
+    weak = np.full((6, 6), 255, np.uint8)
+    h = EditHistory({"mask": mask, "weak_label": weak})
     mask[1:3, 1:3] = 1
-    scrib[4, :] = 2
-    assert h.record([("mask", None), ("scribbles", None)]) == [(1, 3, 1, 3), (4, 5, 0, 6)]
-    after_mask, after_scrib = mask.copy(), scrib.copy()
+    weak[4, :] = 2
+    assert h.record([("mask", None), ("weak_label", None)]) == [(1, 3, 1, 3), (4, 5, 0, 6)]
+    after_mask, after_weak = mask.copy(), weak.copy()
     assert h.undo() == [(1, 3, 1, 3), (4, 5, 0, 6)]
-    assert not mask.any() and (scrib == 255).all()
+    assert not mask.any() and (weak == 255).all()
     assert h.undo() is None
     assert h.redo() == [(1, 3, 1, 3), (4, 5, 0, 6)]
     np.testing.assert_array_equal(mask, after_mask)
-    np.testing.assert_array_equal(scrib, after_scrib)
+    np.testing.assert_array_equal(weak, after_weak)
     assert h.redo() is None
 
 

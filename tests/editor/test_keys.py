@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 from labeler.classes import DEFAULT_SCHEMA
 from labeler.editor.keys import (
     BINDINGS,
@@ -36,3 +38,5 @@ def test_readme_table_comes_from_the_key_table():
     for needle in ("`Enter`", "`Esc`", "`+` or `=`", "right or middle drag", "2 weed"):
         assert needle in table
     assert "licensed agronomic advice" in keys_markdown()
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text(encoding="utf-8")
+    assert table in readme  # the README's editor keys are this table, word for word

@@ -29,12 +29,12 @@ def _scripted(monkeypatch, steps):
 @pytest.mark.parametrize(
     ("steps", "printed", "kind"),
     [
-        ([13], "saved as accepted (full)", "full"),
-        ([ord("2"), ord("d"), *drag_steps(STROKE), 13], "saved as amended (full)", "full"),
-        ([ord("3"), ord("s"), *drag_steps(STROKE), ord("p")], "saved as weak (scribble)",
+        ([13], "saved as accepted (full mask)", "full"),
+        ([ord("2"), ord("d"), *drag_steps(STROKE), 13], "saved as amended (full mask)", "full"),
+        ([ord("3"), ord("s"), *drag_steps(STROKE), ord("p")], "saved as weak (weak label)",
          "scribble"),
     ],
-    ids=["unchanged", "stroke", "scribbles"],
+    ids=["unchanged", "stroke", "weak_label"],
 )
 def test_cli_prints_the_state_the_store_recorded(project, monkeypatch, capsys, steps,  # noqa: F811
                                                  printed, kind):
@@ -48,8 +48,9 @@ def test_cli_prints_the_state_the_store_recorded(project, monkeypatch, capsys, s
     saved = project.store.latest_annotation(tile.id, kind=kind)
     assert saved.annotator == "ines" and saved.source == "editor"
     assert out.startswith(f"tile {tile.id}: {printed};")
-    assert f"saved as {saved.state} ({saved.kind})" in out  # the word is the store's
-    assert project.store.tile(tile.id).held_by is None
+    assert f"saved as {saved.state} (" in out  # the word is the store's
+    after = project.store.tile(tile.id)
+    assert after.held_by is None and after.state != "held"  # nobody holds it any more
 
 
 def test_edit_tile_reports_the_state_written_and_releases_the_tile(project):  # noqa: F811
@@ -157,7 +158,7 @@ def test_xvfb_cli_edit_saves_amended_exactly_where_the_stroke_went(display, proj
         "full",
     )
     # the command line printed the state the store recorded
-    assert f"tile {tile.id}: saved as amended (full);" in child.log_tail()
+    assert f"tile {tile.id}: saved as amended (full mask);" in child.log_tail()
     t = ViewTransform.fit(tile.shape, view)
     points = [tuple(float(v) for v in t.view_to_tile(y, x)) for x, y in STROKE]
     stroke = stroke_mask(points, radius=4.0, shape=tile.shape)  # the editor's default radius

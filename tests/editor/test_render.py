@@ -1,27 +1,40 @@
-"""Rendering of the view: overlay, outlines, scribbles, heat map, panes, cursor."""
+"""Rendering of the view: overlay, outlines, weak label, heat map, panes, cursor."""
 
 from __future__ import annotations
+
+import math
+from fractions import Fraction
 
 import numpy as np
 import pytest
 
 from labeler.classes import DEFAULT_SCHEMA, hex_to_rgb
+from labeler.editor.render import Renderer
 from labeler.editor.state import EditorState
-from labeler.editor.view import PANE_GAP
+from labeler.editor.view import PANE_GAP, Viewport
+from labeler.masks.overlay import overlay_mask
 from tests.common import zoo_square, zoo_two_touching
 from tests.editor.helpers import make_state
 
-CROP_BGR = hex_to_rgb("#0072B2")[::-1]  # DESIGN section 2 palette (Okabe & Ito 2008)
+# the crop and weed colours of the Okabe & Ito (2008) colour-blind-safe palette
+# ("Color Universal Design", jfly.uni-koeln.de/color): blue #0072B2, orange #E69F00
+CROP_BGR = hex_to_rgb("#0072B2")[::-1]
 WEED_BGR = hex_to_rgb("#E69F00")[::-1]
+
+
+def _blend(base: int, colour: int, opacity: float) -> int:
+    """One channel, in exact fractions: (1 - o) * base + o * colour rounded half up, with
+    the opacity o taken to the nearest thousandth (the documented overlay rule)."""
+    o = Fraction(round(opacity * 1000), 1000)
+    return math.floor((1 - o) * base + o * colour + Fraction(1, 2))
 
 
 def _render_loop(s: EditorState, *, outlines: bool) -> np.ndarray:
     """Slow reference: every view pixel from the tile pixel it shows."""
     colours, has = DEFAULT_SCHEMA.lut_rgb()
-    a = int(round(s.opacity * 256))
     vh, vw = s.view_shape
     out = np.zeros((vh, vw, 3), np.uint8)
-    mask, scrib, img = s.mask, s.scribbles, s.image
+    mask, weak, img = s.mask, s.weak_label, s.image
     h, w = s.shape
     for vr in range(vh):
         for vc in range(vw):
@@ -34,13 +47,13 @@ def _render_loop(s: EditorState, *, outlines: bool) -> np.ndarray:
             px = base
             if has[m]:
                 col = [int(colours[m, 2]), int(colours[m, 1]), int(colours[m, 0])]
-                px = [(b * (256 - a) + k * a) >> 8 for b, k in zip(base, col, strict=True)]
+                px = [_blend(b, k, s.opacity) for b, k in zip(base, col, strict=True)]
                 nbrs = [(r + 1, c), (r - 1, c), (r, c + 1), (r, c - 1)]
                 if outlines and any(0 <= q < h and 0 <= p < w and mask[q, p] != m
                                     for q, p in nbrs):
                     px = col
-            if scrib[r, c] != 255:
-                k = int(scrib[r, c])
+            if weak[r, c] != 255:
+                k = int(weak[r, c])
                 px = ([int(colours[k, 2]), int(colours[k, 1]), int(colours[k, 0])] if has[k]
                       else [225, 225, 225])
             out[vr, vc] = px
@@ -58,6 +71,34 @@ def test_render_matches_slow_loop(outlines):
     s.zoom_at((10, 10), 1.7)
     s.pan_view(3, -5)
     np.testing.assert_array_equal(s.render(), _render_loop(s, outlines=outlines))
+
+
+@pytest.mark.parametrize("opacity", [0.45, 0.5, 0.3337, 1.0])
+def test_editor_overlay_is_the_overlay_of_every_other_picture(opacity):
+    # one rounding for every picture: the editor's composite (BGR) equals the overlay the
+    # export previews, the report and the queue preview draw (labeler.masks.overlay)
+    image = np.random.default_rng(3).integers(0, 256, size=(16, 16, 3), dtype=np.uint8)
+    mask = np.random.default_rng(4).integers(0, 4, size=(16, 16), dtype=np.uint8)
+    mask[0, :4] = 255  # unlabelled pixels keep the image
+    r = Renderer(image, schema=DEFAULT_SCHEMA, opacity=opacity)
+    r.show_outlines = False
+    weak = np.full((16, 16), 255, np.uint8)
+    frame = r.render(mask, weak, viewport=Viewport((16, 16), (16, 16)))
+    expected = overlay_mask(image, mask, schema=DEFAULT_SCHEMA, opacity=opacity)[:, :, ::-1]
+    np.testing.assert_array_equal(frame, expected)
+
+
+def test_blend_rounds_half_up():
+    # crop #0072B2 is BGR (178, 114, 0): half of it is (89, 57, 0) exactly; over a pixel of
+    # 1 the halves are (89.5, 57.5, 0.5), rounded half up to (90, 58, 1) (a shift by 8 bits,
+    # (b * 128 + k * 128) >> 8, would give (89, 57, 0) again)
+    image = np.zeros((8, 8, 3), np.uint8)
+    image[:, 4:] = 1
+    r = Renderer(image, schema=DEFAULT_SCHEMA, opacity=0.5)
+    r.show_outlines = False
+    frame = r.render(np.ones((8, 8), np.uint8), np.full((8, 8), 255, np.uint8),
+                     viewport=Viewport((8, 8), (8, 8)))
+    assert frame[0, 0].tolist() == [89, 57, 0] and frame[0, 7].tolist() == [90, 58, 1]
 
 
 def test_full_opacity_shows_the_palette_colours():
@@ -134,24 +175,21 @@ def test_cursor_is_drawn_for_stroke_tools_only():
 
 
 def test_renderer_redraws_the_boxes_reported_and_nothing_else():
-    from labeler.editor.render import Renderer
-    from labeler.editor.view import Viewport
-
     image = np.zeros((8, 8, 3), np.uint8)
     mask = np.zeros((8, 8), np.uint8)
-    scrib = np.full((8, 8), 255, np.uint8)
+    weak = np.full((8, 8), 255, np.uint8)
     r = Renderer(image, schema=DEFAULT_SCHEMA, opacity=1.0)
     r.show_outlines = False
     vp = Viewport((8, 8), (64, 64))
-    r.render(mask, scrib, viewport=vp)
+    r.render(mask, weak, viewport=vp)
     mask[1, 1] = 1
     r.touched((1, 2, 1, 2))
     mask[6, 6] = 2  # changed but not reported: the cached composite keeps soil there
-    frame = r.render(mask, scrib, viewport=vp)
+    frame = r.render(mask, weak, viewport=vp)
     assert tuple(frame[1 * 8 + 4, 1 * 8 + 4]) == CROP_BGR
     assert tuple(frame[6 * 8 + 4, 6 * 8 + 4]) == (0, 0, 0)
     r.opacity = 1.0  # a style change composes the whole tile again
-    assert tuple(r.render(mask, scrib, viewport=vp)[6 * 8 + 4, 6 * 8 + 4]) == WEED_BGR
+    assert tuple(r.render(mask, weak, viewport=vp)[6 * 8 + 4, 6 * 8 + 4]) == WEED_BGR
 
 
 def test_renderer_heat_map_stays_off_without_a_map():

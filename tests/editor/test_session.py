@@ -57,7 +57,7 @@ def test_enter_without_edits_sends_the_unchanged_mask():
     np.testing.assert_array_equal(backend.saved[0].mask, coin_tile()[1])
 
 
-def test_scribble_save_sends_the_scribbles_alone():
+def test_weak_label_save_sends_the_weak_label_alone():
     backend = MemoryBackend(state="weak")
     steps = [ord("3"), ord("s"), *drag_steps([(40, 40), (80, 40)]), ord("p")]
     outcome = run_editor(coin_state(), backend=backend, title="t", gui=ScriptGui(steps))
@@ -68,11 +68,11 @@ def test_scribble_save_sends_the_scribbles_alone():
     assert (saved.mask[expected] == 3).all()
 
 
-def test_scribble_save_without_scribbles_saves_nothing():
+def test_weak_label_save_without_marks_saves_nothing():
     backend = MemoryBackend()
     session = EditorSession(coin_state(), backend=backend, title="t")
     session.on_key(ord("p"))
-    assert backend.saved == [] and not session.done and "no scribbles" in session.message
+    assert backend.saved == [] and not session.done and "no weak label" in session.message
 
 
 def test_escape_asks_and_n_keeps_y_discards():

@@ -74,7 +74,7 @@ def _run(s: EditorState, op) -> None:
             s.polygon_add(v)
         s.polygon_close()
     elif name == "clear":
-        s.clear_scribbles()
+        s.clear_weak_label()
     else:
         s.refine()
 
@@ -85,20 +85,20 @@ def test_any_edits_then_undo_all_restores_and_redo_all_replays(ops, radius):
     proposal = zoo_two_touching()
     proposal = np.pad(proposal, ((0, 4), (0, 4)))  # 12 x 12
     s = EditorState(image_of((12, 12)), proposal, radius=radius, band_px=3, view_shape=(48, 48))
-    start_mask, start_scrib = s.mask, s.scribbles
+    start_mask, start_weak = s.mask, s.weak_label
     for op in ops:
         _run(s, op)
-    end_mask, end_scrib = s.mask, s.scribbles
+    end_mask, end_weak = s.mask, s.weak_label
     while s.undo():
         pass
     np.testing.assert_array_equal(s.mask, start_mask)
-    np.testing.assert_array_equal(s.scribbles, start_scrib)
+    np.testing.assert_array_equal(s.weak_label, start_weak)
     while s.redo():
         pass
     np.testing.assert_array_equal(s.mask, end_mask)
-    np.testing.assert_array_equal(s.scribbles, end_scrib)
+    np.testing.assert_array_equal(s.weak_label, end_weak)
     # the incrementally kept view equals a fresh render of the same masks
-    fresh = EditorState(s.image, proposal, mask=end_mask, scribbles=end_scrib,
+    fresh = EditorState(s.image, proposal, mask=end_mask, weak_label=end_weak,
                         view_shape=(48, 48))
     np.testing.assert_array_equal(s.render(), fresh.render())
 
@@ -134,8 +134,8 @@ def test_constructor_and_setter_errors():
         EditorState(img[:, :, 0], np.zeros((8, 8), np.uint8))
     with pytest.raises(ValueError, match=r"proposal: expected a uint8 array of shape \(8, 8\)"):
         EditorState(img, np.zeros((8, 7), np.uint8))
-    with pytest.raises(ValueError, match="scribbles: expected a uint8 array"):
-        EditorState(img, np.zeros((8, 8), np.uint8), scribbles=np.zeros((8, 8), np.int16))
+    with pytest.raises(ValueError, match="weak_label: expected a uint8 array"):
+        EditorState(img, np.zeros((8, 8), np.uint8), weak_label=np.zeros((8, 8), np.int16))
     with pytest.raises(ValueError, match="connectivity: expected 4 or 8"):
         EditorState(img, np.zeros((8, 8), np.uint8), connectivity=6)
     with pytest.raises(ValueError, match="view_shape: expected"):

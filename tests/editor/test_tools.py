@@ -1,4 +1,4 @@
-"""The editor's tools and gestures: brush, erase, fill, polygon, box, scribbles, refine."""
+"""The editor's tools and gestures: brush, erase, fill, polygon, box, scribble, refine."""
 
 from __future__ import annotations
 
@@ -148,20 +148,20 @@ def test_box_drag_through_the_pointer():
     assert (m & disc).sum() / (m | disc).sum() >= 0.9  # as above: common practice, no source
 
 
-def test_scribbles_are_a_weak_layer_and_clear_is_undoable():
+def test_scribble_marks_the_weak_label_and_clear_is_undoable():
     s = make_state(radius=0.5, active_class=3)
     s.scribble([(4, 1), (4, 6)])
     expected = np.full((8, 8), 255, np.uint8)
     expected[4, 1:7] = 3
-    np.testing.assert_array_equal(s.scribbles, expected)
-    assert not s.changed and s.has_scribbles
-    s.clear_scribbles()
-    assert not s.has_scribbles
+    np.testing.assert_array_equal(s.weak_label, expected)
+    assert not s.changed and s.has_weak_label
+    s.clear_weak_label()
+    assert not s.has_weak_label
     s.undo()
-    np.testing.assert_array_equal(s.scribbles, expected)
+    np.testing.assert_array_equal(s.weak_label, expected)
 
 
-def test_refine_changes_only_the_band_around_the_scribbles():
+def test_refine_changes_only_the_band_around_the_marks():
     grey = data.coins()[20:84, 125:189]  # scikit-image sample data: one coin
     image = np.ascontiguousarray(np.dstack([grey] * 3))
     s = EditorState(image, np.zeros((64, 64), np.uint8), radius=1, band_px=6,
@@ -172,10 +172,10 @@ def test_refine_changes_only_the_band_around_the_scribbles():
     s.active_class = 0
     s.scribble([(2, 2), (2, 20)])
     assert s.refine()
-    sc = s.scribbles
-    from labeler.masks.refine import scribble_band
+    sc = s.weak_label
+    from labeler.masks.refine import weak_label_band
 
-    band = scribble_band(sc, band_px=6)
+    band = weak_label_band(sc, band_px=6)
     assert not s.mask[~band].any()
     assert (s.mask[sc == 1] == 1).all() and s.changed
 
@@ -189,7 +189,7 @@ def test_restore_draft_adds_its_counters_and_undoes():
     np.testing.assert_array_equal(s.mask, m)
     assert s.actions == 8 and s.seconds == 30.0
     s.undo()
-    assert not s.changed and not s.has_scribbles
+    assert not s.changed and not s.has_weak_label
     with pytest.raises(ValueError, match=r"mask: expected a uint8 array of shape \(8, 8\)"):
         s.restore_draft(np.ones((7, 8), np.uint8), sc)
 

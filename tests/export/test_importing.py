@@ -127,8 +127,8 @@ def test_rfc7946_appendix_a3_polygon_on_a_lonlat_grid():
 
 def test_fill_decides_what_uncovered_pixels_become():
     crop = square_feature(1, 1, 4, 4, **{"class": "crop"})
-    partial = features_to_mask(pixel_collection(crop), shape=(6, 6))
-    assert np.count_nonzero(partial == 1) == 9 and np.count_nonzero(partial == 255) == 27
+    weak = features_to_mask(pixel_collection(crop), shape=(6, 6))
+    assert np.count_nonzero(weak == 1) == 9 and np.count_nonzero(weak == 255) == 27
     as_soil = features_to_mask(pixel_collection(crop), shape=(6, 6), fill=0)
     assert np.count_nonzero(as_soil == 0) == 27
     # soil polygons everywhere else make a full mask even with fill 255

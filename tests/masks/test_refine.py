@@ -1,4 +1,4 @@
-"""Scribbles to masks: the band, random walker, superpixel snapping, GrabCut in a box."""
+"""Weak labels to masks: the band, random walker, superpixel snapping, GrabCut in a box."""
 
 from __future__ import annotations
 
@@ -11,8 +11,8 @@ from skimage.morphology import disk
 from labeler.masks.refine import (
     grabcut_box,
     refine_random_walker,
-    scribble_band,
     snap_to_superpixels,
+    weak_label_band,
 )
 from tests.masks.scenes import disc, plant_scene
 
@@ -29,21 +29,21 @@ def _coins_case():
     """
     grey = data.coins()
     image = np.ascontiguousarray(np.dstack([grey] * 3))
-    scribbles = np.full(grey.shape, 255, np.uint8)
-    scribbles[49:53, 145:166] = 1  # a cross on the coin centred near (51, 155)
-    scribbles[40:62, 153:157] = 1
-    scribbles[88:91, 130:181] = 0  # background strip below it
+    weak_label = np.full(grey.shape, 255, np.uint8)
+    weak_label[49:53, 145:166] = 1  # a cross on the coin centred near (51, 155)
+    weak_label[40:62, 153:157] = 1
+    weak_label[88:91, 130:181] = 0  # background strip below it
     otsu = grey > filters.threshold_otsu(grey)
     labels = measure.label(otsu, connectivity=1)
     coin = labels == labels[51, 155]
-    return image, scribbles, coin
+    return image, weak_label, coin
 
 
-def _reference_loop_band(scribbles, band_px):
-    pts = np.argwhere(scribbles != 255)
-    out = np.zeros(scribbles.shape, bool)
-    for r in range(scribbles.shape[0]):
-        for c in range(scribbles.shape[1]):
+def _reference_loop_band(weak_label, band_px):
+    pts = np.argwhere(weak_label != 255)
+    out = np.zeros(weak_label.shape, bool)
+    for r in range(weak_label.shape[0]):
+        for c in range(weak_label.shape[1]):
             out[r, c] = any((r - pr) ** 2 + (c - pc) ** 2 <= band_px**2 for pr, pc in pts)
     return out
 
@@ -51,42 +51,42 @@ def _reference_loop_band(scribbles, band_px):
 def test_band_of_one_pixel_is_skimage_disk():
     s = np.full((11, 11), 255, np.uint8)
     s[5, 5] = 2
-    band = scribble_band(s, band_px=2)
+    band = weak_label_band(s, band_px=2)
     expected = np.zeros((11, 11), bool)
     expected[3:8, 3:8] = disk(2).astype(bool)  # oracle: skimage.morphology.disk(2), 13 pixels
     np.testing.assert_array_equal(band, expected)
     assert band.sum() == 13
 
 
-def test_band_matches_slow_loop_and_is_empty_without_scribbles():
+def test_band_matches_slow_loop_and_is_empty_without_marks():
     rng = np.random.default_rng(2)
     s = np.full((14, 15), 255, np.uint8)
     s[rng.integers(0, 14, 4), rng.integers(0, 15, 4)] = 1
-    np.testing.assert_array_equal(scribble_band(s, band_px=3.2), _reference_loop_band(s, 3.2))
-    assert not scribble_band(np.full((4, 4), 255, np.uint8), band_px=5).any()
+    np.testing.assert_array_equal(weak_label_band(s, band_px=3.2), _reference_loop_band(s, 3.2))
+    assert not weak_label_band(np.full((4, 4), 255, np.uint8), band_px=5).any()
 
 
 @pytest.mark.parametrize("mode", ["cg_j", "auto"])
 def test_two_scribbles_on_coins_find_the_otsu_coin(mode):
-    image, scribbles, coin = _coins_case()
+    image, weak_label, coin = _coins_case()
     start = np.zeros(coin.shape, np.uint8)
-    refined = refine_random_walker(image, start, scribbles, band_px=32, mode=mode)
+    refined = refine_random_walker(image, start, weak_label, band_px=32, mode=mode)
     # scikit-image data, Otsu as the reference; threshold from the task: IoU >= 0.9
     assert _iou(refined == 1, coin) >= 0.9
 
 
-def test_refine_changes_nothing_outside_the_band_and_keeps_scribbles():
-    image, scribbles, _ = _coins_case()
+def test_refine_changes_nothing_outside_the_band_and_keeps_marks():
+    image, weak_label, _ = _coins_case()
     rng = np.random.default_rng(0)
-    start = rng.integers(0, 3, size=scribbles.shape).astype(np.uint8)
-    refined = refine_random_walker(image, start, scribbles, band_px=12)
-    band = scribble_band(scribbles, band_px=12)
+    start = rng.integers(0, 3, size=weak_label.shape).astype(np.uint8)
+    refined = refine_random_walker(image, start, weak_label, band_px=12)
+    band = weak_label_band(weak_label, band_px=12)
     np.testing.assert_array_equal(refined[~band], start[~band])
-    on = scribbles != 255
-    np.testing.assert_array_equal(refined[on], scribbles[on])
+    on = weak_label != 255
+    np.testing.assert_array_equal(refined[on], weak_label[on])
 
 
-def test_refine_without_scribbles_is_a_copy():
+def test_refine_of_an_empty_weak_label_is_a_copy():
     image = np.zeros((6, 6, 3), np.uint8)
     mask = np.eye(6, dtype=np.uint8)
     out = refine_random_walker(image, mask, np.full((6, 6), 255, np.uint8))
@@ -133,11 +133,11 @@ def test_snap_moves_a_boundary_onto_the_colour_edge():
 
 
 def test_refine_with_snapping_still_finds_the_coin_and_stays_in_the_band():
-    image, scribbles, coin = _coins_case()
+    image, weak_label, coin = _coins_case()
     start = np.zeros(coin.shape, np.uint8)
-    refined = refine_random_walker(image, start, scribbles, band_px=32, snap=True,
+    refined = refine_random_walker(image, start, weak_label, band_px=32, snap=True,
                                    n_segments=200)
-    band = scribble_band(scribbles, band_px=32)
+    band = weak_label_band(weak_label, band_px=32)
     assert not refined[~band].any()
     assert _iou(refined == 1, coin) >= 0.85  # snapping to SLIC cells; common practice, no source
 
@@ -183,25 +183,25 @@ def test_refine_errors():
     s = np.full((6, 6), 255, np.uint8)
     with pytest.raises(ValueError, match=r"mask: expected a uint8 array of shape \(6, 6\)"):
         refine_random_walker(image, np.zeros((5, 6), np.uint8), s)
-    with pytest.raises(ValueError, match="scribbles: expected a uint8 array"):
+    with pytest.raises(ValueError, match="weak_label: expected a uint8 array"):
         refine_random_walker(image, m, s.astype(np.int32))
     with pytest.raises(ValueError, match="mode: expected"):
         refine_random_walker(image, m, s, mode="fast")
     with pytest.raises(ValueError, match="band_px: expected a width"):
-        scribble_band(s, band_px=-1)
+        weak_label_band(s, band_px=-1)
     with pytest.raises(ValueError, match="region: expected shape"):
         snap_to_superpixels(image, m, region=np.ones((5, 5), bool))
 
 
 def test_rim_pixels_without_label_give_no_seed():
-    # a 255 rim (no label) must not become a class: the band is decided by the scribbles
+    # a 255 rim (no label) must not become a class: the band is decided by the marks
     image = np.zeros((12, 12, 3), np.uint8)
     image[:, 6:] = 255
     mask = np.full((12, 12), 255, np.uint8)
     s = np.full((12, 12), 255, np.uint8)
     s[6, 2], s[6, 9] = 1, 2
     out = refine_random_walker(image, mask, s, band_px=3)
-    band = scribble_band(s, band_px=3)
+    band = weak_label_band(s, band_px=3)
     assert set(np.unique(out[band]).tolist()) <= {1, 2}
     assert (out[~band] == 255).all()
     assert ndi.label(out == 1)[0].max() >= 1
@@ -280,9 +280,9 @@ def test_a_second_plant_without_scribble_keeps_its_class():
     image = plant_scene((64, 64), [first, second])
     mask = np.zeros((64, 64), np.uint8)
     mask[second] = 1  # proposed as crop; the band around the scribble covers it
-    scribbles = _one_weed_scribble((64, 64), (20, 20))
-    assert scribble_band(scribbles, band_px=40)[second].all()
-    out = refine_random_walker(image, mask, scribbles, band_px=40)
+    weak_label = _one_weed_scribble((64, 64), (20, 20))
+    assert weak_label_band(weak_label, band_px=40)[second].all()
+    out = refine_random_walker(image, mask, weak_label, band_px=40)
     np.testing.assert_array_equal(out[second], 1)
     assert _iou(out == 2, first) >= 0.9
 
@@ -291,8 +291,8 @@ def test_without_edge_threshold_refine_is_the_plain_random_walker():
     # the weak-label tile of the test above: one class among all seeds fills the band
     plant = disc((64, 64), (32, 32), 9)
     image = plant_scene((64, 64), [plant])
-    scribbles = _one_weed_scribble((64, 64), (32, 32))
+    weak_label = _one_weed_scribble((64, 64), (32, 32))
     mask = np.full((64, 64), 255, np.uint8)
-    out = refine_random_walker(image, mask, scribbles, edge_threshold=None)
-    band = scribble_band(scribbles, band_px=24)
+    out = refine_random_walker(image, mask, weak_label, edge_threshold=None)
+    band = weak_label_band(weak_label, band_px=24)
     np.testing.assert_array_equal(out, np.where(band, 2, 255).astype(np.uint8))

@@ -73,14 +73,14 @@ def test_training_on_features_returns_head_and_val_iou(tiles):
     assert 1 <= res.best_epoch <= 2 and not res.head.training
 
 
-def test_scribbles_train_and_auto_picks_image_mode(tiles, encoder):
+def test_weak_labels_train_and_auto_picks_image_mode(tiles, encoder):
     images, masks, feats = tiles
-    scribbles = []
+    weak_labels = []
     for m in masks:  # keep only every fourth row: a weak label
         s = np.full_like(m, 255)
         s[::4] = m[::4]
-        scribbles.append(s)
-    res = fit(scribbles, class_indices=(0, 1), images=images, encoder=encoder, settings=TINY)
+        weak_labels.append(s)
+    res = fit(weak_labels, class_indices=(0, 1), images=images, encoder=encoder, settings=TINY)
     assert res.mode == "images"
     assert np.isfinite(res.history[-1]["train_loss"])
 

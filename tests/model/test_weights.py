@@ -1,3 +1,6 @@
+import hashlib
+import os
+
 import pytest
 import torch
 
@@ -8,6 +11,7 @@ from labeler.model.weights import (
     map_state_dict,
     read_state_dict,
     source_key_map,
+    weights_digest,
     weights_path,
 )
 
@@ -24,6 +28,24 @@ def model():
 
 def test_packaged_file_is_the_named_one():
     assert weights_path().name == WEIGHTS_FILE
+
+
+def test_packaged_digest_starts_with_the_file_name_hash():
+    # torch.hub names checkpoint files "<name>-<first 8 hex digits of the SHA-256>.pth"
+    # (torch.hub.download_url_to_file / load_state_dict_from_url, check_hash)
+    digest = weights_digest()
+    assert len(digest) == 64 and digest.startswith(WEIGHTS_FILE.rsplit("-", 1)[1][:8])
+
+
+def test_digest_is_the_sha256_of_the_bytes_and_follows_a_changed_file(tmp_path):
+    path = tmp_path / "w.pth"
+    path.write_bytes(b"first")
+    # reference: the standard library's hashlib.sha256 of the whole content
+    assert weights_digest(path) == hashlib.sha256(b"first").hexdigest()
+    path.write_bytes(b"second, longer")
+    st = path.stat()
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000))  # a new mtime for sure
+    assert weights_digest(path) == hashlib.sha256(b"second, longer").hexdigest()
 
 
 def test_mapping_covers_every_key_both_ways(source, model):

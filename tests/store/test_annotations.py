@@ -55,7 +55,7 @@ def test_kind_state_and_tile_checked_on_save(store):
     assert store.annotations(kind=None) == []
 
 
-def test_scribbles_keep_unlabelled_and_state(store):
+def test_weak_labels_keep_unlabelled_and_state(store):
     tile = store.tiles()[0]
     weak = zoo_unlabelled(tile.shape)
     weak[10:20, 10:20] = 2
@@ -63,7 +63,7 @@ def test_scribbles_keep_unlabelled_and_state(store):
         tile.id, "ines", weak, parent_version=None, kind="scribble", state="weak"
     )
     np.testing.assert_array_equal(rec.mask(), weak)
-    assert store.tile(tile.id).state == "unseen"  # scribbles do not change the state
+    assert store.tile(tile.id).state == "unseen"  # a weak label does not change the state
 
 
 @pytest.mark.parametrize(
@@ -122,7 +122,7 @@ def test_save_the_life_cycle_refuses_writes_nothing(tmp_path):
     assert [a.version for a in store.annotation_history(tile.id)] == [1, 2]
     assert store.tile(tile.id).state == "contested"
     assert store.load_draft(tile.id, "ines") is not None  # the work is still there
-    # a scribble save does not move the tile, so it is not refused
+    # a weak-label save does not move the tile, so it is not refused
     store.save_annotation(
         tile.id, "ines", _mask(tile, 255), parent_version=1, kind="scribble", state="weak"
     )

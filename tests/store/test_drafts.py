@@ -15,14 +15,14 @@ def test_drafts(store):
     tile = store.tiles()[0]
     assert store.load_draft(tile.id, "ines") is None
     store.save_draft(
-        tile.id, "ines", _mask(tile, 2), scribbles=_mask(tile, 255), actions=3, seconds=4.0
+        tile.id, "ines", _mask(tile, 2), weak_label=_mask(tile, 255), actions=3, seconds=4.0
     )
     first = store.load_draft(tile.id, "ines")
-    assert (first.mask == 2).all() and (first.scribbles == 255).all()
+    assert (first.mask == 2).all() and (first.weak_label == 255).all()
     assert (first.actions, first.seconds, first.parent_version) == (3, 4.0, None)
     store.save_draft(tile.id, "ines", _mask(tile, 3), parent_version=1, actions=5, seconds=6.0)
     d = store.load_draft(tile.id, "ines")
-    assert (d.mask == 3).all() and d.actions == 5 and d.scribbles is None
+    assert (d.mask == 3).all() and d.actions == 5 and d.weak_label is None
     assert d.parent_version == 1 and d.saved_at >= first.saved_at
     with store.engine.connect() as conn:  # replaced, not added
         assert len(conn.execute(t.drafts.select()).all()) == 1
@@ -46,8 +46,8 @@ def test_draft_shapes_checked(store):
     tile = store.tiles()[0]
     with pytest.raises(ValueError, match=rf"^mask: expected shape \(256, 256\) of tile {tile.id}"):
         store.save_draft(tile.id, "ines", np.zeros((8, 8), np.uint8))
-    with pytest.raises(ValueError, match=r"^scribbles: expected shape \(256, 256\)"):
-        store.save_draft(tile.id, "ines", _mask(tile, 1), scribbles=np.zeros((8, 8), np.uint8))
+    with pytest.raises(ValueError, match=r"^weak_label: expected shape \(256, 256\)"):
+        store.save_draft(tile.id, "ines", _mask(tile, 1), weak_label=np.zeros((8, 8), np.uint8))
     with pytest.raises(NotFoundError, match="^tile 999 is not in this project$"):
         store.save_draft(999, "ines", _mask(tile, 1))
     assert store.load_draft(tile.id, "ines") is None

@@ -49,5 +49,5 @@ def test_counts(store):
     assert store.state_counts(image_id=a.image_id + 1) == dict.fromkeys(STATES, 0)
     # two saves of one tile count as one tile; seconds and actions add up over every save
     assert store.annotator_counts() == {
-        "ines": {"tiles": 1, "scribbles": 1, "seconds": 40.0, "actions": 7}
+        "ines": {"tiles": 1, "weak_labels": 1, "seconds": 40.0, "actions": 7}
     }

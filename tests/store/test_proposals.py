@@ -1,10 +1,11 @@
-"""Proposals (the first one moves a tile from unseen to proposed) and rankings."""
+"""Proposals (the first one moves a tile from unseen to proposed) and picks."""
 
 import numpy as np
 import pytest
 
 from labeler.errors import NotFoundError
-from labeler.store import NewProposal, RankingItem
+from labeler.store import NewProposal, PickItem
+from labeler.store.proposals import PICK_EVENT
 
 
 def _mask(tile, value):
@@ -88,26 +89,27 @@ def test_proposal_checks_write_nothing(store):
         store.proposal(5)
 
 
-def test_rankings(store):
+def test_picks(store):
     ids = [t.id for t in store.tiles()]
-    assert store.latest_ranking() == []
-    first = store.write_ranking(
+    assert store.latest_pick() == []
+    first = store.write_pick(
         strategy="mixed",
         k=2,
         seed=0,
         items=[
-            RankingItem(ids[2], 0, 0.9, "uncertain", True),
-            RankingItem(ids[0], 1, 0.5, "rare class", True),
+            PickItem(ids[2], 0, 0.9, "uncertain", True),
+            PickItem(ids[0], 1, 0.5, "rare class", True),
         ],
     )
-    got = store.latest_ranking()
+    got = store.latest_pick()
     assert [(i.tile_id, i.reason) for i in got] == [(ids[2], "uncertain"), (ids[0], "rare class")]
-    second = store.write_ranking(
-        strategy="uncertainty", k=1, seed=1, items=[RankingItem(ids[1], 0, 0.7, "uncertain", False)]
+    second = store.write_pick(
+        strategy="uncertainty", k=1, seed=1, items=[PickItem(ids[1], 0, 0.7, "uncertain", False)]
     )
     assert second > first
-    assert store.latest_ranking() == [RankingItem(ids[1], 0, 0.7, "uncertain", False)]
-    assert store.events(kind="ranked")[-1].detail == {
+    assert store.latest_pick() == [PickItem(ids[1], 0, 0.7, "uncertain", False)]
+    assert PICK_EVENT == "ranked"  # the stored event kind existing databases hold
+    assert store.events(kind=PICK_EVENT)[-1].detail == {
         "ranking": second,
         "strategy": "uncertainty",
         "k": 1,

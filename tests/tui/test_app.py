@@ -89,7 +89,7 @@ async def test_worker_error_becomes_a_notification(project):
         await pilot.press("r")
         await idle(pilot)
         with pytest.raises(LabelerError) as info:
-            workflow.rank_tiles(project)
+            workflow.pick_tiles(project)
         notice = app.notices[-1]
         assert notice.severity == "error" and notice.message == str(info.value)
         assert "run 'labeler propose' first" in notice.message
@@ -149,10 +149,10 @@ async def test_retrain_error_and_busy_guard(project, monkeypatch):
     app = QueueApp(project, annotator="ana")
     async with app.run_test(size=SIZE) as pilot:
         await idle(pilot)
-        app.screen.long_work = "re-ranking the queue"  # as if the picker were still running
+        app.screen.long_work = "re-picking the queue"  # as if the picker were still running
         await pilot.press("t")
         assert app.notices[-1].message == (
-            "re-ranking the queue is still running; wait for it to finish"
+            "re-picking the queue is still running; wait for it to finish"
         )
         app.screen.long_work = None
         await pilot.press("t")
@@ -225,9 +225,9 @@ async def test_a_second_accept_waits_for_the_first(project, monkeypatch):
 def test_unexpected_error_message(project):
     app = QueueApp(project, annotator="ana")
     app.notify = lambda *a, **k: None  # not running: only the wording is checked here
-    app.report_error(ZeroDivisionError("division by zero"), doing="re-ranking")
+    app.report_error(ZeroDivisionError("division by zero"), doing="re-picking")
     assert app.notices[-1].message == (
-        "re-ranking failed unexpectedly: ZeroDivisionError: division by zero"
+        "re-picking failed unexpectedly: ZeroDivisionError: division by zero"
     )
 
 

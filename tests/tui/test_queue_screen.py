@@ -9,7 +9,7 @@ from labeler.tui.app import QueueApp
 from labeler.tui.preview import half_block_text, tile_picture
 from labeler.tui.rows import QUEUE_COLUMNS
 from labeler.tui.widgets import TilePreview, WorkBar
-from labeler.workflow import park_tile, queue_rows, rank_tiles
+from labeler.workflow import park_tile, pick_tiles, queue_rows
 from tests.tui.helpers import SIZE, idle, svg_text
 from tests.workflow.conftest import fake_proposals
 
@@ -21,21 +21,21 @@ def _state_column(table):
 
 async def test_queue_shows_picker_order_and_screenshot(project, artefacts):
     fake_proposals(project)
-    rank_tiles(project, seed=0)
+    pick_tiles(project, seed=0)
     app = QueueApp(project, annotator="ana")
     async with app.run_test(size=SIZE) as pilot:
         await idle(pilot)
         screen = app.screen
-        ranking = [i.tile_id for i in project.store.latest_ranking()]
-        assert screen.table_order() == ranking
+        order = [i.tile_id for i in project.store.latest_pick()]
+        assert screen.table_order() == order
         table = screen.query_one("#queue", DataTable)
         assert [str(c.label) for c in table.columns.values()] == list(QUEUE_COLUMNS)
         first = table.get_row_at(0)
-        assert str(first[0]) == "1" and str(first[1]) == str(ranking[0])
+        assert str(first[0]) == "1" and str(first[1]) == str(order[0])
         path = app.save_screenshot(filename="queue.svg", path=str(artefacts))
     svg = svg_text(path)
     for heading in (*QUEUE_COLUMNS, "every state", "any class", "anyone", "labeler queue",
-                    "re-rank", "accept", "crop", "weed", "symptom"):
+                    "re-pick", "accept", "crop", "weed", "symptom"):
         assert heading in svg, heading
 
 
@@ -139,27 +139,27 @@ async def test_accept_from_the_preview_and_park(project):
         assert str(row[QUEUE_COLUMNS.index("state")]) == "parked"
 
 
-async def test_rerank_updates_the_order(project):
+async def test_repick_updates_the_order(project):
     fake_proposals(project, seed=4)
     app = QueueApp(project, annotator="ana")
     async with app.run_test(size=SIZE) as pilot:
         await idle(pilot)
-        assert project.store.latest_ranking() == []
+        assert project.store.latest_pick() == []
         assert app.screen.table_order() == [t.id for t in project.store.tiles()]
         await pilot.press("r")
         await idle(pilot)
-        ranking = [i.tile_id for i in project.store.latest_ranking()]
-        assert len(ranking) == 6
-        assert app.screen.table_order() == ranking
+        order = [i.tile_id for i in project.store.latest_pick()]
+        assert len(order) == 6
+        assert app.screen.table_order() == order
         assert app.screen.long_work is None
         assert not app.screen.query_one(WorkBar).has_class("busy")
-        assert any(n.message.startswith("queue re-ranked") for n in app.notices)
+        assert any(n.message.startswith("queue re-picked") for n in app.notices)
 
 
 async def test_next_selects_the_next_tile_and_clears_filters(project):
     fake_proposals(project)
-    rank_tiles(project, seed=0)
-    first = project.store.latest_ranking()[0].tile_id
+    pick_tiles(project, seed=0)
+    first = project.store.latest_pick()[0].tile_id
     app = QueueApp(project, annotator="ana")
     async with app.run_test(size=SIZE) as pilot:
         await idle(pilot)

@@ -60,10 +60,10 @@ def test_queue_cells_exact():
     assert len(cells) == len(QUEUE_COLUMNS)
     assert cells == ("3", "7", "north-strip", "proposed", "", "crop 41% weed 7%", "", "1.500",
                      "uncertain")
-    unranked = queue_cells(_row(8, rank=None, score=None, reason=None, overlap=True),
+    without_proposal = queue_cells(_row(8, rank=None, score=None, reason=None, overlap=True),
                            schema=DEFAULT_SCHEMA)
-    assert unranked[0] == "-" and unranked[7] == "-" and unranked[8] == ""
-    assert unranked[QUEUE_COLUMNS.index("agreement")] == "overlap"
+    assert without_proposal[0] == "-" and without_proposal[7] == "-" and without_proposal[8] == ""
+    assert without_proposal[QUEUE_COLUMNS.index("agreement")] == "overlap"
     agreed = queue_cells(_row(9, overlap=True, agreement=0.4321), schema=DEFAULT_SCHEMA)
     assert agreed[QUEUE_COLUMNS.index("agreement")] == "0.432"
 

@@ -7,7 +7,7 @@ from labeler.agreement import cohen_kappa
 from labeler.errors import ConflictError, LabelerError, NotFoundError
 from labeler.metrics import confusion_matrix
 from labeler.workflow import accept_tile, next_tile, park_tile, queue_rows, save_tile_mask
-from labeler.workflow.annotating import overlap_agreement, save_state
+from labeler.workflow.annotating import overlap_agreement, save_state, weak_label_tile_state
 from tests.workflow.conftest import fake_proposals
 
 
@@ -48,9 +48,10 @@ _P = np.array([[0, 1], [2, 3]], np.uint8)
 _Q = np.array([[0, 1], [2, 2]], np.uint8)
 
 
-# the rule of DESIGN section 3 (accepted = proposal kept unchanged, amended = corrected,
-# settled = a reviewer decided) plus the weak-label state of scribble-only saves, written
-# out case by case: (kind, settling, mask, proposal) -> state
+# the rule of the tile life cycle (docs/architecture.md, "Tile life cycle": accepted =
+# proposal kept unchanged, amended = corrected, settled = a reviewer decided) plus the
+# state of weak-label saves, written out case by case: (kind, settling, mask, proposal)
+# -> state
 @pytest.mark.parametrize(
     ("kind", "settling", "mask", "proposal", "state"),
     [
@@ -68,19 +69,82 @@ def test_save_state_table(kind, settling, mask, proposal, state):
 
 
 def test_save_state_refuses_an_unknown_kind():
-    with pytest.raises(ValueError, match="kind: expected 'full' or 'scribble', got 'partial'"):
-        save_state(kind="partial", settling=False, mask=_P, proposal=None)
+    with pytest.raises(ValueError, match="kind: expected 'full' or 'scribble', got 'outline'"):
+        save_state(kind="outline", settling=False, mask=_P, proposal=None)
 
 
-def test_scribble_save_records_weak_and_leaves_the_tile_state(project):
+def test_weak_label_save_records_weak_and_leaves_the_tile_state(project):
     fake_proposals(project)
     t = project.store.tiles()[0]
     before = project.store.tile(t.id).state
-    scrib = np.full(t.shape, 255, np.uint8)
-    scrib[5, 5:9] = 2
-    rec = save_tile_mask(project, t.id, "ines", scrib, parent_version=None, kind="scribble")
+    weak = np.full(t.shape, 255, np.uint8)
+    weak[5, 5:9] = 2
+    rec = save_tile_mask(project, t.id, "ines", weak, parent_version=None, kind="scribble")
     assert (rec.kind, rec.state) == ("scribble", "weak")
     assert project.store.tile(t.id).state == before
+
+
+@pytest.mark.parametrize(
+    ("tile_state", "held_by", "has_proposal", "expected"),
+    [
+        # a tile the saver held goes back where a release takes it: "held" means an
+        # annotator has it open (tile life cycle, docs/architecture.md)
+        ("held", "ines", True, "proposed"),
+        ("held", "ines", False, "unseen"),
+        ("held", None, True, "proposed"),  # held by nobody: stuck, so it is freed too
+        ("held", "tomas", True, None),  # someone else's hold is theirs
+        ("proposed", None, True, None),
+        ("unseen", None, False, None),
+        ("parked", None, True, None),
+        ("accepted", None, True, None),  # a saved tile stays saved
+        ("amended", "ines", True, None),  # a saved tile open in the editor keeps its state
+        ("contested", None, True, None),
+    ],
+)
+def test_weak_label_tile_state(tile_state, held_by, has_proposal, expected):
+    got = weak_label_tile_state(
+        tile_state, held_by=held_by, annotator="ines", has_proposal=has_proposal
+    )
+    assert got == expected
+
+
+def test_weak_label_save_on_a_held_tile_gives_the_tile_back(project):
+    # the editor holds a tile, the annotator saves a weak label alone and the window
+    # closes: the tile must not stay held with no holder (nobody could release it)
+    fake_proposals(project)
+    store = project.store
+    t = store.tiles()[0]
+    store.hold(t.id, "ines")
+    assert (store.tile(t.id).state, store.tile(t.id).held_by) == ("held", "ines")
+    weak = np.full(t.shape, 255, np.uint8)
+    weak[5, 5:9] = 2
+    rec = save_tile_mask(project, t.id, "ines", weak, parent_version=None, kind="scribble")
+    assert rec.state == "weak"
+    after = store.tile(t.id)
+    assert (after.state, after.held_by) == ("proposed", None)
+    assert t.id in store.available_for("tomas")  # handed out again
+    assert [e.detail["to"] for e in store.events(kind="save")] == ["proposed"]
+
+
+def test_weak_label_save_on_a_held_tile_without_proposal_leaves_it_unseen(project):
+    store = project.store
+    t = store.tiles()[0]
+    store.hold(t.id, "ines")
+    weak = np.full(t.shape, 255, np.uint8)
+    weak[0, 0] = 1
+    save_tile_mask(project, t.id, "ines", weak, parent_version=None, kind="scribble")
+    assert (store.tile(t.id).state, store.tile(t.id).held_by) == ("unseen", None)
+
+
+def test_weak_label_save_keeps_another_annotators_hold(project):
+    fake_proposals(project)
+    store = project.store
+    t = store.tiles()[0]
+    store.hold(t.id, "tomas")
+    weak = np.full(t.shape, 255, np.uint8)
+    weak[0, 0] = 1
+    save_tile_mask(project, t.id, "ines", weak, parent_version=None, kind="scribble")
+    assert (store.tile(t.id).state, store.tile(t.id).held_by) == ("held", "tomas")
 
 
 def test_park(project):
@@ -123,9 +187,9 @@ def test_agreeing_overlap_tile_stays(overlap_project):
 
 def test_queue_order_and_next(project):
     fake_proposals(project)
-    from labeler.workflow import rank_tiles
+    from labeler.workflow import pick_tiles
 
-    result = rank_tiles(project, strategy="entropy", k=2)
+    result = pick_tiles(project, strategy="entropy", k=2)
     rows = queue_rows(project)
     assert [r.tile_id for r in rows] == [i.tile_id for i in result.items]
     ent = {t: project.store.latest_proposal(t).mean_entropy for t in [r.tile_id for r in rows]}

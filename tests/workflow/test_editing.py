@@ -36,28 +36,28 @@ def test_backend_save_returns_the_state_the_workflow_decided(project):
     tile = project.store.tiles()[0]
     start = begin_edit(project, tile.id, "ines")
     proposal = start.proposal
-    # unchanged: accepted; then changed: amended; then scribbles: weak
+    # unchanged: accepted; then changed: amended; then a weak label: weak
     assert start.backend.save(proposal, kind="full", actions=0, seconds=1.0) == "accepted"
     changed = proposal.copy()
     changed[:4] = (changed[:4] + 1) % 4
     assert start.backend.save(changed, kind="full", actions=2, seconds=3.0) == "amended"
-    scrib = np.full(tile.shape, 255, np.uint8)
-    scrib[10, 10:20] = 1
-    assert start.backend.save(scrib, kind="scribble", actions=1, seconds=1.0) == "weak"
+    weak = np.full(tile.shape, 255, np.uint8)
+    weak[10, 10:20] = 1
+    assert start.backend.save(weak, kind="scribble", actions=1, seconds=1.0) == "weak"
     history = project.store.annotation_history(tile.id)
     assert [(a.kind, a.state) for a in history] == [
         ("full", "accepted"), ("full", "amended"), ("scribble", "weak")]
     assert start.backend.saved == [a.version for a in history]
 
 
-def test_draft_without_scribbles_comes_back_with_none_scribbled(project):
+def test_draft_without_weak_label_comes_back_with_nothing_marked(project):
     fake_proposals(project)
     tile = project.store.tiles()[0]
     start = begin_edit(project, tile.id, "ines")
     assert start.backend.load_draft() is None
     project.store.save_draft(tile.id, "ines", np.ones(tile.shape, np.uint8), actions=1)
     draft = start.backend.load_draft()
-    assert draft.scribbles.shape == tile.shape and (draft.scribbles == 255).all()
+    assert draft.weak_label.shape == tile.shape and (draft.weak_label == 255).all()
     start.backend.discard_draft()
     assert start.backend.load_draft() is None
 

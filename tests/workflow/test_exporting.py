@@ -121,12 +121,12 @@ def test_bad_imports_import_nothing(demo2, tmp_path):
     assert project.store.annotations(kind=None) == []
 
 
-def test_partial_png_becomes_weak_labels(demo2, tmp_path):
+def test_png_with_unlabelled_pixels_becomes_a_weak_label(demo2, tmp_path):
     project, plots = demo2
-    partial = np.full((768, 1024), 255, np.uint8)
-    partial[:100, :100] = 2
+    weak = np.full((768, 1024), 255, np.uint8)
+    weak[:100, :100] = 2
     path = tmp_path / f"{plots[0].stem}_annotation.png"
-    write_png(path, partial)
+    write_png(path, weak)
     res = import_masks(project, [path], annotator="ines")
     assert (res.full_tiles, res.weak_tiles) == (0, 1)
     ann = project.store.annotations(kind="scribble")

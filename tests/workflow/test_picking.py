@@ -1,23 +1,23 @@
-"""labeler pick through the workflow: ranking written to the store, fallbacks."""
+"""labeler pick through the workflow: the queue order written to the store, fallbacks."""
 
 import pytest
 
 from labeler.errors import LabelerError
 from labeler.picker import REASONS
-from labeler.workflow import accept_tile, rank_tiles
+from labeler.workflow import accept_tile, pick_tiles
 from tests.workflow.conftest import fake_proposals
 
 
 def test_needs_proposals(project):
     with pytest.raises(LabelerError, match="run 'labeler propose' first"):
-        rank_tiles(project)
+        pick_tiles(project)
 
 
-def test_mixed_ranking_written_with_reasons(project):
+def test_mixed_pick_written_with_reasons(project):
     fake_proposals(project)
-    result = rank_tiles(project, k=3)
+    result = pick_tiles(project, k=3)
     assert result.strategy == "mixed" and len(result.items) == 6
-    stored = project.store.latest_ranking()
+    stored = project.store.latest_pick()
     assert [i.tile_id for i in stored] == [i.tile_id for i in result.items]
     assert sum(i.in_batch for i in stored) == 3
     assert all(i.reason in REASONS for i in stored)
@@ -27,13 +27,13 @@ def test_labelled_tiles_leave_the_pool(project):
     fake_proposals(project)
     tid = project.store.tiles()[0].id
     accept_tile(project, tid, "ines")
-    result = rank_tiles(project, strategy="margin", k=2)
+    result = pick_tiles(project, strategy="margin", k=2)
     assert tid not in [i.tile_id for i in result.items]
 
 
 def test_cold_start_falls_back_to_diversity(project):
     fake_proposals(project, with_uncertainty=False)
-    result = rank_tiles(project, strategy="entropy", k=2)
+    result = pick_tiles(project, strategy="entropy", k=2)
     assert (result.requested, result.strategy) == ("entropy", "coreset")
     assert "cold start" in result.note
 
@@ -44,8 +44,8 @@ def test_cli_pick_prints_the_batch_with_reasons(project, capsys):
     fake_proposals(project)
     assert main(["pick", str(project.root), "--strategy", "margin", "--k", "2"]) == 0
     out = capsys.readouterr().out
-    assert "ranked 6 tiles with strategy margin; the next batch of 2:" in out
-    assert out.count("uncertain") == 2  # margin ranks by uncertainty: each batch tile says so
+    assert "picked from 6 tiles with strategy margin; the next batch of 2:" in out
+    assert out.count("uncertain") == 2  # margin orders by uncertainty: each batch tile says so
 
 
 def test_cli_pick_rejects_bad_k(project):

@@ -48,7 +48,7 @@ def test_cold_start_then_head(one_plot, capsys):
     assert [it.kind for it in labelled_tiles(project)] == ["full", "full", "full", "scribble"]
     assert main(["retrain", str(project.root)]) == 0
     out = capsys.readouterr().out
-    assert "trained head-1 on 3 full masks and 1 scribbled tiles" in out and "validation IoU" in out
+    assert "trained head-1 on 3 full masks and 1 weak labels" in out and "validation IoU" in out
     mv = store.latest_model_version(kind="head")
     # model.augment "auto" with 3 training tiles: the tiles go through the encoder
     assert mv.details["mode"] == "images"

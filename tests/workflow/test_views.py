@@ -8,8 +8,8 @@ from labeler.workflow import (
     annotators,
     model_versions,
     park_tile,
+    pick_tiles,
     project_status,
-    rank_tiles,
     save_basis,
     save_tile_mask,
     tile_places,
@@ -75,7 +75,7 @@ def test_save_basis_names_what_a_save_replaces(project):
         save_basis(project, 999, "ines")
 
 
-def test_places_lists_and_ranked_batch_agree_with_the_store(project):
+def test_places_lists_and_picked_batch_agree_with_the_store(project):
     assert annotators(project) == [] and model_versions(project) == []
     mv = fake_proposals(project)
     places = tile_places(project)
@@ -83,7 +83,7 @@ def test_places_lists_and_ranked_batch_agree_with_the_store(project):
     assert list(places) == [t.id for t in tiles]
     assert [p.window for p in places.values()] == [t.window for t in tiles]
     assert [m.name for m in model_versions(project)] == [mv.name]
-    result = rank_tiles(project, k=3)
+    result = pick_tiles(project, k=3)
     assert [b.tile_id for b in result.batch] == [i.tile_id for i in result.items[:3]]
     for b in result.batch:
         assert (b.image, b.row, b.col) == (

@@ -1,8 +1,8 @@
-"""Batch selection: which tiles the annotators see next, in order, and why.
+"""Picking the next batch: which tiles the annotators see next, in order, and why.
 
-:func:`select_batch` ranks the candidates of a :class:`~labeler.picker.pool.CandidatePool`
-with one of :data:`STRATEGIES` and gives each ranked tile a score and one of
-:data:`REASONS`. Masks picked here only decide which tiles people look at first; they
+:func:`pick_batch` puts the candidates of a :class:`~labeler.picker.pool.CandidatePool` in
+order with one of :data:`STRATEGIES` and gives each of them a score and one of
+:data:`REASONS`; the first ``k`` are the batch. Masks picked here only decide which tiles people look at first; they
 are not field advice (see the README for the cautions on spraying and fungicide
 decisions).
 """
@@ -21,34 +21,34 @@ from labeler.picker.pool import CandidatePool
 from labeler.picker.tile_scores import disagreement_scores, rarity_weights
 from labeler.settings import STRATEGIES, UNCERTAINTY_MEASURES
 
-__all__ = ["STRATEGIES", "REASONS", "Selection", "select_batch"]
+__all__ = ["STRATEGIES", "REASONS", "Pick", "pick_batch"]
 
-#: The reason strings of a :class:`Selection`, one per ranked tile.
+#: The reason strings of a :class:`Pick`, one per candidate.
 REASONS = ("uncertain", "rare class", "unlike labelled tiles", "annotators disagree")
 _UNCERTAIN, _RARE_CLASS, _UNLIKE_LABELLED, _DISAGREE = REASONS
 
-#: Strategies that rank by one tile uncertainty measure of the same name.
+#: Strategies that order by one tile uncertainty measure of the same name.
 _BY_MEASURE = ("entropy", "margin", "bald")
 
 
 @dataclass(frozen=True, eq=False)
-class Selection:
-    """The picker's answer: a ranking of every candidate, the batch first.
+class Pick:
+    """The picker's answer: every candidate in pick order, the batch first.
 
     Attributes
     ----------
     strategy : str
-        The strategy that ranked the unlabelled candidates.
+        The strategy that ordered the unlabelled candidates.
     k : int
         The batch size asked for.
     ids : ndarray, shape (n,)
-        Candidate tile ids in rank order; the first ``n_chosen`` are the batch.
+        Candidate tile ids in pick order; the first ``n_chosen`` are the batch.
     positions : ndarray, shape (n,), int64
-        Pool row of each ranked tile.
+        Pool row of each candidate.
     scores : ndarray, shape (n,)
-        The strategy's score of each ranked tile (see :func:`select_batch`).
+        The strategy's score of each candidate (see :func:`pick_batch`).
     reasons : tuple of str, length n
-        One of :data:`REASONS` per ranked tile.
+        One of :data:`REASONS` per candidate.
     n_chosen : int
         ``min(k, n)``.
     """
@@ -67,17 +67,17 @@ class Selection:
         return self.ids[: self.n_chosen]
 
     def __len__(self) -> int:
-        """Number of ranked tiles n."""
+        """Number of candidates n."""
         return int(self.ids.shape[0])
 
     def rows(self) -> list[tuple[object, float, str]]:
-        """``(id, score, reason)`` per ranked tile."""
+        """``(id, score, reason)`` per candidate, in pick order."""
         return [
             (i, float(s), r) for i, s, r in zip(self.ids.tolist(), self.scores, self.reasons, strict=True)
         ]
 
 
-def _rank_desc(score: np.ndarray) -> np.ndarray:
+def _order_desc(score: np.ndarray) -> np.ndarray:
     """Positions sorted by score descending, ties by position ascending."""
     return np.lexsort((np.arange(score.size), -score))
 
@@ -109,7 +109,7 @@ def _check_names(pool: object, *, strategy: str, uncertainty: str) -> None:
         raise TypeError(f"pool: expected a CandidatePool, got {type(pool).__name__}")
 
 
-def select_batch(
+def pick_batch(
     pool: CandidatePool,
     *,
     strategy: str = "mixed",
@@ -121,8 +121,8 @@ def select_batch(
     rarity_smoothing: float = 0.01,
     agreement_threshold: float = 0.6,
     include_contested: bool = True,
-) -> Selection:
-    """Rank the candidate tiles of ``pool`` and choose the next batch of ``k``.
+) -> Pick:
+    """Put the candidate tiles of ``pool`` in order and pick the next batch of ``k``.
 
     Candidates are the unlabelled tiles (``annotators == 0``) and, when
     ``include_contested``, the *contested* tiles: two or more annotators whose agreement is
@@ -187,12 +187,12 @@ def select_batch(
         Overlapped tiles agreeing less than this are contested (settings
         ``agreement.threshold``).
     include_contested : bool
-        False leaves contested tiles out of the ranking.
+        False leaves contested tiles out of the pick.
 
     Returns
     -------
-    Selection
-        n ranked tiles (contested, then unlabelled candidates), the first ``min(k, n)``
+    Pick
+        n candidates in order (contested, then unlabelled ones), the first ``min(k, n)``
         the batch.
 
     Raises
@@ -221,17 +221,17 @@ def select_batch(
     contested &= np.nan_to_num(pool.agreement, nan=np.inf) < agreement_threshold
     con = np.flatnonzero(contested) if include_contested else np.zeros(0, np.int64)
     dis = disagreement_scores(pool.agreement)[con]
-    con_rank = _rank_desc(dis)
-    con_order, con_scores = con[con_rank], dis[con_rank]
+    con_perm = _order_desc(dis)
+    con_order, con_scores = con[con_perm], dis[con_perm]
     k_rest = max(k - con.size, 0)
 
     # the strategy over the unlabelled candidates
     if unl.size == 0:
         order, scores, reasons = np.zeros(0, np.int64), np.zeros(0), []
     elif strategy in _BY_MEASURE:
-        order, scores, reasons = _rank_by_measure(pool, unl, strategy)
+        order, scores, reasons = _order_by_measure(pool, unl, strategy)
     elif strategy == "coreset":
-        order, scores, reasons = _rank_coreset(pool, unl, lab_rows, k=k_rest)
+        order, scores, reasons = _order_coreset(pool, unl, lab_rows, k=k_rest)
     else:
         u = _measure(pool, uncertainty, unl)
         labelled_fractions = pool.class_fractions[lab_rows] if lab_rows.size else None
@@ -242,15 +242,15 @@ def select_batch(
             power=rarity_power,
         )
         if strategy == "random":
-            order, scores, reasons = _rank_random(unl, u, rho, seed=seed)
+            order, scores, reasons = _order_random(unl, u, rho, seed=seed)
         else:
-            order, scores, reasons = _rank_mixed(
+            order, scores, reasons = _order_mixed(
                 pool, unl, lab_rows, u, rho, k=k_rest, top_m=top_m
             )
     positions = np.concatenate([con_order, order]).astype(np.int64)
     all_scores = np.concatenate([con_scores, scores])
     all_reasons = (_DISAGREE,) * con.size + tuple(reasons)
-    return Selection(
+    return Pick(
         strategy=strategy,
         k=k,
         ids=pool.ids[positions],
@@ -261,7 +261,8 @@ def select_batch(
     )
 
 
-Ranking = tuple[np.ndarray, np.ndarray, list[str]]
+#: Pool rows in order, their scores and their reasons.
+_Order = tuple[np.ndarray, np.ndarray, list[str]]
 
 
 def _measure(pool: CandidatePool, name: str, rows: np.ndarray) -> np.ndarray:
@@ -279,38 +280,38 @@ def _measure(pool: CandidatePool, name: str, rows: np.ndarray) -> np.ndarray:
     return values
 
 
-def _rank_by_measure(pool: CandidatePool, unl: np.ndarray, name: str) -> Ranking:
+def _order_by_measure(pool: CandidatePool, unl: np.ndarray, name: str) -> _Order:
     """entropy, margin, bald: the measure, largest first."""
     score = _measure(pool, name, unl)
-    rank = _rank_desc(score)
-    return unl[rank], score[rank], [_UNCERTAIN] * unl.size
+    perm = _order_desc(score)
+    return unl[perm], score[perm], [_UNCERTAIN] * unl.size
 
 
-def _rank_coreset(
+def _order_coreset(
     pool: CandidatePool, unl: np.ndarray, lab_rows: np.ndarray, *, k: int
-) -> Ranking:
+) -> _Order:
     """coreset: greedy k-center batch, then the rest by distance to the nearest center."""
     x = pool.embeddings
     n_u = unl.size
     xc = x if n_u == len(pool) else x[unl]
     run = _k_center(xc, x[lab_rows], k, None)
     rest = np.setdiff1d(np.arange(n_u), run.order, assume_unique=True)
-    rest = rest[_rank_desc(run.final_dist[rest])]
-    rank = np.concatenate([run.order, rest])
+    rest = rest[_order_desc(run.final_dist[rest])]
+    perm = np.concatenate([run.order, rest])
     score = np.concatenate([run.pick_dist, run.final_dist[rest]])
-    return unl[rank], score, [_UNLIKE_LABELLED] * n_u
+    return unl[perm], score, [_UNLIKE_LABELLED] * n_u
 
 
-def _rank_random(unl: np.ndarray, u: np.ndarray, rho: np.ndarray, *, seed: int) -> Ranking:
+def _order_random(unl: np.ndarray, u: np.ndarray, rho: np.ndarray, *, seed: int) -> _Order:
     """random: a seeded permutation; the reasons only describe the tiles."""
     n_u = unl.size
-    rank = np.random.default_rng(seed).permutation(n_u)
+    perm = np.random.default_rng(seed).permutation(n_u)
     score = 1.0 - np.arange(n_u) / n_u
-    reasons = _dominant([_ratio(u, u)[rank], _ratio(rho, rho)[rank]], [_UNCERTAIN, _RARE_CLASS])
-    return unl[rank], score, reasons
+    reasons = _dominant([_ratio(u, u)[perm], _ratio(rho, rho)[perm]], [_UNCERTAIN, _RARE_CLASS])
+    return unl[perm], score, reasons
 
 
-def _rank_mixed(
+def _order_mixed(
     pool: CandidatePool,
     unl: np.ndarray,
     lab_rows: np.ndarray,
@@ -319,12 +320,12 @@ def _rank_mixed(
     *,
     k: int,
     top_m: int | None,
-) -> Ranking:
+) -> _Order:
     """mixed: weighted k-center over the top-M by weight ``u * rho``, then by weight."""
     n_u = unl.size
     u_ratio, r_ratio = _ratio(u, u), _ratio(rho, rho)
     weight = u * rho
-    by_weight = _rank_desc(weight)
+    by_weight = _order_desc(weight)
     if k == 0:
         reasons = _dominant([u_ratio[by_weight], r_ratio[by_weight]], [_UNCERTAIN, _RARE_CLASS])
         return unl[by_weight], weight[by_weight], reasons
@@ -344,5 +345,5 @@ def _rank_mixed(
     is_chosen[chosen] = True
     rest = by_weight[~is_chosen[by_weight]]
     rest_reasons = _dominant([u_ratio[rest], r_ratio[rest]], [_UNCERTAIN, _RARE_CLASS])
-    rank = np.concatenate([chosen, rest])
-    return unl[rank], weight[rank], chosen_reasons + rest_reasons
+    perm = np.concatenate([chosen, rest])
+    return unl[perm], weight[perm], chosen_reasons + rest_reasons

@@ -1,7 +1,7 @@
-"""Batch selection of labeler/picker/select.py: strategies, reasons, contested tiles.
+"""Picking a batch with labeler/picker/pick.py: strategies, reasons, contested tiles.
 
 Each strategy is written out as a slow loop (sort, greedy k-center of Sener & Savarese
-2018, the mixed weighting) and compared with select_batch; hand-made pools check the
+2018, the mixed weighting) and compared with pick_batch; hand-made pools check the
 reasons; hypothesis checks the invariants of every strategy.
 """
 
@@ -18,8 +18,8 @@ from labeler.picker import (
     REASONS,
     STRATEGIES,
     CandidatePool,
-    Selection,
-    select_batch,
+    Pick,
+    pick_batch,
 )
 from labeler.settings import STRATEGIES as SETTINGS_STRATEGIES
 from tests.picker.references import dist, k_center_loop, make_pool, rarity_loop
@@ -32,30 +32,30 @@ def test_strategy_names():
     assert REASONS == ("uncertain", "rare class", "unlike labelled tiles", "annotators disagree")
 
 
-def test_select_batch_errors():
+def test_pick_batch_errors():
     rng = np.random.default_rng(21)
     pool = make_pool(rng, 6)
     with pytest.raises(ValueError, match="strategy: expected one of random, entropy"):
-        select_batch(pool, strategy="greedy", k=2)
+        pick_batch(pool, strategy="greedy", k=2)
     with pytest.raises(ValueError, match="k: expected an integer >= 1, got 0"):
-        select_batch(pool, k=0)
+        pick_batch(pool, k=0)
     with pytest.raises(ValueError, match="uncertainty: expected one of entropy"):
-        select_batch(pool, k=2, uncertainty="variance")
+        pick_batch(pool, k=2, uncertainty="variance")
     with pytest.raises(ValueError, match="top_m: expected an integer >= 1"):
-        select_batch(pool, k=2, top_m=0)
+        pick_batch(pool, k=2, top_m=0)
     with pytest.raises(ValueError, match="agreement_threshold: expected a finite number"):
-        select_batch(pool, k=2, agreement_threshold=math.nan)
+        pick_batch(pool, k=2, agreement_threshold=math.nan)
     with pytest.raises(TypeError, match="pool: expected a CandidatePool"):
-        select_batch({"ids": []}, k=2)
+        pick_batch({"ids": []}, k=2)
     no_bald = make_pool(rng, 6, bald=None)
     with pytest.raises(ValueError, match="pool.bald: NaN for 6 candidate tile"):
-        select_batch(no_bald, strategy="bald", k=2)
+        pick_batch(no_bald, strategy="bald", k=2)
     with pytest.raises(ValueError, match="BALD needs MC-dropout samples"):
-        select_batch(no_bald, strategy="mixed", k=2, uncertainty="bald")
+        pick_batch(no_bald, strategy="mixed", k=2, uncertainty="bald")
 
 
 @pytest.mark.parametrize("strategy", ["entropy", "margin", "bald"])
-def test_uncertainty_strategies_rank_like_a_sort(strategy):
+def test_uncertainty_strategies_order_like_a_sort(strategy):
     rng = np.random.default_rng(22)
     scores = {
         "entropy": rng.uniform(0.0, 1.3, 20),
@@ -67,23 +67,23 @@ def test_uncertainty_strategies_rank_like_a_sort(strategy):
     pool = make_pool(rng, 20, annotators=np.r_[np.ones(4, int), np.zeros(16, int)], **scores)
     with pytest.raises(ValueError, match="read-only"):
         pool.entropy[0] = 0.0
-    sel = select_batch(pool, strategy=strategy, k=5)
+    pick = pick_batch(pool, strategy=strategy, k=5)
     value = {"entropy": pool.entropy, "margin": 1.0 - pool.margin, "bald": pool.bald}[strategy]
     expected = sorted(range(4, 20), key=lambda i: (-value[i], i))
-    assert sel.positions.tolist() == expected
-    assert sel.n_chosen == 5 and sel.chosen.tolist() == [pool.ids[i] for i in expected[:5]]
-    np.testing.assert_allclose(sel.scores, value[expected])
-    assert set(sel.reasons) == {"uncertain"}
+    assert pick.positions.tolist() == expected
+    assert pick.n_chosen == 5 and pick.chosen.tolist() == [pool.ids[i] for i in expected[:5]]
+    np.testing.assert_allclose(pick.scores, value[expected])
+    assert set(pick.reasons) == {"uncertain"}
     if strategy == "margin":  # smallest margin first
-        assert pool.margin[sel.positions[0]] == pool.margin[4:].min()
+        assert pool.margin[pick.positions[0]] == pool.margin[4:].min()
 
 
 def test_random_strategy_is_a_seeded_permutation():
     rng = np.random.default_rng(23)
     pool = make_pool(rng, 15, annotators=np.r_[np.zeros(10, int), np.ones(5, int)])
-    a = select_batch(pool, strategy="random", k=4, seed=7)
-    b = select_batch(pool, strategy="random", k=4, seed=7)
-    c = select_batch(pool, strategy="random", k=4, seed=8)
+    a = pick_batch(pool, strategy="random", k=4, seed=7)
+    b = pick_batch(pool, strategy="random", k=4, seed=7)
+    c = pick_batch(pool, strategy="random", k=4, seed=8)
     np.testing.assert_array_equal(a.positions, np.random.default_rng(7).permutation(10))
     np.testing.assert_array_equal(a.positions, b.positions)
     assert a.positions.tolist() != c.positions.tolist()
@@ -96,16 +96,16 @@ def test_coreset_strategy_against_loop():
     ann = np.zeros(n, int)
     ann[[2, 11, 17]] = 1
     pool = make_pool(rng, n, annotators=ann)
-    sel = select_batch(pool, strategy="coreset", k=5)
+    pick = pick_batch(pool, strategy="coreset", k=5)
     x = pool.embeddings.astype(np.float64).tolist()
     chosen = k_center_loop(x, 5, labelled=[2, 11, 17])
-    assert sel.positions[:5].tolist() == chosen
+    assert pick.positions[:5].tolist() == chosen
     centers = [2, 11, 17, *chosen]
     rest = [i for i in range(n) if i not in centers]
     near = {i: min(dist(x[i], x[c]) for c in centers) for i in rest}
-    assert sel.positions[5:].tolist() == sorted(rest, key=lambda i: (-near[i], i))
-    np.testing.assert_allclose(sel.scores[5:], [near[i] for i in sel.positions[5:]], atol=1e-5)
-    assert set(sel.reasons) == {"unlike labelled tiles"}
+    assert pick.positions[5:].tolist() == sorted(rest, key=lambda i: (-near[i], i))
+    np.testing.assert_allclose(pick.scores[5:], [near[i] for i in pick.positions[5:]], atol=1e-5)
+    assert set(pick.reasons) == {"unlike labelled tiles"}
 
 
 def mixed_loop(pool, k, top_m):
@@ -131,13 +131,13 @@ def test_mixed_strategy_against_loop(n_labelled):
     ann = np.zeros(n, int)
     ann[rng.choice(n, n_labelled, replace=False)] = 1
     pool = make_pool(rng, n, annotators=ann)
-    sel = select_batch(pool, strategy="mixed", k=4, top_m=12)
+    pick = pick_batch(pool, strategy="mixed", k=4, top_m=12)
     order, weight = mixed_loop(pool, 4, 12)
-    assert sel.positions.tolist() == order
-    np.testing.assert_allclose(sel.scores, [weight[i] for i in order], atol=1e-12)
-    assert set(sel.reasons) <= set(REASONS[:3])
+    assert pick.positions.tolist() == order
+    np.testing.assert_allclose(pick.scores, [weight[i] for i in order], atol=1e-12)
+    assert set(pick.reasons) <= set(REASONS[:3])
     # default top-M is max(3k, ceil(n/10)) = 12 here
-    assert select_batch(pool, k=4).positions.tolist() == order
+    assert pick_batch(pool, k=4).positions.tolist() == order
 
 
 def test_mixed_with_equal_weights_is_coreset():
@@ -149,8 +149,8 @@ def test_mixed_with_equal_weights_is_coreset():
         rng, n, entropy=np.full(n, 0.4), class_fractions=np.tile([0.7, 0.2, 0.1, 0.0], (n, 1)),
         annotators=np.r_[np.ones(3, int), np.zeros(n - 3, int)],
     )
-    mixed = select_batch(pool, strategy="mixed", k=6, top_m=n)
-    core = select_batch(pool, strategy="coreset", k=6)
+    mixed = pick_batch(pool, strategy="mixed", k=6, top_m=n)
+    core = pick_batch(pool, strategy="coreset", k=6)
     np.testing.assert_array_equal(mixed.chosen, core.chosen)
 
 
@@ -174,10 +174,10 @@ def test_mixed_reasons_hand_made():
         class_fractions=np.array([soil, soil, symptom, soil] + [soil] * 5),
         annotators=np.r_[1, np.zeros(n - 1, int)],
     )
-    sel = select_batch(pool, strategy="mixed", k=3, top_m=8)
-    assert sel.chosen.tolist() == ["C", "A", "B"]
-    assert sel.reasons[:3] == ("unlike labelled tiles", "uncertain", "rare class")
-    assert "lab" not in sel.ids.tolist() and len(sel) == 8
+    pick = pick_batch(pool, strategy="mixed", k=3, top_m=8)
+    assert pick.chosen.tolist() == ["C", "A", "B"]
+    assert pick.reasons[:3] == ("unlike labelled tiles", "uncertain", "rare class")
+    assert "lab" not in pick.ids.tolist() and len(pick) == 8
 
 
 def test_contested_tiles_come_first_and_single_annotator_tiles_are_out():
@@ -187,35 +187,35 @@ def test_contested_tiles_come_first_and_single_annotator_tiles_are_out():
     agr = np.array([np.nan, 0.9, 0.2, -0.1, np.nan, *[np.nan] * 7])
     pool = make_pool(rng, n, annotators=ann, agreement=agr)
     for strategy in STRATEGIES:
-        sel = select_batch(pool, strategy=strategy, k=3, agreement_threshold=0.6)
+        pick = pick_batch(pool, strategy=strategy, k=3, agreement_threshold=0.6)
         # row 3 (kappa -0.1) disagrees most, then row 2; row 1 agrees, row 4 unknown,
         # row 0 has a single annotator: none of those three is a candidate
-        assert sel.positions[:2].tolist() == [3, 2]
-        np.testing.assert_allclose(sel.scores[:2], [1.1, 0.8], atol=1e-12)
-        assert sel.reasons[:2] == ("annotators disagree", "annotators disagree")
-        assert sorted(sel.positions[2:].tolist()) == list(range(5, 12))
-        assert sel.n_chosen == 3
-        assert all(r in REASONS for r in sel.reasons)
-    # contested tiles beyond k still rank ahead; the batch is all review
-    sel = select_batch(pool, strategy="entropy", k=1)
-    assert sel.chosen.tolist() == [pool.ids[3]] and sel.positions[1] == 2
+        assert pick.positions[:2].tolist() == [3, 2]
+        np.testing.assert_allclose(pick.scores[:2], [1.1, 0.8], atol=1e-12)
+        assert pick.reasons[:2] == ("annotators disagree", "annotators disagree")
+        assert sorted(pick.positions[2:].tolist()) == list(range(5, 12))
+        assert pick.n_chosen == 3
+        assert all(r in REASONS for r in pick.reasons)
+    # contested tiles beyond k still come first; the batch is all review
+    pick = pick_batch(pool, strategy="entropy", k=1)
+    assert pick.chosen.tolist() == [pool.ids[3]] and pick.positions[1] == 2
     # left out on request
-    sel = select_batch(pool, strategy="entropy", k=3, include_contested=False)
-    assert sorted(sel.positions.tolist()) == list(range(5, 12))
+    pick = pick_batch(pool, strategy="entropy", k=3, include_contested=False)
+    assert sorted(pick.positions.tolist()) == list(range(5, 12))
 
 
-def test_select_batch_small_and_empty_pools():
+def test_pick_batch_small_and_empty_pools():
     rng = np.random.default_rng(29)
     done = make_pool(rng, 4, annotators=np.ones(4, int))
     for strategy in STRATEGIES:
-        sel = select_batch(done, strategy=strategy, k=3)
-        assert isinstance(sel, Selection) and len(sel) == 0 and sel.n_chosen == 0
-        assert sel.chosen.shape == (0,)
+        pick = pick_batch(done, strategy=strategy, k=3)
+        assert isinstance(pick, Pick) and len(pick) == 0 and pick.n_chosen == 0
+        assert pick.chosen.shape == (0,)
     few = make_pool(rng, 3)
     for strategy in STRATEGIES:
-        sel = select_batch(few, strategy=strategy, k=10)
-        assert sel.n_chosen == 3 and sorted(sel.positions.tolist()) == [0, 1, 2]
-    rows = select_batch(few, strategy="entropy", k=1).rows()
+        pick = pick_batch(few, strategy=strategy, k=10)
+        assert pick.n_chosen == 3 and sorted(pick.positions.tolist()) == [0, 1, 2]
+    rows = pick_batch(few, strategy="entropy", k=1).rows()
     assert rows[0][0] == few.ids[int(np.argmax(few.entropy))] and rows[0][2] == "uncertain"
 
 
@@ -226,20 +226,20 @@ def test_select_batch_small_and_empty_pools():
     strategy=st.sampled_from(STRATEGIES),
     seed=st.integers(0, 2**16),
 )
-def test_select_batch_properties(n, k, strategy, seed):
+def test_pick_batch_properties(n, k, strategy, seed):
     rng = np.random.default_rng(seed)
     ann = rng.choice([0, 0, 0, 1, 2], size=n)
     agr = np.where(ann >= 2, rng.uniform(-0.2, 1.0, n), np.nan)
     pool = make_pool(rng, n, annotators=ann, agreement=agr)
-    sel = select_batch(pool, strategy=strategy, k=k, seed=seed)
+    pick = pick_batch(pool, strategy=strategy, k=k, seed=seed)
     contested = [i for i in range(n) if ann[i] >= 2 and agr[i] < 0.6]
     unl = [i for i in range(n) if ann[i] == 0]
     # a permutation of the candidates, contested first, batch = min(k, n)
-    assert sorted(sel.positions.tolist()) == sorted(contested + unl)
-    assert sorted(sel.positions[: len(contested)].tolist()) == contested
-    assert sel.n_chosen == min(k, len(contested) + len(unl))
-    assert len(sel.reasons) == len(sel) == sel.scores.shape[0]
-    assert all(r in REASONS for r in sel.reasons)
-    assert np.isfinite(sel.scores).all()
-    again = select_batch(pool, strategy=strategy, k=k, seed=seed)
-    np.testing.assert_array_equal(sel.positions, again.positions)
+    assert sorted(pick.positions.tolist()) == sorted(contested + unl)
+    assert sorted(pick.positions[: len(contested)].tolist()) == contested
+    assert pick.n_chosen == min(k, len(contested) + len(unl))
+    assert len(pick.reasons) == len(pick) == pick.scores.shape[0]
+    assert all(r in REASONS for r in pick.reasons)
+    assert np.isfinite(pick.scores).all()
+    again = pick_batch(pool, strategy=strategy, k=k, seed=seed)
+    np.testing.assert_array_equal(pick.positions, again.positions)
