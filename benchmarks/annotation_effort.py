@@ -117,12 +117,13 @@ def picked_counts(n_pool: int, shares: Sequence[float], *, least: int) -> list[i
     return out
 
 
-def _heads_in_picker_order(pool: TileSet, counts, *, class_indices, encoder, mc_samples, log):
+def _heads_in_picker_order(pool: TileSet, counts, *, class_indices, encoder, mc_samples, log,
+                           settings=None):
     """Train a head at each count of labelled pool tiles, picked as the product picks."""
     from labeler.model.train import train_head
     from labeler.settings import ModelSettings
 
-    settings = ModelSettings()
+    settings = settings or ModelSettings()
     labelled = np.zeros(len(pool), bool)
     embeddings = np.stack([np.asarray(f[3], np.float32).mean(axis=(1, 2)) for f in pool.features])
     from labeler.metrics import class_fractions
@@ -152,8 +153,9 @@ def _heads_in_picker_order(pool: TileSet, counts, *, class_indices, encoder, mc_
 
 def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encoder,
             n_tiles: int, shares=SHARES, guided_mode: str = "key", mc_samples: int = 8,
-            seed: int = 0, log: Callable[[str], None] = print) -> dict:
-    """The JSON line of one dataset (see the module notes)."""
+            seed: int = 0, log: Callable[[str], None] = print, settings=None) -> dict:
+    """The JSON line of one dataset (see the module notes); ``settings`` are the
+    :class:`labeler.settings.ModelSettings` of training (the project's defaults if None)."""
     from labeler.demo.protocol import ProtocolOptions, run_protocol
     from labeler.masks.coldstart import cold_start_proposal
     from labeler.model.ontile import TileLearner
@@ -163,7 +165,8 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
         len(heldout), size=min(n_tiles, len(heldout)), replace=False)).tolist()
     counts = picked_counts(len(pool), shares, least=3)
     heads = _heads_in_picker_order(pool, counts, class_indices=class_indices,
-                                   encoder=encoder, mc_samples=mc_samples, log=log)
+                                   encoder=encoder, mc_samples=mc_samples, log=log,
+                                   settings=settings)
 
     def runs(starts, relearn="off", learners=None):
         out = []
@@ -268,7 +271,22 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--cache", type=Path, help="keep encoder features here")
     ap.add_argument("--out", type=Path, help="write annotation_effort.json and .png here")
     ap.add_argument("--quick", action="store_true", help="smoke run: demo, 3 tiles")
+    ap.add_argument("--epochs", type=int, default=None,
+                    help="training epochs (a reduced run; default: the project's 40)")
+    ap.add_argument("--augment", choices=("auto", "images", "features"), default=None,
+                    help="model.augment of training (a reduced run: features; default auto)")
     args = ap.parse_args(argv)
+    import dataclasses
+
+    from labeler.settings import ModelSettings
+
+    settings = ModelSettings()
+    reduced = {}
+    if args.epochs is not None:
+        reduced["epochs"] = args.epochs
+    if args.augment is not None:
+        reduced["augment"] = args.augment
+    settings = dataclasses.replace(settings, **reduced)
     from labeler.model.cache import FeatureCache
     from labeler.model.encoder import load_encoder
     from labeler.model.runtime import configure_threads
@@ -293,7 +311,10 @@ def main(argv: list[str] | None = None) -> int:
                 continue
             started = time.monotonic()
             line = measure(name, pool, heldout, class_indices=classes, encoder=encoder,
-                           n_tiles=n_tiles, guided_mode=args.guided_mode, log=log)
+                           n_tiles=n_tiles, guided_mode=args.guided_mode, log=log,
+                           settings=settings)
+            line["training"] = {"epochs": settings.epochs, "augment": settings.augment,
+                                "reduced": bool(reduced)}
             line["seconds"] = round(time.monotonic() - started, 1)
             line["run"] = {"threads": threads, "load_1min_start": round(load0, 2),
                            "load_1min_end": round(os.getloadavg()[0], 2)}
