@@ -100,3 +100,19 @@ def test_effort_by_model_reads_the_saves_from_proposals_only(project):
 def test_no_saves_no_rows(project):
     assert effort_by_model(project) == []
     assert project_status(project).effort == []
+
+
+def test_status_command_prints_the_effort_table(project, capsys):
+    from labeler.cli import main
+
+    record_saves(project)
+    assert main(["status", str(project.root)]) == 0
+    out = capsys.readouterr().out
+    assert "effort per model version (saves started from its proposals)" in out
+    lines = out.splitlines()
+    header = next(i for i, s in enumerate(lines) if "median actions" in s)
+    rows = [s.split() for s in lines[header + 1:] if s.strip() and not set(s) <= set("-+| ")]
+    # the cells of format_effort: model, saves, median actions, median seconds, share
+    assert ["cold-start", "3", "4", "30.0", "33", "%"] in [[c for c in r if c != "|"]
+                                                        for r in rows]
+    assert ["head-1", "2", "1", "2.5", "50", "%"] in [[c for c in r if c != "|"] for r in rows]
