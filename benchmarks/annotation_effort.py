@@ -2,8 +2,13 @@
 
 Run from the repository root: ``python -m benchmarks.annotation_effort`` (``--help`` for the
 options, ``--quick`` for a smoke run). One JSON line per dataset on standard output; with
-``--out docs`` also ``docs/annotation_effort.json`` and the plot
-``docs/annotation_effort.png``.
+``--out docs`` also ``docs/annotation_effort.json``, the plot
+``docs/annotation_effort.png`` and the README's table ``docs/annotation_effort.md``.
+
+Reduced runs (a loaded machine, or a first look): ``--datasets demo``, ``--tiles N``
+(held-out tiles measured), ``--epochs N`` and ``--augment features`` (training on the
+cached features, no image augmentation). The JSON line records them under ``training``
+and the machine's load under ``run``; figures of a reduced run are not the product's.
 
 What is measured
     The simulated annotator of :mod:`labeler.demo.protocol` (the interactive protocol of
@@ -61,7 +66,8 @@ import numpy as np
 from benchmarks.label_efficiency.simulate import _pick, _pool_scores
 from benchmarks.label_efficiency.tiles import TileSet
 
-__all__ = ["SHARES", "GUIDED_MODES", "summarise_runs", "picked_counts", "measure", "plot", "main"]
+__all__ = ["SHARES", "GUIDED_MODES", "summarise_runs", "picked_counts", "measure", "plot",
+           "markdown_table", "main"]
 
 #: Shares of the pool labelled before each retraining.
 SHARES = (0.05, 0.10, 0.20)
@@ -252,6 +258,32 @@ def plot(lines: Sequence[dict], path: Path) -> None:
     plt.close(fig)
 
 
+def markdown_table(lines: Sequence[dict]) -> str:
+    """The README's table of the JSON lines: NoC@90 per starting point and dataset.
+
+    One row per starting point (empty, cold start, then each share with and without
+    on-tile learning, and the share of tiles accepted unchanged); one column per dataset.
+    A cell reads ``mean (capped/tiles)``: mean actions to IoU 0.90 (cap 20) and how many
+    tiles hit the cap.
+    """
+    def cell(s: dict) -> str:
+        return f"{s['mean']:g} ({s['capped']}/{s['tiles']} at 20)"
+
+    head = "| starting mask | " + " | ".join(str(x["dataset"]) for x in lines) + " |"
+    out = [head, "|---|" + "---|" * len(lines)]
+    out.append("| empty | " + " | ".join(cell(x["noc90_empty"]) for x in lines) + " |")
+    out.append("| cold start | " + " | ".join(cell(x["noc90_cold"]) for x in lines) + " |")
+    for share in lines[0]["noc90_after"]:
+        pct = f"{float(share):.0%}"
+        out.append(f"| after retraining on {pct} | "
+                   + " | ".join(cell(x["noc90_after"][share]) for x in lines) + " |")
+        out.append(f"| after {pct}, with on-tile learning | "
+                   + " | ".join(cell(x["noc90_after_guided"][share]) for x in lines) + " |")
+        out.append(f"| after {pct}: accepted unchanged | "
+                   + " | ".join(f"{x['accepted_share_after'][share]:.0%}" for x in lines) + " |")
+    return "\n".join(out) + "\n"
+
+
 def _load(name: str, *, encoder, cache):
     from benchmarks.label_efficiency import load_demo, load_peanut
 
@@ -325,6 +357,7 @@ def main(argv: list[str] | None = None) -> int:
         (args.out / "annotation_effort.json").write_text(
             "".join(json.dumps(x) + "\n" for x in lines), encoding="utf-8")
         plot(lines, args.out / "annotation_effort.png")
+        (args.out / "annotation_effort.md").write_text(markdown_table(lines), encoding="utf-8")
     return 0
 
 
