@@ -21,7 +21,19 @@ EFFORT_COLUMNS = ("model", "saves", "median actions", "median seconds", "accepte
 
 
 def effort_cells(e) -> tuple[str, ...]:
-    """One row of the effort table from a :class:`labeler.workflow.VersionEffort`."""
+    """One row of the effort table.
+
+    Parameters
+    ----------
+    e : labeler.workflow.VersionEffort
+        The effort of one model version.
+
+    Returns
+    -------
+    cells : tuple of str
+        Model, saves, median actions, median seconds (one decimal), share accepted
+        unchanged (whole per cent), in the order of :data:`EFFORT_COLUMNS`.
+    """
     return (e.model, str(e.saves), f"{e.median_actions:g}", f"{e.median_seconds:.1f}",
             f"{100 * e.accepted_share:.0f} %")
 
