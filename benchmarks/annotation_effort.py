@@ -190,6 +190,7 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
     after, guided, accepted = {}, {}, {}
     modes: dict[str, dict] = {m: {} for m in GUIDED_MODES}
     fit_seconds: list[float] = []
+    setup_seconds: list[float] = []
     for share, n, head in zip(shares, counts, heads, strict=True):
         key = f"{share:.2f}"
         props = propose_tiles(head, [heldout.features[r] for r in rows],
@@ -201,7 +202,9 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
         accepted[key] = round(plain["accepted"] / plain["tiles"], 3)
         learners = []
         for r in rows:
+            t0 = time.perf_counter()
             tl = TileLearner(head, heldout.features[r], image=heldout.images[r])
+            setup_seconds.append(time.perf_counter() - t0)
 
             def fit(marks, tl=tl):
                 t0 = time.perf_counter()
@@ -224,6 +227,8 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
         "pool_tiles": len(pool),
         "tiles_measured": len(rows),
         "refit_seconds_median": round(float(np.median(fit_seconds)), 3) if fit_seconds else None,
+        "refit_seconds_max": round(float(np.max(fit_seconds)), 3) if fit_seconds else None,
+        "refit_setup_seconds_median": round(float(np.median(setup_seconds)), 3),
     })
     return line
 
