@@ -8,6 +8,7 @@ from datetime import datetime
 
 import numpy as np
 
+from labeler.errors import DamagedRecordError
 from labeler.imagery.tiling import Window
 from labeler.imagery.write import png_decode
 
@@ -15,6 +16,8 @@ __all__ = [
     "ImageRecord",
     "TileRecord",
     "AnnotationRecord",
+    "TileWork",
+    "SaveOutcome",
     "DraftRecord",
     "ModelVersionRecord",
     "ProposalRecord",
@@ -44,18 +47,25 @@ def decode_mask(data: bytes, *, shape: tuple[int, int], what: str) -> np.ndarray
 
     Raises
     ------
-    ValueError
-        Naming ``what`` (e.g. "annotation 12 of tile 3") when the bytes are not a PNG
-        or the mask's shape is not the tile's.
+    DamagedRecordError
+        Naming ``what`` (e.g. "annotation v2 of tile 3": the tile and the saved version)
+        when the bytes are not a PNG or the mask's shape is not the tile's; it is a
+        ``ValueError`` too.
     """
+    fix = (
+        "the database row is damaged: restore labeler.db from a backup, or save the tile "
+        "again (the other versions are not affected)"
+    )
     try:
         mask = png_decode(data)
     except Exception as exc:  # noqa: BLE001 - any decoder failure is one clear error
-        raise ValueError(f"{what}: stored mask is not a readable PNG ({exc})") from None
+        raise DamagedRecordError(
+            f"{what}: stored mask is not a readable PNG ({exc}); {fix}"
+        ) from None
     if mask.ndim != 2 or mask.shape != tuple(shape):
-        raise ValueError(
+        raise DamagedRecordError(
             f"{what}: stored mask has shape {mask.shape}, but the tile is {tuple(shape)}; "
-            "the row is damaged or belongs to another tile"
+            f"the row is damaged or belongs to another tile; {fix}"
         )
     return mask
 
@@ -78,22 +88,35 @@ def npy_bytes(array: np.ndarray) -> bytes:
     return buf.getvalue()
 
 
-def npy_decode(data: bytes | None) -> np.ndarray | None:
+def npy_decode(data: bytes | None, *, what: str = "stored array") -> np.ndarray | None:
     """Inverse of :func:`npy_bytes`.
 
     Parameters
     ----------
     data : bytes or None
         ``.npy`` file content.
+    what : str
+        How an error names the value (e.g. "embedding of proposal 4 of tile 2").
 
     Returns
     -------
     ndarray or None
         The array; None stays None.
+
+    Raises
+    ------
+    DamagedRecordError
+        Naming ``what`` when the bytes are not a ``.npy`` array.
     """
     if data is None:
         return None
-    return np.load(io.BytesIO(data), allow_pickle=False)
+    try:
+        return np.load(io.BytesIO(data), allow_pickle=False)
+    except (ValueError, OSError, EOFError) as exc:
+        raise DamagedRecordError(
+            f"{what}: stored array is not readable ({exc}); the database row is damaged: "
+            "restore labeler.db from a backup, or run 'labeler propose' again after a retrain"
+        ) from None
 
 
 @dataclass(frozen=True)
@@ -178,6 +201,53 @@ class AnnotationRecord:
 
 
 @dataclass(frozen=True)
+class TileWork:
+    """What is saved on a tile, as one annotator's next save sees it (no mask bytes).
+
+    Attributes
+    ----------
+    tile : TileRecord
+        The tile (its state, overlap flag and holder).
+    head : int or None
+        The version that annotator's next save must name as its parent (None when
+        their lineage has no saved version yet).
+    head_by, head_kind : str or None
+        Annotator and kind (``"full"`` or ``"scribble"``) of that version.
+    full_by : str or None
+        Annotator of the tile's newest full mask (the one an export uses).
+    weak_by : str or None
+        Annotator of the tile's newest weak label.
+    """
+
+    tile: TileRecord
+    head: int | None
+    head_by: str | None
+    head_kind: str | None
+    full_by: str | None
+    weak_by: str | None
+
+
+@dataclass(frozen=True)
+class SaveOutcome:
+    """What became of one save of a batch that skips tiles changed in the meantime.
+
+    Attributes
+    ----------
+    tile_id : int
+        The tile.
+    version : int or None
+        The version saved; None when nothing was saved for this tile.
+    problem : str or None
+        Why nothing was saved (another save since the named parent version, or a state
+        the life cycle does not leave for this save); None when saved.
+    """
+
+    tile_id: int
+    version: int | None
+    problem: str | None = None
+
+
+@dataclass(frozen=True)
 class DraftRecord:
     """An annotator's unsaved edit of a tile, decoded."""
 
@@ -248,7 +318,9 @@ class ProposalRecord:
             Entropy, margin and BALD per cell; None when the proposal has none (cold
             start) or was read without them.
         """
-        return npy_decode(self.uncertainty_npy)
+        return npy_decode(
+            self.uncertainty_npy, what=f"uncertainty of proposal {self.id} of tile {self.tile_id}"
+        )
 
     def embedding(self) -> np.ndarray | None:
         """The pooled encoder embedding the picker uses.
@@ -258,7 +330,9 @@ class ProposalRecord:
         ndarray, shape (D,), float32, or None
             None when the proposal was stored without one.
         """
-        return npy_decode(self.embedding_npy)
+        return npy_decode(
+            self.embedding_npy, what=f"embedding of proposal {self.id} of tile {self.tile_id}"
+        )
 
 
 @dataclass(frozen=True)

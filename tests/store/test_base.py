@@ -10,13 +10,14 @@ from labeler.store.base import as_utc, now
 
 
 def test_open_without_create_refuses(tmp_path):
-    with pytest.raises(LabelerError, match="no labeler project database here.*labeler init"):
+    with pytest.raises(LabelerError, match=r"none\.db: the project database is missing"):
         Store(f"sqlite:///{tmp_path / 'none.db'}")
+    assert not (tmp_path / "none.db").exists()
 
 
 def test_open_unreachable_database_names_the_url(tmp_path):
     url = f"sqlite:///{tmp_path / 'no-such-folder' / 'labeler.db'}"
-    with pytest.raises(LabelerError, match=r"store sqlite:///.*no-such-folder.*cannot open"):
+    with pytest.raises(LabelerError, match=r"no-such-folder/labeler\.db: cannot create the database"):
         Store(url, create=True)
 
 
