@@ -268,11 +268,11 @@ def markdown_table(lines: Sequence[dict]) -> str:
 
     One row per starting point (empty, cold start, then each share with and without
     on-tile learning, and the share of tiles accepted unchanged); one column per dataset.
-    A cell reads ``mean (capped/tiles)``: mean actions to IoU 0.90 (cap 20) and how many
-    tiles hit the cap.
+    A cell reads ``mean (capped/tiles at 20; IoU x)``: mean actions to IoU 0.90 (cap 20),
+    how many tiles hit the cap, and the mean tile IoU at the end of the sessions.
     """
     def cell(s: dict) -> str:
-        return f"{s['mean']:g} ({s['capped']}/{s['tiles']} at 20)"
+        return f"{s['mean']:g} ({s['capped']}/{s['tiles']} at 20; IoU {s['iou_at_cap']:.2f})"
 
     head = "| starting mask | " + " | ".join(str(x["dataset"]) for x in lines) + " |"
     out = [head, "|---|" + "---|" * len(lines)]

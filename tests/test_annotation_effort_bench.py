@@ -58,9 +58,9 @@ def test_markdown_table_has_a_row_per_start_and_a_column_per_dataset():
     text = markdown_table([_line("demo"), _line("peanut")])
     rows = text.splitlines()
     assert rows[0] == "| starting mask | demo | peanut |"
-    assert rows[2] == "| empty | 12.5 (1/4 at 20) | 12.5 (1/4 at 20) |"
-    assert "| after retraining on 10% | 3.25 (0/4 at 20) | 3.25 (0/4 at 20) |" in rows
-    assert "| after 10%, with on-tile learning | 2.5 (0/4 at 20) | 2.5 (0/4 at 20) |" in rows
+    assert rows[2] == "| empty | 12.5 (1/4 at 20; IoU 0.90) | 12.5 (1/4 at 20; IoU 0.90) |"
+    assert "| after retraining on 10% | 3.25 (0/4 at 20; IoU 0.90) | 3.25 (0/4 at 20; IoU 0.90) |" in rows
+    assert "| after 10%, with on-tile learning | 2.5 (0/4 at 20; IoU 0.90) | 2.5 (0/4 at 20; IoU 0.90) |" in rows
     assert "| after 10%: accepted unchanged | 25% | 25% |" in rows
     assert len(rows) == 2 + 2 + 3 * 2
 
