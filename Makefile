@@ -49,13 +49,16 @@ lint: $(STAMP)
 	$(BIN)/lint-imports
 
 # every benchmark script (benchmarks/datasets.py is their shared helper, not a benchmark),
-# then the label-efficiency benchmark, a package run with -m (about 40 minutes)
-BENCH_SCRIPTS := $(filter-out benchmarks/datasets.py,$(wildcard benchmarks/*.py))
+# then the label-efficiency benchmark, a package run with -m (about 40 minutes), and the
+# annotation-effort benchmark, run with -m as it uses that package's loaders
+BENCH_SCRIPTS := $(filter-out benchmarks/datasets.py benchmarks/annotation_effort.py,$(wildcard benchmarks/*.py))
 
 bench: $(STAMP)
 	@for b in $(BENCH_SCRIPTS); do echo "== $$b"; $(BIN)/python $$b || exit 1; done
 	@echo "== python -m benchmarks.label_efficiency"
 	$(BIN)/python -m benchmarks.label_efficiency
+	@echo "== python -m benchmarks.annotation_effort --out docs"
+	$(BIN)/python -m benchmarks.annotation_effort --out docs
 
 clean-venv:
 	rm -rf $(VENV)

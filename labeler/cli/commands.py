@@ -28,6 +28,7 @@ __all__ = [
     "cmd_propose",
     "cmd_retrain",
     "format_status",
+    "format_effort",
 ]
 
 
@@ -180,7 +181,25 @@ def format_status(st) -> str:
         )
     else:
         out.append("(no annotations yet)")
+    out.append("")
+    out.append("effort per model version (saves started from its proposals)")
+    out.append(format_effort(st.effort))
     return "\n".join(out)
+
+
+def format_effort(rows) -> str:
+    """The effort table: per model version, median actions and seconds per saved tile and
+    the share accepted unchanged (rows of :func:`labeler.workflow.effort_by_model`)."""
+    if not rows:
+        return "(no save from a proposal yet)"
+    return _table(
+        ["model", "saves", "median actions", "median seconds", "accepted unchanged"],
+        [
+            (r.model, r.saves, f"{r.median_actions:g}", f"{r.median_seconds:.1f}",
+             f"{100 * r.accepted_share:.0f} %")
+            for r in rows
+        ],
+    )
 
 
 def cmd_status(args) -> int:

@@ -30,6 +30,17 @@ What it does there (the policy)
     next tool is tried at the same point. The session stops when the IoU reaches
     ``target_iou`` (0.90) or after ``max_actions`` (20) counted editor actions.
 
+Learning on the tile (``ProtocolOptions.relearn``, with a ``learner`` passed to
+:func:`run_protocol`: the editor's :attr:`~labeler.editor.state.EditorState.learner`)
+    * ``"off"``: never.
+    * ``"scribble"``: every finished scribble re-fits the model on the tile's marks
+      (``EditorState.relearn_on_scribble``). The scribble alone is kept when it raised the
+      IoU and the interior point now has the target class (one action); otherwise refine
+      follows as above, and when neither helped both are taken back.
+    * ``"key"``: after every kept step the annotator presses the relearn key (one
+      action), taking it back with undo when it did not raise the IoU; after two such
+      failures in a row the key is not pressed again on that tile.
+
 Noise (:class:`AnnotatorHabits`)
     A person works towards the mask they see: the target is the truth changed by the
     annotator's habits, drawn once per session from a seeded generator: a systematic edge
@@ -44,6 +55,7 @@ target or the mask.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -58,6 +70,7 @@ from labeler.masks.edits import region_at, stroke_patch
 
 __all__ = [
     "TOOLS",
+    "RELEARN_MODES",
     "AnnotatorHabits",
     "ProtocolOptions",
     "ProtocolStep",
@@ -67,6 +80,8 @@ __all__ = [
 
 #: The tools the simulated annotator may use, in their default order.
 TOOLS = ("fill", "scribble", "brush")
+#: When the model re-fits on the tile's marks (see the module notes).
+RELEARN_MODES = ("off", "scribble", "key")
 _SOIL = 0
 
 
@@ -148,6 +163,9 @@ class ProtocolOptions:
         Longest stroke along the error region's axis.
     snap : bool
         Refine with superpixel snapping.
+    relearn : {"off", "scribble", "key"}
+        When the model re-fits on the tile's marks (see the module notes); anything but
+        "off" needs a ``learner``.
     """
 
     target_iou: float = NOC_THRESHOLD
@@ -157,8 +175,13 @@ class ProtocolOptions:
     scribble_radius_px: float = 1.5
     stroke_length_px: float = 48.0
     snap: bool = False
+    relearn: str = "off"
 
     def __post_init__(self) -> None:
+        if self.relearn not in RELEARN_MODES:
+            raise ValueError(
+                f"relearn: expected one of {', '.join(RELEARN_MODES)}, got {self.relearn!r}"
+            )
         if not 0.0 < self.target_iou <= 1.0:
             raise ValueError(f"target_iou: expected an IoU in (0, 1], got {self.target_iou}")
         if self.max_actions < 1:
@@ -290,6 +313,7 @@ class _Session:
         self.n_classes = n_classes
         self.ious = [self.iou()]
         self.steps: list[ProtocolStep] = []
+        self.key_failures = 0
 
     def iou(self) -> float:
         return tile_iou(self.target, self.state.mask, n_classes=self.n_classes)
@@ -334,7 +358,22 @@ class _Session:
                 ProtocolStep(tool, click.point, k, self.state.actions - first, kept)
             )
             if kept:
+                self._press_relearn(click)
                 return
+
+    def _press_relearn(self, click: ErrorClick) -> None:
+        """The relearn key after a kept step (``relearn="key"``)."""
+        if self.options.relearn != "key" or self.key_failures >= 2 or self.budget <= 0:
+            return
+        first = self.state.actions
+        before = self.ious[-1]
+        changed = self.state.relearn()
+        self.note()
+        kept = self.undo_if_worse(before, changed)
+        self.key_failures = 0 if kept else self.key_failures + 1
+        self.steps.append(
+            ProtocolStep("relearn", click.point, click.cls, self.state.actions - first, kept)
+        )
 
     def _use(
         self, tool: str, click: ErrorClick, allowed: np.ndarray, before: float
@@ -356,11 +395,20 @@ class _Session:
             radius = min(opts.scribble_radius_px, max(click.depth_px - 0.5, 0.5))
             state.radius = radius
             line = _stroke_line(allowed, click, radius=radius, length=opts.stroke_length_px)
+            mask_before = state.mask
             state.scribble(line)
             self.note()
+            relearned = not np.array_equal(state.mask, mask_before)
+            if relearned and self.ious[-1] > before and state.mask[click.point] == click.cls:
+                return True  # the re-fit on the new scribble fixed this error
+            after_scribble = self.ious[-1]
             changed = state.refine(snap=opts.snap)
             self.note()
-            return self.undo_if_worse(before, changed)
+            kept = self.undo_if_worse(max(before, after_scribble), changed)
+            if not kept and relearned and after_scribble <= before and self.budget > 0:
+                state.undo()  # the scribble's re-fit made things worse too
+                self.note()
+            return kept or (relearned and after_scribble > before)
         radius = max(click.depth_px - 0.5, 0.5)
         state.radius = radius
         state.paint(_stroke_line(allowed, click, radius=state.radius,
@@ -377,6 +425,7 @@ def run_protocol(
     habits: AnnotatorHabits | None = None,
     rng: np.random.Generator | None = None,
     options: ProtocolOptions | None = None,
+    learner: Callable[[np.ndarray], np.ndarray | None] | None = None,
     schema: ClassSchema = DEFAULT_SCHEMA,
 ) -> ProtocolRun:
     """Correct one tile in the editor by the protocol (see the module notes).
@@ -395,6 +444,9 @@ def run_protocol(
         Needed when ``habits`` has a profile.
     options : ProtocolOptions, optional
         Target IoU, action cap, tools; default the protocol's (0.90, 20, all tools).
+    learner : callable, optional
+        The editor's on-tile learner (marks (H, W) uint8 -> a new proposal (H, W) uint8),
+        used as ``options.relearn`` says; needed unless that is ``"off"``.
     schema : ClassSchema
         Classes of the masks.
 
@@ -423,7 +475,15 @@ def run_protocol(
         )
     target = habits.perceive(t, rng=rng)
     proposal = np.zeros(t.shape, np.uint8) if start is None else np.asarray(start)
+    if opts.relearn != "off" and learner is None:
+        raise ValueError(
+            f"learner: expected the on-tile learner for relearn={opts.relearn!r}, got None; "
+            "pass learner= or set relearn='off'"
+        )
     state = EditorState(image, proposal, schema=schema)
+    if opts.relearn != "off":
+        state.learner = learner
+        state.relearn_on_scribble = opts.relearn == "scribble"
     session = _Session(state, target, opts, max(schema.indices) + 1)
     while not session.done():
         click = next_click(target, state.mask)

@@ -9,6 +9,13 @@ Kinds passed to :meth:`EditorBackend.save`
     (class index where marked, 255 elsewhere); the constants are
     :data:`labeler.states.KIND_FULL` and :data:`labeler.states.KIND_WEAK`.
 
+Learning on the tile
+    :meth:`EditorBackend.relearn` takes the annotator's marks (class index where marked,
+    255 elsewhere; :attr:`labeler.editor.state.EditorState.marks`) and returns a new
+    proposal of the whole tile, or None when there is no trained model; in a project the
+    newest head is re-fitted on the tile (:mod:`labeler.workflow.learning`). The editor
+    stays free of the model: it sees masks only.
+
 The annotation state of a save
     The editor proposes none. The backend decides what the save records and returns that
     state; in a project the workflow decides it (``accepted`` when the full mask equals
@@ -19,6 +26,7 @@ The annotation state of a save
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Protocol, runtime_checkable
 
@@ -108,6 +116,20 @@ class EditorBackend(Protocol):
         """Forget the draft (no error when there is none)."""
         ...
 
+    def relearn(self, marks: np.ndarray) -> np.ndarray | None:
+        """A new proposal of the tile learnt from ``marks``, or None without a model.
+
+        Parameters
+        ----------
+        marks : ndarray, shape (H, W), uint8
+            Class index where the annotator marked, 255 elsewhere.
+
+        Returns
+        -------
+        mask : ndarray, shape (H, W), uint8, or None
+        """
+        ...
+
 
 @dataclass(frozen=True)
 class SavedLabel:
@@ -143,14 +165,18 @@ class MemoryBackend:
     state : str
         The annotation state every save reports. This backend decides nothing: a test or
         script sets the answer it wants the editor to show.
+    learner : callable, optional
+        What :meth:`relearn` calls (marks -> mask); None: no model, relearn returns None.
     """
 
     draft: Draft | None = None
     conflict: np.ndarray | bool = False
     tile_id: int = 0
     state: str = AMENDED
+    learner: Callable[[np.ndarray], np.ndarray] | None = None
     saved: list[SavedLabel] = field(default_factory=list)
     drafts_written: int = 0
+    relearned: int = 0
 
     def save(self, mask: np.ndarray, *, kind: str, actions: int, seconds: float) -> str:
         """Keep the label in :attr:`saved` and return :attr:`state` (see the class)."""
@@ -182,3 +208,10 @@ class MemoryBackend:
     def discard_draft(self) -> None:
         """Forget the draft."""
         self.draft = None
+
+    def relearn(self, marks: np.ndarray) -> np.ndarray | None:
+        """``learner(marks)`` (counted in :attr:`relearned`), or None without a learner."""
+        if self.learner is None:
+            return None
+        self.relearned += 1
+        return np.asarray(self.learner(np.array(marks, np.uint8)), np.uint8)

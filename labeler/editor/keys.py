@@ -95,6 +95,9 @@ BINDINGS: tuple[Binding, ...] = (
     Binding("save-weak-label", "p", _k("p"), "save the weak label alone"),
     Binding("leave", "Esc", _ESCAPE, "close the editor; asks before dropping unsaved work"),
     Binding("refine", "r", _k("r"), "refine: weak label + mask -> mask near the marks"),
+    Binding("relearn", "i", _k("i"),
+            "learn from your marks on this tile: the model re-proposes the whole tile "
+            "(your weak label and hand edits are kept)"),
     Binding("snap", "n", _k("n"), "refine snaps to superpixels: on / off"),
     Binding("undo", "u", _k("u"), "undo the last edit"),
     Binding("redo", "a", _k("a"), "redo (again)"),

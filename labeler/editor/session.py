@@ -116,6 +116,8 @@ class EditorSession:
             )
         self.state = state
         self.backend = backend
+        if state.learner is None and callable(getattr(backend, "relearn", None)):
+            state.learner = backend.relearn
         self.title = title
         self.autosave_seconds = float(autosave_seconds)
         self._clock = clock
@@ -257,6 +259,14 @@ class EditorSession:
             self.message = f"saved as {state}"
         self._finish("saved", kind=kind, state=state)
 
+    def _relearn(self) -> None:
+        """The relearn key: re-fit the model on the marks; errors become a message."""
+        try:
+            if self.state.relearn():
+                self.message = "the model learnt from your marks and re-proposed the tile"
+        except (OSError, LabelerError) as exc:
+            self.message = f"could not learn on this tile: {exc}"
+
     def _leave(self) -> None:
         if self.blocked and self._draft_kept:
             self._finish("conflict")
@@ -345,6 +355,7 @@ class EditorSession:
         pointer = s.cursor or (s.view_shape[0] / 2.0, s.view_shape[1] / 2.0)
         simple: dict[str, Callable[[], object]] = {
             "refine": s.refine,
+            "relearn": self._relearn,
             "undo": s.undo,
             "redo": s.redo,
             "clear-weak-label": s.clear_weak_label,

@@ -15,11 +15,17 @@ It never opens a window, so all of it is tested on tiny arrays.
 Counters
     ``actions`` counts the gestures that edit or build an edit: a stroke (press, drag,
     release), a polygon vertex, a click that closes or fills, a box, and the commands
-    refine, clear the weak label, undo, redo and restoring a draft. Selecting a class or tool,
+    refine, relearn, clear the weak label, undo, redo and restoring a draft. Selecting a class or tool,
     zooming, panning and toggling views are not counted. ``seconds`` is active time: the
     wall-clock gaps between consecutive events (:meth:`EditorState.note_activity`), where
     a gap longer than ``idle_seconds`` (60 s by default) counts as a break and is left out
     entirely.
+
+Learning on the tile
+    ``learner`` (set by whoever opens the editor; None without a trained model) maps the
+    annotator's marks (:attr:`EditorState.marks`) to a new proposal of the whole tile;
+    :meth:`EditorState.relearn` applies it (:mod:`labeler.editor.tools`), and with
+    ``relearn_on_scribble`` every finished scribble does so too.
 
 The state knows whether the mask differs from the proposal (``changed``) but decides
 nothing about what a save means: the workflow records the annotation state of a save.
@@ -129,7 +135,11 @@ class EditorState(EditingTools):
         self._renderer = Renderer(self._image, schema=schema, uncertainty=uncertainty)
         self.opacity = opacity
         self._viewport = Viewport(self._shape, view_shape)
-        self._history = EditHistory({"mask": self._mask, "weak_label": self._weak})
+        # the model's layer: the proposal, replaced by each on-tile re-fit (relearn)
+        self._base = self._proposal.copy()
+        self._history = EditHistory(
+            {"mask": self._mask, "weak_label": self._weak, "base": self._base}
+        )
         self._clock = clock
         self.idle_seconds = float(idle_seconds)
         self._last_event: float | None = None
@@ -142,6 +152,8 @@ class EditorState(EditingTools):
         self._compare_label = ""
         self.notice = ""
         self.snap = False
+        self.learner: Callable[[np.ndarray], np.ndarray | None] | None = None
+        self.relearn_on_scribble = False
         self._init_tools()
         self.active_class = self._default_class() if active_class is None else active_class
         self.tool = tool
@@ -185,6 +197,12 @@ class EditorState(EditingTools):
     def mask(self) -> np.ndarray:
         """A copy of the current mask, (H, W) uint8."""
         return self._mask.copy()
+
+    @property
+    def base(self) -> np.ndarray:
+        """A copy of the model's layer: the proposal, or the newest on-tile re-fit of it
+        (:meth:`relearn`); what the erase tool brings back."""
+        return self._base.copy()
 
     @property
     def weak_label(self) -> np.ndarray:

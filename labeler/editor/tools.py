@@ -7,8 +7,18 @@ bookkeeping. The pixel work itself lives in :mod:`labeler.masks.edits` (stroke, 
 region patches) and :mod:`labeler.masks.refine` (GrabCut, random walker).
 
 Erase
-    The erase tool puts the *proposal* back under the stroke: it takes back hand edits
-    locally. To mark soil, paint with class 0 (soil).
+    The erase tool puts the *model's layer* back under the stroke (the proposal, or its
+    newest on-tile re-fit): it takes back hand edits locally. To mark soil, paint with
+    class 0 (soil).
+
+Relearn (learning from the marks on this tile)
+    The marks are the weak label and every pixel corrected by hand (where the mask differs
+    from the model's layer), with their classes. :meth:`EditingTools.relearn` hands them
+    to the state's ``learner`` (in a project: the head's classifier re-fitted on this
+    tile's cached features, :mod:`labeler.model.ontile`), which returns a new proposal of
+    the whole tile; it becomes the model's layer, and the mask takes it wherever it was
+    not corrected by hand, so hand edits are never lost. One undoable edit. With
+    ``relearn_on_scribble`` each finished scribble does this as part of the same edit.
 
 Actions
     A stroke (press, drag, release), a polygon vertex, a click that closes or fills, a box,
@@ -21,6 +31,8 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+
+import numpy as np
 
 from labeler.classes import UNLABELLED
 from labeler.editor.history import Box
@@ -48,9 +60,10 @@ class EditingTools:
 
     Notes
     -----
-    The host class provides the layers ``_image`` (H, W, 3), ``_proposal``, ``_mask`` and
-    ``_weak`` (H, W) uint8 and ``_shape``; the settings ``_tool``, ``_active``,
-    ``_radius``, ``connectivity``, ``band_px``, ``snap``, ``notice`` and the property
+    The host class provides the layers ``_image`` (H, W, 3), ``_proposal``, ``_base``
+    (the model's layer), ``_mask`` and ``_weak`` (H, W) uint8 and ``_shape``; the
+    settings ``_tool``, ``_active``, ``_radius``, ``connectivity``, ``band_px``, ``snap``,
+    ``learner``, ``relearn_on_scribble``, ``notice`` and the property
     ``has_weak_label``; the view (``transform``, ``pane_of``); and the bookkeeping
     ``note_activity()`` (active time), ``_count()`` (one action), ``_touch(box)`` (a live
     change to redraw) and ``_record(boxes)`` (one undoable history entry; True if anything
@@ -73,7 +86,7 @@ class EditingTools:
         if kind == "brush":
             self._mask[rs, cs][sel] = self._active
         elif kind == "erase":
-            self._mask[rs, cs][sel] = self._proposal[rs, cs][sel]
+            self._mask[rs, cs][sel] = self._base[rs, cs][sel]
         else:
             self._weak[rs, cs][sel] = self._active
         self._touch((rs.start, rs.stop, cs.start, cs.stop))
@@ -118,8 +131,13 @@ class EditingTools:
         r0, r1, c0, c1 = stroke.box
         if r0 >= r1 or c0 >= c1:
             return False
-        layer = "weak_label" if stroke.kind == "scribble" else "mask"
-        return self._record([(layer, (r0, r1, c0, c1))])
+        if stroke.kind == "scribble":
+            if self.relearn_on_scribble and self.learner is not None and self._learn():
+                return self._record(
+                    [("weak_label", (r0, r1, c0, c1)), ("mask", None), ("base", None)]
+                )
+            return self._record([("weak_label", (r0, r1, c0, c1))])
+        return self._record([("mask", (r0, r1, c0, c1))])
 
     def _whole_stroke(self, points: Sequence[tuple[float, float]], kind: str) -> bool:
         pts = [(float(p[0]), float(p[1])) for p in points]
@@ -252,6 +270,58 @@ class EditingTools:
         )
         self._mask[:] = refined
         return self._record([("mask", None)])
+
+    # ------------------------------------------------------------------ learning on the tile
+    @property
+    def marks(self) -> np.ndarray:
+        """What the annotator told the model on this tile, (H, W) uint8.
+
+        The weak label where marked; elsewhere the mask's class where it was corrected
+        by hand (differs from the model's layer); 255 everywhere else.
+        """
+        out = np.where(self._mask != self._base, self._mask, UNLABELLED).astype(np.uint8)
+        marked = self._weak != UNLABELLED
+        out[marked] = self._weak[marked]
+        return out
+
+    def _learn(self) -> bool:
+        """Ask the learner for a new proposal and apply it in place; False when it gave
+        none (a notice says why)."""
+        if self.learner is None:
+            self.notice = "no trained model for this tile yet: retrain first"
+            return False
+        marks = self.marks
+        if (marks == UNLABELLED).all():
+            self.notice = "nothing marked yet: scribble or correct a region first"
+            return False
+        new = self.learner(marks)
+        if new is None:
+            self.notice = "no trained model for this tile yet: retrain first"
+            return False
+        new = np.asarray(new)
+        if new.shape != self._shape or new.dtype != np.uint8:
+            raise ValueError(
+                f"learner: expected a (H, W) uint8 proposal of the tile's shape {self._shape}, "
+                f"got shape {new.shape} dtype {new.dtype}"
+            )
+        hand = self._mask != self._base
+        self._mask[~hand] = new[~hand]
+        self._base[:] = new
+        return True
+
+    def relearn(self) -> bool:
+        """Re-fit the model on this tile's marks and take its new proposal (one action).
+
+        Pixels corrected by hand keep their class; every other pixel takes the new
+        proposal (see the module notes). Returns False, with a notice, without a learner
+        or marks.
+        """
+        self._finish_gesture()
+        self.note_activity()
+        self._count()
+        if not self._learn():
+            return False
+        return self._record([("mask", None), ("base", None)])
 
     # ------------------------------------------------------------------ gestures
     def _finish_stroke_only(self) -> None:

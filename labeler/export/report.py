@@ -421,6 +421,7 @@ def write_agreement_report(
     least: int = 10,
     opacity: float = 0.45,
     max_panel_px: int = 360,
+    effort: Sequence[object] = (),
 ) -> ReportFiles:
     """Write the agreement report of ``summary`` into ``out_dir``.
 
@@ -445,6 +446,10 @@ def write_agreement_report(
         Overlay opacity (the editor's default, 0.45).
     max_panel_px : int
         Longest side of one overlay panel; larger crops are subsampled (nearest).
+    effort : sequence
+        Annotation effort per model version, oldest first: objects with ``model``,
+        ``saves``, ``median_actions``, ``median_seconds`` and ``accepted_share``
+        (:class:`labeler.workflow.VersionEffort`); shown in a section of their own.
 
     Returns
     -------
@@ -522,6 +527,20 @@ def write_agreement_report(
             [[d.day.isoformat(), _fmt(d.kappa), _fmt(d.mean_iou), _fmt(d.pixel_accuracy),
               str(d.comparisons), str(d.pixels_compared)] for d in summary.days],
         ))
+
+    # Effort per model version.
+    parts.append("<h2>Annotation effort per model version</h2>")
+    if effort:
+        parts.append("<p>Full saves that started from the version's proposals: median "
+                     "editing actions and active seconds per saved tile, and the share kept "
+                     "unchanged.</p>")
+        parts.append(_table(
+            ["model", "saves", "median actions", "median seconds", "accepted unchanged"],
+            [[str(e.model), str(e.saves), f"{e.median_actions:g}",
+              f"{e.median_seconds:.1f}", f"{100 * e.accepted_share:.0f} %"] for e in effort],
+        ))
+    else:
+        parts.append("<p>No save from a proposal yet.</p>")
 
     # Least agreed.
     entries = summary.least_agreed(least)

@@ -221,6 +221,18 @@ class ProposalsMixin(ImagesMixin):
             raise NotFoundError(f"proposal {proposal_id} is not in this project")
         return _proposal_row(r)
 
+    def proposal_model_versions(self) -> dict[int, int]:
+        """The model version of every proposal, without reading any mask.
+
+        Returns
+        -------
+        dict of int to int
+            Proposal id -> id of the model version that made it.
+        """
+        with self._read() as conn:
+            q = sa.select(t.proposals.c.id, t.proposals.c.model_version_id)
+            return {int(i): int(m) for i, m in conn.execute(q)}
+
     def latest_proposals(self, *, with_uncertainty: bool = False) -> dict[int, ProposalRecord]:
         """The newest proposal of every tile that has one.
 

@@ -1,4 +1,6 @@
-"""The model screen: every model version with its validation IoU, and the mIoU trend."""
+"""The model screen: every model version with its validation IoU, the mIoU trend, and the
+annotation effort per version (median actions and seconds per saved tile, share accepted
+unchanged: :func:`labeler.workflow.effort_by_model`)."""
 
 from __future__ import annotations
 
@@ -12,7 +14,28 @@ import labeler.workflow as workflow
 from labeler.tui.figures import miou_series, model_cells, model_columns
 from labeler.tui.keys import HEADER_ICON, SUBSCREEN_KEYS, bindings
 
-__all__ = ["ModelScreen"]
+__all__ = ["ModelScreen", "EFFORT_COLUMNS", "effort_cells"]
+
+#: Columns of the effort table.
+EFFORT_COLUMNS = ("model", "saves", "median actions", "median seconds", "accepted unchanged")
+
+
+def effort_cells(e) -> tuple[str, ...]:
+    """One row of the effort table.
+
+    Parameters
+    ----------
+    e : labeler.workflow.VersionEffort
+        The effort of one model version.
+
+    Returns
+    -------
+    cells : tuple of str
+        Model, saves, median actions, median seconds (one decimal), share accepted
+        unchanged (whole per cent), in the order of :data:`EFFORT_COLUMNS`.
+    """
+    return (e.model, str(e.saves), f"{e.median_actions:g}", f"{e.median_seconds:.1f}",
+            f"{100 * e.accepted_share:.0f} %")
 
 
 class ModelScreen(Screen):
@@ -32,11 +55,15 @@ class ModelScreen(Screen):
         yield Label("Validation mIoU over versions", classes="title")
         yield Sparkline([], id="miou-trend")
         yield Static("", id="miou-caption")
+        yield Label("Effort per model version (saves started from its proposals)",
+                    classes="title")
+        yield DataTable(id="effort-table", cursor_type="row", zebra_stripes=True)
         yield Footer()
 
     def on_mount(self) -> None:
         schema = self.app.project.settings.classes
         self.query_one("#model-table", DataTable).add_columns(*model_columns(schema))
+        self.query_one("#effort-table", DataTable).add_columns(*EFFORT_COLUMNS)
         self._load()
 
     @work(thread=True, exclusive=True, group="models", exit_on_error=False)
@@ -44,13 +71,14 @@ class ModelScreen(Screen):
         worker = get_current_worker()
         try:
             versions = workflow.model_versions(self.app.project)
+            effort = workflow.effort_by_model(self.app.project)
         except Exception as exc:  # noqa: BLE001 - shown to the user
             self.app.call_from_thread(self.app.report_error, exc, doing="reading model versions")
             return
         if not worker.is_cancelled:
-            self.app.call_from_thread(self._apply, versions)
+            self.app.call_from_thread(self._apply, versions, effort)
 
-    def _apply(self, versions) -> None:
+    def _apply(self, versions, effort=()) -> None:
         schema = self.app.project.settings.classes
         table = self.query_one("#model-table", DataTable)
         table.clear()
@@ -68,6 +96,10 @@ class ModelScreen(Screen):
                 f"{len(self.series)} version(s) with figures: first {self.series[0]:.3f}, "
                 f"latest {self.series[-1]:.3f}, best {max(self.series):.3f}"
             )
+        effort_table = self.query_one("#effort-table", DataTable)
+        effort_table.clear()
+        for e in effort:
+            effort_table.add_row(*effort_cells(e), key=str(e.model_version_id))
         self.loads += 1
 
     def action_back(self) -> None:

@@ -11,7 +11,8 @@ stage:
 ``proposing``             proposals from the cold start or the newest head
 ``picking``               the queue order from the active-learning picker
 ``annotating``            saves, accepting, parking, the queue, the next tile
-``editing``               the store behind the mask editor
+``editing``               the store behind the mask editor, learning on one tile
+``effort``                actions, seconds and accepted share per model version
 ``agreeing``              agreement figures, report and contested tiles
 ``retraining``            a new head on every saved mask
 ``renewing``              new proposals for the open tiles after a retrain
@@ -45,6 +46,7 @@ from labeler.workflow.annotating import (
     weak_label_tile_state,
 )
 from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
+from labeler.workflow.effort import VersionEffort, effort_by_model
 from labeler.workflow.encoders import encoder_versions
 from labeler.workflow.exporting import ExportResult, export_project
 from labeler.workflow.importing import ImportResult, import_masks
@@ -66,6 +68,8 @@ from labeler.workflow.views import (
 )
 
 __all__ = [
+    "VersionEffort",
+    "effort_by_model",
     "Progress",
     "no_progress",
     "AddResult",

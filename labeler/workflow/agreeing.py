@@ -17,6 +17,7 @@ from labeler.imagery.tiling import LazyRaster, StitchedMask, TileLayout
 from labeler.project import Project
 from labeler.states import CONTESTED, KIND_FULL, SETTLED
 from labeler.workflow.annotating import QueueRow, queue_rows
+from labeler.workflow.effort import effort_by_model
 from labeler.workflow.progress import Progress, no_progress
 
 __all__ = ["compared_images", "agreement_summary", "write_agreement", "contested_tiles"]
@@ -155,7 +156,8 @@ def write_agreement(
                 rgb = LazyRaster(reader.read, shape=(*reader.info.shape, 3))
                 overlays[item.image] = OverlaySource(rgb=rgb, masks=dict(item.masks))
         files = write_agreement_report(
-            summary, Path(out_dir), schema=project.settings.classes, overlays=overlays, least=least
+            summary, Path(out_dir), schema=project.settings.classes, overlays=overlays, least=least,
+            effort=effort_by_model(project),
         )
     return summary, files
 

@@ -3,7 +3,8 @@
 :func:`begin_edit` gathers what an annotator (or a reviewer settling a contested tile)
 starts from and marks the tile held; :class:`StoreBackend` is where the editor saves: it
 implements the editor's backend interface (:class:`labeler.editor.backend.EditorBackend`)
-by duck typing, so the workflow imports nothing from the editor; :func:`end_edit` gives
+by duck typing, so the workflow imports nothing from the editor (its ``relearn`` re-fits
+the newest head on the annotator's marks, :mod:`labeler.workflow.learning`); :func:`end_edit` gives
 the tile back when the editor closes. The window itself is opened by
 :mod:`labeler.editor.opening`.
 
@@ -25,6 +26,7 @@ from labeler.project import Project
 from labeler.states import CONTESTED, SETTLED
 from labeler.store.records import DraftRecord
 from labeler.workflow.annotating import save_tile_mask
+from labeler.workflow.learning import TileRelearner, tile_relearner
 
 __all__ = ["StoreBackend", "EditStart", "begin_edit", "end_edit"]
 
@@ -69,6 +71,8 @@ class StoreBackend:
         self.proposal_id = proposal_id
         self.settling = settling
         self.saved: list[int] = []
+        self._relearner: TileRelearner | None = None
+        self._no_head = False
 
     def save(self, mask: np.ndarray, *, kind: str, actions: int, seconds: float) -> str:
         """Save through :func:`save_tile_mask`, which decides the annotation state.
@@ -119,6 +123,32 @@ class StoreBackend:
         self.parent_version = rec.version
         self.saved.append(rec.version)
         return rec.state
+
+    def relearn(self, marks: np.ndarray) -> np.ndarray | None:
+        """The tile's proposal re-fitted on the annotator's marks, or None without a head.
+
+        The newest head, the tile's cached features and its pixels are gathered once per
+        editing session (:func:`labeler.workflow.learning.tile_relearner`); each call then
+        re-fits in well under a second.
+
+        Parameters
+        ----------
+        marks : ndarray, shape (H, W), uint8
+            Class index where marked (weak label, hand corrections), 255 elsewhere.
+
+        Returns
+        -------
+        mask : ndarray, shape (H, W), uint8, or None
+            None when the project has no trained head yet.
+        """
+        if self._no_head:
+            return None
+        if self._relearner is None:
+            self._relearner = tile_relearner(self.project, self.tile_id)
+            if self._relearner is None:
+                self._no_head = True
+                return None
+        return self._relearner(marks)
 
     def save_draft(
         self, mask: np.ndarray, weak_label: np.ndarray, *, actions: int, seconds: float

@@ -63,7 +63,9 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
 
     A tile's newest full mask (accepted, amended, settled or imported) is used; on a
     contested tile only a reviewer's settled mask counts (the annotators' masks are in
-    dispute). Tiles without a full mask use their newest weak label.
+    dispute). Tiles without a full mask use their weak labels: every weak-label save of
+    the tile, by any annotator, merged, the newer save winning where two mark the same
+    pixel.
 
     Parameters
     ----------
@@ -79,9 +81,12 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
     images = {im.id: im for im in store.images()}
     out = []
     newest_full: dict[int, object] = {}
-    newest_weak: dict[int, object] = {}
+    weak: dict[int, list] = {}
     for a in store.annotations(kind=None):  # oldest first: later rows win
-        (newest_full if a.kind == KIND_FULL else newest_weak)[a.tile_id] = a
+        if a.kind == KIND_FULL:
+            newest_full[a.tile_id] = a
+        else:
+            weak.setdefault(a.tile_id, []).append(a)
     for t in store.tiles():
         ann = newest_full.get(t.id)
         if t.state == CONTESTED:
@@ -92,12 +97,16 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
             ]
             ann = settled[-1] if settled else ann
         kind = KIND_FULL
-        if ann is None:
-            ann = newest_weak.get(t.id)
+        if ann is not None:
+            mask = ann.mask()
+        elif t.id in weak:
             kind = KIND_WEAK
-        if ann is None:
+            mask = np.full(t.shape, UNLABELLED, np.uint8)
+            for a in weak[t.id]:  # oldest first: a newer save overwrites where it marks
+                m = a.mask()
+                mask[m != UNLABELLED] = m[m != UNLABELLED]
+        else:
             continue
-        mask = ann.mask()
         if (mask == UNLABELLED).all():
             continue
         out.append(LabelledTile(tile=t, image=images[t.image_id], mask=mask, kind=kind))

@@ -1,4 +1,5 @@
-"""What a project holds (``labeler status``): tiles per state, image and annotator, models."""
+"""What a project holds (``labeler status``): tiles per state, per image and per annotator,
+and the annotation effort per model version (:mod:`labeler.workflow.effort`)."""
 
 from __future__ import annotations
 
@@ -6,6 +7,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from labeler.project import Project
+from labeler.workflow.effort import VersionEffort, effort_by_model
 from labeler.workflow.encoders import ENCODER_KIND, IMAGENET
 from labeler.workflow.features import head_encoder
 
@@ -42,6 +44,9 @@ class ProjectStatus:
         (with the head's own version string when no row of the project holds it).
     newest_encoder : str
         The newest encoder version (what the next retrain uses): a name or ``"imagenet"``.
+    effort : list of VersionEffort
+        Per model version, oldest first: median actions and seconds per saved tile and
+        the share accepted unchanged (:func:`labeler.workflow.effort.effort_by_model`).
     """
 
     folder: Path
@@ -56,6 +61,7 @@ class ProjectStatus:
     proposing_head: str | None = None
     proposing_encoder: str = IMAGENET
     newest_encoder: str = IMAGENET
+    effort: list[VersionEffort] = field(default_factory=list)
 
 
 def project_status(project: Project) -> ProjectStatus:
@@ -103,4 +109,5 @@ def project_status(project: Project) -> ProjectStatus:
         proposing_head=heads[-1].name if heads else None,
         proposing_encoder=proposing_encoder,
         newest_encoder=newest_encoder,
+        effort=effort_by_model(project),
     )

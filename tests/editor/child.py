@@ -74,6 +74,9 @@ class FolderBackend:
     def discard_draft(self) -> None:
         (self.folder / "draft.npz").unlink(missing_ok=True)
 
+    def relearn(self, marks):
+        return None  # no model behind this backend
+
 
 class TracingWindow(HighGuiWindow):
     """The HighGUI window, writing a line per handled event to a trace file (child side).

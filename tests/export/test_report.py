@@ -198,3 +198,22 @@ def test_large_images_are_subsampled_and_reports_replace(tmp_path):
     again = rp.write_agreement_report(summary, tmp_path, schema=DEFAULT_SCHEMA, title="again")
     assert "<title>again</title>" in again.html.read_text(encoding="utf-8")
     assert not math.isnan(summary.images[0].agreement)
+
+
+def test_effort_section_shows_each_model_version(tmp_path):
+    # hand-made rows of the effort figures (labeler.workflow.VersionEffort); common
+    # practice, no source
+    from labeler.workflow import VersionEffort
+
+    summary, _ = build(n_plots=1)
+    rows = [VersionEffort(1, "cold-start", 3, 4.0, 30.0, 1 / 3),
+            VersionEffort(2, "head-1", 2, 1.5, 2.5, 0.5)]
+    text = rp.write_agreement_report(summary, tmp_path / "a", schema=DEFAULT_SCHEMA,
+                                     effort=rows).html.read_text(encoding="utf-8")
+    assert "Annotation effort per model version" in text
+    cells = re.findall(r"<td[^>]*>([^<]*)</td>", text)
+    for row in (["cold-start", "3", "4", "30.0", "33 %"], ["head-1", "2", "1.5", "2.5", "50 %"]):
+        i = cells.index(row[0])
+        assert cells[i:i + 5] == row
+    empty = rp.write_agreement_report(summary, tmp_path / "b", schema=DEFAULT_SCHEMA)
+    assert "No save from a proposal yet." in empty.html.read_text(encoding="utf-8")

@@ -41,3 +41,20 @@ async def test_model_versions_and_trend(project, artefacts):
     for label in (*model_columns(project.settings.classes), "Model versions",
                   "Validation mIoU over versions", "head-3"):
         assert label in svg, label
+
+
+async def test_effort_per_model_version(project):
+    # the hand-made saves of the workflow's effort test (common practice, no source)
+    from tests.workflow.test_effort import record_saves
+
+    ids = record_saves(project)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        await pilot.press("m")
+        await idle(pilot)
+        table = app.screen.query_one("#effort-table", DataTable)
+        rows = [[str(c) for c in table.get_row_at(i)] for i in range(table.row_count)]
+        assert rows == [["cold-start", "3", "4", "30.0", "33 %"],
+                        ["head-1", "2", "1", "2.5", "50 %"]]
+        assert [str(k.value) for k in table.rows] == [str(ids["cold-start"]), str(ids["head-1"])]
