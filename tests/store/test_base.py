@@ -20,11 +20,12 @@ def test_open_unreachable_database_names_the_url(tmp_path):
         Store(url, create=True)
 
 
-def test_tables_and_wal(store):
-    assert store.integrity_check() == "ok"  # SQLite PRAGMA integrity_check
-    with store.engine.connect() as conn:
-        assert conn.exec_driver_sql("PRAGMA journal_mode").scalar() == "wal"
-        assert conn.exec_driver_sql("PRAGMA foreign_keys").scalar() == 1
+def test_tables_and_wal(store, backend):
+    assert store.integrity_check() == "ok"  # SQLite PRAGMA integrity_check; a query on a server
+    if backend == "sqlite":  # the PRAGMAs are SQLite's own
+        with store.engine.connect() as conn:
+            assert conn.exec_driver_sql("PRAGMA journal_mode").scalar() == "wal"
+            assert conn.exec_driver_sql("PRAGMA foreign_keys").scalar() == 1
     tiles = store.tiles()
     assert len(tiles) == 6 and all(t.state == "unseen" for t in tiles)
 
