@@ -16,7 +16,10 @@ import hashlib
 import os
 import shutil
 import tempfile
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
+from typing import BinaryIO
 
 from labeler.errors import InputError, LabelerError
 
@@ -25,6 +28,7 @@ __all__ = [
     "atomic_write_bytes",
     "atomic_write_text",
     "atomic_copy_file",
+    "atomic_writer",
     "remove_marked_folder",
     "sha256_file",
 ]
@@ -197,3 +201,39 @@ def remove_marked_folder(folder: str | os.PathLike[str], *, marker: str) -> None
             "deleted; choose another folder"
         )
     shutil.rmtree(root)
+
+
+@contextmanager
+def atomic_writer(path: str | os.PathLike[str], *, fsync: bool = True) -> Iterator[BinaryIO]:
+    """Write a file piece by piece, atomically: a temporary file beside it, then a rename.
+
+    For content too large to hold in memory at once (:func:`atomic_write_bytes` takes the
+    whole content). The target appears only when the ``with`` block ends without an
+    error; an error or a kill inside it leaves the old file (or none) and the temporary
+    file is removed (a kill leaves it behind, hidden, beside the target).
+
+    Parameters
+    ----------
+    path : path-like
+        Target file; missing parent folders are created.
+    fsync : bool
+        Flush the file to disk before the rename (default).
+
+    Yields
+    ------
+    BinaryIO
+        The open temporary file, for ``write``.
+    """
+    target = Path(path)
+    fd, tmp = _temporary_beside(target, ".tmp")
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            yield fh
+            if fsync:
+                fh.flush()
+                os.fsync(fh.fileno())
+        os.chmod(tmp, file_mode())
+        os.replace(tmp, target)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise

@@ -10,7 +10,11 @@ Sections and options (defaults in brackets):
 ``[store]``
     ``url`` [``sqlite:///<project>/labeler.db``] database URL (SQLAlchemy form).
 ``[tiles]``
-    ``size`` [256] tile edge in pixels; ``overlap`` [32] pixels shared by neighbours.
+    ``size`` [256] tile edge in pixels; ``overlap`` [32] pixels shared by neighbours;
+    ``max_image_px`` [2500000000] largest image (width x height) ``add`` accepts, checked
+    from the file's header before any tile is made (2.5 Gpx: 50000 x 50000, about 50 000
+    tiles, 25 ha at 1 cm per pixel; commands keep a few KB per tile, so memory stays
+    within bounds up to there).
 ``[cold_start]``
     ``exr_coefficient`` [1.4] red weight of ExR (Meyer & Neto 2008; 1.3 is the older
     form); ``threshold`` ["zero"] ``"zero"`` (ExG - ExR > 0) or ``"otsu"``;
@@ -93,8 +97,13 @@ class StoreSettings:
 class TileSettings:
     size: int = 256
     overlap: int = 32
+    max_image_px: int = 2_500_000_000
 
     def __post_init__(self) -> None:
+        if self.max_image_px < 1:
+            raise ValueError(
+                f"tiles.max_image_px: expected at least 1 pixel, got {self.max_image_px}"
+            )
         if self.size < 16:
             raise ValueError(f"tiles.size: expected at least 16 pixels, got {self.size}")
         if not 0 <= self.overlap < self.size:
@@ -352,6 +361,7 @@ def default_settings_text() -> str:
 [tiles]
 size = 256
 overlap = 32
+max_image_px = 2_500_000_000   # largest image add accepts (width x height)
 
 [cold_start]
 exr_coefficient = 1.4     # Meyer & Neto 2008; 1.3 is the older form

@@ -2,19 +2,23 @@
 
 ``unseen`` (no proposal) -> ``proposed`` (a model version proposed a mask) -> ``held``
 (an annotator has it open) -> ``accepted`` (proposal kept unchanged) or ``amended``
-(corrected) -> optionally ``contested`` (annotators disagree beyond the project's
-threshold) -> ``settled`` (a reviewer decided). ``parked`` = set aside by an annotator.
+(corrected) or ``imported`` (a mask brought in from elsewhere by ``labeler import``) ->
+optionally ``contested`` (annotators disagree beyond the project's threshold) ->
+``settled`` (a reviewer decided). ``parked`` = set aside by an annotator.
 
 The allowed moves are the table ``_MOVES`` below; :func:`check_move` is the one
 life-cycle check, applied by the store to every change of a tile's state (see
-:func:`labeler.store.holds.checked_move`). A mask brought in by ``labeler import`` is
-recorded as an ``imported`` annotation and leaves its tile ``amended``.
+:func:`labeler.store.holds.checked_move`). A full mask brought in by ``labeler import``
+is recorded as an ``imported`` annotation and leaves its tile ``imported`` (a saved
+state like ``accepted`` and ``amended``); ``weak`` (a weak-label save) leaves the
+tile's state as it is. A ``contested`` tile takes no import (a reviewer settles it
+first); a ``settled`` one may be moved to ``imported`` (the workflow does so only when
+the import is asked to replace reviewed work).
 
 Annotations also carry codes of their own, stored in the database as written here:
-their state (the tile states above that a save records, plus :data:`IMPORTED` and
-:data:`WEAK`) and their kind (:data:`KIND_FULL`, a whole mask, or :data:`KIND_WEAK`, a
-weak label: a class index where marked, 255 elsewhere). Code uses these constants, never
-the string codes.
+their state (the tile states above that a save records, plus :data:`WEAK`) and their
+kind (:data:`KIND_FULL`, a whole mask, or :data:`KIND_WEAK`, a weak label: a class index
+where marked, 255 elsewhere). Code uses these constants, never the string codes.
 """
 
 from __future__ import annotations
@@ -25,10 +29,10 @@ __all__ = [
     "HELD",
     "ACCEPTED",
     "AMENDED",
+    "IMPORTED",
     "CONTESTED",
     "SETTLED",
     "PARKED",
-    "IMPORTED",
     "WEAK",
     "KIND_FULL",
     "KIND_WEAK",
@@ -45,21 +49,20 @@ PROPOSED = "proposed"
 HELD = "held"
 ACCEPTED = "accepted"
 AMENDED = "amended"
+IMPORTED = "imported"
 CONTESTED = "contested"
 SETTLED = "settled"
 PARKED = "parked"
 
 #: Every tile state, in life-cycle order.
-STATES = (UNSEEN, PROPOSED, HELD, ACCEPTED, AMENDED, CONTESTED, SETTLED, PARKED)
+STATES = (UNSEEN, PROPOSED, HELD, ACCEPTED, AMENDED, IMPORTED, CONTESTED, SETTLED, PARKED)
 #: States of a tile that has a saved full mask.
-SAVED_STATES = (ACCEPTED, AMENDED, CONTESTED, SETTLED)
+SAVED_STATES = (ACCEPTED, AMENDED, IMPORTED, CONTESTED, SETTLED)
 
-#: Annotation state of a mask read from a file by ``labeler import``.
-IMPORTED = "imported"
 #: Annotation state of a weak label (a save of a weak label, or an import with unlabelled
 #: pixels).
 WEAK = "weak"
-#: States an annotation row records.
+#: States an annotation row records (``imported`` = read from a file by ``labeler import``).
 ANNOTATION_STATES = (ACCEPTED, AMENDED, SETTLED, IMPORTED, WEAK)
 
 #: Annotation kind of a whole mask (every pixel has a class).
@@ -72,14 +75,15 @@ KIND_WEAK = "scribble"
 ANNOTATION_KINDS = (KIND_FULL, KIND_WEAK)
 
 _MOVES: dict[str, frozenset[str]] = {
-    UNSEEN: frozenset({PROPOSED, HELD, ACCEPTED, AMENDED, PARKED, CONTESTED}),
-    PROPOSED: frozenset({PROPOSED, HELD, ACCEPTED, AMENDED, PARKED, CONTESTED}),
-    HELD: frozenset({PROPOSED, UNSEEN, HELD, ACCEPTED, AMENDED, PARKED, CONTESTED}),
-    ACCEPTED: frozenset({HELD, ACCEPTED, AMENDED, CONTESTED, SETTLED, PROPOSED}),
-    AMENDED: frozenset({HELD, ACCEPTED, AMENDED, CONTESTED, SETTLED, PROPOSED}),
+    UNSEEN: frozenset({PROPOSED, HELD, ACCEPTED, AMENDED, IMPORTED, PARKED, CONTESTED}),
+    PROPOSED: frozenset({PROPOSED, HELD, ACCEPTED, AMENDED, IMPORTED, PARKED, CONTESTED}),
+    HELD: frozenset({PROPOSED, UNSEEN, HELD, ACCEPTED, AMENDED, IMPORTED, PARKED, CONTESTED}),
+    ACCEPTED: frozenset({HELD, ACCEPTED, AMENDED, IMPORTED, CONTESTED, SETTLED, PROPOSED}),
+    AMENDED: frozenset({HELD, ACCEPTED, AMENDED, IMPORTED, CONTESTED, SETTLED, PROPOSED}),
+    IMPORTED: frozenset({HELD, ACCEPTED, AMENDED, IMPORTED, CONTESTED, SETTLED, PROPOSED}),
     CONTESTED: frozenset({SETTLED, CONTESTED, HELD}),
-    SETTLED: frozenset({HELD, AMENDED, ACCEPTED, CONTESTED, SETTLED}),
-    PARKED: frozenset({HELD, PROPOSED, ACCEPTED, AMENDED, PARKED, UNSEEN}),
+    SETTLED: frozenset({HELD, AMENDED, ACCEPTED, IMPORTED, CONTESTED, SETTLED}),
+    PARKED: frozenset({HELD, PROPOSED, ACCEPTED, AMENDED, IMPORTED, PARKED, UNSEEN}),
 }
 
 

@@ -1,9 +1,10 @@
 """The tile life cycle: every allowed and every refused move, against a table written here.
 
 The table below is written out by hand from the project's tile life cycle (the module
-docstring of ``labeler/states.py``: unseen -> proposed -> held -> accepted or amended ->
-optionally contested -> settled; parked = set aside), not read from ``labeler.states``,
-so a change of the code's table fails here until the design is changed on purpose.
+docstring of ``labeler/states.py``: unseen -> proposed -> held -> accepted, amended or
+imported -> optionally contested -> settled; parked = set aside), not read from
+``labeler.states``, so a change of the code's table fails here until the design is
+changed on purpose.
 """
 
 from __future__ import annotations
@@ -17,29 +18,36 @@ from labeler import states
 from labeler.states import can_move, check_move
 
 # Columns and rows in life-cycle order. "Y" = allowed, "." = refused. Why each row is so:
-# - unseen:    a proposal, a hold, a save from scratch (accepted/amended), parking, or an
-#              overlap tile found contested; nothing settles a tile nobody saved.
+# - unseen:    a proposal, a hold, a save from scratch (accepted/amended) or an import,
+#              parking, or an overlap tile found contested; nothing settles a tile
+#              nobody saved.
 # - proposed:  as unseen (a new proposal of a proposed tile keeps it proposed); it never
 #              goes back to unseen (its proposal stays).
 # - held:      released back to proposed/unseen, saved, parked, found contested; a
 #              reviewer settles only a saved tile.
-# - accepted,  re-held, re-saved, found contested, settled, or reset to proposed; never
-#   amended:   back to unseen and never parked (saved work is not set aside).
-# - contested: only a reviewer's hold or decision (settled); no plain save.
-# - settled:   re-opened, re-saved (a later correction or an import), contested again,
-#              settled again; never back to unseen/proposed/parked.
+# - accepted,  re-held, re-saved or re-imported, found contested, settled, or reset to
+#   amended,   proposed; never back to unseen and never parked (saved work is not set
+#   imported:  aside).
+# - contested: only a reviewer's hold or decision (settled); no plain save, no import.
+# - settled:   re-opened, re-saved (a later correction, or an import asked to replace
+#              reviewed work), contested again, settled again; never back to
+#              unseen/proposed/parked.
 # - parked:    returns to the queue (held, proposed, unseen) or is saved; nothing
 #              contests or settles a parked tile directly.
-COLUMNS = ("unseen", "proposed", "held", "accepted", "amended", "contested", "settled", "parked")
+COLUMNS = (
+    "unseen", "proposed", "held", "accepted", "amended", "imported", "contested", "settled",
+    "parked",
+)
 TABLE = """
-unseen     .  Y  Y  Y  Y  Y  .  Y
-proposed   .  Y  Y  Y  Y  Y  .  Y
-held       Y  Y  Y  Y  Y  Y  .  Y
-accepted   .  Y  Y  Y  Y  Y  Y  .
-amended    .  Y  Y  Y  Y  Y  Y  .
-contested  .  .  Y  .  .  Y  Y  .
-settled    .  .  Y  Y  Y  Y  Y  .
-parked     Y  Y  Y  Y  Y  .  .  Y
+unseen     .  Y  Y  Y  Y  Y  Y  .  Y
+proposed   .  Y  Y  Y  Y  Y  Y  .  Y
+held       Y  Y  Y  Y  Y  Y  Y  .  Y
+accepted   .  Y  Y  Y  Y  Y  Y  Y  .
+amended    .  Y  Y  Y  Y  Y  Y  Y  .
+imported   .  Y  Y  Y  Y  Y  Y  Y  .
+contested  .  .  Y  .  .  .  Y  Y  .
+settled    .  .  Y  Y  Y  Y  Y  Y  .
+parked     Y  Y  Y  Y  Y  Y  .  .  Y
 """
 
 
@@ -61,7 +69,7 @@ REFUSED = sorted(k for k, v in EXPECTED.items() if not v)
 def test_table_covers_every_pair_of_states():
     assert tuple(states.STATES) == COLUMNS  # life-cycle order
     assert set(EXPECTED) == set(itertools.product(COLUMNS, COLUMNS))
-    assert (len(ALLOWED), len(REFUSED)) == (45, 19)  # counted from the table above
+    assert (len(ALLOWED), len(REFUSED)) == (59, 22)  # counted from the table above
 
 
 @pytest.mark.parametrize(("state_from", "state_to"), ALLOWED)
@@ -87,8 +95,7 @@ def test_refused_move(state_from, state_to):
     [
         ("done", "held", "done"),
         ("held", "done", "done"),
-        ("imported", "amended", "imported"),  # an annotation state, not a tile state
-        ("weak", "held", "weak"),
+        ("weak", "held", "weak"),  # an annotation state, not a tile state
         ("Held", "held", "Held"),  # names are exact
         ("", "held", ""),
     ],
@@ -105,7 +112,7 @@ def test_default_tile_name_in_message():
 
 
 def test_state_groups():
-    assert states.SAVED_STATES == ("accepted", "amended", "contested", "settled")
+    assert states.SAVED_STATES == ("accepted", "amended", "imported", "contested", "settled")
     assert set(states.SAVED_STATES) <= set(states.STATES)
     assert states.ANNOTATION_STATES == ("accepted", "amended", "settled", "imported", "weak")
     assert states.ANNOTATION_KINDS == ("full", "scribble")
@@ -117,6 +124,17 @@ def test_state_groups():
     # the constants are the names of the table
     named = [getattr(states, n.upper()) for n in COLUMNS]
     assert named == list(COLUMNS)
+
+
+def test_imported_is_a_saved_state_between_amended_and_contested():
+    # DESIGN section 3: accepted or amended or imported, then optionally contested
+    order = list(states.STATES)
+    assert order.index("amended") + 1 == order.index("imported") == order.index("contested") - 1
+    assert "imported" in states.SAVED_STATES and "imported" in states.ANNOTATION_STATES
+    # an import never lands on a tile waiting for a reviewer
+    assert not can_move("contested", "imported")
+    with pytest.raises(ValueError, match="^tile 3: cannot move from 'contested' to 'imported'"):
+        check_move("contested", "imported", tile="tile 3")
 
 
 def test_settled_is_reached_only_from_a_saved_state():

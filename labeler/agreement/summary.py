@@ -41,6 +41,9 @@ __all__ = ["summarise_agreement"]
 Pair = tuple[str, str]
 Window = tuple[int, int, int, int]
 
+#: Pixels of one strip when masks are compared (4 Mpx: a few MB per annotator).
+_STRIP_PX = 1 << 22
+
 
 # ---------------------------------------------------------------------------------------
 # checks of one compared image
@@ -73,11 +76,17 @@ def _checked_item(item: object, schema: ClassSchema) -> tuple[tuple[str, ...], d
         )
     shape = None
     for name in names:
-        mask = np.asarray(item.masks[name])
-        schema.check_mask(mask, name=f"{item.image}: mask of {name}")
+        mask = item.masks[name]
+        if isinstance(mask, np.ndarray) or not hasattr(mask, "shape"):
+            mask = np.asarray(mask)
+            schema.check_mask(mask, name=f"{item.image}: mask of {name}")
+        elif len(mask.shape) != 2:
+            raise ValueError(
+                f"{item.image}: mask of {name} has shape {mask.shape}, expected (H, W)"
+            )
         if shape is None:
-            shape = mask.shape
-        elif mask.shape != shape:
+            shape = tuple(mask.shape)
+        elif tuple(mask.shape) != shape:
             raise ValueError(
                 f"{item.image}: mask of {name} has shape {mask.shape}, expected {shape} "
                 "like the other annotators'; pass stitched masks of the same image"
@@ -170,22 +179,35 @@ class _Pooled:
         self.day_count[day] = self.day_count.get(day, 0) + 1
 
 
+def _strip_rows(shape: tuple[int, int]) -> list[tuple[int, int]]:
+    """Row ranges of the strips an image's masks are compared in (bounded memory)."""
+    height, width = shape
+    step = max(1, _STRIP_PX // max(1, width))
+    return [(r, min(height, r + step)) for r in range(0, height, step)]
+
+
 def _image_figures(
     item: ComparedImage,
     names: tuple[str, ...],
     windows: dict[str, Window],
     *,
+    schema: ClassSchema,
     pooled: _Pooled,
     metric: str,
     since: date | datetime | None,
 ) -> ImageFigures:
-    """Compare every annotator pair of one image, adding to ``pooled`` as it goes."""
+    """Compare every annotator pair of one image, adding to ``pooled`` as it goes.
+
+    The masks are read and compared strip by strip (:data:`_STRIP_PX` pixels), so an
+    image's masks are never held whole; confusion matrices add up over the strips.
+    """
     k = pooled.k
     image_cm = np.zeros((k, k), np.int64)
     tile_cm = {t: np.zeros((k, k), np.int64) for t in windows}
     worst: Pair | None = None
     worst_value = math.nan
     last = None
+    compared: list[tuple[Pair, datetime]] = []
     for a, b in itertools.combinations(names, 2):
         key = (a, b)
         pooled.list_pair(key)
@@ -193,8 +215,33 @@ def _image_figures(
         if not _on_or_after(later, since, item.image):
             continue
         last = later if last is None else _later(last, later, item.image)
-        ma, mb = np.asarray(item.masks[a]), np.asarray(item.masks[b])
-        cm = confusion_matrix(ma, mb, n_classes=k)
+        compared.append((key, later))
+    pair_cm = {key: np.zeros((k, k), np.int64) for key, _ in compared}
+    tile_ids = list(windows)
+    boxes = np.array([windows[t] for t in tile_ids], np.int64).reshape(-1, 4)
+    wanted = sorted({n for key, _ in compared for n in key})
+    shape = tuple(item.masks[names[0]].shape) if names else (0, 0)
+    for r0, r1 in _strip_rows(shape) if compared else ():
+        rows = {}
+        for n in wanted:
+            part = np.asarray(item.masks[n][r0:r1])
+            if part.shape != (r1 - r0, shape[1]):
+                raise ValueError(
+                    f"{item.image}: mask of {n} rows {r0}..{r1} read as shape {part.shape}, "
+                    f"expected {(r1 - r0, shape[1])}"
+                )
+            schema.check_mask(part, name=f"{item.image}: mask of {n}")
+            rows[n] = part
+        hit = np.flatnonzero((boxes[:, 0] < r1) & (boxes[:, 0] + boxes[:, 2] > r0))
+        for key, _ in compared:
+            ma, mb = rows[key[0]], rows[key[1]]
+            pair_cm[key] += confusion_matrix(ma, mb, n_classes=k)
+            for j in hit:
+                tr, tc, th, tw = (int(v) for v in boxes[j])
+                sl = (slice(max(tr, r0) - r0, min(tr + th, r1) - r0), slice(tc, tc + tw))
+                tile_cm[tile_ids[j]] += confusion_matrix(ma[sl], mb[sl], n_classes=k)
+    for key, later in compared:
+        cm = pair_cm[key]
         if cm.sum() == 0:
             continue
         pooled.add(key, later.date(), cm)
@@ -202,9 +249,6 @@ def _image_figures(
         value = _scalar(cm, metric)[0]
         if worst is None or (not math.isnan(value) and not value >= worst_value):
             worst, worst_value = key, value
-        for t, (r0, c0, hh, ww) in windows.items():
-            sl = (slice(r0, r0 + hh), slice(c0, c0 + ww))
-            tile_cm[t] += confusion_matrix(ma[sl], mb[sl], n_classes=k)
     agreement, kappa, miou = _scalar(image_cm, metric)
     if last is None:
         saves = [item.saved_at[n] for n in names]
@@ -283,6 +327,8 @@ def summarise_agreement(
     items : sequence of ComparedImage
         Images with two or more annotators' stitched masks, each (H, W) uint8 (images
         with fewer annotators are listed with ``nan`` agreement and contribute nothing).
+        A mask may be an array or any object with ``shape`` whose ``mask[r0:r1]``
+        returns rows (e.g. a lazily stitched mask): masks are compared strip by strip.
     schema : ClassSchema
         Label schema; masks are checked against it and K = ``schema.n_values``.
     metric : {"kappa", "iou"}
@@ -326,7 +372,9 @@ def summarise_agreement(
     for done, item in enumerate(items, start=1):
         names, windows = _checked_item(item, schema)
         images.append(
-            _image_figures(item, names, windows, pooled=pooled, metric=metric, since=since)
+            _image_figures(
+                item, names, windows, schema=schema, pooled=pooled, metric=metric, since=since
+            )
         )
         if progress is not None:
             progress(done, total)

@@ -185,7 +185,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument(
         "--states",
-        default="accepted,amended,settled",
+        default="accepted,amended,imported,settled",
         help="tile states whose masks are exported (default: %(default)s)",
     )
     p.add_argument(
@@ -209,9 +209,12 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "import",
         help="read PNG class masks or GeoJSON polygons as annotations",
-        description="Import masks made elsewhere as annotations of a named annotator. A mask file is "
-        "matched to its image by name (<image>.png, <image>_mask.png, <image>_annotation.png, "
-        "<image>.geojson) or by --image. Nothing is imported when any file has a problem.",
+        description="Import masks made elsewhere as saves of a named annotator, tile by tile. A mask "
+        "file is matched to its image by name (<image>.png, <image>_mask.png, "
+        "<image>_annotation.png, <image>.geojson) or by --image. Reviewed work (tiles a reviewer "
+        "settled, masks another annotator saved) is skipped and listed unless --replace is given; "
+        "contested tiles and tiles saved by someone else while the import runs are always "
+        "skipped. Nothing is imported when any file has a problem.",
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
     p.add_argument("files", metavar="FILE", nargs="+", help="PNG or GeoJSON mask files")
@@ -222,6 +225,12 @@ def build_parser() -> argparse.ArgumentParser:
         choices=("unlabelled", "soil"),
         default="unlabelled",
         help="GeoJSON: pixels outside every polygon are unlabelled (default) or soil",
+    )
+    p.add_argument(
+        "--replace",
+        action="store_true",
+        help="also replace reviewed work (settled tiles, other annotators' masks); the "
+        "replaced versions stay in the history",
     )
     p.set_defaults(func=cmd_import)
 

@@ -323,14 +323,11 @@ def cmd_import(args) -> int:
             annotator=args.annotator,
             image=args.image,
             fill=args.fill,
+            replace=args.replace,
             progress=bar,
         )
-    for path, name in result.files:
-        print(f"{path} -> image {name}")
-    print(
-        f"imported {result.full_tiles} full masks and {result.weak_tiles} weak labels "
-        f"as {args.annotator}; {result.empty_tiles} tiles not covered"
-    )
+    for line in result.summary_lines():
+        print(line)
     return 0
 
 

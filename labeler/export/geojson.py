@@ -48,8 +48,8 @@ from __future__ import annotations
 import json
 import os
 import warnings
-from collections.abc import Callable, Iterable, Mapping, Sequence
-from dataclasses import dataclass
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -70,14 +70,17 @@ from labeler.export.crs import (
 )
 from labeler.export.geometry import encode_geometries
 from labeler.fileio import atomic_write_bytes
-from labeler.imagery.tiling import Window, owner_map
-from labeler.masks.polygons import Region, mask_to_polygons
+from labeler.imagery.tiling import TileLayout, Window
+from labeler.masks.strip_outlines import OutlinedRegion, outline_strips
 from labeler.states import STATES
 
 __all__ = [
     "COORDINATES_MEMBER",
     "NotRFC7946Warning",
     "TileInfo",
+    "FEATURE_BATCH",
+    "ImageFeatures",
+    "image_features",
     "image_feature_collection",
     "merge_feature_collections",
     "write_geojson",
@@ -86,6 +89,8 @@ __all__ = [
 
 #: Top-level member that marks a file in pixel coordinates (not RFC 7946).
 COORDINATES_MEMBER = "labeler:coordinates"
+#: Regions turned into Feature dicts at once when features are made in batches.
+FEATURE_BATCH = 10_000
 _SOURCES = ("annotation", "proposal")
 
 
@@ -193,8 +198,33 @@ def _tile_properties(infos: Sequence[TileInfo], default_source: str) -> dict:
     }
 
 
-def image_feature_collection(
-    mask: np.ndarray,
+@dataclass(frozen=True, eq=False)
+class ImageFeatures:
+    """The features of one image, made batch by batch (see :func:`image_features`).
+
+    Attributes
+    ----------
+    regions : list of OutlinedRegion
+        The outlined regions (pixel coordinates), one feature each, in feature order.
+    pixel_coordinates : bool
+        Whether the features are in pixel coordinates (not RFC 7946).
+    """
+
+    regions: list[OutlinedRegion]
+    pixel_coordinates: bool
+    make: Callable[[Sequence[OutlinedRegion]], list[dict]] = field(repr=False)
+
+    def __len__(self) -> int:
+        return len(self.regions)
+
+    def batches(self, size: int = FEATURE_BATCH) -> Iterator[list[dict]]:
+        """The GeoJSON Feature dicts, ``size`` regions at a time, in order."""
+        for a in range(0, len(self.regions), max(1, int(size))):
+            yield self.make(self.regions[a : a + size])
+
+
+def image_features(
+    mask,
     *,
     image: str,
     transform: Affine | None = None,
@@ -211,14 +241,20 @@ def image_feature_collection(
     smooth: bool = False,
     progress: Callable[[int, int], None] | None = None,
 ) -> dict:
-    """One image's class mask as a GeoJSON FeatureCollection (see module docstring).
+    """One image's class mask as GeoJSON Features (see module docstring), made in batches.
+
+    The regions are outlined here (strip by strip for a mask read by rows); each
+    batch's features (reprojected, rounded, with their properties) are made only when
+    :meth:`ImageFeatures.batches` reaches it, so a writer can stream them to a file.
 
     Parameters
     ----------
-    mask : ndarray, shape (H, W), uint8
-        The stitched image mask (tile seams already merged by
-        :func:`labeler.imagery.tiling.stitch`, so a region cut by a tile border is one
-        region here). Values are schema indices or 255.
+    mask : ndarray, shape (H, W), uint8, or a raster read by rows
+        The stitched image mask (tile seams already merged, so a region cut by a tile
+        border is one region here), as an array or as a
+        :class:`labeler.imagery.tiling.StitchedMask` that is stitched strip by strip
+        while it is outlined (:func:`labeler.masks.strip_outlines.outline_strips`: a big
+        image is never held whole). Values are schema indices or 255.
     image : str
         Image name, stored in each feature's ``image`` property and its ``id``.
     transform : affine.Affine or None
@@ -243,12 +279,12 @@ def image_feature_collection(
         Passed to :func:`labeler.masks.polygons.mask_to_polygons` (``smooth=True`` cuts
         staircase corners before simplifying: fewer vertices, not pixel-exact).
     progress : callable(done, total) or None
-        Called after each class.
+        Called after each strip of the mask with the rows outlined and the height.
 
     Returns
     -------
-    collection : dict
-        A FeatureCollection with ``bbox`` (absent when there is no feature).
+    ImageFeatures
+        The regions and the maker of their features.
 
     Raises
     ------
@@ -257,13 +293,16 @@ def image_feature_collection(
     ValueError
         Bad mask, classes, windows or tiles.
     """
-    m = np.asarray(mask)
-    schema.check_mask(m, name="mask")
+    m = mask
+    if isinstance(m, np.ndarray) or not hasattr(m, "shape"):
+        m = np.asarray(m)
+        schema.check_mask(m, name="mask")
+    shape = (int(m.shape[0]), int(m.shape[1]))
     if not isinstance(image, str) or not image:
         raise ValueError(f"image: expected a non-empty image name, got {image!r}")
     if source not in _SOURCES:
         raise ValueError(f"source: expected 'annotation' or 'proposal', got {source!r}")
-    _check_windows(windows, tiles, m.shape)
+    _check_windows(windows, tiles, shape)
     if classes is None:
         wanted = [c.index for c in schema.classes if c.index != 0]
     else:
@@ -291,87 +330,104 @@ def image_feature_collection(
             "or pass pixel_coordinates=True for a pixel-coordinate file (not RFC 7946)"
         )
 
-    regions: list[Region] = []
-    for k, ci in enumerate(wanted):
-        regions.extend(
-            mask_to_polygons(
-                m,
-                class_index=ci,
-                simplify_tolerance_px=simplify_tolerance_px,
-                min_area_px=min_area_px,
-                connectivity=connectivity,
-                smooth=smooth,
-            )
-        )
-        if progress is not None:
-            progress(k + 1, len(wanted))
+    layout = TileLayout(windows, shape=shape) if windows else None
+    regions = outline_strips(
+        m,
+        class_indices=wanted,
+        owner=None if layout is None else layout.owner,
+        simplify_tolerance_px=simplify_tolerance_px,
+        min_area_px=min_area_px,
+        connectivity=connectivity,
+        smooth=smooth,
+        check=None
+        if isinstance(m, np.ndarray)
+        else lambda part, w: schema.check_mask(part, name=f"mask rows {w.row}..{w.row + w.height}"),
+        progress=progress,
+    )
 
-    geoms = np.empty(len(regions), dtype=object)
-    geoms[:] = [r.geometry for r in regions]
-    area_m2: np.ndarray | None = None
     if pixel_coordinates:
         decimals = coordinate_decimals(None, pixel=True)
-        out_geoms = geoms
+        src = centre = None
     else:
         src = as_crs(crs)
-        decimals = coordinate_decimals(ground_sampling_distance(transform, src, shape=m.shape))
-        mapped = shapely.transform(geoms, affine_mapper(transform))
-        lonlat = shapely.transform(mapped, reprojector(src, WGS84))
-        if src.is_projected:
-            unit = float(src.linear_units_factor[1])
-            area_m2 = shapely.area(mapped) * unit * unit
-        else:
+        decimals = coordinate_decimals(ground_sampling_distance(transform, src, shape=shape))
+        centre = None
+        if not src.is_projected:  # areas in a local equal-area projection at the centre
             centre = reprojector(src, WGS84)(
-                affine_mapper(transform)(np.array([[m.shape[1] / 2.0, m.shape[0] / 2.0]]))
+                affine_mapper(transform)(np.array([[shape[1] / 2.0, shape[0] / 2.0]]))
             )[0]
-            local = shapely.transform(
-                lonlat, reprojector(WGS84, local_equal_area(*centre))
-            )
-            area_m2 = shapely.area(local)
-        out_geoms = lonlat
-
-    geometries, boxes = encode_geometries(out_geoms, decimals=decimals, orient=True)
-    owner = owner_map(windows, shape=m.shape) if windows else None
-    tile_props: dict[tuple[int, ...], dict] = {}  # the same tile set recurs: build once
     names = {c.index: c.name for c in schema.classes}
-    features = []
-    for k, region in enumerate(regions):
-        touched: tuple[int, ...] = ()
-        if owner is not None:
-            ids = np.unique(owner[region.window.slices][region.pixels])
-            touched = tuple(int(i) for i in ids if i >= 0)
-        props = tile_props.get(touched)
-        if props is None:
-            props = tile_props[touched] = _tile_properties(
-                [tiles[i] for i in touched] if tiles is not None else [], source
+    tile_props: dict[tuple[int, ...], dict] = {}  # the same tile set recurs: build once
+
+    def make(batch: Sequence[OutlinedRegion]) -> list[dict]:
+        geoms = shapely.from_wkb(np.asarray([r.wkb for r in batch], dtype=object))
+        area_m2: np.ndarray | None = None
+        if src is None:
+            out_geoms = geoms
+        else:
+            mapped = shapely.transform(geoms, affine_mapper(transform))
+            out_geoms = shapely.transform(mapped, reprojector(src, WGS84))
+            if centre is None:
+                unit = float(src.linear_units_factor[1])
+                area_m2 = shapely.area(mapped) * unit * unit
+            else:
+                local = shapely.transform(out_geoms, reprojector(WGS84, local_equal_area(*centre)))
+                area_m2 = shapely.area(local)
+        geometries, boxes = encode_geometries(out_geoms, decimals=decimals, orient=True)
+        features = []
+        for k, region in enumerate(batch):
+            touched = tuple(i for i in region.owners if i >= 0)
+            props = tile_props.get(touched)
+            if props is None:
+                props = tile_props[touched] = _tile_properties(
+                    [tiles[i] for i in touched] if tiles is not None else [], source
+                )
+            name = names[region.class_index]
+            features.append(
+                {
+                    "type": "Feature",
+                    "id": f"{image}:{name}:{region.label}",
+                    "bbox": boxes[k].tolist(),
+                    "geometry": geometries[k],
+                    "properties": {
+                        "class": name,
+                        "class_index": region.class_index,
+                        "image": image,
+                        "tiles": list(props["tiles"]),
+                        "annotators": list(props["annotators"]),
+                        "states": list(props["states"]),
+                        "model_version": (
+                            list(props["model_version"])
+                            if isinstance(props["model_version"], list)
+                            else props["model_version"]
+                        ),
+                        "source": props["source"],
+                        "area_m2": None if area_m2 is None else float(f"{area_m2[k]:.12g}"),
+                        "area_px": region.area_px,
+                    },
+                }
             )
-        name = names[region.class_index]
-        features.append(
-            {
-                "type": "Feature",
-                "id": f"{image}:{name}:{region.label}",
-                "bbox": boxes[k].tolist(),
-                "geometry": geometries[k],
-                "properties": {
-                    "class": name,
-                    "class_index": region.class_index,
-                    "image": image,
-                    "tiles": list(props["tiles"]),
-                    "annotators": list(props["annotators"]),
-                    "states": list(props["states"]),
-                    "model_version": (
-                        list(props["model_version"])
-                        if isinstance(props["model_version"], list)
-                        else props["model_version"]
-                    ),
-                    "source": props["source"],
-                    "area_m2": None if area_m2 is None else float(f"{area_m2[k]:.12g}"),
-                    "area_px": region.area_px,
-                },
-            }
-        )
+        return features
+
+    return ImageFeatures(regions=regions, pixel_coordinates=pixel_coordinates, make=make)
+
+
+def image_feature_collection(mask, **options) -> dict:
+    """One image's class mask as a GeoJSON FeatureCollection (see module docstring).
+
+    Takes the arguments of :func:`image_features` and holds every feature at once; for
+    a big image write the batches of :func:`image_features` to a
+    :class:`~labeler.export.geojson_stream.FeatureCollectionWriter` instead.
+
+    Returns
+    -------
+    collection : dict
+        A FeatureCollection with ``bbox`` (absent when there is no feature).
+    """
+    made = image_features(mask, **options)
+    features = [f for batch in made.batches() for f in batch]
     collection: dict = {"type": "FeatureCollection"}
-    if pixel_coordinates:
+    if made.pixel_coordinates:
         collection[COORDINATES_MEMBER] = "pixel"
     box = _collection_bbox(features)
     if box is not None:

@@ -26,11 +26,15 @@ PNG class masks (:func:`labeler.export.png_import.read_png_mask`)
     whose grey values a ``values`` table maps to classes. RGB (or fully opaque RGBA)
     PNGs are read only with a ``colours`` table mapping every colour present to a class.
     Palette PNGs are read by their palette INDEX (the common convention of segmentation
-    datasets), or by colour when a ``colours`` table is given. 16-bit PNGs are accepted
-    when every value is a valid 8-bit class value, refused otherwise.
+    datasets), or by colour when a ``colours`` table is given. 16-bit grey PNGs are
+    accepted when every value is a valid 8-bit class value, refused otherwise.
 
-Every problem raises :class:`labeler.errors.MaskImportError` naming the file and the problem; nothing
-partial is returned.
+Both are read a band of rows at a time (:func:`open_mask_file` gives a
+:class:`labeler.export.mask_files.MaskSource`), so an orthomosaic-sized mask is never
+held whole; :func:`read_mask_file` reads a whole (small) mask at once.
+
+Every problem raises :class:`labeler.errors.MaskImportError` naming the file and the
+problem; nothing partial is returned.
 
 Caution: imported masks are used for training and for field maps; where such a map
 drives spraying or fungicide decisions, local regulations and licensed agronomic advice
@@ -39,9 +43,8 @@ come first.
 
 from __future__ import annotations
 
-import difflib
 import os
-from collections.abc import Iterable, Mapping
+from collections.abc import Mapping
 from pathlib import Path
 
 import numpy as np
@@ -50,74 +53,82 @@ from rasterio.crs import CRS
 
 from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
 from labeler.errors import MaskImportError
-from labeler.export.geojson_import import read_geojson_mask
-from labeler.export.png_import import read_png_mask
+from labeler.export.geojson_import import open_geojson_mask
+from labeler.export.mask_files import (
+    MASK_FILE_EXTENSIONS,
+    MASK_NAME_SUFFIXES,
+    MaskSource,
+    check_mask_path,
+    match_mask_to_image,
+)
+from labeler.export.png_import import PngMaskReader
 
 __all__ = [
     "MASK_NAME_SUFFIXES",
     "MASK_FILE_EXTENSIONS",
+    "MaskSource",
+    "check_mask_path",
     "match_mask_to_image",
+    "open_mask_file",
     "read_mask_file",
 ]
 
-#: Name endings that tie a mask file to the image ``<stem>``: ``<stem>.png``,
-#: ``<stem>_mask.png``, ``<stem>_annotation.png`` (and the same with ``.geojson``).
-MASK_NAME_SUFFIXES = ("", "_mask", "_annotation")
-#: File extensions read as masks.
-MASK_FILE_EXTENSIONS = (".png", ".geojson", ".json")
 
+def open_mask_file(
+    path: str | os.PathLike[str],
+    *,
+    shape: tuple[int, int],
+    transform: Affine | None = None,
+    crs: CRS | str | None = None,
+    schema: ClassSchema = DEFAULT_SCHEMA,
+    fill: int = UNLABELLED,
+    image: str | None = None,
+    colours: Mapping[tuple[int, int, int], int] | None = None,
+    values: Mapping[int, int] | None = None,
+) -> MaskSource:
+    """Open a ``.png`` mask or a ``.geojson``/``.json`` polygon file by its extension.
 
-def match_mask_to_image(mask_path: str | os.PathLike[str], image_stems: Iterable[str]) -> str:
-    """The image a mask file belongs to, by name.
-
-    ``<stem>.png``, ``<stem>_mask.png`` and ``<stem>_annotation.png`` (or ``.geojson`` /
-    ``.json``) belong to the image ``<stem>``.
+    The path, the file's header (PNG) or whole content (GeoJSON, every feature) are
+    checked here; PNG pixel values are checked as rows are read.
 
     Parameters
     ----------
-    mask_path : path
-        The mask file (only its name is used).
-    image_stems : iterable of str
-        File names of the project's images without extension.
+    path : path-like
+        The mask file.
+    shape : (int, int)
+        ``(height, width)`` of its image.
+    transform, crs
+        The image's georeferencing (GeoJSON in longitude/latitude needs it).
+    schema : ClassSchema
+    fill : int
+        GeoJSON: value of pixels no polygon covers (255 unlabelled, or 0 soil).
+    image : str, optional
+        GeoJSON: keep the features of this image.
+    colours, values : mapping, optional
+        PNG: colour and grey-value tables (see :mod:`labeler.export.png_import`).
 
     Returns
     -------
-    stem : str
+    MaskSource
+        Read it with ``read_rows(start, stop)``, top to bottom; close it after use.
 
     Raises
     ------
     MaskImportError
-        When no image or more than one image matches; the message lists the candidates.
+        Naming the file and the problem.
     """
-    path = Path(mask_path)
-    stems = sorted(set(image_stems))
-    ext = path.suffix.lower()
+    p = Path(path)
+    ext = p.suffix.lower()
     if ext not in MASK_FILE_EXTENSIONS:
         raise MaskImportError(
-            f"{path}: expected a mask file ending in {', '.join(MASK_FILE_EXTENSIONS)}, "
-            f"got {path.suffix or 'no extension'!r}"
+            f"{p}: expected a .png, .geojson or .json mask file, got "
+            f"{p.suffix or 'no extension'!r}"
         )
-    base = path.name[: -len(path.suffix)]
-    tried: list[str] = []
-    for suffix in MASK_NAME_SUFFIXES:
-        if suffix == "":
-            tried.append(base)
-        elif base.endswith(suffix) and len(base) > len(suffix):
-            tried.append(base[: -len(suffix)])
-    known = set(stems)
-    matches = [s for s in dict.fromkeys(tried) if s in known]
-    if len(matches) == 1:
-        return matches[0]
-    if matches:
-        raise MaskImportError(
-            f"{path}: the name fits several images ({', '.join(matches)}); rename the file "
-            "or name the image explicitly"
-        )
-    close = difflib.get_close_matches(base, stems, n=5, cutoff=0.6)
-    hint = f"; similar image names: {', '.join(close)}" if close else ""
-    raise MaskImportError(
-        f"{path}: no image of the project is called {' or '.join(repr(t) for t in tried)} "
-        f"(a mask is named <image>.png, <image>_mask.png or <image>_annotation.png){hint}"
+    check_mask_path(p)
+    if ext == ".png":
+        return PngMaskReader(p, shape=shape, schema=schema, colours=colours, values=values)
+    return open_geojson_mask(
+        p, shape=shape, transform=transform, crs=crs, schema=schema, fill=fill, image=image
     )
 
 
@@ -133,16 +144,17 @@ def read_mask_file(
     colours: Mapping[tuple[int, int, int], int] | None = None,
     values: Mapping[int, int] | None = None,
 ) -> np.ndarray:
-    """Read a ``.png`` mask or a ``.geojson``/``.json`` polygon file by its extension."""
-    p = Path(path)
-    ext = p.suffix.lower()
-    if ext == ".png":
-        return read_png_mask(p, shape=shape, schema=schema, colours=colours, values=values)
-    if ext in (".geojson", ".json"):
-        return read_geojson_mask(
-            p, shape=shape, transform=transform, crs=crs, schema=schema, fill=fill, image=image
-        )
-    raise MaskImportError(
-        f"{p}: expected a .png, .geojson or .json mask file, got {p.suffix or 'no extension'!r}"
-    )
+    """Read a whole ``.png`` or ``.geojson``/``.json`` mask file; see :func:`open_mask_file`.
 
+    Returns
+    -------
+    mask : ndarray, shape ``shape``, uint8
+    """
+    source = open_mask_file(
+        path, shape=shape, transform=transform, crs=crs, schema=schema, fill=fill,
+        image=image, colours=colours, values=values,
+    )
+    try:
+        return source.read_rows(0, source.shape[0])
+    finally:
+        source.close()

@@ -59,6 +59,7 @@ import numpy as np
 
 from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
 from labeler.fileio import atomic_write_bytes
+from labeler.imagery.tiling import row_strips
 from labeler.states import STATES
 
 __all__ = [
@@ -121,7 +122,7 @@ def manifest_row(
     image_path: str | os.PathLike[str],
     mask_path: str | os.PathLike[str],
     manifest_dir: str | os.PathLike[str],
-    mask: np.ndarray,
+    mask,
     image_sha256: str,
     schema: ClassSchema = DEFAULT_SCHEMA,
     tile_states: Iterable[str] = (),
@@ -137,8 +138,10 @@ def manifest_row(
         Where the image and its exported PNG mask are.
     manifest_dir : path
         Folder of the manifest file; paths are written relative to it.
-    mask : ndarray, shape (H, W), uint8
-        The exported mask (gives the size and the classes present).
+    mask : ndarray, shape (H, W), uint8, or a raster read by rows
+        The exported mask (gives the size and the classes present); an object whose
+        ``mask[r0:r1]`` returns rows (a :class:`labeler.imagery.tiling.StitchedMask`) is
+        counted strip by strip.
     image_sha256 : str
         SHA-256 of the image file (:func:`labeler.fileio.sha256_file`).
     schema : ClassSchema
@@ -149,8 +152,11 @@ def manifest_row(
     seed, val_share
         The split rule (:func:`split_for`).
     """
-    m = np.asarray(mask)
-    schema.check_mask(m, name="mask")
+    shape = tuple(getattr(mask, "shape", ()))
+    if len(shape) != 2:
+        mask = np.asarray(mask)
+        schema.check_mask(mask, name="mask")  # names what is wrong with it
+    height, width = (int(v) for v in mask.shape)
     states = list(tile_states)
     for s in states:
         if s not in STATES:
@@ -164,14 +170,18 @@ def manifest_row(
             "filled_from_proposals: expected a tile count between 0 and the number of tiles "
             f"({len(states)}), got {filled_from_proposals!r}"
         )
-    counts = np.bincount(m.ravel(), minlength=256)
+    counts = np.zeros(256, np.int64)
+    for w in row_strips(height, width):
+        part = np.asarray(mask[w.row : w.row + w.height])
+        schema.check_mask(part, name="mask" if w.height == height else f"mask rows {w.row}..")
+        counts += np.bincount(part.ravel(), minlength=256)
     root = Path(manifest_dir)
     counted = Counter(states)
     return {
         "image": _relative(image_path, root),
         "mask": _relative(mask_path, root),
-        "width": int(m.shape[1]),
-        "height": int(m.shape[0]),
+        "width": width,
+        "height": height,
         "classes": [c.name for c in schema.classes if counts[c.index] > 0],
         "unlabelled_px": int(counts[UNLABELLED]),
         "split": split_for(image_sha256, seed=seed, val_share=val_share),

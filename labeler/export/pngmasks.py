@@ -10,7 +10,8 @@ Per image two files may be written into an output folder:
     colours) at opacity 0.45. Soil (no overlay colour) and unlabelled pixels show the
     plain image.
 
-Files are written atomically (temporary file + rename).
+Files are written atomically (temporary file + rename) and strip by strip, so a mask
+or preview of a big orthomosaic is never held whole.
 
 Caution: masks are decision support; where they drive spot spraying or fungicide
 timing, local regulations and licensed agronomic advice come first.
@@ -18,6 +19,7 @@ timing, local regulations and licensed agronomic advice come first.
 
 from __future__ import annotations
 
+import contextlib
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -25,7 +27,8 @@ from pathlib import Path
 import numpy as np
 
 from labeler.classes import DEFAULT_SCHEMA, ClassSchema
-from labeler.imagery.write import write_png
+from labeler.imagery.pngstream import PngRowWriter
+from labeler.imagery.tiling import row_strips
 from labeler.masks.overlay import overlay_mask
 
 __all__ = ["MaskFiles", "check_stem", "preview_rgb", "write_class_mask", "write_image_masks"]
@@ -103,27 +106,62 @@ def preview_rgb(
     return overlay_mask(np.ascontiguousarray(img), m, schema=schema, opacity=opacity)
 
 
+def _check_raster(mask, name: str = "mask") -> tuple[int, int]:
+    shape = tuple(getattr(mask, "shape", ()))
+    if len(shape) != 2:
+        raise ValueError(
+            f"{name}: expected a 2-D uint8 class-index array (H, W), got shape {shape}"
+        )
+    if shape[0] == 0 or shape[1] == 0:
+        raise ValueError(f"{name}: expected a non-empty mask, got shape {shape}")
+    return int(shape[0]), int(shape[1])
+
+
 def write_class_mask(
-    path: str | os.PathLike[str], mask: np.ndarray, *, schema: ClassSchema = DEFAULT_SCHEMA
+    path: str | os.PathLike[str], mask, *, schema: ClassSchema = DEFAULT_SCHEMA
 ) -> Path:
-    """Write a class-index mask as a single-channel 8-bit PNG, atomically."""
-    m = np.asarray(mask)
-    schema.check_mask(m, name="mask")
-    if m.size == 0:
-        raise ValueError(f"mask: expected a non-empty mask, got shape {m.shape}")
-    return write_png(path, m)
+    """Write a class-index mask as a single-channel 8-bit PNG, atomically, strip by strip.
+
+    Parameters
+    ----------
+    path : path-like
+        Target file.
+    mask : ndarray, shape (H, W), uint8, or a raster read by rows
+        The mask, or an object whose ``mask[r0:r1]`` returns rows (e.g. a
+        :class:`labeler.imagery.tiling.StitchedMask`); checked against ``schema``.
+    schema : ClassSchema
+
+    Returns
+    -------
+    Path
+    """
+    height, width = _check_raster(mask)
+    if isinstance(mask, np.ndarray):
+        schema.check_mask(mask, name="mask")
+    target = Path(path)
+    with PngRowWriter(target, height=height, width=width, channels=1) as out:
+        for w in row_strips(height, width):
+            part = np.asarray(mask[w.row : w.row + w.height])
+            schema.check_mask(part, name=f"mask rows {w.row}..{w.row + w.height}")
+            out.write(part)
+    return target
 
 
 def write_image_masks(
     folder: str | os.PathLike[str],
     stem: str,
-    mask: np.ndarray,
+    mask,
     *,
     schema: ClassSchema = DEFAULT_SCHEMA,
-    image: np.ndarray | None = None,
+    image=None,
     opacity: float = 0.45,
 ) -> MaskFiles:
     """Write ``<stem>.png`` and, when ``image`` is given, ``<stem>_preview.png``.
+
+    Both files are written strip by strip (:func:`labeler.imagery.tiling.row_strips`,
+    :class:`labeler.imagery.pngstream.PngRowWriter`): neither the mask, the image nor the
+    preview of a big orthomosaic is held whole. Each file appears complete or not at
+    all; a failure leaves neither.
 
     Parameters
     ----------
@@ -131,11 +169,13 @@ def write_image_masks(
         Output folder (created if needed).
     stem : str
         Plain file name without extension (usually the image's).
-    mask : ndarray, shape (H, W), uint8
-        The stitched image mask.
+    mask : ndarray, shape (H, W), uint8, or a raster read by rows
+        The stitched image mask, or an object whose ``mask[r0:r1]`` returns rows (e.g.
+        a :class:`labeler.imagery.tiling.StitchedMask`).
     schema : ClassSchema
-    image : ndarray, shape (H, W, 3), uint8, or None
-        The image, for the preview.
+    image : ndarray (H, W, 3) uint8, a raster read by rows, or None
+        The image, for the preview (e.g. a :class:`labeler.imagery.tiling.LazyRaster`
+        over an open image reader).
     opacity : float
         Overlay opacity of the preview.
 
@@ -144,12 +184,31 @@ def write_image_masks(
     MaskFiles
     """
     check_stem(stem)
+    height, width = _check_raster(mask)
+    if isinstance(mask, np.ndarray):
+        schema.check_mask(mask, name="mask")
+    if image is not None and tuple(image.shape[:2]) != (height, width):
+        raise ValueError(
+            f"mask: expected shape {tuple(image.shape[:2])} like the image, got "
+            f"{(height, width)}; pass the mask of this image"
+        )
     out = Path(folder)
-    preview = None
-    if image is not None:
-        preview = preview_rgb(image, mask, schema=schema, opacity=opacity)
-    mask_path = write_class_mask(out / f"{stem}.png", mask, schema=schema)
-    preview_path = None
-    if preview is not None:
-        preview_path = write_png(out / f"{stem}{PREVIEW_SUFFIX}.png", preview)
+    mask_path = out / f"{stem}.png"
+    preview_path = None if image is None else out / f"{stem}{PREVIEW_SUFFIX}.png"
+    with contextlib.ExitStack() as stack:
+        masks = stack.enter_context(
+            PngRowWriter(mask_path, height=height, width=width, channels=1)
+        )
+        previews = None
+        if preview_path is not None:
+            previews = stack.enter_context(
+                PngRowWriter(preview_path, height=height, width=width, channels=3)
+            )
+        for w in row_strips(height, width):
+            rows = slice(w.row, w.row + w.height)
+            part = np.asarray(mask[rows])
+            schema.check_mask(part, name=f"mask rows {w.row}..{w.row + w.height}")
+            masks.write(part)
+            if previews is not None:
+                previews.write(preview_rgb(image[rows], part, schema=schema, opacity=opacity))
     return MaskFiles(mask_path, preview_path)

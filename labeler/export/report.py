@@ -84,9 +84,10 @@ class OverlaySource:
 
     Attributes
     ----------
-    rgb : ndarray, shape (H, W, 3), uint8
-        The field image.
-    masks : mapping str -> ndarray (H, W)
+    rgb : ndarray, shape (H, W, 3), uint8, or a raster read by window
+        The field image (e.g. a :class:`labeler.imagery.tiling.LazyRaster` over an open
+        image reader: only the panels' pixels are read).
+    masks : mapping str -> ndarray (H, W), or rasters read by window
         Annotator name -> that annotator's stitched mask of the image.
     """
 
@@ -325,6 +326,21 @@ def _subsample(shape: tuple[int, int], max_px: int) -> int:
     return max(1, math.ceil(max(shape) / max_px))
 
 
+#: Pixels read at once when a big image is subsampled for a panel.
+_READ_PX = 1 << 22
+
+
+def _sampled(raster, rows: tuple[int, int], cols: tuple[int, int], step: int) -> np.ndarray:
+    """``raster[r0:r1:step, c0:c1:step]``, read in strips (an array or a lazy raster)."""
+    (r0, r1), (c0, c1) = rows, cols
+    chunk = max(step, (_READ_PX // max(1, c1 - c0)) // step * step)
+    parts = [
+        np.asarray(raster[a : min(r1, a + chunk), c0:c1])[::step, ::step]
+        for a in range(r0, r1, chunk)
+    ]
+    return np.concatenate(parts) if parts else np.asarray(raster[r0:r0, c0:c1])
+
+
 def _overlay_strip(
     entry: ImageFigures | TileFigures,
     source: OverlaySource,
@@ -333,26 +349,26 @@ def _overlay_strip(
     opacity: float,
     max_px: int,
 ) -> tuple[bytes, list[str]]:
-    rgb = np.asarray(source.rgb)
+    rgb = source.rgb
+    shape = tuple(rgb.shape[:2])
     if isinstance(entry, TileFigures):
         r0, c0, hh, ww = entry.window
-        window = (slice(r0, r0 + hh), slice(c0, c0 + ww))
+        rows, cols = (r0, r0 + hh), (c0, c0 + ww)
     else:
-        window = (slice(None), slice(None))
-    crop = rgb[window]
-    step = _subsample(crop.shape[:2], max_px)
-    crop = crop[::step, ::step]
+        rows, cols = (0, shape[0]), (0, shape[1])
+    step = _subsample((rows[1] - rows[0], cols[1] - cols[0]), max_px)
+    crop = _sampled(rgb, rows, cols, step)
     zoom = max(1, _MIN_PANEL_PX // max(crop.shape[:2]))
     panels = [crop]
     captions = ["image"]
     for name in sorted(source.masks):
-        mask = np.asarray(source.masks[name])
-        if mask.shape != rgb.shape[:2]:
+        mask = source.masks[name]
+        if tuple(mask.shape) != shape:
             raise ValueError(
-                f"overlays[{entry.image!r}]: mask of {name} has shape {mask.shape}, "
-                f"expected {rgb.shape[:2]} like the image"
+                f"overlays[{entry.image!r}]: mask of {name} has shape {tuple(mask.shape)}, "
+                f"expected {shape} like the image"
             )
-        part = mask[window][::step, ::step]
+        part = _sampled(mask, rows, cols, step)
         panels.append(overlay_mask(crop, part, schema=schema, opacity=opacity))
         captions.append(name)
     if zoom > 1:  # small tiles: enlarge by whole pixels so they stay readable

@@ -41,6 +41,7 @@ __all__ = [
     "MAX_DECODED_PIXELS",
     "ImageInfo",
     "ImageReader",
+    "check_image_size",
     "sniff_format",
     "open_image",
     "inspect_image",
@@ -218,7 +219,26 @@ def _georef_sidecar(p: Path) -> Georef | None:
     return Georef(transform=transform, crs=crs, source="worldfile")
 
 
-def _open_tiff(p: Path) -> ImageReader:
+def check_image_size(
+    path: str | os.PathLike[str], *, width: int, height: int, max_pixels: int | None
+) -> None:
+    """Refuse an image whose header declares more than ``max_pixels`` pixels.
+
+    Raises
+    ------
+    InputError
+        Naming the file, its declared size, the limit and the setting that sets it.
+    """
+    if max_pixels is not None and width * height > max_pixels:
+        raise InputError(
+            f"{path}: the file declares {width} x {height} pixels ({width * height:,}), more "
+            f"than the limit of {max_pixels:,} (setting tiles.max_image_px); split the image "
+            "into smaller GeoTIFFs (e.g. gdal_retile.py), or raise the limit if it is a real "
+            "image and the machine can hold its tiles"
+        )
+
+
+def _open_tiff(p: Path, max_pixels: int | None = None) -> ImageReader:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", NotGeoreferencedWarning)
@@ -226,6 +246,7 @@ def _open_tiff(p: Path) -> ImageReader:
     except RasterioIOError as exc:
         raise InputError(f"{p}: not a readable TIFF ({exc})") from None
     try:
+        check_image_size(p, width=ds.width, height=ds.height, max_pixels=max_pixels)
         if ds.count < 1:
             raise InputError(f"{p}: the TIFF holds no bands")
         dtype = ds.dtypes[0]
@@ -273,10 +294,11 @@ def _open_tiff(p: Path) -> ImageReader:
         raise
 
 
-def _open_pil(p: Path, fmt: str) -> ImageReader:
+def _open_pil(p: Path, fmt: str, max_pixels: int | None = None) -> ImageReader:
     try:
         with Image.open(p) as im:
             w0, h0 = im.size
+            check_image_size(p, width=w0, height=h0, max_pixels=max_pixels)
             if w0 * h0 > MAX_DECODED_PIXELS:
                 raise InputError(
                     f"{p}: {w0} x {h0} pixels is too large to decode whole (limit "
@@ -330,8 +352,16 @@ def _open_pil(p: Path, fmt: str) -> ImageReader:
     return ImageReader(info, pixels=np.ascontiguousarray(rgb))
 
 
-def open_image(path: str | os.PathLike[str]) -> ImageReader:
+def open_image(path: str | os.PathLike[str], *, max_pixels: int | None = None) -> ImageReader:
     """Open an image for reading.
+
+    Parameters
+    ----------
+    path : path-like
+        The image file.
+    max_pixels : int, optional
+        Refuse an image whose header declares more pixels (width x height), before any
+        pixel is decoded (:func:`check_image_size`).
 
     Raises
     ------
@@ -342,8 +372,8 @@ def open_image(path: str | os.PathLike[str]) -> ImageReader:
     p = Path(path)
     fmt = sniff_format(p)
     if fmt == "tiff":
-        return _open_tiff(p)
-    return _open_pil(p, fmt)
+        return _open_tiff(p, max_pixels)
+    return _open_pil(p, fmt, max_pixels)
 
 
 def inspect_image(path: str | os.PathLike[str]) -> ImageInfo:

@@ -33,6 +33,9 @@ from scipy import ndimage
 
 __all__ = ["RowPattern", "detect_rows", "projection_contrast"]
 
+#: Pixels per chunk where a histogram over the whole mask is built piece by piece.
+_CHUNK = 1 << 20
+
 
 @dataclass(frozen=True)
 class RowPattern:
@@ -359,7 +362,8 @@ def detect_rows(
     theta = _wrap_angle(best)
 
     # 2. cross-row profile at 1 px bins on the full mask
-    rr, cc = np.indices(m.shape, dtype=np.float64)
+    rr = np.arange(h, dtype=np.float64)[:, None]  # broadcast: no (H, W) index arrays
+    cc = np.arange(w, dtype=np.float64)[None, :]
     th = math.radians(theta)
     ct, st = math.cos(th), math.sin(th)
     t = rr * ct + cc * st
@@ -388,6 +392,7 @@ def detect_rows(
 
     # 4. band half-width from the mean cross-row profile
     u_all = t - _bow_at(s, bow, s_mid, s_scale)
+    del t, s, veg_t, veg_s  # a few bytes per pixel less while the band is measured
     if half_width_px is None:
         half_width_px = _band_half_width(m, u_all, offsets, spacing, band_level)
     margin = half_width_px + 1.0
@@ -552,17 +557,23 @@ def _fit_bow(veg_t, veg_s, offsets, bow, spacing, s_mid, s_scale):
 def _band_half_width(m, u_all, offsets, spacing, level):
     """Half-width where the mean cross-row profile falls to ``level`` above its floor."""
     offs = np.sort(offsets)
-    u = u_all.ravel()
-    k = np.clip(np.searchsorted(offs, u), 1, max(1, offs.size - 1))
-    if offs.size == 1:
-        d = np.abs(u - offs[0])
-    else:
-        d = np.minimum(np.abs(u - offs[k - 1]), np.abs(u - offs[k]))
     half = spacing / 2.0
-    keep = d <= half
-    idx = np.floor(d[keep] + 0.5).astype(np.int64)  # bin j holds distance j
-    n = np.bincount(idx).astype(np.float64)
-    hv = np.bincount(idx, weights=m.ravel()[keep].astype(np.float64), minlength=n.size)
+    u_flat, m_flat = u_all.ravel(), m.ravel()
+    n = np.zeros(int(half + 0.5) + 1, np.float64)
+    hv = np.zeros_like(n)
+    for a in range(0, u_flat.size, _CHUNK):  # in chunks: bounded temporaries
+        u = u_flat[a : a + _CHUNK]
+        k = np.clip(np.searchsorted(offs, u), 1, max(1, offs.size - 1))
+        if offs.size == 1:
+            d = np.abs(u - offs[0])
+        else:
+            d = np.minimum(np.abs(u - offs[k - 1]), np.abs(u - offs[k]))
+        keep = d <= half
+        idx = np.floor(d[keep] + 0.5).astype(np.int64)  # bin j holds distance j
+        n += np.bincount(idx, minlength=n.size)  # counts and 0/1 weights: exact sums
+        hv += np.bincount(idx, weights=m_flat[a : a + _CHUNK][keep], minlength=n.size)
+    last = int(np.flatnonzero(n)[-1]) + 1 if n.any() else 0
+    n, hv = n[:last], hv[:last]
     prof = np.where(n > 0, hv / np.maximum(n, 1), 0.0)
     prof = ndimage.gaussian_filter1d(prof, 0.5, mode="nearest")
     outer = prof[int(0.38 * spacing) :]

@@ -11,12 +11,17 @@ Which version is the parent a save must name (its lineage) is told by
 
 A save that changes the tile's state passes the life-cycle check
 (:func:`labeler.store.holds.checked_move`) inside its transaction.
+
+Saves come one at a time (:meth:`AnnotationsMixin.save_annotation`), as a batch that
+lands whole or not at all (:meth:`AnnotationsMixin.save_annotations`), or as a batch
+that saves every item whose tile is still as its parent version says and reports the
+others (:meth:`AnnotationsMixin.save_if_unchanged`, used by imports).
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from dataclasses import dataclass
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, replace
 
 import numpy as np
 import sqlalchemy as sa
@@ -28,21 +33,26 @@ from labeler.states import (
     AMENDED,
     ANNOTATION_KINDS,
     ANNOTATION_STATES,
-    IMPORTED,
     KIND_FULL,
     SETTLED,
     WEAK,
 )
 from labeler.store import schema as t
 from labeler.store.base import now
-from labeler.store.history import HistoryMixin, annotation_query, annotation_row, lineage_head_in
+from labeler.store.history import HistoryMixin, annotation_query, annotation_row
 from labeler.store.holds import HoldsMixin, checked_move
-from labeler.store.records import AnnotationRecord, TileRecord
+from labeler.store.records import AnnotationRecord, SaveOutcome, TileRecord
 
 __all__ = ["NewAnnotation", "AnnotationsMixin", "tile_state_after_save"]
 
 #: Attempts of a save that lost a race for a version number before giving up.
 _SAVE_RETRIES = 8
+#: Tile ids per IN list (well under the parameter limits of SQLite and PostgreSQL).
+_CHUNK = 500
+
+
+def _chunks(ids: Sequence[int]) -> list[Sequence[int]]:
+    return [ids[k : k + _CHUNK] for k in range(0, len(ids), _CHUNK)]
 
 
 @dataclass(frozen=True)
@@ -77,12 +87,17 @@ def tile_state_after_save(kind: str, state: str, tile_state: str | None = None) 
     Returns
     -------
     str or None
-        ``tile_state`` if given; else ``state`` for full masks (``amended`` for
-        ``imported`` ones); None for weak labels and for ``weak`` full masks.
+        ``tile_state`` if given; else ``state`` for full masks (an ``imported`` full
+        mask leaves the tile ``imported``); None for weak labels and
+        for ``weak`` full masks.
     """
     if tile_state is not None or kind != KIND_FULL:
         return tile_state
-    return {IMPORTED: AMENDED, WEAK: None}.get(state, state)
+    return None if state == WEAK else state
+
+
+class _RefusedMove(LabelerError):
+    """The life cycle does not allow the state a save asks for (nothing was saved)."""
 
 
 def _conflict(
@@ -111,13 +126,16 @@ def _conflict(
 class AnnotationsMixin(HistoryMixin, HoldsMixin):
     """Versioned annotation saves of :class:`labeler.store.Store`."""
 
-    def _prepare(self, item: NewAnnotation) -> tuple[TileRecord, bytes, str | None]:
+    def _prepare(
+        self, item: NewAnnotation, tile: TileRecord | None = None
+    ) -> tuple[TileRecord, bytes, str | None]:
         """Check one save before any transaction; its tile, PNG bytes and asked state."""
         if item.kind not in ANNOTATION_KINDS:
             raise ValueError(f"kind: expected one of {ANNOTATION_KINDS}, got {item.kind!r}")
         if item.state not in ANNOTATION_STATES:
             raise ValueError(f"state: expected one of {ANNOTATION_STATES}, got {item.state!r}")
-        tile = self.tile(item.tile_id)
+        if tile is None:
+            tile = self.tile(item.tile_id)
         mask = np.asarray(item.mask)
         if mask.shape != tile.shape:
             raise ValueError(
@@ -128,90 +146,183 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
         data = png_bytes(mask.astype(np.uint8, copy=False))
         return tile, data, tile_state_after_save(item.kind, item.state, item.tile_state)
 
-    def _insert_annotation(
+    def _insert_saves(
         self,
         conn: sa.Connection,
-        item: NewAnnotation,
-        tile: TileRecord,
-        data: bytes,
-        tile_state: str | None,
-    ) -> int:
-        """Write one checked save inside ``conn``'s transaction; the new row's id."""
-        tile_id = item.tile_id
-        parent_version = item.parent_version
-        row = conn.execute(sa.select(t.tiles).where(t.tiles.c.id == tile_id)).one()
-        aid = self._annotator_id(conn, item.annotator)
-        head = lineage_head_in(conn, row, aid, settling=item.state == SETTLED)
-        if head != parent_version:
-            raise _conflict(conn, tile_id, parent_version, head)
-        if tile_state is not None:
-            try:
-                checked_move(row.state, tile_state, tile_id=tile_id)
-            except LabelerError as exc:
-                raise LabelerError(f"{exc}; nothing was saved") from None
-        top = conn.execute(
-            sa.select(sa.func.max(t.annotations.c.version)).where(
-                t.annotations.c.tile_id == tile_id
+        prepared: Sequence[tuple[NewAnnotation, TileRecord, bytes, str | None]],
+        *,
+        skip_changed: bool,
+    ) -> list[tuple[int | None, str | None]]:
+        """Write checked saves inside ``conn``'s transaction, in order.
+
+        Each save names its parent version; it is written when that is still its
+        lineage's newest version (the rule of
+        :func:`labeler.store.history.lineage_head_in`, counting the saves
+        of this batch written before it) and the life cycle allows the tile's move.
+        Statements go per chunk of tiles, not per save, so that a batch of thousands of
+        tiles holds the write lock briefly.
+
+        Returns
+        -------
+        list of (version, problem)
+            Per save: the version written and None, or None and why nothing was
+            written (only with ``skip_changed``).
+
+        Raises
+        ------
+        ConflictError, LabelerError
+            Without ``skip_changed``: for the first stale parent or refused move (the
+            caller's transaction then rolls back).
+        """
+        aids: dict[str, int] = {}
+        for item, *_ in prepared:
+            if item.annotator not in aids:
+                aids[item.annotator] = self._annotator_id(conn, item.annotator)
+        tile_ids = sorted({item.tile_id for item, *_ in prepared})
+        rows: dict[int, sa.Row] = {}
+        top: dict[int, int] = {}  # newest version of each tile
+        own: dict[tuple[int, int], int] = {}  # newest version of each (tile, annotator)
+        for chunk in _chunks(tile_ids):
+            tiles = conn.execute(sa.select(t.tiles).where(t.tiles.c.id.in_(chunk)))
+            rows.update((r.id, r) for r in tiles)
+            newest = (
+                sa.select(
+                    t.annotations.c.tile_id,
+                    t.annotations.c.annotator_id,
+                    sa.func.max(t.annotations.c.version),
+                )
+                .where(t.annotations.c.tile_id.in_(chunk))
+                .group_by(t.annotations.c.tile_id, t.annotations.c.annotator_id)
             )
-        ).scalar()
-        version = (top or 0) + 1
+            for tid, aid, version in conn.execute(newest):
+                own[(tid, aid)] = version
+                top[tid] = max(top.get(tid, 0), version)
+        state = {tid: r.state for tid, r in rows.items()}
+        held = {tid: r.held_by for tid, r in rows.items()}
         stamp = now()
-        res = conn.execute(
-            t.annotations.insert().values(
-                tile_id=tile_id,
-                version=version,
-                parent_version=parent_version,
-                annotator_id=aid,
-                kind=item.kind,
-                state=item.state,
-                mask_png=data,
-                height=tile.height,
-                width=tile.width,
-                seconds=float(item.seconds),
-                actions=int(item.actions),
-                proposal_id=item.proposal_id,
-                source=item.source,
-                created_at=stamp,
+        inserts: list[dict] = []
+        events: list[dict] = []
+        updates: dict[int, dict[str, object]] = {}
+        outcomes: list[tuple[int | None, str | None]] = []
+        for item, tile, data, tile_state in prepared:
+            tid, aid = item.tile_id, aids[item.annotator]
+            row = rows[tid]
+            if row.overlap and item.state != SETTLED and state[tid] != SETTLED:
+                head = own.get((tid, aid))  # an annotator's own lineage (lineage_head_in)
+            else:
+                head = top.get(tid)
+            if head != item.parent_version:
+                conflict = _conflict(conn, tid, item.parent_version, head)
+                if not skip_changed:
+                    raise conflict
+                outcomes.append((None, str(conflict)))
+                continue
+            if tile_state is not None:
+                try:
+                    checked_move(state[tid], tile_state, tile_id=tid)
+                except LabelerError as exc:
+                    refused = _RefusedMove(f"{exc}; nothing was saved")
+                    if not skip_changed:
+                        raise refused from None
+                    outcomes.append((None, str(refused)))
+                    continue
+            version = top.get(tid, 0) + 1
+            top[tid] = own[(tid, aid)] = version
+            inserts.append(
+                {
+                    "tile_id": tid,
+                    "version": version,
+                    "parent_version": item.parent_version,
+                    "annotator_id": aid,
+                    "kind": item.kind,
+                    "state": item.state,
+                    "mask_png": data,
+                    "height": tile.height,
+                    "width": tile.width,
+                    "seconds": float(item.seconds),
+                    "actions": int(item.actions),
+                    "proposal_id": item.proposal_id,
+                    "source": item.source,
+                    "created_at": stamp,
+                }
             )
-        )
-        values: dict[str, object] = {"updated_at": stamp}
-        if tile_state is not None:
-            values["state"] = tile_state
-        if row.held_by == aid:
-            values["held_by"] = None
-        conn.execute(t.tiles.update().where(t.tiles.c.id == tile_id).values(**values))
-        self._assign(conn, tile_id, aid)
-        conn.execute(
-            t.drafts.delete().where(
-                (t.drafts.c.tile_id == tile_id) & (t.drafts.c.annotator_id == aid)
+            before = state[tid]
+            values = updates.setdefault(tid, {"updated_at": stamp})
+            if tile_state is not None:
+                values["state"] = state[tid] = tile_state
+            if held[tid] == aid:
+                values["held_by"] = held[tid] = None
+            events.append(
+                {
+                    "at": stamp,
+                    "kind": "save",
+                    "tile_id": tid,
+                    "annotator_id": aid,
+                    "detail": {
+                        "version": version,
+                        "parent": item.parent_version,
+                        "kind": item.kind,
+                        "state": item.state,
+                        "from": before,
+                        "to": tile_state or before,
+                        "source": item.source,
+                    },
+                }
             )
-        )
-        self._event(
-            conn,
-            "save",
-            tile_id=tile_id,
-            annotator_id=aid,
-            detail={
-                "version": version,
-                "parent": parent_version,
-                "kind": item.kind,
-                "state": item.state,
-                "from": row.state,
-                "to": tile_state or row.state,
-                "source": item.source,
-            },
-        )
-        return int(res.inserted_primary_key[0])
+            outcomes.append((version, None))
+        if not inserts:
+            return outcomes
+        conn.execute(t.annotations.insert(), inserts)
+        same: dict[tuple, list[int]] = {}
+        for tid, values in updates.items():
+            same.setdefault(tuple(sorted(values.items())), []).append(tid)
+        for values, tids in same.items():
+            for chunk in _chunks(tids):
+                conn.execute(t.tiles.update().where(t.tiles.c.id.in_(chunk)).values(**dict(values)))
+        saved: dict[int, set[int]] = {}
+        for row in inserts:
+            saved.setdefault(row["annotator_id"], set()).add(row["tile_id"])
+        for aid, tids in saved.items():
+            for chunk in _chunks(sorted(tids)):
+                handed = set(
+                    conn.execute(
+                        sa.select(t.assignments.c.tile_id).where(
+                            (t.assignments.c.annotator_id == aid)
+                            & t.assignments.c.tile_id.in_(chunk)
+                        )
+                    ).scalars()
+                )
+                new = [
+                    {"tile_id": tid, "annotator_id": aid, "assigned_at": stamp}
+                    for tid in chunk
+                    if tid not in handed
+                ]
+                if new:
+                    conn.execute(t.assignments.insert(), new)
+                conn.execute(
+                    t.drafts.delete().where(
+                        t.drafts.c.tile_id.in_(chunk) & (t.drafts.c.annotator_id == aid)
+                    )
+                )
+        conn.execute(t.events.insert(), events)
+        return outcomes
 
     def _write_annotations(self, items: Sequence[NewAnnotation]) -> list[AnnotationRecord]:
         prepared = [(item, *self._prepare(item)) for item in items]
         for attempt in range(_SAVE_RETRIES):
             try:
                 with self._write() as conn:
-                    ids = [self._insert_annotation(conn, *p) for p in prepared]
-                    rows = conn.execute(annotation_query().where(t.annotations.c.id.in_(ids))).all()
-                by_id = {r.id: annotation_row(r) for r in rows}
-                return [by_id[i] for i in ids]
+                    written = self._insert_saves(conn, prepared, skip_changed=False)
+                    out = []
+                    for (item, *_), (version, _) in zip(prepared, written, strict=True):
+                        row = conn.execute(
+                            annotation_query().where(
+                                (t.annotations.c.tile_id == item.tile_id)
+                                & (t.annotations.c.version == version)
+                            )
+                        ).one()
+                        out.append(annotation_row(row))
+                return out
             except IntegrityError:
                 # another writer took a version number between our read and insert;
                 # re-read: if our parent is now stale the lineage check raises ConflictError
@@ -261,8 +372,8 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
             The proposal the annotator started from.
         tile_state : str, optional
             Tile state after the save (default: see :func:`tile_state_after_save`:
-            ``state`` for full masks, unchanged for weak labels; ``imported`` full masks
-            leave the tile ``amended``). Checked against the life cycle.
+            ``state`` for full masks, unchanged for weak labels). Checked against the
+            life cycle.
 
         Returns
         -------
@@ -302,7 +413,8 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
     def save_annotations(self, items: Sequence[NewAnnotation]) -> list[AnnotationRecord]:
         """Save several annotations in ONE transaction: all land or none does.
 
-        Used by imports, where a file covering many tiles must not land half-way.
+        For a batch that must land whole (a conflict on any tile refuses all of it);
+        imports use :meth:`save_if_unchanged`, which saves the tiles still unchanged.
         Every item is checked as in :meth:`save_annotation` before anything is written.
 
         Parameters
@@ -322,3 +434,57 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
         if not items:
             return []
         return self._write_annotations(items)
+
+    def save_if_unchanged(self, items: Iterable[NewAnnotation]) -> list[SaveOutcome]:
+        """Save every item whose tile is unchanged since its parent version, in ONE transaction.
+
+        An item whose lineage moved past its ``parent_version`` (someone saved the tile
+        since), or whose tile is now in a state the life cycle does not leave for this
+        save (e.g. found ``contested`` meanwhile), is not saved and is reported; every
+        other item is saved. The items that are saved land together or not at all (a
+        kill leaves none of them). Used by imports, where one tile changed by someone
+        else must neither be overwritten nor stop the rest.
+
+        Parameters
+        ----------
+        items : iterable of NewAnnotation
+            May be a generator: the items are taken one at a time, each mask checked
+            and encoded as it comes (only its PNG bytes are kept), all before the write
+            transaction opens, so memory holds one mask at a time and an error raised
+            by the generator saves nothing.
+
+        Returns
+        -------
+        list of SaveOutcome
+            One per item, in the items' order.
+
+        Raises
+        ------
+        ValueError, NotFoundError
+            As :meth:`save_annotation`, for the first item with a bad mask, kind or
+            state or an unknown tile; nothing is written.
+        """
+        prepared = []
+        known: dict[int, TileRecord] = {}  # the tiles of every image met so far
+        for item in items:
+            if item.tile_id not in known:
+                image_id = self.tile(item.tile_id).image_id
+                known.update((x.id, x) for x in self.tiles(image_id=image_id))
+            tile, data, tile_state = self._prepare(item, known[item.tile_id])
+            prepared.append((replace(item, mask=None), tile, data, tile_state))
+        if not prepared:
+            return []
+        for attempt in range(_SAVE_RETRIES):
+            try:
+                with self._write() as conn:
+                    written = self._insert_saves(conn, prepared, skip_changed=True)
+                return [
+                    SaveOutcome(item.tile_id, version, problem)
+                    for (item, *_), (version, problem) in zip(prepared, written, strict=True)
+                ]
+            except IntegrityError:
+                # another writer took a version number between our read and insert (not
+                # on SQLite, whose writers queue); re-read: a stale parent is reported
+                if attempt == _SAVE_RETRIES - 1:
+                    raise
+        raise AssertionError("unreachable")  # pragma: no cover

@@ -9,7 +9,7 @@ before saving (:meth:`HistoryMixin.visible_annotation`).
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from datetime import datetime
 
 import sqlalchemy as sa
@@ -18,8 +18,8 @@ from labeler.errors import NotFoundError
 from labeler.states import KIND_FULL, SETTLED
 from labeler.store import schema as t
 from labeler.store.base import as_utc
-from labeler.store.images import ImagesMixin
-from labeler.store.records import AnnotationRecord
+from labeler.store.images import ImagesMixin, _tile_query, _tile_row
+from labeler.store.records import AnnotationRecord, TileWork
 
 __all__ = ["HistoryMixin", "annotation_query", "annotation_row", "lineage_head_in"]
 
@@ -178,6 +178,31 @@ class HistoryMixin(ImagesMixin):
             aid = self._known_annotator_id(conn, annotator)
             return lineage_head_in(conn, row, -1 if aid is None else aid, settling=settling)
 
+    def annotations_at(
+        self, versions: Sequence[tuple[int, int]]
+    ) -> dict[tuple[int, int], AnnotationRecord]:
+        """The saved versions named by ``(tile_id, version)`` pairs, in few queries.
+
+        Parameters
+        ----------
+        versions : sequence of (int, int)
+            Tile ids and version numbers.
+
+        Returns
+        -------
+        dict of (int, int) to AnnotationRecord
+            The versions found (a pair that names no saved version is left out).
+        """
+        out: dict[tuple[int, int], AnnotationRecord] = {}
+        pairs = sorted(set(versions))
+        with self._read() as conn:
+            for k in range(0, len(pairs), 500):
+                chunk = pairs[k : k + 500]
+                key = sa.tuple_(t.annotations.c.tile_id, t.annotations.c.version)
+                for r in conn.execute(annotation_query().where(key.in_(chunk))):
+                    out[(r.tile_id, r.version)] = annotation_row(r)
+        return out
+
     def visible_annotation(self, tile_id: int, annotator: str) -> AnnotationRecord | None:
         """The newest full mask ``annotator`` may see on the tile.
 
@@ -233,3 +258,71 @@ class HistoryMixin(ImagesMixin):
         if since is not None:
             rows = [a for a in rows if a.created_at >= since]
         return rows
+
+    def tile_work(self, annotator: str, *, image_id: int | None = None) -> list[TileWork]:
+        """What is saved on each tile, as ``annotator``'s next save sees it (no masks read).
+
+        For each tile: the version ``annotator``'s next save must name as its parent
+        (the same rule as :meth:`lineage_head`), who saved that version, and who saved
+        the tile's newest full mask and newest weak label. The annotations are read
+        before the tiles, so a tile's state is never older than its versions; a save
+        that lands after this call moves a lineage past the ``head`` given here, which
+        the save's own version check then notices.
+
+        Parameters
+        ----------
+        annotator : str
+            Whose next save; may be a name the store has not seen yet.
+        image_id : int, optional
+            Only the tiles of this image.
+
+        Returns
+        -------
+        list of TileWork
+            In tile id order.
+        """
+        q = (
+            sa.select(
+                t.annotations.c.tile_id,
+                t.annotations.c.version,
+                t.annotations.c.annotator_id,
+                t.annotations.c.kind,
+                t.annotators.c.name,
+            )
+            .select_from(
+                t.annotations.join(t.annotators, t.annotations.c.annotator_id == t.annotators.c.id)
+            )
+            .order_by(t.annotations.c.tile_id, t.annotations.c.version)
+        )
+        tq = _tile_query().order_by(t.tiles.c.id)
+        if image_id is not None:
+            q = q.join(t.tiles, t.annotations.c.tile_id == t.tiles.c.id).where(
+                t.tiles.c.image_id == image_id
+            )
+            tq = tq.where(t.tiles.c.image_id == image_id)
+        with self._read() as conn:
+            me = self._known_annotator_id(conn, annotator)
+            saved: dict[int, list[sa.Row]] = {}
+            for r in conn.execute(q):
+                saved.setdefault(r.tile_id, []).append(r)  # oldest version first
+            tiles = [_tile_row(r) for r in conn.execute(tq)]
+        out = []
+        for tile in tiles:
+            rows = saved.get(tile.id, [])
+            lineage = rows
+            if tile.overlap and tile.state != SETTLED:  # as lineage_head_in, not settling
+                lineage = [r for r in rows if r.annotator_id == me]
+            head = lineage[-1] if lineage else None
+            full = [r for r in rows if r.kind == "full"]
+            weak = [r for r in rows if r.kind != "full"]
+            out.append(
+                TileWork(
+                    tile=tile,
+                    head=None if head is None else int(head.version),
+                    head_by=None if head is None else head.name,
+                    head_kind=None if head is None else head.kind,
+                    full_by=full[-1].name if full else None,
+                    weak_by=weak[-1].name if weak else None,
+                )
+            )
+        return out

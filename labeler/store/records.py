@@ -15,6 +15,8 @@ __all__ = [
     "ImageRecord",
     "TileRecord",
     "AnnotationRecord",
+    "TileWork",
+    "SaveOutcome",
     "DraftRecord",
     "ModelVersionRecord",
     "ProposalRecord",
@@ -175,6 +177,53 @@ class AnnotationRecord:
             shape=(self.height, self.width),
             what=f"annotation v{self.version} of tile {self.tile_id}",
         )
+
+
+@dataclass(frozen=True)
+class TileWork:
+    """What is saved on a tile, as one annotator's next save sees it (no mask bytes).
+
+    Attributes
+    ----------
+    tile : TileRecord
+        The tile (its state, overlap flag and holder).
+    head : int or None
+        The version that annotator's next save must name as its parent (None when
+        their lineage has no saved version yet).
+    head_by, head_kind : str or None
+        Annotator and kind (``"full"`` or ``"scribble"``) of that version.
+    full_by : str or None
+        Annotator of the tile's newest full mask (the one an export uses).
+    weak_by : str or None
+        Annotator of the tile's newest weak label.
+    """
+
+    tile: TileRecord
+    head: int | None
+    head_by: str | None
+    head_kind: str | None
+    full_by: str | None
+    weak_by: str | None
+
+
+@dataclass(frozen=True)
+class SaveOutcome:
+    """What became of one save of a batch that skips tiles changed in the meantime.
+
+    Attributes
+    ----------
+    tile_id : int
+        The tile.
+    version : int or None
+        The version saved; None when nothing was saved for this tile.
+    problem : str or None
+        Why nothing was saved (another save since the named parent version, or a state
+        the life cycle does not leave for this save); None when saved.
+    """
+
+    tile_id: int
+    version: int | None
+    problem: str | None = None
 
 
 @dataclass(frozen=True)

@@ -14,7 +14,8 @@ stage:
 ``editing``               the store behind the mask editor
 ``agreeing``              agreement figures, report and contested tiles
 ``retraining``            a new head on every saved mask
-``exporting``             GeoJSON, PNG masks, manifest; importing masks
+``exporting``             GeoJSON, PNG masks, manifest
+``importing``             masks made elsewhere, saved tile by tile like any save
 ``views``                 read-only views for the edges (preview, places, lists)
 ``features``              encoder features and their cache (proposing, retraining)
 ``progress``              the ``progress(done, total, label)`` callback type
@@ -40,7 +41,8 @@ from labeler.workflow.annotating import (
     weak_label_tile_state,
 )
 from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
-from labeler.workflow.exporting import ExportResult, ImportResult, export_project, import_masks
+from labeler.workflow.exporting import ExportResult, export_project
+from labeler.workflow.importing import ImportResult, import_masks
 from labeler.workflow.picking import PickedTile, PickResult, pick_tiles
 from labeler.workflow.progress import Progress, no_progress
 from labeler.workflow.proposing import ProposeResult, propose

@@ -94,7 +94,8 @@ def add_images(
     known = {im.name for im in store.images()}
     for n, raw in enumerate(paths):
         src = Path(raw)
-        with open_image(src) as reader:
+        # the header's size against tiles.max_image_px, before any tile is made
+        with open_image(src, max_pixels=settings.tiles.max_image_px) as reader:
             info = reader.info
             sha = sha256_file(src)
             existing = store.image_by_sha(sha)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
 from collections import defaultdict
 from datetime import date, datetime
@@ -12,7 +13,7 @@ import numpy as np
 from labeler.agreement import AgreementSummary, ComparedImage, summarise_agreement
 from labeler.export.report import OverlaySource, ReportFiles, write_agreement_report
 from labeler.imagery.read import open_image
-from labeler.imagery.tiling import stitch
+from labeler.imagery.tiling import LazyRaster, StitchedMask, TileLayout
 from labeler.project import Project
 from labeler.states import CONTESTED, KIND_FULL, SETTLED
 from labeler.workflow.annotating import QueueRow, queue_rows
@@ -23,6 +24,10 @@ __all__ = ["compared_images", "agreement_summary", "write_agreement", "contested
 
 def compared_images(project: Project) -> list[ComparedImage]:
     """Every image that two or more annotators labelled, with their stitched masks.
+
+    The masks are :class:`~labeler.imagery.tiling.StitchedMask` objects: stitched
+    window by window as they are read (``mask[r0:r1]``), never whole, the tile masks
+    kept PNG-compressed until a window needs them.
 
     Each annotator's mask of an image is stitched from their newest full mask of every
     tile they saved (imported masks count like any other; a reviewer's settled masks
@@ -58,7 +63,9 @@ def compared_images(project: Project) -> list[ComparedImage]:
         masks, saved_at, tile_windows = {}, {}, {}
         for who, anns in by_who.items():
             windows = [tiles[a.tile_id].window for a in anns]
-            masks[who] = stitch([a.mask() for a in anns], windows, shape=image.shape)
+            masks[who] = StitchedMask(
+                TileLayout(windows, shape=image.shape), lambda k, anns=anns: anns[k].mask()
+            )
             saved_at[who] = max(a.created_at for a in anns)
             for a in anns:
                 tile_windows[str(a.tile_id)] = tiles[a.tile_id].window
@@ -141,13 +148,15 @@ def write_agreement(
     wanted = {e.image for e in summary.least_agreed(least)}
     by_name = {im.name: im for im in project.store.images()}
     overlays = {}
-    for item in items:
-        if item.image in wanted:
-            with open_image(project.image_path(by_name[item.image])) as reader:
-                overlays[item.image] = OverlaySource(rgb=reader.read(), masks=dict(item.masks))
-    files = write_agreement_report(
-        summary, Path(out_dir), schema=project.settings.classes, overlays=overlays, least=least
-    )
+    with contextlib.ExitStack() as stack:  # images read by window while the report draws
+        for item in items:
+            if item.image in wanted:
+                reader = stack.enter_context(open_image(project.image_path(by_name[item.image])))
+                rgb = LazyRaster(reader.read, shape=(*reader.info.shape, 3))
+                overlays[item.image] = OverlaySource(rgb=rgb, masks=dict(item.masks))
+        files = write_agreement_report(
+            summary, Path(out_dir), schema=project.settings.classes, overlays=overlays, least=least
+        )
     return summary, files
 
 

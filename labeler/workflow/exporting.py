@@ -1,42 +1,27 @@
-"""Export (GeoJSON, PNG class masks, manifest) and import of masks (``labeler export/import``)."""
+"""Export of masks: GeoJSON, PNG class masks, manifest (``labeler export``)."""
 
 from __future__ import annotations
 
+import contextlib
 import os
 import warnings
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
 from affine import Affine
 
-from labeler.classes import UNLABELLED
+from labeler.classes import UNLABELLED, ClassSchema
 from labeler.errors import LabelerError
-from labeler.export.geojson import (
-    NotRFC7946Warning,
-    TileInfo,
-    image_feature_collection,
-    merge_feature_collections,
-    write_geojson,
-)
-from labeler.export.importing import match_mask_to_image, read_mask_file
+from labeler.export.geojson import NotRFC7946Warning, TileInfo, image_features
+from labeler.export.geojson_stream import FeatureCollectionWriter
 from labeler.export.manifest import MANIFEST_NAME, manifest_row, write_manifest
 from labeler.export.pngmasks import write_image_masks
 from labeler.imagery.read import open_image
-from labeler.imagery.tiling import stitch
+from labeler.imagery.tiling import LazyRaster, StitchedMask, TileLayout
 from labeler.project import Project
-from labeler.states import (
-    ACCEPTED,
-    AMENDED,
-    IMPORTED,
-    KIND_FULL,
-    KIND_WEAK,
-    SETTLED,
-    STATES,
-    WEAK,
-)
-from labeler.store import NewAnnotation
+from labeler.settings import ExportSettings
+from labeler.states import ACCEPTED, AMENDED, IMPORTED, KIND_FULL, SETTLED, STATES
 from labeler.store.records import ImageRecord
 from labeler.workflow.progress import Progress, no_progress
 
@@ -47,21 +32,24 @@ __all__ = [
     "ExportResult",
     "image_export_mask",
     "export_project",
-    "ImportResult",
-    "import_masks",
 ]
 
 EXPORT_FORMATS = ("geojson", "masks", "all")
 #: Tile states whose saved masks are exported by default.
-DEFAULT_EXPORT_STATES = (ACCEPTED, AMENDED, SETTLED)
+DEFAULT_EXPORT_STATES = (ACCEPTED, AMENDED, IMPORTED, SETTLED)
 
 
 @dataclass(frozen=True)
 class ImageExport:
-    """One image's stitched export mask and where each tile's part came from."""
+    """One image's export mask and where each tile's part came from.
+
+    ``mask`` is a :class:`~labeler.imagery.tiling.StitchedMask` of shape (H, W), uint8,
+    255 where no exported tile covers: it is stitched window by window as it is read
+    (``mask[r0:r1]``), so a big image's mask is never held whole.
+    """
 
     image: ImageRecord
-    mask: np.ndarray  # (H, W) uint8, 255 where no exported tile covers
+    mask: StitchedMask
     windows: list
     tiles: list[TileInfo]
     filled_from_proposals: int
@@ -115,11 +103,12 @@ def image_export_mask(
     Returns
     -------
     ImageExport
-        The stitched (H, W) uint8 mask, the windows and tile details of every part.
+        The (H, W) uint8 mask, stitched when read, the windows and tile details of
+        every part. The tiles' masks stay PNG-compressed until a window needs them.
     """
     store = project.store
     wanted = set(states)
-    masks, windows, infos, tile_states = [], [], [], []
+    records, windows, infos, tile_states = [], [], [], []
     names = {m.id: m.name for m in store.model_versions()}
     filled = 0
     for tile in store.tiles(image_id=image.id):
@@ -128,7 +117,7 @@ def image_export_mask(
         if tile.state in wanted:
             ann = store.latest_annotation(tile.id, kind=KIND_FULL)
         if ann is not None:
-            masks.append(ann.mask())
+            records.append(ann)
             windows.append(tile.window)
             mv = None
             if ann.proposal_id is not None:
@@ -146,7 +135,7 @@ def image_export_mask(
         if proposals:
             prop = store.latest_proposal(tile.id)
             if prop is not None:
-                masks.append(prop.mask())
+                records.append(prop)
                 windows.append(tile.window)
                 infos.append(
                     TileInfo(
@@ -158,7 +147,8 @@ def image_export_mask(
                     )
                 )
                 filled += 1
-    mask = stitch(masks, windows, shape=image.shape, fill=UNLABELLED)
+    layout = TileLayout(windows, shape=image.shape)
+    mask = StitchedMask(layout, lambda k: records[k].mask(), fill=UNLABELLED)
     return ImageExport(
         image=image,
         mask=mask,
@@ -167,6 +157,62 @@ def image_export_mask(
         filled_from_proposals=filled,
         tile_states=tile_states,
     )
+
+
+def _write_image_geojson(
+    path: Path,
+    ex: ImageExport,
+    merged: FeatureCollectionWriter,
+    *,
+    pixel_coordinates: bool,
+    schema: ClassSchema,
+    settings: ExportSettings,
+) -> tuple[Path, int]:
+    """Write one image's GeoJSON file feature batch by batch, and the same into ``merged``.
+
+    Parameters
+    ----------
+    path : Path
+        The image's GeoJSON file.
+    ex : ImageExport
+        The image's export mask and tiles.
+    merged : FeatureCollectionWriter
+        The project's GeoJSON file, open.
+    pixel_coordinates : bool
+        Write pixel positions (also for an image without georeferencing).
+    schema : ClassSchema
+    settings : ExportSettings
+        Simplification tolerance and smallest region.
+
+    Returns
+    -------
+    path : Path
+        The file written.
+    count : int
+        Its features.
+    """
+    image = ex.image
+    georef = image.transform is not None and image.crs is not None
+    pixel = pixel_coordinates or not georef
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", NotRFC7946Warning)  # the CLI says it once
+        made = image_features(
+            ex.mask,
+            image=image.name,
+            transform=_transform(image),
+            crs=image.crs,
+            windows=ex.windows,
+            tiles=ex.tiles,
+            schema=schema,
+            pixel_coordinates=pixel,
+            simplify_tolerance_px=settings.simplify_tolerance_px,
+            min_area_px=settings.min_area_px,
+        )
+    with FeatureCollectionWriter(path, pixel_coordinates=pixel) as out:
+        for batch in made.batches():
+            out.write(batch)
+            merged.write(batch)
+    return path, out.count
 
 
 def export_project(
@@ -242,74 +288,74 @@ def export_project(
             )
     folder = Path(out)
     result = ExportResult(folder=folder)
-    collections = []
     rows = []
     es = project.settings.export
-    for n, image in enumerate(images):
-        progress(n, len(images), image.name)
-        ex = image_export_mask(project, image, states=states, proposals=proposals)
-        result_tiles = len(ex.tiles)
-        if result_tiles == 0:
-            result.skipped.append(image.name)
-            continue
-        result = _add(
-            result,
-            images=1,
-            tiles_exported=result_tiles,
-            tiles_from_proposals=ex.filled_from_proposals,
-        )
-        if do_geojson:
-            georef = image.transform is not None and image.crs is not None
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", NotRFC7946Warning)  # the CLI says it once
-                coll = image_feature_collection(
-                    ex.mask,
-                    image=image.name,
-                    transform=_transform(image),
-                    crs=image.crs,
-                    windows=ex.windows,
-                    tiles=ex.tiles,
-                    schema=project.settings.classes,
-                    pixel_coordinates=pixel_coordinates or not georef,
-                    simplify_tolerance_px=es.simplify_tolerance_px,
-                    min_area_px=es.min_area_px,
-                )
-            path = write_geojson(folder / "geojson" / f"{image.name}.geojson", coll)
-            result.geojson.append(Path(path))
-            result = _add(result, features=len(coll["features"]))
-            collections.append(coll)
-        if do_masks:
-            rgb = None
-            if previews:
-                with open_image(project.image_path(image)) as reader:
-                    rgb = reader.read()
-            files = write_image_masks(
-                folder / "masks",
-                image.name,
-                ex.mask,
-                schema=project.settings.classes,
-                image=rgb,
-                opacity=project.settings.editor.opacity,
+    with contextlib.ExitStack() as whole:
+        # the project's GeoJSON is written feature by feature beside the images' files,
+        # opened with the first image that has features to give
+        merged: FeatureCollectionWriter | None = None
+        for n, image in enumerate(images):
+            progress(n, len(images), image.name)
+            ex = image_export_mask(project, image, states=states, proposals=proposals)
+            result_tiles = len(ex.tiles)
+            if result_tiles == 0:
+                result.skipped.append(image.name)
+                continue
+            result = _add(
+                result,
+                images=1,
+                tiles_exported=result_tiles,
+                tiles_from_proposals=ex.filled_from_proposals,
             )
-            result.masks.append(Path(files.mask))
-            rows.append(
-                manifest_row(
-                    image_path=project.image_path(image),
-                    mask_path=files.mask,
-                    manifest_dir=folder,
-                    mask=ex.mask,
-                    image_sha256=image.sha256,
+            if do_geojson:
+                if merged is None:
+                    merged = whole.enter_context(
+                        FeatureCollectionWriter(
+                            folder / f"{project.root.resolve().name}.geojson",
+                            pixel_coordinates=pixel_coordinates,
+                        )
+                    )
+                path, count = _write_image_geojson(
+                    folder / "geojson" / f"{image.name}.geojson",
+                    ex,
+                    merged,
+                    pixel_coordinates=pixel_coordinates,
                     schema=project.settings.classes,
-                    tile_states=ex.tile_states,
-                    filled_from_proposals=ex.filled_from_proposals,
-                    seed=es.seed,
-                    val_share=es.val_share,
+                    settings=es,
                 )
-            )
-    if do_geojson and collections:
-        merged = merge_feature_collections(collections)
-        path = write_geojson(folder / f"{project.root.resolve().name}.geojson", merged)
-        result.geojson.append(Path(path))
+                result.geojson.append(path)
+                result = _add(result, features=count)
+            if do_masks:
+                with contextlib.ExitStack() as stack:
+                    rgb = None
+                    if previews:
+                        reader = stack.enter_context(open_image(project.image_path(image)))
+                        rgb = LazyRaster(reader.read, shape=(*reader.info.shape, 3))
+                    files = write_image_masks(
+                        folder / "masks",
+                        image.name,
+                        ex.mask,
+                        schema=project.settings.classes,
+                        image=rgb,
+                        opacity=project.settings.editor.opacity,
+                    )
+                result.masks.append(Path(files.mask))
+                rows.append(
+                    manifest_row(
+                        image_path=project.image_path(image),
+                        mask_path=files.mask,
+                        manifest_dir=folder,
+                        mask=ex.mask,
+                        image_sha256=image.sha256,
+                        schema=project.settings.classes,
+                        tile_states=ex.tile_states,
+                        filled_from_proposals=ex.filled_from_proposals,
+                        seed=es.seed,
+                        val_share=es.val_share,
+                    )
+                )
+    if merged is not None:
+        result.geojson.append(merged.path)
     if do_masks and rows:
         path = write_manifest(folder / MANIFEST_NAME, rows)
         result = _replace(result, manifest=Path(path))
@@ -334,131 +380,3 @@ def _replace(r: ExportResult, **changes) -> ExportResult:
     from dataclasses import replace
 
     return replace(r, **changes)
-
-
-@dataclass(frozen=True)
-class ImportResult:
-    """What ``labeler import`` saved."""
-
-    files: list[tuple[Path, str]]  # (mask file, image name)
-    full_tiles: int
-    weak_tiles: int
-    empty_tiles: int
-
-
-def import_masks(
-    project: Project,
-    files: Sequence[str | os.PathLike[str]],
-    *,
-    annotator: str,
-    image: str | None = None,
-    fill: str = "unlabelled",
-    progress: Progress = no_progress,
-) -> ImportResult:
-    """Read PNG class masks or GeoJSON polygons into annotations of ``annotator``.
-
-    Each file is matched to its image by name (``<stem>.png``, ``<stem>_mask.png``,
-    ``<stem>_annotation.png``, or ``.geojson``) or by ``image``, read and checked in the
-    image's pixel grid, and cut into tiles. A tile the file covers completely becomes a
-    full annotation (``imported``); a tile with unlabelled pixels (255) becomes a weak
-    label (kind :data:`~labeler.states.KIND_WEAK`, state ``weak``); a tile the file does
-    not touch is left alone. Every file is read and checked before anything is saved, and
-    all tiles are saved in ONE transaction: on any error nothing is imported.
-
-    Parameters
-    ----------
-    project : Project
-        An open project.
-    files : sequence of path-like
-        PNG class masks or GeoJSON files.
-    annotator : str
-        Whose masks these are.
-    image : str, optional
-        The image of a single file whose name does not tell.
-    fill : {"unlabelled", "soil"}
-        GeoJSON only: pixels no polygon covers stay unlabelled (a weak label), or are
-        soil (the polygons cover every non-soil pixel, as labeler's own export writes).
-    progress : Progress
-        Called as ``progress(done, total, label)`` per file.
-
-    Returns
-    -------
-    ImportResult
-        The files and their images, and how many tiles became full, weak or stayed
-        uncovered.
-
-    Raises
-    ------
-    InputError
-        Naming the file: unmatched name, wrong size, unknown class, invalid geometry,
-        wrong CRS, polygons outside the image.
-    """
-    if fill not in ("unlabelled", "soil"):
-        raise LabelerError(f"--fill: expected 'unlabelled' or 'soil', got {fill!r}")
-    if image is not None and len(files) != 1:
-        raise LabelerError("--image: name one mask file when giving its image explicitly")
-    store = project.store
-    schema = project.settings.classes
-    images = {im.name: im for im in store.images()}
-    if not images:
-        raise LabelerError("the project has no images; add them with 'labeler add' first")
-    planned: list[tuple[Path, ImageRecord, np.ndarray]] = []
-    for n, raw in enumerate(files):
-        path = Path(raw)
-        progress(n, len(files), f"reading {path.name}")
-        if image is not None:
-            if image not in images:
-                raise LabelerError(
-                    f"--image: {image!r} is not in this project; known: {', '.join(sorted(images))}"
-                )
-            name = image
-        else:
-            name = match_mask_to_image(path, images)
-        rec = images[name]
-        mask = read_mask_file(
-            path,
-            shape=rec.shape,
-            transform=_transform(rec),
-            crs=rec.crs,
-            schema=schema,
-            fill=0 if fill == "soil" else UNLABELLED,
-            image=name,
-        )
-        planned.append((path, rec, mask))
-    items: list[NewAnnotation] = []
-    full = weak = empty = 0
-    store.ensure_annotator(annotator)
-    for path, rec, mask in planned:
-        for tile in store.tiles(image_id=rec.id):
-            part = np.ascontiguousarray(mask[tile.window.slices])
-            unl = part == UNLABELLED
-            if unl.all():
-                empty += 1
-                continue
-            kind, state = (KIND_WEAK, WEAK) if unl.any() else (KIND_FULL, IMPORTED)
-            full += kind == KIND_FULL
-            weak += kind == KIND_WEAK
-            items.append(
-                NewAnnotation(
-                    tile_id=tile.id,
-                    annotator=annotator,
-                    mask=part,
-                    parent_version=store.lineage_head(tile.id, annotator),
-                    kind=kind,
-                    state=state,
-                    source=f"import:{path.name}",
-                )
-            )
-    store.save_annotations(items)
-    store.log_event(
-        "import",
-        annotator=annotator,
-        detail={"files": [str(p) for p, _, _ in planned], "full": full, "weak": weak},
-    )
-    progress(len(files), len(files), "saved")
-    return ImportResult(
-        files=[(p, r.name) for p, r, _ in planned],
-        full_tiles=full,
-        weak_tiles=weak,
-        empty_tiles=empty,
-    )

@@ -21,6 +21,7 @@ from labeler.imagery.tiling import Window
 from labeler.masks.coldstart import cold_start_proposal, detect_image_rows
 from labeler.metrics import class_fractions
 from labeler.project import Project
+from labeler.settings import Settings
 from labeler.store import NewProposal
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
 from labeler.workflow.features import encoder_and_cache, tile_features
@@ -28,8 +29,11 @@ from labeler.workflow.progress import Progress, no_progress
 
 __all__ = ["ROW_BLOCK_PX", "ProposeResult", "propose"]
 
-#: Crop rows are found on blocks of up to this many pixels a side (whole image if smaller).
-ROW_BLOCK_PX = 4096
+#: Tiles are proposed in blocks of up to this many pixels a side (by their top-left
+#: corner; a block reaches one tile further), and crop rows are found per block. 2048 px
+#: show at least 13 rows at a 150 px spacing, and keep the row search (about 45 bytes
+#: per pixel) and the block's pixels and features within a few hundred MB.
+ROW_BLOCK_PX = 2048
 
 
 @dataclass(frozen=True)
@@ -86,11 +90,95 @@ def _part(rgb: np.ndarray, block: Window, w: Window) -> np.ndarray:
     ]
 
 
+def _block_proposals(
+    rgb: np.ndarray,
+    block: Window,
+    members: Sequence[TileRecord],
+    feats: list,
+    *,
+    head,
+    settings: Settings,
+) -> list[NewProposal]:
+    """Proposals of the tiles of one block.
+
+    Parameters
+    ----------
+    rgb : ndarray, shape (block.height, block.width, 3), uint8
+        The block's pixels.
+    block : Window
+        The block in the image; holds every member tile.
+    members : sequence of TileRecord
+        The block's tiles to propose.
+    feats : list
+        Their encoder features, in order (:func:`labeler.workflow.features.tile_features`).
+    head : labeler.model.head.ProposalHead or None
+        The trained head, or None for the vegetation-index cold start.
+    settings : Settings
+        The project's settings (cold start, model, classes).
+
+    Returns
+    -------
+    list of NewProposal
+        One per member, in order.
+    """
+    schema = settings.classes
+    items: list[NewProposal] = []
+    if head is None:
+        rows = detect_image_rows(rgb, settings=settings.cold_start)
+        for t, f in zip(members, feats, strict=True):
+            w = t.window
+            part = _part(rgb, block, w)
+            mask = cold_start_proposal(
+                part,
+                settings=settings.cold_start,
+                rows=rows,
+                origin=(w.row - block.row, w.col - block.col),
+            )
+            emb = np.asarray(f[3], np.float32).mean(axis=(1, 2))
+            items.append(
+                NewProposal(
+                    tile_id=t.id,
+                    mask=mask,
+                    embedding=emb,
+                    class_fractions=class_fractions(mask, schema.indices).tolist(),
+                )
+            )
+    else:
+        from labeler.model.predict import propose_tiles
+
+        pixels = [_part(rgb, block, t.window) for t in members]
+        props = propose_tiles(
+            head,
+            feats,
+            tile_shapes=[t.shape for t in members],
+            mc_samples=settings.model.mc_samples,
+            seed=settings.model.seed,
+            images=pixels,
+        )
+        for t, p in zip(members, props, strict=True):
+            items.append(
+                NewProposal(
+                    tile_id=t.id,
+                    mask=p.mask,
+                    uncertainty=p.uncertainty,
+                    embedding=p.embedding,
+                    mean_entropy=p.mean_entropy,
+                    mean_margin=p.mean_margin,
+                    mean_least_confidence=p.mean_least_confidence,
+                    mean_bald=p.mean_bald,
+                    class_fractions=class_fractions(p.mask, schema.indices).tolist(),
+                )
+            )
+    return items
+
+
 def propose(project: Project, *, progress: Progress = no_progress) -> ProposeResult:
     """Propose masks for every tile whose proposal is older than the newest model.
 
-    Each image's proposals are stored in one transaction as soon as they are made, so
-    an interrupted run keeps what it finished. Unseen tiles become ``proposed``.
+    Tiles are proposed block by block (:data:`ROW_BLOCK_PX`): only one block's pixels,
+    features and proposals are held at a time, and each block's proposals are stored in
+    one transaction as soon as they are made, so an interrupted run keeps the blocks it
+    finished. Unseen tiles become ``proposed``.
 
     Parameters
     ----------
@@ -113,7 +201,6 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
     """
     store = project.store
     settings = project.settings
-    schema = settings.classes
     head_mv = store.latest_model_version(kind="head")
     encoder, cache = encoder_and_cache(project)
     head = None
@@ -155,7 +242,6 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
         tiles = todo.get(im.id)
         if not tiles:
             continue
-        items: list[NewProposal] = []
         with open_image(project.image_path(im)) as reader:
             if reader.info.shape != im.shape:
                 raise InputError(
@@ -173,57 +259,14 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
                         base + d, total, f"{name}: encoding"
                     ),
                 )
-                rgb = reader.read(block)
-                if head is None:
-                    rows = detect_image_rows(rgb, settings=settings.cold_start)
-                    for t, f in zip(members, feats, strict=True):
-                        w = t.window
-                        part = _part(rgb, block, w)
-                        mask = cold_start_proposal(
-                            part,
-                            settings=settings.cold_start,
-                            rows=rows,
-                            origin=(w.row - block.row, w.col - block.col),
-                        )
-                        emb = np.asarray(f[3], np.float32).mean(axis=(1, 2))
-                        items.append(
-                            NewProposal(
-                                tile_id=t.id,
-                                mask=mask,
-                                embedding=emb,
-                                class_fractions=class_fractions(mask, schema.indices).tolist(),
-                            )
-                        )
-                else:
-                    from labeler.model.predict import propose_tiles
-
-                    pixels = [_part(rgb, block, t.window) for t in members]
-                    props = propose_tiles(
-                        head,
-                        feats,
-                        tile_shapes=[t.shape for t in members],
-                        mc_samples=settings.model.mc_samples,
-                        seed=settings.model.seed,
-                        images=pixels,
-                    )
-                    for t, p in zip(members, props, strict=True):
-                        items.append(
-                            NewProposal(
-                                tile_id=t.id,
-                                mask=p.mask,
-                                uncertainty=p.uncertainty,
-                                embedding=p.embedding,
-                                mean_entropy=p.mean_entropy,
-                                mean_margin=p.mean_margin,
-                                mean_least_confidence=p.mean_least_confidence,
-                                mean_bald=p.mean_bald,
-                                class_fractions=class_fractions(p.mask, schema.indices).tolist(),
-                            )
-                        )
+                items = _block_proposals(
+                    reader.read(block), block, members, feats, head=head, settings=settings
+                )
+                del feats  # one block's features at a time
+                store.add_proposals(mv.id, items)
+                proposed += len(items)
                 done += len(members)
                 progress(done, total, f"{im.name}: proposed")
-        store.add_proposals(mv.id, items)
-        proposed += len(items)
     progress(total, total, "done")
     return ProposeResult(
         model_version=mv,

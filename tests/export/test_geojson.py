@@ -217,10 +217,10 @@ def test_empty_mask_gives_an_empty_collection_without_bbox():
     assert fc["features"] == [] and "bbox" not in fc
 
 
-def test_progress_is_called_per_class():
+def test_progress_is_called_per_strip_with_rows_done():
     calls = []
     collection(zoo_square(), progress=lambda done, total: calls.append((done, total)))
-    assert calls == [(1, 3), (2, 3), (3, 3)]
+    assert calls == [(8, 8)]  # one strip: the whole 8-row mask
 
 
 def test_pixel_coordinates_only_on_request_with_a_warning():

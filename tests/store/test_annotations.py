@@ -72,7 +72,7 @@ def test_weak_labels_keep_unlabelled_and_state(store):
         ("full", "accepted", None, "accepted"),
         ("full", "amended", None, "amended"),
         ("full", "settled", None, "settled"),
-        ("full", "imported", None, "amended"),
+        ("full", "imported", None, "imported"),
         ("full", "weak", None, None),
         ("scribble", "weak", None, None),
         ("scribble", "amended", None, None),
@@ -160,7 +160,7 @@ def test_save_annotations_all_or_nothing(store):
         (a.id, 1, "imported"),
         (c.id, 1, "amended"),
     ]
-    assert store.tile(a.id).state == "amended"  # an imported full mask leaves it amended
+    assert store.tile(a.id).state == "imported"  # an imported full mask: a state of its own
 
 
 def test_save_keeps_effort_and_origin(store):
@@ -183,3 +183,113 @@ def test_save_keeps_effort_and_origin(store):
         None,
     )
     assert rec.created_at.utcoffset().total_seconds() == 0
+
+
+# -- saves that skip tiles changed in the meantime (imports) ------------------------------
+
+
+def test_save_if_unchanged_saves_the_current_and_reports_the_stale(store):
+    a, b, c, d = store.tiles()[:4]
+    store.save_annotation(b.id, "tomas", _mask(b, 2), parent_version=None)  # b is now at v1
+    store.set_state(d.id, "parked")
+    items = [
+        NewAnnotation(a.id, "ines", _mask(a, 1), None, state="imported"),
+        NewAnnotation(b.id, "ines", _mask(b, 1), None, state="imported"),  # stale: v1 exists
+        NewAnnotation(c.id, "ines", _mask(c, 255), None, kind="scribble", state="weak"),
+        NewAnnotation(d.id, "ines", _mask(d, 3), None, state="imported"),
+    ]
+    out = store.save_if_unchanged(items)
+    assert [(o.tile_id, o.version) for o in out] == [(a.id, 1), (b.id, None), (c.id, 1), (d.id, 1)]
+    assert out[1].problem == (
+        f"tile {b.id}: this mask was based on version None, but version 1 was saved by tomas "
+        "in the meantime; nothing was overwritten. Reopen the tile to see both masks."
+    )
+    assert out[0].problem is None and out[2].problem is None
+    # tomas's mask is untouched; the saved tiles moved as a save moves them
+    assert [h.annotator for h in store.annotation_history(b.id)] == ["tomas"]
+    assert (store.tile(a.id).state, store.tile(c.id).state) == ("imported", "unseen")
+    assert store.tile(d.id).state == "imported"  # parked -> imported is allowed
+    assert store.latest_annotation(a.id).source == "editor"
+
+
+def test_save_if_unchanged_reports_a_refused_move_and_saves_the_rest(tmp_path):
+    store = make_store(tmp_path / "o.db", overlap_share=1.0)
+    a, b = store.tiles()[:2]
+    store.save_annotation(a.id, "tomas", _mask(a, 2), parent_version=None)
+    store.set_state(a.id, "contested")
+    out = store.save_if_unchanged([
+        NewAnnotation(a.id, "ines", _mask(a, 1), None, state="imported"),
+        NewAnnotation(b.id, "ines", _mask(b, 1), None, state="imported"),
+    ])
+    assert out[0].version is None and out[1].version == 1
+    assert out[0].problem.startswith(
+        f"tile {a.id}: cannot move from 'contested' to 'imported'; allowed from 'contested':"
+    ) and out[0].problem.endswith("; nothing was saved")
+    assert store.tile(a.id).state == "contested" and len(store.annotation_history(a.id)) == 1
+    store.close()
+
+
+def test_save_if_unchanged_takes_a_generator_and_saves_nothing_when_it_fails(store):
+    tiles = store.tiles()
+    taken = []
+
+    def items(fail_at):
+        for k, t in enumerate(tiles):
+            if k == fail_at:
+                raise ValueError("the file broke off")
+            taken.append(t.id)
+            yield NewAnnotation(t.id, "ines", _mask(t, 1), None, state="imported")
+
+    with pytest.raises(ValueError, match="the file broke off"):
+        store.save_if_unchanged(items(fail_at=4))
+    assert taken == [t.id for t in tiles[:4]]
+    assert store.annotations(kind=None) == []  # nothing of the first four was written
+    with pytest.raises(ValueError, match="not class indices"):
+        store.save_if_unchanged([NewAnnotation(tiles[0].id, "ines", _mask(tiles[0], 9), None)])
+    assert store.annotations(kind=None) == []
+    assert store.save_if_unchanged(iter(())) == []
+    out = store.save_if_unchanged(items(fail_at=None))
+    assert [o.version for o in out] == [1] * len(tiles)
+
+
+def test_a_batch_larger_than_one_chunk_of_statements(tmp_path):
+    # 729 tiles (27 x 27 of 256 px) pass the 500-id chunks of the batched statements
+    from labeler.imagery.tiling import tile_grid
+    from labeler.store import NewImage, Store
+
+    store = Store(f"sqlite:///{tmp_path / 'big.db'}", create=True)
+    store.add_image(
+        NewImage(name="field", path="images/field.tif", sha256="c" * 64, width=6080,
+                 height=6080, bands=3, dtype="uint8"),
+        tile_grid(6080, 6080, size=256, overlap=32),
+    )
+    tiles = store.tiles()
+    assert len(tiles) == 729
+    store.save_annotation(tiles[600].id, "tomas", _mask(tiles[600], 2), parent_version=None)
+    store.hold(tiles[700].id, "ines")
+    out = store.save_if_unchanged(
+        NewAnnotation(t.id, "ines", _mask(t, 1), None, state="imported") for t in tiles
+    )
+    saved = [o.tile_id for o in out if o.version == 1]
+    assert len(saved) == 728 and [o.tile_id for o in out if o.version is None] == [tiles[600].id]
+    assert store.state_counts()["imported"] == 728
+    assert store.tile(tiles[700].id).held_by is None  # her save ends her hold, as any save
+    assert all(store.assigned(t.id) == ["ines"] for t in tiles[695:705])
+    assert len(store.events(kind="save")) == 1 + 728
+    store.close()
+
+
+def test_saves_of_one_tile_chained_in_one_batch(store):
+    a = store.tiles()[0]
+    first, second = store.save_annotations([
+        NewAnnotation(a.id, "ines", _mask(a, 1), None),
+        NewAnnotation(a.id, "ines", _mask(a, 2), 1),  # based on the save just before it
+    ])
+    assert (first.version, second.version, second.parent_version) == (1, 2, 1)
+    # the second names version 1, but the first of the batch comes as version 3
+    with pytest.raises(ConflictError, match="based on version 1, but version 3 was saved"):
+        store.save_annotations([
+            NewAnnotation(a.id, "ines", _mask(a, 3), 2),
+            NewAnnotation(a.id, "tomas", _mask(a, 3), 1),
+        ])
+    assert [h.version for h in store.annotation_history(a.id)] == [1, 2]  # none of them

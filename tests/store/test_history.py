@@ -101,3 +101,53 @@ def test_damaged_bytes_named_on_read(store):
         ValueError, match=rf"^annotation v1 of tile {tile.id}: stored mask is not a readable PNG"
     ):
         rec.mask()
+
+
+def test_tile_work_agrees_with_lineage_head_and_latest_annotation(tmp_path):
+    # reference: the one-tile queries lineage_head and latest_annotation, tile by tile
+    store = make_store(tmp_path / "w.db", overlap_share=0.5)
+    tiles = store.tiles()
+    assert {t.overlap for t in tiles} == {True, False}
+    rng = np.random.default_rng(13)
+    names = ["ines", "tomas", "rev"]
+    for _ in range(40):
+        t = tiles[int(rng.integers(len(tiles)))]
+        who = names[int(rng.integers(2))]
+        kind = "full" if rng.random() < 0.7 else "scribble"
+        parent = store.lineage_head(t.id, who)
+        state = "amended" if kind == "full" else "weak"
+        store.save_annotation(t.id, who, _mask(t, 1), parent_version=parent, kind=kind,
+                              state=state)
+    settle = next(t for t in tiles if t.overlap and store.annotation_history(t.id))
+    store.set_state(settle.id, "contested")
+    store.save_annotation(settle.id, "rev", _mask(settle, 2),
+                          parent_version=store.lineage_head(settle.id, "rev", settling=True),
+                          state="settled")
+    for who in [*names, "nobody-yet"]:
+        work = store.tile_work(who)
+        assert [w.tile.id for w in work] == [t.id for t in tiles]
+        for w in work:
+            head = store.lineage_head(w.tile.id, who)
+            assert w.head == head
+            if head is not None:
+                rec = next(a for a in store.annotation_history(w.tile.id) if a.version == head)
+                assert (w.head_by, w.head_kind) == (rec.annotator, rec.kind)
+            full = store.latest_annotation(w.tile.id, kind="full")
+            weak = store.latest_annotation(w.tile.id, kind="scribble")
+            assert w.full_by == (full.annotator if full else None)
+            assert w.weak_by == (weak.annotator if weak else None)
+            assert w.tile == store.tile(w.tile.id)
+    assert store.tile_work("ines", image_id=999) == []
+    assert len(store.tile_work("ines", image_id=tiles[0].image_id)) == len(tiles)
+    store.close()
+
+
+def test_annotations_at_reads_the_named_versions(store):
+    a, b = store.tiles()[:2]
+    for k in range(3):
+        store.save_annotation(a.id, "ines", _mask(a, k), parent_version=k or None)
+    store.save_annotation(b.id, "tomas", _mask(b, 3), parent_version=None)
+    got = store.annotations_at([(a.id, 2), (b.id, 1), (b.id, 7), (a.id, 2)])
+    assert set(got) == {(a.id, 2), (b.id, 1)}  # version 7 does not exist
+    assert (got[(a.id, 2)].mask() == 1).all() and got[(b.id, 1)].annotator == "tomas"
+    assert store.annotations_at([]) == {}

@@ -166,8 +166,8 @@ def test_every_state_change_passes_the_life_cycle_check(tmp_path, moves):
         ("accepted", "amended"),
         ("amended", "contested"),
         ("contested", "settled"),
-        ("unseen", "amended"),
-        ("amended", "proposed"),
+        ("unseen", "imported"),
+        ("imported", "proposed"),
     }
     assert store.tile(e.id).state == "unseen" and store.tile(f.id).state == "unseen"
     store.close()

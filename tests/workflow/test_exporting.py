@@ -62,13 +62,22 @@ def test_import_truth_export_and_round_trip(demo2, tmp_path):
     manifest = [json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()]
     assert len(manifest) == 1 and manifest[0]["width"] == 1024 and manifest[0]["height"] == 768
     # import the exported GeoJSON back: the polygons cover every non-soil pixel (fill soil)
+    exported_geojson = out / "geojson" / f"{name}.geojson"
+    back = import_masks(project, [exported_geojson], annotator="roundtrip", fill="soil")
+    # survey's masks are reviewed work: only the overlap tiles (own lineages) take the import
+    image_id = {im.name: im.id for im in project.store.images()}[name]
+    overlap = {t.id for t in project.store.tiles(image_id=image_id, overlap=True)}
+    assert set(back.saved_full) == overlap and len(overlap) < 20
+    assert len(back.skipped["others"]) == 20 - len(overlap)
     back = import_masks(
-        project, [out / "geojson" / f"{name}.geojson"], annotator="roundtrip", fill="soil"
+        project, [exported_geojson], annotator="roundtrip", fill="soil", replace=True
     )
-    assert back.full_tiles == 20
+    assert back.full_tiles == back.weak_tiles + len(back.replaced) == 20 - len(overlap)
+    assert set(back.unchanged) == overlap  # already saved by the first import
     from labeler.workflow import compared_images
 
-    masks = {c.image: c for c in compared_images(project)}[name].masks
+    lazy = {c.image: c for c in compared_images(project)}[name].masks
+    masks = {who: m[:] for who, m in lazy.items()}  # stitched when read
     # the export drops regions below min_area_px (8-connected, scipy.ndimage.label as the
     # reference); with those set to soil the round trip is pixel-exact
     expected = truth.copy()
