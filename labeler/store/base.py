@@ -19,9 +19,15 @@ from sqlalchemy.exc import OperationalError
 from labeler.classes import DEFAULT_SCHEMA, ClassSchema
 from labeler.errors import LabelerError
 from labeler.store import schema as t
-from labeler.store.dialect import integrity_check, make_engine
+from labeler.store.dialect import (
+    insert_ignoring,
+    integrity_check,
+    is_sqlite,
+    make_engine,
+    shown_url,
+)
 
-__all__ = ["StoreBase", "now", "as_utc"]
+__all__ = ["StoreBase", "now", "clock", "as_utc"]
 
 
 def now() -> datetime:
@@ -33,6 +39,29 @@ def now() -> datetime:
         UTC, timezone-aware.
     """
     return datetime.now(UTC)
+
+
+def clock(conn: sa.Connection) -> datetime:
+    """The time by the database's clock: the server's for PostgreSQL.
+
+    Every machine of a team stamps rows (and judges whether a hold has expired) by one
+    clock, the server's, so a machine whose clock runs wrong changes nothing. SQLite
+    runs on this machine, so its clock is this machine's.
+
+    Parameters
+    ----------
+    conn : sqlalchemy.Connection
+        An open connection (inside a transaction the server's time is the time the
+        transaction began).
+
+    Returns
+    -------
+    datetime
+        UTC, timezone-aware.
+    """
+    if conn.dialect.name == "sqlite":
+        return now()
+    return as_utc(conn.execute(sa.select(sa.func.now())).scalar()).astimezone(UTC)
 
 
 def as_utc(value: datetime | None) -> datetime | None:
@@ -80,10 +109,29 @@ class StoreBase:
         self.schema = schema
         self.engine = make_engine(url)
         try:
+            self._open(create=create)
+        except BaseException:
+            self.engine.dispose()  # a refused database keeps no connection open
+            raise
+
+    @property
+    def shown_url(self) -> str:
+        """The database URL with its password hidden, for messages."""
+        return shown_url(self.url)
+
+    @property
+    def is_sqlite(self) -> bool:
+        """Whether the database is the embedded SQLite file (else a server)."""
+        return is_sqlite(self.engine)
+
+    def _open(self, *, create: bool) -> None:
+        url = self.shown_url
+        try:
             insp = sa.inspect(self.engine)
             has_tables = insp.has_table("meta")
         except OperationalError as exc:
-            raise LabelerError(f"store {url}: cannot open the database ({exc.orig})") from None
+            reason = str(exc.orig).strip().splitlines()[0] if str(exc.orig).strip() else "?"
+            raise LabelerError(f"store {url}: cannot open the database ({reason})") from None
         if not has_tables:
             if not create:
                 raise LabelerError(
@@ -158,7 +206,7 @@ class StoreBase:
         """Append one row to the event log inside the caller's transaction."""
         conn.execute(
             t.events.insert().values(
-                at=now(), kind=kind, tile_id=tile_id, annotator_id=annotator_id, detail=detail
+                at=clock(conn), kind=kind, tile_id=tile_id, annotator_id=annotator_id, detail=detail
             )
         )
 
@@ -176,8 +224,13 @@ class StoreBase:
         ).scalar()
         if found is not None:
             return int(found)
-        res = conn.execute(t.annotators.insert().values(name=name, created_at=now()))
-        return int(res.inserted_primary_key[0])
+        # insert-or-read: another process may add the same name at the same moment
+        insert_ignoring(
+            conn, t.annotators, {"name": name, "created_at": clock(conn)}, keys=["name"]
+        )
+        return int(
+            conn.execute(sa.select(t.annotators.c.id).where(t.annotators.c.name == name)).scalar()
+        )
 
     @staticmethod
     def _known_annotator_id(conn: sa.Connection, name: str) -> int | None:

@@ -25,7 +25,8 @@ from labeler.states import (
     UNSEEN,
 )
 from labeler.store import schema as t
-from labeler.store.base import now
+from labeler.store.base import clock
+from labeler.store.dialect import insert_ignoring
 from labeler.store.images import ImagesMixin
 from labeler.store.records import TileRecord
 
@@ -56,7 +57,10 @@ def checked_move(state_from: str, state_to: str, *, tile_id: int) -> None:
 
 
 def _current_state(conn: sa.Connection, tile_id: int) -> str:
-    cur = conn.execute(sa.select(t.tiles.c.state).where(t.tiles.c.id == tile_id)).scalar()
+    """The tile's state, its row locked until the caller's transaction ends."""
+    cur = conn.execute(
+        sa.select(t.tiles.c.state).where(t.tiles.c.id == tile_id).with_for_update()
+    ).scalar()
     if cur is None:
         raise NotFoundError(f"tile {tile_id} is not in this project")
     return cur
@@ -103,7 +107,7 @@ class HoldsMixin(ImagesMixin):
             conn.execute(
                 t.tiles.update()
                 .where(t.tiles.c.id == tile_id)
-                .values(state=state, held_by=held, updated_at=now())
+                .values(state=state, held_by=held, updated_at=clock(conn))
             )
             self._event(
                 conn,
@@ -148,7 +152,7 @@ class HoldsMixin(ImagesMixin):
             conn.execute(
                 t.tiles.update()
                 .where(t.tiles.c.id == tile_id)
-                .values(state=new, held_by=aid, updated_at=now())
+                .values(state=new, held_by=aid, updated_at=clock(conn))
             )
             self._assign(conn, tile_id, aid)
             self._event(
@@ -193,7 +197,7 @@ class HoldsMixin(ImagesMixin):
             conn.execute(
                 t.tiles.update()
                 .where(t.tiles.c.id == tile_id)
-                .values(state=new, held_by=None, updated_at=now())
+                .values(state=new, held_by=None, updated_at=clock(conn))
             )
             self._event(conn, "release", tile_id=tile_id, annotator_id=aid, detail={"to": new})
         return self.tile(tile_id)
@@ -202,18 +206,12 @@ class HoldsMixin(ImagesMixin):
     @staticmethod
     def _assign(conn: sa.Connection, tile_id: int, annotator_id: int) -> None:
         """Record that the tile was handed to the annotator (once)."""
-        exists = conn.execute(
-            sa.select(t.assignments.c.tile_id).where(
-                (t.assignments.c.tile_id == tile_id)
-                & (t.assignments.c.annotator_id == annotator_id)
-            )
-        ).first()
-        if exists is None:
-            conn.execute(
-                t.assignments.insert().values(
-                    tile_id=tile_id, annotator_id=annotator_id, assigned_at=now()
-                )
-            )
+        insert_ignoring(
+            conn,
+            t.assignments,
+            {"tile_id": tile_id, "annotator_id": annotator_id, "assigned_at": clock(conn)},
+            keys=["tile_id", "annotator_id"],
+        )
 
     def assigned(self, tile_id: int) -> list[str]:
         """Annotators the tile has been handed to (by a hold or a save).
