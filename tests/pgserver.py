@@ -79,8 +79,16 @@ class PgServer:
     def stop(self) -> None:
         """Stop the server (fast shutdown) and remove its folder."""
         subprocess.run(
-            [*self.run_as, str(self.bin_dir / "pg_ctl"), "-D", str(self.root / "data"),
-             "-m", "fast", "-w", "stop"],
+            [
+                *self.run_as,
+                str(self.bin_dir / "pg_ctl"),
+                "-D",
+                str(self.root / "data"),
+                "-m",
+                "fast",
+                "-w",
+                "stop",
+            ],
             check=False,
             capture_output=True,
         )
@@ -104,12 +112,32 @@ def start_server(bin_dir: Path) -> PgServer:
     port = _free_port()
     data, log = root / "data", root / "server.log"
     steps = [
-        [str(bin_dir / "initdb"), "-D", str(data), "-U", "postgres", "--auth=trust",
-         "--no-sync", "-E", "UTF8", "--locale=C"],
-        [str(bin_dir / "pg_ctl"), "-D", str(data), "-l", str(log), "-w", "-t", "60", "-o",
-         f"-p {port} -k {root} -c listen_addresses=127.0.0.1 -c fsync=off "
-         "-c synchronous_commit=off -c full_page_writes=off -c max_connections=100",
-         "start"],
+        [
+            str(bin_dir / "initdb"),
+            "-D",
+            str(data),
+            "-U",
+            "postgres",
+            "--auth=trust",
+            "--no-sync",
+            "-E",
+            "UTF8",
+            "--locale=C",
+        ],
+        [
+            str(bin_dir / "pg_ctl"),
+            "-D",
+            str(data),
+            "-l",
+            str(log),
+            "-w",
+            "-t",
+            "60",
+            "-o",
+            f"-p {port} -k {root} -c listen_addresses=127.0.0.1 -c fsync=off "
+            "-c synchronous_commit=off -c full_page_writes=off -c max_connections=100",
+            "start",
+        ],
     ]
     for cmd in steps:
         done = subprocess.run([*run_as, *cmd], capture_output=True, text=True, check=False)
