@@ -59,6 +59,22 @@ def backend(request):
 
 
 @pytest.fixture
+def project_store(request, backend, monkeypatch):
+    """Projects made in this test use the test's backend (None: SQLite in the folder).
+
+    On PostgreSQL the environment names an empty database (``LABELER_STORE_URL``, which
+    overrides the settings file, subprocesses included); on SQLite each project keeps
+    its own ``labeler.db``.
+    """
+    if backend == "sqlite":
+        monkeypatch.delenv("LABELER_STORE_URL", raising=False)
+        return None
+    url = request.getfixturevalue("pg_url")
+    monkeypatch.setenv("LABELER_STORE_URL", url)
+    return url
+
+
+@pytest.fixture
 def store_url(request, backend, tmp_path):
     """An empty database of the test's backend (SQLite file or PostgreSQL database)."""
     if backend == "sqlite":

@@ -1,4 +1,5 @@
-"""A small project with one image of 2 x 3 tiles and a fake proposer (no model)."""
+"""A small project with one image of 2 x 3 tiles and a fake proposer (no model), on each
+store backend (``project_store``)."""
 
 import numpy as np
 import pytest
@@ -54,14 +55,14 @@ def _small_project(tmp_path, settings_text=None):
 
 
 @pytest.fixture
-def project(tmp_path):
+def project(tmp_path, project_store):
     p = _small_project(tmp_path)
     yield p
     p.close()
 
 
 @pytest.fixture
-def overlap_project(tmp_path):
+def overlap_project(tmp_path, project_store):
     """Every tile is an overlap tile; agreement threshold 0.6."""
     p = _small_project(tmp_path, "[agreement]\noverlap_share = 1.0\nthreshold = 0.6\n")
     yield p
