@@ -137,20 +137,29 @@ class StoreBase:
                 raise LabelerError(
                     f"store {url}: no labeler project database here; run 'labeler init' first"
                 )
+            from labeler.store.migrate import stamp_new  # alembic loads only here
+
             with self._write() as conn:
                 t.metadata.create_all(conn)
                 conn.execute(
                     t.meta.insert(), [{"key": "schema_version", "value": str(t.SCHEMA_VERSION)}]
                 )
+                stamp_new(conn)
         else:
             with self.engine.connect() as conn:
                 found = conn.execute(
                     sa.select(t.meta.c.value).where(t.meta.c.key == "schema_version")
                 ).scalar()
             if found != str(t.SCHEMA_VERSION):
+                older = found is not None and found.isdigit() and int(found) < t.SCHEMA_VERSION
+                fix = (
+                    "upgrade it with 'labeler upgrade DIR' (a SQLite file is backed up first)"
+                    if older
+                    else "use the matching labeler release"
+                )
                 raise LabelerError(
                     f"store {url}: database schema version {found}, this labeler reads "
-                    f"{t.SCHEMA_VERSION}; use the matching labeler release"
+                    f"{t.SCHEMA_VERSION}; {fix}"
                 )
 
     # -- transactions -------------------------------------------------------------------
