@@ -40,6 +40,10 @@ Sections and options (defaults in brackets):
     ``simplify_tolerance_px`` [0.5]; ``min_area_px`` [8]; ``val_share`` [0.2]; ``seed`` [0].
 ``[editor]``
     ``autosave_seconds`` [5]; ``opacity`` [0.45].
+``[holds]``
+    ``lease_minutes`` [30] a hold lapses after this long without a heartbeat from its
+    editor (by the database's clock); ``heartbeat_seconds`` [60] how often an open
+    editor renews its hold.
 ``[classes]``
     optional table ``name = {index = i, colour = "#RRGGBB"}`` replacing the default schema
     of :mod:`labeler.classes`.
@@ -195,6 +199,23 @@ class ExportSettings:
 
 
 @dataclass(frozen=True)
+class HoldSettings:
+    lease_minutes: float = 30.0
+    heartbeat_seconds: float = 60.0
+
+    def __post_init__(self) -> None:
+        if not self.lease_minutes > 0:
+            raise ValueError(
+                f"holds.lease_minutes: expected a positive number of minutes, got {self.lease_minutes}"
+            )
+        if not 0 < self.heartbeat_seconds < self.lease_minutes * 60:
+            raise ValueError(
+                "holds.heartbeat_seconds: expected a positive number of seconds below the "
+                f"lease ({self.lease_minutes * 60:g} s), got {self.heartbeat_seconds}"
+            )
+
+
+@dataclass(frozen=True)
 class EditorSettings:
     autosave_seconds: float = 5.0
     opacity: float = 0.45
@@ -215,6 +236,7 @@ _SECTIONS = {
     "agreement": AgreementSettings,
     "export": ExportSettings,
     "editor": EditorSettings,
+    "holds": HoldSettings,
 }
 
 
@@ -231,6 +253,7 @@ class Settings:
     agreement: AgreementSettings = field(default_factory=AgreementSettings)
     export: ExportSettings = field(default_factory=ExportSettings)
     editor: EditorSettings = field(default_factory=EditorSettings)
+    holds: HoldSettings = field(default_factory=HoldSettings)
     classes: ClassSchema = DEFAULT_SCHEMA
 
     @property
@@ -398,6 +421,10 @@ seed = 0
 [editor]
 autosave_seconds = 5
 opacity = 0.45
+
+[holds]
+lease_minutes = 30        # a hold lapses after this long without a sign from its editor
+heartbeat_seconds = 60    # how often an open editor renews its hold
 
 # [classes]               # replaces the default schema when present
 # soil = { index = 0 }

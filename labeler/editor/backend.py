@@ -108,6 +108,10 @@ class EditorBackend(Protocol):
         """Forget the draft (no error when there is none)."""
         ...
 
+    def heartbeat(self) -> bool:
+        """Renew the hold on the tile; False when it is no longer held by this editor."""
+        ...
+
 
 @dataclass(frozen=True)
 class SavedLabel:
@@ -151,6 +155,7 @@ class MemoryBackend:
     state: str = AMENDED
     saved: list[SavedLabel] = field(default_factory=list)
     drafts_written: int = 0
+    heartbeats: int = 0
 
     def save(self, mask: np.ndarray, *, kind: str, actions: int, seconds: float) -> str:
         """Keep the label in :attr:`saved` and return :attr:`state` (see the class)."""
@@ -182,3 +187,8 @@ class MemoryBackend:
     def discard_draft(self) -> None:
         """Forget the draft."""
         self.draft = None
+
+    def heartbeat(self) -> bool:
+        """Count the renewal; the hold is always there."""
+        self.heartbeats += 1
+        return True

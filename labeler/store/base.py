@@ -27,7 +27,10 @@ from labeler.store.dialect import (
     shown_url,
 )
 
-__all__ = ["StoreBase", "now", "clock", "as_utc"]
+__all__ = ["StoreBase", "now", "clock", "as_utc", "DEFAULT_LEASE_SECONDS"]
+
+#: How long a hold lasts without a heartbeat from its editor: 30 minutes.
+DEFAULT_LEASE_SECONDS = 1800.0
 
 
 def now() -> datetime:
@@ -94,6 +97,8 @@ class StoreBase:
     create : bool
         Create the tables when the database is new. Without it, opening a database
         that has no tables is an error (a mistyped project path must not create one).
+    lease_seconds : float
+        How long a hold lasts without a heartbeat from its editor (default 30 min).
 
     Raises
     ------
@@ -103,10 +108,18 @@ class StoreBase:
     """
 
     def __init__(
-        self, url: str, *, schema: ClassSchema = DEFAULT_SCHEMA, create: bool = False
+        self,
+        url: str,
+        *,
+        schema: ClassSchema = DEFAULT_SCHEMA,
+        create: bool = False,
+        lease_seconds: float = DEFAULT_LEASE_SECONDS,
     ) -> None:
+        if not lease_seconds >= 0:
+            raise ValueError(f"lease_seconds: expected 0 or more seconds, got {lease_seconds}")
         self.url = url
         self.schema = schema
+        self.lease_seconds = float(lease_seconds)
         self.engine = make_engine(url)
         try:
             self._open(create=create)

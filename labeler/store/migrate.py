@@ -105,9 +105,7 @@ def sqlite_backup(url: str) -> Path:
 def _found_version(conn: sa.Connection) -> int | None:
     if not sa.inspect(conn).has_table("meta"):
         return None
-    value = conn.execute(
-        sa.select(t.meta.c.value).where(t.meta.c.key == "schema_version")
-    ).scalar()
+    value = conn.execute(sa.select(t.meta.c.value).where(t.meta.c.key == "schema_version")).scalar()
     return None if value is None else int(value)
 
 

@@ -40,7 +40,13 @@ from labeler.workflow.annotating import (
     save_tile_mask,
     weak_label_tile_state,
 )
-from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
+from labeler.workflow.editing import (
+    EditStart,
+    StoreBackend,
+    begin_edit,
+    end_edit,
+    release_tile,
+)
 from labeler.workflow.exporting import ExportResult, export_project
 from labeler.workflow.importing import ImportResult, import_masks
 from labeler.workflow.picking import PickedTile, PickResult, pick_tiles
@@ -86,6 +92,7 @@ __all__ = [
     "StoreBackend",
     "begin_edit",
     "end_edit",
+    "release_tile",
     "ExportResult",
     "ImportResult",
     "export_project",

@@ -6,7 +6,8 @@ import pytest
 from affine import Affine
 
 from labeler.imagery.write import write_geotiff
-from labeler.project import init_project, open_project
+from labeler.project import init_project, open_project, team_settings
+from labeler.settings import load_settings
 from labeler.store import NewProposal
 from labeler.workflow import add_images
 
@@ -49,6 +50,8 @@ def _small_project(tmp_path, settings_text=None):
     init_project(root).close()
     if settings_text is not None:
         (root / "labeler.toml").write_text(settings_text)
+        with open_project(root) as p:  # on a server the team's settings live in the database
+            p.store.set_team_settings(team_settings(load_settings(root)))
     p = open_project(root)
     add_images(p, [tmp_path / "east-block.tif"])
     return p
