@@ -21,6 +21,11 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import BinaryIO
 
+try:  # POSIX: claims are locked, so a claim whose process died can be told from a live one
+    import fcntl
+except ImportError:  # pragma: no cover - Windows: claims are never judged stale
+    fcntl = None
+
 from labeler.errors import InputError, LabelerError
 
 __all__ = [
@@ -31,6 +36,11 @@ __all__ = [
     "atomic_writer",
     "remove_marked_folder",
     "sha256_file",
+    "staged_folder",
+    "check_output_folder",
+    "Claim",
+    "claim",
+    "claim_is_live",
 ]
 
 
@@ -42,9 +52,7 @@ def file_mode() -> int:
     int
         ``0o666 & ~umask``, the mode ``open(path, "w")`` would give a new file.
     """
-    mask = os.umask(0)
-    os.umask(mask)
-    return 0o666 & ~mask
+    return 0o666 & ~_umask()
 
 
 def _temporary_beside(target: Path, suffix: str) -> tuple[int, str]:
@@ -237,3 +245,186 @@ def atomic_writer(path: str | os.PathLike[str], *, fsync: bool = True) -> Iterat
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
         raise
+
+
+def check_output_folder(folder: str | os.PathLike[str], *, what: str = "output folder") -> Path:
+    """Check that ``folder`` is, or can become, a folder; nothing is created.
+
+    Parameters
+    ----------
+    folder : path-like
+        Where a command is about to write.
+    what : str
+        How messages name it (e.g. ``"--out"``).
+
+    Returns
+    -------
+    Path
+
+    Raises
+    ------
+    LabelerError
+        If ``folder`` is a file, or one of its parents is a file (no folder can be made
+        under a file).
+    """
+    target = Path(folder)
+    if target.exists() and not target.is_dir():
+        raise LabelerError(f"{what} {target}: is a file, expected a folder; choose another folder")
+    for parent in target.parents:
+        if parent.exists():
+            if not parent.is_dir():
+                raise LabelerError(
+                    f"{what} {target}: {parent} is a file, so no folder can be made under it; "
+                    "choose another folder"
+                )
+            break
+    return target
+
+
+@contextmanager
+def staged_folder(folder: str | os.PathLike[str]) -> Iterator[Path]:
+    """Write a set of files all or nothing: into a staging folder, moved into place at the end.
+
+    The caller writes into the yielded folder (a new hidden folder beside ``folder``, on
+    the same file system and at the same depth, so relative paths computed in it hold
+    for ``folder`` too). When the block ends normally every file is renamed into
+    ``folder`` (replacing files of the same name, keeping others); when it raises,
+    the staging folder is deleted and ``folder`` is as it was. Folders created for it
+    are removed again on failure.
+
+    Parameters
+    ----------
+    folder : path-like
+        The final folder (created if missing).
+
+    Yields
+    ------
+    Path
+        The staging folder to write into.
+    """
+    target = Path(folder)
+    made = [p for p in (target.parent, *target.parent.parents) if not p.exists()]
+    target.parent.mkdir(parents=True, exist_ok=True)
+    stage = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".staging", dir=target.parent))
+    try:
+        os.chmod(stage, 0o777 & ~_umask())  # mkdtemp makes 0700; give the usual mode
+        yield stage
+        if not target.exists():
+            os.replace(stage, target)
+            return
+        for path in sorted(stage.rglob("*")):
+            if path.is_dir():
+                continue
+            final = target / path.relative_to(stage)
+            final.parent.mkdir(parents=True, exist_ok=True)
+            os.replace(path, final)
+        shutil.rmtree(stage)
+    except BaseException:
+        shutil.rmtree(stage, ignore_errors=True)
+        for parent in made:  # nearest first; only if still empty
+            try:
+                parent.rmdir()
+            except OSError:
+                break
+        raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+class Claim:
+    """A marker file this process holds (see :func:`claim`); :meth:`release` drops it."""
+
+    def __init__(self, path: Path, fd: int) -> None:
+        self.path = path
+        self._fd = fd
+
+    def release(self) -> None:
+        """Delete the marker and let go of it (a second call does nothing)."""
+        if self._fd < 0:
+            return
+        try:
+            self.path.unlink(missing_ok=True)
+        finally:
+            os.close(self._fd)
+            self._fd = -1
+
+    def __enter__(self) -> Claim:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.release()
+
+
+def claim(path: str | os.PathLike[str], *, text: str = "") -> Claim | None:
+    """Create the marker file ``path`` unless it exists, and hold it while this process lives.
+
+    A claim reserves a name among processes (creating it is atomic: only one of two
+    processes gets it) and says "work in progress": the marker is locked (``flock``) from
+    the moment it appears until :meth:`Claim.release` or the end of the process, so
+    :func:`claim_is_live` can tell the claim of a killed process from a live one.
+
+    Parameters
+    ----------
+    path : path-like
+        The marker file; its folder must exist.
+    text : str
+        Written into the marker (for a person who finds it).
+
+    Returns
+    -------
+    Claim or None
+        None when the marker exists already (someone else holds the name, or held it and
+        died; see :func:`claim_is_live`).
+    """
+    target = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    try:
+        os.write(fd, text.encode("utf-8"))
+        if fcntl is not None:
+            fcntl.flock(fd, fcntl.LOCK_EX)  # locked before it has its name
+        try:
+            os.link(tmp, target)  # atomic; fails when the name is taken
+        except FileExistsError:
+            os.close(fd)
+            fd = -1
+    except BaseException:
+        os.close(fd)
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    Path(tmp).unlink(missing_ok=True)
+    return None if fd < 0 else Claim(target, fd)
+
+
+def claim_is_live(path: str | os.PathLike[str]) -> bool:
+    """True if the marker ``path`` is held by a running process (or cannot be judged).
+
+    Parameters
+    ----------
+    path : path-like
+        A marker made by :func:`claim`.
+
+    Returns
+    -------
+    bool
+        False only when the marker exists and no process holds its lock: the process
+        that made it ended without releasing it (it was killed).
+    """
+    if fcntl is None:
+        return True
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except FileNotFoundError:
+        return False
+    except OSError:
+        return True
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        return True
+    finally:
+        os.close(fd)  # closing drops our lock, if we got it
+    return False

@@ -48,6 +48,12 @@ Sections and options (defaults in brackets):
     optional table ``name = {index = i, colour = "#RRGGBB"}`` replacing the default schema
     of :mod:`labeler.classes`.
 
+Every value is checked when the settings are read (:data:`RANGES`): numbers must be
+finite (no ``nan``, ``inf``, ``1e400``), whole where a count is meant, and inside the
+option's range; a bad value is a :class:`~labeler.errors.SettingsError` whose message
+starts with where the value came from (``labeler.toml line 12`` or the ``LABELER_*``
+variable), so a command never starts on a setting that breaks it half-way.
+
 Retired options (:data:`RETIRED_OPTIONS`) that settings files of older projects still
 carry are read and ignored, so those projects keep opening.
 """
@@ -56,12 +62,23 @@ from __future__ import annotations
 
 import dataclasses
 import os
+import re
 import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from labeler.classes import DEFAULT_SCHEMA, ClassSchema
+from labeler.errors import SettingsError
+from labeler.settings_values import (
+    RANGES,
+    Checked,
+    Range,
+    bad_value,
+    check_choice,
+    coerce,
+    line_of,
+)
 
 __all__ = [
     "SETTINGS_FILE",
@@ -77,6 +94,8 @@ __all__ = [
     "STRATEGIES",
     "AUGMENT_MODES",
     "RETIRED_OPTIONS",
+    "RANGES",
+    "Range",
     "load_settings",
     "default_settings_text",
 ]
@@ -93,44 +112,49 @@ AUGMENT_MODES = ("auto", "features", "images")
 
 
 @dataclass(frozen=True)
-class StoreSettings:
+class StoreSettings(Checked):
+    _section = "store"
     url: str = ""
+
+    def _check(self) -> None:
+        if self.url and "://" not in self.url:
+            # the value is not shown: a URL may carry a password
+            raise SettingsError(
+                "store.url: expected a database URL such as "
+                "postgresql+psycopg://user@server/labeler (or nothing, for labeler.db in the "
+                "project folder), got text without '://'",
+                option="store.url",
+            )
 
 
 @dataclass(frozen=True)
-class TileSettings:
+class TileSettings(Checked):
+    _section = "tiles"
     size: int = 256
     overlap: int = 32
     max_image_px: int = 2_500_000_000
 
-    def __post_init__(self) -> None:
-        if self.max_image_px < 1:
-            raise ValueError(
-                f"tiles.max_image_px: expected at least 1 pixel, got {self.max_image_px}"
-            )
-        if self.size < 16:
-            raise ValueError(f"tiles.size: expected at least 16 pixels, got {self.size}")
-        if not 0 <= self.overlap < self.size:
-            raise ValueError(
-                f"tiles.overlap: expected 0 <= overlap < size ({self.size}), got {self.overlap}"
+    def _check(self) -> None:
+        if not self.overlap < self.size:
+            raise bad_value(
+                "tiles", "overlap", f"fewer pixels than tiles.size ({self.size})", self.overlap
             )
 
 
 @dataclass(frozen=True)
-class ColdStartSettings:
+class ColdStartSettings(Checked):
+    _section = "cold_start"
     exr_coefficient: float = 1.4
     threshold: str = "zero"
     min_object_px: int = 24
 
-    def __post_init__(self) -> None:
-        if self.threshold not in ("zero", "otsu"):
-            raise ValueError(
-                f"cold_start.threshold: expected 'zero' or 'otsu', got {self.threshold!r}"
-            )
+    def _check(self) -> None:
+        check_choice("cold_start", "threshold", self.threshold, ("zero", "otsu"))
 
 
 @dataclass(frozen=True)
-class ModelSettings:
+class ModelSettings(Checked):
+    _section = "model"
     mc_samples: int = 8
     seed: int = 0
     epochs: int = 40
@@ -141,57 +165,38 @@ class ModelSettings:
     augment: str = "auto"
     patience: int = 10
 
-    def __post_init__(self) -> None:
-        if self.patience < 1:
-            raise ValueError(f"model.patience: expected at least 1 epoch, got {self.patience}")
-        if self.augment not in AUGMENT_MODES:
-            raise ValueError(
-                f"model.augment: expected one of {', '.join(AUGMENT_MODES)}, got {self.augment!r}"
-            )
-        if self.mc_samples < 1:
-            raise ValueError(f"model.mc_samples: expected at least 1, got {self.mc_samples}")
-        if not 0.0 <= self.val_share < 1.0:
-            raise ValueError(f"model.val_share: expected 0 <= share < 1, got {self.val_share}")
+    def _check(self) -> None:
+        check_choice("model", "augment", self.augment, AUGMENT_MODES)
 
 
 @dataclass(frozen=True)
-class PickerSettings:
+class PickerSettings(Checked):
+    _section = "picker"
     strategy: str = "mixed"
     k: int = 20
     seed: int = 0
 
-    def __post_init__(self) -> None:
-        if self.strategy not in STRATEGIES:
-            raise ValueError(
-                f"picker.strategy: expected one of {', '.join(STRATEGIES)}, got {self.strategy!r}"
-            )
-        if self.k < 1:
-            raise ValueError(f"picker.k: expected at least 1, got {self.k}")
+    def _check(self) -> None:
+        check_choice("picker", "strategy", self.strategy, STRATEGIES)
 
 
 @dataclass(frozen=True)
-class AgreementSettings:
+class AgreementSettings(Checked):
+    _section = "agreement"
     overlap_share: float = 0.1
     annotators_per_tile: int = 2
     metric: str = "kappa"
     threshold: float = 0.6
 
-    def __post_init__(self) -> None:
-        if not 0.0 <= self.overlap_share <= 1.0:
-            raise ValueError(
-                f"agreement.overlap_share: expected a share in 0..1, got {self.overlap_share}"
-            )
-        if self.annotators_per_tile < 2:
-            raise ValueError(
-                "agreement.annotators_per_tile: expected at least 2 (agreement needs two), "
-                f"got {self.annotators_per_tile}"
-            )
-        if self.metric not in ("kappa", "iou"):
-            raise ValueError(f"agreement.metric: expected 'kappa' or 'iou', got {self.metric!r}")
+    def _check(self) -> None:
+        check_choice("agreement", "metric", self.metric, ("kappa", "iou"))
+        if self.metric == "iou" and self.threshold < 0:
+            raise bad_value("agreement", "threshold", "an IoU between 0 and 1", self.threshold)
 
 
 @dataclass(frozen=True)
-class ExportSettings:
+class ExportSettings(Checked):
+    _section = "export"
     simplify_tolerance_px: float = 0.5
     min_area_px: float = 8.0
     val_share: float = 0.2
@@ -199,24 +204,15 @@ class ExportSettings:
 
 
 @dataclass(frozen=True)
-class HoldSettings:
+class HoldSettings(Checked):
+    _section = "holds"
     lease_minutes: float = 30.0
     heartbeat_seconds: float = 60.0
 
-    def __post_init__(self) -> None:
-        if not self.lease_minutes > 0:
-            raise ValueError(
-                f"holds.lease_minutes: expected a positive number of minutes, got {self.lease_minutes}"
-            )
-        if not 0 < self.heartbeat_seconds < self.lease_minutes * 60:
-            raise ValueError(
-                "holds.heartbeat_seconds: expected a positive number of seconds below the "
-                f"lease ({self.lease_minutes * 60:g} s), got {self.heartbeat_seconds}"
-            )
-
 
 @dataclass(frozen=True)
-class EditorSettings:
+class EditorSettings(Checked):
+    _section = "editor"
     autosave_seconds: float = 5.0
     opacity: float = 0.45
 
@@ -242,7 +238,11 @@ _SECTIONS = {
 
 @dataclass(frozen=True)
 class Settings:
-    """All settings of one project (immutable once read)."""
+    """All settings of one project (immutable once read).
+
+    ``origins`` maps ``section.option`` to where a value that is not the default came
+    from (``labeler.toml line 12``, ``LABELER_MODEL_EPOCHS``); see :meth:`origin`.
+    """
 
     project: Path = Path(".")
     store: StoreSettings = field(default_factory=StoreSettings)
@@ -255,6 +255,7 @@ class Settings:
     editor: EditorSettings = field(default_factory=EditorSettings)
     holds: HoldSettings = field(default_factory=HoldSettings)
     classes: ClassSchema = DEFAULT_SCHEMA
+    origins: Mapping[str, str] = field(default_factory=dict, compare=False, repr=False)
 
     @property
     def db_url(self) -> str:
@@ -267,6 +268,17 @@ class Settings:
     def cache_dir(self) -> Path:
         """Folder of derivable data (may be deleted at any time)."""
         return self.project / "cache"
+
+    def origin(self, option: str) -> str:
+        """Where the value of ``option`` (``"section.option"``) came from.
+
+        Returns
+        -------
+        str
+            ``"<file> line N"``, ``"<file>"``, the ``LABELER_*`` variable's name, or
+            ``"default"``.
+        """
+        return self.origins.get(option, "default")
 
     def replace(self, **sections: object) -> Settings:
         """A copy with whole sections or single options replaced.
@@ -282,44 +294,88 @@ class Settings:
         return dataclasses.replace(self, **changes)
 
 
-def _coerce(section: str, option: str, value: object, target: type) -> object:
-    where = f"{section}.{option}"
-    if target is int:
-        if isinstance(value, bool):
-            raise ValueError(f"{where}: expected an integer, got {value!r}")
-        try:
-            number = float(value)  # type: ignore[arg-type]
-        except (TypeError, ValueError):
-            raise ValueError(f"{where}: expected an integer, got {value!r}") from None
-        if number != int(number):
-            raise ValueError(f"{where}: expected an integer, got {value!r}")
-        return int(number)
-    if target is float:
-        try:
-            return float(value)  # type: ignore[arg-type]
-        except (TypeError, ValueError):
-            raise ValueError(f"{where}: expected a number, got {value!r}") from None
-    return str(value)
-
-
-def _section_from(name: str, raw: Mapping[str, object], env: Mapping[str, str]) -> object:
+def _section_from(
+    name: str,
+    raw: Mapping[str, object],
+    env: Mapping[str, str],
+    origins: dict[str, str],
+    file_origin,
+) -> object:
     cls = _SECTIONS[name]
     kinds = {f.name: f.type for f in dataclasses.fields(cls)}
     pytype = {"int": int, "float": float, "str": str}
+    limits = RANGES.get(name, {})
     unknown = set(raw) - set(kinds) - set(RETIRED_OPTIONS.get(name, ()))
     if unknown:
-        raise ValueError(
-            f"[{name}]: unknown option(s) {', '.join(sorted(unknown))}; known: {', '.join(kinds)}"
+        first = sorted(unknown)[0]
+        raise SettingsError(
+            f"[{name}]: unknown option(s) {', '.join(sorted(unknown))}; known: {', '.join(kinds)}",
+            option=f"{name}.{first}",
+            origin=file_origin(name, first),
         )
     values: dict[str, object] = {}
     for option, kind in kinds.items():
         target = pytype[kind if isinstance(kind, str) else kind.__name__]
-        if option in raw:
-            values[option] = _coerce(name, option, raw[option], target)
+        where = f"{name}.{option}"
         env_name = f"LABELER_{name}_{option}".upper()
         if env_name in env:
-            values[option] = _coerce(name, option, env[env_name], target)
+            origins[where] = env_name
+            values[option] = coerce(where, env[env_name], target, limits=limits.get(option))
+        elif option in raw:
+            origins[where] = file_origin(name, option)
+            values[option] = coerce(where, raw[option], target, limits=limits.get(option))
     return cls(**values)
+
+
+def _classes_from(table: object) -> ClassSchema:
+    if not isinstance(table, Mapping):
+        raise SettingsError(
+            f"[classes]: expected a table of classes, got {table!r}", option="classes"
+        )
+    for name, spec in table.items():
+        if not isinstance(spec, Mapping):
+            raise SettingsError(
+                f'classes.{name}: expected a table like {{ index = 1, colour = "#0072B2" }}, '
+                f"got {spec!r}",
+                option=f"classes.{name}",
+            )
+        index = spec.get("index")
+        if isinstance(index, bool) or not isinstance(index, int) or not 0 <= index <= 254:
+            raise SettingsError(
+                f"classes.{name}.index: expected a whole number from 0 to 254 (255 means "
+                f"unlabelled), got {index!r}",
+                option=f"classes.{name}",
+            )
+    try:
+        return ClassSchema.from_mapping(table)  # type: ignore[arg-type]
+    except ValueError as exc:
+        m = re.match(r"classes\.(\w+)", str(exc))
+        raise SettingsError(str(exc), option=m.group(0) if m else "classes") from None
+
+
+def _read_text(path: Path) -> str | None:
+    """The settings file's text, or None when there is none."""
+    try:
+        return path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        return None
+    except IsADirectoryError:
+        raise SettingsError(
+            f"{path}: is a folder, expected the settings file (TOML); move the folder away "
+            f"and put the settings file back (an empty {SETTINGS_FILE} means all defaults)",
+            option=str(path),
+        ) from None
+    except UnicodeDecodeError as exc:
+        raise SettingsError(
+            f"{path}: not UTF-8 text ({exc.reason} at byte {exc.start + 1}); save the file as "
+            "UTF-8 or delete it for defaults",
+            option=str(path),
+        ) from None
+    except OSError as exc:
+        raise SettingsError(
+            f"{path}: cannot read the settings file ({exc.strerror}); check its permissions",
+            option=str(path),
+        ) from None
 
 
 def load_settings(
@@ -334,42 +390,86 @@ def load_settings(
     environ : mapping, optional
         Environment to read ``LABELER_*`` overrides from (default ``os.environ``).
 
+    Returns
+    -------
+    Settings
+        With :attr:`Settings.origins` telling where each value that is not a default
+        came from.
+
     Raises
     ------
-    ValueError
-        For a malformed file, an unknown section or option, or a value of the wrong kind;
-        the message names the file and the option.
+    SettingsError
+        For an unreadable or malformed file, an unknown section or option, or a value of
+        the wrong kind or out of range (:data:`RANGES`). The message starts with where the
+        value came from (``<file> line N`` or ``environment variable LABELER_...``),
+        names the option, what was expected and what was found, and ends with the fix.
     """
     root = Path(project)
     env = os.environ if environ is None else environ
     path = root / SETTINGS_FILE
+    text = _read_text(path)
     raw: dict[str, object] = {}
-    if path.exists():
+    if text is not None:
         try:
-            raw = tomllib.loads(path.read_text(encoding="utf-8"))
-        except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-            raise ValueError(
-                f"{path}: not valid TOML ({exc}); fix the file or delete it for defaults"
+            raw = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as exc:
+            raise SettingsError(
+                f"{path}: not valid TOML ({exc}); fix the file or delete it for defaults",
+                option=str(path),
             ) from None
+
+    def file_origin(section: str, option: str | None) -> str:
+        line = None if text is None else line_of(text, section, option)
+        return f"{path} line {line}" if line else str(path)
+
     unknown = set(raw) - set(_SECTIONS) - {"classes"}
     if unknown:
-        raise ValueError(
-            f"{path}: unknown section(s) {', '.join(sorted(unknown))}; "
-            f"known: {', '.join([*_SECTIONS, 'classes'])}"
+        first = sorted(unknown)[0]
+        raise SettingsError(
+            f"{file_origin(first, None)}: unknown section(s) {', '.join(sorted(unknown))}; "
+            f"known: {', '.join([*_SECTIONS, 'classes'])}; fix the name or delete the section",
+            option=first,
         )
     sections: dict[str, object] = {}
+    origins: dict[str, str] = {}
     try:
         for name in _SECTIONS:
             table = raw.get(name, {})
             if not isinstance(table, Mapping):
-                raise ValueError(f"[{name}]: expected a table, got {table!r}")
-            sections[name] = _section_from(name, table, env)
+                raise SettingsError(f"[{name}]: expected a table, got {table!r}", option=name)
+            sections[name] = _section_from(name, table, env, origins, file_origin)
         classes = DEFAULT_SCHEMA
         if "classes" in raw:
-            classes = ClassSchema.from_mapping(raw["classes"])  # type: ignore[arg-type]
+            origins["classes"] = file_origin("classes", None)
+            classes = _classes_from(raw["classes"])
     except ValueError as exc:
-        raise ValueError(f"{path}: {exc}") from None
-    return Settings(project=root, classes=classes, **sections)  # type: ignore[arg-type]
+        raise _with_origin(exc, env=env, file_origin=file_origin) from None
+    return Settings(project=root, classes=classes, origins=origins, **sections)  # type: ignore[arg-type]
+
+
+def _with_origin(exc: ValueError, *, env: Mapping[str, str], file_origin) -> SettingsError:
+    """``exc`` as a SettingsError that starts with where the bad value came from."""
+    message = str(exc)
+    option = getattr(exc, "option", "")
+    if not option:  # a section's own check that names its option "section.option: ..."
+        m = re.match(r"\[?(\w+)(?:\.(\w+))?", message)
+        option = m.group(0).lstrip("[") if m else ""
+    section, _, name = option.partition(".")
+    if "." in name:
+        name = name.split(".")[0]
+    env_name = f"LABELER_{section}_{name}".upper() if name else ""
+    if env_name and env_name in env:
+        return SettingsError(
+            f"environment variable {env_name}: {message}; correct the variable or unset it "
+            "(the settings file is not at fault)",
+            option=option,
+            origin=env_name,
+        )
+    origin = getattr(exc, "origin", "") or file_origin(section, name or None)
+    fix = "correct the value, or delete the line to use the default"
+    if section == "classes":
+        fix = "correct the [classes] table, or delete it to use the default classes"
+    return SettingsError(f"{origin}: {message}; {fix}", option=option, origin=origin)
 
 
 def default_settings_text() -> str:

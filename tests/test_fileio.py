@@ -92,3 +92,92 @@ def test_remove_marked_folder_only_with_its_marker(tmp_path):
     (work / ".made-by-us").write_text("")
     remove_marked_folder(work, marker=".made-by-us")
     assert not work.exists()
+
+
+# -- staged folders, output checks, claims ------------------------------------------------
+def test_staged_folder_moves_everything_into_place_at_the_end(tmp_path):
+    from labeler.fileio import staged_folder
+
+    target = tmp_path / "exports"
+    target.mkdir()
+    (target / "old.txt").write_text("kept")
+    (target / "same.txt").write_text("replaced")
+    with staged_folder(target) as stage:
+        assert stage.parent == tmp_path and stage != target  # same depth: relative paths hold
+        atomic_write_text(stage / "same.txt", "new")
+        atomic_write_text(stage / "masks" / "plot.txt", "mask")
+        assert not (target / "masks").exists()  # nothing visible before the end
+    assert (target / "old.txt").read_text() == "kept"
+    assert (target / "same.txt").read_text() == "new"
+    assert (target / "masks" / "plot.txt").read_text() == "mask"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["exports"]
+
+
+def test_staged_folder_leaves_everything_as_it_was_on_failure(tmp_path):
+    from labeler.fileio import staged_folder
+
+    target = tmp_path / "deep" / "er" / "exports"
+    with pytest.raises(OSError, match="disk full"):
+        with staged_folder(target) as stage:
+            atomic_write_text(stage / "a.txt", "half")
+            raise OSError(28, "disk full")
+    assert list(tmp_path.iterdir()) == []  # the folders made for it are gone too
+    with staged_folder(target) as stage:  # a new folder is renamed into place whole
+        atomic_write_text(stage / "a.txt", "whole")
+    assert (target / "a.txt").read_text() == "whole"
+    assert stat.S_IMODE(target.stat().st_mode) == 0o777 & ~_umask()
+
+
+def _umask():
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+def test_output_folder_that_is_a_file_or_under_one(tmp_path):
+    from labeler.fileio import check_output_folder
+
+    notes = tmp_path / "notes.txt"
+    notes.write_text("x")
+    assert check_output_folder(tmp_path / "new" / "out") == tmp_path / "new" / "out"
+    with pytest.raises(LabelerError, match=r"--out .*notes\.txt: is a file, expected a folder"):
+        check_output_folder(notes, what="--out")
+    with pytest.raises(
+        LabelerError, match=r"notes\.txt is a file, so no folder can be made under it"
+    ):
+        check_output_folder(notes / "a" / "b", what="--out")
+    assert not (tmp_path / "new").exists()  # nothing is created
+
+
+def test_a_claim_is_taken_once(tmp_path):
+    from labeler.fileio import claim, claim_is_live
+
+    first = claim(tmp_path / ".adding-plot")
+    assert first is not None and claim_is_live(tmp_path / ".adding-plot")
+    assert claim(tmp_path / ".adding-plot") is None  # taken
+    first.release()
+    first.release()  # a second release does nothing
+    assert not (tmp_path / ".adding-plot").exists()
+    assert leftovers(tmp_path) == []
+
+
+def test_a_claim_of_a_killed_process_is_not_live(tmp_path):
+    import subprocess
+    import sys
+
+    # the child takes a claim and exits without releasing it (as a killed add would)
+    code = (
+        "import sys; from labeler.fileio import claim; "
+        "c = claim(sys.argv[1]); print('taken' if c else 'refused')"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", code, str(tmp_path / ".adding-x")],
+        capture_output=True,
+        text=True,
+        check=True,
+    ).stdout
+    from labeler.fileio import claim_is_live
+
+    assert out.strip() == "taken" and (tmp_path / ".adding-x").exists()
+    assert not claim_is_live(tmp_path / ".adding-x")
+    assert not claim_is_live(tmp_path / ".adding-nothing")  # no marker: nobody holds it

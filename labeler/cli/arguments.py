@@ -37,6 +37,11 @@ def build_parser() -> argparse.ArgumentParser:
         epilog=EPILOG,
     )
     parser.add_argument("--version", action="version", version=f"labeler {__version__}")
+    parser.add_argument(
+        "--debug",
+        action="store_true",
+        help="on an error, print the traceback before the one-line message",
+    )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
 
     p = sub.add_parser(
@@ -202,7 +207,7 @@ def build_parser() -> argparse.ArgumentParser:
         "--out",
         default=None,
         metavar="FOLDER",
-        help="output folder (default: exports/<project name>)",
+        help="output folder (default: DIR/exports, inside the project)",
     )
     p.set_defaults(func=cmd_export)
 

@@ -98,14 +98,33 @@ def cmd_add(args) -> int:
     from labeler.project import open_project
     from labeler.workflow import add_images
 
-    with open_project(args.dir) as project, _Bar("adding") as bar:
-        results = add_images(project, args.images, copy=not args.in_place, progress=bar)
-    for r in results:
-        if r.status == "added":
-            print(f"added {r.name}: {r.tiles} tiles")
-        else:
-            print(r.message)
-    return 0
+    done = []  # reported even when a later image stops the run with an error
+    try:
+        with open_project(args.dir) as project, _Bar("adding") as bar:
+            add_images(
+                project,
+                args.images,
+                copy=not args.in_place,
+                keep_going=True,
+                on_result=done.append,
+                progress=bar,
+            )
+    finally:
+        for r in done:
+            if r.status == "added":
+                print(f"added {r.name}: {r.tiles} tiles")
+            elif r.status == "skipped":
+                print(r.message)
+            else:
+                print(f"labeler: error: {r.message}", file=sys.stderr)
+    failed = [r for r in done if r.status == "failed"]
+    if failed and len(done) > 1:
+        added = sum(r.status == "added" for r in done)
+        print(
+            f"{added} of {len(done)} images added; {len(failed)} could not be used (nothing of "
+            "them was kept)"
+        )
+    return 1 if failed else 0
 
 
 def format_status(st) -> str:
@@ -281,7 +300,7 @@ def cmd_export(args) -> int:
 
     states = [s.strip() for s in args.states.split(",") if s.strip()]
     with open_project(args.dir) as project, _Bar("exporting") as bar:
-        out = Path(args.out) if args.out else Path("exports") / project.root.resolve().name
+        out = Path(args.out) if args.out else project.root / "exports"
         result = export_project(
             project,
             out,

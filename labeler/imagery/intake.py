@@ -5,18 +5,41 @@ A PNG or JPEG is georeferenced by a world file (``.pgw``, ``.jgw``, ``.wld``, ..
 with the same georeferencing as the original. Every file is written atomically
 (:func:`labeler.fileio.atomic_copy_file`), and the image copy is checked against the
 hash the caller read before it is renamed into place.
+
+An add in progress holds a claim on its image name (:func:`reserve_image_name`, a marker
+``images/.adding-<name>``), so two adds at once never pick the same name (and never copy
+over each other's files). An add that was killed leaves its claim behind, maybe with a
+half-made copy; :func:`remove_leftovers` (run when a project is opened) removes what such
+an add left, unless the image made it into the store.
 """
 
 from __future__ import annotations
 
 import os
+import re
+from collections.abc import Callable, Collection
 from dataclasses import dataclass
 from pathlib import Path
 
-from labeler.fileio import atomic_copy_file
+from labeler.fileio import Claim, atomic_copy_file, claim, claim_is_live
 from labeler.imagery.georef import find_world_file
 
-__all__ = ["ImageCopy", "side_files", "copy_image"]
+__all__ = [
+    "CLAIM_PREFIX",
+    "ImageCopy",
+    "side_files",
+    "copy_image",
+    "files_named",
+    "reserve_image_name",
+    "remove_leftovers",
+]
+
+#: Marker of an add in progress: ``images/.adding-<image name>``.
+CLAIM_PREFIX = ".adding-"
+#: Temporary files of atomic copies: ``.<target>.<random>.part`` (labeler.fileio).
+_PART = re.compile(r"^\.(?P<target>.+)\.[A-Za-z0-9_]+\.part$")
+#: Temporary files of a claim being made: ``.<marker>.<random>.tmp`` (labeler.fileio).
+_CLAIM_TMP = re.compile(rf"^\.{re.escape(CLAIM_PREFIX)}.+\.[A-Za-z0-9_]+\.tmp$")
 
 
 @dataclass(frozen=True)
@@ -105,3 +128,109 @@ def copy_image(
         ImageCopy(image, tuple(written)).remove()
         raise
     return ImageCopy(image, tuple(written))
+
+
+def _stem(name: str) -> str:
+    """The file name without its last suffix (``plot-a.tif`` -> ``plot-a``)."""
+    return name[: -len(Path(name).suffix)] if Path(name).suffix else name
+
+
+def files_named(folder: str | os.PathLike[str], name: str) -> list[Path]:
+    """The files of image ``name`` in ``folder``: the copy and its side files.
+
+    Exactly ``<name>.<suffix>`` (``plot-a.tif``, ``plot-a.tfw``); ``plot-a-2.tif`` or
+    ``plot-a.b.tif`` belong to other images.
+    """
+    root = Path(folder)
+    if not root.is_dir():
+        return []
+    return sorted(p for p in root.iterdir() if p.suffix and _stem(p.name) == name)
+
+
+def reserve_image_name(
+    folder: str | os.PathLike[str], base: str, *, taken: Collection[str]
+) -> tuple[str, Claim]:
+    """Claim a free image name in ``folder``: ``base``, else ``base-2``, ``base-3``, ...
+
+    A name is free when no stored image has it (``taken``), no file of that name is in
+    the folder and no other add holds it.
+
+    Parameters
+    ----------
+    folder : path-like
+        The project's ``images/`` folder (created if missing).
+    base : str
+        The wanted name (already made safe for a file name).
+    taken : collection of str
+        Names of the images in the store.
+
+    Returns
+    -------
+    name : str
+    claim : Claim
+        Held until the image is in the store (or its add failed); release it then.
+    """
+    root = Path(folder)
+    root.mkdir(parents=True, exist_ok=True)
+    name, i = base, 2
+    while True:
+        if name not in taken and not files_named(root, name):
+            held = claim(root / f"{CLAIM_PREFIX}{name}", text=f"labeler add of image {name}\n")
+            if held is not None:
+                return name, held
+        name, i = f"{base}-{i}", i + 1
+
+
+def remove_leftovers(
+    folder: str | os.PathLike[str], *, stored: Callable[[], Collection[str]]
+) -> list[Path]:
+    """Remove what killed adds left in ``folder``; files of live adds are not touched.
+
+    For every claim no running process holds: when its image is not in the store, the
+    image's files (a copy that was renamed into place before the kill) are deleted; the
+    claim is deleted either way. Temporary copies (``.part``) are deleted unless a live
+    add holds their image's name.
+
+    Parameters
+    ----------
+    folder : path-like
+        The project's ``images/`` folder.
+    stored : callable
+        Returns the names of the images in the store (called only when a claim is found).
+
+    Returns
+    -------
+    list of Path
+        The files deleted.
+    """
+    root = Path(folder)
+    if not root.is_dir():
+        return []
+    entries = [p for p in root.iterdir() if p.name.startswith(".")]
+    claims = [
+        p for p in entries if p.name.startswith(CLAIM_PREFIX) and not _CLAIM_TMP.match(p.name)
+    ]
+    live = {p.name[len(CLAIM_PREFIX) :] for p in claims if claim_is_live(p)}
+    removed: list[Path] = []
+    names: Collection[str] | None = None
+    for marker in claims:
+        name = marker.name[len(CLAIM_PREFIX) :]
+        if name in live:
+            continue
+        if names is None:
+            names = set(stored())
+        if name not in names:
+            for path in files_named(root, name):
+                path.unlink(missing_ok=True)
+                removed.append(path)
+        marker.unlink(missing_ok=True)
+        removed.append(marker)
+    for path in entries:
+        part = _PART.match(path.name)
+        if part and _stem(part.group("target")) not in live:
+            path.unlink(missing_ok=True)
+            removed.append(path)
+        elif _CLAIM_TMP.match(path.name) and not claim_is_live(path):
+            path.unlink(missing_ok=True)
+            removed.append(path)
+    return removed

@@ -14,13 +14,15 @@ Rules (documented here once):
   become 0. Floating-point rasters are refused (their range is not defined by the file).
 * **Grey** images are repeated into three channels; **palette** images are expanded;
   an **alpha** channel is dropped (the RGB values are kept as stored).
-* **EXIF orientation** of JPEG/PNG files is applied (the array is upright as a viewer
-  shows it); TIFF orientation tags other than top-left are refused.
+* **Orientation**: the EXIF orientation of JPEG/PNG files and the Orientation tag of a
+  TIFF (:mod:`labeler.imagery.orientation`) are applied: sizes, windows and
+  georeferencing are those of the upright image, as a viewer shows it.
 """
 
 from __future__ import annotations
 
 import os
+import re
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -35,6 +37,7 @@ from rasterio.windows import Window as RioWindow
 
 from labeler.errors import InputError
 from labeler.imagery.georef import Georef, find_world_file, read_prj, read_world_file
+from labeler.imagery.orientation import Orientation, tiff_orientation
 from labeler.imagery.tiling import Window
 
 __all__ = [
@@ -155,10 +158,18 @@ class ImageReader:
     Use :func:`open_image` to make one, as a context manager.
     """
 
-    def __init__(self, info: ImageInfo, *, dataset=None, pixels: np.ndarray | None = None) -> None:
+    def __init__(
+        self,
+        info: ImageInfo,
+        *,
+        dataset=None,
+        pixels: np.ndarray | None = None,
+        orientation: Orientation | None = None,
+    ) -> None:
         self.info = info
         self._ds = dataset
         self._pixels = pixels
+        self._orientation = orientation
 
     def __enter__(self) -> ImageReader:
         return self
@@ -191,8 +202,10 @@ class ImageReader:
         if self._ds is None:
             raise InputError(f"{info.path}: the image is closed")
         ds = self._ds
+        turn = self._orientation
+        stored = w if turn is None else turn.stored_window(w)
         try:
-            data = ds.read(window=RioWindow(w.col, w.row, w.width, w.height))
+            data = ds.read(window=RioWindow(stored.col, stored.row, stored.width, stored.height))
         except RasterioIOError as exc:
             raise InputError(
                 f"{info.path}: damaged or truncated data in window {w.as_tuple()} ({exc})"
@@ -200,13 +213,14 @@ class ImageReader:
         cmap = None
         if ds.count == 1 and ds.colorinterp[0] == ColorInterp.palette:
             cmap = ds.colormap(1)
-        return to_rgb8(
+        rgb = to_rgb8(
             data,
             nbits=info.nbits,
             colorinterp=tuple(ds.colorinterp),
             colormap=cmap,
             where=str(info.path),
         )
+        return rgb if turn is None else turn.upright(rgb)
 
 
 def _georef_sidecar(p: Path) -> Georef | None:
@@ -259,11 +273,8 @@ def _open_tiff(p: Path, max_pixels: int | None = None) -> ImageReader:
                 f"{p}: floating-point raster ({dtype}) has no defined 0..255 range; "
                 "convert it to 8- or 16-bit first"
             )
-        orientation = ds.tags().get("TIFFTAG_ORIENTATION")
-        if orientation not in (None, "1"):
-            raise InputError(
-                f"{p}: TIFF orientation {orientation} is not supported; save it top-left (1)"
-            )
+        code = tiff_orientation(p)  # GDAL reads rows as stored and does not report it
+        turn = None if code == 1 else Orientation(code, (ds.height, ds.width))
         georef = None
         has_transform = ds.transform != Affine.identity()
         if ds.crs is not None or has_transform:
@@ -278,35 +289,53 @@ def _open_tiff(p: Path, max_pixels: int | None = None) -> ImageReader:
                 georef = (
                     side if georef is None else Georef(georef.transform, side.crs, georef.source)
                 )
+        if turn is not None and georef is not None:  # georeferencing of the upright image
+            georef = Georef(turn.upright_transform(georef.transform), georef.crs, georef.source)
+        height, width = (ds.height, ds.width) if turn is None else turn.shape
         info = ImageInfo(
             path=p,
             format="tiff",
-            width=ds.width,
-            height=ds.height,
+            width=width,
+            height=height,
             bands=ds.count,
             dtype=dtype,
             nbits=nbits,
             georef=georef,
         )
-        return ImageReader(info, dataset=ds)
+        return ImageReader(info, dataset=ds, orientation=turn)
     except BaseException:
         ds.close()
         raise
 
 
+def _too_large(p: Path, size: str) -> InputError:
+    return InputError(
+        f"{p}: {size} is too large to decode whole (limit {MAX_DECODED_PIXELS:,} pixels); "
+        "PNG/JPEG have no windowed read: convert it to a tiled GeoTIFF (e.g. gdal_translate "
+        "-co TILED=YES) and add that"
+    )
+
+
 def _open_pil(p: Path, fmt: str, max_pixels: int | None = None) -> ImageReader:
     try:
-        with Image.open(p) as im:
+        with warnings.catch_warnings():
+            # Pillow's own size alarm is replaced by MAX_DECODED_PIXELS below (one clear
+            # line instead of a library warning); far beyond it Pillow refuses at open
+            warnings.simplefilter("ignore", Image.DecompressionBombWarning)
+            im = Image.open(p)
+    except Image.DecompressionBombError as exc:
+        found = re.search(r"\((\d+) pixels\)", str(exc))
+        raise _too_large(p, f"{int(found.group(1)):,} pixels" if found else "the image") from None
+    except (OSError, UnidentifiedImageError, SyntaxError, ValueError) as exc:
+        raise InputError(f"{p}: damaged, truncated or unreadable {fmt.upper()} ({exc})") from None
+    try:
+        with im:
             w0, h0 = im.size
             check_image_size(p, width=w0, height=h0, max_pixels=max_pixels)
             if w0 * h0 > MAX_DECODED_PIXELS:
-                raise InputError(
-                    f"{p}: {w0} x {h0} pixels is too large to decode whole (limit "
-                    f"{MAX_DECODED_PIXELS:,}); PNG/JPEG have no windowed read: convert it to a tiled "
-                    "GeoTIFF (e.g. gdal_translate -co TILED=YES) and add that"
-                )
+                raise _too_large(p, f"{w0} x {h0} pixels")
             with warnings.catch_warnings():
-                warnings.simplefilter("error", Image.DecompressionBombWarning)
+                warnings.simplefilter("ignore", Image.DecompressionBombWarning)
                 im.load()
             im = ImageOps.exif_transpose(im)
             mode = im.mode

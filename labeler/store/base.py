@@ -8,29 +8,39 @@ annotator ids every row refers to, and the one way to append to the event log.
 
 from __future__ import annotations
 
+import os
 from collections.abc import Iterator
 from contextlib import contextmanager
 from datetime import UTC, datetime
+from pathlib import Path
 from typing import Self
 
 import sqlalchemy as sa
 from sqlalchemy.exc import OperationalError
 
 from labeler.classes import DEFAULT_SCHEMA, ClassSchema
-from labeler.errors import LabelerError
+from labeler.errors import LabelerError, StoreError
+from labeler.store import dialect
 from labeler.store import schema as t
+from labeler.store.class_record import check_classes, record_classes
 from labeler.store.dialect import (
     insert_ignoring,
     integrity_check,
     is_sqlite,
     make_engine,
     shown_url,
+    sqlite_access,
+    sqlite_file,
 )
+from labeler.store.failures import display_name, engine_failure, install
 
 __all__ = ["StoreBase", "now", "clock", "as_utc", "DEFAULT_LEASE_SECONDS"]
 
 #: How long a hold lasts without a heartbeat from its editor: 30 minutes.
 DEFAULT_LEASE_SECONDS = 1800.0
+
+#: The settings file beside the database (named in messages only).
+SETTINGS_NAME = "labeler.toml"
 
 
 def now() -> datetime:
@@ -85,6 +95,42 @@ def as_utc(value: datetime | None) -> datetime | None:
     return value if value.tzinfo is not None else value.replace(tzinfo=UTC)
 
 
+def _check_file(path: Path, *, create: bool) -> None:
+    """Refuse a missing or empty database file (unless creating); create a new one.
+
+    Connecting to a missing SQLite file would create an empty database in its place, so
+    a project whose ``labeler.db`` was deleted or truncated is reported as it is and left
+    alone. A new database file is made here, before SQLite opens it, so that it gets the
+    permissions of every other file the program writes (``0o666`` less the umask).
+    """
+    if create:
+        if not path.exists():
+            try:
+                os.close(os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o666))
+            except FileExistsError:
+                pass
+            except OSError as exc:
+                raise StoreError(
+                    f"{path}: cannot create the database ({exc.strerror}); check that the "
+                    "folder exists and that you may write in it",
+                    kind="connect",
+                ) from None
+        return
+    if not path.exists():
+        raise StoreError(
+            f"{path}: the project database is missing (deleted, moved or not copied); put "
+            f"labeler.db back from a backup. To start again from scratch, move {SETTINGS_NAME} "
+            "and images/ away first: 'labeler init' refuses a folder that holds a project",
+            kind="missing",
+        )
+    if path.is_file() and path.stat().st_size == 0:
+        raise StoreError(
+            f"{path}: the project database is empty (0 bytes: truncated by a full disk or a "
+            "failed copy); put labeler.db back from a backup; the empty file was left as it is",
+            kind="empty",
+        )
+
+
 class StoreBase:
     """A project database: connection, transactions, annotators, the event log writer.
 
@@ -100,11 +146,20 @@ class StoreBase:
     lease_seconds : float
         How long a hold lasts without a heartbeat from its editor (default 30 min).
 
+    Attributes
+    ----------
+    read_only : bool
+        The SQLite file was opened read-only (this user may not write it); reading works,
+        a write raises :class:`~labeler.errors.StoreError` of kind ``"read_only"``.
+
     Raises
     ------
-    LabelerError
-        If the database cannot be opened, has no tables and ``create`` is false, or
-        was written by a labeler with another schema version.
+    StoreError
+        If the URL cannot be used, the database file is missing or empty (unless
+        ``create``), cannot be opened, is not a database, has no tables and ``create``
+        is false, or was written by a labeler with another schema version. Every failure
+        of a later statement that a user can act on is a ``StoreError`` too
+        (:mod:`labeler.store.failures`).
     """
 
     def __init__(
@@ -120,11 +175,25 @@ class StoreBase:
         self.url = url
         self.schema = schema
         self.lease_seconds = float(lease_seconds)
-        self.engine = make_engine(url)
+        self.read_only = False
+        where = display_name(url)
         try:
-            self._open(create=create)
+            path = sqlite_file(url)
+        except Exception as exc:  # noqa: BLE001 - sorted by engine_failure
+            raise engine_failure(exc, url=url) or exc from None
+        immutable = False
+        if path is not None:
+            _check_file(path, create=create)
+            self.read_only, immutable = sqlite_access(path) if path.exists() else (False, False)
+        try:
+            self.engine = make_engine(url, read_only=self.read_only, immutable=immutable)
+        except Exception as exc:  # noqa: BLE001 - sorted by engine_failure
+            raise engine_failure(exc, url=url) or exc from None
+        install(self.engine, url=url, busy_seconds=dialect.BUSY_TIMEOUT_MS / 1000)
+        try:
+            self._open(create=create, where=where)
         except BaseException:
-            self.engine.dispose()  # a refused database keeps no connection open
+            self.engine.dispose()
             raise
 
     @property
@@ -137,18 +206,23 @@ class StoreBase:
         """Whether the database is the embedded SQLite file (else a server)."""
         return is_sqlite(self.engine)
 
-    def _open(self, *, create: bool) -> None:
-        url = self.shown_url
+    def _open(self, *, create: bool, where: str) -> None:
+        """Check (or create) the tables, the schema version and the class record."""
+        schema = self.schema
         try:
             insp = sa.inspect(self.engine)
             has_tables = insp.has_table("meta")
         except OperationalError as exc:
-            reason = str(exc.orig).strip().splitlines()[0] if str(exc.orig).strip() else "?"
-            raise LabelerError(f"store {url}: cannot open the database ({reason})") from None
+            raise StoreError(
+                f"{where}: cannot open the database ({exc.orig})", kind="connect"
+            ) from None
         if not has_tables:
             if not create:
-                raise LabelerError(
-                    f"store {url}: no labeler project database here; run 'labeler init' first"
+                raise StoreError(
+                    f"{where}: holds no labeler project (no tables); if this is the project's "
+                    "database, restore it from a backup; to start a new project use "
+                    "'labeler init' on another folder",
+                    kind="not_a_project",
                 )
             from labeler.store.migrate import stamp_new  # alembic loads only here
 
@@ -157,6 +231,7 @@ class StoreBase:
                 conn.execute(
                     t.meta.insert(), [{"key": "schema_version", "value": str(t.SCHEMA_VERSION)}]
                 )
+                record_classes(conn, schema)
                 stamp_new(conn)
         else:
             with self.engine.connect() as conn:
@@ -170,10 +245,12 @@ class StoreBase:
                     if older
                     else "use the matching labeler release"
                 )
-                raise LabelerError(
-                    f"store {url}: database schema version {found}, this labeler reads "
-                    f"{t.SCHEMA_VERSION}; {fix}"
+                raise StoreError(
+                    f"{where}: database schema version {found}, this labeler reads "
+                    f"{t.SCHEMA_VERSION}; {fix}",
+                    kind="version",
                 )
+            check_classes(self.engine, schema, where=where, read_only=self.read_only)
 
     # -- transactions -------------------------------------------------------------------
     @contextmanager

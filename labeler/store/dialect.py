@@ -8,11 +8,21 @@ other lock the tile row (``SELECT ... FOR UPDATE``, ignored by SQLite, whose wri
 already serialised), and rows that two processes may create at once are written with
 ``INSERT ... ON CONFLICT`` (:func:`insert_ignoring`, :func:`upsert`), which both
 dialects speak. URLs are shown with the password hidden (:func:`shown_url`).
+
+A SQLite file this user cannot write (a read-only copy, a shared folder, a read-only
+disk) is opened read-only (``mode=ro``), and without switching the journal mode, so
+reading commands work on it; when even the folder is read-only and no other process has
+the database open (no ``-wal`` file), it is opened as immutable, the only way SQLite reads
+a WAL database there (https://www.sqlite.org/wal.html, "Read-Only Databases").
 """
 
 from __future__ import annotations
 
+import os
+import sqlite3
 from collections.abc import Mapping, Sequence
+from pathlib import Path
+from urllib.parse import quote
 
 import sqlalchemy as sa
 from sqlalchemy import event
@@ -22,9 +32,12 @@ from sqlalchemy.exc import ArgumentError, DBAPIError
 from labeler.errors import LabelerError
 
 __all__ = [
+    "BUSY_TIMEOUT_MS",
     "make_engine",
     "integrity_check",
     "is_sqlite",
+    "sqlite_file",
+    "sqlite_access",
     "shown_url",
     "insert_ignoring",
     "upsert",
@@ -54,7 +67,68 @@ def is_sqlite(engine: sa.Engine) -> bool:
     return engine.dialect.name == "sqlite"
 
 
-def make_engine(url: str) -> sa.Engine:
+def sqlite_file(url: str) -> Path | None:
+    """The database file of a SQLite URL; None for other databases and in-memory SQLite.
+
+    Parameters
+    ----------
+    url : str
+        SQLAlchemy database URL.
+
+    Returns
+    -------
+    Path or None
+        The file, or None.
+
+    Raises
+    ------
+    sqlalchemy.exc.ArgumentError
+        If ``url`` is not a URL at all.
+    """
+    parsed = sa.engine.make_url(url)
+    if parsed.get_backend_name() != "sqlite" or parsed.database in (None, "", ":memory:"):
+        return None
+    if parsed.database.startswith("file:"):
+        return None  # a SQLite URI: the caller chose its own open mode
+    return Path(parsed.database)
+
+
+def sqlite_access(path: Path) -> tuple[bool, bool]:
+    """How to open the existing database file ``path``: ``(read_only, immutable)``.
+
+    Read-only when this user may not write the file or its folder (SQLite writes its
+    ``-wal`` and ``-shm`` files beside the database); immutable when, besides, the folder
+    is read-only and no ``-wal`` file shows another process using the database.
+
+    Parameters
+    ----------
+    path : Path
+        An existing SQLite database file.
+
+    Returns
+    -------
+    read_only, immutable : bool
+        How to open it.
+    """
+    folder = path.parent
+    writable = os.access(path, os.W_OK) and os.access(folder, os.W_OK)
+    if writable:
+        return False, False
+    wal = Path(f"{path}-wal")
+    return True, not os.access(folder, os.W_OK) and not wal.exists()
+
+
+def _connect_read_only(path: Path, *, immutable: bool):
+    uri = f"file:{quote(str(path.resolve()))}?mode=ro" + ("&immutable=1" if immutable else "")
+
+    def connect():
+        timeout = BUSY_TIMEOUT_MS / 1000
+        return sqlite3.connect(uri, uri=True, timeout=timeout, check_same_thread=False)
+
+    return connect
+
+
+def make_engine(url: str, *, read_only: bool = False, immutable: bool = False) -> sa.Engine:
     """Create an engine for ``url`` with the dialect's safety settings.
 
     Write transactions are opened with ``connection.execution_options(write=True)``.
@@ -66,20 +140,29 @@ def make_engine(url: str) -> sa.Engine:
     ----------
     url : str
         SQLAlchemy database URL (``sqlite:///...`` or ``postgresql+psycopg://...``).
+    read_only, immutable : bool
+        SQLite only: open the file read-only (see :func:`sqlite_access`); a write then
+        fails with SQLite's read-only error instead of changing anything.
 
     Returns
     -------
     sqlalchemy.Engine
     """
     if url.startswith("sqlite"):
-        engine = sa.create_engine(url, connect_args={"timeout": BUSY_TIMEOUT_MS / 1000})
+        path = sqlite_file(url)
+        if read_only and path is not None:
+            engine = sa.create_engine(url, creator=_connect_read_only(path, immutable=immutable))
+        else:
+            engine = sa.create_engine(url, connect_args={"timeout": BUSY_TIMEOUT_MS / 1000})
+            read_only = False
 
         @event.listens_for(engine, "connect")
         def _on_connect(dbapi_conn, _record):  # pragma: no cover - exercised by every test
             # let us emit BEGIN ourselves (pysqlite's implicit BEGIN is deferred only)
             dbapi_conn.isolation_level = None
             cur = dbapi_conn.cursor()
-            cur.execute("PRAGMA journal_mode=WAL")
+            if not read_only:  # switching the journal mode writes the file
+                cur.execute("PRAGMA journal_mode=WAL")
             cur.execute("PRAGMA synchronous=FULL")
             cur.execute("PRAGMA foreign_keys=ON")
             cur.execute(f"PRAGMA busy_timeout={BUSY_TIMEOUT_MS}")
@@ -96,13 +179,7 @@ def make_engine(url: str) -> sa.Engine:
     parsed = sa.make_url(url)
     if parsed.drivername == "postgresql":  # no driver named: the one of the postgres extra
         parsed = parsed.set(drivername="postgresql+psycopg")
-    try:
-        return sa.create_engine(parsed, pool_pre_ping=True)
-    except ModuleNotFoundError as exc:
-        raise LabelerError(
-            f"store {shown_url(url)}: the database driver {exc.name!r} is not installed; "
-            "install it with: pip install 'labeler[postgres]'"
-        ) from None
+    return sa.create_engine(parsed, pool_pre_ping=True)  # a missing driver: failures.py
 
 
 def shown_url(url: str) -> str:

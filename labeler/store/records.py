@@ -8,6 +8,7 @@ from datetime import datetime
 
 import numpy as np
 
+from labeler.errors import DamagedRecordError
 from labeler.imagery.tiling import Window
 from labeler.imagery.write import png_decode
 
@@ -46,18 +47,25 @@ def decode_mask(data: bytes, *, shape: tuple[int, int], what: str) -> np.ndarray
 
     Raises
     ------
-    ValueError
-        Naming ``what`` (e.g. "annotation 12 of tile 3") when the bytes are not a PNG
-        or the mask's shape is not the tile's.
+    DamagedRecordError
+        Naming ``what`` (e.g. "annotation v2 of tile 3": the tile and the saved version)
+        when the bytes are not a PNG or the mask's shape is not the tile's; it is a
+        ``ValueError`` too.
     """
+    fix = (
+        "the database row is damaged: restore labeler.db from a backup, or save the tile "
+        "again (the other versions are not affected)"
+    )
     try:
         mask = png_decode(data)
     except Exception as exc:  # noqa: BLE001 - any decoder failure is one clear error
-        raise ValueError(f"{what}: stored mask is not a readable PNG ({exc})") from None
+        raise DamagedRecordError(
+            f"{what}: stored mask is not a readable PNG ({exc}); {fix}"
+        ) from None
     if mask.ndim != 2 or mask.shape != tuple(shape):
-        raise ValueError(
+        raise DamagedRecordError(
             f"{what}: stored mask has shape {mask.shape}, but the tile is {tuple(shape)}; "
-            "the row is damaged or belongs to another tile"
+            f"the row is damaged or belongs to another tile; {fix}"
         )
     return mask
 
@@ -80,22 +88,35 @@ def npy_bytes(array: np.ndarray) -> bytes:
     return buf.getvalue()
 
 
-def npy_decode(data: bytes | None) -> np.ndarray | None:
+def npy_decode(data: bytes | None, *, what: str = "stored array") -> np.ndarray | None:
     """Inverse of :func:`npy_bytes`.
 
     Parameters
     ----------
     data : bytes or None
         ``.npy`` file content.
+    what : str
+        How an error names the value (e.g. "embedding of proposal 4 of tile 2").
 
     Returns
     -------
     ndarray or None
         The array; None stays None.
+
+    Raises
+    ------
+    DamagedRecordError
+        Naming ``what`` when the bytes are not a ``.npy`` array.
     """
     if data is None:
         return None
-    return np.load(io.BytesIO(data), allow_pickle=False)
+    try:
+        return np.load(io.BytesIO(data), allow_pickle=False)
+    except (ValueError, OSError, EOFError) as exc:
+        raise DamagedRecordError(
+            f"{what}: stored array is not readable ({exc}); the database row is damaged: "
+            "restore labeler.db from a backup, or run 'labeler propose' again after a retrain"
+        ) from None
 
 
 @dataclass(frozen=True)
@@ -297,7 +318,9 @@ class ProposalRecord:
             Entropy, margin and BALD per cell; None when the proposal has none (cold
             start) or was read without them.
         """
-        return npy_decode(self.uncertainty_npy)
+        return npy_decode(
+            self.uncertainty_npy, what=f"uncertainty of proposal {self.id} of tile {self.tile_id}"
+        )
 
     def embedding(self) -> np.ndarray | None:
         """The pooled encoder embedding the picker uses.
@@ -307,7 +330,9 @@ class ProposalRecord:
         ndarray, shape (D,), float32, or None
             None when the proposal was stored without one.
         """
-        return npy_decode(self.embedding_npy)
+        return npy_decode(
+            self.embedding_npy, what=f"embedding of proposal {self.id} of tile {self.tile_id}"
+        )
 
 
 @dataclass(frozen=True)

@@ -19,14 +19,46 @@ import sqlalchemy as sa
 from labeler.errors import LabelerError
 from labeler.store import schema as t
 from labeler.store.base import StoreBase, clock
-from labeler.store.dialect import insert_ignoring, upsert
+from labeler.store.dialect import insert_ignoring, make_engine, upsert
 
-__all__ = ["TeamMixin", "TEAM_SECTIONS"]
+__all__ = ["TeamMixin", "TEAM_SECTIONS", "read_team_settings"]
 
 #: Settings sections the whole team shares (besides the ``classes`` table).
 TEAM_SECTIONS = ("tiles", "agreement", "picker")
 
 _ID, _CREATED, _SETTINGS = "project_id", "project_created_at", "team_settings"
+
+
+def read_team_settings(url: str) -> dict | None:
+    """The team settings kept in the database at ``url``, read before the store opens.
+
+    The project's classes must be known before :class:`~labeler.store.Store` checks
+    them against its saved masks, so they are read here first.
+
+    Parameters
+    ----------
+    url : str
+        SQLAlchemy URL of a shared project database.
+
+    Returns
+    -------
+    dict or None
+        As :meth:`TeamMixin.team_settings`; None when the database has none or holds
+        no project yet (opening the store then says what is wrong).
+    """
+    engine = make_engine(url)
+    try:
+        with engine.connect() as conn:
+            if not sa.inspect(conn).has_table("meta"):
+                return None
+            value = conn.execute(
+                sa.select(t.meta.c.value).where(t.meta.c.key == _SETTINGS)
+            ).scalar()
+    except sa.exc.SQLAlchemyError:
+        return None  # the store's own opening reports why in one line
+    finally:
+        engine.dispose()
+    return None if value is None else json.loads(value)
 
 
 class TeamMixin(StoreBase):

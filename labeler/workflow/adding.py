@@ -10,12 +10,13 @@ from __future__ import annotations
 
 import os
 import re
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
+from labeler.errors import InputError, LabelerError
 from labeler.fileio import sha256_file
-from labeler.imagery.intake import ImageCopy, copy_image
+from labeler.imagery.intake import ImageCopy, copy_image, reserve_image_name
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import tile_grid
 from labeler.project import Project
@@ -38,14 +39,15 @@ class AddResult:
     ----------
     path : Path
         The file as given.
-    status : {"added", "skipped"}
-        ``skipped`` when the same content is already in the project.
+    status : {"added", "skipped", "failed"}
+        ``skipped`` when the same content is already in the project; ``failed`` when the
+        file cannot be used (only with ``keep_going``; nothing of it was kept).
     name : str
         The image's name in the project (of the earlier copy when skipped).
     tiles : int
         Tiles cut from it (0 when skipped).
     message : str
-        Why it was skipped.
+        Why it was skipped, or the one-line error of a failed image.
     """
 
     path: Path
@@ -60,6 +62,8 @@ def add_images(
     paths: Sequence[str | os.PathLike[str]],
     *,
     copy: bool = True,
+    keep_going: bool = False,
+    on_result: Callable[[AddResult], None] | None = None,
     progress: Progress = no_progress,
 ) -> list[AddResult]:
     """Add images to the project, each all-or-nothing.
@@ -73,6 +77,12 @@ def add_images(
     copy : bool
         Copy each file (with its world file and ``.prj``) into the project's ``images/``
         folder (default); ``False`` refers to the file where it is.
+    keep_going : bool
+        An image that cannot be used (:class:`InputError`) is reported as a ``failed``
+        result and the next one is added; by default the first one raises.
+    on_result : callable, optional
+        Called with each result as soon as it is known (so a caller can report what was
+        added even when a later image stops the run with an error).
     progress : Progress
         Called as ``progress(done, total, label)``.
 
@@ -85,41 +95,75 @@ def add_images(
     Raises
     ------
     InputError
-        For the first image that cannot be used; images before it stay added, the
-        failing one leaves no trace (no copy, no rows).
+        For the first image that cannot be used (unless ``keep_going``); images before it
+        stay added, the failing one leaves no trace (no copy, no rows).
+    LabelerError
+        If the project is read-only for this user.
     """
+    if project.read_only:
+        raise LabelerError(
+            f"{project.root}: the project is read-only for you (its labeler.db cannot be "
+            "written); adding images needs write access: ask its owner for it, or work on a "
+            "copy of the project folder"
+        )
     results: list[AddResult] = []
-    settings = project.settings
-    store = project.store
-    known = {im.name for im in store.images()}
+    known = {im.name for im in project.store.images()}
+
+    def report(result: AddResult) -> None:
+        results.append(result)
+        if on_result is not None:
+            on_result(result)
+
     for n, raw in enumerate(paths):
         src = Path(raw)
-        # the header's size against tiles.max_image_px, before any tile is made
-        with open_image(src, max_pixels=settings.tiles.max_image_px) as reader:
-            info = reader.info
-            sha = sha256_file(src)
-            existing = store.image_by_sha(sha)
-            if existing is not None:
-                results.append(
-                    AddResult(
-                        src,
-                        "skipped",
-                        existing.name,
-                        message=f"{src}: already in the project as {existing.name!r} (same content)",
-                    )
-                )
-                progress(n + 1, len(paths), src.name)
-                continue
-            windows = tile_grid(
-                info.height, info.width, size=settings.tiles.size, overlap=settings.tiles.overlap
+        try:
+            result = _add_one(
+                project, src, copy=copy, known=known, n=n, total=len(paths), progress=progress
             )
-            for k, w in enumerate(windows):
-                reader.read(w)
-                progress(n, len(paths), f"{src.name}: checked tile {k + 1}/{len(windows)}")
-        base = _safe_name(src.stem)
-        name, i = base, 2
-        while name in known:
-            name, i = f"{base}-{i}", i + 1
+        except InputError as exc:
+            if not keep_going:
+                raise
+            result = AddResult(src, "failed", "", message=str(exc))
+        report(result)
+        progress(n + 1, len(paths), src.name)
+    return results
+
+
+def _add_one(
+    project: Project,
+    src: Path,
+    *,
+    copy: bool,
+    known: set[str],
+    n: int,
+    total: int,
+    progress: Progress,
+) -> AddResult:
+    """Add one image (all or nothing); ``known`` gets its name."""
+    settings = project.settings
+    store = project.store
+    # the header's size against tiles.max_image_px, before any tile is made
+    with open_image(src, max_pixels=settings.tiles.max_image_px) as reader:
+        info = reader.info
+        sha = sha256_file(src)
+        existing = store.image_by_sha(sha)
+        if existing is not None:
+            return AddResult(
+                src,
+                "skipped",
+                existing.name,
+                message=f"{src}: already in the project as {existing.name!r} (same content)",
+            )
+        windows = tile_grid(
+            info.height, info.width, size=settings.tiles.size, overlap=settings.tiles.overlap
+        )
+        for k, w in enumerate(windows):
+            reader.read(w)
+            progress(n, total, f"{src.name}: checked tile {k + 1}/{len(windows)}")
+    # the name is claimed until the image is in the store: no other add takes it, and
+    # what a killed add leaves is found by the claim (labeler.imagery.intake)
+    name, claimed = reserve_image_name(project.images_dir, _safe_name(src.stem), taken=known)
+    with claimed:
         copied: ImageCopy | None = None
         stored_path = str(src.resolve())
         if copy:
@@ -148,7 +192,5 @@ def add_images(
             if copied is not None:
                 copied.remove()
             raise
-        known.add(name)
-        results.append(AddResult(src, "added", name, tiles=len(windows)))
-        progress(n + 1, len(paths), src.name)
-    return results
+    known.add(name)
+    return AddResult(src, "added", name, tiles=len(windows))

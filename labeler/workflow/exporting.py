@@ -17,6 +17,7 @@ from labeler.export.geojson import NotRFC7946Warning, TileInfo, image_features
 from labeler.export.geojson_stream import FeatureCollectionWriter
 from labeler.export.manifest import MANIFEST_NAME, manifest_row, write_manifest
 from labeler.export.pngmasks import write_image_masks
+from labeler.fileio import check_output_folder, staged_folder
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import LazyRaster, StitchedMask, TileLayout
 from labeler.project import Project
@@ -238,7 +239,10 @@ def export_project(
     project : Project
         An open project.
     out : path-like
-        Output folder (created if missing).
+        Output folder (created if missing; files of an earlier export with the same
+        names are replaced, others kept). Everything is written into a staging folder
+        beside it first and moved into place at the end, so a failure half-way (a full
+        disk) leaves ``out`` as it was.
     formats : {"geojson", "masks", "all"}
         What to write.
     states : sequence of str
@@ -262,9 +266,54 @@ def export_project(
     Raises
     ------
     LabelerError
-        For an unknown format or state, or images without georeferencing when GeoJSON
-        is asked for without ``pixel_coordinates`` (nothing is written then).
+        For an unknown format or state, ``out`` that is a file or lies under one, or
+        images without georeferencing when GeoJSON is asked for without
+        ``pixel_coordinates`` (nothing is written then).
     """
+    folder = check_output_folder(out, what="--out")
+    with staged_folder(folder) as stage:
+        staged = _write_export(
+            project,
+            stage,
+            formats=formats,
+            states=states,
+            proposals=proposals,
+            pixel_coordinates=pixel_coordinates,
+            previews=previews,
+            progress=progress,
+        )
+    result = _replace(
+        staged,
+        folder=folder,
+        geojson=[folder / p.relative_to(stage) for p in staged.geojson],
+        masks=[folder / p.relative_to(stage) for p in staged.masks],
+        manifest=None if staged.manifest is None else folder / staged.manifest.relative_to(stage),
+    )
+    if not project.store.read_only:  # a read-only project can still be exported elsewhere
+        project.store.log_event(
+            "export",
+            detail={
+                "folder": str(folder),
+                "format": formats,
+                "images": result.images,
+                "proposals": proposals,
+            },
+        )
+    return result
+
+
+def _write_export(
+    project: Project,
+    folder: Path,
+    *,
+    formats: str,
+    states: Sequence[str],
+    proposals: bool,
+    pixel_coordinates: bool,
+    previews: bool,
+    progress: Progress,
+) -> ExportResult:
+    """The body of :func:`export_project`: write every file into ``folder``."""
     if formats not in EXPORT_FORMATS:
         raise LabelerError(
             f"--format: expected one of {', '.join(EXPORT_FORMATS)}, got {formats!r}"
@@ -286,7 +335,6 @@ def export_project(
                 "one. Pass --pixel-coordinates to write pixel positions (not RFC 7946 GeoJSON), or "
                 "--format masks"
             )
-    folder = Path(out)
     result = ExportResult(folder=folder)
     rows = []
     es = project.settings.export
@@ -360,15 +408,6 @@ def export_project(
         path = write_manifest(folder / MANIFEST_NAME, rows)
         result = _replace(result, manifest=Path(path))
     progress(len(images), len(images), "done")
-    store.log_event(
-        "export",
-        detail={
-            "folder": str(folder),
-            "format": formats,
-            "images": result.images,
-            "proposals": proposals,
-        },
-    )
     return result
 
 

@@ -48,21 +48,43 @@ class ProposeResult:
     cache_misses: int = 0
 
 
-def _cold_start_version(project: Project) -> ModelVersionRecord:
+def _cold_start_name(project: Project) -> str:
     cs = project.settings.cold_start
-    name = f"cold-start exg-exr {cs.exr_coefficient:g} {cs.threshold} min{cs.min_object_px}"
+    return f"cold-start exg-exr {cs.exr_coefficient:g} {cs.threshold} min{cs.min_object_px}"
+
+
+def _cold_start_version(project: Project) -> ModelVersionRecord | None:
+    """The stored cold-start version of the current settings, or None if never used."""
+    name = _cold_start_name(project)
     for mv in reversed(project.store.model_versions()):
         if mv.kind == "cold_start" and mv.name == name:
             return mv
+    return None
+
+
+def _new_cold_start_version(project: Project) -> ModelVersionRecord:
+    cs = project.settings.cold_start
     return project.store.add_model_version(
         kind="cold_start",
-        name=name,
+        name=_cold_start_name(project),
         details={
             "exr_coefficient": cs.exr_coefficient,
             "threshold": cs.threshold,
             "min_object_px": cs.min_object_px,
         },
     )
+
+
+def _check_image_files(project: Project, images: Sequence[ImageRecord]) -> None:
+    """Every image file to read is there (and an in-place one unchanged), before any work."""
+    for im in images:
+        path = project.image_path(im)  # checks an in-place image's content
+        if not path.is_file():
+            raise InputError(
+                f"{path}: the file of image {im.name!r} is missing from the project; put it "
+                "back (from a backup or the original) and run 'labeler propose' again; "
+                "nothing was proposed"
+            )
 
 
 def _blocks(
@@ -221,7 +243,8 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
             )
         mv = head_mv
     else:
-        mv = _cold_start_version(project)
+        mv = _cold_start_version(project)  # made when its first proposals are stored
+    mv_id = None if mv is None else mv.id
     latest = store.latest_proposals()
     images = store.images()
     todo = {}
@@ -230,11 +253,12 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
         tiles = [
             t
             for t in store.tiles(image_id=im.id)
-            if latest.get(t.id) is None or latest[t.id].model_version_id != mv.id
+            if latest.get(t.id) is None or latest[t.id].model_version_id != mv_id
         ]
         up_to_date += len(store.tiles(image_id=im.id)) - len(tiles)
         if tiles:
             todo[im.id] = tiles
+    _check_image_files(project, [im for im in images if im.id in todo])
     total = sum(len(v) for v in todo.values())
     done = 0
     proposed = 0
@@ -263,11 +287,15 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
                     reader.read(block), block, members, feats, head=head, settings=settings
                 )
                 del feats  # one block's features at a time
+                if mv is None:
+                    mv = _new_cold_start_version(project)
                 store.add_proposals(mv.id, items)
                 proposed += len(items)
                 done += len(members)
                 progress(done, total, f"{im.name}: proposed")
     progress(total, total, "done")
+    if mv is None:  # nothing to propose and the cold start never used: name it anyway
+        mv = _new_cold_start_version(project)
     return ProposeResult(
         model_version=mv,
         mode="cold_start" if head is None else "head",

@@ -67,3 +67,68 @@ def test_a_side_file_that_cannot_be_copied_removes_the_image_copy(tmp_path, plot
     with pytest.raises(PermissionError):
         copy_image(plot_png, tmp_path / "images", "plot-7")
     assert list((tmp_path / "images").iterdir()) == []
+
+
+# -- names claimed while an add runs, leftovers of killed adds -----------------------------
+def test_files_named_are_exactly_the_image_and_its_side_files(tmp_path):
+    from labeler.imagery.intake import files_named
+
+    for name in ("plot-a.tif", "plot-a.tfw", "plot-a-2.tif", "plot-a.b.tif", ".plot-a.tif.x.part"):
+        (tmp_path / name).write_bytes(b"x")
+    assert [p.name for p in files_named(tmp_path, "plot-a")] == ["plot-a.tfw", "plot-a.tif"]
+    assert [p.name for p in files_named(tmp_path, "plot-a.b")] == ["plot-a.b.tif"]
+    assert files_named(tmp_path / "missing", "plot-a") == []
+
+
+def test_reserved_names_never_collide(tmp_path):
+    from labeler.imagery.intake import reserve_image_name
+
+    (tmp_path / "plot.tif").write_bytes(b"an earlier copy")
+    first, held1 = reserve_image_name(tmp_path, "plot", taken={"plot-2"})
+    second, held2 = reserve_image_name(tmp_path, "plot", taken={"plot-2"})
+    assert (first, second) == ("plot-3", "plot-4")  # plot: a file; plot-2: stored
+    held1.release()
+    held2.release()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["plot.tif"]
+
+
+def test_leftovers_removed_only_for_dead_claims(tmp_path):
+    from labeler.fileio import claim
+    from labeler.imagery.intake import remove_leftovers
+
+    (tmp_path / "kept.tif").write_bytes(b"a stored image")
+    (tmp_path / ".adding-dead").write_text("")  # nobody holds it: its add was killed
+    (tmp_path / "dead.tif").write_bytes(b"copied before the kill")
+    (tmp_path / ".dead.tfw.abc_123.part").write_bytes(b"half a side file")
+    (tmp_path / ".adding-stored").write_text("")  # killed after the store had it
+    (tmp_path / "stored.tif").write_bytes(b"in the store")
+    (tmp_path / "..adding-x.q1w2e3.tmp").write_text("")  # a claim killed while being made
+    live = claim(tmp_path / ".adding-busy")
+    (tmp_path / ".busy.tif.zz9.part").write_bytes(b"being copied")
+    asked = []
+
+    def stored():
+        asked.append(1)
+        return ["kept", "stored"]
+
+    try:
+        removed = remove_leftovers(tmp_path, stored=stored)
+        assert sorted(p.name for p in removed) == [
+            "..adding-x.q1w2e3.tmp",
+            ".adding-dead",
+            ".adding-stored",
+            ".dead.tfw.abc_123.part",
+            "dead.tif",
+        ]
+        assert sorted(p.name for p in tmp_path.iterdir()) == [
+            ".adding-busy",
+            ".busy.tif.zz9.part",
+            "kept.tif",
+            "stored.tif",
+        ]
+        assert asked == [1]  # the store is asked once, and only because claims were found
+    finally:
+        live.release()
+    assert remove_leftovers(tmp_path, stored=lambda: pytest.fail("no claim, no question")) == [
+        tmp_path / ".busy.tif.zz9.part"
+    ]

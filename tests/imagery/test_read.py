@@ -214,3 +214,15 @@ def test_index_png_keeps_values_and_refuses_other_forms(tmp_path, rgb):
     (tmp_path / "cut.png").write_bytes((tmp_path / "m.png").read_bytes()[:40])
     with pytest.raises(InputError, match="cut.png: damaged, truncated or unreadable PNG"):
         read_index_png(tmp_path / "cut.png")
+
+
+def test_pillow_size_alarm_becomes_our_own_message(tmp_path, monkeypatch):
+    # Pillow warns above Image.MAX_IMAGE_PIXELS and refuses above twice that (Pillow
+    # documentation, "Image.open": decompression bomb protection); labeler applies its
+    # own limit instead, so no library warning escapes (warnings are errors in the tests)
+    monkeypatch.setattr(Image, "MAX_IMAGE_PIXELS", 300)
+    Image.fromarray(np.full((20, 20), 9, np.uint8)).save(tmp_path / "warned.png")  # 400 px
+    assert read_image(tmp_path / "warned.png").shape == (20, 20, 3)
+    Image.fromarray(np.zeros((30, 30), np.uint8)).save(tmp_path / "refused.png")  # 900 px
+    with pytest.raises(InputError, match=r"refused\.png: 900 pixels is too large to decode whole"):
+        read_image(tmp_path / "refused.png")
