@@ -33,7 +33,15 @@ from labeler.store import Store
 from labeler.store.records import ImageRecord
 from labeler.store.team import TEAM_SECTIONS, read_team_settings
 
-__all__ = ["Project", "init_project", "join_project", "open_project", "inside", "team_settings"]
+__all__ = [
+    "Project",
+    "init_project",
+    "join_project",
+    "open_project",
+    "upgrade_project",
+    "inside",
+    "team_settings",
+]
 
 
 def team_settings(settings: Settings) -> dict:
@@ -72,7 +80,9 @@ def _settings_text(store_url: str | None) -> str:
     text = default_settings_text()
     if store_url is None:
         return text
-    line = '# url = "postgresql+psycopg://user@server/labeler"   # default: labeler.db in this folder'
+    line = (
+        '# url = "postgresql+psycopg://user@server/labeler"   # default: labeler.db in this folder'
+    )
     if line not in text:  # pragma: no cover - the default text names the option
         raise AssertionError("the default settings text lost its [store] url line")
     return text.replace(line, f"url = {json.dumps(store_url)}")
@@ -300,6 +310,39 @@ def join_project(folder: str | os.PathLike[str], *, store_url: str) -> Project:
         raise
     settings = _with_team(load_settings(root).replace(store={"url": store_url}), team)
     return Project(root=root, settings=settings, store=store)
+
+
+def upgrade_project(folder: str | os.PathLike[str]) -> tuple[int, int, Path | None]:
+    """Bring the project's database up to this release's schema (``labeler upgrade``).
+
+    Parameters
+    ----------
+    folder : path
+        A project folder (its settings name the database).
+
+    Returns
+    -------
+    (from_version, to_version, backup) : (int, int, Path or None)
+        The schema versions before and after, and the copy of a SQLite database made
+        before any change (None on a server, or when nothing changed).
+
+    Raises
+    ------
+    LabelerError
+        If the folder holds no project, or its database holds none or one of a newer
+        release.
+    """
+    from labeler.store.migrate import upgrade_database
+
+    root = Path(folder)
+    if not (root / SETTINGS_FILE).exists():
+        raise LabelerError(f"{root}: no {SETTINGS_FILE} here, so not a labeler project")
+    try:
+        settings = load_settings(root)
+    except ValueError as exc:
+        raise LabelerError(str(exc)) from None
+    result = upgrade_database(settings.db_url)
+    return result.from_version, result.to_version, result.backup
 
 
 def _check_new_folder(folder: str | os.PathLike[str]) -> Path:

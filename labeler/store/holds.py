@@ -290,6 +290,28 @@ class HoldsMixin(ImagesMixin):
                 ended.append(int(r.id))
         return ended
 
+    def current_holds(self) -> list[tuple[int, str, float]]:
+        """Who holds what now, and how long each hold has left (the database's clock).
+
+        Returns
+        -------
+        list of (int, str, float)
+            Tile id, holder and seconds until the hold lapses without a heartbeat
+            (negative: lapsed, ended when tiles are next handed out), in tile order.
+        """
+        seen = sa.func.coalesce(t.tiles.c.heartbeat_at, t.tiles.c.updated_at)
+        with self._read() as conn:
+            at = clock(conn)
+            rows = conn.execute(
+                sa.select(t.tiles.c.id, t.annotators.c.name, seen.label("seen"))
+                .select_from(t.tiles.join(t.annotators, t.tiles.c.held_by == t.annotators.c.id))
+                .order_by(t.tiles.c.id)
+            ).all()
+        return [
+            (int(r.id), r.name, self.lease_seconds - (at - as_utc(r.seen)).total_seconds())
+            for r in rows
+        ]
+
     # -- assignment ---------------------------------------------------------------------
     @staticmethod
     def _assign(conn: sa.Connection, tile_id: int, annotator_id: int) -> None:

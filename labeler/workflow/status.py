@@ -33,6 +33,12 @@ class ProjectStatus:
         Name of the newest model version.
     latest_miou : float or None
         Its validation mean IoU (None for a cold start).
+    shared : bool
+        The project lives on a database server (a team's shared project).
+    team : dict
+        The settings the team shares, kept in the database (empty when none are).
+    holds : list of (int, str, float)
+        Tile id, holder and minutes left before the hold lapses without a heartbeat.
     """
 
     folder: Path
@@ -44,6 +50,9 @@ class ProjectStatus:
     model_versions: int = 0
     latest_model: str | None = None
     latest_miou: float | None = None
+    shared: bool = False
+    team: dict = field(default_factory=dict)
+    holds: list[tuple[int, str, float]] = field(default_factory=list)
 
 
 def project_status(project: Project) -> ProjectStatus:
@@ -78,4 +87,7 @@ def project_status(project: Project) -> ProjectStatus:
         model_versions=len(models),
         latest_model=None if latest is None else latest.name,
         latest_miou=None if latest is None else latest.miou,
+        shared=not store.is_sqlite,
+        team=store.team_settings() or {},
+        holds=[(tid, who, left / 60) for tid, who, left in store.current_holds()],
     )
