@@ -238,15 +238,19 @@ def insert_ignoring(
     Returns
     -------
     int
-        Rows written (those skipped not counted).
+        For one row: 1 when written, 0 when skipped; for several: -1 (drivers do not
+        all count the rows of a many-row statement).
     """
     if not rows:
         return 0
     stmt = _dialect_insert(conn, table).on_conflict_do_nothing(
         index_elements=None if keys is None else list(keys)
     )
-    res = conn.execute(stmt, rows if not isinstance(rows, Mapping) else [rows])
-    return int(res.rowcount)
+    if isinstance(rows, Mapping):  # one row: RETURNING tells whether it was written
+        written = stmt.values(**rows).returning(*table.primary_key.columns)
+        return len(conn.execute(written).all())
+    conn.execute(stmt, list(rows))
+    return -1
 
 
 def upsert(
