@@ -219,6 +219,11 @@ class Project:
             return {}
         return data if isinstance(data, dict) else {}
 
+    @property
+    def database_name(self) -> str:
+        """The project's database URL, its password hidden (for messages)."""
+        return self.store.shown_url
+
     def close(self) -> None:
         self.store.close()
 

@@ -56,6 +56,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("dir", metavar="DIR", help="project folder to create")
     p.add_argument(
         "--store",
+        dest="store_url",
         metavar="URL",
         help="keep the project in this database (postgresql+psycopg://user@server/db, "
         "empty) so a team can share it; default labeler.db in DIR",
@@ -70,7 +71,9 @@ def build_parser() -> argparse.ArgumentParser:
         "the database.",
     )
     p.add_argument("dir", metavar="DIR", help="working folder to create")
-    p.add_argument("--store", metavar="URL", required=True, help="the project's database URL")
+    p.add_argument(
+        "--store", dest="store_url", metavar="URL", required=True, help="the project's database URL"
+    )
     p.set_defaults(func=cmd_join)
 
     p = sub.add_parser(

@@ -92,11 +92,11 @@ def _table(headers: Sequence[str], rows: Sequence[Sequence[object]]) -> str:
 def cmd_init(args) -> int:
     from labeler.project import init_project
 
-    with init_project(args.dir, store_url=args.store) as project:
+    with init_project(args.dir, store_url=args.store_url) as project:
         print(f"created project {project.root} (settings in {project.root / 'labeler.toml'})")
-        if args.store:
+        if args.store_url:
             print(
-                f"its database: {project.store.shown_url}; teammates run "
+                f"its database: {project.database_name}; teammates run "
                 f"'labeler join DIR --store URL' with the same URL"
             )
     return 0
@@ -104,11 +104,12 @@ def cmd_init(args) -> int:
 
 def cmd_join(args) -> int:
     from labeler.project import join_project
+    from labeler.workflow import project_status
 
-    with join_project(args.dir, store_url=args.store) as project:
+    with join_project(args.dir, store_url=args.store_url) as project:
         print(
-            f"joined the shared project at {project.store.shown_url}: working folder "
-            f"{project.root}, {len(project.store.images())} images"
+            f"joined the shared project at {project.database_name}: working folder "
+            f"{project.root}, {project_status(project).images} images"
         )
     return 0
 

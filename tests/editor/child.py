@@ -74,6 +74,9 @@ class FolderBackend:
     def discard_draft(self) -> None:
         (self.folder / "draft.npz").unlink(missing_ok=True)
 
+    def heartbeat(self) -> bool:
+        return True  # a folder has no holds to renew
+
 
 class TracingWindow(HighGuiWindow):
     """The HighGUI window, writing a line per handled event to a trace file (child side).
