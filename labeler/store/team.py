@@ -46,7 +46,10 @@ def read_team_settings(url: str) -> dict | None:
         As :meth:`TeamMixin.team_settings`; None when the database has none or holds
         no project yet (opening the store then says what is wrong).
     """
-    engine = make_engine(url)
+    try:
+        engine = make_engine(url)
+    except Exception:  # noqa: BLE001 - a bad URL or driver: the store's opening says which
+        return None
     try:
         with engine.connect() as conn:
             if not sa.inspect(conn).has_table("meta"):
