@@ -1,5 +1,7 @@
 # labeler: two commands from a fresh checkout.
 #   make test   builds or reuses .venv/, installs everything, runs the whole test suite
+#               (the store, workflow and CLI tests on SQLite and on a throwaway PostgreSQL
+#               server the test session starts and stops; Debian package postgresql)
 #   make demo   builds or reuses .venv/, installs everything, builds and shows a demo project
 # and for contributors:
 #   make lint   ruff, then the room rules as import contracts (lint-imports, pyproject.toml)
@@ -8,7 +10,7 @@ PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
-APT_PACKAGES := xvfb xdotool x11-apps imagemagick
+APT_PACKAGES := xvfb xdotool x11-apps imagemagick postgresql
 SUDO := $(shell [ "$$(id -u)" = 0 ] || echo sudo)
 # torch/torchvision releases that lie on this machine's disk (a range resolves to them)
 TORCH_PINS := torch==2.14.1 torchvision==0.29.1
@@ -23,6 +25,8 @@ system-packages:
 	command -v xdotool >/dev/null || missing="$$missing xdotool"; \
 	command -v xwd >/dev/null || missing="$$missing x11-apps"; \
 	command -v convert >/dev/null || missing="$$missing imagemagick"; \
+	{ command -v initdb >/dev/null || ls /usr/lib/postgresql/*/bin/initdb >/dev/null 2>&1; } \
+	  || missing="$$missing postgresql"; \
 	if [ -n "$$missing" ]; then \
 	  echo "installing system packages:$$missing"; \
 	  $(SUDO) apt-get update -qq && \

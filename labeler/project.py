@@ -18,19 +18,89 @@ is checked against the SHA-256 it was added with before its pixels are used
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from labeler.classes import ClassSchema
 from labeler.errors import InputError, LabelerError, StoreError
 from labeler.fileio import atomic_write_text, sha256_file
 from labeler.imagery.intake import remove_leftovers
 from labeler.settings import SETTINGS_FILE, Settings, default_settings_text, load_settings
 from labeler.store import Store
 from labeler.store.records import ImageRecord
+from labeler.store.team import TEAM_SECTIONS, read_team_settings
 
-__all__ = ["Project", "init_project", "open_project", "inside"]
+__all__ = [
+    "Project",
+    "init_project",
+    "join_project",
+    "open_project",
+    "upgrade_project",
+    "inside",
+    "team_settings",
+]
+
+
+def team_settings(settings: Settings) -> dict:
+    """The settings a team must share, as plain data for the store.
+
+    Parameters
+    ----------
+    settings : Settings
+
+    Returns
+    -------
+    dict
+        ``classes`` (name to ``{"index", "colour"}``) and the options of every section
+        of :data:`labeler.store.team.TEAM_SECTIONS`.
+    """
+    out: dict = {name: dataclasses.asdict(getattr(settings, name)) for name in TEAM_SECTIONS}
+    out["classes"] = {
+        c.name: {"index": c.index, **({"colour": c.colour} if c.colour else {})}
+        for c in settings.classes
+    }
+    return out
+
+
+def _with_team(settings: Settings, team: dict | None) -> Settings:
+    """``settings`` with the team's sections put in (the database's word wins)."""
+    if not team:
+        return settings
+    sections = {name: team[name] for name in TEAM_SECTIONS if name in team}
+    out = settings.replace(**sections)
+    if "classes" in team:
+        out = out.replace(classes=ClassSchema.from_mapping(team["classes"]))
+    return out
+
+
+def _settings_text(store_url: str | None) -> str:
+    text = default_settings_text()
+    if store_url is None:
+        return text
+    line = (
+        '# url = "postgresql+psycopg://user@server/labeler"   # default: labeler.db in this folder'
+    )
+    if line not in text:  # pragma: no cover - the default text names the option
+        raise AssertionError("the default settings text lost its [store] url line")
+    return text.replace(line, f"url = {json.dumps(store_url)}")
+
+
+def _open_store(settings: Settings, *, create: bool) -> Store:
+    try:
+        return Store(
+            settings.db_url,
+            schema=settings.classes,
+            create=create,
+            lease_seconds=settings.holds.lease_minutes * 60,
+        )
+    except StoreError as exc:
+        if settings.store.url and exc.kind in ("url", "driver", "connect", "permission"):
+            origin = settings.origin("store.url")
+            raise StoreError(f"store.url (from {origin}): {exc}", kind=exc.kind) from None
+        raise
 
 
 def inside(root: Path, candidate: Path) -> bool:
@@ -149,6 +219,11 @@ class Project:
             return {}
         return data if isinstance(data, dict) else {}
 
+    @property
+    def database_name(self) -> str:
+        """The project's database URL, its password hidden (for messages)."""
+        return self.store.shown_url
+
     def close(self) -> None:
         self.store.close()
 
@@ -159,14 +234,123 @@ class Project:
         self.close()
 
 
-def init_project(folder: str | os.PathLike[str]) -> Project:
-    """Create a project folder (settings file, store, sub-folders).
+def init_project(folder: str | os.PathLike[str], *, store_url: str | None = None) -> Project:
+    """Create a project: its database (made and claimed) and its working folder.
+
+    Parameters
+    ----------
+    folder : path
+        The working folder to create (settings file, ``images/``, ``models/``,
+        ``cache/``).
+    store_url : str, optional
+        Database URL of a shared project (PostgreSQL); default the folder's own
+        SQLite file (or ``LABELER_STORE_URL``). Written into the settings file.
+
+    Returns
+    -------
+    Project
+        The open project.
 
     Raises
     ------
     LabelerError
-        If the folder already holds a project, or is a file.
+        If the folder already holds a project or is a file, or the database already
+        holds a project (join that one with :func:`join_project`); nothing is made.
     """
+    root = _check_new_folder(folder)
+    settings = load_settings(root)
+    if store_url is not None:
+        settings = settings.replace(store={"url": store_url})
+    if settings.store.url:
+        # the database is checked (and claimed) before the folder is made
+        store = _open_store(settings, create=True)
+        try:
+            store.claim_project(team_settings(settings))
+        except BaseException:
+            store.close()
+            raise
+        _make_folder(root, _settings_text(store_url))
+        settings = load_settings(root)
+        if store_url is not None:
+            settings = settings.replace(store={"url": store_url})
+    else:
+        _make_folder(root, _settings_text(None))
+        settings = load_settings(root)
+        store = _open_store(settings, create=True)
+        store.claim_project(team_settings(settings))
+    store.log_event("project_created", detail={"folder": root.name})
+    return Project(root=root, settings=settings, store=store)
+
+
+def join_project(folder: str | os.PathLike[str], *, store_url: str) -> Project:
+    """Make a working folder on this machine for a project kept in a shared database.
+
+    Parameters
+    ----------
+    folder : path
+        The working folder to create.
+    store_url : str
+        Database URL of the project (as its ``init`` was given).
+
+    Returns
+    -------
+    Project
+        The open project, with the team's settings from the database.
+
+    Raises
+    ------
+    LabelerError
+        If the folder already holds a project, or the database holds no project
+        (suggesting ``labeler init``); nothing is made.
+    """
+    root = _check_new_folder(folder)
+    team = read_team_settings(store_url)
+    settings = _with_team(load_settings(root).replace(store={"url": store_url}), team)
+    store = _open_store(settings, create=False)
+    try:
+        _make_folder(root, _settings_text(store_url))
+        store.log_event("project_joined", detail={"folder": root.name})
+    except BaseException:
+        store.close()
+        raise
+    settings = _with_team(load_settings(root).replace(store={"url": store_url}), team)
+    return Project(root=root, settings=settings, store=store)
+
+
+def upgrade_project(folder: str | os.PathLike[str]) -> tuple[int, int, Path | None]:
+    """Bring the project's database up to this release's schema (``labeler upgrade``).
+
+    Parameters
+    ----------
+    folder : path
+        A project folder (its settings name the database).
+
+    Returns
+    -------
+    (from_version, to_version, backup) : (int, int, Path or None)
+        The schema versions before and after, and the copy of a SQLite database made
+        before any change (None on a server, or when nothing changed).
+
+    Raises
+    ------
+    LabelerError
+        If the folder holds no project, or its database holds none or one of a newer
+        release.
+    """
+    from labeler.store.migrate import upgrade_database
+
+    root = Path(folder)
+    if not (root / SETTINGS_FILE).exists():
+        raise LabelerError(f"{root}: no {SETTINGS_FILE} here, so not a labeler project")
+    try:
+        settings = load_settings(root)
+    except ValueError as exc:
+        raise LabelerError(str(exc)) from None
+    result = upgrade_database(settings.db_url)
+    return result.from_version, result.to_version, result.backup
+
+
+def _check_new_folder(folder: str | os.PathLike[str]) -> Path:
     root = Path(folder)
     if root.exists() and not root.is_dir():
         raise LabelerError(f"{root}: exists and is not a folder")
@@ -174,18 +358,21 @@ def init_project(folder: str | os.PathLike[str]) -> Project:
         raise LabelerError(
             f"{root}: already holds a labeler project; use it, or choose another folder"
         )
+    return root
+
+
+def _make_folder(root: Path, settings_text: str) -> None:
     root.mkdir(parents=True, exist_ok=True)
-    atomic_write_text(root / SETTINGS_FILE, default_settings_text())
+    atomic_write_text(root / SETTINGS_FILE, settings_text)
     for sub in ("images", "models", "cache"):
         (root / sub).mkdir(exist_ok=True)
-    settings = load_settings(root)
-    store = Store(settings.db_url, schema=settings.classes, create=True)
-    store.log_event("project_created", detail={"folder": root.name})
-    return Project(root=root, settings=settings, store=store)
 
 
 def open_project(folder: str | os.PathLike[str]) -> Project:
     """Open an existing project folder.
+
+    On a shared server the team's settings kept in the database (classes, tiles,
+    agreement, picker) replace the file's; a SQLite project's file is its own word.
 
     Raises
     ------
@@ -214,13 +401,10 @@ def open_project(folder: str | os.PathLike[str]) -> Project:
         raise
     except ValueError as exc:
         raise LabelerError(str(exc)) from None
-    try:
-        store = Store(settings.db_url, schema=settings.classes, create=False)
-    except StoreError as exc:
-        if settings.store.url and exc.kind in ("url", "driver", "connect", "permission"):
-            origin = settings.origin("store.url")
-            raise StoreError(f"store.url (from {origin}): {exc}", kind=exc.kind) from None
-        raise
+    if settings.store.url and not settings.db_url.startswith("sqlite"):
+        # a shared project: the team's settings in its database win over the file's
+        settings = _with_team(settings, read_team_settings(settings.db_url))
+    store = _open_store(settings, create=False)
     project = Project(root=root, settings=settings, store=store)
     if not project.read_only:
         try:

@@ -43,6 +43,10 @@ Sections and options (defaults in brackets):
     ``simplify_tolerance_px`` [0.5]; ``min_area_px`` [8]; ``val_share`` [0.2]; ``seed`` [0].
 ``[editor]``
     ``autosave_seconds`` [5]; ``opacity`` [0.45].
+``[holds]``
+    ``lease_minutes`` [30] a hold lapses after this long without a heartbeat from its
+    editor (by the database's clock); ``heartbeat_seconds`` [60] how often an open
+    editor renews its hold.
 ``[classes]``
     optional table ``name = {index = i, colour = "#RRGGBB"}`` replacing the default schema
     of :mod:`labeler.classes`.
@@ -209,6 +213,13 @@ class ExportSettings(Checked):
 
 
 @dataclass(frozen=True)
+class HoldSettings(Checked):
+    _section = "holds"
+    lease_minutes: float = 30.0
+    heartbeat_seconds: float = 60.0
+
+
+@dataclass(frozen=True)
 class EditorSettings(Checked):
     _section = "editor"
     autosave_seconds: float = 5.0
@@ -230,6 +241,7 @@ _SECTIONS = {
     "agreement": AgreementSettings,
     "export": ExportSettings,
     "editor": EditorSettings,
+    "holds": HoldSettings,
 }
 
 
@@ -250,6 +262,7 @@ class Settings:
     agreement: AgreementSettings = field(default_factory=AgreementSettings)
     export: ExportSettings = field(default_factory=ExportSettings)
     editor: EditorSettings = field(default_factory=EditorSettings)
+    holds: HoldSettings = field(default_factory=HoldSettings)
     classes: ClassSchema = DEFAULT_SCHEMA
     origins: Mapping[str, str] = field(default_factory=dict, compare=False, repr=False)
 
@@ -518,6 +531,10 @@ seed = 0
 [editor]
 autosave_seconds = 5
 opacity = 0.45
+
+[holds]
+lease_minutes = 30        # a hold lapses after this long without a sign from its editor
+heartbeat_seconds = 60    # how often an open editor renews its hold
 
 # [classes]               # replaces the default schema when present
 # soil = { index = 0 }

@@ -109,6 +109,10 @@ RANGES: dict[str, dict[str, Range]] = {
         "seed": Range(0),
     },
     "editor": {"autosave_seconds": Range(0, low_open=True), "opacity": Range(0, 1)},
+    "holds": {
+        "lease_minutes": Range(0, low_open=True),
+        "heartbeat_seconds": Range(0, low_open=True),
+    },
 }
 
 

@@ -41,7 +41,7 @@ def test_usage_error_exit_2(capsys):
     assert info.value.code == 2
 
 
-def test_init_add_status(tmp_path, images, capsys):
+def test_init_add_status(tmp_path, images, capsys, project_store):
     proj = tmp_path / "proj"
     assert main(["init", str(proj)]) == 0
     assert main(["add", str(proj), str(images / "north-strip.tif"), str(images / "leaf.png")]) == 0
@@ -56,7 +56,7 @@ def test_init_add_status(tmp_path, images, capsys):
     assert "2 images, 7 tiles" in out and "unseen" in out and "north-strip" in out
 
 
-def test_bad_image_leaves_project_as_it_was(tmp_path, images, capsys):
+def test_bad_image_leaves_project_as_it_was(tmp_path, images, capsys, project_store):
     proj = tmp_path / "proj"
     main(["init", str(proj)])
     (images / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n" + b"\x00" * 40)

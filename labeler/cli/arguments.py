@@ -14,11 +14,14 @@ from labeler.cli.commands import (
     cmd_export,
     cmd_import,
     cmd_init,
+    cmd_join,
     cmd_pick,
     cmd_propose,
     cmd_queue,
+    cmd_release,
     cmd_retrain,
     cmd_status,
+    cmd_upgrade,
 )
 from labeler.settings import STRATEGIES
 
@@ -52,7 +55,51 @@ def build_parser() -> argparse.ArgumentParser:
         "with a commented settings file (labeler.toml) and an empty store.",
     )
     p.add_argument("dir", metavar="DIR", help="project folder to create")
+    p.add_argument(
+        "--store",
+        dest="store_url",
+        metavar="URL",
+        help="keep the project in this database (postgresql+psycopg://user@server/db, "
+        "empty) so a team can share it; default labeler.db in DIR",
+    )
     p.set_defaults(func=cmd_init)
+
+    p = sub.add_parser(
+        "join",
+        help="work on a shared project from this machine",
+        description="Make a working folder on this machine for a project kept in a shared "
+        "database (made with 'labeler init DIR --store URL'). The team's settings come from "
+        "the database.",
+    )
+    p.add_argument("dir", metavar="DIR", help="working folder to create")
+    p.add_argument(
+        "--store", dest="store_url", metavar="URL", required=True, help="the project's database URL"
+    )
+    p.set_defaults(func=cmd_join)
+
+    p = sub.add_parser(
+        "release",
+        help="give back a tile an editor still holds",
+        description="End the hold on a tile (say its editor crashed) whoever holds it; "
+        "the tile goes back as if its editor closed without a save. Holds also lapse by "
+        "themselves after holds.lease_minutes without a heartbeat.",
+    )
+    p.add_argument("dir", metavar="DIR", help="project folder")
+    p.add_argument("tile", metavar="TILE", type=int, help="tile id (see labeler status)")
+    p.add_argument(
+        "--by", metavar="NAME", help="who releases it, for the log (default: your login name)"
+    )
+    p.set_defaults(func=cmd_release)
+
+    p = sub.add_parser(
+        "upgrade",
+        help="bring a project's database up to this release",
+        description="Upgrade the project's database to this release's schema (Alembic "
+        "migrations). A SQLite database is copied beside itself first; on a server, take a "
+        "pg_dump first.",
+    )
+    p.add_argument("dir", metavar="DIR", help="project folder")
+    p.set_defaults(func=cmd_upgrade)
 
     p = sub.add_parser(
         "add",
@@ -107,7 +154,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument(
         "--fresh", action="store_true", help="delete an earlier demo project in DIR first"
     )
-    p.add_argument("--setup-only", action="store_true", help="only build the project; skip the demo round")
+    p.add_argument(
+        "--setup-only", action="store_true", help="only build the project; skip the demo round"
+    )
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser(

@@ -15,6 +15,9 @@ from labeler.errors import LabelerError
 
 __all__ = [
     "cmd_init",
+    "cmd_join",
+    "cmd_release",
+    "cmd_upgrade",
     "cmd_add",
     "cmd_adapt",
     "cmd_status",
@@ -91,8 +94,60 @@ def _table(headers: Sequence[str], rows: Sequence[Sequence[object]]) -> str:
 def cmd_init(args) -> int:
     from labeler.project import init_project
 
-    with init_project(args.dir) as project:
+    with init_project(args.dir, store_url=args.store_url) as project:
         print(f"created project {project.root} (settings in {project.root / 'labeler.toml'})")
+        if args.store_url:
+            print(
+                f"its database: {project.database_name}; teammates run "
+                f"'labeler join DIR --store URL' with the same URL"
+            )
+    return 0
+
+
+def cmd_join(args) -> int:
+    from labeler.project import join_project
+    from labeler.workflow import project_status
+
+    with join_project(args.dir, store_url=args.store_url) as project:
+        print(
+            f"joined the shared project at {project.database_name}: working folder "
+            f"{project.root}, {project_status(project).images} images"
+        )
+    return 0
+
+
+def _login_name() -> str:
+    import getpass
+
+    try:
+        return getpass.getuser()
+    except (KeyError, OSError):  # no login name known (a bare container)
+        return "unknown"
+
+
+def cmd_release(args) -> int:
+    from labeler.project import open_project
+    from labeler.workflow import release_tile
+
+    with open_project(args.dir) as project:
+        holder, state = release_tile(project, args.tile, by=args.by or _login_name())
+    if holder is None:
+        print(f"tile {args.tile} was not held; it stays {state}")
+    else:
+        print(f"tile {args.tile}: released from {holder}; now {state}")
+    return 0
+
+
+def cmd_upgrade(args) -> int:
+    from labeler.project import upgrade_project
+
+    before, after, backup = upgrade_project(args.dir)
+    if before == after:
+        print(f"{args.dir}: the database is at schema version {after}; nothing to do")
+        return 0
+    print(f"{args.dir}: database upgraded from schema version {before} to {after}")
+    if backup is not None:
+        print(f"the database as it was is kept in {backup}")
     return 0
 
 
@@ -138,6 +193,8 @@ def format_status(st) -> str:
     from labeler.states import STATES
 
     out = [f"project {st.folder}: {st.images} images, {st.tiles} tiles"]
+    if st.shared:
+        out.append("shared project: the database is on a server (labeler join DIR --store URL)")
     if st.latest_model:
         miou = "" if st.latest_miou is None else f", validation mIoU {st.latest_miou:.3f}"
         out.append(f"model versions: {st.model_versions} (newest {st.latest_model}{miou})")
@@ -161,6 +218,34 @@ def format_status(st) -> str:
                 ],
             )
         )
+    if st.holds:
+        out.append("")
+        out.append("held tiles (a hold lapses without a heartbeat from its editor)")
+        out.append(
+            _table(
+                ["tile", "held by", "minutes left"],
+                [(tid, who, f"{max(left, 0.0):.1f}") for tid, who, left in st.holds],
+            )
+        )
+    if st.team:
+        out.append("")
+        where = "the team's, kept in the database" if st.shared else "recorded at init"
+        out.append(f"shared settings ({where})")
+        rows = [
+            (
+                "classes",
+                ", ".join(
+                    f"{i['index']}={n}"
+                    for n, i in sorted(
+                        st.team.get("classes", {}).items(), key=lambda kv: kv[1]["index"]
+                    )
+                ),
+            )
+        ]
+        for section in ("tiles", "agreement", "picker"):
+            opts = st.team.get(section, {})
+            rows.append((section, ", ".join(f"{k}={v}" for k, v in opts.items())))
+        out.append(_table(["section", "options"], rows))
     out.append("")
     out.append("per annotator")
     if st.by_annotator:
@@ -309,7 +394,7 @@ def cmd_edit(args) -> int:
     what = {
         # the state the store recorded, as the workflow decided it (never the editor's)
         "saved": f"saved as {outcome.state} "
-        f"({ {KIND_FULL: 'full mask', KIND_WEAK: 'weak label'}.get(outcome.kind, outcome.kind)})",
+        f"({ {KIND_FULL: 'full mask', KIND_WEAK: 'weak label'}.get(outcome.kind, outcome.kind) })",
         "discarded": "left without saving",
         "left": "left without changes",
         "closed": "window closed",

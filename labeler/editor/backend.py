@@ -130,6 +130,10 @@ class EditorBackend(Protocol):
         """
         ...
 
+    def heartbeat(self) -> bool:
+        """Renew the hold on the tile; False when it is no longer held by this editor."""
+        ...
+
 
 @dataclass(frozen=True)
 class SavedLabel:
@@ -177,6 +181,7 @@ class MemoryBackend:
     saved: list[SavedLabel] = field(default_factory=list)
     drafts_written: int = 0
     relearned: int = 0
+    heartbeats: int = 0
 
     def save(self, mask: np.ndarray, *, kind: str, actions: int, seconds: float) -> str:
         """Keep the label in :attr:`saved` and return :attr:`state` (see the class)."""
@@ -215,3 +220,8 @@ class MemoryBackend:
             return None
         self.relearned += 1
         return np.asarray(self.learner(np.array(marks, np.uint8)), np.uint8)
+
+    def heartbeat(self) -> bool:
+        """Count the renewal; the hold is always there."""
+        self.heartbeats += 1
+        return True

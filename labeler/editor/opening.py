@@ -145,6 +145,7 @@ def edit_tile(
             schema=project.settings.classes,
             title=edit.title,
             autosave_seconds=project.settings.editor.autosave_seconds,
+            heartbeat_seconds=project.settings.holds.heartbeat_seconds,
             gui=gui,
         )
     finally:

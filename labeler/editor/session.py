@@ -97,6 +97,8 @@ class EditorSession:
         Shown in the status line.
     autosave_seconds : float
         Seconds between draft writes while there are unsaved changes (> 0).
+    heartbeat_seconds : float
+        Seconds between renewals of the tile's hold (the store's lease) while open (> 0).
     clock : callable
         Seconds (default ``time.monotonic``).
     """
@@ -108,8 +110,14 @@ class EditorSession:
         backend: EditorBackend,
         title: str,
         autosave_seconds: float = 5.0,
+        heartbeat_seconds: float = 60.0,
         clock: Callable[[], float] = time.monotonic,
     ) -> None:
+        if not heartbeat_seconds > 0:
+            raise ValueError(
+                "heartbeat_seconds: expected a positive number of seconds, "
+                f"got {heartbeat_seconds}"
+            )
         if not autosave_seconds > 0:
             raise ValueError(
                 f"autosave_seconds: expected a positive number of seconds, got {autosave_seconds}"
@@ -133,6 +141,8 @@ class EditorSession:
         self._draft_revision = state.revision
         self._draft_kept = False
         self._last_autosave = clock()
+        self.heartbeat_seconds = float(heartbeat_seconds)
+        self._last_heartbeat = self._last_autosave
         self._error: BaseException | None = None
         self.wheel_turned = False  # set on a wheel event; the loop tells the window
 
@@ -190,8 +200,17 @@ class EditorSession:
             print(f"labeler: could not write a draft while closing: {exc}", file=sys.stderr)
 
     def tick(self) -> None:
-        """Autosave a draft when it is time and something changed."""
+        """Renew the hold and autosave a draft when it is time (and something changed)."""
         now = self._clock()
+        if now - self._last_heartbeat >= self.heartbeat_seconds:
+            self._last_heartbeat = now
+            try:
+                if not self.backend.heartbeat():
+                    self.message = (
+                        "your hold on this tile lapsed; a save still checks for conflicts"
+                    )
+            except (OSError, LabelerError) as exc:
+                self.message = f"could not renew the hold: {exc}"
         if now - self._last_autosave < self.autosave_seconds:
             return
         self._last_autosave = now

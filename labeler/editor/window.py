@@ -163,6 +163,7 @@ def run_editor(
     schema: ClassSchema | None = None,
     title: str = "labeler edit",
     autosave_seconds: float = 5.0,
+    heartbeat_seconds: float = 60.0,
     poll_ms: int = 15,
     gui: Gui | None = None,
     clock: Callable[[], float] = time.monotonic,
@@ -181,6 +182,8 @@ def run_editor(
         Window title; keep it unique (tests find the window by it).
     autosave_seconds : float
         Seconds between draft writes while there is unsaved work.
+    heartbeat_seconds : float
+        Seconds between renewals of the tile's hold while the window is open.
     poll_ms : int
         Milliseconds ``cv2.waitKeyEx`` waits per frame.
     gui : Gui, optional
@@ -206,7 +209,8 @@ def run_editor(
         require_display()
         gui = HighGuiWindow(title)
     session = EditorSession(state, backend=backend, title=title,
-                            autosave_seconds=autosave_seconds, clock=clock)
+                            autosave_seconds=autosave_seconds,
+                            heartbeat_seconds=heartbeat_seconds, clock=clock)
     try:
         gui.open(session.frame_shape, session.on_mouse)
         session.start()

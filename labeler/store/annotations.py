@@ -25,7 +25,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 import sqlalchemy as sa
-from sqlalchemy.exc import IntegrityError
+from sqlalchemy.exc import IntegrityError, OperationalError
 
 from labeler.errors import ConflictError, LabelerError
 from labeler.imagery.write import png_bytes
@@ -38,7 +38,8 @@ from labeler.states import (
     WEAK,
 )
 from labeler.store import schema as t
-from labeler.store.base import now
+from labeler.store.base import clock
+from labeler.store.dialect import is_retryable
 from labeler.store.history import HistoryMixin, annotation_query, annotation_row
 from labeler.store.holds import HoldsMixin, checked_move
 from labeler.store.records import AnnotationRecord, SaveOutcome, TileRecord
@@ -183,7 +184,15 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
         top: dict[int, int] = {}  # newest version of each tile
         own: dict[tuple[int, int], int] = {}  # newest version of each (tile, annotator)
         for chunk in _chunks(tile_ids):
-            tiles = conn.execute(sa.select(t.tiles).where(t.tiles.c.id.in_(chunk)))
+            # lock the tiles (in id order, so two batches cannot deadlock) until the
+            # transaction ends: a second writer of a tile waits here, then reads the
+            # versions this one wrote (PostgreSQL; SQLite's writers are serialised)
+            tiles = conn.execute(
+                sa.select(t.tiles)
+                .where(t.tiles.c.id.in_(chunk))
+                .order_by(t.tiles.c.id)
+                .with_for_update()
+            )
             rows.update((r.id, r) for r in tiles)
             newest = (
                 sa.select(
@@ -199,7 +208,7 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
                 top[tid] = max(top.get(tid, 0), version)
         state = {tid: r.state for tid, r in rows.items()}
         held = {tid: r.held_by for tid, r in rows.items()}
-        stamp = now()
+        stamp = clock(conn)
         inserts: list[dict] = []
         events: list[dict] = []
         updates: dict[int, dict[str, object]] = {}
@@ -323,9 +332,12 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
                         ).one()
                         out.append(annotation_row(row))
                 return out
-            except IntegrityError:
-                # another writer took a version number between our read and insert;
-                # re-read: if our parent is now stale the lineage check raises ConflictError
+            except (IntegrityError, OperationalError) as exc:
+                # another writer took a version number between our read and insert, or
+                # the server broke a deadlock; re-read: if our parent is now stale the
+                # lineage check raises ConflictError
+                if isinstance(exc, OperationalError) and not is_retryable(exc):
+                    raise
                 if attempt == _SAVE_RETRIES - 1:
                     raise
         raise AssertionError("unreachable")  # pragma: no cover
@@ -482,9 +494,11 @@ class AnnotationsMixin(HistoryMixin, HoldsMixin):
                     SaveOutcome(item.tile_id, version, problem)
                     for (item, *_), (version, problem) in zip(prepared, written, strict=True)
                 ]
-            except IntegrityError:
-                # another writer took a version number between our read and insert (not
-                # on SQLite, whose writers queue); re-read: a stale parent is reported
+            except (IntegrityError, OperationalError) as exc:
+                # a deadlock the server broke (the tile locks make version races rare);
+                # re-read: a stale parent is reported
+                if isinstance(exc, OperationalError) and not is_retryable(exc):
+                    raise
                 if attempt == _SAVE_RETRIES - 1:
                     raise
         raise AssertionError("unreachable")  # pragma: no cover

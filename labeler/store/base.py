@@ -23,10 +23,21 @@ from labeler.errors import LabelerError, StoreError
 from labeler.store import dialect
 from labeler.store import schema as t
 from labeler.store.class_record import check_classes, record_classes
-from labeler.store.dialect import integrity_check, make_engine, sqlite_access, sqlite_file
+from labeler.store.dialect import (
+    insert_ignoring,
+    integrity_check,
+    is_sqlite,
+    make_engine,
+    shown_url,
+    sqlite_access,
+    sqlite_file,
+)
 from labeler.store.failures import display_name, engine_failure, install
 
-__all__ = ["StoreBase", "now", "as_utc"]
+__all__ = ["StoreBase", "now", "clock", "as_utc", "DEFAULT_LEASE_SECONDS"]
+
+#: How long a hold lasts without a heartbeat from its editor: 30 minutes.
+DEFAULT_LEASE_SECONDS = 1800.0
 
 #: The settings file beside the database (named in messages only).
 SETTINGS_NAME = "labeler.toml"
@@ -41,6 +52,29 @@ def now() -> datetime:
         UTC, timezone-aware.
     """
     return datetime.now(UTC)
+
+
+def clock(conn: sa.Connection) -> datetime:
+    """The time by the database's clock: the server's for PostgreSQL.
+
+    Every machine of a team stamps rows (and judges whether a hold has expired) by one
+    clock, the server's, so a machine whose clock runs wrong changes nothing. SQLite
+    runs on this machine, so its clock is this machine's.
+
+    Parameters
+    ----------
+    conn : sqlalchemy.Connection
+        An open connection (inside a transaction the server's time is the time the
+        transaction began).
+
+    Returns
+    -------
+    datetime
+        UTC, timezone-aware.
+    """
+    if conn.dialect.name == "sqlite":
+        return now()
+    return as_utc(conn.execute(sa.select(sa.func.now())).scalar()).astimezone(UTC)
 
 
 def as_utc(value: datetime | None) -> datetime | None:
@@ -109,6 +143,8 @@ class StoreBase:
     create : bool
         Create the tables when the database is new. Without it, opening a database
         that has no tables is an error (a mistyped project path must not create one).
+    lease_seconds : float
+        How long a hold lasts without a heartbeat from its editor (default 30 min).
 
     Attributes
     ----------
@@ -127,10 +163,18 @@ class StoreBase:
     """
 
     def __init__(
-        self, url: str, *, schema: ClassSchema = DEFAULT_SCHEMA, create: bool = False
+        self,
+        url: str,
+        *,
+        schema: ClassSchema = DEFAULT_SCHEMA,
+        create: bool = False,
+        lease_seconds: float = DEFAULT_LEASE_SECONDS,
     ) -> None:
+        if not lease_seconds >= 0:
+            raise ValueError(f"lease_seconds: expected 0 or more seconds, got {lease_seconds}")
         self.url = url
         self.schema = schema
+        self.lease_seconds = float(lease_seconds)
         self.read_only = False
         where = display_name(url)
         try:
@@ -152,6 +196,16 @@ class StoreBase:
             self.engine.dispose()
             raise
 
+    @property
+    def shown_url(self) -> str:
+        """The database URL with its password hidden, for messages."""
+        return shown_url(self.url)
+
+    @property
+    def is_sqlite(self) -> bool:
+        """Whether the database is the embedded SQLite file (else a server)."""
+        return is_sqlite(self.engine)
+
     def _open(self, *, create: bool, where: str) -> None:
         """Check (or create) the tables, the schema version and the class record."""
         schema = self.schema
@@ -170,21 +224,30 @@ class StoreBase:
                     "'labeler init' on another folder",
                     kind="not_a_project",
                 )
+            from labeler.store.migrate import stamp_new  # alembic loads only here
+
             with self._write() as conn:
                 t.metadata.create_all(conn)
                 conn.execute(
                     t.meta.insert(), [{"key": "schema_version", "value": str(t.SCHEMA_VERSION)}]
                 )
                 record_classes(conn, schema)
+                stamp_new(conn)
         else:
             with self.engine.connect() as conn:
                 found = conn.execute(
                     sa.select(t.meta.c.value).where(t.meta.c.key == "schema_version")
                 ).scalar()
             if found != str(t.SCHEMA_VERSION):
+                older = found is not None and found.isdigit() and int(found) < t.SCHEMA_VERSION
+                fix = (
+                    "upgrade it with 'labeler upgrade DIR' (a SQLite file is backed up first)"
+                    if older
+                    else "use the matching labeler release"
+                )
                 raise StoreError(
                     f"{where}: database schema version {found}, this labeler reads "
-                    f"{t.SCHEMA_VERSION}; use the matching labeler release",
+                    f"{t.SCHEMA_VERSION}; {fix}",
                     kind="version",
                 )
             check_classes(self.engine, schema, where=where, read_only=self.read_only)
@@ -242,7 +305,7 @@ class StoreBase:
         """Append one row to the event log inside the caller's transaction."""
         conn.execute(
             t.events.insert().values(
-                at=now(), kind=kind, tile_id=tile_id, annotator_id=annotator_id, detail=detail
+                at=clock(conn), kind=kind, tile_id=tile_id, annotator_id=annotator_id, detail=detail
             )
         )
 
@@ -260,8 +323,13 @@ class StoreBase:
         ).scalar()
         if found is not None:
             return int(found)
-        res = conn.execute(t.annotators.insert().values(name=name, created_at=now()))
-        return int(res.inserted_primary_key[0])
+        # insert-or-read: another process may add the same name at the same moment
+        insert_ignoring(
+            conn, t.annotators, {"name": name, "created_at": clock(conn)}, keys=["name"]
+        )
+        return int(
+            conn.execute(sa.select(t.annotators.c.id).where(t.annotators.c.name == name)).scalar()
+        )
 
     @staticmethod
     def _known_annotator_id(conn: sa.Connection, name: str) -> int | None:

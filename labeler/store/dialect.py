@@ -2,8 +2,12 @@
 
 SQLite (the embedded default) gets WAL journaling, foreign keys, a busy timeout, full
 fsync on commit, and ``BEGIN IMMEDIATE`` for write transactions so that two writers
-queue instead of failing half-way. Every other dialect (PostgreSQL for teams) uses the
-portable defaults; the unique constraints in the schema keep saves race-free there.
+queue instead of failing half-way. PostgreSQL (for teams, through the psycopg 3 driver
+of the ``labeler[postgres]`` extra) runs at READ COMMITTED: writers that must see each
+other lock the tile row (``SELECT ... FOR UPDATE``, ignored by SQLite, whose writers are
+already serialised), and rows that two processes may create at once are written with
+``INSERT ... ON CONFLICT`` (:func:`insert_ignoring`, :func:`upsert`), which both
+dialects speak. URLs are shown with the password hidden (:func:`shown_url`).
 
 A SQLite file this user cannot write (a read-only copy, a shared folder, a read-only
 disk) is opened read-only (``mode=ro``), and without switching the journal mode, so
@@ -16,11 +20,16 @@ from __future__ import annotations
 
 import os
 import sqlite3
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from urllib.parse import quote
 
 import sqlalchemy as sa
 from sqlalchemy import event
+from sqlalchemy.dialects import postgresql, sqlite
+from sqlalchemy.exc import ArgumentError, DBAPIError
+
+from labeler.errors import LabelerError
 
 __all__ = [
     "BUSY_TIMEOUT_MS",
@@ -29,7 +38,15 @@ __all__ = [
     "is_sqlite",
     "sqlite_file",
     "sqlite_access",
+    "shown_url",
+    "insert_ignoring",
+    "upsert",
+    "is_retryable",
 ]
+
+#: SQLSTATE codes of a transaction the server gave up and that may simply be run again:
+#: serialization failure and deadlock (PostgreSQL manual, appendix A "Error Codes").
+RETRYABLE_SQLSTATES = frozenset({"40001", "40P01"})
 
 #: Milliseconds a SQLite writer waits for another writer before giving up.
 BUSY_TIMEOUT_MS = 30_000
@@ -159,7 +176,126 @@ def make_engine(url: str, *, read_only: bool = False, immutable: bool = False) -
                 conn.exec_driver_sql("BEGIN")
 
         return engine
-    return sa.create_engine(url, pool_pre_ping=True)
+    parsed = sa.make_url(url)
+    if parsed.drivername == "postgresql":  # no driver named: the one of the postgres extra
+        parsed = parsed.set(drivername="postgresql+psycopg")
+    return sa.create_engine(parsed, pool_pre_ping=True)  # a missing driver: failures.py
+
+
+def shown_url(url: str) -> str:
+    """A database URL as it may be shown: the password replaced by ``***``.
+
+    Parameters
+    ----------
+    url : str
+        SQLAlchemy URL, possibly with a password.
+
+    Returns
+    -------
+    str
+        The URL with its password hidden; a string that is not a URL is returned as is.
+    """
+    try:
+        return sa.make_url(url).render_as_string(hide_password=True)
+    except ArgumentError:
+        return url
+
+
+def _dialect_insert(conn: sa.Connection, table: sa.Table):
+    name = conn.dialect.name
+    if name == "sqlite":
+        return sqlite.insert(table)
+    if name == "postgresql":
+        return postgresql.insert(table)
+    raise LabelerError(  # pragma: no cover - the store supports these two
+        f"store: dialect {name!r} is not supported; use SQLite or PostgreSQL"
+    )
+
+
+def insert_ignoring(
+    conn: sa.Connection,
+    table: sa.Table,
+    rows: Sequence[Mapping[str, object]] | Mapping[str, object],
+    *,
+    keys: Sequence[str] | None,
+) -> int:
+    """Insert rows, skipping any whose ``keys`` are already taken (insert-or-read).
+
+    ``INSERT ... ON CONFLICT (keys) DO NOTHING``: two processes creating the same row
+    at once both succeed and one row is written.
+
+    Parameters
+    ----------
+    conn : sqlalchemy.Connection
+        Inside the caller's transaction.
+    table : sqlalchemy.Table
+    rows : mapping or sequence of mappings
+        Column values.
+    keys : sequence of str or None
+        Columns of a unique constraint of ``table``; None skips a row that collides
+        with any unique constraint.
+
+    Returns
+    -------
+    int
+        For one row: 1 when written, 0 when skipped; for several: -1 (drivers do not
+        all count the rows of a many-row statement).
+    """
+    if not rows:
+        return 0
+    stmt = _dialect_insert(conn, table).on_conflict_do_nothing(
+        index_elements=None if keys is None else list(keys)
+    )
+    if isinstance(rows, Mapping):  # one row: RETURNING tells whether it was written
+        written = stmt.values(**rows).returning(*table.primary_key.columns)
+        return len(conn.execute(written).all())
+    conn.execute(stmt, list(rows))
+    return -1
+
+
+def upsert(
+    conn: sa.Connection,
+    table: sa.Table,
+    values: Mapping[str, object],
+    *,
+    keys: Sequence[str],
+) -> None:
+    """Insert a row or, when its ``keys`` are taken, overwrite the other columns.
+
+    ``INSERT ... ON CONFLICT (keys) DO UPDATE``: one statement, so two processes
+    writing the same row at once leave the last one's values and raise nothing.
+
+    Parameters
+    ----------
+    conn : sqlalchemy.Connection
+    table : sqlalchemy.Table
+    values : mapping
+        Every column to write.
+    keys : sequence of str
+        Columns of a unique constraint of ``table``.
+
+    Returns
+    -------
+    None
+    """
+    stmt = _dialect_insert(conn, table).values(**values)
+    changed = {k: stmt.excluded[k] for k in values if k not in keys}
+    conn.execute(stmt.on_conflict_do_update(index_elements=list(keys), set_=changed))
+
+
+def is_retryable(exc: BaseException) -> bool:
+    """Whether a database error is a serialization failure or deadlock (run it again).
+
+    Parameters
+    ----------
+    exc : BaseException
+
+    Returns
+    -------
+    bool
+    """
+    orig = getattr(exc, "orig", None) if isinstance(exc, DBAPIError) else None
+    return getattr(orig, "sqlstate", None) in RETRYABLE_SQLSTATES
 
 
 def integrity_check(engine: sa.Engine) -> str:

@@ -12,7 +12,8 @@ import numpy as np
 
 from labeler.imagery.write import png_bytes
 from labeler.store import schema as t
-from labeler.store.base import as_utc, now
+from labeler.store.base import as_utc, clock
+from labeler.store.dialect import upsert
 from labeler.store.images import ImagesMixin
 from labeler.store.records import DraftRecord, decode_mask
 
@@ -75,18 +76,22 @@ class DraftsMixin(ImagesMixin):
         sdata = None if weak_label is None else png_bytes(np.asarray(weak_label, np.uint8))
         with self._write() as conn:
             aid = self._annotator_id(conn, annotator)
-            conn.execute(t.drafts.delete().where(_owner(tile_id, aid)))
-            conn.execute(
-                t.drafts.insert().values(
-                    tile_id=tile_id,
-                    annotator_id=aid,
-                    mask_png=data,
-                    scribble_png=sdata,
-                    parent_version=parent_version,
-                    seconds=float(seconds),
-                    actions=int(actions),
-                    saved_at=now(),
-                )
+            # one statement: two editors of the same annotator autosaving at once
+            # leave the later draft and raise nothing
+            upsert(
+                conn,
+                t.drafts,
+                {
+                    "tile_id": tile_id,
+                    "annotator_id": aid,
+                    "mask_png": data,
+                    "scribble_png": sdata,
+                    "parent_version": parent_version,
+                    "seconds": float(seconds),
+                    "actions": int(actions),
+                    "saved_at": clock(conn),
+                },
+                keys=["tile_id", "annotator_id"],
             )
 
     def load_draft(self, tile_id: int, annotator: str) -> DraftRecord | None:

@@ -5,9 +5,18 @@ new proposals, saves) passes :func:`checked_move`, which applies the one life-cy
 check :func:`labeler.states.check_move`. A move to the state a tile already has is
 checked as well, except by :meth:`HoldsMixin.release`, which leaves a tile that is not
 ``held`` as it is.
+
+Holds are leases: a hold lasts ``lease_seconds`` (default 30 minutes) after the hold or
+the editor's last :meth:`HoldsMixin.heartbeat`, measured by the database's clock
+(:func:`labeler.store.base.clock`), so a crashed editor or a machine gone to sleep
+cannot keep a tile from the team for ever. A lapsed hold is ended by
+:meth:`HoldsMixin.end_lapsed_holds` (run before tiles are handed out) as if its editor
+had closed without a save, and the event log says so (``hold_lapsed``).
 """
 
 from __future__ import annotations
+
+from datetime import timedelta
 
 import sqlalchemy as sa
 
@@ -25,7 +34,8 @@ from labeler.states import (
     UNSEEN,
 )
 from labeler.store import schema as t
-from labeler.store.base import now
+from labeler.store.base import as_utc, clock
+from labeler.store.dialect import insert_ignoring
 from labeler.store.images import ImagesMixin
 from labeler.store.records import TileRecord
 
@@ -56,7 +66,10 @@ def checked_move(state_from: str, state_to: str, *, tile_id: int) -> None:
 
 
 def _current_state(conn: sa.Connection, tile_id: int) -> str:
-    cur = conn.execute(sa.select(t.tiles.c.state).where(t.tiles.c.id == tile_id)).scalar()
+    """The tile's state, its row locked until the caller's transaction ends."""
+    cur = conn.execute(
+        sa.select(t.tiles.c.state).where(t.tiles.c.id == tile_id).with_for_update()
+    ).scalar()
     if cur is None:
         raise NotFoundError(f"tile {tile_id} is not in this project")
     return cur
@@ -103,7 +116,12 @@ class HoldsMixin(ImagesMixin):
             conn.execute(
                 t.tiles.update()
                 .where(t.tiles.c.id == tile_id)
-                .values(state=state, held_by=held, updated_at=now())
+                .values(
+                    state=state,
+                    held_by=held,
+                    updated_at=clock(conn),
+                    heartbeat_at=clock(conn) if held is not None else None,
+                )
             )
             self._event(
                 conn,
@@ -145,10 +163,11 @@ class HoldsMixin(ImagesMixin):
             aid = self._annotator_id(conn, annotator)
             new = HELD if cur in (UNSEEN, PROPOSED, PARKED) else cur
             checked_move(cur, new, tile_id=tile_id)
+            stamp = clock(conn)
             conn.execute(
                 t.tiles.update()
                 .where(t.tiles.c.id == tile_id)
-                .values(state=new, held_by=aid, updated_at=now())
+                .values(state=new, held_by=aid, updated_at=stamp, heartbeat_at=stamp)
             )
             self._assign(conn, tile_id, aid)
             self._event(
@@ -193,27 +212,116 @@ class HoldsMixin(ImagesMixin):
             conn.execute(
                 t.tiles.update()
                 .where(t.tiles.c.id == tile_id)
-                .values(state=new, held_by=None, updated_at=now())
+                .values(state=new, held_by=None, updated_at=clock(conn), heartbeat_at=None)
             )
             self._event(conn, "release", tile_id=tile_id, annotator_id=aid, detail={"to": new})
         return self.tile(tile_id)
+
+    # -- leases -------------------------------------------------------------------------
+    def heartbeat(self, tile_id: int, annotator: str) -> bool:
+        """Renew ``annotator``'s hold on the tile (the editor calls this while open).
+
+        Parameters
+        ----------
+        tile_id : int
+        annotator : str
+
+        Returns
+        -------
+        bool
+            True when the hold was renewed; False when the annotator no longer holds
+            the tile (it lapsed and was ended, or someone released it).
+        """
+        with self._write() as conn:
+            aid = self._known_annotator_id(conn, annotator)
+            if aid is None:
+                return False
+            res = conn.execute(
+                t.tiles.update()
+                .where((t.tiles.c.id == tile_id) & (t.tiles.c.held_by == aid))
+                .values(heartbeat_at=clock(conn))
+            )
+            return res.rowcount == 1
+
+    def end_lapsed_holds(self) -> list[int]:
+        """End every hold whose lease ran out (no heartbeat for ``lease_seconds``).
+
+        Each lapsed hold ends as :meth:`release` ends one: a ``held`` tile goes back
+        to ``proposed`` or ``unseen``; the event log records ``hold_lapsed`` with the
+        holder and their last sign of life. Times are the database's.
+
+        Returns
+        -------
+        list of int
+            Ids of the tiles whose hold was ended, in id order.
+        """
+        ended: list[int] = []
+        with self._write() as conn:
+            cutoff = clock(conn) - timedelta(seconds=self.lease_seconds)
+            seen = sa.func.coalesce(t.tiles.c.heartbeat_at, t.tiles.c.updated_at)
+            rows = conn.execute(
+                sa.select(t.tiles.c.id, t.tiles.c.state, t.tiles.c.held_by, seen.label("seen"))
+                .where(t.tiles.c.held_by.is_not(None) & (seen < cutoff))
+                .order_by(t.tiles.c.id)
+                .with_for_update()
+            ).all()
+            for r in rows:
+                new = r.state
+                if r.state == HELD:
+                    has_prop = conn.execute(
+                        sa.select(sa.func.count())
+                        .select_from(t.proposals)
+                        .where(t.proposals.c.tile_id == r.id)
+                    ).scalar()
+                    new = PROPOSED if has_prop else UNSEEN
+                    checked_move(r.state, new, tile_id=r.id)
+                conn.execute(
+                    t.tiles.update()
+                    .where(t.tiles.c.id == r.id)
+                    .values(state=new, held_by=None, heartbeat_at=None, updated_at=clock(conn))
+                )
+                self._event(
+                    conn,
+                    "hold_lapsed",
+                    tile_id=r.id,
+                    annotator_id=r.held_by,
+                    detail={"to": new, "last_seen": as_utc(r.seen).isoformat()},
+                )
+                ended.append(int(r.id))
+        return ended
+
+    def current_holds(self) -> list[tuple[int, str, float]]:
+        """Who holds what now, and how long each hold has left (the database's clock).
+
+        Returns
+        -------
+        list of (int, str, float)
+            Tile id, holder and seconds until the hold lapses without a heartbeat
+            (negative: lapsed, ended when tiles are next handed out), in tile order.
+        """
+        seen = sa.func.coalesce(t.tiles.c.heartbeat_at, t.tiles.c.updated_at)
+        with self._read() as conn:
+            at = clock(conn)
+            rows = conn.execute(
+                sa.select(t.tiles.c.id, t.annotators.c.name, seen.label("seen"))
+                .select_from(t.tiles.join(t.annotators, t.tiles.c.held_by == t.annotators.c.id))
+                .order_by(t.tiles.c.id)
+            ).all()
+        return [
+            (int(r.id), r.name, self.lease_seconds - (at - as_utc(r.seen)).total_seconds())
+            for r in rows
+        ]
 
     # -- assignment ---------------------------------------------------------------------
     @staticmethod
     def _assign(conn: sa.Connection, tile_id: int, annotator_id: int) -> None:
         """Record that the tile was handed to the annotator (once)."""
-        exists = conn.execute(
-            sa.select(t.assignments.c.tile_id).where(
-                (t.assignments.c.tile_id == tile_id)
-                & (t.assignments.c.annotator_id == annotator_id)
-            )
-        ).first()
-        if exists is None:
-            conn.execute(
-                t.assignments.insert().values(
-                    tile_id=tile_id, annotator_id=annotator_id, assigned_at=now()
-                )
-            )
+        insert_ignoring(
+            conn,
+            t.assignments,
+            {"tile_id": tile_id, "annotator_id": annotator_id, "assigned_at": clock(conn)},
+            keys=["tile_id", "annotator_id"],
+        )
 
     def assigned(self, tile_id: int) -> list[str]:
         """Annotators the tile has been handed to (by a hold or a save).
@@ -273,6 +381,7 @@ class HoldsMixin(ImagesMixin):
     def available_for(self, annotator: str, *, per_overlap_tile: int = 2) -> list[int]:
         """Tile ids this annotator may be handed next (no order implied).
 
+        Holds whose lease ran out are ended first (:meth:`end_lapsed_holds`).
         Ordinary tiles: not yet saved by anyone, not held by someone else. Overlap
         tiles: not yet saved by this annotator and handed to fewer than
         ``per_overlap_tile`` annotators (or already handed to this one). Contested and
@@ -290,6 +399,7 @@ class HoldsMixin(ImagesMixin):
         list of int
             Tile ids in id order.
         """
+        self.end_lapsed_holds()
         out: list[int] = []
         with self._read() as conn:
             me = self._known_annotator_id(conn, annotator)

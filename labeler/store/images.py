@@ -17,7 +17,8 @@ from labeler.errors import LabelerError, NotFoundError
 from labeler.imagery.tiling import Window
 from labeler.states import UNSEEN
 from labeler.store import schema as t
-from labeler.store.base import StoreBase, as_utc, now
+from labeler.store.base import StoreBase, as_utc, clock
+from labeler.store.dialect import insert_ignoring
 from labeler.store.records import ImageRecord, TileRecord
 
 __all__ = ["NewImage", "ImagesMixin", "overlap_draw"]
@@ -150,23 +151,35 @@ class ImagesMixin(StoreBase):
             ).first()
             if dup is not None:
                 raise LabelerError(f"{image.name}: already in the project as {dup.name!r}")
-            stamp = now()
-            res = conn.execute(
-                t.images.insert().values(
-                    name=image.name,
-                    path=image.path,
-                    sha256=image.sha256,
-                    width=image.width,
-                    height=image.height,
-                    bands=image.bands,
-                    dtype=image.dtype,
-                    crs=image.crs,
-                    transform=None if image.transform is None else list(image.transform),
-                    georef_source=image.georef_source,
-                    added_at=stamp,
-                )
+            stamp = clock(conn)
+            values = dict(
+                name=image.name,
+                path=image.path,
+                sha256=image.sha256,
+                width=image.width,
+                height=image.height,
+                bands=image.bands,
+                dtype=image.dtype,
+                crs=image.crs,
+                transform=None if image.transform is None else list(image.transform),
+                georef_source=image.georef_source,
+                added_at=stamp,
             )
-            image_id = int(res.inserted_primary_key[0])
+            # insert-or-read: another machine may add the same image at this moment
+            if not insert_ignoring(conn, t.images, values, keys=None):
+                dup = conn.execute(
+                    sa.select(t.images.c.name).where(
+                        (t.images.c.sha256 == image.sha256) | (t.images.c.name == image.name)
+                    )
+                ).first()
+                raise LabelerError(
+                    f"{image.name}: already in the project as {dup.name if dup else image.name!r}"
+                )
+            image_id = int(
+                conn.execute(
+                    sa.select(t.images.c.id).where(t.images.c.sha256 == image.sha256)
+                ).scalar()
+            )
             rows = [
                 dict(
                     image_id=image_id,

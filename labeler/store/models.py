@@ -10,7 +10,7 @@ from __future__ import annotations
 import sqlalchemy as sa
 
 from labeler.store import schema as t
-from labeler.store.base import StoreBase, as_utc, now
+from labeler.store.base import StoreBase, as_utc, clock
 from labeler.store.records import ModelVersionRecord
 
 __all__ = ["ModelsMixin", "MODEL_KINDS"]
@@ -99,7 +99,7 @@ class ModelsMixin(StoreBase):
                     val_iou=clean,
                     miou=_finite_or_none(miou),
                     details=details,
-                    created_at=now(),
+                    created_at=clock(conn),
                 )
             )
             mid = int(res.inserted_primary_key[0])

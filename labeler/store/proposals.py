@@ -20,7 +20,7 @@ from labeler.errors import NotFoundError
 from labeler.imagery.write import png_bytes
 from labeler.states import HELD, PROPOSED, SAVED_STATES, UNSEEN
 from labeler.store import schema as t
-from labeler.store.base import as_utc, now
+from labeler.store.base import as_utc, clock
 from labeler.store.holds import checked_move
 from labeler.store.images import ImagesMixin
 from labeler.store.records import PickItem, ProposalRecord, npy_bytes
@@ -138,13 +138,12 @@ class ProposalsMixin(ImagesMixin):
         if not items:
             return []
         tiles = {tr.id: tr for tr in self.tiles()}
-        stamp = now()
         rows = []
         for p in items:
             tile = tiles.get(p.tile_id)
             if tile is None:
                 raise NotFoundError(f"tile {p.tile_id} is not in this project")
-            rows.append(self._proposal_values(p, tile, model_version_id, stamp))
+            rows.append(self._proposal_values(p, tile, model_version_id, None))
         ids = []
         with self._write() as conn:
             if only_open:
@@ -162,7 +161,9 @@ class ProposalsMixin(ImagesMixin):
                 rows = [r for r in rows if r["tile_id"] not in closed]
                 if not rows:
                     return []
+            stamp = clock(conn)
             for r in rows:
+                r["created_at"] = stamp
                 ids.append(
                     int(conn.execute(t.proposals.insert().values(**r)).inserted_primary_key[0])
                 )
@@ -259,9 +260,7 @@ class ProposalsMixin(ImagesMixin):
             }
 
     # -- picks --------------------------------------------------------------------------
-    def write_pick(
-        self, *, strategy: str, k: int, seed: int, items: Sequence[PickItem]
-    ) -> int:
+    def write_pick(self, *, strategy: str, k: int, seed: int, items: Sequence[PickItem]) -> int:
         """Store a new queue order; the queue reads the newest.
 
         Parameters
@@ -283,7 +282,9 @@ class ProposalsMixin(ImagesMixin):
         with self._write() as conn:
             rid = int(
                 conn.execute(
-                    t.rankings.insert().values(strategy=strategy, k=k, seed=seed, created_at=now())
+                    t.rankings.insert().values(
+                        strategy=strategy, k=k, seed=seed, created_at=clock(conn)
+                    )
                 ).inserted_primary_key[0]
             )
             if items:

@@ -2,7 +2,9 @@
 
 History is never overwritten: ``annotations``, ``proposals``, ``model_versions`` and
 ``events`` only ever get new rows. ``tiles.state`` is the current state, derived from the
-event log and kept for fast queue queries.
+event log and kept for fast queue queries. Free text (names, sources, event kinds) is
+``Text``: PostgreSQL enforces lengths that SQLite ignores. A change here needs a
+migration in ``labeler/store/migrations/versions/`` and a new :data:`SCHEMA_VERSION`.
 """
 
 from __future__ import annotations
@@ -26,15 +28,17 @@ __all__ = [
     "assignments",
 ]
 
-#: Bumped when the tables change; the store refuses a database of another version.
-SCHEMA_VERSION = 1
+#: Bumped when the tables change; the store refuses a database of another version and
+#: ``labeler upgrade`` brings an older one up to it (:mod:`labeler.store.migrate`).
+#: 1: the first release. 2: free text without length limits, hold heartbeats.
+SCHEMA_VERSION = 2
 
 metadata = sa.MetaData()
 
 meta = sa.Table(
     "meta",
     metadata,
-    sa.Column("key", sa.String(64), primary_key=True),
+    sa.Column("key", sa.Text, primary_key=True),
     sa.Column("value", sa.Text, nullable=False),
 )
 
@@ -42,7 +46,7 @@ images = sa.Table(
     "images",
     metadata,
     sa.Column("id", sa.Integer, primary_key=True),
-    sa.Column("name", sa.String(255), nullable=False, unique=True),
+    sa.Column("name", sa.Text, nullable=False, unique=True),
     sa.Column("path", sa.Text, nullable=False),
     sa.Column("sha256", sa.String(64), nullable=False, unique=True),
     sa.Column("width", sa.Integer, nullable=False),
@@ -67,6 +71,9 @@ tiles = sa.Table(
     sa.Column("state", sa.String(16), nullable=False, index=True),
     sa.Column("overlap", sa.Boolean, nullable=False, default=False),
     sa.Column("held_by", sa.Integer, sa.ForeignKey("annotators.id"), nullable=True),
+    # the holder's last sign of life (hold or heartbeat), by the database's clock; a hold
+    # without one for longer than the lease is free to take (see labeler.store.holds)
+    sa.Column("heartbeat_at", sa.DateTime(timezone=True), nullable=True),
     sa.Column("updated_at", sa.DateTime(timezone=True), nullable=False),
     sa.UniqueConstraint("image_id", "row", "col", name="uq_tile_window"),
 )
@@ -75,7 +82,7 @@ annotators = sa.Table(
     "annotators",
     metadata,
     sa.Column("id", sa.Integer, primary_key=True),
-    sa.Column("name", sa.String(128), nullable=False, unique=True),
+    sa.Column("name", sa.Text, nullable=False, unique=True),
     sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
 )
 
@@ -95,7 +102,7 @@ annotations = sa.Table(
     sa.Column("seconds", sa.Float, nullable=False, default=0.0),
     sa.Column("actions", sa.Integer, nullable=False, default=0),
     sa.Column("proposal_id", sa.Integer, sa.ForeignKey("proposals.id"), nullable=True),
-    sa.Column("source", sa.String(32), nullable=False, default="editor"),
+    sa.Column("source", sa.Text, nullable=False, default="editor"),
     sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
     sa.UniqueConstraint("tile_id", "version", name="uq_annotation_version"),
     sa.Index("ix_annotations_tile_annotator", "tile_id", "annotator_id"),
@@ -121,8 +128,8 @@ model_versions = sa.Table(
     metadata,
     sa.Column("id", sa.Integer, primary_key=True),
     sa.Column("kind", sa.String(16), nullable=False),  # "cold_start" or "head"
-    sa.Column("name", sa.String(128), nullable=False),
-    sa.Column("encoder_version", sa.String(128), nullable=True),
+    sa.Column("name", sa.Text, nullable=False),
+    sa.Column("encoder_version", sa.Text, nullable=True),
     sa.Column("checkpoint", sa.Text, nullable=True),  # path relative to the project
     sa.Column("n_train_tiles", sa.Integer, nullable=False, default=0),
     sa.Column("val_iou", sa.JSON, nullable=True),  # {class name: IoU or null}
@@ -155,7 +162,7 @@ events = sa.Table(
     metadata,
     sa.Column("id", sa.Integer, primary_key=True),
     sa.Column("at", sa.DateTime(timezone=True), nullable=False, index=True),
-    sa.Column("kind", sa.String(32), nullable=False),
+    sa.Column("kind", sa.Text, nullable=False),
     sa.Column("tile_id", sa.Integer, nullable=True, index=True),
     sa.Column("annotator_id", sa.Integer, nullable=True),
     sa.Column("detail", sa.JSON, nullable=True),
@@ -178,7 +185,7 @@ ranking_items = sa.Table(
     sa.Column("tile_id", sa.Integer, sa.ForeignKey("tiles.id"), primary_key=True),
     sa.Column("rank", sa.Integer, nullable=False),
     sa.Column("score", sa.Float, nullable=False),
-    sa.Column("reason", sa.String(32), nullable=False),
+    sa.Column("reason", sa.Text, nullable=False),
     sa.Column("in_batch", sa.Boolean, nullable=False, default=False),
 )
 

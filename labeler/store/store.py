@@ -12,7 +12,8 @@ module of this package:
 - :mod:`~labeler.store.drafts`: unsaved edits;
 - :mod:`~labeler.store.models`: model versions;
 - :mod:`~labeler.store.proposals`: proposals and picks (queue orders);
-- :mod:`~labeler.store.events`: the event log and counts.
+- :mod:`~labeler.store.events`: the event log and counts;
+- :mod:`~labeler.store.team`: the project's identity and the settings its team shares.
 
 Every change of a tile's state, saves included, passes
 :func:`labeler.store.holds.checked_move`, which applies
@@ -29,11 +30,12 @@ from labeler.store.events import EventsMixin
 from labeler.store.images import NewImage
 from labeler.store.models import ModelsMixin
 from labeler.store.proposals import NewProposal, ProposalsMixin
+from labeler.store.team import TeamMixin
 
 __all__ = ["Store", "NewImage", "NewAnnotation", "NewProposal", "now"]
 
 
-class Store(AnnotationsMixin, DraftsMixin, ProposalsMixin, ModelsMixin, EventsMixin):
+class Store(AnnotationsMixin, DraftsMixin, ProposalsMixin, ModelsMixin, EventsMixin, TeamMixin):
     """A project database.
 
     Parameters
@@ -45,6 +47,8 @@ class Store(AnnotationsMixin, DraftsMixin, ProposalsMixin, ModelsMixin, EventsMi
     create : bool
         Create the tables when the database is new. Without it, opening a database
         that has no tables is an error (a mistyped project path must not create one).
+    lease_seconds : float
+        How long a hold lasts without a heartbeat from its editor (default 30 min).
 
     Raises
     ------

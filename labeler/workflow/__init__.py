@@ -45,7 +45,13 @@ from labeler.workflow.annotating import (
     save_tile_mask,
     weak_label_tile_state,
 )
-from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
+from labeler.workflow.editing import (
+    EditStart,
+    StoreBackend,
+    begin_edit,
+    end_edit,
+    release_tile,
+)
 from labeler.workflow.effort import VersionEffort, effort_by_model
 from labeler.workflow.encoders import encoder_versions
 from labeler.workflow.exporting import ExportResult, export_project
@@ -101,6 +107,7 @@ __all__ = [
     "StoreBackend",
     "begin_edit",
     "end_edit",
+    "release_tile",
     "ExportResult",
     "ImportResult",
     "export_project",

@@ -191,6 +191,17 @@ class StoreBackend:
         """Forget the draft (no error when there is none)."""
         self.project.store.discard_draft(self.tile_id, self.annotator)
 
+    def heartbeat(self) -> bool:
+        """Renew this annotator's hold on the tile (the store's lease).
+
+        Returns
+        -------
+        bool
+            False when the hold lapsed or was released; saving still works and is
+            checked for conflicts as always.
+        """
+        return self.project.store.heartbeat(self.tile_id, self.annotator)
+
 
 @dataclass(frozen=True)
 class EditStart:
@@ -335,3 +346,31 @@ def end_edit(project: Project, tile_id: int, annotator: str) -> None:
     """
     if project.store.tile(tile_id).held_by == annotator:
         project.store.release(tile_id, annotator)
+
+
+def release_tile(project: Project, tile_id: int, *, by: str) -> tuple[str | None, str]:
+    """Give a held tile back, whoever holds it (``labeler release``).
+
+    For a tile whose editor crashed or whose annotator left before its hold lapsed.
+    The tile goes back as when its editor closes without a save; drafts are kept.
+
+    Parameters
+    ----------
+    project : Project
+    tile_id : int
+    by : str
+        Who releases it; recorded in the event log.
+
+    Returns
+    -------
+    (holder, state) : (str or None, str)
+        Who held the tile (None when nobody did) and its state afterwards.
+
+    Raises
+    ------
+    NotFoundError
+        If the tile is not in the project.
+    """
+    holder = project.store.tile(tile_id).held_by
+    after = project.store.release(tile_id, by)
+    return holder, after.state

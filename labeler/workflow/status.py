@@ -47,6 +47,12 @@ class ProjectStatus:
     effort : list of VersionEffort
         Per model version, oldest first: median actions and seconds per saved tile and
         the share accepted unchanged (:func:`labeler.workflow.effort.effort_by_model`).
+    shared : bool
+        The project lives on a database server (a team's shared project).
+    team : dict
+        The settings the team shares, kept in the database (empty when none are).
+    holds : list of (int, str, float)
+        Tile id, holder and minutes left before the hold lapses without a heartbeat.
     """
 
     folder: Path
@@ -62,6 +68,9 @@ class ProjectStatus:
     proposing_encoder: str = IMAGENET
     newest_encoder: str = IMAGENET
     effort: list[VersionEffort] = field(default_factory=list)
+    shared: bool = False
+    team: dict = field(default_factory=dict)
+    holds: list[tuple[int, str, float]] = field(default_factory=list)
 
 
 def project_status(project: Project) -> ProjectStatus:
@@ -110,4 +119,7 @@ def project_status(project: Project) -> ProjectStatus:
         proposing_encoder=proposing_encoder,
         newest_encoder=newest_encoder,
         effort=effort_by_model(project),
+        shared=not store.is_sqlite,
+        team=store.team_settings() or {},
+        holds=[(tid, who, left / 60) for tid, who, left in store.current_holds()],
     )

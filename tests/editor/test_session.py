@@ -159,6 +159,24 @@ def test_autosave_writes_a_draft_after_changes_only():
     assert backend.draft is None  # back to the proposal: the stale draft goes
 
 
+def test_the_hold_is_renewed_while_the_editor_is_open():
+    now = [0.0]
+    backend = MemoryBackend()
+    session = EditorSession(coin_state(), backend=backend, title="t", autosave_seconds=5.0,
+                            heartbeat_seconds=60.0, clock=lambda: now[0])
+    session.start()
+    for t, expected in ((59.0, 0), (60.0, 1), (90.0, 1), (120.0, 2), (300.0, 3)):
+        now[0] = t
+        session.tick()  # no edits at all: an idle editor keeps its hold too
+        assert backend.heartbeats == expected, t
+    backend.heartbeat = lambda: False  # the hold lapsed (or was released) meanwhile
+    now[0] = 400.0
+    session.tick()
+    assert "your hold on this tile lapsed" in session.message
+    with pytest.raises(ValueError, match="heartbeat_seconds: expected a positive number"):
+        EditorSession(coin_state(), backend=MemoryBackend(), title="t", heartbeat_seconds=0)
+
+
 def test_autosave_seconds_must_be_positive():
     with pytest.raises(ValueError, match="autosave_seconds: expected a positive number"):
         EditorSession(coin_state(), backend=MemoryBackend(), title="t", autosave_seconds=0)

@@ -1,4 +1,4 @@
-"""Store fixtures: a fresh SQLite store with one image of 2 x 3 tiles."""
+"""Store fixtures: a fresh store with one image of 2 x 3 tiles, on each backend."""
 
 import pytest
 
@@ -6,8 +6,10 @@ from labeler.imagery.tiling import tile_grid
 from labeler.store import NewImage, Store
 
 
-def make_store(path, *, overlap_share=0.0):
-    store = Store(f"sqlite:///{path}", create=True)
+def make_store(where, *, overlap_share=0.0):
+    """A new store at ``where`` (a database URL, or the path of a SQLite file)."""
+    url = str(where) if "://" in str(where) else f"sqlite:///{where}"
+    store = Store(url, create=True)
     store.add_image(
         NewImage(
             name="plot-a",
@@ -25,7 +27,7 @@ def make_store(path, *, overlap_share=0.0):
 
 
 @pytest.fixture
-def store(tmp_path):
-    s = make_store(tmp_path / "labeler.db")
+def store(store_url):
+    s = make_store(store_url)
     yield s
     s.close()

@@ -15,6 +15,7 @@ from labeler.store.holds import HoldsMixin
 from labeler.store.images import ImagesMixin
 from labeler.store.models import ModelsMixin
 from labeler.store.proposals import ProposalsMixin
+from labeler.store.team import TeamMixin
 
 PUBLIC = sorted(
     name for name, _ in inspect.getmembers(Store, inspect.isfunction) if not name.startswith("_")
@@ -32,6 +33,7 @@ def test_facade_is_made_of_one_part_per_concept():
         ModelsMixin,
         ProposalsMixin,
         EventsMixin,
+        TeamMixin,
     )
     assert all(issubclass(Store, p) for p in parts)
     # each public method is defined in exactly one part

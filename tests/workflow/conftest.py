@@ -1,11 +1,13 @@
-"""A small project with one image of 2 x 3 tiles and a fake proposer (no model)."""
+"""A small project with one image of 2 x 3 tiles and a fake proposer (no model), on each
+store backend (``project_store``)."""
 
 import numpy as np
 import pytest
 from affine import Affine
 
 from labeler.imagery.write import write_geotiff
-from labeler.project import init_project, open_project
+from labeler.project import init_project, open_project, team_settings
+from labeler.settings import load_settings
 from labeler.store import NewProposal
 from labeler.workflow import add_images
 
@@ -48,20 +50,22 @@ def _small_project(tmp_path, settings_text=None):
     init_project(root).close()
     if settings_text is not None:
         (root / "labeler.toml").write_text(settings_text)
+        with open_project(root) as p:  # on a server the team's settings live in the database
+            p.store.set_team_settings(team_settings(load_settings(root)))
     p = open_project(root)
     add_images(p, [tmp_path / "east-block.tif"])
     return p
 
 
 @pytest.fixture
-def project(tmp_path):
+def project(tmp_path, project_store):
     p = _small_project(tmp_path)
     yield p
     p.close()
 
 
 @pytest.fixture
-def overlap_project(tmp_path):
+def overlap_project(tmp_path, project_store):
     """Every tile is an overlap tile; agreement threshold 0.6."""
     p = _small_project(tmp_path, "[agreement]\noverlap_share = 1.0\nthreshold = 0.6\n")
     yield p

@@ -129,3 +129,15 @@ def test_the_workflow_imports_nothing_from_the_editor():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True, cwd=REPO)
     assert out.stdout.strip() == "[]"
+
+
+def test_the_editor_renews_its_hold_and_release_tile_ends_it(project):
+    from labeler.workflow import release_tile
+
+    tile = project.store.tiles()[0]
+    start = begin_edit(project, tile.id, "ines")
+    assert start.backend.heartbeat() is True  # held by ines: renewed
+    assert release_tile(project, tile.id, by="lead") == ("ines", "unseen")
+    assert start.backend.heartbeat() is False  # released: the editor is told
+    assert release_tile(project, tile.id, by="lead") == (None, "unseen")
+    assert [e.annotator for e in project.store.events(kind="release")] == ["lead", "lead"]

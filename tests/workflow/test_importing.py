@@ -9,10 +9,10 @@ from __future__ import annotations
 import hashlib
 import os
 import re
-import sqlite3
 
 import numpy as np
 import pytest
+import sqlalchemy as sa
 
 from labeler.cli import main
 from labeler.errors import LabelerError, MaskImportError
@@ -50,8 +50,8 @@ def put(tmp_path, array, name="east-block_mask.png"):
 def project_fingerprint(project) -> tuple:
     """Every file (name, size, SHA-256) of the project folder and every database row.
 
-    The database is compared by its rows (read through SQLite, read-only), not by its
-    bytes, which a checkpoint may rewrite without changing a row.
+    The database is compared by its rows (every table, read through SQLAlchemy on either
+    backend), not by its bytes, which a checkpoint may rewrite without changing a row.
     """
     files = []
     for path in sorted(project.root.rglob("*")):
@@ -59,13 +59,18 @@ def project_fingerprint(project) -> tuple:
             data = path.read_bytes()
             files.append((str(path.relative_to(project.root)), len(data),
                           hashlib.sha256(data).hexdigest()))
-    conn = sqlite3.connect(f"file:{project.root / 'labeler.db'}?mode=ro", uri=True)
+    engine = sa.create_engine(project.settings.db_url)
     try:
-        tables = [r[0] for r in conn.execute(
-            "SELECT name FROM sqlite_master WHERE type = 'table' ORDER BY name")]
-        rows = {t: conn.execute(f'SELECT * FROM "{t}" ORDER BY rowid').fetchall() for t in tables}
+        meta = sa.MetaData()
+        meta.reflect(engine)
+        with engine.connect() as conn:
+            rows = {
+                name: [tuple(r) for r in conn.execute(
+                    table.select().order_by(*(table.primary_key.columns or table.columns)))]
+                for name, table in sorted(meta.tables.items())
+            }
     finally:
-        conn.close()
+        engine.dispose()
     return tuple(files), rows
 
 

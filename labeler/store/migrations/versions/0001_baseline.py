@@ -1,0 +1,184 @@
+"""Revision 0001, the baseline: the tables of schema version 1 (the first release).
+
+A frozen copy of ``labeler/store/schema.py`` as that release had it; it never changes.
+Databases made by that release have no ``alembic_version`` table:
+:func:`labeler.store.migrate.upgrade_database` stamps them with this revision first.
+"""
+
+import sqlalchemy as sa
+from alembic import op
+
+revision = "0001"
+down_revision = None
+branch_labels = None
+depends_on = None
+
+metadata = sa.MetaData()
+
+meta = sa.Table(
+    "meta",
+    metadata,
+    sa.Column("key", sa.String(64), primary_key=True),
+    sa.Column("value", sa.Text, nullable=False),
+)
+
+images = sa.Table(
+    "images",
+    metadata,
+    sa.Column("id", sa.Integer, primary_key=True),
+    sa.Column("name", sa.String(255), nullable=False, unique=True),
+    sa.Column("path", sa.Text, nullable=False),
+    sa.Column("sha256", sa.String(64), nullable=False, unique=True),
+    sa.Column("width", sa.Integer, nullable=False),
+    sa.Column("height", sa.Integer, nullable=False),
+    sa.Column("bands", sa.Integer, nullable=False),
+    sa.Column("dtype", sa.String(16), nullable=False),
+    sa.Column("crs", sa.Text, nullable=True),
+    sa.Column("transform", sa.JSON, nullable=True),
+    sa.Column("georef_source", sa.String(16), nullable=True),
+    sa.Column("added_at", sa.DateTime(timezone=True), nullable=False),
+)
+
+tiles = sa.Table(
+    "tiles",
+    metadata,
+    sa.Column("id", sa.Integer, primary_key=True),
+    sa.Column("image_id", sa.Integer, sa.ForeignKey("images.id"), nullable=False, index=True),
+    sa.Column("row", sa.Integer, nullable=False),
+    sa.Column("col", sa.Integer, nullable=False),
+    sa.Column("height", sa.Integer, nullable=False),
+    sa.Column("width", sa.Integer, nullable=False),
+    sa.Column("state", sa.String(16), nullable=False, index=True),
+    sa.Column("overlap", sa.Boolean, nullable=False, default=False),
+    sa.Column("held_by", sa.Integer, sa.ForeignKey("annotators.id"), nullable=True),
+    sa.Column("updated_at", sa.DateTime(timezone=True), nullable=False),
+    sa.UniqueConstraint("image_id", "row", "col", name="uq_tile_window"),
+)
+
+annotators = sa.Table(
+    "annotators",
+    metadata,
+    sa.Column("id", sa.Integer, primary_key=True),
+    sa.Column("name", sa.String(128), nullable=False, unique=True),
+    sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
+)
+
+annotations = sa.Table(
+    "annotations",
+    metadata,
+    sa.Column("id", sa.Integer, primary_key=True),
+    sa.Column("tile_id", sa.Integer, sa.ForeignKey("tiles.id"), nullable=False),
+    sa.Column("version", sa.Integer, nullable=False),
+    sa.Column("parent_version", sa.Integer, nullable=True),
+    sa.Column("annotator_id", sa.Integer, sa.ForeignKey("annotators.id"), nullable=False),
+    sa.Column("kind", sa.String(16), nullable=False),
+    sa.Column("state", sa.String(16), nullable=False),
+    sa.Column("mask_png", sa.LargeBinary, nullable=False),
+    sa.Column("height", sa.Integer, nullable=False),
+    sa.Column("width", sa.Integer, nullable=False),
+    sa.Column("seconds", sa.Float, nullable=False, default=0.0),
+    sa.Column("actions", sa.Integer, nullable=False, default=0),
+    sa.Column("proposal_id", sa.Integer, sa.ForeignKey("proposals.id"), nullable=True),
+    sa.Column("source", sa.String(32), nullable=False, default="editor"),
+    sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
+    sa.UniqueConstraint("tile_id", "version", name="uq_annotation_version"),
+    sa.Index("ix_annotations_tile_annotator", "tile_id", "annotator_id"),
+)
+
+drafts = sa.Table(
+    "drafts",
+    metadata,
+    sa.Column("id", sa.Integer, primary_key=True),
+    sa.Column("tile_id", sa.Integer, sa.ForeignKey("tiles.id"), nullable=False),
+    sa.Column("annotator_id", sa.Integer, sa.ForeignKey("annotators.id"), nullable=False),
+    sa.Column("mask_png", sa.LargeBinary, nullable=False),
+    sa.Column("scribble_png", sa.LargeBinary, nullable=True),
+    sa.Column("parent_version", sa.Integer, nullable=True),
+    sa.Column("seconds", sa.Float, nullable=False, default=0.0),
+    sa.Column("actions", sa.Integer, nullable=False, default=0),
+    sa.Column("saved_at", sa.DateTime(timezone=True), nullable=False),
+    sa.UniqueConstraint("tile_id", "annotator_id", name="uq_draft_owner"),
+)
+
+model_versions = sa.Table(
+    "model_versions",
+    metadata,
+    sa.Column("id", sa.Integer, primary_key=True),
+    sa.Column("kind", sa.String(16), nullable=False),  # "cold_start" or "head"
+    sa.Column("name", sa.String(128), nullable=False),
+    sa.Column("encoder_version", sa.String(128), nullable=True),
+    sa.Column("checkpoint", sa.Text, nullable=True),  # path relative to the project
+    sa.Column("n_train_tiles", sa.Integer, nullable=False, default=0),
+    sa.Column("val_iou", sa.JSON, nullable=True),  # {class name: IoU or null}
+    sa.Column("miou", sa.Float, nullable=True),
+    sa.Column("details", sa.JSON, nullable=True),
+    sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
+)
+
+proposals = sa.Table(
+    "proposals",
+    metadata,
+    sa.Column("id", sa.Integer, primary_key=True),
+    sa.Column("tile_id", sa.Integer, sa.ForeignKey("tiles.id"), nullable=False, index=True),
+    sa.Column("model_version_id", sa.Integer, sa.ForeignKey("model_versions.id"), nullable=False),
+    sa.Column("mask_png", sa.LargeBinary, nullable=False),
+    sa.Column("height", sa.Integer, nullable=False),
+    sa.Column("width", sa.Integer, nullable=False),
+    sa.Column("uncertainty", sa.LargeBinary, nullable=True),  # .npy float16 (3, h, w)
+    sa.Column("embedding", sa.LargeBinary, nullable=True),  # .npy float32 (D,)
+    sa.Column("mean_entropy", sa.Float, nullable=True),
+    sa.Column("mean_margin", sa.Float, nullable=True),
+    sa.Column("mean_bald", sa.Float, nullable=True),
+    sa.Column("mean_least_confidence", sa.Float, nullable=True),
+    sa.Column("class_fractions", sa.JSON, nullable=True),  # list aligned with class indices
+    sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
+)
+
+events = sa.Table(
+    "events",
+    metadata,
+    sa.Column("id", sa.Integer, primary_key=True),
+    sa.Column("at", sa.DateTime(timezone=True), nullable=False, index=True),
+    sa.Column("kind", sa.String(32), nullable=False),
+    sa.Column("tile_id", sa.Integer, nullable=True, index=True),
+    sa.Column("annotator_id", sa.Integer, nullable=True),
+    sa.Column("detail", sa.JSON, nullable=True),
+)
+
+rankings = sa.Table(
+    "rankings",
+    metadata,
+    sa.Column("id", sa.Integer, primary_key=True),
+    sa.Column("strategy", sa.String(16), nullable=False),
+    sa.Column("k", sa.Integer, nullable=False),
+    sa.Column("seed", sa.Integer, nullable=False),
+    sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
+)
+
+ranking_items = sa.Table(
+    "ranking_items",
+    metadata,
+    sa.Column("ranking_id", sa.Integer, sa.ForeignKey("rankings.id"), primary_key=True),
+    sa.Column("tile_id", sa.Integer, sa.ForeignKey("tiles.id"), primary_key=True),
+    sa.Column("rank", sa.Integer, nullable=False),
+    sa.Column("score", sa.Float, nullable=False),
+    sa.Column("reason", sa.String(32), nullable=False),
+    sa.Column("in_batch", sa.Boolean, nullable=False, default=False),
+)
+
+assignments = sa.Table(
+    "assignments",
+    metadata,
+    sa.Column("tile_id", sa.Integer, sa.ForeignKey("tiles.id"), primary_key=True),
+    sa.Column("annotator_id", sa.Integer, sa.ForeignKey("annotators.id"), primary_key=True),
+    sa.Column("assigned_at", sa.DateTime(timezone=True), nullable=False),
+)
+
+
+def upgrade() -> None:
+    metadata.create_all(op.get_bind())
+    op.get_bind().execute(meta.insert().values(key="schema_version", value="1"))
+
+
+def downgrade() -> None:
+    metadata.drop_all(op.get_bind())
