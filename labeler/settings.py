@@ -37,7 +37,9 @@ Sections and options (defaults in brackets):
     ``annotators_per_tile`` [2]; ``metric`` ["kappa"] ``"kappa"`` or ``"iou"``;
     ``threshold`` [0.6] tiles agreeing less become ``contested``.
 ``[export]``
-    ``simplify_tolerance_px`` [0.5]; ``min_area_px`` [8]; ``val_share`` [0.2]; ``seed`` [0].
+    ``simplify_tolerance_px`` [0.5]; ``min_area_px`` [8]; ``val_share`` [0.2] share of
+    spatial blocks in the manifest's val split; ``seed`` [0]; ``block_tiles`` [4] side of
+    a split block, in tiles.
 ``[editor]``
     ``autosave_seconds`` [5]; ``opacity`` [0.45].
 ``[classes]``
@@ -197,6 +199,7 @@ class ExportSettings(Checked):
     min_area_px: float = 8.0
     val_share: float = 0.2
     seed: int = 0
+    block_tiles: int = 4
 
 
 @dataclass(frozen=True)
@@ -504,6 +507,7 @@ simplify_tolerance_px = 0.5
 min_area_px = 8
 val_share = 0.2
 seed = 0
+block_tiles = 4           # side of a train/val block, in tiles
 
 [editor]
 autosave_seconds = 5

@@ -297,6 +297,7 @@ def cmd_edit(args) -> int:
 def cmd_export(args) -> int:
     from labeler.project import open_project
     from labeler.workflow import export_project
+    from labeler.workflow.exporting import empty_export_hints
 
     states = [s.strip() for s in args.states.split(",") if s.strip()]
     with open_project(args.dir) as project, _Bar("exporting") as bar:
@@ -319,15 +320,25 @@ def cmd_export(args) -> int:
         f"{result.tiles_from_proposals} filled from model proposals) to {result.folder}"
     )
     if result.geojson:
-        print(f"  GeoJSON: {len(result.geojson)} files, {result.features} features")
+        print(
+            f"  GeoJSON: {len(result.geojson)} files, {result.features} class features and "
+            f"{result.footprints} outlines of saved tiles (layer looked_at)"
+        )
     if result.masks:
         print(f"  PNG class masks: {len(result.masks)}; manifest: {result.manifest}")
     if result.skipped:
         print(
             f"  nothing to export for: {', '.join(result.skipped)} (no tile in states {', '.join(states)})"
         )
+    if result.images == 0:
+        for line in empty_export_hints(states, proposals=args.proposals):
+            print(f"  hint: {line}")
     if result.tiles_from_proposals:
-        print("  note: proposal-filled areas are model output, not checked by an annotator")
+        print(
+            "  note: proposal-filled areas are model output, not checked by an annotator; "
+            "masks/<image>_source.png marks them per pixel (2) and each manifest row gives "
+            "its proposal_share"
+        )
     return 0
 
 
