@@ -370,16 +370,19 @@ def cmd_queue(args) -> int:
 def cmd_propose(args) -> int:
     from labeler.project import open_project
     from labeler.workflow import propose
+    from labeler.workflow.naming import model_label
+    from labeler.workflow.views import model_versions
 
     with open_project(args.dir) as project, _Bar("proposing") as bar:
         result = propose(project, progress=bar)
+        label = model_label(result.model_version, model_versions(project))
     how = (
         "cold start (vegetation index and crop rows)"
         if result.mode == "cold_start"
         else "trained head"
     )
     print(
-        f"proposed {result.proposed} tiles with {result.model_version.name} ({how}); "
+        f"proposed {result.proposed} tiles with {label} ({how}); "
         f"{result.up_to_date} tiles were already up to date"
     )
     if result.mode == "cold_start":

@@ -6,6 +6,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from labeler.project import Project
+from labeler.workflow.naming import model_label
 
 __all__ = ["ProjectStatus", "project_status"]
 
@@ -76,6 +77,6 @@ def project_status(project: Project) -> ProjectStatus:
         by_image=per_image,
         by_annotator=store.annotator_counts(),
         model_versions=len(models),
-        latest_model=None if latest is None else latest.name,
+        latest_model=None if latest is None else model_label(latest, models),
         latest_miou=None if latest is None else latest.miou,
     )
