@@ -17,6 +17,8 @@ stage:
 ``exporting``             GeoJSON, PNG masks, manifest
 ``importing``             masks made elsewhere, saved tile by tile like any save
 ``views``                 read-only views for the edges (preview, places, lists)
+``naming``                short names of model versions, their details
+``reviewing``             who may settle a contested tile
 ``features``              encoder features and their cache (proposing, retraining)
 ``progress``              the ``progress(done, total, label)`` callback type
 ========================  ===========================================================

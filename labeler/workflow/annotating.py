@@ -32,6 +32,7 @@ from labeler.states import (
     WEAK,
 )
 from labeler.store.records import AnnotationRecord
+from labeler.workflow.reviewing import check_reviewer
 
 __all__ = [
     "save_state",
@@ -172,6 +173,8 @@ def save_tile_mask(
         When ``parent_version`` is stale; nothing is written.
     """
     store = project.store
+    if settling:
+        check_reviewer(project, tile_id, annotator)
     proposal = None
     if kind == KIND_FULL and not settling and proposal_id is not None:
         proposal = store.proposal(proposal_id).mask()
