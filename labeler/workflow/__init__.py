@@ -40,6 +40,7 @@ from labeler.workflow.annotating import (
     queue_rows,
     save_state,
     save_tile_mask,
+    unpark_tile,
     weak_label_tile_state,
 )
 from labeler.workflow.editing import EditStart, StoreBackend, begin_edit, end_edit
@@ -73,6 +74,7 @@ __all__ = [
     "after_save",
     "next_tile",
     "park_tile",
+    "unpark_tile",
     "queue_rows",
     "save_state",
     "save_tile_mask",
