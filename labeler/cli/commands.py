@@ -268,6 +268,7 @@ def cmd_agreement(args) -> int:
 
 def cmd_edit(args) -> int:
     from labeler.editor.opening import edit_tile
+    from labeler.editor.sequence import edit_in_turn
     from labeler.project import open_project
     from labeler.states import KIND_FULL, KIND_WEAK
 
@@ -275,22 +276,34 @@ def cmd_edit(args) -> int:
         raise LabelerError("edit: name a TILE id or pass --next for the next tile of your queue")
     if args.tile is not None and args.next:
         raise LabelerError("edit: give either a TILE id or --next, not both")
-    with open_project(args.dir) as project:
-        tile_id, outcome = edit_tile(project, args.tile, args.annotator, settle=args.settle)
     what = {
         # the state the store recorded, as the workflow decided it (never the editor's)
-        "saved": f"saved as {outcome.state} "
-        f"({ {KIND_FULL: 'full mask', KIND_WEAK: 'weak label'}.get(outcome.kind, outcome.kind)})",
         "discarded": "left without saving",
         "left": "left without changes",
         "closed": "window closed",
         "conflict": "not saved: someone saved first",
     }
-    print(
-        f"tile {tile_id}: {what.get(outcome.reason, outcome.reason)}; {outcome.actions} actions, "
-        f"{outcome.seconds:.0f} s"
-        + ("; your work is kept as a draft" if outcome.draft_kept else "")
-    )
+
+    def report(tile_id, outcome) -> None:
+        kind = {KIND_FULL: "full mask", KIND_WEAK: "weak label"}.get(outcome.kind, outcome.kind)
+        said = f"saved as {outcome.state} ({kind})" if outcome.saved else what.get(
+            outcome.reason, outcome.reason
+        )
+        print(
+            f"tile {tile_id}: {said}; {outcome.actions} actions, {outcome.seconds:.0f} s"
+            + ("; your work is kept as a draft" if outcome.draft_kept else ""),
+            flush=True,
+        )
+
+    with open_project(args.dir) as project:
+        if args.next and not args.settle:
+            done, exhausted = edit_in_turn(project, args.annotator, report=report)
+            saved = sum(1 for _, o in done if o.saved)
+            end = "nothing is left for you" if exhausted else "stopped"
+            print(f"{saved} of {len(done)} tiles saved; {end}")
+            return 0
+        tile_id, outcome = edit_tile(project, args.tile, args.annotator, settle=args.settle)
+    report(tile_id, outcome)
     return 0
 
 
