@@ -27,6 +27,7 @@ from labeler.tui.rows import (
     QUEUE_COLUMNS,
     RowFilter,
     filter_rows,
+    fit_columns,
     preview_caption,
     queue_cells,
 )
@@ -44,6 +45,8 @@ class QueueScreen(Screen):
     def __init__(self) -> None:
         super().__init__()
         self.rows: list[QueueRow] = []
+        #: The columns shown now (those of QUEUE_COLUMNS that fit the table's width).
+        self.columns: tuple[str, ...] = tuple(QUEUE_COLUMNS)
         self.shown_rows: list[QueueRow] = []
         self.row_filter = RowFilter()
         self.long_work: str | None = None
@@ -87,8 +90,21 @@ class QueueScreen(Screen):
     def on_mount(self) -> None:
         table = self.query_one("#queue", DataTable)
         table.add_columns(*QUEUE_COLUMNS)
+        self.columns = tuple(QUEUE_COLUMNS)
         table.focus()
         self.reload()
+
+    def on_resize(self) -> None:
+        """Fit the columns to the new width."""
+        if self.loads:
+            self.call_after_refresh(self._refit)
+
+    def _refit(self) -> None:
+        table = self.query_one("#queue", DataTable)
+        cells = [queue_cells(r, schema=self.schema) for r in self.shown_rows]
+        keep = fit_columns(cells, width=table.size.width - 2)
+        if tuple(QUEUE_COLUMNS[k] for k in keep) != self.columns:
+            self._refill()
 
     def on_screen_resume(self) -> None:
         # back from the agreement or model screen: a reviewer may have settled tiles there
@@ -162,9 +178,17 @@ class QueueScreen(Screen):
         table = self.query_one("#queue", DataTable)
         keep = select if select is not None else self.selected_tile()
         self.shown_rows = filter_rows(self.rows, self.row_filter, schema=self.schema)
-        table.clear()
-        for r in self.shown_rows:
-            table.add_row(*queue_cells(r, schema=self.schema), key=str(r.tile_id))
+        cells = [queue_cells(r, schema=self.schema) for r in self.shown_rows]
+        shown = fit_columns(cells, width=table.size.width - 2)  # less the scroll bar
+        columns = tuple(QUEUE_COLUMNS[k] for k in shown)
+        if columns != self.columns:  # narrower or wider than before: other columns
+            table.clear(columns=True)
+            table.add_columns(*columns)
+            self.columns = columns
+        else:
+            table.clear()
+        for r, c in zip(self.shown_rows, cells, strict=True):
+            table.add_row(*(c[k] for k in shown), key=str(r.tile_id))
         ids = [r.tile_id for r in self.shown_rows]
         if keep in ids:
             table.move_cursor(row=ids.index(keep), animate=False)

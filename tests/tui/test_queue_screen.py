@@ -135,10 +135,11 @@ async def test_accept_moves_on_and_park_asks_why(project):
         # a second accept of the same proposal saves nothing
         app.screen.select_tile(tile)
         await idle(pilot)
+        assert app.screen.selected_tile() == tile, (app.screen.columns, tile, after)
         await pilot.press("a")
         await idle(pilot)
         assert len([a for a in project.store.annotations(kind=None) if a.tile_id == tile]) == 1
-        assert any("already kept this proposal" in n.message for n in app.notices)
+        assert any("already kept this proposal" in n.message for n in app.notices), [n.message for n in app.notices]
         # park the next row, with a reason typed into the box
         app.screen.select_tile(after)
         await idle(pilot)
@@ -230,3 +231,24 @@ async def test_preview_never_shows_another_annotators_mask_on_an_overlap_tile(ov
         caption = str(app.screen.query_one("#preview-caption").render())
         assert f"tile {tile.id}" in caption
         assert "bea" not in caption and "proposal of fake" in caption
+
+
+async def test_the_columns_fit_80_columns(project):
+    fake_proposals(project)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=(80, 24)) as pilot:
+        await idle(pilot)
+        screen = app.screen
+        table = screen.query_one("#queue", DataTable)
+        shown = [str(c.label) for c in table.columns.values()]
+        assert shown == list(screen.columns)
+        assert {"tile", "state", "reason"} <= set(shown) and len(shown) < len(QUEUE_COLUMNS)
+        # no column is cut: each is as wide as its widest text, and they fit the table
+        widths = [c.get_render_width(table) for c in table.columns.values()]
+        assert sum(widths) <= table.size.width
+        states = [str(table.get_row_at(i)[shown.index("state")]) for i in range(table.row_count)]
+        assert set(states) == {"proposed"}
+    wide = QueueApp(project, annotator="ana")
+    async with wide.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        assert len(wide.screen.columns) > len(shown)  # a wide terminal shows more
