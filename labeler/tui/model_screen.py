@@ -79,7 +79,13 @@ class ModelScreen(Screen):
         self.loads += 1
 
     def on_data_table_row_highlighted(self, event: DataTable.RowHighlighted) -> None:
-        """Spell out the highlighted version under the table."""
+        """Spell out the highlighted version under the table.
+
+        Parameters
+        ----------
+        event : DataTable.RowHighlighted
+            The row the cursor moved to.
+        """
         key = event.row_key.value if event.row_key is not None else None
         self.query_one("#model-details", Static).update(self.details.get(key, ""))
 

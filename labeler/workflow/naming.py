@@ -48,7 +48,19 @@ def model_labels(versions: Sequence[ModelVersionRecord]) -> dict[int, str]:
 
 
 def model_label(version: ModelVersionRecord, versions: Sequence[ModelVersionRecord]) -> str:
-    """The short name of ``version`` among the project's ``versions`` (oldest first)."""
+    """The short name of ``version`` among the project's versions.
+
+    Parameters
+    ----------
+    version : ModelVersionRecord
+        The version named.
+    versions : sequence of ModelVersionRecord
+        All of the project's versions, oldest first.
+
+    Returns
+    -------
+    str
+    """
     return model_labels(versions).get(version.id, version.name)
 
 

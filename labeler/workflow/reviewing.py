@@ -22,7 +22,18 @@ __all__ = ["project_reviewers", "check_reviewer"]
 
 
 def project_reviewers(project: Project) -> tuple[str, ...]:
-    """The names in ``[agreement] reviewers`` (comma-separated), or () for anyone."""
+    """The names in ``[agreement] reviewers`` (comma-separated).
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+
+    Returns
+    -------
+    tuple of str
+        The reviewers; () when anyone who did not annotate a tile may settle it.
+    """
     text = project.settings.agreement.reviewers
     return tuple(name.strip() for name in text.split(",") if name.strip())
 
