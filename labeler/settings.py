@@ -38,9 +38,13 @@ Sections and options (defaults in brackets):
 ``[agreement]``
     ``overlap_share`` [0.1] share of tiles given to several annotators;
     ``annotators_per_tile`` [2]; ``metric`` ["kappa"] ``"kappa"`` or ``"iou"``;
-    ``threshold`` [0.6] tiles agreeing less become ``contested``.
+    ``threshold`` [0.6] tiles agreeing less become ``contested``; ``reviewers`` [""]
+    comma-separated names of those who settle contested tiles (empty: anyone who did not
+    annotate the tile).
 ``[export]``
-    ``simplify_tolerance_px`` [0.5]; ``min_area_px`` [8]; ``val_share`` [0.2]; ``seed`` [0].
+    ``simplify_tolerance_px`` [0.5]; ``min_area_px`` [8]; ``val_share`` [0.2] share of
+    spatial blocks in the manifest's val split; ``seed`` [0]; ``block_tiles`` [4] side of
+    a split block, in tiles.
 ``[editor]``
     ``autosave_seconds`` [5]; ``opacity`` [0.45].
 ``[holds]``
@@ -196,6 +200,7 @@ class AgreementSettings(Checked):
     annotators_per_tile: int = 2
     metric: str = "kappa"
     threshold: float = 0.6
+    reviewers: str = ""
 
     def _check(self) -> None:
         check_choice("agreement", "metric", self.metric, ("kappa", "iou"))
@@ -210,6 +215,7 @@ class ExportSettings(Checked):
     min_area_px: float = 8.0
     val_share: float = 0.2
     seed: int = 0
+    block_tiles: int = 4
 
 
 @dataclass(frozen=True)
@@ -521,12 +527,14 @@ overlap_share = 0.1
 annotators_per_tile = 2
 metric = "kappa"          # "kappa" or "iou"
 threshold = 0.6
+reviewers = ""            # who settles contested tiles, e.g. "ana, tomas"; "" = anyone else
 
 [export]
 simplify_tolerance_px = 0.5
 min_area_px = 8
 val_share = 0.2
 seed = 0
+block_tiles = 4           # side of a train/val block, in tiles
 
 [editor]
 autosave_seconds = 5

@@ -73,17 +73,21 @@ class Range:
 #: Largest whole number a count or seed may be: a signed 32-bit integer (NumPy, torch and
 #: every database column hold it). Common practice, no source.
 INT_MAX = 2**31 - 1
+#: Options counting pixels of a whole image, which exceed INT_MAX (a 50 000 x 50 000
+#: orthomosaic has 2.5e9): they are held as Python/NumPy 64-bit integers, never in a
+#: 32-bit column; bounded by the largest whole number a float holds exactly, 2**53.
+WIDE_OPTIONS = {"tiles.max_image_px": 2**53}
 
 
-def _cap(limits: Range) -> int:
-    """Largest size of a whole number: INT_MAX unless the option's range allows more."""
-    return max(INT_MAX, int(limits.high)) if limits.high is not None else INT_MAX
+def int_cap(where: str) -> int:
+    """Largest size of the whole-number option ``where`` (``section.option``)."""
+    return WIDE_OPTIONS.get(where, INT_MAX)
 
 
 #: Allowed values of every numeric option (checked when the settings are made). Options
 #: not listed need only be finite numbers (whole numbers for counts).
 RANGES: dict[str, dict[str, Range]] = {
-    "tiles": {"size": Range(16, 16384), "overlap": Range(0), "max_image_px": Range(1, 10**12)},
+    "tiles": {"size": Range(16, 16384), "overlap": Range(0), "max_image_px": Range(1)},
     "cold_start": {"exr_coefficient": Range(0), "min_object_px": Range(0)},
     "model": {
         "mc_samples": Range(1, 1000),
@@ -107,6 +111,7 @@ RANGES: dict[str, dict[str, Range]] = {
         "min_area_px": Range(0),
         "val_share": Range(0, 1),
         "seed": Range(0),
+        "block_tiles": Range(1),
     },
     "editor": {"autosave_seconds": Range(0, low_open=True), "opacity": Range(0, 1)},
     "holds": {
@@ -142,7 +147,8 @@ class Checked:
                 raise bad_value(
                     self._section, f.name, limits.describe(whole=whole) + " (finite)", value
                 )
-            if whole and (value != int(value) or abs(value) > _cap(limits)):
+            cap = int_cap(f"{self._section}.{f.name}")
+            if whole and (value != int(value) or abs(value) > cap):
                 raise bad_value(self._section, f.name, limits.describe(whole=True), value)
             if value not in limits:
                 raise bad_value(self._section, f.name, limits.describe(whole=whole), value)
@@ -225,7 +231,7 @@ def coerce(where: str, value: object, target: type, *, limits: Range | None = No
         number = float(value)  # type: ignore[arg-type]
     except (TypeError, ValueError, OverflowError):
         raise bad_value(*where.split(".", 1), expected, value) from None
-    cap = _cap(limits or Range())
+    cap = int_cap(where)
     if not math.isfinite(number) or (isinstance(value, int) and abs(value) > cap):
         raise bad_value(
             *where.split(".", 1), f"{expected} (finite, at most {cap:,} in size)", value

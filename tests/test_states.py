@@ -127,7 +127,7 @@ def test_state_groups():
 
 
 def test_imported_is_a_saved_state_between_amended_and_contested():
-    # the life cycle in docs/architecture.md: accepted or amended or imported, then optionally contested
+    # tile life cycle (docs/architecture.md): accepted or amended or imported, then optionally contested
     order = list(states.STATES)
     assert order.index("amended") + 1 == order.index("imported") == order.index("contested") - 1
     assert "imported" in states.SAVED_STATES and "imported" in states.ANNOTATION_STATES

@@ -168,16 +168,33 @@ class AgreementSummary:
     days: tuple[DayFigures, ...]
     overall: PairFigures
 
-    def least_agreed(self, n: int = 10) -> tuple[ImageFigures | TileFigures, ...]:
+    def least_agreed(
+        self, n: int = 10, *, whole_tiles: bool = True
+    ) -> tuple[ImageFigures | TileFigures, ...]:
         """The ``n`` least agreed tiles (or images, when no tile windows were given).
 
         Sorted by ``agreement`` ascending; entries with ``nan`` (nothing compared) are
         left out. Tiles are listed when any image carries tile windows.
+
+        Parameters
+        ----------
+        n : int
+            Length of the list.
+        whole_tiles : bool
+            List only tiles compared over the whole tile: at least as many pixels
+            compared as the tile has, i.e. two or more annotators labelled every pixel
+            of it. A tile only one person labelled is otherwise compared on the strip a
+            neighbouring tile of the other person overlaps, which says little about it.
         """
         has_tiles = any(img.tiles for img in self.images)
         pool: list[ImageFigures | TileFigures] = []
         if has_tiles:
-            pool = [t for img in self.images for t in img.tiles]
+            pool = [
+                t
+                for img in self.images
+                for t in img.tiles
+                if not whole_tiles or t.pixels_compared >= t.window[2] * t.window[3]
+            ]
         else:
             pool = list(self.images)
         pool = [p for p in pool if not math.isnan(p.agreement)]

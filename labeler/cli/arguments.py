@@ -273,7 +273,10 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--annotator", required=True, metavar="NAME", help="who is annotating")
     p.add_argument(
-        "--next", action="store_true", help="open the next tile of the queue for this annotator"
+        "--next",
+        action="store_true",
+        help="edit the next tiles of the queue one after another: a save opens the next tile, "
+        "leaving a tile without a save (Esc, closing the window) stops",
     )
     p.add_argument(
         "--settle",

@@ -382,6 +382,7 @@ def cmd_agreement(args) -> int:
 
 def cmd_edit(args) -> int:
     from labeler.editor.opening import edit_tile
+    from labeler.editor.sequence import edit_in_turn
     from labeler.project import open_project
     from labeler.states import KIND_FULL, KIND_WEAK
 
@@ -389,28 +390,41 @@ def cmd_edit(args) -> int:
         raise LabelerError("edit: name a TILE id or pass --next for the next tile of your queue")
     if args.tile is not None and args.next:
         raise LabelerError("edit: give either a TILE id or --next, not both")
-    with open_project(args.dir) as project:
-        tile_id, outcome = edit_tile(project, args.tile, args.annotator, settle=args.settle)
     what = {
         # the state the store recorded, as the workflow decided it (never the editor's)
-        "saved": f"saved as {outcome.state} "
-        f"({ {KIND_FULL: 'full mask', KIND_WEAK: 'weak label'}.get(outcome.kind, outcome.kind) })",
         "discarded": "left without saving",
         "left": "left without changes",
         "closed": "window closed",
         "conflict": "not saved: someone saved first",
     }
-    print(
-        f"tile {tile_id}: {what.get(outcome.reason, outcome.reason)}; {outcome.actions} actions, "
-        f"{outcome.seconds:.0f} s"
-        + ("; your work is kept as a draft" if outcome.draft_kept else "")
-    )
+
+    def report(tile_id, outcome) -> None:
+        kind = {KIND_FULL: "full mask", KIND_WEAK: "weak label"}.get(outcome.kind, outcome.kind)
+        said = f"saved as {outcome.state} ({kind})" if outcome.saved else what.get(
+            outcome.reason, outcome.reason
+        )
+        print(
+            f"tile {tile_id}: {said}; {outcome.actions} actions, {outcome.seconds:.0f} s"
+            + ("; your work is kept as a draft" if outcome.draft_kept else ""),
+            flush=True,
+        )
+
+    with open_project(args.dir) as project:
+        if args.next and not args.settle:
+            done, exhausted = edit_in_turn(project, args.annotator, report=report)
+            saved = sum(1 for _, o in done if o.saved)
+            end = "nothing is left for you" if exhausted else "stopped"
+            print(f"{saved} of {len(done)} tiles saved; {end}")
+            return 0
+        tile_id, outcome = edit_tile(project, args.tile, args.annotator, settle=args.settle)
+    report(tile_id, outcome)
     return 0
 
 
 def cmd_export(args) -> int:
     from labeler.project import open_project
     from labeler.workflow import export_project
+    from labeler.workflow.exporting import empty_export_hints
 
     states = [s.strip() for s in args.states.split(",") if s.strip()]
     with open_project(args.dir) as project, _Bar("exporting") as bar:
@@ -433,15 +447,25 @@ def cmd_export(args) -> int:
         f"{result.tiles_from_proposals} filled from model proposals) to {result.folder}"
     )
     if result.geojson:
-        print(f"  GeoJSON: {len(result.geojson)} files, {result.features} features")
+        print(
+            f"  GeoJSON: {len(result.geojson)} files, {result.features} class features and "
+            f"{result.footprints} outlines of saved tiles (layer looked_at)"
+        )
     if result.masks:
         print(f"  PNG class masks: {len(result.masks)}; manifest: {result.manifest}")
     if result.skipped:
         print(
             f"  nothing to export for: {', '.join(result.skipped)} (no tile in states {', '.join(states)})"
         )
+    if result.images == 0:
+        for line in empty_export_hints(states, proposals=args.proposals):
+            print(f"  hint: {line}")
     if result.tiles_from_proposals:
-        print("  note: proposal-filled areas are model output, not checked by an annotator")
+        print(
+            "  note: proposal-filled areas are model output, not checked by an annotator; "
+            "masks/<image>_source.png marks them per pixel (2) and each manifest row gives "
+            "its proposal_share"
+        )
     return 0
 
 
@@ -473,16 +497,19 @@ def cmd_queue(args) -> int:
 def cmd_propose(args) -> int:
     from labeler.project import open_project
     from labeler.workflow import propose
+    from labeler.workflow.naming import model_label
+    from labeler.workflow.views import model_versions
 
     with open_project(args.dir) as project, _Bar("proposing") as bar:
         result = propose(project, progress=bar)
+        label = model_label(result.model_version, model_versions(project))
     how = (
         "cold start (vegetation index and crop rows)"
         if result.mode == "cold_start"
         else "trained head"
     )
     print(
-        f"proposed {result.proposed} tiles with {result.model_version.name} ({how}); "
+        f"proposed {result.proposed} tiles with {label} ({how}); "
         f"{result.up_to_date} tiles were already up to date"
     )
     if result.mode == "cold_start":

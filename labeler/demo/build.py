@@ -142,11 +142,21 @@ def run_demo_round(
     prog = progress or (lambda *a: None)
     places = tile_places(project)
     truths = _truths({p.image for p in places.values()}, fields)
+    from labeler.workflow.naming import model_label
+    from labeler.workflow.views import model_versions
+
     res = propose(project, progress=prog)
-    say(f"1. proposed {res.proposed} tiles with {res.model_version.name}")
+    say(
+        f"1. proposed {res.proposed} tiles with the "
+        f"{model_label(res.model_version, model_versions(project))} (no model trained yet)"
+    )
     picked = pick_tiles(project, progress=prog)
     batch = [i.tile_id for i in picked.items if i.in_batch]
-    say(f"2. the picker chose {len(batch)} tiles ({picked.strategy}): {', '.join(map(str, batch))}")
+    why = f"; {picked.note}" if picked.note else ""
+    say(
+        f"2. the picker chose {len(batch)} tiles by {picked.strategy} (asked for "
+        f"{picked.requested}{why}): {', '.join(map(str, batch))}"
+    )
     rng = np.random.default_rng(seed)
     overlap = {tid for tid, p in places.items() if p.overlap}
     extra = sorted(overlap - set(batch))[:4]  # a few overlap tiles so both annotators meet
@@ -172,8 +182,11 @@ def run_demo_round(
             )
         saved += 1
     counts = project_status(project).by_state
+    ag = project.settings.agreement
     say(
-        f"3. simulated annotators saved {saved} tiles ({counts.get('contested', 0)} contested on overlap tiles)"
+        f"3. simulated annotators saved {saved} tiles ({counts.get('contested', 0)} contested on "
+        f"overlap tiles: the demo counts an overlap tile as contested below {ag.metric} "
+        f"{ag.threshold:g}, stricter than the default 0.6, so that a reviewer has work to show)"
     )
     rep_dir = project.root / "reports" / "agreement"
     summary, files = write_agreement(project, rep_dir, progress=prog)
@@ -196,6 +209,8 @@ def run_demo_round(
     out = project.root / "exports"
     ex = export_project(project, out, proposals=True, progress=prog)
     say(
-        f"8. exported {ex.features} GeoJSON features and {len(ex.masks)} PNG masks to {out} "
-        f"({ex.tiles_from_proposals} tiles filled from proposals: model output, not checked)"
+        f"8. exported {ex.features} GeoJSON features, {ex.footprints} outlines of saved tiles "
+        f"and {len(ex.masks)} PNG files to {out} ({ex.tiles_from_proposals} tiles filled from "
+        "proposals for a whole-field map: model output, not checked, marked 2 in "
+        "masks/<image>_source.png and by proposal_share in manifest.jsonl)"
     )

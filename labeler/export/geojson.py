@@ -22,7 +22,8 @@ mask to the file is:
    and give the collection and each feature a ``bbox`` ``[west, south, east, north]``
    (RFC 7946 section 5).
 
-Feature properties: ``class`` (name), ``class_index``, ``image``, ``tiles`` (ids of the
+Feature properties: ``layer`` (``"classes"``; the export adds a ``"looked_at"`` layer of
+saved tiles' outlines, :mod:`labeler.export.footprint`), ``class`` (name), ``class_index``, ``image``, ``tiles`` (ids of the
 tiles the region's pixels come from), ``annotators``, ``states`` (tile states),
 ``model_version``, ``source`` (``"annotation"``, or ``"proposal"`` as soon as one of the
 region's tiles holds an unreviewed proposal), ``area_m2`` and ``area_px``. The feature
@@ -390,6 +391,7 @@ def image_features(
                     "bbox": boxes[k].tolist(),
                     "geometry": geometries[k],
                     "properties": {
+                        "layer": "classes",
                         "class": name,
                         "class_index": region.class_index,
                         "image": image,

@@ -15,8 +15,13 @@ What the pixels that no polygon covers become is the caller's choice, ``fill``:
   plants is a weak label. A file that also has soil (class 0) polygons wherever the
   ground is bare covers the whole image and becomes a full mask.
 * ``fill=0``: they become soil. Use this for files in which the features cover every
-  non-soil pixel, which is what our own export writes (it drops soil polygons unless
-  asked for them).
+  non-soil pixel.
+
+Our own export also writes a ``looked_at`` outline of every saved tile
+(:mod:`labeler.export.footprint`): its pixels are soil (the background class) unless a
+class polygon covers them, whatever ``fill`` is. So an exported file imported back with
+the default ``fill`` gives full masks on the tiles that were saved and leaves the rest
+unlabelled.
 
 The file is read and every feature checked and placed on the image's pixel grid when
 a :class:`GeoJsonMask` is made; its mask is then drawn a band of rows at a time
@@ -42,6 +47,7 @@ from rasterio.crs import CRS
 from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
 from labeler.errors import MaskImportError
 from labeler.export.crs import WGS84, as_crs, reprojector
+from labeler.export.footprint import is_footprint
 from labeler.export.geojson import COORDINATES_MEMBER, read_geojson
 from labeler.export.geometry import geometry_from_geojson
 from labeler.export.mask_files import check_mask_path
@@ -315,6 +321,8 @@ def _place_features(
     geoms: list[shapely.Geometry] = []
     values: list[int] = []
     labels: list[str] = []
+    looked: list[bool] = []
+    soil = min(schema.indices)  # the background class
     for k, feature in enumerate(features):
         fid = feature.get("id") if isinstance(feature, Mapping) else None
         where = f"feature {k}" + (f" (id {fid!r})" if fid is not None else "")
@@ -327,7 +335,8 @@ def _place_features(
                 continue
         if feature.get("geometry") is None:
             continue  # an unlocated feature (RFC 7946 section 3.2) marks no pixel
-        value = _class_of(props, schema, where)
+        footprint = is_footprint(props)
+        value = soil if footprint else _class_of(props, schema, where)
         geom = geometry_from_geojson(feature.get("geometry"), where=where)
         if not shapely.is_valid(geom):
             raise ValueError(
@@ -344,6 +353,7 @@ def _place_features(
         geoms.append(geom)
         values.append(value)
         labels.append(where)
+        looked.append(footprint)
     if image is not None and features and not geoms and images_named and image not in images_named:
         raise ValueError(
             f"no feature belongs to image {image!r}; the file names "
@@ -351,6 +361,11 @@ def _place_features(
         )
     if not geoms:
         return np.empty(0, dtype=object), np.zeros(0, np.uint8)
+    # "looked at" outlines first: their pixels are soil unless a class polygon covers them
+    order = sorted(range(len(geoms)), key=lambda k: not looked[k])
+    geoms = [geoms[k] for k in order]
+    values = [values[k] for k in order]
+    labels = [labels[k] for k in order]
     arr = np.empty(len(geoms), dtype=object)
     arr[:] = geoms
     if not pixel_mode:

@@ -1,27 +1,40 @@
-"""The training-set manifest: one JSON object per line, one line per exported image.
+"""The training-set manifest: one JSON object per line, one line per exported tile.
 
 Each line holds:
 
-``image``, ``mask``
-    Paths of the image and of its class-index PNG, relative to the manifest's folder
-    (forward slashes).
-``width``, ``height``
-    Image size in pixels.
+``image``, ``mask``, ``source_mask``
+    Paths of the image, of its class-index PNG and (only when proposals were exported)
+    of its source layer (see below), relative to the manifest's folder (forward
+    slashes); ``source_mask`` is null otherwise.
+``image_size``
+    ``[height, width]`` of the image in pixels.
+``tile``, ``state``, ``source``
+    The tile's id in the project, its state and where its mask came from:
+    ``"annotation"`` (a saved mask somebody made or checked) or ``"proposal"`` (model
+    output nobody reviewed, only with ``--proposals``).
+``tile_window``, ``window``
+    ``[row, col, height, width]`` of the tile, and of the part of it to use: the
+    same on the train side, cut back on the val side where it overlaps training tiles
+    (:mod:`labeler.export.split`). Crop the image and the masks to ``window``.
+``block``, ``split``
+    The spatial block ``[row, col]`` and its side, ``"train"`` or ``"val"``, by the rule
+    of :mod:`labeler.export.split`: overlapping neighbours are on the same side, and
+    no pixel is on both.
 ``classes``
-    Names of the classes present in the mask (255, unlabelled, is not a class).
-``unlabelled_px``
-    Pixels left unlabelled (255): weak labels have some; training should ignore them.
-``split``
-    ``"train"`` or ``"val"``. The rule is seeded and looks only at the image's own
-    content: ``u = first 8 bytes of sha256("labeler-split:<seed>:<image sha256>") / 2**64``
-    and the image is in ``val`` when ``u < val_share``. Adding images to the project
-    never moves an image to the other side, and a renamed copy keeps its side.
+    The project's whole class list, ``{name: index}``, the same on every line (255,
+    unlabelled, is not a class).
+``present``
+    Names of the classes present in ``window``.
+``unlabelled_share``
+    Share of ``window`` left unlabelled (255): weak labels and tiles nobody saved;
+    training should ignore those pixels.
+``proposal_share``
+    Share of ``window`` whose labels are model proposals (0 unless ``--proposals``).
+    Per pixel, the source layer ``<image>_source.png`` says the same: 0 no label,
+    1 a saved mask, 2 a model proposal. To train on reviewed pixels only, set the mask
+    to 255 where the source layer is 2.
 ``image_sha256``
     SHA-256 of the image file.
-``tile_states``
-    How many of the image's tiles are in each state (:data:`labeler.states.STATES`).
-``filled_from_proposals``
-    How many tiles had no saved annotation and were filled from a model proposal.
 
 Reading it for training (PyTorch)::
 
@@ -38,75 +51,51 @@ Reading it for training (PyTorch)::
             return len(self.rows)
         def __getitem__(self, i):
             r = self.rows[i]
-            image = np.array(Image.open(self.root / r["image"]).convert("RGB"))
-            mask = np.array(Image.open(self.root / r["mask"]))
+            row, col, h, w = r["window"]
+            crop = np.s_[row : row + h, col : col + w]
+            image = np.array(Image.open(self.root / r["image"]).convert("RGB"))[crop]
+            mask = np.array(Image.open(self.root / r["mask"]))[crop]
+            if r["source_mask"]:  # keep reviewed pixels only
+                source = np.array(Image.open(self.root / r["source_mask"]))[crop]
+                mask[source == 2] = 255
             return torch.from_numpy(image).permute(2, 0, 1), torch.from_numpy(mask).long()
 
+Many rows share an image: open each image once and keep it while its tiles are read.
 Train with a loss that ignores unlabelled pixels, e.g.
 ``torch.nn.CrossEntropyLoss(ignore_index=255)``.
 """
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
-from collections import Counter
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
 
 from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
+from labeler.export.geojson import TileInfo
+from labeler.export.split import SPLITS, check_sha, split_for, split_tiles
 from labeler.fileio import atomic_write_bytes
-from labeler.imagery.tiling import row_strips
-from labeler.states import STATES
+from labeler.imagery.tiling import Window
 
 __all__ = [
     "MANIFEST_NAME",
     "SPLITS",
+    "SOURCE_NONE",
+    "SOURCE_SAVED",
+    "SOURCE_PROPOSAL",
     "split_for",
-    "manifest_row",
+    "tile_rows",
     "write_manifest",
     "read_manifest",
 ]
 
 #: Default manifest file name inside an export folder.
 MANIFEST_NAME = "manifest.jsonl"
-SPLITS = ("train", "val")
-_HEX = frozenset("0123456789abcdef")
-
-
-def _check_sha(sha: str, name: str = "image_sha256") -> str:
-    text = sha.lower() if isinstance(sha, str) else ""
-    if len(text) != 64 or not set(text) <= _HEX:
-        raise ValueError(
-            f"{name}: expected 64 hexadecimal digits (a SHA-256), got {sha!r}; "
-            "compute it with labeler.fileio.sha256_file(path)"
-        )
-    return text
-
-
-def split_for(image_sha256: str, *, seed: int = 0, val_share: float = 0.2) -> str:
-    """``"train"`` or ``"val"`` for an image, by the seeded rule of the module docstring.
-
-    Parameters
-    ----------
-    image_sha256 : str
-        SHA-256 hex digest of the image file.
-    seed : int
-        Changes the draw for every image at once.
-    val_share : float
-        Expected share of validation images, 0..1.
-    """
-    sha = _check_sha(image_sha256)
-    if not 0.0 <= val_share <= 1.0:
-        raise ValueError(f"val_share: expected a share in [0, 1], got {val_share}")
-    if not isinstance(seed, int | np.integer):
-        raise ValueError(f"seed: expected an integer, got {seed!r}")
-    digest = hashlib.sha256(f"labeler-split:{int(seed)}:{sha}".encode("ascii")).digest()
-    u = int.from_bytes(digest[:8], "big") / 2.0**64
-    return "val" if u < val_share else "train"
+#: Values of the source layer: no label, a saved mask, a model proposal.
+SOURCE_NONE, SOURCE_SAVED, SOURCE_PROPOSAL = 0, 1, 2
 
 
 def _relative(path: str | os.PathLike[str], root: Path) -> str:
@@ -117,20 +106,27 @@ def _relative(path: str | os.PathLike[str], root: Path) -> str:
         return p.resolve().as_posix()
 
 
-def manifest_row(
+def _window(mask, w: Window) -> np.ndarray:
+    return np.asarray(mask[w.row : w.row + w.height, w.col : w.col + w.width])
+
+
+def tile_rows(
     *,
     image_path: str | os.PathLike[str],
     mask_path: str | os.PathLike[str],
     manifest_dir: str | os.PathLike[str],
     mask,
+    windows: Sequence[Window],
+    tiles: Sequence[TileInfo],
     image_sha256: str,
+    source=None,
+    source_path: str | os.PathLike[str] | None = None,
     schema: ClassSchema = DEFAULT_SCHEMA,
-    tile_states: Iterable[str] = (),
-    filled_from_proposals: int = 0,
+    block_px: int = 1024,
     seed: int = 0,
     val_share: float = 0.2,
-) -> dict:
-    """The manifest line of one image (see the module docstring for the keys).
+) -> list[dict]:
+    """The manifest lines of one image's exported tiles (keys: the module docstring).
 
     Parameters
     ----------
@@ -138,57 +134,80 @@ def manifest_row(
         Where the image and its exported PNG mask are.
     manifest_dir : path
         Folder of the manifest file; paths are written relative to it.
-    mask : ndarray, shape (H, W), uint8, or a raster read by rows
-        The exported mask (gives the size and the classes present); an object whose
-        ``mask[r0:r1]`` returns rows (a :class:`labeler.imagery.tiling.StitchedMask`) is
-        counted strip by strip.
+    mask : ndarray, shape (H, W), uint8, or a raster read by windows
+        The exported image mask; an object whose ``mask[r0:r1, c0:c1]`` returns a window
+        (a :class:`labeler.imagery.tiling.StitchedMask`) is read tile by tile.
+    windows : sequence of Window
+        The exported tiles, in the order of ``tiles``.
+    tiles : sequence of TileInfo
+        Id, state and source of each exported tile.
     image_sha256 : str
         SHA-256 of the image file (:func:`labeler.fileio.sha256_file`).
+    source : ndarray (H, W) uint8, a raster read by windows, or None
+        The source layer (:data:`SOURCE_NONE`, :data:`SOURCE_SAVED`,
+        :data:`SOURCE_PROPOSAL` per pixel); None when no proposal was exported.
+    source_path : path or None
+        Where the source layer was written.
     schema : ClassSchema
-    tile_states : iterable of str
-        State of each of the image's tiles.
-    filled_from_proposals : int
-        Tiles whose exported mask came from a model proposal.
-    seed, val_share
-        The split rule (:func:`split_for`).
+    block_px, seed, val_share
+        The split (:func:`labeler.export.split.split_tiles`).
+
+    Returns
+    -------
+    list of dict
+        One per tile left after the split (a val tile wholly shared with training tiles
+        is left out), in the order of ``tiles``.
     """
     shape = tuple(getattr(mask, "shape", ()))
     if len(shape) != 2:
-        mask = np.asarray(mask)
-        schema.check_mask(mask, name="mask")  # names what is wrong with it
-    height, width = (int(v) for v in mask.shape)
-    states = list(tile_states)
-    for s in states:
-        if s not in STATES:
-            raise ValueError(f"tile_states: expected states of {STATES}, got {s!r}")
-    if (
-        not isinstance(filled_from_proposals, int | np.integer)
-        or not 0 <= filled_from_proposals
-        or (states and filled_from_proposals > len(states))
-    ):
+        raise ValueError(f"mask: expected a 2-D class-index raster (H, W), got shape {shape}")
+    if len(windows) != len(tiles):
         raise ValueError(
-            "filled_from_proposals: expected a tile count between 0 and the number of tiles "
-            f"({len(states)}), got {filled_from_proposals!r}"
+            f"tiles: expected one TileInfo per window ({len(windows)}), got {len(tiles)}"
         )
-    counts = np.zeros(256, np.int64)
-    for w in row_strips(height, width):
-        part = np.asarray(mask[w.row : w.row + w.height])
-        schema.check_mask(part, name="mask" if w.height == height else f"mask rows {w.row}..")
-        counts += np.bincount(part.ravel(), minlength=256)
+    if (source is None) != (source_path is None):
+        raise ValueError("source/source_path: pass both (the source layer and its file) or neither")
+    sha = check_sha(image_sha256)
     root = Path(manifest_dir)
-    counted = Counter(states)
-    return {
-        "image": _relative(image_path, root),
-        "mask": _relative(mask_path, root),
-        "width": width,
-        "height": height,
-        "classes": [c.name for c in schema.classes if counts[c.index] > 0],
-        "unlabelled_px": int(counts[UNLABELLED]),
-        "split": split_for(image_sha256, seed=seed, val_share=val_share),
-        "image_sha256": _check_sha(image_sha256),
-        "tile_states": {s: counted[s] for s in STATES if counted[s]},
-        "filled_from_proposals": int(filled_from_proposals),
-    }
+    image_rel, mask_rel = _relative(image_path, root), _relative(mask_path, root)
+    source_rel = None if source_path is None else _relative(source_path, root)
+    classes = {c.name: int(c.index) for c in schema.classes}
+    sides = split_tiles(
+        windows, image_sha256=sha, block_px=block_px, seed=seed, val_share=val_share
+    )
+    rows = []
+    for tile_window, info, side in zip(windows, tiles, sides, strict=True):
+        w = side.window
+        if w is None:
+            continue
+        part = _window(mask, w)
+        schema.check_mask(part, name=f"mask window {w.as_tuple()}")
+        counts = np.bincount(part.ravel(), minlength=256)
+        proposal = 0
+        if source is not None:
+            proposal = int(np.count_nonzero(_window(source, w) == SOURCE_PROPOSAL))
+        size = part.size
+        rows.append(
+            {
+                "image": image_rel,
+                "mask": mask_rel,
+                "source_mask": source_rel,
+                "image_size": [int(shape[0]), int(shape[1])],
+                "tile": info.tile_id,
+                "state": info.state,
+                "source": info.source,
+                "tile_window": list(tile_window.as_tuple()),
+                "window": list(w.as_tuple()),
+                "block": list(side.block),
+                "split": side.split,
+                "classes": classes,
+                "present": [c.name for c in schema.classes if counts[c.index] > 0],
+                "unlabelled_share": round(float(counts[UNLABELLED]) / size, 6),
+                "proposal_share": round(proposal / size, 6),
+                "image_sha256": sha,
+            }
+        )
+    return rows
 
 
 def write_manifest(path: str | os.PathLike[str], rows: Sequence[Mapping]) -> Path:
@@ -197,22 +216,25 @@ def write_manifest(path: str | os.PathLike[str], rows: Sequence[Mapping]) -> Pat
     Raises
     ------
     ValueError
-        When two rows name the same image, or a row lacks a key of the format.
+        When two rows name the same tile of an image, or a row lacks a key of the format.
     """
-    needed = ("image", "mask", "width", "height", "classes", "split")
-    seen: set[str] = set()
+    needed = ("image", "mask", "tile", "window", "classes", "split")
+    seen: set = set()
     lines = []
     for k, row in enumerate(rows):
         missing = [key for key in needed if key not in row]
         if missing:
             raise ValueError(
-                f"rows[{k}]: missing {', '.join(missing)}; build rows with manifest_row"
+                f"rows[{k}]: missing {', '.join(missing)}; build rows with tile_rows"
             )
         if row["split"] not in SPLITS:
             raise ValueError(f"rows[{k}]: split must be 'train' or 'val', got {row['split']!r}")
-        if row["image"] in seen:
-            raise ValueError(f"rows[{k}]: image {row['image']!r} is listed twice")
-        seen.add(row["image"])
+        key = (row["image"], row["tile"])
+        if key in seen:
+            raise ValueError(
+                f"rows[{k}]: tile {row['tile']!r} of image {row['image']!r} is listed twice"
+            )
+        seen.add(key)
         lines.append(json.dumps(row, ensure_ascii=False, allow_nan=False, sort_keys=False))
     text = "".join(line + "\n" for line in lines)
     return atomic_write_bytes(path, text.encode("utf-8"))

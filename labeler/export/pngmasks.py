@@ -1,10 +1,14 @@
 """PNG class masks for training elsewhere, and colour previews to look at them.
 
-Per image two files may be written into an output folder:
+Per image up to three files may be written into an output folder:
 
 ``<stem>.png``
     Single-channel 8-bit class indices of the schema; 255 stays 255 (unlabelled), which
     training code should ignore (e.g. ``ignore_index=255`` in a cross-entropy loss).
+``<stem>_source.png`` (only when model proposals were exported)
+    Single-channel 8-bit: where each pixel's label came from, 0 no label, 1 a saved
+    mask (made or checked by a person), 2 a model proposal nobody reviewed
+    (:func:`write_source_layer`).
 ``<stem>_preview.png``
     RGB: the image blended with the class palette of :mod:`labeler.classes` (Okabe & Ito 2008
     colours) at opacity 0.45. Soil (no overlay colour) and unlabelled pixels show the
@@ -31,7 +35,14 @@ from labeler.imagery.pngstream import PngRowWriter
 from labeler.imagery.tiling import row_strips
 from labeler.masks.overlay import overlay_mask
 
-__all__ = ["MaskFiles", "check_stem", "preview_rgb", "write_class_mask", "write_image_masks"]
+__all__ = [
+    "MaskFiles",
+    "check_stem",
+    "preview_rgb",
+    "write_class_mask",
+    "write_image_masks",
+    "write_source_layer",
+]
 
 #: Suffix of the colour preview next to ``<stem>.png``.
 PREVIEW_SUFFIX = "_preview"
@@ -212,3 +223,36 @@ def write_image_masks(
             if previews is not None:
                 previews.write(preview_rgb(image[rows], part, schema=schema, opacity=opacity))
     return MaskFiles(mask_path, preview_path)
+
+
+def write_source_layer(path: str | os.PathLike[str], source) -> Path:
+    """Write a source layer (0 no label, 1 saved mask, 2 proposal) as an 8-bit PNG.
+
+    Parameters
+    ----------
+    path : path-like
+        Target file, written atomically strip by strip.
+    source : ndarray, shape (H, W), uint8, or a raster read by rows
+        The per-pixel source codes.
+
+    Returns
+    -------
+    Path
+
+    Raises
+    ------
+    ValueError
+        When a value is not 0, 1 or 2.
+    """
+    height, width = _check_raster(source, "source")
+    target = Path(path)
+    with PngRowWriter(target, height=height, width=width, channels=1) as out:
+        for w in row_strips(height, width):
+            part = np.asarray(source[w.row : w.row + w.height], np.uint8)
+            if part.size and int(part.max()) > 2:
+                raise ValueError(
+                    f"source rows {w.row}..{w.row + w.height}: expected codes 0, 1 or 2, got "
+                    f"{int(part.max())}"
+                )
+            out.write(part)
+    return target

@@ -411,6 +411,10 @@ def _table(header: Sequence[str], rows: Sequence[Sequence[str]], name_cols: int 
     return "\n".join(out)
 
 
+#: Column titles of the project's agreement metric.
+_METRIC_NAMES = {"kappa": "Cohen's kappa", "iou": "IoU"}
+
+
 def write_agreement_report(
     summary: AgreementSummary,
     out_dir: str | os.PathLike[str],
@@ -546,13 +550,22 @@ def write_agreement_report(
     entries = summary.least_agreed(least)
     kind = "tiles" if entries and isinstance(entries[0], TileFigures) else "images"
     parts.append(f"<h2>The {len(entries)} least agreed {kind}</h2>")
+    if kind == "tiles":
+        parts.append("<p>Tiles that two or more annotators labelled whole, compared over "
+                     "the tile itself.</p>")
+    # the project's metric first; kappa again only when the metric is another one
+    header = ["image", "tile", _METRIC_NAMES.get(summary.metric, summary.metric)]
+    if summary.metric != "kappa":
+        header.append("Cohen's kappa")
+    header += ["mean IoU", "pixels"]
     rows = []
     for e in entries:
         tile = e.tile if isinstance(e, TileFigures) else ""
-        rows.append([e.image, tile, _fmt(e.agreement), _fmt(e.kappa), _fmt(e.mean_iou),
-                     str(e.pixels_compared)])
-    parts.append(_table(["image", "tile", summary.metric, "kappa", "mean IoU", "pixels"],
-                        rows, name_cols=2))
+        row = [e.image, tile, _fmt(e.agreement)]
+        if summary.metric != "kappa":
+            row.append(_fmt(e.kappa))
+        rows.append([*row, _fmt(e.mean_iou), str(e.pixels_compared)])
+    parts.append(_table(header, rows, name_cols=2))
     for n, e in enumerate(entries, start=1):
         source = overlays.get(e.image)
         if source is None:

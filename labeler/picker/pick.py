@@ -24,8 +24,16 @@ from labeler.settings import STRATEGIES, UNCERTAINTY_MEASURES
 __all__ = ["STRATEGIES", "REASONS", "Pick", "pick_batch"]
 
 #: The reason strings of a :class:`Pick`, one per candidate.
-REASONS = ("uncertain", "rare class", "unlike labelled tiles", "annotators disagree")
-_UNCERTAIN, _RARE_CLASS, _UNLIKE_LABELLED, _DISAGREE = REASONS
+REASONS = (
+    "uncertain", "rare class", "unlike labelled tiles", "annotators disagree",
+    "unlike the other picks",
+)
+_UNCERTAIN, _RARE_CLASS, _UNLIKE_LABELLED, _DISAGREE, _UNLIKE_PICKS = REASONS
+
+
+def _unlike(lab_rows: np.ndarray) -> str:
+    """The diversity reason: labelled tiles to be unlike only when some exist."""
+    return _UNLIKE_LABELLED if lab_rows.size else _UNLIKE_PICKS
 
 #: Strategies that order by one tile uncertainty measure of the same name.
 _BY_MEASURE = ("entropy", "margin", "bald")
@@ -158,7 +166,9 @@ def pick_batch(
     lower pool row.
 
     Reasons (which cause dominates): ``"annotators disagree"`` for contested tiles;
-    ``"uncertain"`` for entropy, margin and bald; ``"unlike labelled tiles"`` for coreset.
+    ``"uncertain"`` for entropy, margin and bald; ``"unlike labelled tiles"`` for coreset
+    (``"unlike the other picks"`` while nothing is labelled: the distances are then to
+    the candidates' mean and the tiles chosen before).
     For mixed and random each factor is divided by its median over the unlabelled
     candidates (the uncertainty ``u``, the rarity weight ``rho``; for tiles of the
     mixed batch also the distance at pick time, divided by the median distance of the
@@ -299,7 +309,7 @@ def _order_coreset(
     rest = rest[_order_desc(run.final_dist[rest])]
     perm = np.concatenate([run.order, rest])
     score = np.concatenate([run.pick_dist, run.final_dist[rest]])
-    return unl[perm], score, [_UNLIKE_LABELLED] * n_u
+    return unl[perm], score, [_unlike(lab_rows)] * n_u
 
 
 def _order_random(unl: np.ndarray, u: np.ndarray, rho: np.ndarray, *, seed: int) -> _Order:
@@ -339,7 +349,7 @@ def _order_mixed(
     ref_dist = run.final_dist[ref] if ref.size else run.pick_dist
     d_ratio = _ratio(run.pick_dist, ref_dist)
     chosen_reasons = _dominant(
-        [u_ratio[chosen], r_ratio[chosen], d_ratio], [_UNCERTAIN, _RARE_CLASS, _UNLIKE_LABELLED]
+        [u_ratio[chosen], r_ratio[chosen], d_ratio], [_UNCERTAIN, _RARE_CLASS, _unlike(lab_rows)]
     )
     is_chosen = np.zeros(n_u, bool)
     is_chosen[chosen] = True

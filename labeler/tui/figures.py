@@ -114,7 +114,9 @@ def model_columns(schema: ClassSchema) -> tuple[str, ...]:
     return ("version", "kind", "made (UTC)", "tiles", *(f"{n} IoU" for n in schema.names), "mIoU")
 
 
-def model_cells(version: ModelVersionRecord, *, schema: ClassSchema) -> tuple[str, ...]:
+def model_cells(
+    version: ModelVersionRecord, *, schema: ClassSchema, label: str | None = None
+) -> tuple[str, ...]:
     """One row of the model table, in :func:`model_columns` order.
 
     Classes missing from ``val_iou`` (or ``None`` there: absent from the validation
@@ -126,6 +128,9 @@ def model_cells(version: ModelVersionRecord, *, schema: ClassSchema) -> tuple[st
         A model version (:func:`labeler.workflow.model_versions`).
     schema : ClassSchema
         The project's classes.
+    label : str or None
+        The version's short name (:func:`labeler.workflow.naming.model_labels`); its
+        stored name when None.
 
     Returns
     -------
@@ -140,7 +145,7 @@ def model_cells(version: ModelVersionRecord, *, schema: ClassSchema) -> tuple[st
             when = when.astimezone(UTC)
         made = when.strftime("%Y-%m-%d %H:%M")
     return (
-        version.name,
+        version.name if label is None else label,
         version.kind,
         made,
         str(version.n_train_tiles),

@@ -13,6 +13,7 @@ from textual.worker import get_current_worker
 import labeler.workflow as workflow
 from labeler.tui.figures import miou_series, model_cells, model_columns
 from labeler.tui.keys import HEADER_ICON, SUBSCREEN_KEYS, bindings
+from labeler.workflow.naming import model_details, model_labels
 
 __all__ = ["ModelScreen", "EFFORT_COLUMNS", "effort_cells"]
 
@@ -47,11 +48,13 @@ class ModelScreen(Screen):
         super().__init__()
         self.loads = 0
         self.series: list[float] = []
+        self.details: dict[str, str] = {}
 
     def compose(self) -> ComposeResult:
         yield Header(icon=HEADER_ICON)
         yield Label("Model versions, oldest first (validation IoU per class)", classes="title")
         yield DataTable(id="model-table", cursor_type="row", zebra_stripes=True)
+        yield Static("", id="model-details")
         yield Label("Validation mIoU over versions", classes="title")
         yield Sparkline([], id="miou-trend")
         yield Static("", id="miou-caption")
@@ -82,8 +85,13 @@ class ModelScreen(Screen):
         schema = self.app.project.settings.classes
         table = self.query_one("#model-table", DataTable)
         table.clear()
+        labels = model_labels(versions)
+        self.details = {
+            str(v.id): f"{labels[v.id]}: {model_details(v)} (stored as {v.name!r})"
+            for v in versions
+        }
         for v in versions:
-            table.add_row(*model_cells(v, schema=schema), key=str(v.id))
+            table.add_row(*model_cells(v, schema=schema, label=labels[v.id]), key=str(v.id))
         self.series = miou_series(versions)
         self.query_one("#miou-trend", Sparkline).data = self.series
         caption = self.query_one("#miou-caption", Static)
@@ -101,6 +109,17 @@ class ModelScreen(Screen):
         for e in effort:
             effort_table.add_row(*effort_cells(e), key=str(e.model_version_id))
         self.loads += 1
+
+    def on_data_table_row_highlighted(self, event: DataTable.RowHighlighted) -> None:
+        """Spell out the highlighted version under the table.
+
+        Parameters
+        ----------
+        event : DataTable.RowHighlighted
+            The row the cursor moved to.
+        """
+        key = event.row_key.value if event.row_key is not None else None
+        self.query_one("#model-details", Static).update(self.details.get(key, ""))
 
     def action_back(self) -> None:
         self.app.pop_screen()

@@ -18,14 +18,16 @@ from textual.worker import get_current_worker
 
 import labeler.workflow as workflow
 from labeler.metrics import format_iou
-from labeler.states import STATES
+from labeler.states import PARKED, STATES
 from labeler.tui.keys import HEADER_ICON, QUEUE_KEYS, bindings
+from labeler.tui.park_prompt import ParkPrompt
 from labeler.tui.preview import overlay
 from labeler.tui.rows import (
     NOBODY,
     QUEUE_COLUMNS,
     RowFilter,
     filter_rows,
+    fit_columns,
     preview_caption,
     queue_cells,
 )
@@ -43,6 +45,8 @@ class QueueScreen(Screen):
     def __init__(self) -> None:
         super().__init__()
         self.rows: list[QueueRow] = []
+        #: The columns shown now (those of QUEUE_COLUMNS that fit the table's width).
+        self.columns: tuple[str, ...] = tuple(QUEUE_COLUMNS)
         self.shown_rows: list[QueueRow] = []
         self.row_filter = RowFilter()
         self.long_work: str | None = None
@@ -86,8 +90,21 @@ class QueueScreen(Screen):
     def on_mount(self) -> None:
         table = self.query_one("#queue", DataTable)
         table.add_columns(*QUEUE_COLUMNS)
+        self.columns = tuple(QUEUE_COLUMNS)
         table.focus()
         self.reload()
+
+    def on_resize(self) -> None:
+        """Fit the columns to the new width."""
+        if self.loads:
+            self.call_after_refresh(self._refit)
+
+    def _refit(self) -> None:
+        table = self.query_one("#queue", DataTable)
+        cells = [queue_cells(r, schema=self.schema) for r in self.shown_rows]
+        keep = fit_columns(cells, width=table.size.width - 2)
+        if tuple(QUEUE_COLUMNS[k] for k in keep) != self.columns:
+            self._refill()
 
     def on_screen_resume(self) -> None:
         # back from the agreement or model screen: a reviewer may have settled tiles there
@@ -161,9 +178,17 @@ class QueueScreen(Screen):
         table = self.query_one("#queue", DataTable)
         keep = select if select is not None else self.selected_tile()
         self.shown_rows = filter_rows(self.rows, self.row_filter, schema=self.schema)
-        table.clear()
-        for r in self.shown_rows:
-            table.add_row(*queue_cells(r, schema=self.schema), key=str(r.tile_id))
+        cells = [queue_cells(r, schema=self.schema) for r in self.shown_rows]
+        shown = fit_columns(cells, width=table.size.width - 2)  # less the scroll bar
+        columns = tuple(QUEUE_COLUMNS[k] for k in shown)
+        if columns != self.columns:  # narrower or wider than before: other columns
+            table.clear(columns=True)
+            table.add_columns(*columns)
+            self.columns = columns
+        else:
+            table.clear()
+        for r, c in zip(self.shown_rows, cells, strict=True):
+            table.add_row(*(c[k] for k in shown), key=str(r.tile_id))
         ids = [r.tile_id for r in self.shown_rows]
         if keep in ids:
             table.move_cursor(row=ids.index(keep), animate=False)
@@ -320,29 +345,54 @@ class QueueScreen(Screen):
         except Exception as exc:  # noqa: BLE001
             self.app.call_from_thread(self._save_failed, tile_id, exc, f"accepting tile {tile_id}")
             return
+        try:  # accept moves on to the next tile this annotator may take
+            after = workflow.next_tile(self.project, who)
+        except Exception:  # noqa: BLE001 - nothing left (or unreadable): stay on the tile
+            after = tile_id
         self.app.call_from_thread(
             self._saved, tile_id, f"tile {tile_id}: proposal kept as {who}'s mask "
-            f"(version {rec.version}, {rec.state})"
+            f"(version {rec.version}, {rec.state})", select=after,
         )
 
     def action_park(self) -> None:
+        """Park the selected tile (asking for an optional reason), or bring a parked one back."""
         tile = self._tile_or_say()
-        if tile is not None and self._claim(tile):
-            self._park(tile)
+        if tile is None:
+            return
+        state = next((r.state for r in self.rows if r.tile_id == tile), None)
+        if state == PARKED:
+            if self._claim(tile):
+                self._park(tile, None, back=True)
+            return
+
+        def answered(reason: str | None) -> None:
+            if reason is not None and self._claim(tile):
+                self._park(tile, reason, back=False)
+
+        self.app.push_screen(ParkPrompt(tile), answered)
 
     @work(thread=True, group="saves", exit_on_error=False)
-    def _park(self, tile_id: int) -> None:
+    def _park(self, tile_id: int, reason: str | None, *, back: bool) -> None:
+        who = self.app.annotator
         try:
-            workflow.park_tile(self.project, tile_id, self.app.annotator)
+            if back:
+                state = workflow.unpark_tile(self.project, tile_id, who)
+            else:
+                workflow.park_tile(self.project, tile_id, who, reason=reason)
         except Exception as exc:  # noqa: BLE001
-            self.app.call_from_thread(self._save_failed, tile_id, exc, f"parking tile {tile_id}")
+            doing = f"{'un-parking' if back else 'parking'} tile {tile_id}"
+            self.app.call_from_thread(self._save_failed, tile_id, exc, doing)
             return
-        self.app.call_from_thread(self._saved, tile_id, f"tile {tile_id} parked")
+        if back:
+            message = f"tile {tile_id} is back in the queue ({state})"
+        else:
+            message = f"tile {tile_id} parked" + (f": {reason}" if reason else "")
+        self.app.call_from_thread(self._saved, tile_id, message)
 
-    def _saved(self, tile_id: int, message: str) -> None:
+    def _saved(self, tile_id: int, message: str, *, select: int | None = None) -> None:
         self._saving.discard(tile_id)
         self.app.tell(message)
-        self.reload(select=tile_id)
+        self.reload(select=tile_id if select is None else select)
 
     def _save_failed(self, tile_id: int, exc: BaseException, doing: str) -> None:
         self._saving.discard(tile_id)

@@ -26,6 +26,8 @@ __all__ = [
     "format_number",
     "format_who",
     "queue_cells",
+    "DROP_ORDER",
+    "fit_columns",
     "preview_caption",
 ]
 
@@ -41,6 +43,52 @@ QUEUE_COLUMNS = (
     "score",
     "reason",
 )
+
+#: Columns left out first when the table is too narrow; tile, state and reason always stay.
+DROP_ORDER = ("agreement", "predicted", "image", "who", "score", "rank")
+#: Columns of a table cell beyond its text (one space each side).
+CELL_PADDING = 2
+
+
+def fit_columns(
+    rows: Sequence[Sequence[str]], *, width: int, columns: Sequence[str] = QUEUE_COLUMNS
+) -> tuple[int, ...]:
+    """Which columns fit ``width`` terminal columns, dropping the least needed first.
+
+    A column needs its longest text (heading or cell) plus :data:`CELL_PADDING`. While
+    the total is wider than ``width``, the next column of :data:`DROP_ORDER` is left out;
+    the rest keep their order. Tile, state and reason always stay (the reason, last, is
+    cut at the edge when even they do not fit).
+
+    Parameters
+    ----------
+    rows : sequence of sequence of str
+        The cell texts of every row, in ``columns`` order.
+    width : int
+        Terminal columns the table may use; 0 or less keeps every column (not laid
+        out yet).
+    columns : sequence of str
+        The headings.
+
+    Returns
+    -------
+    tuple of int
+        Positions of the columns kept, ascending.
+    """
+    keep = list(range(len(columns)))
+    if width <= 0:
+        return tuple(keep)
+    need = [len(h) for h in columns]
+    for r in rows:
+        for k, text in enumerate(r):
+            need[k] = max(need[k], len(text))
+    for name in DROP_ORDER:
+        if sum(need[k] + CELL_PADDING for k in keep) <= width:
+            break
+        if name in columns:
+            keep.remove(list(columns).index(name))
+    return tuple(keep)
+
 
 #: Annotator filter value for tiles nobody holds or has saved.
 NOBODY = "(nobody yet)"

@@ -21,6 +21,8 @@ stage:
 ``exporting``             GeoJSON, PNG masks, manifest
 ``importing``             masks made elsewhere, saved tile by tile like any save
 ``views``                 read-only views for the edges (preview, places, lists)
+``naming``                short names of model versions, their details
+``reviewing``             who may settle a contested tile
 ``features``              encoder features and their cache (proposing, retraining)
 ``progress``              the ``progress(done, total, label)`` callback type
 ========================  ===========================================================
@@ -43,6 +45,7 @@ from labeler.workflow.annotating import (
     queue_rows,
     save_state,
     save_tile_mask,
+    unpark_tile,
     weak_label_tile_state,
 )
 from labeler.workflow.editing import (
@@ -92,6 +95,7 @@ __all__ = [
     "after_save",
     "next_tile",
     "park_tile",
+    "unpark_tile",
     "queue_rows",
     "save_state",
     "save_tile_mask",

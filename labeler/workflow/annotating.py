@@ -32,6 +32,7 @@ from labeler.states import (
     WEAK,
 )
 from labeler.store.records import AnnotationRecord
+from labeler.workflow.reviewing import check_reviewer
 
 __all__ = [
     "save_state",
@@ -39,6 +40,7 @@ __all__ = [
     "save_tile_mask",
     "accept_tile",
     "park_tile",
+    "unpark_tile",
     "after_save",
     "overlap_agreement",
     "QueueRow",
@@ -172,6 +174,8 @@ def save_tile_mask(
         When ``parent_version`` is stale; nothing is written.
     """
     store = project.store
+    if settling:
+        check_reviewer(project, tile_id, annotator)
     proposal = None
     if kind == KIND_FULL and not settling and proposal_id is not None:
         proposal = store.proposal(proposal_id).mask()
@@ -232,8 +236,9 @@ def accept_tile(
     Raises
     ------
     LabelerError
-        If the tile has no proposal yet (run ``labeler propose``) or is contested or
-        settled (a reviewer decides those).
+        If the tile has no proposal yet (run ``labeler propose``), is contested or
+        settled (a reviewer decides those), or ``annotator`` already kept this very
+        proposal (a second accept would save the same mask again).
     """
     store = project.store
     tile = store.tile(tile_id)
@@ -242,6 +247,12 @@ def accept_tile(
     prop = store.latest_proposal(tile_id)
     if prop is None:
         raise LabelerError(f"tile {tile_id} has no proposal yet; run 'labeler propose' first")
+    own = store.latest_annotation(tile_id, annotator=annotator, kind=KIND_FULL)
+    if own is not None and own.proposal_id == prop.id and own.state == ACCEPTED:
+        raise LabelerError(
+            f"tile {tile_id}: {annotator} already kept this proposal (version {own.version}); "
+            "nothing saved again"
+        )
     parent = store.lineage_head(tile_id, annotator)
     return save_tile_mask(
         project,
@@ -256,7 +267,9 @@ def accept_tile(
     )
 
 
-def park_tile(project: Project, tile_id: int, annotator: str) -> None:
+def park_tile(
+    project: Project, tile_id: int, annotator: str, *, reason: str | None = None
+) -> None:
     """Set a tile aside (``parked``); it returns to the queue when someone opens it.
 
     Parameters
@@ -267,13 +280,52 @@ def park_tile(project: Project, tile_id: int, annotator: str) -> None:
         The tile parked.
     annotator : str
         Who parks it (recorded in the event log).
+    reason : str, optional
+        Why, in the annotator's words (recorded in the event log).
 
     Raises
     ------
     labeler.errors.LabelerError
         If the life cycle does not allow parking the tile (e.g. a contested tile).
     """
-    project.store.set_state(tile_id, PARKED, annotator=annotator, reason="parked by annotator")
+    text = "parked by annotator" + (f": {reason.strip()}" if reason and reason.strip() else "")
+    project.store.set_state(tile_id, PARKED, annotator=annotator, reason=text)
+
+
+def unpark_tile(
+    project: Project, tile_id: int, annotator: str, *, reason: str | None = None
+) -> str:
+    """Put a parked tile back in the queue: ``proposed`` (or ``unseen`` without a proposal).
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+    tile_id : int
+        A parked tile.
+    annotator : str
+        Who brings it back (recorded in the event log).
+    reason : str, optional
+        Why, recorded in the event log.
+
+    Returns
+    -------
+    str
+        The tile's new state.
+
+    Raises
+    ------
+    labeler.errors.LabelerError
+        If the tile is not parked.
+    """
+    store = project.store
+    tile = store.tile(tile_id)
+    if tile.state != PARKED:
+        raise LabelerError(f"tile {tile_id} is {tile.state}, not parked; nothing to bring back")
+    state = PROPOSED if store.latest_proposal(tile_id) is not None else UNSEEN
+    text = "back from parked" + (f": {reason.strip()}" if reason and reason.strip() else "")
+    store.set_state(tile_id, state, annotator=annotator, reason=text)
+    return state
 
 
 def overlap_agreement(project: Project, tile_id: int) -> float | None:

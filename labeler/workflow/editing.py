@@ -27,6 +27,7 @@ from labeler.states import CONTESTED, SETTLED
 from labeler.store.records import DraftRecord
 from labeler.workflow.annotating import save_tile_mask
 from labeler.workflow.learning import TileRelearner, tile_relearner
+from labeler.workflow.reviewing import check_reviewer
 
 __all__ = ["StoreBackend", "EditStart", "begin_edit", "end_edit"]
 
@@ -289,6 +290,7 @@ def begin_edit(
             raise LabelerError(
                 f"tile {tile_id} is {tile.state}, not contested; only contested tiles are settled"
             )
+        check_reviewer(project, tile_id, annotator)
         savers = store.savers(tile_id)
         if len(savers) < 2:
             raise LabelerError(

@@ -9,20 +9,40 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
 from affine import Affine
 
 from labeler.classes import UNLABELLED, ClassSchema
 from labeler.errors import LabelerError
+from labeler.export.footprint import footprint_features
 from labeler.export.geojson import NotRFC7946Warning, TileInfo, image_features
 from labeler.export.geojson_stream import FeatureCollectionWriter
-from labeler.export.manifest import MANIFEST_NAME, manifest_row, write_manifest
-from labeler.export.pngmasks import write_image_masks
+from labeler.export.manifest import (
+    MANIFEST_NAME,
+    SOURCE_NONE,
+    SOURCE_PROPOSAL,
+    SOURCE_SAVED,
+    tile_rows,
+    write_manifest,
+)
+from labeler.export.pngmasks import write_image_masks, write_source_layer
 from labeler.fileio import check_output_folder, staged_folder
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import LazyRaster, StitchedMask, TileLayout
 from labeler.project import Project
 from labeler.settings import ExportSettings
-from labeler.states import ACCEPTED, AMENDED, IMPORTED, KIND_FULL, SETTLED, STATES
+from labeler.states import (
+    ACCEPTED,
+    AMENDED,
+    HELD,
+    IMPORTED,
+    KIND_FULL,
+    PARKED,
+    PROPOSED,
+    SETTLED,
+    STATES,
+    UNSEEN,
+)
 from labeler.store.records import ImageRecord
 from labeler.workflow.progress import Progress, no_progress
 
@@ -33,9 +53,12 @@ __all__ = [
     "ExportResult",
     "image_export_mask",
     "export_project",
+    "empty_export_hints",
 ]
 
 EXPORT_FORMATS = ("geojson", "masks", "all")
+#: Suffix of an image's source layer next to its mask (``<image>_source.png``).
+SOURCE_SUFFIX = "_source"
 #: Tile states whose saved masks are exported by default.
 DEFAULT_EXPORT_STATES = (ACCEPTED, AMENDED, IMPORTED, SETTLED)
 
@@ -46,11 +69,13 @@ class ImageExport:
 
     ``mask`` is a :class:`~labeler.imagery.tiling.StitchedMask` of shape (H, W), uint8,
     255 where no exported tile covers: it is stitched window by window as it is read
-    (``mask[r0:r1]``), so a big image's mask is never held whole.
+    (``mask[r0:r1]``), so a big image's mask is never held whole. ``source`` is the
+    source layer stitched the same way (0 no label, 1 a saved mask, 2 a model proposal).
     """
 
     image: ImageRecord
     mask: StitchedMask
+    source: StitchedMask
     windows: list
     tiles: list[TileInfo]
     filled_from_proposals: int
@@ -66,6 +91,7 @@ class ExportResult:
     masks: list[Path] = field(default_factory=list)
     manifest: Path | None = None
     features: int = 0
+    footprints: int = 0
     images: int = 0
     tiles_exported: int = 0
     tiles_from_proposals: int = 0
@@ -150,9 +176,16 @@ def image_export_mask(
                 filled += 1
     layout = TileLayout(windows, shape=image.shape)
     mask = StitchedMask(layout, lambda k: records[k].mask(), fill=UNLABELLED)
+    codes = [SOURCE_PROPOSAL if t.source == "proposal" else SOURCE_SAVED for t in infos]
+    source = StitchedMask(
+        layout,
+        lambda k: np.full((windows[k].height, windows[k].width), codes[k], np.uint8),
+        fill=SOURCE_NONE,
+    )
     return ImageExport(
         image=image,
         mask=mask,
+        source=source,
         windows=windows,
         tiles=infos,
         filled_from_proposals=filled,
@@ -168,7 +201,7 @@ def _write_image_geojson(
     pixel_coordinates: bool,
     schema: ClassSchema,
     settings: ExportSettings,
-) -> tuple[Path, int]:
+) -> tuple[Path, int, int]:
     """Write one image's GeoJSON file feature batch by batch, and the same into ``merged``.
 
     Parameters
@@ -190,7 +223,9 @@ def _write_image_geojson(
     path : Path
         The file written.
     count : int
-        Its features.
+        Its class features.
+    footprints : int
+        Its ``looked_at`` outlines of saved tiles.
     """
     image = ex.image
     georef = image.transform is not None and image.crs is not None
@@ -209,11 +244,22 @@ def _write_image_geojson(
             simplify_tolerance_px=settings.simplify_tolerance_px,
             min_area_px=settings.min_area_px,
         )
+    looked = footprint_features(
+        ex.windows,
+        ex.tiles,
+        image=image.name,
+        shape=image.shape,
+        transform=_transform(image),
+        crs=image.crs,
+        pixel_coordinates=pixel,
+    )
     with FeatureCollectionWriter(path, pixel_coordinates=pixel) as out:
+        out.write(looked)
+        merged.write(looked)
         for batch in made.batches():
             out.write(batch)
             merged.write(batch)
-    return path, out.count
+    return path, out.count - len(looked), len(looked)
 
 
 def export_project(
@@ -232,7 +278,11 @@ def export_project(
     Writes into ``out``: ``geojson/<image>.geojson`` per image and ``<project>.geojson``
     for the whole project (RFC 7946: WGS 84 longitude/latitude), and/or
     ``masks/<image>.png`` (single-channel class indices, 255 unlabelled) with
-    ``masks/<image>_preview.png`` and ``manifest.jsonl`` (one JSON object per image).
+    ``masks/<image>_preview.png``, ``masks/<image>_source.png`` when proposals filled
+    tiles (per pixel: 0 no label, 1 a saved mask, 2 a model proposal) and
+    ``manifest.jsonl`` (one JSON object per exported tile, with its train/val side:
+    :mod:`labeler.export.manifest`). The GeoJSON holds a ``looked_at`` outline of every
+    saved tile besides the class polygons (:mod:`labeler.export.footprint`).
 
     Parameters
     ----------
@@ -249,7 +299,8 @@ def export_project(
         Tile states whose saved masks are exported.
     proposals : bool
         Fill tiles without an exported mask with their newest proposal (marked
-        ``"source": "proposal"`` in the GeoJSON and the manifest).
+        ``"source": "proposal"`` in the GeoJSON and the manifest, and per pixel in the
+        source layer). Without it no proposal pixel is exported.
     pixel_coordinates : bool
         Allow images without georeferencing in GeoJSON, in pixel positions (such a
         file is NOT RFC 7946 GeoJSON).
@@ -363,7 +414,7 @@ def _write_export(
                             pixel_coordinates=pixel_coordinates,
                         )
                     )
-                path, count = _write_image_geojson(
+                path, count, looked = _write_image_geojson(
                     folder / "geojson" / f"{image.name}.geojson",
                     ex,
                     merged,
@@ -372,7 +423,7 @@ def _write_export(
                     settings=es,
                 )
                 result.geojson.append(path)
-                result = _add(result, features=count)
+                result = _add(result, features=count, footprints=looked)
             if do_masks:
                 with contextlib.ExitStack() as stack:
                     rgb = None
@@ -388,16 +439,25 @@ def _write_export(
                         opacity=project.settings.editor.opacity,
                     )
                 result.masks.append(Path(files.mask))
-                rows.append(
-                    manifest_row(
+                source_path = None
+                if ex.filled_from_proposals:
+                    source_path = write_source_layer(
+                        folder / "masks" / f"{image.name}{SOURCE_SUFFIX}.png", ex.source
+                    )
+                    result.masks.append(source_path)
+                rows.extend(
+                    tile_rows(
                         image_path=project.image_path(image),
                         mask_path=files.mask,
                         manifest_dir=folder,
                         mask=ex.mask,
+                        windows=ex.windows,
+                        tiles=ex.tiles,
                         image_sha256=image.sha256,
+                        source=None if source_path is None else ex.source,
+                        source_path=source_path,
                         schema=project.settings.classes,
-                        tile_states=ex.tile_states,
-                        filled_from_proposals=ex.filled_from_proposals,
+                        block_px=es.block_tiles * project.settings.tiles.size,
                         seed=es.seed,
                         val_share=es.val_share,
                     )
@@ -409,6 +469,37 @@ def _write_export(
         result = _replace(result, manifest=Path(path))
     progress(len(images), len(images), "done")
     return result
+
+
+def empty_export_hints(states: Sequence[str], *, proposals: bool) -> list[str]:
+    """What to try when an export wrote nothing, for the states and options asked.
+
+    Parameters
+    ----------
+    states : sequence of str
+        The ``--states`` asked for.
+    proposals : bool
+        Whether ``--proposals`` was given.
+
+    Returns
+    -------
+    list of str
+        One sentence each; empty when there is nothing to suggest.
+    """
+    unsaved = [s for s in states if s in (UNSEEN, PROPOSED, HELD, PARKED)]
+    hints = []
+    if unsaved and not proposals:
+        hints.append(
+            f"tiles in state {', '.join(unsaved)} have no saved mask, so they export nothing; "
+            "add --proposals to export their model proposals (marked as such), or save them "
+            "first (labeler queue, labeler edit)"
+        )
+    if not any(s in DEFAULT_EXPORT_STATES for s in states):
+        hints.append(
+            "saved masks are in the states " + ", ".join(DEFAULT_EXPORT_STATES)
+            + " (the default --states); `labeler status` shows how many tiles each state has"
+        )
+    return hints
 
 
 def _add(r: ExportResult, **inc: int) -> ExportResult:

@@ -10,6 +10,7 @@ from labeler.project import Project
 from labeler.workflow.effort import VersionEffort, effort_by_model
 from labeler.workflow.encoders import ENCODER_KIND, IMAGENET
 from labeler.workflow.features import head_encoder
+from labeler.workflow.naming import model_label
 
 __all__ = ["ProjectStatus", "project_status"]
 
@@ -113,7 +114,7 @@ def project_status(project: Project) -> ProjectStatus:
         by_image=per_image,
         by_annotator=store.annotator_counts(),
         model_versions=len(models),
-        latest_model=None if latest is None else latest.name,
+        latest_model=None if latest is None else model_label(latest, models),
         latest_miou=None if latest is None else latest.miou,
         proposing_head=heads[-1].name if heads else None,
         proposing_encoder=proposing_encoder,

@@ -23,6 +23,7 @@ from labeler.imagery.read import open_image
 from labeler.imagery.tiling import Window
 from labeler.project import Project
 from labeler.store.records import ModelVersionRecord
+from labeler.workflow.naming import model_labels
 
 __all__ = [
     "ModelVersionRecord",
@@ -147,7 +148,7 @@ def tile_view(project: Project, tile_id: int, *, annotator: str) -> TileView:
         )
     proposal = store.latest_proposal(tile_id)
     if proposal is not None:
-        names = {m.id: m.name for m in store.model_versions()}
+        names = model_labels(store.model_versions())
         return TileView(
             **place,
             mask=proposal.mask(),

@@ -60,8 +60,9 @@ def test_report_files_are_self_contained_and_complete(tmp_path):
     for s in srcs:
         with Image.open(io.BytesIO(base64.b64decode(s.split(",", 1)[1]))) as im:
             assert im.format == "PNG"
-    # one heat map (one pair), IoU bars, over time, and one strip per least agreed tile
-    assert len(least) == 8
+    # one heat map (one pair), IoU bars, over time, and one strip per least agreed tile;
+    # marek left rows 0-3 unlabelled, so the t0 tiles were not compared whole and are out
+    assert len(least) == 4 and {e.tile for e in least} == {"t1"}
     assert len(files.plots) == 1 + 2 + len(least) == len(srcs)
     for p in files.plots:
         with Image.open(p) as im:
@@ -72,6 +73,28 @@ def test_report_files_are_self_contained_and_complete(tmp_path):
     assert "marek / odile" in text
     # nothing half-written is left behind
     assert not [p for p in (tmp_path / "out").iterdir() if p.name.startswith(".")]
+
+
+def test_least_agreed_lists_whole_tiles_and_names_each_column_once(tmp_path):
+    summary, sources = build(n_plots=2)
+    # by hand: t0 spans rows 0-19, marek's rows 0-3 are unlabelled, so 16 x 24 = 384 of
+    # its 480 pixels are compared; t1 (rows 20-39) is compared whole
+    tiles = {(t.image, t.tile): t.pixels_compared for img in summary.images for t in img.tiles}
+    assert set(tiles.values()) == {384, 480}
+    assert {(e.image, e.tile) for e in summary.least_agreed(10)} == {
+        ("hollow-ash-0", "t1"), ("hollow-ash-1", "t1")
+    }
+    assert len(summary.least_agreed(10, whole_tiles=False)) == 4
+    files = rp.write_agreement_report(summary, tmp_path, schema=DEFAULT_SCHEMA,
+                                      overlays=sources)
+    text = files.html.read_text(encoding="utf-8")
+    head = text.split("least agreed tiles</h2>", 1)[1].split("</tr>", 1)[0]
+    assert "kappa kappa" not in " ".join(re.findall(r"<th[^>]*>([^<]*)</th>", head))
+    assert re.findall(r"<th[^>]*>([^<]*)</th>", head) == [
+        "image", "tile", "Cohen&#x27;s kappa", "mean IoU", "pixels"
+    ] or re.findall(r"<th[^>]*>([^<]*)</th>", head) == [
+        "image", "tile", "Cohen's kappa", "mean IoU", "pixels"
+    ]
 
 
 def test_overlay_strip_shows_each_annotator(tmp_path):

@@ -29,7 +29,10 @@ def test_strategy_names():
     assert STRATEGIES == SETTINGS_STRATEGIES == (
         "random", "entropy", "margin", "bald", "coreset", "mixed",
     )
-    assert REASONS == ("uncertain", "rare class", "unlike labelled tiles", "annotators disagree")
+    assert REASONS == (
+        "uncertain", "rare class", "unlike labelled tiles", "annotators disagree",
+        "unlike the other picks",
+    )
 
 
 def test_pick_batch_errors():
@@ -106,6 +109,12 @@ def test_coreset_strategy_against_loop():
     assert pick.positions[5:].tolist() == sorted(rest, key=lambda i: (-near[i], i))
     np.testing.assert_allclose(pick.scores[5:], [near[i] for i in pick.positions[5:]], atol=1e-5)
     assert set(pick.reasons) == {"unlike labelled tiles"}
+    # with nothing labelled there is no labelled tile to be unlike
+    cold = make_pool(np.random.default_rng(3), n, annotators=np.zeros(n, int))
+    for strategy in ("coreset", "mixed"):
+        reasons = set(pick_batch(cold, strategy=strategy, k=5).reasons)
+        assert "unlike labelled tiles" not in reasons, strategy
+    assert set(pick_batch(cold, strategy="coreset", k=5).reasons) == {"unlike the other picks"}
 
 
 def mixed_loop(pool, k, top_m):
@@ -135,7 +144,9 @@ def test_mixed_strategy_against_loop(n_labelled):
     order, weight = mixed_loop(pool, 4, 12)
     assert pick.positions.tolist() == order
     np.testing.assert_allclose(pick.scores, [weight[i] for i in order], atol=1e-12)
-    assert set(pick.reasons) <= set(REASONS[:3])
+    allowed = {"uncertain", "rare class"}
+    allowed.add("unlike labelled tiles" if n_labelled else "unlike the other picks")
+    assert set(pick.reasons) <= allowed
     # default top-M is max(3k, ceil(n/10)) = 12 here
     assert pick_batch(pool, k=4).positions.tolist() == order
 

@@ -10,7 +10,10 @@ from tests.tui.helpers import SIZE, idle, svg_text
 
 async def test_model_versions_and_trend(project, artefacts):
     store = project.store
-    store.add_model_version(kind="cold_start", name="cold-start")
+    store.add_model_version(
+        kind="cold_start", name="cold-start exg-exr 1.4 zero min24",
+        details={"exr_coefficient": 1.4, "threshold": "zero", "min_object_px": 24},
+    )
     figures = [
         ("head-1", {"soil": 0.91, "crop": 0.62, "weed": 0.21, "symptom": None}, 0.58),
         ("head-2", {"soil": 0.93, "crop": 0.71, "weed": 0.35, "symptom": 0.12}, 0.5275),
@@ -26,7 +29,17 @@ async def test_model_versions_and_trend(project, artefacts):
         screen = app.screen
         table = screen.query_one("#model-table", DataTable)
         rows = [[str(c) for c in table.get_row_at(i)] for i in range(table.row_count)]
-        assert [r[0] for r in rows] == ["cold-start", "head-1", "head-2", "head-3"]
+        # a short name in the table, the rule's settings under it for the highlighted row
+        assert [r[0] for r in rows] == ["colour rule", "head-1", "head-2", "head-3"]
+        assert str(screen.query_one("#model-details").render()) == (
+            "colour rule: vegetation colour index ExG - ExR (ExR weight 1.4), threshold zero, "
+            "objects from 24 px; no training (stored as 'cold-start exg-exr 1.4 zero min24')"
+        )
+        await pilot.press("down")
+        await idle(pilot)
+        assert str(screen.query_one("#model-details").render()).startswith(
+            "head-1: trained on 4 tiles"
+        )
         assert rows[0][4:] == ["-"] * 5
         assert rows[1][4:] == ["0.910", "0.620", "0.210", "-", "0.580"]
         assert rows[3][4:] == ["0.940", "0.780", "0.470", "0.290", "0.620"]

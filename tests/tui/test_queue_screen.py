@@ -3,9 +3,11 @@
 import numpy as np
 from textual.widgets import DataTable, Select
 
+import labeler.workflow as workflow
 from labeler.imagery.read import open_image
 from labeler.store import NewProposal
 from labeler.tui.app import QueueApp
+from labeler.tui.park_prompt import ParkPrompt
 from labeler.tui.preview import half_block_text, tile_picture
 from labeler.tui.rows import QUEUE_COLUMNS
 from labeler.tui.widgets import TilePreview, WorkBar
@@ -109,7 +111,7 @@ async def test_moving_the_cursor_updates_the_preview(project):
         assert f"tile {second}" in caption and "proposal of fake" in caption
 
 
-async def test_accept_from_the_preview_and_park(project):
+async def test_accept_moves_on_and_park_asks_why(project):
     fake_proposals(project)
     app = QueueApp(project, annotator="ana")
     async with app.run_test(size=SIZE) as pilot:
@@ -126,17 +128,40 @@ async def test_accept_from_the_preview_and_park(project):
         row = table.get_row(str(tile))
         assert str(row[QUEUE_COLUMNS.index("state")]) == "accepted"
         assert str(row[QUEUE_COLUMNS.index("who")]) == "ana"
-        assert app.screen.selected_tile() == tile
         assert any("proposal kept as ana's mask" in n.message for n in app.notices)
-        # park the next row
-        await pilot.press("down")
+        # accept moved on to the next tile ana may take
+        after = app.screen.selected_tile()
+        assert after != tile and after == workflow.next_tile(project, "ana")
+        # a second accept of the same proposal saves nothing
+        app.screen.select_tile(tile)
         await idle(pilot)
-        other = app.screen.selected_tile()
+        assert app.screen.selected_tile() == tile, (app.screen.columns, tile, after)
+        await pilot.press("a")
+        await idle(pilot)
+        assert len([a for a in project.store.annotations(kind=None) if a.tile_id == tile]) == 1
+        assert any("already kept this proposal" in n.message for n in app.notices), [n.message for n in app.notices]
+        # park the next row, with a reason typed into the box
+        app.screen.select_tile(after)
+        await idle(pilot)
         await pilot.press("p")
         await idle(pilot)
-        assert other != tile and project.store.tile(other).state == "parked"
-        row = table.get_row(str(other))
+        assert isinstance(app.screen, ParkPrompt)
+        await pilot.press(*"blurred", "enter")
+        await idle(pilot)
+        assert project.store.tile(after).state == "parked"
+        assert any(n.message == f"tile {after} parked: blurred" for n in app.notices)
+        row = app.screen.query_one("#queue", DataTable).get_row(str(after))
         assert str(row[QUEUE_COLUMNS.index("state")]) == "parked"
+        # p on a parked tile brings it back, asking nothing
+        await pilot.press("p")
+        await idle(pilot)
+        assert project.store.tile(after).state == "proposed"
+        # Esc in the box keeps the tile in the queue
+        await pilot.press("p")
+        await idle(pilot)
+        await pilot.press("escape")
+        await idle(pilot)
+        assert project.store.tile(after).state == "proposed"
 
 
 async def test_repick_updates_the_order(project):
@@ -264,3 +289,24 @@ async def test_retrain_key_renews_the_proposals_in_a_worker_and_the_preview_foll
         caption = str(screen.query_one("#preview-caption").render())
         assert "proposal of head-1" in caption
         assert preview.render().spans != before  # the new mask is drawn over the tile
+
+
+async def test_the_columns_fit_80_columns(project):
+    fake_proposals(project)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=(80, 24)) as pilot:
+        await idle(pilot)
+        screen = app.screen
+        table = screen.query_one("#queue", DataTable)
+        shown = [str(c.label) for c in table.columns.values()]
+        assert shown == list(screen.columns)
+        assert {"tile", "state", "reason"} <= set(shown) and len(shown) < len(QUEUE_COLUMNS)
+        # no column is cut: each is as wide as its widest text, and they fit the table
+        widths = [c.get_render_width(table) for c in table.columns.values()]
+        assert sum(widths) <= table.size.width
+        states = [str(table.get_row_at(i)[shown.index("state")]) for i in range(table.row_count)]
+        assert set(states) == {"proposed"}
+    wide = QueueApp(project, annotator="ana")
+    async with wide.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        assert len(wide.screen.columns) > len(shown)  # a wide terminal shows more

@@ -114,3 +114,18 @@ def test_preview_caption_says_which_mask_is_shown():
     assert preview_caption(TileView(**place, mask=None, shows="nothing")).endswith(
         "· no proposal yet"
     )
+
+
+def test_fit_columns_drops_the_least_needed_first():
+    from labeler.tui.rows import CELL_PADDING, DROP_ORDER, fit_columns
+
+    row = ("12", "345", "brackenlow-north", "contested", "ana bo", "crop 40% weed 3%",
+           "0.412", "17.07", "unlike labelled tiles")
+    # by hand: needs are max(heading, cell) + 2 = 6, 6, 18, 11, 8, 18, 11, 7, 23 = 108
+    assert fit_columns([row], width=108) == tuple(range(9))
+    assert fit_columns([row], width=107) == (0, 1, 2, 3, 4, 5, 7, 8)  # agreement goes
+    assert fit_columns([row], width=96) == (0, 1, 2, 3, 4, 7, 8)  # then predicted (97)
+    assert fit_columns([row], width=0) == tuple(range(9))  # not laid out yet
+    # the narrowest: tile, state and reason stay whatever the width
+    assert fit_columns([row], width=10) == (1, 3, 8)
+    assert DROP_ORDER[0] == "agreement" and CELL_PADDING == 2

@@ -23,9 +23,9 @@ def test_accept_keeps_proposal_as_accepted(project):
     rec = accept_tile(project, tid, "ines")
     assert rec.state == "accepted" and project.store.tile(tid).state == "accepted"
     np.testing.assert_array_equal(rec.mask(), project.store.latest_proposal(tid).mask())
-    # a second accept from the same stale parent would conflict; accept reads the head itself
-    again = accept_tile(project, tid, "ines")
-    assert again.version == rec.version + 1
+    # a second accept of the same proposal saves nothing (tests/workflow/test_parking.py)
+    with pytest.raises(LabelerError, match="already kept this proposal"):
+        accept_tile(project, tid, "ines")
 
 
 def test_save_state_accepted_or_amended(project):

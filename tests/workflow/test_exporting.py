@@ -49,6 +49,9 @@ def test_import_truth_export_and_round_trip(demo2, tmp_path):
     west, south, east, north = coll["bbox"]
     assert west < east and south < north and -180 <= west <= 180 and -90 <= south <= 90
     for f in coll["features"][:200]:
+        if f["properties"]["layer"] == "looked_at":
+            assert f["properties"]["state"] == "imported"
+            continue
         geom = shape(f["geometry"])
         polys = [geom] if geom.geom_type == "Polygon" else list(geom.geoms)
         for poly in polys:
@@ -60,7 +63,9 @@ def test_import_truth_export_and_round_trip(demo2, tmp_path):
             and f["properties"]["source"] == "annotation"
         )
     manifest = [json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()]
-    assert len(manifest) == 1 and manifest[0]["width"] == 1024 and manifest[0]["height"] == 768
+    assert len(manifest) == 20  # one row per tile (spatial blocks may trim val windows)
+    assert {tuple(r["image_size"]) for r in manifest} == {(768, 1024)}
+    assert {r["unlabelled_share"] for r in manifest} == {0.0}  # a full survey
     # import the exported GeoJSON back: the polygons cover every non-soil pixel (fill soil)
     exported_geojson = out / "geojson" / f"{name}.geojson"
     back = import_masks(project, [exported_geojson], annotator="roundtrip", fill="soil")
@@ -101,11 +106,16 @@ def test_proposals_fill_gaps(demo2, tmp_path, capsys):
     )
     assert main(["export", str(project.root), "--proposals", "--out", str(tmp_path / "o")]) == 0
     assert "filled from model proposals" in capsys.readouterr().out
-    row = json.loads((tmp_path / "o" / "manifest.jsonl").read_text().splitlines()[0])
-    assert row["filled_from_proposals"] == 20
+    rows = [json.loads(x) for x in (tmp_path / "o" / "manifest.jsonl").read_text().splitlines()]
+    assert len(rows) == 40 and {r["source"] for r in rows} == {"proposal"}
+    assert {r["proposal_share"] for r in rows} == {1.0}
+    source = np.asarray(Image.open(tmp_path / "o" / "masks" / f"{plots[0].stem}_source.png"))
+    assert (source == 2).all()  # every pixel is a proposal
     coll = json.loads((tmp_path / "o" / "geojson" / f"{plots[0].stem}.geojson").read_text())
-    assert {f["properties"]["source"] for f in coll["features"]} == {"proposal"}
-    assert {f["properties"]["model_version"] for f in coll["features"]} == {"test-fill"}
+    regions = [f for f in coll["features"] if f["properties"]["layer"] == "classes"]
+    assert {f["properties"]["source"] for f in regions} == {"proposal"}
+    assert {f["properties"]["model_version"] for f in regions} == {"test-fill"}
+    assert len(regions) == len(coll["features"])  # nobody looked: no looked_at outline
 
 
 def test_bad_imports_import_nothing(demo2, tmp_path):
