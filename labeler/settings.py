@@ -40,6 +40,13 @@ Sections and options (defaults in brackets):
     ``simplify_tolerance_px`` [0.5]; ``min_area_px`` [8]; ``val_share`` [0.2]; ``seed`` [0].
 ``[editor]``
     ``autosave_seconds`` [5]; ``opacity`` [0.45].
+``[cluster]``
+    ``address`` [""] a Dask scheduler (``tcp://host:8786``) that ``propose`` and ``pick``
+    send their work to (nothing: work here; ``--cluster`` overrides); ``connect_timeout``
+    [10] seconds to wait for the scheduler; ``worker_threads`` [0] torch threads per task
+    on a worker (0 = the worker machine's cores shared among its task threads);
+    ``worker_cache`` [""] feature-cache folder on each worker (nothing: a folder in the
+    worker's temporary directory).
 ``[classes]``
     optional table ``name = {index = i, colour = "#RRGGBB"}`` replacing the default schema
     of :mod:`labeler.classes`.
@@ -86,6 +93,7 @@ __all__ = [
     "AgreementSettings",
     "ExportSettings",
     "EditorSettings",
+    "ClusterSettings",
     "Settings",
     "STRATEGIES",
     "AUGMENT_MODES",
@@ -206,6 +214,15 @@ class EditorSettings(Checked):
     opacity: float = 0.45
 
 
+@dataclass(frozen=True)
+class ClusterSettings(Checked):
+    _section = "cluster"
+    address: str = ""
+    connect_timeout: float = 10.0
+    worker_threads: int = 0
+    worker_cache: str = ""
+
+
 #: Options no version reads any more, per section; a settings file may still hold them.
 RETIRED_OPTIONS = {
     "picker": ("vegetation_only",),
@@ -221,6 +238,7 @@ _SECTIONS = {
     "agreement": AgreementSettings,
     "export": ExportSettings,
     "editor": EditorSettings,
+    "cluster": ClusterSettings,
 }
 
 
@@ -241,6 +259,7 @@ class Settings:
     agreement: AgreementSettings = field(default_factory=AgreementSettings)
     export: ExportSettings = field(default_factory=ExportSettings)
     editor: EditorSettings = field(default_factory=EditorSettings)
+    cluster: ClusterSettings = field(default_factory=ClusterSettings)
     classes: ClassSchema = DEFAULT_SCHEMA
     origins: Mapping[str, str] = field(default_factory=dict, compare=False, repr=False)
 
@@ -508,6 +527,12 @@ seed = 0
 [editor]
 autosave_seconds = 5
 opacity = 0.45
+
+[cluster]
+# address = "tcp://scheduler.example:8786"   # default: work on this machine
+connect_timeout = 10      # seconds to wait for the scheduler
+worker_threads = 0        # torch threads per task on a worker (0: cores / task threads)
+# worker_cache = "/var/tmp/labeler-features"  # default: the worker's temporary folder
 
 # [classes]               # replaces the default schema when present
 # soil = { index = 0 }

@@ -77,7 +77,7 @@ INT_MAX = 2**31 - 1
 #: Allowed values of every numeric option (checked when the settings are made). Options
 #: not listed need only be finite numbers (whole numbers for counts).
 RANGES: dict[str, dict[str, Range]] = {
-    "tiles": {"size": Range(16, 16384), "overlap": Range(0), "max_image_px": Range(1)},
+    "tiles": {"size": Range(16, 16384), "overlap": Range(0), "max_image_px": Range(1, 2**40)},
     "cold_start": {"exr_coefficient": Range(0), "min_object_px": Range(0)},
     "model": {
         "mc_samples": Range(1, 1000),
@@ -103,6 +103,7 @@ RANGES: dict[str, dict[str, Range]] = {
         "seed": Range(0),
     },
     "editor": {"autosave_seconds": Range(0, low_open=True), "opacity": Range(0, 1)},
+    "cluster": {"connect_timeout": Range(0, 3600, low_open=True), "worker_threads": Range(0, 1024)},
 }
 
 
@@ -132,7 +133,8 @@ class Checked:
                 raise bad_value(
                     self._section, f.name, limits.describe(whole=whole) + " (finite)", value
                 )
-            if whole and (value != int(value) or abs(value) > INT_MAX):
+            bound = max(INT_MAX, limits.high or 0)  # a pixel count may pass INT_MAX
+            if whole and (value != int(value) or abs(value) > bound):
                 raise bad_value(self._section, f.name, limits.describe(whole=True), value)
             if value not in limits:
                 raise bad_value(self._section, f.name, limits.describe(whole=whole), value)
@@ -213,9 +215,10 @@ def coerce(where: str, value: object, target: type, *, limits: Range | None = No
         number = float(value)  # type: ignore[arg-type]
     except (TypeError, ValueError, OverflowError):
         raise bad_value(*where.split(".", 1), expected, value) from None
-    if not math.isfinite(number) or (isinstance(value, int) and abs(value) > INT_MAX):
+    bound = max(INT_MAX, (limits.high if limits else None) or 0)
+    if not math.isfinite(number) or (isinstance(value, int) and abs(value) > bound):
         raise bad_value(
-            *where.split(".", 1), f"{expected} (finite, at most {INT_MAX:,} in size)", value
+            *where.split(".", 1), f"{expected} (finite, at most {bound:,} in size)", value
         )
     if whole:
         if number != int(number):
