@@ -194,7 +194,9 @@ def _block_proposals(
     return items
 
 
-def propose(project: Project, *, progress: Progress = no_progress) -> ProposeResult:
+def propose(
+    project: Project, *, progress: Progress = no_progress, cluster: str | None = None
+) -> ProposeResult:
     """Propose masks for every tile whose proposal is older than the newest model.
 
     Tiles are proposed block by block (:data:`ROW_BLOCK_PX`): only one block's pixels,
@@ -208,6 +210,9 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
         An open project.
     progress : Progress
         Called as ``progress(done, total, label)`` over the tiles to propose.
+    cluster : str, optional
+        Address of a Dask scheduler: the same work is done by its workers
+        (:func:`labeler.workflow.cluster.propose_on_cluster`); None works here.
 
     Returns
     -------
@@ -221,6 +226,10 @@ def propose(project: Project, *, progress: Progress = no_progress) -> ProposeRes
         If the newest head was trained on another encoder version (retrain it) or its
         checkpoint is missing or unreadable.
     """
+    if cluster:  # the cluster path; Dask is imported there only
+        from labeler.workflow.cluster import propose_on_cluster
+
+        return propose_on_cluster(project, address=cluster, progress=progress)
     store = project.store
     settings = project.settings
     head_mv = store.latest_model_version(kind="head")
