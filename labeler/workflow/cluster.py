@@ -23,6 +23,7 @@ running chunk, which the scheduler gives to another worker.
 
 from __future__ import annotations
 
+import socket
 from collections.abc import Callable
 from dataclasses import replace
 from types import ModuleType
@@ -81,15 +82,32 @@ def connect(address: str, *, timeout: float):
         is malformed.
     """
     distributed = _distributed()
+    from distributed.comm.addressing import parse_address, parse_host_port
+
+    try:
+        scheme, location = parse_address(address)
+        host, port = parse_host_port(location, 8786) if scheme == "tcp" else ("", 0)
+        if scheme == "tcp" and not (host and 0 < port < 65536):
+            raise ValueError(address)
+    except ValueError:
+        raise LabelerError(
+            f"cluster {address!r}: not a scheduler address; expected tcp://HOST:PORT such as "
+            "tcp://10.0.0.5:8786 (--cluster or the cluster.address setting)"
+        ) from None
+    unreachable = LabelerError(
+        f"cluster {address!r}: no Dask scheduler answered within {timeout:g} s; start one "
+        "with 'dask scheduler' and workers with 'dask worker ADDRESS', check the address "
+        "(--cluster or cluster.address), or leave out --cluster to work on this machine"
+    )
+    if scheme == "tcp":  # fail fast, before Dask's own retries, when nothing listens
+        try:
+            socket.create_connection((host, port), timeout=timeout).close()
+        except OSError:
+            raise unreachable from None
     try:
         return distributed.Client(address, timeout=timeout, set_as_default=False)
-    except (OSError, TimeoutError, ValueError) as exc:
-        raise LabelerError(
-            f"cluster {address!r}: no Dask scheduler answered within {timeout:g} s "
-            f"({type(exc).__name__}); start one with 'dask scheduler' and workers with "
-            "'dask worker ADDRESS', check the address (--cluster or cluster.address), or "
-            "leave out --cluster to work on this machine"
-        ) from None
+    except (OSError, TimeoutError, ValueError):
+        raise unreachable from None
 
 
 def run_propose_chunk(chunk: ProposeChunk) -> ChunkResult:
@@ -255,6 +273,20 @@ def propose_on_cluster(
         If no scheduler answers, the head cannot be used, or a chunk fails on the
         cluster (after the other chunks' proposals were stored; a rerun does the rest).
     """
+    t = project.settings.cluster.connect_timeout if timeout is None else timeout
+    client = connect(address, timeout=t)  # first: an unreachable scheduler fails fast
+    try:
+        return _propose_with(
+            client, project, progress=progress, task=task, missing_only=missing_only
+        )
+    finally:
+        client.close()
+
+
+def _propose_with(
+    client, project: Project, *, progress: Progress, task, missing_only: bool
+) -> ProposeResult:
+    """:func:`propose_on_cluster` with a connected client."""
     head_mv, head_path, encoder_version = _head_and_version(project)
     mv = head_mv if head_mv is not None else _cold_start_version(project)
     chunks, up_to_date = _chunks(
@@ -269,35 +301,30 @@ def propose_on_cluster(
     failure: tuple[ProposeChunk, BaseException] | None = None
     if chunks:
         distributed = _distributed()
-        t = project.settings.cluster.connect_timeout if timeout is None else timeout
-        client = connect(address, timeout=t)
-        try:
-            progress(0, total, f"sending {len(chunks)} chunks")
-            futures = client.map(task, chunks, pure=False)
-            by_future = dict(zip(futures, chunks, strict=True))
-            del futures
-            finished = distributed.as_completed(list(by_future), loop=client.loop)
-            for batch in finished.batches():
-                items = []
-                for future in batch:
-                    chunk = by_future.pop(future)
-                    if future.status != "finished":
-                        if failure is None:
-                            failure = (chunk, _failure_of(future))
-                        continue
-                    result = future.result()
-                    items.extend(new_proposals(result.tiles))
-                    hits += result.cache_hits
-                    misses += result.cache_misses
-                    done += len(chunk.tiles)
-                if items:
-                    if mv is None:
-                        mv = _new_cold_start_version(project)
-                    project.store.add_proposals(mv.id, items)
-                    proposed += len(items)
-                progress(done, total, "proposed on the cluster")
-        finally:
-            client.close()
+        progress(0, total, f"sending {len(chunks)} chunks")
+        futures = client.map(task, chunks, pure=False)
+        by_future = dict(zip(futures, chunks, strict=True))
+        del futures
+        finished = distributed.as_completed(list(by_future), loop=client.loop)
+        for batch in finished.batches():
+            items = []
+            for future in batch:
+                chunk = by_future.pop(future)
+                if future.status != "finished":
+                    if failure is None:
+                        failure = (chunk, _failure_of(future))
+                    continue
+                result = future.result()
+                items.extend(new_proposals(result.tiles))
+                hits += result.cache_hits
+                misses += result.cache_misses
+                done += len(chunk.tiles)
+            if items:
+                if mv is None:
+                    mv = _new_cold_start_version(project)
+                project.store.add_proposals(mv.id, items)
+                proposed += len(items)
+            progress(done, total, "proposed on the cluster")
     if failure is not None:
         chunk, exc = failure
         why = str(exc) if isinstance(exc, LabelerError) else f"{type(exc).__name__}: {exc}"

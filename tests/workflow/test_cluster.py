@@ -24,7 +24,7 @@ from labeler.cli import main
 from labeler.errors import LabelerError
 from labeler.imagery.write import write_geotiff
 from labeler.project import init_project, open_project
-from labeler.workflow import add_images, propose
+from labeler.workflow import add_images, pick_tiles, propose
 
 distributed = pytest.importorskip(
     "distributed", reason="the cluster tests need the cluster extra: pip install 'labeler[cluster]'"
@@ -237,6 +237,22 @@ def test_a_failed_chunk_keeps_the_others_and_a_rerun_does_the_rest(
         project.close()
 
 
+def test_pick_on_the_cluster_embeds_the_tiles_without_a_proposal_first(
+    tmp_path, images, cluster, reference
+):
+    cold, _ = reference
+    project = make_project(tmp_path / "proj", images[:2], cache=tmp_path / "cache")
+    try:
+        propose(project)  # here, without a cluster
+        add_images(project, images[2:])  # six tiles without a proposal
+        result = pick_tiles(project, k=4, cluster=cluster)
+        assert result.without_proposal == 0 and len(result.items) == 18
+        assert result.strategy == "coreset"  # cold-start proposals carry no uncertainty
+        same_as(stored(project), cold)
+    finally:
+        project.close()
+
+
 def free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
@@ -255,6 +271,8 @@ def test_an_unreachable_scheduler_is_one_clear_line(tmp_path, images, capsys, mo
     assert "dask scheduler" in err
     with open_project(tmp_path / "proj") as project:
         assert project.store.latest_proposals() == {}
+        with pytest.raises(LabelerError, match=r"cluster 'nonsense::x': not a scheduler address"):
+            propose(project, cluster="nonsense::x")
 
 
 def test_without_a_cluster_dask_is_never_imported(tmp_path, images):
