@@ -141,12 +141,12 @@ def _head_and_version(project: Project) -> tuple[ModelVersionRecord | None, str 
     The same checks as the local ``propose``: the checkpoint loads and was trained on the
     installed encoder.
     """
-    from labeler.workflow.features import encoder_and_cache
+    from labeler.model.encoder import encoder_version
 
-    encoder, _ = encoder_and_cache(project)
+    version = encoder_version()  # the workers load the encoder, this machine need not
     head_mv = project.store.latest_model_version(kind="head")
     if head_mv is None:
-        return None, None, encoder.version
+        return None, None, version
     from labeler.model.checkpoint import load_checkpoint
 
     path = project.resolve(head_mv.checkpoint or "", what=f"checkpoint of model {head_mv.name}")
@@ -156,12 +156,12 @@ def _head_and_version(project: Project) -> tuple[ModelVersionRecord | None, str 
         raise LabelerError(
             f"{path}: cannot load the model {head_mv.name} ({exc}); run 'labeler retrain'"
         ) from None
-    if meta.encoder_version != encoder.version:
+    if meta.encoder_version != version:
         raise LabelerError(
             f"model {head_mv.name} was trained on encoder {meta.encoder_version}, the installed "
-            f"encoder is {encoder.version}; run 'labeler retrain'"
+            f"encoder is {version}; run 'labeler retrain'"
         )
-    return head_mv, str(path.resolve()), encoder.version
+    return head_mv, str(path.resolve()), version
 
 
 def _chunks(

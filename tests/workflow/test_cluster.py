@@ -102,12 +102,13 @@ def add_tiny_head(project) -> None:
     import torch
 
     from labeler.model.checkpoint import save_checkpoint
-    from labeler.model.encoder import load_encoder
+    from labeler.model.encoder import encoder_version, load_encoder
     from labeler.model.head import HeadConfig, ProposalHead
 
     torch.manual_seed(5)
     head = ProposalHead(HeadConfig(width=8, refine_channels=4)).eval()
     version = load_encoder().version
+    assert encoder_version() == version  # what the client sends without loading the encoder
     save_checkpoint(
         project.root / "models" / "tiny.pt", head, encoder_version=version, val_iou=[0.5] * 4
     )
