@@ -15,15 +15,16 @@ for a 256-pixel tile, 24 KB), the 320-float embedding and the tile's scalars. Pi
 and features never travel: each worker reads the image windows from the shared image
 root and keeps its own feature cache (``cluster.worker_cache``).
 
-This machine alone writes to the store: the results are written in batches, one
-transaction per batch of finished chunks, as they arrive, so an interrupted run keeps
-what finished and a rerun proposes only the rest. A worker that dies loses only its
+This machine alone writes to the store: the results are written in batches as they
+arrive (one transaction per :data:`WRITE_BATCH_TILES` tiles or :data:`WRITE_BATCH_SECONDS`),
+so an interrupted run keeps what was written and a rerun proposes only the rest. A worker that dies loses only its
 running chunk, which the scheduler gives to another worker.
 """
 
 from __future__ import annotations
 
 import socket
+import time
 from collections.abc import Callable
 from dataclasses import replace
 from types import ModuleType
@@ -42,6 +43,11 @@ from labeler.workflow.proposing import (
 )
 
 __all__ = ["connect", "propose_on_cluster", "embed_on_cluster", "run_propose_chunk"]
+
+#: Finished tiles are written to the store in one transaction once this many wait...
+WRITE_BATCH_TILES = 2048
+#: ... or once the first of them has waited this many seconds.
+WRITE_BATCH_SECONDS = 10.0
 
 #: What a user runs to get the cluster extra.
 INSTALL_HINT = "pip install 'labeler[cluster]'"
@@ -221,6 +227,40 @@ def _chunks(
     return chunks, up_to_date
 
 
+class _Batches:
+    """Finished proposals waiting to be written, one transaction per batch.
+
+    A batch is written when it holds :data:`WRITE_BATCH_TILES` tiles or its first tile
+    waited :data:`WRITE_BATCH_SECONDS`: each write reads the project's tile list, so
+    writes of one chunk each would cost more than the work on a large project, while
+    an interrupted run still loses at most one batch.
+    """
+
+    def __init__(self, project: Project, model_version: ModelVersionRecord | None) -> None:
+        self.project = project
+        self.model_version = model_version
+        self.pending: list = []
+        self.since = time.monotonic()
+        self.written = 0
+
+    def add(self, items: list) -> None:
+        if not self.pending:
+            self.since = time.monotonic()
+        self.pending.extend(items)
+        waited = time.monotonic() - self.since
+        if len(self.pending) >= WRITE_BATCH_TILES or waited >= WRITE_BATCH_SECONDS:
+            self.flush()
+
+    def flush(self) -> None:
+        if not self.pending:
+            return
+        if self.model_version is None:  # the cold start is named by its first proposals
+            self.model_version = _new_cold_start_version(self.project)
+        self.project.store.add_proposals(self.model_version.id, self.pending)
+        self.written += len(self.pending)
+        self.pending = []
+
+
 def _failure_of(future) -> BaseException:
     """Why a future did not finish."""
     if future.status == "error":
@@ -306,25 +346,26 @@ def _propose_with(
         by_future = dict(zip(futures, chunks, strict=True))
         del futures
         finished = distributed.as_completed(list(by_future), loop=client.loop)
-        for batch in finished.batches():
-            items = []
-            for future in batch:
-                chunk = by_future.pop(future)
-                if future.status != "finished":
-                    if failure is None:
-                        failure = (chunk, _failure_of(future))
-                    continue
-                result = future.result()
-                items.extend(new_proposals(result.tiles))
-                hits += result.cache_hits
-                misses += result.cache_misses
-                done += len(chunk.tiles)
-            if items:
-                if mv is None:
-                    mv = _new_cold_start_version(project)
-                project.store.add_proposals(mv.id, items)
-                proposed += len(items)
-            progress(done, total, "proposed on the cluster")
+        batches = _Batches(project, mv)
+        try:
+            for batch in finished.batches():
+                for future in batch:
+                    chunk = by_future.pop(future)
+                    if future.status != "finished":
+                        if failure is None:
+                            failure = (chunk, _failure_of(future))
+                        continue
+                    result = future.result()
+                    batches.add(new_proposals(result.tiles))
+                    hits += result.cache_hits
+                    misses += result.cache_misses
+                    done += len(chunk.tiles)
+                progress(done, total, "proposed on the cluster")
+        except KeyboardInterrupt:
+            batches.flush()  # keep what finished; the transaction keeps a write whole
+            raise
+        batches.flush()
+        mv, proposed = batches.model_version, batches.written
     if failure is not None:
         chunk, exc = failure
         why = str(exc) if isinstance(exc, LabelerError) else f"{type(exc).__name__}: {exc}"

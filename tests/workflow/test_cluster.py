@@ -24,12 +24,14 @@ from labeler.cli import main
 from labeler.errors import LabelerError
 from labeler.imagery.write import write_geotiff
 from labeler.project import init_project, open_project
+from labeler.store import NewProposal
 from labeler.workflow import add_images, pick_tiles, propose
 
 distributed = pytest.importorskip(
     "distributed", reason="the cluster tests need the cluster extra: pip install 'labeler[cluster]'"
 )
 
+import labeler.workflow.cluster as cluster_module  # noqa: E402
 from labeler.workflow.cluster import propose_on_cluster, run_propose_chunk  # noqa: E402
 
 IMAGES = ("north-strip", "mill-corner", "long-acre")
@@ -160,17 +162,23 @@ def same_as(got: dict, want: dict) -> None:
 
 
 def test_cold_start_and_head_on_the_cluster_equal_the_local_path(
-    tmp_path, images, cluster, reference
+    tmp_path, images, cluster, reference, monkeypatch
 ):
     cold, headed = reference
     project = make_project(tmp_path / "proj", images, cache=tmp_path / "cache")
+    monkeypatch.setattr(cluster_module, "WRITE_BATCH_TILES", 1)  # write each chunk on arrival
     try:
         seen = []
-        result = propose(project, cluster=cluster, progress=lambda d, t, s: seen.append((d, t)))
+
+        def progress(done, total, label):
+            seen.append((done, total, len(project.store.latest_proposals())))
+
+        result = propose(project, cluster=cluster, progress=progress)
         assert (result.mode, result.proposed, result.up_to_date) == ("cold_start", 18, 0)
         assert result.cache_misses == 18
-        assert seen[-1] == (18, 18) and all(t == 18 for _, t in seen)
-        assert [d for d, _ in seen] == sorted(d for d, _ in seen)
+        assert seen[-1] == (18, 18, 18) and all(t == 18 for _, t, _ in seen)
+        assert [d for d, _, _ in seen] == sorted(d for d, _, _ in seen)
+        assert all(stored_now == d for d, _, stored_now in seen)  # stored as they arrive
         same_as(stored(project), cold)
         assert all(v[1] is None and v[3] is None for v in cold.values())  # no uncertainty
 
@@ -293,3 +301,21 @@ def test_without_a_cluster_dask_is_never_imported(tmp_path, images):
     )
     assert run.returncode == 0, run.stderr
     assert "dask modules: []" in run.stdout
+
+
+def test_finished_tiles_are_written_in_batches(project, monkeypatch):
+    monkeypatch.setattr(cluster_module, "WRITE_BATCH_TILES", 4)
+    monkeypatch.setattr(cluster_module, "WRITE_BATCH_SECONDS", 3600.0)
+    tiles = project.store.tiles()
+    items = [NewProposal(t.id, np.zeros(t.shape, np.uint8)) for t in tiles]
+    batches = cluster_module._Batches(project, None)
+    batches.add(items[:3])
+    assert project.store.latest_proposals() == {} and batches.model_version is None
+    batches.add(items[3:5])  # five waiting: one transaction
+    assert len(project.store.latest_proposals()) == 5 and batches.written == 5
+    batches.add(items[5:])
+    assert len(project.store.latest_proposals()) == 5
+    batches.flush()
+    assert len(project.store.latest_proposals()) == 6 and batches.written == 6
+    assert batches.model_version.kind == "cold_start"
+    assert {t.state for t in project.store.tiles()} == {"proposed"}
