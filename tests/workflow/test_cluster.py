@@ -73,7 +73,7 @@ def cluster():
         yield local.scheduler_address
 
 
-def make_project(root: Path, images: list[Path], *, cache: Path):
+def make_project(root: Path, images: list[Path], *, cache: Path, worker_threads: int = 1):
     """A project of the three images with 64-pixel tiles and 2 MC-dropout passes."""
     init_project(root).close()
     cache.mkdir(parents=True, exist_ok=True)
@@ -87,7 +87,7 @@ def make_project(root: Path, images: list[Path], *, cache: Path):
             mc_samples = 2
             threads = 1
             [cluster]
-            worker_threads = 1
+            worker_threads = {worker_threads}
             worker_cache = "{cache.as_posix()}"
             connect_timeout = 60
             """
@@ -250,7 +250,10 @@ def test_pick_on_the_cluster_embeds_the_tiles_without_a_proposal_first(
     tmp_path, images, cluster, reference
 ):
     cold, _ = reference
-    project = make_project(tmp_path / "proj", images[:2], cache=tmp_path / "cache")
+    # worker_threads 0: each worker shares its machine's cores among its task threads
+    project = make_project(
+        tmp_path / "proj", images[:2], cache=tmp_path / "cache", worker_threads=0
+    )
     try:
         propose(project)  # here, without a cluster
         add_images(project, images[2:])  # six tiles without a proposal
