@@ -193,7 +193,8 @@ def propose_chunk(chunk: ProposeChunk) -> ChunkResult:
     -------
     ChunkResult
         One :class:`ProposedTile` per tile, in order; the same masks and figures the
-        local ``propose`` makes for these tiles.
+        local ``propose`` makes for these tiles with the same number of torch threads
+        (with another number the sums run in another order: equal to float rounding).
 
     Raises
     ------
