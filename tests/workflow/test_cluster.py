@@ -332,3 +332,11 @@ def test_finished_tiles_are_written_in_batches(project, monkeypatch):
     assert len(project.store.latest_proposals()) == 6 and batches.written == 6
     assert batches.model_version.kind == "cold_start"
     assert {t.state for t in project.store.tiles()} == {"proposed"}
+
+
+def test_without_the_cluster_extra_the_fix_is_named(monkeypatch):
+    monkeypatch.setitem(sys.modules, "distributed", None)  # import distributed fails
+    with pytest.raises(
+        LabelerError, match=r"--cluster needs Dask.*pip install 'labeler\[cluster\]'"
+    ):
+        cluster_module.connect("tcp://127.0.0.1:8786", timeout=1)
