@@ -51,6 +51,13 @@ Sections and options (defaults in brackets):
     ``lease_minutes`` [30] a hold lapses after this long without a heartbeat from its
     editor (by the database's clock); ``heartbeat_seconds`` [60] how often an open
     editor renews its hold.
+``[cluster]``
+    ``address`` [""] a Dask scheduler (``tcp://host:8786``) that ``propose`` and ``pick``
+    send their work to (nothing: work here; ``--cluster`` overrides); ``connect_timeout``
+    [10] seconds to wait for the scheduler; ``worker_threads`` [0] torch threads per task
+    on a worker (0 = the worker machine's cores shared among its task threads);
+    ``worker_cache`` [""] feature-cache folder on each worker (nothing: a folder in the
+    worker's temporary directory).
 ``[classes]``
     optional table ``name = {index = i, colour = "#RRGGBB"}`` replacing the default schema
     of :mod:`labeler.classes`.
@@ -97,6 +104,7 @@ __all__ = [
     "AgreementSettings",
     "ExportSettings",
     "EditorSettings",
+    "ClusterSettings",
     "Settings",
     "STRATEGIES",
     "AUGMENT_MODES",
@@ -232,6 +240,15 @@ class EditorSettings(Checked):
     opacity: float = 0.45
 
 
+@dataclass(frozen=True)
+class ClusterSettings(Checked):
+    _section = "cluster"
+    address: str = ""
+    connect_timeout: float = 10.0
+    worker_threads: int = 0
+    worker_cache: str = ""
+
+
 #: Options no version reads any more, per section; a settings file may still hold them.
 RETIRED_OPTIONS = {
     "picker": ("vegetation_only",),
@@ -248,6 +265,7 @@ _SECTIONS = {
     "export": ExportSettings,
     "editor": EditorSettings,
     "holds": HoldSettings,
+    "cluster": ClusterSettings,
 }
 
 
@@ -269,6 +287,7 @@ class Settings:
     export: ExportSettings = field(default_factory=ExportSettings)
     editor: EditorSettings = field(default_factory=EditorSettings)
     holds: HoldSettings = field(default_factory=HoldSettings)
+    cluster: ClusterSettings = field(default_factory=ClusterSettings)
     classes: ClassSchema = DEFAULT_SCHEMA
     origins: Mapping[str, str] = field(default_factory=dict, compare=False, repr=False)
 
@@ -543,6 +562,12 @@ opacity = 0.45
 [holds]
 lease_minutes = 30        # a hold lapses after this long without a sign from its editor
 heartbeat_seconds = 60    # how often an open editor renews its hold
+
+[cluster]
+# address = "tcp://scheduler.example:8786"   # default: work on this machine
+connect_timeout = 10      # seconds to wait for the scheduler
+worker_threads = 0        # torch threads per task on a worker (0: cores / task threads)
+# worker_cache = "/var/tmp/labeler-features"  # default: the worker's temporary folder
 
 # [classes]               # replaces the default schema when present
 # soil = { index = 0 }

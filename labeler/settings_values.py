@@ -87,7 +87,7 @@ def int_cap(where: str) -> int:
 #: Allowed values of every numeric option (checked when the settings are made). Options
 #: not listed need only be finite numbers (whole numbers for counts).
 RANGES: dict[str, dict[str, Range]] = {
-    "tiles": {"size": Range(16, 16384), "overlap": Range(0), "max_image_px": Range(1)},
+    "tiles": {"size": Range(16, 16384), "overlap": Range(0), "max_image_px": Range(1, 2**40)},
     "cold_start": {"exr_coefficient": Range(0), "min_object_px": Range(0)},
     "model": {
         "mc_samples": Range(1, 1000),
@@ -118,6 +118,7 @@ RANGES: dict[str, dict[str, Range]] = {
         "lease_minutes": Range(0, low_open=True),
         "heartbeat_seconds": Range(0, low_open=True),
     },
+    "cluster": {"connect_timeout": Range(0, 3600, low_open=True), "worker_threads": Range(0, 1024)},
 }
 
 

@@ -167,6 +167,7 @@ def build_parser() -> argparse.ArgumentParser:
         "start: vegetation on a row is crop, between rows weed. " + EPILOG,
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
+    _cluster_option(p)
     p.set_defaults(func=cmd_propose)
 
     p = sub.add_parser(
@@ -251,6 +252,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument(
         "--seed", type=int, default=None, help="seed for the random strategy (default: the setting)"
     )
+    _cluster_option(p)
     p.set_defaults(func=cmd_pick)
 
     p = sub.add_parser(
@@ -410,3 +412,15 @@ def _positive_int(text: str) -> int:
     if value < 1:
         raise argparse.ArgumentTypeError(f"expected at least 1, got {value}")
     return value
+
+
+def _cluster_option(p: argparse.ArgumentParser) -> None:
+    """``--cluster ADDRESS``: send the work to the workers of a Dask scheduler."""
+    p.add_argument(
+        "--cluster",
+        metavar="ADDRESS",
+        default=None,
+        help="send the work to the workers of a running Dask scheduler, e.g. "
+        "tcp://10.0.0.5:8786 (default: the cluster.address setting; none: work here); "
+        "needs pip install 'labeler[cluster]'",
+    )

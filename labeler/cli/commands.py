@@ -323,12 +323,24 @@ def cmd_demo(args) -> int:
     return 0
 
 
+def _cluster_address(args, project) -> str | None:
+    """``--cluster``, else the ``cluster.address`` setting; None to work here."""
+    return getattr(args, "cluster", None) or project.settings.cluster.address or None
+
+
 def cmd_pick(args) -> int:
     from labeler.project import open_project
     from labeler.workflow import pick_tiles
 
     with open_project(args.dir) as project, _Bar("picking") as bar:
-        result = pick_tiles(project, strategy=args.strategy, k=args.k, seed=args.seed, progress=bar)
+        result = pick_tiles(
+            project,
+            strategy=args.strategy,
+            k=args.k,
+            seed=args.seed,
+            progress=bar,
+            cluster=_cluster_address(args, project),
+        )
     if result.note:
         print(f"note: {result.note}")
     print(
@@ -501,7 +513,7 @@ def cmd_propose(args) -> int:
     from labeler.workflow.views import model_versions
 
     with open_project(args.dir) as project, _Bar("proposing") as bar:
-        result = propose(project, progress=bar)
+        result = propose(project, progress=bar, cluster=_cluster_address(args, project))
         label = model_label(result.model_version, model_versions(project))
     how = (
         "cold start (vegetation index and crop rows)"

@@ -48,6 +48,7 @@ __all__ = [
     "StageSpec",
     "Lite0Encoder",
     "load_encoder",
+    "encoder_version",
     "fold_batchnorm",
     "to_input",
     "encode_tiles",
@@ -335,7 +336,7 @@ def load_encoder(
         read_state_dict(file), model.state_dict(), key_map=source_key_map(model.expand_ratios)
     )
     model.load_state_dict(state, strict=True)
-    model.version = f"lite0-{weights_digest(file)[:12]}-{_CODE_REVISION}"
+    model.version = encoder_version(file)
     if fold:
         model = fold_batchnorm(model)
     if channels_last:
@@ -344,6 +345,22 @@ def load_encoder(
         model = model.to(torch.bfloat16)
         model.version += "-bf16"
     return model.freeze()
+
+
+def encoder_version(path: str | os.PathLike[str] | None = None) -> str:
+    """The ``version`` :func:`load_encoder` gives (float32), without building the encoder.
+
+    Parameters
+    ----------
+    path : path-like, optional
+        Weights file; default the packaged one.
+
+    Returns
+    -------
+    str
+        ``"lite0-<first 12 hex digits of the weights' SHA-256>-<code revision>"``.
+    """
+    return f"lite0-{weights_digest(weights_path() if path is None else path)[:12]}-{_CODE_REVISION}"
 
 
 def _fold_one(unit: ConvBN) -> None:

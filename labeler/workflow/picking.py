@@ -86,6 +86,7 @@ def pick_tiles(
     k: int | None = None,
     seed: int | None = None,
     progress: Progress = no_progress,
+    cluster: str | None = None,
 ) -> PickResult:
     """Pick: put every proposed tile in queue order and write the order to the store.
 
@@ -102,6 +103,9 @@ def pick_tiles(
         Seed for ``random`` (default: the setting).
     progress : Progress
         Called as ``progress(done, total, label)``.
+    cluster : str, optional
+        Address of a Dask scheduler: tiles without an embedding get one there first
+        (:func:`labeler.workflow.cluster.embed_on_cluster`), so the whole pool is scored.
 
     Returns
     -------
@@ -113,6 +117,10 @@ def pick_tiles(
     LabelerError
         If no tile has a proposal with an embedding yet (run ``labeler propose``).
     """
+    if cluster:  # the encoder pass on the cluster; Dask is imported there only
+        from labeler.workflow.cluster import embed_on_cluster
+
+        embed_on_cluster(project, address=cluster, progress=progress)
     ps = project.settings.picker
     strategy = ps.strategy if strategy is None else strategy
     k = ps.k if k is None else k

@@ -209,7 +209,11 @@ def _block_proposals(
 
 
 def propose(
-    project: Project, *, progress: Progress = no_progress, only_open: bool = False
+    project: Project,
+    *,
+    progress: Progress = no_progress,
+    only_open: bool = False,
+    cluster: str | None = None,
 ) -> ProposeResult:
     """Propose masks for every tile whose proposal is older than the newest model.
 
@@ -228,6 +232,9 @@ def propose(
         Renew only the tiles without a saved full mask that nobody holds (checked again
         when each block's proposals are written, so a tile opened meanwhile is left
         alone); the others keep their proposals and count as ``left_alone``.
+    cluster : str, optional
+        Address of a Dask scheduler: the same work is done by its workers
+        (:func:`labeler.workflow.cluster.propose_on_cluster`); None works here.
 
     Returns
     -------
@@ -241,6 +248,10 @@ def propose(
         If the newest head was trained on another encoder version (retrain it) or its
         checkpoint is missing or unreadable.
     """
+    if cluster:  # the cluster path; Dask is imported there only
+        from labeler.workflow.cluster import propose_on_cluster
+
+        return propose_on_cluster(project, address=cluster, progress=progress)
     store = project.store
     settings = project.settings
     head_mv = store.latest_model_version(kind="head")
