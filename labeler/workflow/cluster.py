@@ -153,15 +153,9 @@ def _head_and_version(project: Project) -> tuple[ModelVersionRecord | None, str 
     head_mv = project.store.latest_model_version(kind="head")
     if head_mv is None:
         return None, None, version
-    from labeler.model.checkpoint import load_checkpoint
+    from labeler.workflow.features import read_checkpoint
 
-    path = project.resolve(head_mv.checkpoint or "", what=f"checkpoint of model {head_mv.name}")
-    try:
-        _, meta = load_checkpoint(path)
-    except (OSError, ValueError, RuntimeError) as exc:
-        raise LabelerError(
-            f"{path}: cannot load the model {head_mv.name} ({exc}); run 'labeler retrain'"
-        ) from None
+    _, meta, path = read_checkpoint(project, head_mv)
     if meta.encoder_version != version:
         raise LabelerError(
             f"model {head_mv.name} was trained on encoder {meta.encoder_version}, the installed "

@@ -28,6 +28,7 @@ if TYPE_CHECKING:  # the model room is imported only when a function here is cal
 
 __all__ = [
     "tile_key",
+    "read_checkpoint",
     "encoder_and_cache",
     "head_encoder",
     "tile_features",
@@ -162,6 +163,41 @@ def tile_features(
     )
 
 
+def read_checkpoint(project: Project, model: ModelVersionRecord):
+    """Load the checkpoint of a head model version, with the one message when it fails.
+
+    Parameters
+    ----------
+    project : Project
+        An open project.
+    model : ModelVersionRecord
+        A model version of kind ``"head"``.
+
+    Returns
+    -------
+    head : labeler.model.head.ProposalHead
+    meta : labeler.model.checkpoint.CheckpointMeta
+        What was saved with it (encoder version, tuned stages, ...).
+    path : Path
+        The checkpoint file.
+
+    Raises
+    ------
+    LabelerError
+        If the checkpoint is missing or unreadable (the message says to retrain).
+    """
+    from labeler.model.checkpoint import load_checkpoint
+
+    path = project.resolve(model.checkpoint or "", what=f"checkpoint of model {model.name}")
+    try:
+        head, meta = load_checkpoint(path)
+    except (OSError, ValueError, RuntimeError) as exc:
+        raise LabelerError(
+            f"{path}: cannot load the model {model.name} ({exc}); run 'labeler retrain'"
+        ) from None
+    return head, meta, path
+
+
 def load_head(project: Project, model: ModelVersionRecord, encoder):
     """The head of a model version and the encoder stages it was fine-tuned with.
 
@@ -188,12 +224,10 @@ def load_head(project: Project, model: ModelVersionRecord, encoder):
         encoder version than the installed encoder (or a tuned version of it); the
         message says to retrain.
     """
-    from labeler.model.checkpoint import load_checkpoint
     from labeler.model.tail import tail_from_state
 
-    path = project.resolve(model.checkpoint or "", what=f"checkpoint of model {model.name}")
+    head, meta, path = read_checkpoint(project, model)
     try:
-        head, meta = load_checkpoint(path)
         tail = tail_from_state(encoder, meta.encoder_tail) if meta.encoder_tail else None
     except (OSError, ValueError, RuntimeError) as exc:
         raise LabelerError(

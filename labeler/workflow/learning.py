@@ -18,7 +18,7 @@ from labeler.errors import LabelerError
 from labeler.imagery.read import open_image
 from labeler.project import Project
 from labeler.store.records import ModelVersionRecord
-from labeler.workflow.features import encoder_and_cache, tile_features
+from labeler.workflow.features import encoder_and_cache, read_checkpoint, tile_features
 
 __all__ = ["newest_head", "TileRelearner", "tile_relearner"]
 
@@ -47,15 +47,7 @@ def newest_head(project: Project, *, encoder_version: str):
     mv: ModelVersionRecord | None = project.store.latest_model_version(kind="head")
     if mv is None:
         return None
-    from labeler.model.checkpoint import load_checkpoint
-
-    path = project.resolve(mv.checkpoint or "", what=f"checkpoint of model {mv.name}")
-    try:
-        head, meta = load_checkpoint(path)
-    except (OSError, ValueError, RuntimeError) as exc:
-        raise LabelerError(
-            f"{path}: cannot load the model {mv.name} ({exc}); run 'labeler retrain'"
-        ) from None
+    head, meta, _ = read_checkpoint(project, mv)
     if meta.encoder_version != encoder_version:
         raise LabelerError(
             f"model {mv.name} was trained on encoder {meta.encoder_version}, the installed "

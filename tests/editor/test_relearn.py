@@ -64,8 +64,9 @@ def test_the_relearn_key_after_a_scribble_does_the_same_and_keeps_hand_edits(edi
     state.scribble(STROKE)
     assert (state.mask[second] == WEED).mean() < 0.5  # a scribble alone changes no mask
     state.active_class = 1
+    before = state.mask.copy()
     state.paint([(5.0, 55.0), (5.0, 60.0)])  # a hand edit: crop painted on soil
-    painted = (state.mask == 1) & soil
+    painted = (state.mask == 1) & (before != 1) & soil  # the pixels the stroke changed
     assert painted.sum() > 0
     assert state.relearn()
     assert state.actions == 3

@@ -97,10 +97,13 @@ def test_proposals_only_when_asked_and_marked_per_pixel(project, tmp_path):
         assert r["proposal_share"] == round(share, 6) and share > 0
 
 
-def test_a_round_trip_gives_back_full_tiles(project, tmp_path):
+def test_a_round_trip_gives_back_full_tiles(project, tmp_path, monkeypatch):
     tiles = _save_two(project)
     out = tmp_path / "o"
     export_project(project, out, formats="geojson")
+    # the import goes into a second, unrelated project: its own SQLite file, whatever
+    # database the first one lives in (a database holds one project)
+    monkeypatch.delenv("LABELER_STORE_URL", raising=False)
     fresh = init_project(tmp_path / "again")
     fresh.close()
     fresh = open_project(tmp_path / "again")
