@@ -8,10 +8,11 @@ The step budget therefore grows sub-linearly: with ``n`` training tiles,
     steps(n) = round(STEP_BASE * n ** STEP_POWER)
 
 (clipped to at least :data:`MIN_STEPS`), and training stops at the budget even when the
-passes (``model.epochs``) and early stopping would let it run on. The constants were
-chosen by measurement on this project's quality benchmark (demo plots, peanut photos,
-soybean leaves; see ``benchmarks/proposal_quality.py``): common practice for the form,
-no source for the values.
+passes (``model.epochs``) and early stopping would let it run on. The form is common
+practice, no source; the values are a first choice, not yet settled by measurement: on
+the demo plots with 12 labelled tiles (253 steps) the proposals' mIoU was 0.652-0.657
+against 0.729 with the earlier epoch-based training, and 2.5 times the budget gave 0.699
+(``benchmarks/proposal_quality.py``, ``benchmarks/retrain_speed.py``; README).
 
 Validation after every epoch scores a fixed, seeded sample of at most
 :data:`VALIDATION_TILES` held-out tiles, so that a large label set does not spend its
