@@ -24,7 +24,10 @@ from __future__ import annotations
 
 import os
 import re
+import threading
 import warnings
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
@@ -104,6 +107,27 @@ def parse_exif_datetime(
     return when
 
 
+_SIZE_LIMIT_LOCK = threading.Lock()
+
+
+@contextmanager
+def _no_size_limit() -> Iterator[None]:
+    """Open images of any size while reading their tags (no pixel is decoded here).
+
+    Pillow refuses to open an image above twice ``Image.MAX_IMAGE_PIXELS`` (a
+    decompression-bomb guard), although only its tags are read: an orthomosaic of
+    20000 x 20000 pixels would be refused. The size is checked where pixels are decoded
+    (:mod:`labeler.imagery.read`, ``tiles.max_image_px``).
+    """
+    with _SIZE_LIMIT_LOCK:
+        saved = Image.MAX_IMAGE_PIXELS
+        Image.MAX_IMAGE_PIXELS = None
+        try:
+            yield
+        finally:
+            Image.MAX_IMAGE_PIXELS = saved
+
+
 def read_capture_time(path: str | os.PathLike[str]) -> CaptureTime | None:
     """The capture time an image's tags give, or None when they give none.
 
@@ -124,7 +148,7 @@ def read_capture_time(path: str | os.PathLike[str]) -> CaptureTime | None:
     p = Path(path)
     sniff_format(p)  # names the file when it is missing, empty or not an image
     try:
-        with warnings.catch_warnings():
+        with warnings.catch_warnings(), _no_size_limit():
             # Pillow warns about damaged tag blocks and reads what it can; a damaged
             # date is then absent (None) rather than an error
             warnings.simplefilter("ignore", UserWarning)

@@ -247,6 +247,8 @@ def _add_one(
         for k, w in enumerate(windows):
             reader.read(w)
             progress(n, total, f"{src.name}: checked tile {k + 1}/{len(windows)}")
+    # the date before anything is stored: an unreadable tag block leaves no half-added image
+    when, source = (captured, "given") if captured is not None else _tag_date(src)
     # the name is claimed until the image is in the store: no other add takes it, and
     # what a killed add leaves is found by the claim (labeler.imagery.intake)
     name, claimed = reserve_image_name(project.images_dir, _safe_name(src.stem), taken=known)
@@ -280,7 +282,6 @@ def _add_one(
                 copied.remove()
             raise
     known.add(name)
-    when, source = (captured, "given") if captured is not None else _tag_date(src)
     if when is not None:
         set_capture_date(project, record.id, when, source=source)
     return AddResult(src, "added", name, tiles=len(windows), captured=when, date_source=source)

@@ -77,6 +77,21 @@ def test_geotiff_date_time_tag_written_by_gdal(tmp_path):
     assert read_capture_time(path) == CaptureTime(datetime(2023, 9, 1, 7, 45), "DateTime")
 
 
+def test_an_image_above_pillows_size_guard_still_gives_its_tags(tmp_path, monkeypatch):
+    # Pillow refuses to open an image above 2 x MAX_IMAGE_PIXELS (a decompression-bomb
+    # guard); a 20000 x 20000 orthomosaic is above it. Only tags are read here, so the
+    # guard is lifted while they are, and put back after.
+    exif = Image.Exif()
+    exif[DATETIME] = "2025:05:02 11:00:00"
+    path = tmp_path / "ortho.tif"
+    small_image().save(path, exif=exif)
+    monkeypatch.setattr(Image, "MAX_IMAGE_PIXELS", 16)  # 8 x 8 = 64 > 2 x 16
+    with pytest.raises(Image.DecompressionBombError):
+        Image.open(path)
+    assert read_capture_time(path) == CaptureTime(datetime(2025, 5, 2, 11, 0), "DateTime")
+    assert Image.MAX_IMAGE_PIXELS == 16
+
+
 def test_no_tags_gives_none(tmp_path):
     path = tmp_path / "bare.png"
     small_image().save(path)
