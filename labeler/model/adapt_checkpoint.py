@@ -21,6 +21,7 @@ import torch
 
 # the generic atomic write; it moves to labeler.fileio with the architecture work
 from labeler.fileio import atomic_write_bytes
+from labeler.model.weights import read_tagged_file
 
 __all__ = ["ADAPT_FORMAT", "AdaptCheckpoint", "save_adapt_checkpoint", "load_adapt_checkpoint"]
 
@@ -96,25 +97,14 @@ def load_adapt_checkpoint(path: str | os.PathLike[str]) -> AdaptCheckpoint:
         checkpoint, or is of another format version; the message names the file.
     """
     p = Path(path)
-    try:
-        obj = torch.load(p, map_location="cpu", weights_only=True)
-    except FileNotFoundError:
-        raise ValueError(f"{p}: no such adaptation checkpoint") from None
-    except Exception as exc:  # UnpicklingError, RuntimeError, EOFError, ...
-        first = str(exc).splitlines()[0] if str(exc) else ""
-        raise ValueError(
-            f"{p}: refused, not a plain-data adaptation checkpoint ({type(exc).__name__}: "
-            f"{first}); delete it to start the adaptation afresh"
-        ) from None
-    if not isinstance(obj, dict) or obj.get("format") != ADAPT_FORMAT:
-        raise ValueError(
-            f"{p}: not a labeler adaptation checkpoint (no format tag {ADAPT_FORMAT!r})"
-        )
-    if obj.get("format_version") != _FORMAT_VERSION:
-        raise ValueError(
-            f"{p}: adaptation checkpoint format {obj.get('format_version')!r}, this labeler "
-            f"reads {_FORMAT_VERSION}; delete it to start the adaptation afresh"
-        )
+    obj = read_tagged_file(
+        p,
+        what="adaptation checkpoint",
+        kind="adaptation checkpoint",
+        format_tag=ADAPT_FORMAT,
+        format_version=_FORMAT_VERSION,
+        fix="delete it to start the adaptation afresh",
+    )
     try:
         return AdaptCheckpoint(
             step=int(obj["step"]),

@@ -27,6 +27,7 @@ import torch
 
 from labeler.fileio import atomic_write_bytes
 from labeler.model.encoder import Lite0Encoder, fold_batchnorm, load_encoder
+from labeler.model.weights import read_tagged_file
 
 __all__ = [
     "ENCODER_FORMAT",
@@ -147,23 +148,15 @@ def load_encoder_weights(path: str | os.PathLike[str]) -> EncoderWeights:
         file or of another format version; the message names the file.
     """
     p = Path(path)
-    try:
-        obj = torch.load(p, map_location="cpu", weights_only=True)
-    except FileNotFoundError:
-        raise ValueError(f"{p}: no such encoder weights file") from None
-    except Exception as exc:  # UnpicklingError, RuntimeError, EOFError, ...
-        first = str(exc).splitlines()[0] if str(exc) else ""
-        raise ValueError(
-            f"{p}: refused, not a plain-data encoder weights file ({type(exc).__name__}: "
-            f"{first}); run 'labeler adapt' again to write a new one"
-        ) from None
-    if not isinstance(obj, dict) or obj.get("format") != ENCODER_FORMAT:
-        raise ValueError(f"{p}: not a labeler encoder file (no format tag {ENCODER_FORMAT!r})")
-    if obj.get("format_version") != _FORMAT_VERSION:
-        raise ValueError(
-            f"{p}: encoder file format {obj.get('format_version')!r}, this labeler reads "
-            f"{_FORMAT_VERSION}; run 'labeler adapt' again"
-        )
+    obj = read_tagged_file(
+        p,
+        what="encoder weights file",
+        kind="encoder file",
+        format_tag=ENCODER_FORMAT,
+        format_version=_FORMAT_VERSION,
+        fix="run 'labeler adapt' again to write a new one",
+        version_fix="run 'labeler adapt' again",
+    )
     try:
         return EncoderWeights(
             version=str(obj["version"]),

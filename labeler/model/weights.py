@@ -25,6 +25,7 @@ __all__ = [
     "weights_path",
     "weights_digest",
     "read_state_dict",
+    "read_tagged_file",
     "source_key_map",
     "map_state_dict",
     "WeightsMismatchError",
@@ -113,6 +114,64 @@ def read_state_dict(path: str | os.PathLike[str] | None = None) -> dict[str, tor
     if not isinstance(obj, Mapping) or not all(isinstance(v, torch.Tensor) for v in obj.values()):
         raise ValueError(f"{p}: expected a state dict (names -> tensors), got {type(obj).__name__}")
     return dict(obj)
+
+
+def read_tagged_file(
+    path: str | os.PathLike[str],
+    *,
+    what: str,
+    kind: str,
+    format_tag: str,
+    format_version: int,
+    fix: str,
+    version_fix: str | None = None,
+) -> dict:
+    """Load a labeler file of plain data (``weights_only=True``) and check its format tags.
+
+    Parameters
+    ----------
+    path : path-like
+        The file.
+    what : str
+        How messages name a file that is missing or refused (e.g. "encoder weights file").
+    kind : str
+        How messages name a file of the wrong format (e.g. "encoder file").
+    format_tag, format_version : str, int
+        The ``"format"`` and ``"format_version"`` entries the file must hold.
+    fix : str
+        What to do, appended to the refusal message.
+    version_fix : str, optional
+        What to do about another format version (default ``fix``).
+
+    Returns
+    -------
+    dict
+        The file's content.
+
+    Raises
+    ------
+    ValueError
+        If the file is missing, holds anything but plain data, carries another format tag
+        or another format version; the message names the file.
+    """
+    p = Path(path)
+    try:
+        obj = torch.load(p, map_location="cpu", weights_only=True)
+    except FileNotFoundError:
+        raise ValueError(f"{p}: no such {what}") from None
+    except Exception as exc:  # UnpicklingError, RuntimeError, EOFError, ...
+        first = str(exc).splitlines()[0] if str(exc) else ""
+        raise ValueError(
+            f"{p}: refused, not a plain-data {what} ({type(exc).__name__}: {first}); {fix}"
+        ) from None
+    if not isinstance(obj, dict) or obj.get("format") != format_tag:
+        raise ValueError(f"{p}: not a labeler {kind} (no format tag {format_tag!r})")
+    if obj.get("format_version") != format_version:
+        raise ValueError(
+            f"{p}: {kind} format {obj.get('format_version')!r}, this labeler reads "
+            f"{format_version}; {fix if version_fix is None else version_fix}"
+        )
+    return obj
 
 
 def _conv_bn(src_conv: str, src_bn: str, dst: str) -> dict[str, str]:
