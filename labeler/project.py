@@ -30,7 +30,7 @@ from labeler.fileio import atomic_write_text, sha256_file
 from labeler.imagery.intake import remove_leftovers
 from labeler.settings import SETTINGS_FILE, Settings, default_settings_text, load_settings
 from labeler.store import Store
-from labeler.store.records import ImageRecord
+from labeler.store.records import ImageRecord, ModelVersionRecord
 from labeler.store.team import TEAM_SECTIONS, read_team_settings
 
 __all__ = [
@@ -218,6 +218,112 @@ class Project:
         except (OSError, ValueError):
             return {}
         return data if isinstance(data, dict) else {}
+
+    # -- model versions' weights -----------------------------------------------------
+    def model_weights(self, version: ModelVersionRecord) -> bytes:
+        """The weights of a model version, as the database keeps them.
+
+        A version made before the database kept weights (schema version 2) has only its
+        file in ``models/`` of the machine that made it; when this machine has that
+        file, it is read into the database here (once, for the whole team).
+
+        Parameters
+        ----------
+        version : ModelVersionRecord
+            A head or adapted encoder version.
+
+        Returns
+        -------
+        bytes
+            The weights file's bytes.
+
+        Raises
+        ------
+        LabelerError
+            If the database keeps no weights for the version and this machine does not
+            have its file (the message names the machine-side fix).
+        """
+        data = self.store.model_weights(version.id)
+        if data is not None:
+            return data
+        path = self.resolve(version.checkpoint or "", what=f"weights of model {version.name}")
+        if not version.checkpoint or not path.is_file():
+            raise LabelerError(
+                f"model {version.name}: its weights are not in the project's database and "
+                f"this machine has no file {version.checkpoint or '(none recorded)'}; run "
+                "'labeler upgrade DIR' in the folder of the machine that made it, or retrain "
+                "('labeler retrain')"
+            )
+        data = path.read_bytes()
+        if not self.read_only:
+            self.store.put_model_weights(version.id, data)
+        return data
+
+    def model_file(self, version: ModelVersionRecord, *, data: bytes | None = None) -> Path:
+        """A file on this machine holding the weights of a model version.
+
+        For readers that need a path (cluster workers, the encoder loader): the copy in
+        ``models/`` named by the weights' SHA-256, written from the database the first
+        time it is needed (:func:`labeler.model.checkpoint.keep_weights_file`).
+
+        Parameters
+        ----------
+        version : ModelVersionRecord
+        data : bytes, optional
+            The weights when the caller has read them already.
+
+        Returns
+        -------
+        Path
+            ``models/<kind>-<sha256[:12]>.pt`` (the file of a version made before the
+            database kept weights is that file itself).
+
+        Raises
+        ------
+        LabelerError
+            As :meth:`model_weights`.
+        """
+        from labeler.model.checkpoint import keep_weights_file
+
+        if version.weights_sha256 is not None and data is None:
+            known = self.models_dir / f"{version.kind}-{version.weights_sha256[:12]}.pt"
+            if known.is_file():
+                return known
+        if version.weights_sha256 is None and version.checkpoint:
+            own = self.resolve(version.checkpoint, what=f"weights of model {version.name}")
+            if own.is_file():  # made before the database kept weights, on this machine
+                return own
+        if data is None:
+            data = self.model_weights(version)
+        try:
+            return keep_weights_file(
+                self.models_dir, version.kind, data, sha256=version.weights_sha256
+            )
+        except OSError as exc:
+            raise LabelerError(
+                f"{self.models_dir}: cannot keep a copy of the weights of model "
+                f"{version.name} ({exc.strerror or exc}); check that you may write there"
+            ) from None
+
+    def read_in_model_files(self) -> list[str]:
+        """Read into the database every model file of this folder it does not keep yet.
+
+        Run by ``labeler upgrade``: versions made before the database kept weights are
+        files in ``models/`` of the machine that made them.
+
+        Returns
+        -------
+        list of str
+            Names of the versions whose weights were read in.
+        """
+        done = []
+        for version in self.store.model_versions():
+            if version.weights_sha256 is not None or not version.checkpoint:
+                continue
+            path = self.resolve(version.checkpoint, what=f"weights of model {version.name}")
+            if path.is_file() and self.store.put_model_weights(version.id, path.read_bytes()):
+                done.append(version.name)
+        return done
 
     @property
     def database_name(self) -> str:

@@ -139,11 +139,16 @@ def cmd_release(args) -> int:
 
 
 def cmd_upgrade(args) -> int:
-    from labeler.project import upgrade_project
+    from labeler.project import open_project, upgrade_project
 
     before, after, backup = upgrade_project(args.dir)
+    with open_project(args.dir) as project:  # this machine's model files, read in once
+        read_in = project.read_in_model_files()
+    if read_in:
+        print(f"{args.dir}: model weights read into the database: {', '.join(read_in)}")
     if before == after:
-        print(f"{args.dir}: the database is at schema version {after}; nothing to do")
+        if not read_in:
+            print(f"{args.dir}: the database is at schema version {after}; nothing to do")
         return 0
     print(f"{args.dir}: database upgraded from schema version {before} to {after}")
     if backup is not None:

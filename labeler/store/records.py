@@ -275,6 +275,11 @@ class ModelVersionRecord:
     miou: float | None
     details: dict | None
     created_at: datetime
+    #: 1, 2, 3 ... among the versions of its kind, given by the database
+    number: int | None = None
+    #: SHA-256 of the weights kept in the database (None: none kept, e.g. a rule, or a
+    #: version of schema version 2 whose file is still to be read in)
+    weights_sha256: str | None = None
 
 
 @dataclass(frozen=True)
