@@ -27,7 +27,7 @@ from pathlib import Path
 from labeler.classes import ClassSchema
 from labeler.errors import InputError, LabelerError, StoreError
 from labeler.fileio import atomic_write_text, sha256_file
-from labeler.imagery.intake import remove_leftovers
+from labeler.imagery.intake import ROOT_PREFIX, remove_leftovers, root_image_path
 from labeler.settings import SETTINGS_FILE, Settings, default_settings_text, load_settings
 from labeler.store import Store
 from labeler.store.records import ImageRecord, ModelVersionRecord
@@ -160,44 +160,92 @@ class Project:
             )
         return full
 
-    def image_path(self, image: ImageRecord) -> Path:
-        """Where the image's pixels are; an image added in place is checked first.
+    @property
+    def image_root(self) -> Path | None:
+        """The team's shared image folder as this machine reaches it (None: not set).
 
-        An image added in place (``labeler add --in-place``) stays where it was, so it
-        may be changed or replaced after it was added. Before its pixels are used, its
-        SHA-256 is compared with the one it was added with; the result is remembered by
-        the file's size, modification time and inode (in ``cache/``), so an unchanged
-        file is hashed once.
+        The ``store.image_root`` setting; a relative path is relative to the project.
+        """
+        value = self.settings.store.image_root
+        if not value:
+            return None
+        root = Path(value).expanduser()
+        return root if root.is_absolute() else self.root / root
+
+    def image_path(self, image: ImageRecord) -> Path:
+        """Where the image's pixels are on this machine, checked by SHA-256 first.
+
+        An image kept under the team's image root (``store.image_root``) is found there
+        by its SHA-256 on every machine; so is an image copied into another machine's
+        ``images/`` folder, when this machine lacks that file and the root holds it. An
+        image added in place (``labeler add --in-place``) stays where it was.
+
+        A file under the root or in place may be changed or replaced after it was
+        added, so before its pixels are used it is checked: a size other than the one
+        added is a change found at once; otherwise the SHA-256 is read (in chunks, once)
+        and remembered with the file's size, modification time and inode (in
+        ``cache/``), so an unchanged file is hashed once per machine, even a 2 GB
+        orthomosaic.
 
         Raises
         ------
         InputError
-            If the in-place image is gone or its content differs from what was added.
+            If the file is gone, not reachable on this machine (the message names the
+            setting to set) or its content differs from what was added.
         """
+        if image.path.startswith(ROOT_PREFIX):
+            root = self.image_root
+            if root is None:
+                raise InputError(
+                    f"image {image.name!r}: kept under the team's image root, which is not "
+                    "set on this machine; set store.image_root in labeler.toml (or "
+                    "LABELER_STORE_IMAGE_ROOT) to where this machine mounts the shared "
+                    "image folder"
+                )
+            path = root / image.path[len(ROOT_PREFIX) :]
+            self._check_in_place(image, path, where="the shared image root")
+            return path
         path = self.resolve(image.path, what=f"image {image.name}")
         if Path(image.path).is_absolute():
             self._check_in_place(image, path)
+        elif not path.exists() and self.image_root is not None:
+            shared = self.image_root / root_image_path(image.sha256, Path(image.path).suffix)
+            if shared.exists():  # added on another machine, found in the team's root
+                self._check_in_place(image, shared, where="the shared image root")
+                return shared
         return path
 
-    def _check_in_place(self, image: ImageRecord, path: Path) -> None:
+    def _check_in_place(self, image: ImageRecord, path: Path, *, where: str = "") -> None:
+        how = f"kept under {where}" if where else "added in place"
         try:
             st = path.stat()
         except FileNotFoundError:
+            fix = (
+                "check that the shared image folder is mounted where store.image_root says"
+                if where
+                else "put it back where it was"
+            )
             raise InputError(
-                f"{path}: image {image.name!r} was added in place and the file is gone; put "
-                "it back where it was"
+                f"{path}: image {image.name!r} was {how} and the file is gone; {fix}"
             ) from None
         key = (st.st_size, st.st_mtime_ns, st.st_ino)
-        known = self._checked.get(str(path)) or self._in_place_cache().get(str(path))
-        if known is not None and tuple(known[:3]) == key and known[3] == image.sha256:
-            self._checked[str(path)] = (*key, image.sha256)
-            return
-        found = sha256_file(path)
+        if image.size is None or st.st_size == image.size:
+            known = self._checked.get(str(path)) or self._in_place_cache().get(str(path))
+            if known is not None and tuple(known[:3]) == key and known[3] == image.sha256:
+                self._checked[str(path)] = (*key, image.sha256)
+                return
+            found = sha256_file(path)
+        else:
+            found = None  # another size: changed, no need to read 2 GB to know it
         if found != image.sha256:
+            seen = (
+                f"SHA-256 {found[:12]}..., added as {image.sha256[:12]}..."
+                if found is not None
+                else f"{st.st_size} bytes, added as {image.size} bytes"
+            )
             raise InputError(
-                f"{path}: image {image.name!r} was added in place, but the file has changed "
-                f"since (SHA-256 {found[:12]}..., added as {image.sha256[:12]}...); put the "
-                "original back, or add the new file as a new image"
+                f"{path}: image {image.name!r} was {how}, but the file has changed "
+                f"since ({seen}); put the original back, or add the new file as a new image"
             )
         self._checked[str(path)] = (*key, found)
         if not self.read_only:

@@ -135,6 +135,8 @@ class ImageRecord:
     transform: tuple[float, ...] | None  # affine a, b, c, d, e, f (pixel corners)
     georef_source: str | None
     added_at: datetime
+    #: bytes of the file as added (None: added before sizes were kept)
+    size: int | None = None
 
     @property
     def shape(self) -> tuple[int, int]:
