@@ -200,6 +200,13 @@ def format_status(st) -> str:
     out = [f"project {st.folder}: {st.images} images, {st.tiles} tiles"]
     if st.shared:
         out.append("shared project: the database is on a server (labeler join DIR --store URL)")
+    if st.image_root is not None:
+        out.append(f"shared image root on this machine: {st.image_root}")
+    if st.weights_missing:
+        out.append(
+            "model weights not in the database yet: " + ", ".join(st.weights_missing)
+            + " (run 'labeler upgrade DIR' on the machine that made them)"
+        )
     if st.latest_model:
         miou = "" if st.latest_miou is None else f", validation mIoU {st.latest_miou:.3f}"
         out.append(f"model versions: {st.model_versions} (newest {st.latest_model}{miou})")

@@ -16,7 +16,7 @@ from labeler.errors import InputError
 from labeler.imagery.intake import ROOT_PREFIX, root_image_path
 from labeler.imagery.write import write_png
 from labeler.project import init_project, join_project, open_project
-from labeler.workflow import add_images, export_project, save_tile_mask
+from labeler.workflow import add_images, export_project, project_status, save_tile_mask
 
 ROOT_LINE = '# image_root = "/mnt/farm-images"'
 
@@ -83,6 +83,8 @@ def test_an_image_added_on_one_machine_is_found_on_another(tmp_path, url):
         # the export reads the pixels (for its previews) through the barn's mount
         result = export_project(p, tmp_path / "barn-export", formats="masks")
     assert result.images == 1 and (tmp_path / "barn-export" / "masks" / "east-block.png").is_file()
+    with open_project(barn) as p:
+        assert project_status(p).image_root == tmp_path / "barn-mount"
 
 
 def test_a_changed_file_under_the_root_is_refused(tmp_path, url, monkeypatch):

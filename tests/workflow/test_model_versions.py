@@ -72,17 +72,22 @@ def test_upgrade_reads_the_folders_model_files_into_the_database(tmp_path, proje
     assert "nothing to do" in capsys.readouterr().out
 
 
-def test_a_version_whose_file_is_here_is_read_in_on_first_use(tmp_path, project_store):
+def test_a_version_whose_file_is_here_is_read_in_on_first_use(tmp_path, project_store, capsys):
     root, _ = _a_release_2_project(tmp_path)
     from labeler.project import upgrade_project
 
     assert upgrade_project(root)[:2] == (2, t.SCHEMA_VERSION)  # tables only, files stay
+    assert main(["status", str(root)]) == 0
+    assert ("model weights not in the database yet: head-1 (run 'labeler upgrade DIR' on the "
+            "machine that made them)") in capsys.readouterr().out
     with open_project(root) as p:
         [mv] = p.store.model_versions()
         assert mv.weights_sha256 is None
         read_checkpoint(p, mv)
         assert p.store.model_weights(mv.id) == (root / "models" / "head-1.pt").read_bytes()
         assert len(p.store.events(kind="model_weights_kept")) == 1
+    assert main(["status", str(root)]) == 0
+    assert "model weights not in the database yet" not in capsys.readouterr().out
 
 
 def test_a_version_without_weights_or_file_names_the_fix(tmp_path, project_store):
