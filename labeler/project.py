@@ -76,16 +76,20 @@ def _with_team(settings: Settings, team: dict | None) -> Settings:
     return out
 
 
-def _settings_text(store_url: str | None) -> str:
+def _settings_text(store_url: str | None, image_root: str | None = None) -> str:
     text = default_settings_text()
-    if store_url is None:
-        return text
-    line = (
-        '# url = "postgresql+psycopg://user@server/labeler"   # default: labeler.db in this folder'
-    )
-    if line not in text:  # pragma: no cover - the default text names the option
-        raise AssertionError("the default settings text lost its [store] url line")
-    return text.replace(line, f"url = {json.dumps(store_url)}")
+    lines = {
+        '# url = "postgresql+psycopg://user@server/labeler"   # default: labeler.db in this '
+        "folder": None if store_url is None else f"url = {json.dumps(store_url)}",
+        '# image_root = "/mnt/farm-images"   # the team\'s shared image folder, as this machine '
+        "mounts it": None if image_root is None else f"image_root = {json.dumps(str(image_root))}",
+    }
+    for line, value in lines.items():
+        if line not in text:  # pragma: no cover - the default text names the options
+            raise AssertionError(f"the default settings text lost its line {line!r}")
+        if value is not None:
+            text = text.replace(line, value)
+    return text
 
 
 def _open_store(settings: Settings, *, create: bool) -> Store:
@@ -388,7 +392,12 @@ class Project:
         self.close()
 
 
-def init_project(folder: str | os.PathLike[str], *, store_url: str | None = None) -> Project:
+def init_project(
+    folder: str | os.PathLike[str],
+    *,
+    store_url: str | None = None,
+    image_root: str | os.PathLike[str] | None = None,
+) -> Project:
     """Create a project: its database (made and claimed) and its working folder.
 
     Parameters
@@ -399,6 +408,9 @@ def init_project(folder: str | os.PathLike[str], *, store_url: str | None = None
     store_url : str, optional
         Database URL of a shared project (PostgreSQL); default the folder's own
         SQLite file (or ``LABELER_STORE_URL``). Written into the settings file.
+    image_root : path, optional
+        Where this machine mounts the team's shared image folder (``store.image_root``);
+        written into the settings file.
 
     Returns
     -------
@@ -423,12 +435,12 @@ def init_project(folder: str | os.PathLike[str], *, store_url: str | None = None
         except BaseException:
             store.close()
             raise
-        _make_folder(root, _settings_text(store_url))
+        _make_folder(root, _settings_text(store_url, _root_text(image_root)))
         settings = load_settings(root)
         if store_url is not None:
             settings = settings.replace(store={"url": store_url})
     else:
-        _make_folder(root, _settings_text(None))
+        _make_folder(root, _settings_text(None, _root_text(image_root)))
         settings = load_settings(root)
         store = _open_store(settings, create=True)
         store.claim_project(team_settings(settings))
@@ -436,7 +448,12 @@ def init_project(folder: str | os.PathLike[str], *, store_url: str | None = None
     return Project(root=root, settings=settings, store=store)
 
 
-def join_project(folder: str | os.PathLike[str], *, store_url: str) -> Project:
+def join_project(
+    folder: str | os.PathLike[str],
+    *,
+    store_url: str,
+    image_root: str | os.PathLike[str] | None = None,
+) -> Project:
     """Make a working folder on this machine for a project kept in a shared database.
 
     Parameters
@@ -445,6 +462,8 @@ def join_project(folder: str | os.PathLike[str], *, store_url: str) -> Project:
         The working folder to create.
     store_url : str
         Database URL of the project (as its ``init`` was given).
+    image_root : path, optional
+        Where this machine mounts the team's shared image folder (``store.image_root``).
 
     Returns
     -------
@@ -462,7 +481,7 @@ def join_project(folder: str | os.PathLike[str], *, store_url: str) -> Project:
     settings = _with_team(load_settings(root).replace(store={"url": store_url}), team)
     store = _open_store(settings, create=False)
     try:
-        _make_folder(root, _settings_text(store_url))
+        _make_folder(root, _settings_text(store_url, _root_text(image_root)))
         store.log_event("project_joined", detail={"folder": root.name})
     except BaseException:
         store.close()
@@ -502,6 +521,11 @@ def upgrade_project(folder: str | os.PathLike[str]) -> tuple[int, int, Path | No
         raise LabelerError(str(exc)) from None
     result = upgrade_database(settings.db_url)
     return result.from_version, result.to_version, result.backup
+
+
+def _root_text(image_root: str | os.PathLike[str] | None) -> str | None:
+    """The image root as written into the settings file (absolute; a link stays a link)."""
+    return None if image_root is None else str(Path(image_root).expanduser().absolute())
 
 
 def _check_new_folder(folder: str | os.PathLike[str]) -> Path:

@@ -94,7 +94,7 @@ def _table(headers: Sequence[str], rows: Sequence[Sequence[object]]) -> str:
 def cmd_init(args) -> int:
     from labeler.project import init_project
 
-    with init_project(args.dir, store_url=args.store_url) as project:
+    with init_project(args.dir, store_url=args.store_url, image_root=args.image_root) as project:
         print(f"created project {project.root} (settings in {project.root / 'labeler.toml'})")
         if args.store_url:
             print(
@@ -108,7 +108,7 @@ def cmd_join(args) -> int:
     from labeler.project import join_project
     from labeler.workflow import project_status
 
-    with join_project(args.dir, store_url=args.store_url) as project:
+    with join_project(args.dir, store_url=args.store_url, image_root=args.image_root) as project:
         print(
             f"joined the shared project at {project.database_name}: working folder "
             f"{project.root}, {project_status(project).images} images"

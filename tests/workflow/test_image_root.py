@@ -12,6 +12,7 @@ import shutil
 import numpy as np
 import pytest
 
+from labeler.cli import main
 from labeler.errors import InputError
 from labeler.imagery.intake import ROOT_PREFIX, root_image_path
 from labeler.imagery.write import write_png
@@ -34,11 +35,15 @@ def _machines(tmp_path, url, *, root=True):
     shared = tmp_path / "shared-images"
     shared.mkdir()
     (tmp_path / "barn-mount").symlink_to(shared)
-    init_project(tmp_path / "office", store_url=url).close()
-    join_project(tmp_path / "barn", store_url=url).close()
-    if root:
-        _set_root(tmp_path / "office", shared)
-        _set_root(tmp_path / "barn", tmp_path / "barn-mount")
+    if root:  # the office names its mount at init, the barn as it joins (the command)
+        init_project(tmp_path / "office", store_url=url, image_root=shared).close()
+        assert main(["join", str(tmp_path / "barn"), "--store", url,
+                     "--image-root", str(tmp_path / "barn-mount")]) == 0
+        text = (tmp_path / "barn" / "labeler.toml").read_text()
+        assert f'image_root = "{tmp_path / "barn-mount"}"' in text
+    else:
+        init_project(tmp_path / "office", store_url=url).close()
+        join_project(tmp_path / "barn", store_url=url).close()
     return tmp_path / "office", tmp_path / "barn", shared
 
 
@@ -126,8 +131,8 @@ def test_a_machine_without_the_root_setting_is_told_what_to_set(tmp_path, url):
     _picture(tmp_path / "east-block.png", 1)
     with open_project(office) as p:
         add_images(p, [tmp_path / "east-block.png"])
-    (barn / "labeler.toml").write_text((barn / "labeler.toml").read_text().replace(
-        "image_root =", "# image_root ="))
+    text = (barn / "labeler.toml").read_text()
+    (barn / "labeler.toml").write_text(text.replace("\nimage_root =", "\n# image_root ="))
     with open_project(barn) as p, pytest.raises(
         InputError, match=r"image 'east-block': kept under the team's image root, which is not set "
         r"on this machine; set store.image_root"
