@@ -27,10 +27,10 @@ from pathlib import Path
 from labeler.classes import ClassSchema
 from labeler.errors import InputError, LabelerError, StoreError
 from labeler.fileio import atomic_write_text, sha256_file
-from labeler.imagery.intake import remove_leftovers
+from labeler.imagery.intake import ROOT_PREFIX, remove_leftovers, root_image_path
 from labeler.settings import SETTINGS_FILE, Settings, default_settings_text, load_settings
 from labeler.store import Store
-from labeler.store.records import ImageRecord
+from labeler.store.records import ImageRecord, ModelVersionRecord
 from labeler.store.team import TEAM_SECTIONS, read_team_settings
 
 __all__ = [
@@ -76,16 +76,20 @@ def _with_team(settings: Settings, team: dict | None) -> Settings:
     return out
 
 
-def _settings_text(store_url: str | None) -> str:
+def _settings_text(store_url: str | None, image_root: str | None = None) -> str:
     text = default_settings_text()
-    if store_url is None:
-        return text
-    line = (
-        '# url = "postgresql+psycopg://user@server/labeler"   # default: labeler.db in this folder'
-    )
-    if line not in text:  # pragma: no cover - the default text names the option
-        raise AssertionError("the default settings text lost its [store] url line")
-    return text.replace(line, f"url = {json.dumps(store_url)}")
+    lines = {
+        '# url = "postgresql+psycopg://user@server/labeler"   # default: labeler.db in this '
+        "folder": None if store_url is None else f"url = {json.dumps(store_url)}",
+        '# image_root = "/mnt/farm-images"   # the team\'s shared image folder, as this machine '
+        "mounts it": None if image_root is None else f"image_root = {json.dumps(str(image_root))}",
+    }
+    for line, value in lines.items():
+        if line not in text:  # pragma: no cover - the default text names the options
+            raise AssertionError(f"the default settings text lost its line {line!r}")
+        if value is not None:
+            text = text.replace(line, value)
+    return text
 
 
 def _open_store(settings: Settings, *, create: bool) -> Store:
@@ -160,44 +164,92 @@ class Project:
             )
         return full
 
-    def image_path(self, image: ImageRecord) -> Path:
-        """Where the image's pixels are; an image added in place is checked first.
+    @property
+    def image_root(self) -> Path | None:
+        """The team's shared image folder as this machine reaches it (None: not set).
 
-        An image added in place (``labeler add --in-place``) stays where it was, so it
-        may be changed or replaced after it was added. Before its pixels are used, its
-        SHA-256 is compared with the one it was added with; the result is remembered by
-        the file's size, modification time and inode (in ``cache/``), so an unchanged
-        file is hashed once.
+        The ``store.image_root`` setting; a relative path is relative to the project.
+        """
+        value = self.settings.store.image_root
+        if not value:
+            return None
+        root = Path(value).expanduser()
+        return root if root.is_absolute() else self.root / root
+
+    def image_path(self, image: ImageRecord) -> Path:
+        """Where the image's pixels are on this machine, checked by SHA-256 first.
+
+        An image kept under the team's image root (``store.image_root``) is found there
+        by its SHA-256 on every machine; so is an image copied into another machine's
+        ``images/`` folder, when this machine lacks that file and the root holds it. An
+        image added in place (``labeler add --in-place``) stays where it was.
+
+        A file under the root or in place may be changed or replaced after it was
+        added, so before its pixels are used it is checked: a size other than the one
+        added is a change found at once; otherwise the SHA-256 is read (in chunks, once)
+        and remembered with the file's size, modification time and inode (in
+        ``cache/``), so an unchanged file is hashed once per machine, even a 2 GB
+        orthomosaic.
 
         Raises
         ------
         InputError
-            If the in-place image is gone or its content differs from what was added.
+            If the file is gone, not reachable on this machine (the message names the
+            setting to set) or its content differs from what was added.
         """
+        if image.path.startswith(ROOT_PREFIX):
+            root = self.image_root
+            if root is None:
+                raise InputError(
+                    f"image {image.name!r}: kept under the team's image root, which is not "
+                    "set on this machine; set store.image_root in labeler.toml (or "
+                    "LABELER_STORE_IMAGE_ROOT) to where this machine mounts the shared "
+                    "image folder"
+                )
+            path = root / image.path[len(ROOT_PREFIX) :]
+            self._check_in_place(image, path, where="the shared image root")
+            return path
         path = self.resolve(image.path, what=f"image {image.name}")
         if Path(image.path).is_absolute():
             self._check_in_place(image, path)
+        elif not path.exists() and self.image_root is not None:
+            shared = self.image_root / root_image_path(image.sha256, Path(image.path).suffix)
+            if shared.exists():  # added on another machine, found in the team's root
+                self._check_in_place(image, shared, where="the shared image root")
+                return shared
         return path
 
-    def _check_in_place(self, image: ImageRecord, path: Path) -> None:
+    def _check_in_place(self, image: ImageRecord, path: Path, *, where: str = "") -> None:
+        how = f"kept under {where}" if where else "added in place"
         try:
             st = path.stat()
         except FileNotFoundError:
+            fix = (
+                "check that the shared image folder is mounted where store.image_root says"
+                if where
+                else "put it back where it was"
+            )
             raise InputError(
-                f"{path}: image {image.name!r} was added in place and the file is gone; put "
-                "it back where it was"
+                f"{path}: image {image.name!r} was {how} and the file is gone; {fix}"
             ) from None
         key = (st.st_size, st.st_mtime_ns, st.st_ino)
-        known = self._checked.get(str(path)) or self._in_place_cache().get(str(path))
-        if known is not None and tuple(known[:3]) == key and known[3] == image.sha256:
-            self._checked[str(path)] = (*key, image.sha256)
-            return
-        found = sha256_file(path)
+        if image.size is None or st.st_size == image.size:
+            known = self._checked.get(str(path)) or self._in_place_cache().get(str(path))
+            if known is not None and tuple(known[:3]) == key and known[3] == image.sha256:
+                self._checked[str(path)] = (*key, image.sha256)
+                return
+            found = sha256_file(path)
+        else:
+            found = None  # another size: changed, no need to read 2 GB to know it
         if found != image.sha256:
+            seen = (
+                f"SHA-256 {found[:12]}..., added as {image.sha256[:12]}..."
+                if found is not None
+                else f"{st.st_size} bytes, added as {image.size} bytes"
+            )
             raise InputError(
-                f"{path}: image {image.name!r} was added in place, but the file has changed "
-                f"since (SHA-256 {found[:12]}..., added as {image.sha256[:12]}...); put the "
-                "original back, or add the new file as a new image"
+                f"{path}: image {image.name!r} was {how}, but the file has changed "
+                f"since ({seen}); put the original back, or add the new file as a new image"
             )
         self._checked[str(path)] = (*key, found)
         if not self.read_only:
@@ -219,6 +271,112 @@ class Project:
             return {}
         return data if isinstance(data, dict) else {}
 
+    # -- model versions' weights -----------------------------------------------------
+    def model_weights(self, version: ModelVersionRecord) -> bytes:
+        """The weights of a model version, as the database keeps them.
+
+        A version made before the database kept weights (schema version 2) has only its
+        file in ``models/`` of the machine that made it; when this machine has that
+        file, it is read into the database here (once, for the whole team).
+
+        Parameters
+        ----------
+        version : ModelVersionRecord
+            A head or adapted encoder version.
+
+        Returns
+        -------
+        bytes
+            The weights file's bytes.
+
+        Raises
+        ------
+        LabelerError
+            If the database keeps no weights for the version and this machine does not
+            have its file (the message names the machine-side fix).
+        """
+        data = self.store.model_weights(version.id)
+        if data is not None:
+            return data
+        path = self.resolve(version.checkpoint or "", what=f"weights of model {version.name}")
+        if not version.checkpoint or not path.is_file():
+            raise LabelerError(
+                f"model {version.name}: its weights are not in the project's database and "
+                f"this machine has no file {version.checkpoint or '(none recorded)'}; run "
+                "'labeler upgrade DIR' in the folder of the machine that made it, or retrain "
+                "('labeler retrain')"
+            )
+        data = path.read_bytes()
+        if not self.read_only:
+            self.store.put_model_weights(version.id, data)
+        return data
+
+    def model_file(self, version: ModelVersionRecord, *, data: bytes | None = None) -> Path:
+        """A file on this machine holding the weights of a model version.
+
+        For readers that need a path (cluster workers, the encoder loader): the copy in
+        ``models/`` named by the weights' SHA-256, written from the database the first
+        time it is needed (:func:`labeler.model.checkpoint.keep_weights_file`).
+
+        Parameters
+        ----------
+        version : ModelVersionRecord
+        data : bytes, optional
+            The weights when the caller has read them already.
+
+        Returns
+        -------
+        Path
+            ``models/<kind>-<sha256[:12]>.pt`` (the file of a version made before the
+            database kept weights is that file itself).
+
+        Raises
+        ------
+        LabelerError
+            As :meth:`model_weights`.
+        """
+        from labeler.model.checkpoint import keep_weights_file
+
+        if version.weights_sha256 is not None and data is None:
+            known = self.models_dir / f"{version.kind}-{version.weights_sha256[:12]}.pt"
+            if known.is_file():
+                return known
+        if version.weights_sha256 is None and version.checkpoint:
+            own = self.resolve(version.checkpoint, what=f"weights of model {version.name}")
+            if own.is_file():  # made before the database kept weights, on this machine
+                return own
+        if data is None:
+            data = self.model_weights(version)
+        try:
+            return keep_weights_file(
+                self.models_dir, version.kind, data, sha256=version.weights_sha256
+            )
+        except OSError as exc:
+            raise LabelerError(
+                f"{self.models_dir}: cannot keep a copy of the weights of model "
+                f"{version.name} ({exc.strerror or exc}); check that you may write there"
+            ) from None
+
+    def read_in_model_files(self) -> list[str]:
+        """Read into the database every model file of this folder it does not keep yet.
+
+        Run by ``labeler upgrade``: versions made before the database kept weights are
+        files in ``models/`` of the machine that made them.
+
+        Returns
+        -------
+        list of str
+            Names of the versions whose weights were read in.
+        """
+        done = []
+        for version in self.store.model_versions():
+            if version.weights_sha256 is not None or not version.checkpoint:
+                continue
+            path = self.resolve(version.checkpoint, what=f"weights of model {version.name}")
+            if path.is_file() and self.store.put_model_weights(version.id, path.read_bytes()):
+                done.append(version.name)
+        return done
+
     @property
     def database_name(self) -> str:
         """The project's database URL, its password hidden (for messages)."""
@@ -234,7 +392,12 @@ class Project:
         self.close()
 
 
-def init_project(folder: str | os.PathLike[str], *, store_url: str | None = None) -> Project:
+def init_project(
+    folder: str | os.PathLike[str],
+    *,
+    store_url: str | None = None,
+    image_root: str | os.PathLike[str] | None = None,
+) -> Project:
     """Create a project: its database (made and claimed) and its working folder.
 
     Parameters
@@ -245,6 +408,9 @@ def init_project(folder: str | os.PathLike[str], *, store_url: str | None = None
     store_url : str, optional
         Database URL of a shared project (PostgreSQL); default the folder's own
         SQLite file (or ``LABELER_STORE_URL``). Written into the settings file.
+    image_root : path, optional
+        Where this machine mounts the team's shared image folder (``store.image_root``);
+        written into the settings file.
 
     Returns
     -------
@@ -269,12 +435,12 @@ def init_project(folder: str | os.PathLike[str], *, store_url: str | None = None
         except BaseException:
             store.close()
             raise
-        _make_folder(root, _settings_text(store_url))
+        _make_folder(root, _settings_text(store_url, _root_text(image_root)))
         settings = load_settings(root)
         if store_url is not None:
             settings = settings.replace(store={"url": store_url})
     else:
-        _make_folder(root, _settings_text(None))
+        _make_folder(root, _settings_text(None, _root_text(image_root)))
         settings = load_settings(root)
         store = _open_store(settings, create=True)
         store.claim_project(team_settings(settings))
@@ -282,7 +448,12 @@ def init_project(folder: str | os.PathLike[str], *, store_url: str | None = None
     return Project(root=root, settings=settings, store=store)
 
 
-def join_project(folder: str | os.PathLike[str], *, store_url: str) -> Project:
+def join_project(
+    folder: str | os.PathLike[str],
+    *,
+    store_url: str,
+    image_root: str | os.PathLike[str] | None = None,
+) -> Project:
     """Make a working folder on this machine for a project kept in a shared database.
 
     Parameters
@@ -291,6 +462,8 @@ def join_project(folder: str | os.PathLike[str], *, store_url: str) -> Project:
         The working folder to create.
     store_url : str
         Database URL of the project (as its ``init`` was given).
+    image_root : path, optional
+        Where this machine mounts the team's shared image folder (``store.image_root``).
 
     Returns
     -------
@@ -308,7 +481,7 @@ def join_project(folder: str | os.PathLike[str], *, store_url: str) -> Project:
     settings = _with_team(load_settings(root).replace(store={"url": store_url}), team)
     store = _open_store(settings, create=False)
     try:
-        _make_folder(root, _settings_text(store_url))
+        _make_folder(root, _settings_text(store_url, _root_text(image_root)))
         store.log_event("project_joined", detail={"folder": root.name})
     except BaseException:
         store.close()
@@ -348,6 +521,11 @@ def upgrade_project(folder: str | os.PathLike[str]) -> tuple[int, int, Path | No
         raise LabelerError(str(exc)) from None
     result = upgrade_database(settings.db_url)
     return result.from_version, result.to_version, result.backup
+
+
+def _root_text(image_root: str | os.PathLike[str] | None) -> str | None:
+    """The image root as written into the settings file (absolute; a link stays a link)."""
+    return None if image_root is None else str(Path(image_root).expanduser().absolute())
 
 
 def _check_new_folder(folder: str | os.PathLike[str]) -> Path:

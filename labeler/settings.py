@@ -8,7 +8,10 @@ TOML with one table per section; an environment variable
 Sections and options (defaults in brackets):
 
 ``[store]``
-    ``url`` [``sqlite:///<project>/labeler.db``] database URL (SQLAlchemy form).
+    ``url`` [``sqlite:///<project>/labeler.db``] database URL (SQLAlchemy form);
+    ``image_root`` [""] where this machine reaches the team's shared image folder (a
+    mounted network folder); ``add`` keeps each image there under its SHA-256 and every
+    machine finds it there (nothing: images are copied into the project's ``images/``).
 ``[tiles]``
     ``size`` [256] tile edge in pixels; ``overlap`` [32] pixels shared by neighbours;
     ``max_image_px`` [2500000000] largest image (width x height) ``add`` accepts, checked
@@ -134,6 +137,7 @@ FINETUNE_STAGES = (0, 2, 4)
 class StoreSettings(Checked):
     _section = "store"
     url: str = ""
+    image_root: str = ""
 
     def _check(self) -> None:
         if self.url and "://" not in self.url:
@@ -514,6 +518,7 @@ def default_settings_text() -> str:
 
 [store]
 # url = "postgresql+psycopg://user@server/labeler"   # default: labeler.db in this folder
+# image_root = "/mnt/farm-images"   # the team's shared image folder, as this machine mounts it
 
 [tiles]
 size = 256

@@ -62,6 +62,13 @@ def build_parser() -> argparse.ArgumentParser:
         help="keep the project in this database (postgresql+psycopg://user@server/db, "
         "empty) so a team can share it; default labeler.db in DIR",
     )
+    p.add_argument(
+        "--image-root",
+        dest="image_root",
+        metavar="FOLDER",
+        help="the team's shared image folder as this machine mounts it (store.image_root): "
+        "added images are kept there under their SHA-256 and found by every machine",
+    )
     p.set_defaults(func=cmd_init)
 
     p = sub.add_parser(
@@ -74,6 +81,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("dir", metavar="DIR", help="working folder to create")
     p.add_argument(
         "--store", dest="store_url", metavar="URL", required=True, help="the project's database URL"
+    )
+    p.add_argument(
+        "--image-root",
+        dest="image_root",
+        metavar="FOLDER",
+        help="the team's shared image folder as this machine mounts it (store.image_root): "
+        "added images are kept there under their SHA-256 and found by every machine",
     )
     p.set_defaults(func=cmd_join)
 

@@ -94,7 +94,7 @@ def _table(headers: Sequence[str], rows: Sequence[Sequence[object]]) -> str:
 def cmd_init(args) -> int:
     from labeler.project import init_project
 
-    with init_project(args.dir, store_url=args.store_url) as project:
+    with init_project(args.dir, store_url=args.store_url, image_root=args.image_root) as project:
         print(f"created project {project.root} (settings in {project.root / 'labeler.toml'})")
         if args.store_url:
             print(
@@ -108,7 +108,7 @@ def cmd_join(args) -> int:
     from labeler.project import join_project
     from labeler.workflow import project_status
 
-    with join_project(args.dir, store_url=args.store_url) as project:
+    with join_project(args.dir, store_url=args.store_url, image_root=args.image_root) as project:
         print(
             f"joined the shared project at {project.database_name}: working folder "
             f"{project.root}, {project_status(project).images} images"
@@ -139,11 +139,16 @@ def cmd_release(args) -> int:
 
 
 def cmd_upgrade(args) -> int:
-    from labeler.project import upgrade_project
+    from labeler.project import open_project, upgrade_project
 
     before, after, backup = upgrade_project(args.dir)
+    with open_project(args.dir) as project:  # this machine's model files, read in once
+        read_in = project.read_in_model_files()
+    if read_in:
+        print(f"{args.dir}: model weights read into the database: {', '.join(read_in)}")
     if before == after:
-        print(f"{args.dir}: the database is at schema version {after}; nothing to do")
+        if not read_in:
+            print(f"{args.dir}: the database is at schema version {after}; nothing to do")
         return 0
     print(f"{args.dir}: database upgraded from schema version {before} to {after}")
     if backup is not None:
@@ -195,6 +200,13 @@ def format_status(st) -> str:
     out = [f"project {st.folder}: {st.images} images, {st.tiles} tiles"]
     if st.shared:
         out.append("shared project: the database is on a server (labeler join DIR --store URL)")
+    if st.image_root is not None:
+        out.append(f"shared image root on this machine: {st.image_root}")
+    if st.weights_missing:
+        out.append(
+            "model weights not in the database yet: " + ", ".join(st.weights_missing)
+            + " (run 'labeler upgrade DIR' on the machine that made them)"
+        )
     if st.latest_model:
         miou = "" if st.latest_miou is None else f", validation mIoU {st.latest_miou:.3f}"
         out.append(f"model versions: {st.model_versions} (newest {st.latest_model}{miou})")

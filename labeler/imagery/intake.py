@@ -11,6 +11,14 @@ An add in progress holds a claim on its image name (:func:`reserve_image_name`, 
 over each other's files). An add that was killed leaves its claim behind, maybe with a
 half-made copy; :func:`remove_leftovers` (run when a project is opened) removes what such
 an add left, unless the image made it into the store.
+
+A team shares its images through an *image root*, a folder every machine mounts (the
+``store.image_root`` setting). There an image is kept under its content's SHA-256,
+``<root>/<sha[:2]>/<sha><suffix>`` (:func:`root_image_path`), with its side files named
+the same way: two machines adding the same file find one copy, two different files can
+never take each other's name, and a reader can tell a file from its name alone. The
+SHA-256 is read in 1 MiB chunks (:func:`labeler.fileio.sha256_file`), so a 2 GB
+orthomosaic is hashed in constant memory at add time, once.
 """
 
 from __future__ import annotations
@@ -32,7 +40,13 @@ __all__ = [
     "files_named",
     "reserve_image_name",
     "remove_leftovers",
+    "ROOT_PREFIX",
+    "root_image_path",
+    "put_in_image_root",
 ]
+
+#: Start of the stored path of an image kept under the team's image root.
+ROOT_PREFIX = "@image_root/"
 
 #: Marker of an add in progress: ``images/.adding-<image name>``.
 CLAIM_PREFIX = ".adding-"
@@ -234,3 +248,66 @@ def remove_leftovers(
             path.unlink(missing_ok=True)
             removed.append(path)
     return removed
+
+
+def root_image_path(sha256: str, suffix: str) -> str:
+    """Where an image is kept under an image root, relative to it.
+
+    Parameters
+    ----------
+    sha256 : str
+        The file's SHA-256 (64 hex digits).
+    suffix : str
+        Its file suffix (``".tif"``); kept in lower case.
+
+    Returns
+    -------
+    str
+        ``"<sha[:2]>/<sha><suffix>"``.
+
+    Raises
+    ------
+    ValueError
+        If ``sha256`` is not 64 hex digits.
+    """
+    if not re.fullmatch(r"[0-9a-f]{64}", sha256 or ""):
+        raise ValueError(f"sha256: expected 64 lower-case hex digits, got {sha256!r}")
+    return f"{sha256[:2]}/{sha256}{suffix.lower()}"
+
+
+def put_in_image_root(
+    source: str | os.PathLike[str], root: str | os.PathLike[str], *, sha256: str
+) -> tuple[Path, ImageCopy | None]:
+    """Copy an image (and its side files) into the image root under its SHA-256.
+
+    Parameters
+    ----------
+    source : path-like
+        The image file, already hashed by the caller.
+    root : path-like
+        The image root folder.
+    sha256 : str
+        The file's SHA-256; the copy is checked against it before it is renamed in.
+
+    Returns
+    -------
+    path : Path
+        The image's file under the root.
+    copy : ImageCopy or None
+        What this call wrote (to undo when the add fails); None when a file of that
+        size was already there (another machine put it there: never removed here).
+
+    Raises
+    ------
+    labeler.errors.InputError
+        If the image changed while it was copied; nothing is left behind.
+    """
+    src = Path(source)
+    target = Path(root) / root_image_path(sha256, src.suffix)
+    try:
+        if target.stat().st_size == src.stat().st_size:
+            return target, None
+    except FileNotFoundError:
+        pass
+    copied = copy_image(src, target.parent, sha256, sha256=sha256)
+    return copied.image, copied

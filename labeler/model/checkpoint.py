@@ -9,6 +9,13 @@ state dict), so the head and the encoder version it reads travel together. It is
 read with ``torch.load(..., weights_only=True)``, which refuses any pickled object that
 is not plain data, so a tampered file cannot run code.
 
+The same bytes are what the project's database keeps for a model version, so any
+machine of a team can use it: :func:`checkpoint_bytes` makes them, ``load_checkpoint(name,
+data=...)`` reads them back from memory (a ``BytesIO``, ``weights_only=True`` as from a
+file), and :func:`keep_weights_file` writes a local copy for readers that need a path
+(workers of a cluster, the encoder loader), named by the weights' SHA-256 so a copy is
+written once and never mistaken for another version's.
+
 Format versions: 1 = the head alone; 2 = the head with its optional full-resolution
 refinement (``HeadConfig.refine_channels``); 3 = version 2 with the optional fine-tuned
 encoder stages. Versions 2 and 3 are read; a file of another version is refused with a
@@ -18,6 +25,7 @@ masks would silently lack the refinement.
 
 from __future__ import annotations
 
+import hashlib
 import io
 import math
 import os
@@ -31,7 +39,14 @@ import torch
 from labeler.fileio import atomic_write_bytes
 from labeler.model.head import HeadConfig, ProposalHead
 
-__all__ = ["CheckpointMeta", "save_checkpoint", "load_checkpoint", "FORMAT"]
+__all__ = [
+    "CheckpointMeta",
+    "save_checkpoint",
+    "load_checkpoint",
+    "checkpoint_bytes",
+    "keep_weights_file",
+    "FORMAT",
+]
 
 #: Format tag stored in every checkpoint.
 FORMAT = "labeler-head"
@@ -68,19 +83,32 @@ class CheckpointMeta:
         return self.config.class_indices
 
 
-def save_checkpoint(
-    path: str | os.PathLike[str],
+def checkpoint_bytes(
     head: ProposalHead,
     *,
     encoder_version: str,
     val_iou: Sequence[float] | np.ndarray,
     extra: Mapping[str, object] | None = None,
     encoder_tail: Mapping[str, object] | None = None,
-) -> Path:
-    """Write ``head`` and its metadata to ``path`` atomically.
+) -> bytes:
+    """The bytes of a checkpoint of ``head`` (what :func:`save_checkpoint` writes).
 
-    ``encoder_tail`` is :meth:`labeler.model.tail.EncoderTail.state` of the encoder
-    stages fine-tuned with the head (then ``encoder_version`` is the tail's version).
+    Parameters
+    ----------
+    head : ProposalHead
+    encoder_version : str
+        The encoder whose features the head reads (the tail's version when tuned).
+    val_iou : sequence of float, length n_classes
+        Per-class validation IoU (NaN where a class was absent).
+    extra : mapping of str to str, int, float or bool, optional
+        Extra scalars to keep.
+    encoder_tail : mapping, optional
+        :meth:`labeler.model.tail.EncoderTail.state` of the stages tuned with the head.
+
+    Returns
+    -------
+    bytes
+        A ``torch.save`` file of plain data.
 
     Raises
     ------
@@ -111,11 +139,81 @@ def save_checkpoint(
     }
     buf = io.BytesIO()
     torch.save(payload, buf)
-    return atomic_write_bytes(path, buf.getvalue())
+    return buf.getvalue()
 
 
-def load_checkpoint(path: str | os.PathLike[str]) -> tuple[ProposalHead, CheckpointMeta]:
+def save_checkpoint(
+    path: str | os.PathLike[str],
+    head: ProposalHead,
+    *,
+    encoder_version: str,
+    val_iou: Sequence[float] | np.ndarray,
+    extra: Mapping[str, object] | None = None,
+    encoder_tail: Mapping[str, object] | None = None,
+) -> Path:
+    """Write ``head`` and its metadata to ``path`` atomically.
+
+    ``encoder_tail`` is :meth:`labeler.model.tail.EncoderTail.state` of the encoder
+    stages fine-tuned with the head (then ``encoder_version`` is the tail's version).
+
+    Raises
+    ------
+    ValueError
+        If ``val_iou`` does not have one value per class or ``extra`` holds anything but
+        str/int/float/bool values.
+    """
+    data = checkpoint_bytes(
+        head, encoder_version=encoder_version, val_iou=val_iou, extra=extra,
+        encoder_tail=encoder_tail,
+    )
+    return atomic_write_bytes(path, data)
+
+
+def keep_weights_file(
+    folder: str | os.PathLike[str], name: str, data: bytes, *, sha256: str | None = None
+) -> Path:
+    """A local copy of a model version's weights, named by their SHA-256; written once.
+
+    Parameters
+    ----------
+    folder : path
+        Where copies are kept (the project's ``models/``).
+    name : str
+        The version's name (``"head-3"``), the start of the file name.
+    data : bytes
+        The weights file's bytes (as the database keeps them).
+    sha256 : str, optional
+        Their SHA-256 when known (else computed).
+
+    Returns
+    -------
+    Path
+        ``<folder>/<name>-<sha256[:12]>.pt``; an existing copy of the same size is kept.
+    """
+    digest = sha256 or hashlib.sha256(data).hexdigest()
+    path = Path(folder) / f"{name}-{digest[:12]}.pt"
+    try:
+        if path.stat().st_size == len(data):
+            return path
+    except FileNotFoundError:
+        pass
+    path.parent.mkdir(parents=True, exist_ok=True)
+    return atomic_write_bytes(path, data)
+
+
+def load_checkpoint(
+    path: str | os.PathLike[str], *, data: bytes | None = None
+) -> tuple[ProposalHead, CheckpointMeta]:
     """Read a head written by :func:`save_checkpoint` (``weights_only=True``).
+
+    Parameters
+    ----------
+    path : path-like or str
+        The checkpoint file; with ``data``, only the name messages give it (e.g.
+        ``"model head-3 in the database"``).
+    data : bytes, optional
+        The checkpoint's bytes (:func:`checkpoint_bytes`, as the database keeps them),
+        read from memory instead of the file.
 
     Returns
     -------
@@ -130,9 +228,10 @@ def load_checkpoint(path: str | os.PathLike[str]) -> tuple[ProposalHead, Checkpo
         (refused by ``weights_only``), or its state does not fit its config; the message
         names the file.
     """
-    p = Path(path)
+    p = Path(path) if data is None else str(path)
     try:
-        obj = torch.load(p, map_location="cpu", weights_only=True)
+        source = p if data is None else io.BytesIO(data)
+        obj = torch.load(source, map_location="cpu", weights_only=True)
     except FileNotFoundError:
         raise ValueError(f"{p}: no such checkpoint file") from None
     except Exception as exc:  # UnpicklingError, RuntimeError, EOFError, ...

@@ -31,6 +31,7 @@ from labeler.store.dialect import (
     shown_url,
     sqlite_access,
     sqlite_file,
+    take_turns,
 )
 from labeler.store.failures import display_name, engine_failure, install
 
@@ -227,30 +228,42 @@ class StoreBase:
             from labeler.store.migrate import stamp_new  # alembic loads only here
 
             with self._write() as conn:
-                t.metadata.create_all(conn)
-                conn.execute(
-                    t.meta.insert(), [{"key": "schema_version", "value": str(t.SCHEMA_VERSION)}]
-                )
-                record_classes(conn, schema)
-                stamp_new(conn)
+                # two 'labeler init' on one empty database: the second waits here for
+                # the first and then finds its tables (its claim is then refused)
+                take_turns(conn, "labeler:create_tables")
+                if not sa.inspect(conn).has_table("meta"):
+                    t.metadata.create_all(conn)
+                    conn.execute(
+                        t.meta.insert(),
+                        [{"key": "schema_version", "value": str(t.SCHEMA_VERSION)}],
+                    )
+                    record_classes(conn, schema)
+                    stamp_new(conn)
+                    return
+            self._check_version(where)
         else:
-            with self.engine.connect() as conn:
-                found = conn.execute(
-                    sa.select(t.meta.c.value).where(t.meta.c.key == "schema_version")
-                ).scalar()
-            if found != str(t.SCHEMA_VERSION):
-                older = found is not None and found.isdigit() and int(found) < t.SCHEMA_VERSION
-                fix = (
-                    "upgrade it with 'labeler upgrade DIR' (a SQLite file is backed up first)"
-                    if older
-                    else "use the matching labeler release"
-                )
-                raise StoreError(
-                    f"{where}: database schema version {found}, this labeler reads "
-                    f"{t.SCHEMA_VERSION}; {fix}",
-                    kind="version",
-                )
-            check_classes(self.engine, schema, where=where, read_only=self.read_only)
+            self._check_version(where)
+
+    def _check_version(self, where: str) -> None:
+        """Refuse a database of another schema version; check its class record."""
+        schema = self.schema
+        with self.engine.connect() as conn:
+            found = conn.execute(
+                sa.select(t.meta.c.value).where(t.meta.c.key == "schema_version")
+            ).scalar()
+        if found != str(t.SCHEMA_VERSION):
+            older = found is not None and found.isdigit() and int(found) < t.SCHEMA_VERSION
+            fix = (
+                "upgrade it with 'labeler upgrade DIR' (a SQLite file is backed up first)"
+                if older
+                else "use the matching labeler release"
+            )
+            raise StoreError(
+                f"{where}: database schema version {found}, this labeler reads "
+                f"{t.SCHEMA_VERSION}; {fix}",
+                kind="version",
+            )
+        check_classes(self.engine, schema, where=where, read_only=self.read_only)
 
     # -- transactions -------------------------------------------------------------------
     @contextmanager

@@ -18,6 +18,7 @@ a WAL database there (https://www.sqlite.org/wal.html, "Read-Only Databases").
 
 from __future__ import annotations
 
+import hashlib
 import os
 import sqlite3
 from collections.abc import Mapping, Sequence
@@ -32,6 +33,7 @@ from sqlalchemy.exc import ArgumentError, DBAPIError
 from labeler.errors import LabelerError
 
 __all__ = [
+    "take_turns",
     "BUSY_TIMEOUT_MS",
     "make_engine",
     "integrity_check",
@@ -281,6 +283,32 @@ def upsert(
     stmt = _dialect_insert(conn, table).values(**values)
     changed = {k: stmt.excluded[k] for k in values if k not in keys}
     conn.execute(stmt.on_conflict_do_update(index_elements=list(keys), set_=changed))
+
+
+def take_turns(conn: sa.Connection, key: str) -> None:
+    """Hold a lock named ``key`` until the caller's transaction ends: writers take turns.
+
+    On PostgreSQL a transaction-level advisory lock (``pg_advisory_xact_lock``) on a
+    64-bit number made from ``key``; on SQLite nothing is needed, as ``BEGIN IMMEDIATE``
+    already lets one writer in at a time. Used where a write reads what it builds on
+    and no row exists yet to lock (the next number of a model version, a new project's
+    tables).
+
+    Parameters
+    ----------
+    conn : sqlalchemy.Connection
+        Inside the caller's write transaction.
+    key : str
+        What the lock is for; the same key, the same lock.
+
+    Returns
+    -------
+    None
+    """
+    if conn.dialect.name != "postgresql":
+        return
+    number = int.from_bytes(hashlib.sha256(key.encode()).digest()[:8], "big", signed=True)
+    conn.execute(sa.select(sa.func.pg_advisory_xact_lock(number)))
 
 
 def is_retryable(exc: BaseException) -> bool:

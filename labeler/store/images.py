@@ -42,6 +42,8 @@ class NewImage:
     crs: str | None = None
     transform: tuple[float, ...] | None = None
     georef_source: str | None = None
+    #: bytes of the file (a cheap first check that a file is still the one added)
+    size: int | None = None
 
 
 def overlap_draw(sha256: str, window: Window, *, seed: int) -> float:
@@ -78,6 +80,7 @@ def _image_row(r: sa.Row) -> ImageRecord:
         crs=r.crs,
         transform=None if r.transform is None else tuple(float(v) for v in r.transform),
         georef_source=r.georef_source,
+        size=r.size,
         added_at=as_utc(r.added_at),
     )
 
@@ -164,6 +167,7 @@ class ImagesMixin(StoreBase):
                 transform=None if image.transform is None else list(image.transform),
                 georef_source=image.georef_source,
                 added_at=stamp,
+                size=image.size,
             )
             # insert-or-read: another machine may add the same image at this moment
             if not insert_ignoring(conn, t.images, values, keys=None):

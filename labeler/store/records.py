@@ -135,6 +135,8 @@ class ImageRecord:
     transform: tuple[float, ...] | None  # affine a, b, c, d, e, f (pixel corners)
     georef_source: str | None
     added_at: datetime
+    #: bytes of the file as added (None: added before sizes were kept)
+    size: int | None = None
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -275,6 +277,11 @@ class ModelVersionRecord:
     miou: float | None
     details: dict | None
     created_at: datetime
+    #: 1, 2, 3 ... among the versions of its kind, given by the database
+    number: int | None = None
+    #: SHA-256 of the weights kept in the database (None: none kept, e.g. a rule, or a
+    #: version of schema version 2 whose file is still to be read in)
+    weights_sha256: str | None = None
 
 
 @dataclass(frozen=True)

@@ -21,6 +21,7 @@ __all__ = [
     "annotations",
     "drafts",
     "model_versions",
+    "model_weights",
     "proposals",
     "events",
     "rankings",
@@ -30,8 +31,9 @@ __all__ = [
 
 #: Bumped when the tables change; the store refuses a database of another version and
 #: ``labeler upgrade`` brings an older one up to it (:mod:`labeler.store.migrate`).
-#: 1: the first release. 2: free text without length limits, hold heartbeats.
-SCHEMA_VERSION = 2
+#: 1: the first release. 2: free text without length limits, hold heartbeats. 3: model
+#: weights kept in the database and versions numbered by it; image sizes for cheap checks.
+SCHEMA_VERSION = 3
 
 metadata = sa.MetaData()
 
@@ -57,6 +59,9 @@ images = sa.Table(
     sa.Column("transform", sa.JSON, nullable=True),
     sa.Column("georef_source", sa.String(16), nullable=True),
     sa.Column("added_at", sa.DateTime(timezone=True), nullable=False),
+    # bytes of the file as added (null for images added before schema version 3): a file
+    # of another size is known changed without hashing it
+    sa.Column("size", sa.BigInteger, nullable=True),
 )
 
 tiles = sa.Table(
@@ -127,15 +132,31 @@ model_versions = sa.Table(
     "model_versions",
     metadata,
     sa.Column("id", sa.Integer, primary_key=True),
-    sa.Column("kind", sa.String(16), nullable=False),  # "cold_start" or "head"
+    sa.Column("kind", sa.String(16), nullable=False),  # "cold_start", "head" or "encoder"
     sa.Column("name", sa.Text, nullable=False),
     sa.Column("encoder_version", sa.Text, nullable=True),
-    sa.Column("checkpoint", sa.Text, nullable=True),  # path relative to the project
+    # the file the weights were first written to, relative to the project (the weights
+    # themselves are in model_weights; a row of schema version 2 may only have the file)
+    sa.Column("checkpoint", sa.Text, nullable=True),
     sa.Column("n_train_tiles", sa.Integer, nullable=False, default=0),
     sa.Column("val_iou", sa.JSON, nullable=True),  # {class name: IoU or null}
     sa.Column("miou", sa.Float, nullable=True),
     sa.Column("details", sa.JSON, nullable=True),
     sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
+    # 1, 2, 3 ... per kind, given by the database when the row is written
+    sa.Column("number", sa.Integer, nullable=True),
+    sa.UniqueConstraint("kind", "number", name="uq_model_number"),
+)
+
+model_weights = sa.Table(
+    "model_weights",
+    metadata,
+    sa.Column(
+        "model_version_id", sa.Integer, sa.ForeignKey("model_versions.id"), primary_key=True
+    ),
+    sa.Column("sha256", sa.String(64), nullable=False),
+    sa.Column("size", sa.BigInteger, nullable=False),
+    sa.Column("data", sa.LargeBinary, nullable=False),  # a torch.save file, plain data only
 )
 
 proposals = sa.Table(

@@ -5,6 +5,13 @@ read once (a damaged file is found now, not in the middle of labelling), the fil
 into ``images/`` by :func:`labeler.imagery.intake.copy_image` and the image and its tiles
 are written to the store in one transaction; a failure removes the copy again.
 
+A team sets an image root (``store.image_root``, a folder every machine mounts): the
+file is then copied there under its SHA-256 (:func:`labeler.imagery.intake.
+put_in_image_root`) and found there by every machine. The SHA-256 is read once, in
+chunks, and kept with the file's size; an image is "already in the project" only when a
+stored image has the same SHA-256, and when this machine cannot reach the stored copy,
+the file given is put under the root for the team.
+
 Capture dates. Images of the same ground from different dates give ``labeler adapt``
 its revisit pairs. An image's capture date is the one given (``labeler add --date``), else
 the date its TIFF/EXIF tags give (:func:`labeler.imagery.capture_date.read_capture_time`);
@@ -26,7 +33,13 @@ from pathlib import Path
 from labeler.errors import InputError, LabelerError
 from labeler.fileio import sha256_file
 from labeler.imagery.capture_date import read_capture_time
-from labeler.imagery.intake import ImageCopy, copy_image, reserve_image_name
+from labeler.imagery.intake import (
+    ROOT_PREFIX,
+    ImageCopy,
+    copy_image,
+    put_in_image_root,
+    reserve_image_name,
+)
 from labeler.imagery.read import open_image
 from labeler.imagery.tiling import tile_grid
 from labeler.project import Project
@@ -229,15 +242,18 @@ def _add_one(
     with open_image(src, max_pixels=settings.tiles.max_image_px) as reader:
         info = reader.info
         sha = sha256_file(src)
+        size = src.stat().st_size
         existing = store.image_by_sha(sha)
         if existing is not None:
             if captured is not None:
                 set_capture_date(project, existing.id, captured, source="given")
+            shared = _share_missing(project, existing, src)
             return AddResult(
                 src,
                 "skipped",
                 existing.name,
-                message=f"{src}: already in the project as {existing.name!r} (same content)",
+                message=f"{src}: already in the project as {existing.name!r} (same content)"
+                + ("; put under the shared image root for the team" if shared else ""),
                 captured=captured,
                 date_source="given" if captured is not None else "",
             )
@@ -255,7 +271,11 @@ def _add_one(
     with claimed:
         copied: ImageCopy | None = None
         stored_path = str(src.resolve())
-        if copy:
+        root = project.image_root
+        if copy and root is not None:
+            kept, copied = put_in_image_root(src, root, sha256=sha)
+            stored_path = ROOT_PREFIX + kept.relative_to(root).as_posix()
+        elif copy:
             copied = copy_image(src, project.images_dir, name, sha256=sha)
             stored_path = str(copied.image.relative_to(project.root))
         g = info.georef
@@ -272,16 +292,38 @@ def _add_one(
                     crs=None if g is None else g.crs,
                     transform=None if g is None else g.coefficients,
                     georef_source=None if g is None else g.source,
+                    size=size,
                 ),
                 windows,
                 overlap_share=settings.agreement.overlap_share,
                 overlap_seed=settings.picker.seed,
             )
         except BaseException:
-            if copied is not None:
+            # a copy under the root is the team's once a stored image names its content
+            if copied is not None and (root is None or store.image_by_sha(sha) is None):
                 copied.remove()
             raise
     known.add(name)
     if when is not None:
         set_capture_date(project, record.id, when, source=source)
     return AddResult(src, "added", name, tiles=len(windows), captured=when, date_source=source)
+
+
+def _share_missing(project: Project, image, src: Path) -> bool:
+    """Put ``src`` under the image root when this machine cannot reach ``image``'s file.
+
+    ``src`` has the stored image's SHA-256 (the caller checked). Returns True when a
+    copy was made.
+    """
+    root = project.image_root
+    if root is None or project.read_only:
+        return False
+    try:
+        if project.image_path(image).is_file():
+            return False  # reachable and unchanged
+    except InputError:
+        pass
+    if not (image.path.startswith(ROOT_PREFIX) or not Path(image.path).is_absolute()):
+        return False  # an in-place file elsewhere: the team must put it back itself
+    _, copied = put_in_image_root(src, root, sha256=image.sha256)
+    return copied is not None

@@ -1,10 +1,11 @@
 """Encoder versions of a project: the ImageNet-1k encoder and every adapted one.
 
 ``labeler adapt`` (:mod:`labeler.workflow.adapting`) keeps each adapted encoder as a
-weights file ``<project>/models/encoder-<n>.pt`` (written atomically, read with
-``torch.load(..., weights_only=True)``; :mod:`labeler.model.adapted`) and a model-version
-row of kind ``"encoder"`` naming the file, the encoder version and how it was made.
-Older versions stay on disk and selectable; retrain and propose use the newest one unless
+model-version row of kind ``"encoder"`` (``encoder-<n>``, numbered by the database) with
+its weights file's bytes in the project's database, so every machine of a team can use
+it; each machine reads them through its own copy ``<project>/models/encoder-<sha256[:12]>.pt``
+(written once, read with ``torch.load(..., weights_only=True)``;
+:mod:`labeler.model.adapted`). Older versions stay in the database and selectable; retrain and propose use the newest one unless
 told otherwise (:func:`labeler.workflow.features.encoder_and_cache`), and a head always
 reads the encoder version it was trained on.
 
@@ -14,10 +15,12 @@ A version is chosen by the name of its row (``"encoder-2"``), by its version str
 
 from __future__ import annotations
 
+import uuid
 from collections.abc import Mapping
 from typing import TYPE_CHECKING
 
 from labeler.errors import LabelerError
+from labeler.fileio import remove_file
 from labeler.project import Project
 from labeler.store.records import ModelVersionRecord
 
@@ -121,7 +124,7 @@ def load_encoder_version(
     record = find_encoder_version(project, which)
     weights = None
     if record is not None:
-        path = project.resolve(record.checkpoint or "", what=f"weights of encoder {record.name}")
+        path = project.model_file(record)
         try:
             weights = load_encoder_weights(path)
             encoder = trainable_encoder(weights) if trainable else inference_encoder(weights)
@@ -168,22 +171,27 @@ def save_encoder_version(
     Returns
     -------
     ModelVersionRecord
-        The new row (kind ``"encoder"``, ``checkpoint`` relative to the project).
+        The new row (kind ``"encoder"``, named ``encoder-<n>`` by the database;
+        ``checkpoint`` is this machine's copy, relative to the project).
     """
     from labeler.model.adapted import adapted_version, save_encoder_weights
+    from labeler.model.checkpoint import keep_weights_file
 
     version = adapted_version(root_version, state)
-    n = len(encoder_versions(project)) + 1
-    name = f"{ENCODER_KIND}-{n}"
-    path = project.models_dir / f"{name}.pt"
-    while path.exists():  # never overwrite an older version's file
-        n += 1
-        name = f"{ENCODER_KIND}-{n}"
-        path = project.models_dir / f"{name}.pt"
-    save_encoder_weights(path, state, version=version, base_version=base_version, details=details)
+    # the weights file is made in a scratch file, kept by the database (which numbers
+    # the version) and copied to this machine's models/ under its SHA-256
+    scratch = project.models_dir / f".{ENCODER_KIND}-{uuid.uuid4().hex}.partial"
+    try:
+        save_encoder_weights(
+            scratch, state, version=version, base_version=base_version, details=details
+        )
+        data = scratch.read_bytes()
+    finally:
+        remove_file(scratch)
+    path = keep_weights_file(project.models_dir, ENCODER_KIND, data)
     return project.store.add_model_version(
         kind=ENCODER_KIND,
-        name=name,
+        weights=data,
         encoder_version=version,
         checkpoint=str(path.relative_to(project.root)),
         details={"base_version": base_version, **dict(details)},

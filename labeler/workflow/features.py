@@ -179,7 +179,7 @@ def read_checkpoint(project: Project, model: ModelVersionRecord):
     meta : labeler.model.checkpoint.CheckpointMeta
         What was saved with it (encoder version, tuned stages, ...).
     path : Path
-        The checkpoint file.
+        This machine's copy of the checkpoint (written from the database when new).
 
     Raises
     ------
@@ -188,13 +188,17 @@ def read_checkpoint(project: Project, model: ModelVersionRecord):
     """
     from labeler.model.checkpoint import load_checkpoint
 
-    path = project.resolve(model.checkpoint or "", what=f"checkpoint of model {model.name}")
+    try:  # the weights the database keeps (read in from this machine's file if older)
+        data = project.model_weights(model)
+    except LabelerError as exc:
+        raise LabelerError(f"cannot load the model {model.name} ({exc})") from None
     try:
-        head, meta = load_checkpoint(path)
+        head, meta = load_checkpoint(f"model {model.name} in the database", data=data)
     except (OSError, ValueError, RuntimeError) as exc:
         raise LabelerError(
-            f"{path}: cannot load the model {model.name} ({exc}); run 'labeler retrain'"
+            f"cannot load the model {model.name} ({exc}); run 'labeler retrain'"
         ) from None
+    path = project.model_file(model, data=data)
     return head, meta, path
 
 

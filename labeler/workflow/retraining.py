@@ -184,8 +184,9 @@ def _read_tiles(
 def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainResult:
     """Train a new head on every saved mask and record it as a model version.
 
-    The head's checkpoint (with the fine-tuned encoder stages, if any) is written to
-    ``<project>/models/head-<n>.pt``.
+    The head's checkpoint (with the fine-tuned encoder stages, if any) is kept in the
+    project's database, as version ``head-<n>`` numbered by the database, and copied to
+    ``<project>/models/head-<sha256[:12]>.pt`` on this machine.
 
     Parameters
     ----------
@@ -208,7 +209,7 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
         When there are fewer labelled tiles than the ``model.min_labelled_tiles``
         setting (the message says how many more are needed).
     """
-    from labeler.model.checkpoint import save_checkpoint
+    from labeler.model.checkpoint import checkpoint_bytes, keep_weights_file
     from labeler.model.fit import fit_head
 
     started = time.perf_counter()
@@ -253,28 +254,27 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
     tail = result.tail
     encoder_version = tail.version if tail is not None else encoder.version
     store = project.store
-    n = len([m for m in store.model_versions() if m.kind == "head"]) + 1
-    name = f"head-{n}"
-    ckpt = project.models_dir / f"{name}.pt"
     val = {
         c.name: (None if math.isnan(v) else float(v))
         for c, v in zip(schema.classes, result.val_iou, strict=True)
     }
     finite = [v for v in val.values() if v is not None]
     miou = float(np.mean(finite)) if finite else None
-    save_checkpoint(
-        ckpt,
+    weights = checkpoint_bytes(
         result.head,
         encoder_version=encoder_version,
         val_iou=result.val_iou,
-        extra={"name": name, "n_train": result.n_train, "n_val": result.n_val},
+        extra={"n_train": result.n_train, "n_val": result.n_val},
         encoder_tail=tail.state() if tail is not None else None,
     )
+    # the database keeps the weights and numbers the version (head-<n>) for the team;
+    # this machine's copy is named by their SHA-256
+    ckpt = keep_weights_file(project.models_dir, "head", weights)
     n_full = sum(it.kind == "full" for it in items)
     seconds = time.perf_counter() - started
     mv = store.add_model_version(
         kind="head",
-        name=name,
+        weights=weights,
         encoder_version=encoder_version,
         checkpoint=str(ckpt.relative_to(project.root)),
         n_train_tiles=result.n_train,

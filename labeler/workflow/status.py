@@ -54,6 +54,11 @@ class ProjectStatus:
         The settings the team shares, kept in the database (empty when none are).
     holds : list of (int, str, float)
         Tile id, holder and minutes left before the hold lapses without a heartbeat.
+    image_root : Path or None
+        Where this machine reaches the team's shared image folder (None: not set).
+    weights_missing : list of str
+        Trained versions whose weights the database does not hold yet (made before it
+        kept them; ``labeler upgrade`` on the machine that made them reads them in).
     """
 
     folder: Path
@@ -72,6 +77,8 @@ class ProjectStatus:
     shared: bool = False
     team: dict = field(default_factory=dict)
     holds: list[tuple[int, str, float]] = field(default_factory=list)
+    image_root: Path | None = None
+    weights_missing: list[str] = field(default_factory=list)
 
 
 def project_status(project: Project) -> ProjectStatus:
@@ -123,4 +130,8 @@ def project_status(project: Project) -> ProjectStatus:
         shared=not store.is_sqlite,
         team=store.team_settings() or {},
         holds=[(tid, who, left / 60) for tid, who, left in store.current_holds()],
+        image_root=project.image_root,
+        weights_missing=[
+            m.name for m in models if m.kind != "cold_start" and m.weights_sha256 is None
+        ],
     )

@@ -38,7 +38,8 @@ def test_reopen_and_schema_version_checked(tmp_path, store):
     with store.engine.begin() as conn:
         conn.execute(t.meta.update().where(t.meta.c.key == "schema_version").values(value="99"))
     with pytest.raises(
-        LabelerError, match=r"database schema version 99, this labeler reads 2; use the matching"
+        LabelerError,
+        match=rf"database schema version 99, this labeler reads {t.SCHEMA_VERSION}; use the matching",
     ):
         Store(url)
 

@@ -63,7 +63,9 @@ def make_v1_database(url):
 
 def test_a_first_release_project_opens_after_an_upgrade(store_url, backend):
     make_v1_database(store_url)
-    with pytest.raises(LabelerError, match=r"schema version 1, this labeler reads 2.*labeler upgrade"):
+    with pytest.raises(
+        LabelerError, match=rf"schema version 1, this labeler reads {t.SCHEMA_VERSION}.*labeler upgrade"
+    ):
         Store(store_url)
     result = upgrade_database(store_url)
     assert (result.from_version, result.to_version) == (1, t.SCHEMA_VERSION)
@@ -88,6 +90,9 @@ def test_a_first_release_project_opens_after_an_upgrade(store_url, backend):
         rec = store.save_annotation(tiles[0].id, "ines", np.zeros(tiles[0].shape, np.uint8),
                                     parent_version=1, source=source)
         assert rec.version == 2 and store.annotation_history(tiles[0].id)[-1].source == source
+        # the release's cold-start version is numbered 1 of its kind; a new head is head-1
+        assert [(m.kind, m.number) for m in store.model_versions()] == [("cold_start", 1)]
+        assert store.add_model_version(kind="head", weights=b"x").name == "head-1"
     engine = sa.create_engine(store_url)
     with engine.connect() as conn:
         assert conn.execute(sa.text("SELECT version_num FROM alembic_version")).scalar() == (
@@ -107,5 +112,6 @@ def test_new_databases_are_stamped_with_the_newest_revision(store_url):
     Store(store_url, create=True).close()
     engine = sa.create_engine(store_url)
     with engine.connect() as conn:
-        assert conn.execute(sa.text("SELECT version_num FROM alembic_version")).scalar() == "0002"
+        assert conn.execute(sa.text("SELECT version_num FROM alembic_version")).scalar() == "0003"
+        assert head_revision() == "0003"
     engine.dispose()

@@ -230,3 +230,43 @@ def test_concurrent_writers_never_save_on_a_stale_parent(store_url, tmp_path, wr
     stale = [a for a in history if a.parent_version != (a.version - 1 or None)]
     assert stale == []
     assert [a.version for a in history] == list(range(1, writers * saves + 1))
+
+
+NUMBERER = textwrap.dedent(
+    """
+    import os, sys
+    from labeler.store import Store
+    url, ready, go, count = sys.argv[1], sys.argv[2], sys.argv[3], int(sys.argv[4])
+    store = Store(url)
+    open(ready, "w").close()                     # ready-file: connected
+    while not os.path.exists(go):                # the test's word: all are connected
+        os.sched_yield()
+    names = [store.add_model_version(kind="head", weights=b"w" * 8).name for _ in range(count)]
+    print(" ".join(names), flush=True)
+    """
+)
+
+
+def test_two_machines_training_at_once_get_distinct_numbers(store_url, tmp_path):
+    """The database numbers versions: 2 writers x 20 heads are head-1 ... head-40."""
+    make_store(store_url).close()
+    go = tmp_path / "go"
+    procs = []
+    with contextlib.ExitStack() as stack:
+        for i in range(2):
+            ready = tmp_path / f"ready-{i}"
+            procs.append((ready, stack.enter_context(subprocess.Popen(
+                [sys.executable, "-c", NUMBERER, store_url, str(ready), str(go), "20"],
+                stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=_env(),
+            ))))
+        for ready, p in procs:
+            while not ready.exists():
+                assert p.poll() is None, p.stderr.read()
+                os.sched_yield()
+        go.touch()
+        outs = [p.communicate(timeout=120) for _, p in procs]
+    assert [p.returncode for _, p in procs] == [0, 0], outs
+    names = [n for out, _ in outs for n in out.split()]
+    assert sorted(names) == sorted(f"head-{n}" for n in range(1, 41))
+    with Store(store_url) as store:
+        assert sorted(m.number for m in store.model_versions()) == list(range(1, 41))

@@ -140,13 +140,33 @@ def test_a_tuned_encoder_version_round_trips_through_the_store(tuned):
     assert tuned_cache.load(tile_key(image, tile), tile_shape=tile.shape) is None
 
 
+def _replace_weights(project, version, payload):
+    """Put other weights in the database in place of a version's (a damaged project)."""
+    import hashlib
+    import io
+
+    import sqlalchemy as sa
+
+    buf = io.BytesIO()
+    torch.save(payload, buf)
+    data = buf.getvalue()
+    engine = sa.create_engine(project.store.url)
+    with engine.begin() as conn:
+        conn.execute(
+            sa.text("UPDATE model_weights SET data = :d, sha256 = :s, size = :n "
+                    "WHERE model_version_id = :i"),
+            {"d": data, "s": hashlib.sha256(data).hexdigest(), "n": len(data), "i": version.id},
+        )
+    engine.dispose()
+
+
 def test_propose_refuses_a_tail_of_another_base_encoder(tuned):
     project = tuned
     result = retrain(project)
     path = project.root / result.model_version.checkpoint
     payload = torch.load(path, weights_only=True)
     payload["encoder_tail"]["base_version"] = "lite0-000000000000-r1"
-    torch.save(payload, path)
+    _replace_weights(project, result.model_version, payload)  # the team's copy
     with pytest.raises(
         LabelerError,
         match=r"cannot load the model head-1 \(encoder tail: trained on encoder lite0-0+-r1",
@@ -160,7 +180,7 @@ def test_propose_refuses_a_head_of_another_encoder_version(three_tiles):
     path = project.root / result.model_version.checkpoint
     payload = torch.load(path, weights_only=True)
     payload["encoder_version"] = "lite0-000000000000-r1-tail2-abc"
-    torch.save(payload, path)
+    _replace_weights(project, result.model_version, payload)  # the team's copy
     with pytest.raises(
         LabelerError,
         match=r"model head-1 was trained on encoder lite0-0+-r1-tail2-abc, the installed encoder gives lite0-",
