@@ -35,13 +35,18 @@ NOC_CAP = 20
 
 
 def tile_iou(truth: np.ndarray, mask: np.ndarray, *, n_classes: int) -> float:
-    """Mean IoU of a tile's mask against its truth, over the classes present.
+    """Mean IoU of a tile's mask against its truth, over the classes present in the truth.
 
-    The mean runs over the classes present in the truth or in the mask (Long, Shelhamer &
-    Darrell 2015, as :func:`labeler.agreement.mean_iou`), from
-    :func:`labeler.agreement.iou_per_class`. Truth pixels of 255 (unlabelled)
-    are left out; a mask pixel of 255 where the truth has a class counts as wrong (it
-    labels nothing).
+    The interactive protocol (Xu et al. 2016) scores one binary object; a tile holds several
+    classes, so the tile's score is the per-class IoU (Jaccard index, TP / (TP + FP + FN)
+    from :func:`labeler.metrics.iou_per_class`) averaged over the classes present in the
+    tile's truth: the per-image class-averaged Jaccard of Csurka, Larlus & Perronnin (2013,
+    "What is a good evaluation measure for semantic segmentation?", BMVC), who argue for
+    per-image scores. A class only the mask holds adds no term of its own (it would count
+    0 and cap the tile at (K-1)/K for one stray pixel); its pixels still count as false
+    negatives of the truth classes they cover. Truth pixels of 255 (unlabelled) are left
+    out, as the reference implementations of the protocol leave out the ignore label; a
+    mask pixel of 255 where the truth has a class counts as wrong (it labels nothing).
 
     Parameters
     ----------
@@ -71,8 +76,8 @@ def tile_iou(truth: np.ndarray, mask: np.ndarray, *, n_classes: int) -> float:
     m = np.where(m == UNLABELLED, n_classes, m)
     cm = confusion_matrix(t[labelled], m[labelled], n_classes=n_classes + 1, ignore=None)
     iou = iou_per_class(cm)[:n_classes]
-    present = ~np.isnan(iou)
-    return float(iou[present].mean()) if present.any() else 1.0
+    present = cm[:n_classes].sum(axis=1) > 0  # classes of the truth
+    return float(iou[present].mean())
 
 
 def noc_at(

@@ -28,15 +28,27 @@ def test_tile_iou_of_the_worked_overlap_example():
     assert got == pytest.approx(0.847332, abs=1e-6)
 
 
-def test_tile_iou_matches_sklearn_macro_jaccard_over_present_classes():
+def test_tile_iou_matches_sklearn_macro_jaccard_over_the_truth_classes():
     rng = np.random.default_rng(5)
     for _ in range(20):
-        truth = rng.integers(0, 4, size=(9, 11)).astype(np.uint8)
-        mask = rng.integers(0, 3, size=(9, 11)).astype(np.uint8)
-        present = sorted(set(truth.ravel()) | set(mask.ravel()))
-        # oracle: scikit-learn jaccard_score, macro mean over the classes present
+        truth = rng.integers(0, 3, size=(9, 11)).astype(np.uint8)
+        mask = rng.integers(0, 4, size=(9, 11)).astype(np.uint8)
+        present = sorted(set(truth.ravel().tolist()))
+        # oracle: scikit-learn jaccard_score, macro mean over the classes of the truth
+        # (per-image class average, Csurka, Larlus & Perronnin 2013, BMVC)
         expected = jaccard_score(truth.ravel(), mask.ravel(), labels=present, average="macro")
         assert tile_iou(truth, mask, n_classes=4) == pytest.approx(expected, abs=1e-12)
+
+
+def test_a_class_only_the_mask_holds_adds_no_term_but_its_pixels_count_as_wrong():
+    # by hand: truth 10 crop + 90 soil; the mask has the crop and one stray symptom pixel
+    # on soil: soil IoU 89 / 90, crop 1.0, mean (89 / 90 + 1) / 2; a term for symptom
+    # (IoU 0) would have made it at most 2 / 3
+    truth = np.zeros((10, 10), np.uint8)
+    truth[0] = 1
+    mask = truth.copy()
+    mask[5, 5] = 3
+    assert tile_iou(truth, mask, n_classes=4) == pytest.approx((89 / 90 + 1) / 2, abs=1e-12)
 
 
 def test_tile_iou_leaves_unlabelled_truth_out_and_counts_unlabelled_mask_as_wrong():
