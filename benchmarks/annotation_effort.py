@@ -76,26 +76,37 @@ GUIDED_MODES = ("key", "scribble")
 _CAP = 20
 
 
-def summarise_runs(runs: Sequence) -> dict:
+def summarise_runs(runs: Sequence, *, bounds: Sequence[float] | None = None) -> dict:
     """NoC@90 figures of protocol runs (:class:`labeler.demo.protocol.ProtocolRun`).
+
+    Parameters
+    ----------
+    runs : sequence of ProtocolRun
+    bounds : sequence of float, optional
+        Per run, :func:`labeler.demo.effort.region_fix_bound` of its starting mask.
 
     Returns
     -------
     dict
         ``mean`` actions (capped tiles count 20), ``capped`` (tiles at 20), ``tiles``,
-        ``accepted`` (tiles good enough before any action), ``iou_at_cap`` (mean tile IoU
-        at the end of the session).
+        ``accepted`` (tiles good enough before any action), ``iou_start`` and
+        ``iou_at_cap`` (mean tile IoU before the first and after the last action), and
+        with ``bounds`` ``iou_20_regions_fixed`` (their mean).
     """
     from labeler.demo.effort import summarise_noc
 
     s = summarise_noc([r.ious for r in runs], cap=_CAP)
-    return {
+    out = {
         "mean": round(s.mean, 2),
         "capped": s.n_capped,
         "tiles": s.n_tiles,
         "accepted": s.n_unchanged,
+        "iou_start": round(float(np.mean([r.ious[0] for r in runs])), 3),
         "iou_at_cap": round(float(np.mean([r.ious[-1] for r in runs])), 3),
     }
+    if bounds is not None:
+        out["iou_20_regions_fixed"] = round(float(np.mean(bounds)), 3)
+    return out
 
 
 def picked_counts(n_pool: int, shares: Sequence[float], *, least: int) -> list[int]:
@@ -162,6 +173,7 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
             seed: int = 0, log: Callable[[str], None] = print, settings=None) -> dict:
     """The JSON line of one dataset (see the module notes); ``settings`` are the
     :class:`labeler.settings.ModelSettings` of training (the project's defaults if None)."""
+    from labeler.demo.effort import region_fix_bound
     from labeler.demo.protocol import ProtocolOptions, run_protocol
     from labeler.masks.coldstart import cold_start_proposal
     from labeler.model.ontile import TileLearner
@@ -183,10 +195,17 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
                 learner=None if learners is None else learners[i]))
         return out
 
+    def bounds(starts):
+        k = max(class_indices) + 1
+        return [region_fix_bound(heldout.masks[r], np.zeros_like(heldout.masks[r])
+                                 if s is None else s, n_classes=k, n_regions=_CAP)
+                for r, s in zip(rows, starts, strict=True)]
+
     line: dict = {"dataset": name}
-    line["noc90_empty"] = summarise_runs(runs([None] * len(rows)))
-    line["noc90_cold"] = summarise_runs(
-        runs([cold_start_proposal(heldout.images[r]) for r in rows]))
+    empty = [None] * len(rows)
+    line["noc90_empty"] = summarise_runs(runs(empty), bounds=bounds(empty))
+    cold = [cold_start_proposal(heldout.images[r]) for r in rows]
+    line["noc90_cold"] = summarise_runs(runs(cold), bounds=bounds(cold))
     after, guided, accepted = {}, {}, {}
     modes: dict[str, dict] = {m: {} for m in GUIDED_MODES}
     fit_seconds: list[float] = []
@@ -197,7 +216,7 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
                               images=[heldout.images[r] for r in rows],
                               mc_samples=mc_samples, seed=0)
         starts = [p.mask for p in props]
-        plain = summarise_runs(runs(starts))
+        plain = summarise_runs(runs(starts), bounds=bounds(starts))
         after[key] = plain
         accepted[key] = round(plain["accepted"] / plain["tiles"], 3)
         learners = []
