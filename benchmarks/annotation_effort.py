@@ -90,12 +90,14 @@ def summarise_runs(runs: Sequence, *, bounds: Sequence[float] | None = None) -> 
     dict
         ``mean`` actions (capped tiles count 20), ``capped`` (tiles at 20), ``tiles``,
         ``accepted`` (tiles good enough before any action), ``iou_start`` and
-        ``iou_at_cap`` (mean tile IoU before the first and after the last action), and
-        with ``bounds`` ``iou_20_regions_fixed`` (their mean).
+        ``iou_at_cap`` (mean tile IoU before the first and after the last action),
+        ``noc85_mean`` and ``noc85_capped`` (the same to IoU 0.85, the literature's other
+        usual threshold), and with ``bounds`` ``iou_20_regions_fixed`` (their mean).
     """
     from labeler.demo.effort import summarise_noc
 
     s = summarise_noc([r.ious for r in runs], cap=_CAP)
+    s85 = summarise_noc([r.ious for r in runs], threshold=0.85, cap=_CAP)
     out = {
         "mean": round(s.mean, 2),
         "capped": s.n_capped,
@@ -103,6 +105,8 @@ def summarise_runs(runs: Sequence, *, bounds: Sequence[float] | None = None) -> 
         "accepted": s.n_unchanged,
         "iou_start": round(float(np.mean([r.ious[0] for r in runs])), 3),
         "iou_at_cap": round(float(np.mean([r.ious[-1] for r in runs])), 3),
+        "noc85_mean": round(s85.mean, 2),
+        "noc85_capped": s85.n_capped,
     }
     if bounds is not None:
         out["iou_20_regions_fixed"] = round(float(np.mean(bounds)), 3)
