@@ -74,4 +74,4 @@ def test_plot_writes_a_png(tmp_path):
     path = tmp_path / "effort.png"
     plot([_line("demo"), _line("peanut")], path)
     with Image.open(path) as im:
-        assert im.format == "PNG" and im.size == (1200, 400)
+        assert im.format == "PNG" and im.size == (1200, 750)  # 6 x 7.5 in per dataset at 100 dpi
