@@ -170,11 +170,12 @@ class ProtocolOptions:
     tools : tuple of str
         Tools to try, in order, from :data:`TOOLS`.
     fill_precision : float
-        Least share of the target class in the region a fill would take for a fill.
+        Least share of the target class in the region a fill would take for the fill to
+        be considered at all.
     scribble_radius_px : float
         Radius of a scribble stroke (at most the interior depth less half a pixel).
     stroke_length_px : float
-        Longest stroke along the error region's axis.
+        Longest stroke, along the error region's axis or traced along its middle.
     snap : bool
         Refine with superpixel snapping.
     relearn : {"off", "scribble", "key"}
