@@ -45,6 +45,8 @@ With and without learning on the tile
     mode ``--guided-mode`` names (``key``: the relearn key after each kept correction;
     ``scribble``: every finished scribble re-fits). Both modes are measured and reported
     under ``guided_modes``; the editor's default follows the better of the two.
+    ``refit_seconds_*`` time the re-fit alone; ``relearn_key_seconds_*`` one whole press
+    of the editor's relearn key (what the annotator waits for), once per tile and share.
 
 Datasets
     ``demo``: the committed invented plots of ``demo_fields/`` (4 pool plots, 2 held-out
@@ -179,6 +181,29 @@ def _heads_in_picker_order(pool: TileSet, counts, *, class_indices, encoder, mc_
     return heads
 
 
+def _time_relearn_key(heldout: TileSet, rows, starts, learners) -> list[float]:
+    """Seconds of one press of the editor's relearn key per tile, as the annotator waits
+    for it: :meth:`labeler.editor.state.EditorState.relearn` (marks, the re-fit, the new
+    layers, the history entry) after the protocol's first correction of the proposal."""
+    from labeler.demo.clicks import next_click
+    from labeler.editor.state import EditorState
+
+    out = []
+    for r, start, learner in zip(rows, starts, learners, strict=True):
+        state = EditorState(heldout.images[r], start)
+        state.learner = learner
+        click = next_click(heldout.masks[r], start)
+        if click is None:
+            continue
+        state.active_class = click.cls
+        state.radius = max(click.depth_px - 0.5, 0.5)
+        state.paint([click.point])
+        t0 = time.perf_counter()
+        state.relearn()
+        out.append(time.perf_counter() - t0)
+    return out or [float("nan")]
+
+
 def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encoder,
             n_tiles: int, shares=SHARES, guided_mode: str = "key", mc_samples: int = 8,
             seed: int = 0, log: Callable[[str], None] = print, settings=None) -> dict:
@@ -221,6 +246,7 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
     modes: dict[str, dict] = {m: {} for m in GUIDED_MODES}
     fit_seconds: list[float] = []
     setup_seconds: list[float] = []
+    key_seconds: list[float] = []
     for share, n, head in zip(shares, counts, heads, strict=True):
         key = f"{share:.2f}"
         props = propose_tiles(head, [heldout.features[r] for r in rows],
@@ -243,6 +269,7 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
                 return out
 
             learners.append(fit)
+        key_seconds.extend(_time_relearn_key(heldout, rows, starts, learners))
         for mode in GUIDED_MODES:
             modes[mode][key] = summarise_runs(runs(starts, mode, learners))
         guided[key] = modes[guided_mode][key]
@@ -259,6 +286,8 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
         "refit_seconds_median": round(float(np.median(fit_seconds)), 3) if fit_seconds else None,
         "refit_seconds_max": round(float(np.max(fit_seconds)), 3) if fit_seconds else None,
         "refit_setup_seconds_median": round(float(np.median(setup_seconds)), 3),
+        "relearn_key_seconds_median": round(float(np.median(key_seconds)), 3),
+        "relearn_key_seconds_max": round(float(np.max(key_seconds)), 3),
     })
     return line
 
