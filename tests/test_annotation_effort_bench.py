@@ -40,7 +40,12 @@ def test_summarise_runs_counts_actions_to_090_with_the_cap():
     s = summarise_runs(runs)
     # 0 actions, 2 actions, never: 20 (the cap)
     assert s == {"mean": round((0 + 2 + 20) / 3, 2), "capped": 1, "tiles": 3, "accepted": 1,
-                 "iou_at_cap": round((0.95 + 0.91 + 0.1) / 3, 3)}
+                 "iou_start": round((0.95 + 0.2 + 0.1) / 3, 3),
+                 "iou_at_cap": round((0.95 + 0.91 + 0.1) / 3, 3),
+                 # to 0.85: 0 actions, 2 actions (0.5 < 0.85 <= 0.91), never: 20
+                 "noc85_mean": round((0 + 2 + 20) / 3, 2), "noc85_capped": 1}
+    with_bounds = summarise_runs(runs, bounds=[1.0, 0.8, 0.3])
+    assert with_bounds == {**s, "iou_20_regions_fixed": round(2.1 / 3, 3)}
 
 
 def _line(name):
@@ -69,4 +74,4 @@ def test_plot_writes_a_png(tmp_path):
     path = tmp_path / "effort.png"
     plot([_line("demo"), _line("peanut")], path)
     with Image.open(path) as im:
-        assert im.format == "PNG" and im.size == (1200, 400)
+        assert im.format == "PNG" and im.size == (1200, 750)  # 6 x 7.5 in per dataset at 100 dpi

@@ -14,6 +14,11 @@ masks of several classes:
   region is padded with outside pixels, as the reference implementations do), ties:
   first in row-major order;
 * the action there uses the target class at that point.
+
+The strokes a person draws there (:mod:`labeler.demo.protocol` chooses among them):
+:func:`stroke_line` along the error region's long axis, :func:`traced_line` along its
+middle (a thin sliver along a plant's edge is traced, not crossed), each kept inside the
+target class, and :func:`footprint`, what the editor's brush paints along them.
 """
 
 from __future__ import annotations
@@ -22,10 +27,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import ndimage as ndi
+from skimage.morphology import skeletonize
 
 from labeler.classes import UNLABELLED
+from labeler.masks.edits import stroke_patch
 
-__all__ = ["ErrorClick", "next_click"]
+__all__ = ["ErrorClick", "next_click", "stroke_line", "traced_line", "footprint", "BRUSH_RADII"]
 
 _FOUR = ndi.generate_binary_structure(2, 1)
 
@@ -97,3 +104,120 @@ def next_click(target: np.ndarray, mask: np.ndarray) -> ErrorClick | None:
     i, j = np.unravel_index(int(depth.argmax()), depth.shape)
     point = (r0 + int(i), c0 + int(j))
     return ErrorClick(point, int(t[point]), float(depth[i, j]), region)
+
+
+def _axis(region: np.ndarray) -> np.ndarray:
+    """Unit ``(row, col)`` direction of the region's long axis (principal component)."""
+    coords = np.argwhere(region).astype(np.float64)
+    if len(coords) < 2:
+        return np.array([0.0, 1.0])
+    cov = np.cov(coords.T)
+    _, vectors = np.linalg.eigh(cov)
+    return vectors[:, -1]
+
+
+def stroke_line(
+    allowed: np.ndarray, click: ErrorClick, *, radius: float, length: float
+) -> list[tuple[float, float]]:
+    """Samples of a stroke through the click along the region's axis.
+
+    From the interior point the stroke extends one pixel at a time in both directions
+    while the footprint of the new segment (:func:`labeler.masks.edits.stroke_patch`,
+    what the editor paints) stays inside ``allowed``; at most ``length / 2`` each way.
+    """
+    shape = allowed.shape
+    direction = _axis(click.region)
+    start = (float(click.point[0]), float(click.point[1]))
+    sides: list[list[tuple[float, float]]] = []
+    for sign in (-1.0, 1.0):
+        side: list[tuple[float, float]] = []
+        last = start
+        for step in range(1, int(length // 2) + 1):
+            q = np.rint(np.asarray(start) + sign * step * direction)
+            p = (float(q[0]), float(q[1]))
+            if p == last:
+                continue
+            if not (0 <= p[0] < shape[0] and 0 <= p[1] < shape[1]):
+                break
+            patch = stroke_patch([last, p], radius=radius, shape=shape)
+            if not allowed[patch.slices][patch.mask].all():
+                break
+            side.append(p)
+            last = p
+        sides.append(side)
+    return [*reversed(sides[0]), start, *sides[1]]
+
+
+def traced_line(
+    allowed: np.ndarray, click: ErrorClick, *, radius: float, length: float
+) -> list[tuple[float, float]]:
+    """Samples of a stroke traced along the middle of the error region.
+
+    The walk starts at the skeleton pixel of the error region
+    (``skimage.morphology.skeletonize``; a region one pixel deep is taken whole) nearest
+    the interior point and follows unvisited skeleton pixels in both directions
+    (4-neighbours before diagonal ones), as a person traces a thin sliver
+    with the brush; it stops where the footprint of the next segment would leave
+    ``allowed``, at a branch end, or after ``length / 2`` samples each way.
+    """
+    shape = allowed.shape
+    # a region one pixel deep is its own middle (the skeleton would cut its corners)
+    skeleton = click.region if click.depth_px <= 1 else skeletonize(click.region)
+    if not skeleton.any():
+        return [(float(click.point[0]), float(click.point[1]))]
+    cells = np.argwhere(skeleton)
+    near = cells[int(((cells - np.asarray(click.point)) ** 2).sum(axis=1).argmin())]
+    start = (int(near[0]), int(near[1]))
+    # the stroke's first dab must fit too; else start at the interior point itself
+    dab = stroke_patch([start], radius=radius, shape=shape)
+    if not allowed[dab.slices][dab.mask].all():
+        start = (int(click.point[0]), int(click.point[1]))
+    visited = {start}
+    sides: list[list[tuple[float, float]]] = []
+    for _ in range(2):
+        side: list[tuple[float, float]] = []
+        last = start
+        for _ in range(int(length // 2)):
+            step = None
+            for dr, dc in ((0, 1), (1, 0), (0, -1), (-1, 0), (1, 1), (1, -1), (-1, 1), (-1, -1)):
+                q = (last[0] + dr, last[1] + dc)
+                if (0 <= q[0] < shape[0] and 0 <= q[1] < shape[1] and skeleton[q]
+                        and q not in visited):
+                    step = q
+                    break
+            if step is None:
+                break
+            patch = stroke_patch([last, step], radius=radius, shape=shape)
+            if not allowed[patch.slices][patch.mask].all():
+                break
+            visited.add(step)
+            side.append((float(step[0]), float(step[1])))
+            last = step
+        sides.append(side)
+    first = (float(start[0]), float(start[1]))
+    return [*reversed(sides[0]), first, *sides[1]]
+
+
+def footprint(points: list[tuple[float, float]], radius: float,
+              shape: tuple[int, int]) -> np.ndarray:
+    """What a brush stroke through ``points`` paints.
+
+    Parameters
+    ----------
+    points : list of (float, float)
+        ``(row, col)`` samples of the stroke.
+    radius : float
+        Brush radius, at least 0.5 px.
+    shape : (int, int)
+        ``(H, W)`` of the tile.
+
+    Returns
+    -------
+    painted : ndarray, shape (H, W), bool
+        :func:`labeler.masks.edits.stroke_patch` on the whole tile.
+    """
+    return stroke_patch(points, radius=radius, shape=shape).full(shape)
+
+
+#: Brush radii the annotator considers for a stroke (pixels), besides the interior depth.
+BRUSH_RADII = (0.5, 1.0, 1.5, 2.5, 3.5)

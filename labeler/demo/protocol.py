@@ -12,21 +12,26 @@ Where it acts
     (:func:`labeler.demo.clicks.next_click`).
 
 What it does there (the policy)
-    The tools are tried in the order of ``ProtocolOptions.tools`` (fill, scribble, brush
-    by default):
+    The annotator foresees what each tool of ``ProtocolOptions.tools`` would do at the
+    point, on copies of the editor's layers (a person who knows the tools foresees them),
+    and uses first the one that raises the tile's IoU with the target most per action;
+    a tool that would not raise it is not used:
 
-    * **fill**: used when the region the fill would take (the same-class region of the
+    * **fill** (one action): the region the fill would take (the same-class region of the
       mask bounded by colour edges, :func:`labeler.masks.edits.region_at` on the tile
-      image, as a person who knows the tool expects) is at least ``fill_precision`` of
-      the target class; then one fill click.
-    * **scribble**: a scribble of the target class through the interior point along the
-      error region's long axis, kept inside the target class, then refine (two actions).
-    * **brush**: a brush stroke along the same line, its radius the interior depth less
-      half a pixel, so it covers the point's neighbourhood and never leaves the target
-      class. It always helps, so it ends the list.
+      image); considered only when at least ``fill_precision`` of it is the target class.
+    * **scribble** + refine (two actions): a scribble of the target class through the
+      interior point along the error region's long axis, kept inside the target class,
+      then refine (:func:`labeler.masks.refine.refine_random_walker`, as the editor runs it).
+    * **brush** (one action): the best of a stroke along the error region's long axis
+      (:func:`labeler.demo.clicks.stroke_line`) and one traced along its middle
+      (:func:`labeler.demo.clicks.traced_line`, how a person fixes a thin sliver along a
+      plant's edge), with the radius of the interior depth less half a pixel or one of
+      :data:`labeler.demo.clicks.BRUSH_RADII` below it; the footprint never leaves the
+      target class, so it always helps.
 
-    A fill or refine that does not raise the tile's IoU with the target is taken back with
-    undo (one more action), as a person takes back an edit that made things worse, and the
+    An edit that does not raise the tile's IoU with the target after all (a re-fit on the
+    tile, which cannot be foreseen) is taken back with undo (one more action), and the
     next tool is tried at the same point. The session stops when the IoU reaches
     ``target_iou`` (0.90) or after ``max_actions`` (20) counted editor actions.
 
@@ -34,9 +39,10 @@ Learning on the tile (``ProtocolOptions.relearn``, with a ``learner`` passed to
 :func:`run_protocol`: the editor's :attr:`~labeler.editor.state.EditorState.learner`)
     * ``"off"``: never.
     * ``"scribble"``: every finished scribble re-fits the model on the tile's marks
-      (``EditorState.relearn_on_scribble``). The scribble alone is kept when it raised the
-      IoU and the interior point now has the target class (one action); otherwise refine
-      follows as above, and when neither helped both are taken back.
+      (``EditorState.relearn_on_scribble``); the scribble is tried first until two in a
+      row did not help on that tile, then the foreseen order rules. The scribble alone
+      is kept when it raised the IoU and the interior point now has the target class
+      (one action); otherwise refine follows, and when neither helped both are taken back.
     * ``"key"``: after every kept step the annotator presses the relearn key (one
       action), taking it back with undo when it did not raise the IoU; after two such
       failures in a row the key is not pressed again on that tile.
@@ -49,8 +55,8 @@ Noise (:class:`AnnotatorHabits`)
     missed small weeds, weed/crop confusion on small plants, lesions missed or enlarged).
     Several annotators with their own generators then differ as people do.
 
-IoU is :func:`labeler.demo.effort.tile_iou`: the mean over the classes present in the
-target or the mask.
+IoU is :func:`labeler.demo.effort.tile_iou`: the per-class IoU averaged over the classes
+present in the target.
 """
 
 from __future__ import annotations
@@ -63,10 +69,18 @@ from scipy import ndimage as ndi
 
 from labeler.classes import DEFAULT_SCHEMA, UNLABELLED, ClassSchema
 from labeler.demo.annotator import AnnotatorProfile, simulate_annotation
-from labeler.demo.clicks import ErrorClick, next_click
+from labeler.demo.clicks import (
+    BRUSH_RADII,
+    ErrorClick,
+    footprint,
+    next_click,
+    stroke_line,
+    traced_line,
+)
 from labeler.demo.effort import NOC_CAP, NOC_THRESHOLD, noc_at, tile_iou
 from labeler.editor.state import EditorState
-from labeler.masks.edits import region_at, stroke_patch
+from labeler.masks.edits import region_at
+from labeler.masks.refine import refine_random_walker
 
 __all__ = [
     "TOOLS",
@@ -156,11 +170,12 @@ class ProtocolOptions:
     tools : tuple of str
         Tools to try, in order, from :data:`TOOLS`.
     fill_precision : float
-        Least share of the target class in the region a fill would take for a fill.
+        Least share of the target class in the region a fill would take for the fill to
+        be considered at all.
     scribble_radius_px : float
         Radius of a scribble stroke (at most the interior depth less half a pixel).
     stroke_length_px : float
-        Longest stroke along the error region's axis.
+        Longest stroke, along the error region's axis or traced along its middle.
     snap : bool
         Refine with superpixel snapping.
     relearn : {"off", "scribble", "key"}
@@ -260,48 +275,6 @@ class ProtocolRun:
         return noc_at(self.ious, threshold=threshold, cap=cap)
 
 
-def _axis(region: np.ndarray) -> np.ndarray:
-    """Unit ``(row, col)`` direction of the region's long axis (principal component)."""
-    coords = np.argwhere(region).astype(np.float64)
-    if len(coords) < 2:
-        return np.array([0.0, 1.0])
-    cov = np.cov(coords.T)
-    _, vectors = np.linalg.eigh(cov)
-    return vectors[:, -1]
-
-
-def _stroke_line(
-    allowed: np.ndarray, click: ErrorClick, *, radius: float, length: float
-) -> list[tuple[float, float]]:
-    """Samples of a stroke through the click along the region's axis.
-
-    From the interior point the stroke extends one pixel at a time in both directions
-    while the footprint of the new segment (:func:`labeler.masks.edits.stroke_patch`,
-    what the editor paints) stays inside ``allowed``; at most ``length / 2`` each way.
-    """
-    shape = allowed.shape
-    direction = _axis(click.region)
-    start = (float(click.point[0]), float(click.point[1]))
-    sides: list[list[tuple[float, float]]] = []
-    for sign in (-1.0, 1.0):
-        side: list[tuple[float, float]] = []
-        last = start
-        for step in range(1, int(length // 2) + 1):
-            q = np.rint(np.asarray(start) + sign * step * direction)
-            p = (float(q[0]), float(q[1]))
-            if p == last:
-                continue
-            if not (0 <= p[0] < shape[0] and 0 <= p[1] < shape[1]):
-                break
-            patch = stroke_patch([last, p], radius=radius, shape=shape)
-            if not allowed[patch.slices][patch.mask].all():
-                break
-            side.append(p)
-            last = p
-        sides.append(side)
-    return [*reversed(sides[0]), start, *sides[1]]
-
-
 class _Session:
     """The loop of one tile: the editor state, the target and the IoU trace."""
 
@@ -314,6 +287,7 @@ class _Session:
         self.ious = [self.iou()]
         self.steps: list[ProtocolStep] = []
         self.key_failures = 0
+        self._brush_plan: tuple[float, list[tuple[float, float]], float] = (0.0, [], 0.5)
 
     def iou(self) -> float:
         return tile_iou(self.target, self.state.mask, n_classes=self.n_classes)
@@ -346,7 +320,7 @@ class _Session:
         k = click.cls
         allowed = self.target == k
         self.state.active_class = k
-        for tool in self.options.tools:
+        for tool in self._order(click, allowed):
             if self.budget <= 0:
                 return
             first = self.state.actions
@@ -354,12 +328,86 @@ class _Session:
             kept = self._use(tool, click, allowed, before)
             if kept is None:
                 continue  # the tool did not fit here; nothing was done
+            if tool == "scribble" and self.options.relearn == "scribble":
+                # like the key: after two scribbles in a row that did not help, the
+                # annotator stops reaching for the scribble first on this tile
+                self.key_failures = 0 if kept else self.key_failures + 1
             self.steps.append(
                 ProtocolStep(tool, click.point, k, self.state.actions - first, kept)
             )
             if kept:
                 self._press_relearn(click)
                 return
+
+    def _gain(self, changed: np.ndarray, cls: int) -> float:
+        """IoU gained if the pixels of ``changed`` took class ``cls``."""
+        if not changed.any():
+            return 0.0
+        mask = self.state.mask
+        mask[changed] = cls
+        return tile_iou(self.target, mask, n_classes=self.n_classes) - self.ious[-1]
+
+    def _order(self, click: ErrorClick, allowed: np.ndarray) -> list[str]:
+        """The tools to try at the click, the most IoU per action first (see the notes).
+
+        Fill, brush and scribble + refine are foreseen on copies of the layers, as a
+        person who knows the tools foresees what each does; a tool that would not raise
+        the IoU is left out. With ``relearn="scribble"`` the scribble's re-fit cannot be
+        foreseen, so the scribble comes first.
+        """
+        state, opts = self.state, self.options
+        self._brush_plan = self._plan_brush(click, allowed)
+        rates: dict[str, float] = {}
+        for tool in opts.tools:
+            if tool == "fill":
+                region = region_at(state.mask, click.point, connectivity=state.connectivity,
+                                   image=state.image).full(state.shape)
+                if allowed[region].mean() >= opts.fill_precision:
+                    rates[tool] = self._gain(region, click.cls)
+            elif tool == "brush":
+                rates[tool] = self._brush_plan[0]
+            elif opts.relearn == "scribble" and self.key_failures < 2:
+                rates[tool] = np.inf
+            else:
+                rates[tool] = self._scribble_gain(click, allowed) / 2.0
+        return sorted((t for t in opts.tools if rates.get(t, 0.0) > 0.0),
+                      key=lambda t: -rates[t])
+
+    def _plan_brush(self, click: ErrorClick, allowed: np.ndarray):
+        """The best brush stroke at the click: (IoU gain, points, radius).
+
+        Candidates: a stroke along the error region's long axis (:func:`stroke_line`) and
+        one traced along its middle (:func:`traced_line`), each with the radius of the
+        interior depth less half a pixel and with the radii of :data:`BRUSH_RADII` up to
+        it; every footprint stays inside the target class.
+        """
+        opts, shape = self.options, self.state.shape
+        deepest = max(click.depth_px - 0.5, 0.5)
+        radii = sorted({deepest, *(r for r in BRUSH_RADII if r < deepest)})
+        best: tuple[float, list[tuple[float, float]], float] = (0.0, [], 0.5)
+        for radius in radii:
+            for line in (stroke_line, traced_line):
+                points = line(allowed, click, radius=radius, length=opts.stroke_length_px)
+                gain = self._gain(footprint(points, radius, shape), click.cls)
+                if gain > best[0]:
+                    best = (gain, points, radius)
+        return best
+
+    def _scribble_points(self, click: ErrorClick, allowed: np.ndarray):
+        radius = min(self.options.scribble_radius_px, max(click.depth_px - 0.5, 0.5))
+        line = stroke_line(allowed, click, radius=radius,
+                            length=self.options.stroke_length_px)
+        return line, radius
+
+    def _scribble_gain(self, click: ErrorClick, allowed: np.ndarray) -> float:
+        """IoU gained by a scribble at the click followed by refine, foreseen."""
+        state = self.state
+        line, radius = self._scribble_points(click, allowed)
+        weak = state.weak_label.copy()
+        weak[footprint(line, radius, state.shape)] = click.cls
+        refined = refine_random_walker(state.image, state.mask, weak, band_px=state.band_px,
+                                       snap=self.options.snap)
+        return tile_iou(self.target, refined, n_classes=self.n_classes) - self.ious[-1]
 
     def _press_relearn(self, click: ErrorClick) -> None:
         """The relearn key after a kept step (``relearn="key"``)."""
@@ -392,9 +440,8 @@ class _Session:
         if tool == "scribble":
             if self.budget < 2:
                 return None
-            radius = min(opts.scribble_radius_px, max(click.depth_px - 0.5, 0.5))
+            line, radius = self._scribble_points(click, allowed)
             state.radius = radius
-            line = _stroke_line(allowed, click, radius=radius, length=opts.stroke_length_px)
             mask_before = state.mask
             state.scribble(line)
             self.note()
@@ -409,10 +456,11 @@ class _Session:
                 state.undo()  # the scribble's re-fit made things worse too
                 self.note()
             return kept or (relearned and after_scribble > before)
-        radius = max(click.depth_px - 0.5, 0.5)
+        _, points, radius = self._brush_plan
+        if not points:
+            return None
         state.radius = radius
-        state.paint(_stroke_line(allowed, click, radius=state.radius,
-                                 length=opts.stroke_length_px))
+        state.paint(points)
         self.note()
         return True
 

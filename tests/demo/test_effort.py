@@ -6,7 +6,14 @@ import numpy as np
 import pytest
 from sklearn.metrics import jaccard_score
 
-from labeler.demo.effort import NOC_CAP, NOC_THRESHOLD, noc_at, summarise_noc, tile_iou
+from labeler.demo.effort import (
+    NOC_CAP,
+    NOC_THRESHOLD,
+    noc_at,
+    region_fix_bound,
+    summarise_noc,
+    tile_iou,
+)
 
 
 def test_protocol_constants():
@@ -28,15 +35,27 @@ def test_tile_iou_of_the_worked_overlap_example():
     assert got == pytest.approx(0.847332, abs=1e-6)
 
 
-def test_tile_iou_matches_sklearn_macro_jaccard_over_present_classes():
+def test_tile_iou_matches_sklearn_macro_jaccard_over_the_truth_classes():
     rng = np.random.default_rng(5)
     for _ in range(20):
-        truth = rng.integers(0, 4, size=(9, 11)).astype(np.uint8)
-        mask = rng.integers(0, 3, size=(9, 11)).astype(np.uint8)
-        present = sorted(set(truth.ravel()) | set(mask.ravel()))
-        # oracle: scikit-learn jaccard_score, macro mean over the classes present
+        truth = rng.integers(0, 3, size=(9, 11)).astype(np.uint8)
+        mask = rng.integers(0, 4, size=(9, 11)).astype(np.uint8)
+        present = sorted(set(truth.ravel().tolist()))
+        # oracle: scikit-learn jaccard_score, macro mean over the classes of the truth
+        # (per-image class average, Csurka, Larlus & Perronnin 2013, BMVC)
         expected = jaccard_score(truth.ravel(), mask.ravel(), labels=present, average="macro")
         assert tile_iou(truth, mask, n_classes=4) == pytest.approx(expected, abs=1e-12)
+
+
+def test_a_class_only_the_mask_holds_adds_no_term_but_its_pixels_count_as_wrong():
+    # by hand: truth 10 crop + 90 soil; the mask has the crop and one stray symptom pixel
+    # on soil: soil IoU 89 / 90, crop 1.0, mean (89 / 90 + 1) / 2; a term for symptom
+    # (IoU 0) would have made it at most 2 / 3
+    truth = np.zeros((10, 10), np.uint8)
+    truth[0] = 1
+    mask = truth.copy()
+    mask[5, 5] = 3
+    assert tile_iou(truth, mask, n_classes=4) == pytest.approx((89 / 90 + 1) / 2, abs=1e-12)
 
 
 def test_tile_iou_leaves_unlabelled_truth_out_and_counts_unlabelled_mask_as_wrong():
@@ -91,3 +110,33 @@ def test_summarise_noc():
 def test_noc_errors(call, match):
     with pytest.raises(ValueError, match=match):
         call()
+
+
+def test_region_fix_bound_sets_the_largest_error_regions_right_first():
+    # by hand: truth 20 x 20 soil with a 6 x 6 crop square (36 px) and a 2 x 2 weed
+    # square (4 px); the start misses the weed and has the crop one pixel too small on
+    # its right edge (a 6 x 1 sliver) and a 3 x 3 soil hole inside it (9 px)
+    truth = np.zeros((20, 20), np.uint8)
+    truth[2:8, 2:8] = 1
+    truth[12:14, 12:14] = 2
+    start = truth.copy()
+    start[12:14, 12:14] = 0
+    start[2:8, 7] = 0
+    start[3:6, 3:6] = 0
+    # regions: hole 9 px, sliver 6 px, weed 4 px (the hole and sliver are apart)
+    one = truth.copy()
+    one[2:8, 7] = 0
+    one[12:14, 12:14] = 0
+    assert region_fix_bound(truth, start, n_classes=4, n_regions=1) == pytest.approx(
+        tile_iou(truth, one, n_classes=4), abs=1e-12)
+    two = truth.copy()
+    two[12:14, 12:14] = 0
+    assert region_fix_bound(truth, start, n_classes=4, n_regions=2) == pytest.approx(
+        tile_iou(truth, two, n_classes=4), abs=1e-12)
+    assert region_fix_bound(truth, start, n_classes=4, n_regions=3) == 1.0
+    assert region_fix_bound(truth, start, n_classes=4, n_regions=0) == tile_iou(
+        truth, start, n_classes=4)
+    with pytest.raises(ValueError, match="n_regions: expected at least 0"):
+        region_fix_bound(truth, start, n_classes=4, n_regions=-1)
+    with pytest.raises(ValueError, match="start: expected a 2-D mask"):
+        region_fix_bound(truth, start[:5], n_classes=4)

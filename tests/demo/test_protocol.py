@@ -68,12 +68,37 @@ def test_brush_alone_reaches_iou_1_in_four_actions():
 
 def test_scribble_and_refine_reach_iou_1_in_two_actions_per_object():
     image, truth = _two_objects()
-    run = run_protocol(
-        image, truth, options=ProtocolOptions(tools=("scribble", "brush"), target_iou=1.0)
-    )
+    run = run_protocol(image, truth, options=ProtocolOptions(tools=("scribble",), target_iou=1.0))
     # each object is a flat colour region of its own: one scribble plus refine labels it
     assert run.actions == 4 and run.ious[-1] == 1.0
     assert [(s.tool, s.actions, s.kept) for s in run.steps] == [("scribble", 2, True)] * 2
+
+
+def test_the_tool_that_does_most_per_action_goes_first():
+    image, truth = _two_objects()
+    run = run_protocol(
+        image, truth, options=ProtocolOptions(tools=("scribble", "brush"), target_iou=1.0,
+                                              max_actions=1)
+    )
+    # by hand: one brush stroke of radius 1.5 along row 4 covers the whole 3 x 9 bar in
+    # one action; scribble + refine also labels it all but costs two
+    assert [(s.tool, s.actions, s.kept) for s in run.steps] == [("brush", 1, True)]
+    np.testing.assert_array_equal(run.mask[:8], truth[:8])
+
+
+def test_a_thin_error_ring_along_the_edge_is_traced_in_one_brush_stroke():
+    # a 9 x 9 plant proposed one pixel too small all round: the error is a ring of
+    # 32 px one pixel wide (depth 1); a straight stroke covers one side, a stroke traced
+    # along the ring's middle (its skeleton, the ring itself) covers all of it
+    truth = np.zeros((15, 15), np.uint8)
+    truth[3:12, 3:12] = 1
+    start = np.zeros_like(truth)
+    start[4:11, 4:11] = 1
+    image = plant_scene((15, 15), [truth > 0], noise_sd=0)
+    run = run_protocol(image, truth, start=start,
+                       options=ProtocolOptions(tools=("brush",), target_iou=1.0))
+    assert ((truth != start).sum(), run.actions, run.ious[-1]) == (32, 1, 1.0)
+    np.testing.assert_array_equal(run.mask, truth)
 
 
 @pytest.mark.xfail(
