@@ -12,6 +12,11 @@ Saving
     counters; the backend decides and records the annotation state (in a project, the
     workflow does) and returns it, and the session reports that state, never its own.
 
+Settling
+    A session opened with ``settling`` (a reviewer deciding a contested tile) asks before
+    it saves: Enter draws the question "settle this tile with this mask?" in the window,
+    and only ``y`` saves; ``n`` or Esc goes back to editing.
+
 Never losing work:
     * every ``autosave_seconds`` a draft is written through the backend when the mask or
       the weak label changed since the last draft;
@@ -34,7 +39,14 @@ import cv2
 import numpy as np
 
 from labeler.editor.backend import EditorBackend
-from labeler.editor.keys import ANSWER_NO, ANSWER_YES, class_for, command_for, help_rows
+from labeler.editor.keys import (
+    ANSWER_NO,
+    ANSWER_YES,
+    class_for,
+    command_for,
+    elsewhere_for,
+    help_rows,
+)
 from labeler.editor.panels import STATUS_ROWS, panel, status_strip, table_panel
 from labeler.editor.state import EditorState
 from labeler.errors import ConflictError, LabelerError
@@ -101,6 +113,8 @@ class EditorSession:
         Seconds between renewals of the tile's hold (the store's lease) while open (> 0).
     clock : callable
         Seconds (default ``time.monotonic``).
+    settling : bool
+        A reviewer settles a contested tile: a save asks for confirmation first.
     """
 
     def __init__(
@@ -112,6 +126,7 @@ class EditorSession:
         autosave_seconds: float = 5.0,
         heartbeat_seconds: float = 60.0,
         clock: Callable[[], float] = time.monotonic,
+        settling: bool = False,
     ) -> None:
         if not heartbeat_seconds > 0:
             raise ValueError(
@@ -131,9 +146,10 @@ class EditorSession:
         self._clock = clock
         self.done = False
         self.outcome: EditorOutcome | None = None
-        self.question: str | None = None  # "discard" or "restore"
+        self.settling = bool(settling)
+        self.question: str | None = None  # "discard", "restore" or "settle"
         self.show_help = False
-        self.message = "h: keys and mouse"
+        self.message = "?: keys and mouse"
         self.blocked = False  # a save was refused as a conflict
         self._pending_draft = None
         self._left_down = False
@@ -278,6 +294,14 @@ class EditorSession:
             self.message = f"saved as {state}"
         self._finish("saved", kind=kind, state=state)
 
+    def _refine(self) -> None:
+        """The refine key: the mask follows the weak label; a message says what happened."""
+        if self.state.refine():
+            self.message = (f"refined from your marks (snap to superpixels "
+                            f"{'on' if self.state.snap else 'off'}); u undoes it")
+        elif not self.state.notice:
+            self.message = "refine changed nothing: the mask already follows your marks"
+
     def _relearn(self) -> None:
         """The relearn key: re-fit the model on the marks; errors become a message."""
         try:
@@ -328,18 +352,35 @@ class EditorSession:
             return
         command = command_for(code)
         if command is None:
+            self._unbound(code)
             return
         s.notice = ""
         self._run(command)
         if s.notice:
             self.message = s.notice
 
+    def _unbound(self, code: int) -> None:
+        """Say why a key did nothing: a digit without a class, or a key of the queue."""
+        if ord("0") <= code <= ord("9"):
+            self.message = (f"no class {code - ord('0')} in this project; the digits are "
+                            f"{', '.join(f'{c.index} {c.name}' for c in self.state.schema.classes if c.index <= 9)}")
+            return
+        row = elsewhere_for(code)
+        if row is not None:
+            self.message = (f"{row.key} works in the queue ({row.queue.split(';')[0]}); "
+                            "here Enter saves and ? lists the keys")
+
     def _answer(self, code: int) -> None:
         yes, no = code in ANSWER_YES, code in ANSWER_NO
         if not (yes or no):
             return
         question, self.question = self.question, None
-        if question == "discard":
+        if question == "settle":
+            if yes:
+                self._save(weak_label_only=False)
+            else:
+                self.message = "not settled; go on editing (Enter asks again)"
+        elif question == "discard":
             if yes:
                 try:
                     self.backend.discard_draft()
@@ -373,7 +414,7 @@ class EditorSession:
             return
         pointer = s.cursor or (s.view_shape[0] / 2.0, s.view_shape[1] / 2.0)
         simple: dict[str, Callable[[], object]] = {
-            "refine": s.refine,
+            "refine": self._refine,
             "relearn": self._relearn,
             "undo": s.undo,
             "redo": s.redo,
@@ -388,7 +429,11 @@ class EditorSession:
         if command in simple:
             simple[command]()
         elif command == "save":
-            self._save(weak_label_only=False)
+            if self.settling and not self.blocked:
+                self.question = "settle"
+                self.message = "settle? y settles, n goes back"
+            else:
+                self._save(weak_label_only=False)
         elif command == "save-weak-label":
             self._save(weak_label_only=True)
         elif command == "leave":
@@ -406,10 +451,18 @@ class EditorSession:
             s.opacity = s.opacity + _OPACITY_STEP
         elif command == "outlines":
             s.show_outlines = not s.show_outlines
+            self.message = f"region outlines {'on' if s.show_outlines else 'off'}"
         elif command == "heat":
             s.show_heat = not s.show_heat
+            if s.show_heat:
+                self.message = ("uncertainty heat map on: dark = the model is sure, "
+                                "bright yellow = least sure on this tile")
+            elif not s.notice:
+                self.message = "uncertainty heat map off"
         elif command == "overlay":
             s.show_overlay = not s.show_overlay
+            self.message = ("mask overlay on" if s.show_overlay
+                            else "bare tile: mask overlay off (b shows it again)")
         elif command == "help":
             self.show_help = not self.show_help
 
@@ -468,8 +521,9 @@ class EditorSession:
         line1 = (f"{self.title} | class {s.active_class} {s.active_name} | tool {s.tool} | "
                  f"radius {s.radius:.1f} | zoom {s.transform.zoom:.2f}")
         work = "unsaved changes" if self.has_work else "no changes"
+        enter = "Enter settle (asks first)" if self.settling else "Enter save"
         line2 = (f"{work} | actions {s.actions} | {s.seconds:.0f} s | snap "
-                 f"{'on' if s.snap else 'off'} | Enter save, Esc leave, h keys")
+                 f"{'on' if s.snap else 'off'} | {enter}, Esc leave, ? keys")
         return line1, line2, self.message
 
     def frame(self) -> np.ndarray:
@@ -481,6 +535,12 @@ class EditorSession:
         if self.question is not None:
             if self.question == "discard":
                 lines = ["Unsaved work on this tile.", "Throw it away?  y = discard,  n = back"]
+            elif self.question == "settle":
+                lines = [
+                    f"Settle this tile with the mask of the pane '{s.pane_titles[0]}'?",
+                    "It becomes the tile's decided mask (state settled).",
+                    "y = settle,  n = back to editing",
+                ]
             else:
                 d = self._pending_draft
                 lines = [

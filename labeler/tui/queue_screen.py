@@ -3,6 +3,11 @@
 Every store or model call runs in a worker thread; results come back to the interface
 through ``App.call_from_thread``. The screen decides nothing itself: accepting, parking,
 the next tile, the queue order and retraining are :mod:`labeler.workflow` functions.
+
+Holds are shown live: every :attr:`QueueScreen.holds_every` seconds the screen reads who
+holds which tile (:func:`labeler.workflow.views.holders`, one light query) and, when that
+differs from the rows shown, reads the rows again, so a tile another annotator opens (or
+saves, or gives back) changes its state and "who" cells within that time.
 """
 
 from __future__ import annotations
@@ -33,6 +38,7 @@ from labeler.tui.rows import (
 )
 from labeler.tui.widgets import TilePreview, WorkBar, palette_legend
 from labeler.workflow.annotating import QueueRow
+from labeler.workflow.views import holders
 
 __all__ = ["QueueScreen"]
 
@@ -41,6 +47,9 @@ class QueueScreen(Screen):
     """Annotators work through the tiles here; managers watch the states change."""
 
     BINDINGS = bindings(QUEUE_KEYS)
+
+    #: Seconds between reads of the holds (the live "who" and state cells).
+    holds_every: float = 2.0
 
     def __init__(self) -> None:
         super().__init__()
@@ -54,6 +63,7 @@ class QueueScreen(Screen):
         self._preview_tile: int | None = None
         self._annotators: tuple[str, ...] = ()
         self._saving: set[int] = set()  # tiles with a save or park still in flight
+        self.hold_checks = 0  # completed reads of the holds (tests wait on it)
 
     # -- layout -------------------------------------------------------------------------
     @property
@@ -93,6 +103,7 @@ class QueueScreen(Screen):
         self.columns = tuple(QUEUE_COLUMNS)
         table.focus()
         self.reload()
+        self.set_interval(self.holds_every, self._check_holds, name="holds")
 
     def on_resize(self) -> None:
         """Fit the columns to the new width."""
@@ -202,6 +213,40 @@ class QueueScreen(Screen):
             )
         elif force_preview or tile != self._preview_tile:
             self._show_preview(tile)
+
+    # -- holds, live ----------------------------------------------------------------------
+    def shown_holds(self) -> dict[int, str]:
+        """Who holds which tile according to the rows read last.
+
+        Returns
+        -------
+        dict of int to str
+            Tile id -> holder, for the tiles the rows say are held.
+        """
+        return {r.tile_id: r.held_by for r in self.rows if r.held_by}
+
+    def _check_holds(self) -> None:
+        if self.loads and self.app.is_running:
+            self._read_holds()
+
+    @work(thread=True, exclusive=True, group="holds", exit_on_error=False)
+    def _read_holds(self) -> None:
+        worker = get_current_worker()
+        try:
+            now = holders(self.project)
+        except Exception as exc:  # noqa: BLE001 - a busy or gone database: try next time
+            self.app.call_from_thread(self._holds_read, None, repr(exc))
+            return
+        if not worker.is_cancelled:
+            self.app.call_from_thread(self._holds_read, now, "")
+
+    def _holds_read(self, now: dict[int, str] | None, problem: str) -> None:
+        self.hold_checks += 1
+        if now is None:
+            self.log.warning(f"reading the holds failed: {problem}")
+            return
+        if now != self.shown_holds():
+            self.reload()
 
     def _update_status(self) -> None:
         counts: dict[str, int] = {}

@@ -171,7 +171,7 @@ async def test_repick_updates_the_order(project):
         await idle(pilot)
         assert project.store.latest_pick() == []
         assert app.screen.table_order() == [t.id for t in project.store.tiles()]
-        await pilot.press("r")
+        await pilot.press("f5")  # compute again: re-pick
         await idle(pilot)
         order = [i.tile_id for i in project.store.latest_pick()]
         assert len(order) == 6
@@ -310,3 +310,50 @@ async def test_the_columns_fit_80_columns(project):
     async with wide.run_test(size=SIZE) as pilot:
         await idle(pilot)
         assert len(wide.screen.columns) > len(shown)  # a wide terminal shows more
+
+
+async def _until(pilot, condition, *, what: str, timeout: float = 15.0) -> None:
+    """Let the app run until ``condition()`` holds (fails after ``timeout`` seconds)."""
+    import asyncio
+
+    loop = asyncio.get_running_loop()
+    end = loop.time() + timeout
+    while not condition():
+        if loop.time() > end:
+            raise AssertionError(f"waited {timeout} s for {what}")
+        await pilot.pause(0.05)
+
+
+async def test_holds_show_live_when_another_connection_takes_one(project, monkeypatch):
+    from labeler.project import open_project
+    from labeler.tui.queue_screen import QueueScreen
+
+    fake_proposals(project)
+    monkeypatch.setattr(QueueScreen, "holds_every", 0.2)
+    tile = project.store.tiles()[2].id
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        screen = app.screen
+
+        def cell(column: str) -> str:
+            row = screen.query_one("#queue", DataTable).get_row(str(tile))
+            return str(row[screen.columns.index(column)])
+
+        assert (cell("state"), cell("who")) == ("proposed", "")
+        loads = screen.loads
+        # bo opens the tile from another connection to the same project (another laptop)
+        other = open_project(project.root)
+        try:
+            other.store.hold(tile, "bo")
+            await _until(pilot, lambda: cell("who") == "bo (open)", what="bo's hold shown")
+            assert cell("state") == "held" and screen.loads > loads
+            await idle(pilot)
+            checks, loads = screen.hold_checks, screen.loads
+            await _until(pilot, lambda: screen.hold_checks >= checks + 2, what="two more reads")
+            assert screen.loads == loads  # the holds did not change: the rows are not read again
+            other.store.release(tile, "bo")
+            await _until(pilot, lambda: cell("who") == "", what="bo's hold gone")
+            assert cell("state") == "proposed"
+        finally:
+            other.close()
