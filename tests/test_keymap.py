@@ -32,7 +32,7 @@ def test_every_key_has_one_row_and_the_former_clashes_one_meaning():
         row = row_for_key(key)
         assert not (row.queue and row.editor), key  # now in one of the two only
     both = {r.key for r in KEYMAP if r.queue and r.editor}
-    assert both == {"Esc", "?"}  # leave / the keys: the same in both
+    assert both == {"Esc", "?", "+ or =", "-", "w"}  # leave, the keys, zoom: the same
     assert row_for_key("a").queue.startswith("accept") and not row_for_key("a").editor
     with pytest.raises(KeyError, match="key: expected one of"):
         row_for_key("F13")

@@ -349,11 +349,28 @@ class QueueScreen(Screen):
         if not worker.is_cancelled:
             self.app.call_from_thread(self._preview_ready, tile_id, picture, caption)
 
+    # -- zoom -----------------------------------------------------------------------------
+    def action_zoom_in(self) -> None:
+        self.query_one(TilePreview).zoom_by(+1)
+
+    def action_zoom_out(self) -> None:
+        self.query_one(TilePreview).zoom_by(-1)
+
+    def action_whole(self) -> None:
+        self.query_one(TilePreview).set_zoom(1)
+
+    @on(TilePreview.Zoomed)
+    def _zoomed(self) -> None:
+        self.query_one("#side").border_subtitle = self.query_one(TilePreview).zoom_note
+
     def _preview_ready(self, tile_id: int, picture, caption: str) -> None:
         if tile_id != self._preview_tile:
             return
         self.query_one("#preview-caption", Label).update(caption)
-        self.query_one(TilePreview).show(tile_id, picture)
+        preview = self.query_one(TilePreview)
+        preview.show(tile_id, picture)
+        if preview.zoom != 1:
+            preview.set_zoom(preview.zoom)  # the new tile's middle, and its note
 
     def _preview_failed(self, tile_id: int, message: str) -> None:
         if tile_id != self._preview_tile:

@@ -357,3 +357,48 @@ async def test_holds_show_live_when_another_connection_takes_one(project, monkey
             assert cell("state") == "proposed"
         finally:
             other.close()
+
+
+async def test_preview_zooms_to_full_resolution_and_centres_on_a_click(project):
+    from labeler.tui.preview import overlay, zoom_picture
+
+    fake_proposals(project)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        screen = app.screen
+        preview = screen.query_one(TilePreview)
+        tile = project.store.tile(preview.tile_id)
+        image = project.store.image(tile.image_id)
+        with open_image(project.image_path(image)) as reader:
+            rgb = reader.read(tile.window)
+        picture = overlay(rgb, project.store.latest_proposal(tile.id).mask(),
+                          schema=project.settings.classes, opacity=0.45)
+        size = preview.content_size
+        h, w = tile.shape
+        assert preview.zoom == 1 and preview.shown_window == (0, h, 0, w)
+        await pilot.press("plus", "plus", "plus")  # zoom 8
+        await idle(pilot)
+        assert preview.zoom == 8
+        expected, window = zoom_picture(picture, zoom=8, centre=((h - 1) / 2, (w - 1) / 2),
+                                        cols=size.width, rows=size.height)
+        assert preview.shown_window == window
+        r0, r1, c0, c1 = window
+        # at zoom 8 a tile pixel gets at least one preview pixel: full resolution, or more
+        assert expected.shape[0] >= r1 - r0 and expected.shape[1] >= c1 - c0
+        assert preview.render().plain == half_block_text(expected).plain
+        assert screen.query_one("#side").border_subtitle == (
+            f"zoom x8: rows {r0}-{r1 - 1}, cols {c0}-{c1 - 1}")
+        # a click in the picture's top-left cell centres the zoom on that tile pixel
+        await pilot.click(TilePreview, offset=(0, 0))
+        await idle(pilot)
+        assert preview.centre is not None
+        assert preview.centre[0] < (r0 + r1) / 2 and preview.centre[1] < (c0 + c1) / 2
+        assert preview.shown_window[0] <= r0 and preview.shown_window[2] <= c0
+        await pilot.press("minus")
+        await idle(pilot)
+        assert preview.zoom == 4
+        await pilot.press("w")
+        await idle(pilot)
+        assert preview.zoom == 1 and preview.shown_window == (0, h, 0, w)
+        assert screen.query_one("#side").border_subtitle == ""
