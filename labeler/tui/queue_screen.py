@@ -64,6 +64,7 @@ class QueueScreen(Screen):
         self._annotators: tuple[str, ...] = ()
         self._saving: set[int] = set()  # tiles with a save or park still in flight
         self.hold_checks = 0  # completed reads of the holds (tests wait on it)
+        self._holds_timer = None
 
     # -- layout -------------------------------------------------------------------------
     @property
@@ -103,7 +104,7 @@ class QueueScreen(Screen):
         self.columns = tuple(QUEUE_COLUMNS)
         table.focus()
         self.reload()
-        self.set_interval(self.holds_every, self._check_holds, name="holds")
+        self._holds_timer = self.set_interval(self.holds_every, self._check_holds, name="holds")
 
     def on_resize(self) -> None:
         """Fit the columns to the new width."""
@@ -117,7 +118,14 @@ class QueueScreen(Screen):
         if tuple(QUEUE_COLUMNS[k] for k in keep) != self.columns:
             self._refill()
 
+    def on_screen_suspend(self) -> None:
+        # another screen on top: no need to watch the holds until the queue shows again
+        if self._holds_timer is not None:
+            self._holds_timer.pause()
+
     def on_screen_resume(self) -> None:
+        if self._holds_timer is not None:
+            self._holds_timer.resume()
         # back from the agreement or model screen: a reviewer may have settled tiles there
         if self.loads:
             self.reload()
