@@ -50,6 +50,7 @@ from labeler.editor.keys import (
 from labeler.editor.panels import STATUS_ROWS, panel, status_strip, table_panel
 from labeler.editor.state import EditorState
 from labeler.errors import ConflictError, LabelerError
+from labeler.keymap import class_keys
 from labeler.states import KIND_FULL, KIND_WEAK
 
 __all__ = ["EditorOutcome", "EditorSession"]
@@ -363,12 +364,12 @@ class EditorSession:
         """Say why a key did nothing: a digit without a class, or a key of the queue."""
         if ord("0") <= code <= ord("9"):
             self.message = (f"no class {code - ord('0')} in this project; the digits are "
-                            f"{', '.join(f'{c.index} {c.name}' for c in self.state.schema.classes if c.index <= 9)}")
+                            f"{class_keys(self.state.schema)}")
             return
         row = elsewhere_for(code)
         if row is not None:
-            self.message = (f"{row.key} works in the queue ({row.queue.split(';')[0]}); "
-                            "here Enter saves and ? lists the keys")
+            self.message = (f"{row.key} is a key of the queue ({row.queue.split(';')[0]}); "
+                            "in the editor ? lists the keys")
 
     def _answer(self, code: int) -> None:
         yes, no = code in ANSWER_YES, code in ANSWER_NO

@@ -81,14 +81,33 @@ class TilePreview(Widget):
         return f"zoom x{self.zoom}: rows {r0}-{r1 - 1}, cols {c0}-{c1 - 1}"
 
     def zoom_by(self, steps: int) -> int:
-        """Move ``steps`` zoom levels in (positive) or out (negative); the new level."""
+        """Move ``steps`` zoom levels in (positive) or out (negative).
+
+        Parameters
+        ----------
+        steps : int
+            Levels of :data:`~labeler.tui.preview.ZOOM_LEVELS` to move; the ends hold.
+
+        Returns
+        -------
+        int
+            The zoom level now.
+        """
         levels = list(ZOOM_LEVELS)
         k = min(max(levels.index(self.zoom) + int(steps), 0), len(levels) - 1)
         self.set_zoom(levels[k])
         return self.zoom
 
     def set_zoom(self, level: int, *, centre: tuple[float, float] | None = None) -> None:
-        """Show zoom ``level`` (one of :data:`ZOOM_LEVELS`), round ``centre`` if given.
+        """Show zoom ``level``, round ``centre`` if given.
+
+        Parameters
+        ----------
+        level : int
+            One of :data:`~labeler.tui.preview.ZOOM_LEVELS` (1: the whole tile).
+        centre : (float, float), optional
+            Tile ``(row, col)`` to keep in the middle (default: the one set before, or the
+            tile's middle).
 
         Raises
         ------
@@ -110,7 +129,13 @@ class TilePreview(Widget):
         self.post_message(self.Zoomed())
 
     def on_click(self, event: events.Click) -> None:
-        """Centre the zoom on the clicked point of the tile (zoom 2 from the whole tile)."""
+        """Centre the zoom on the clicked point of the tile (zoom 2 from the whole tile).
+
+        Parameters
+        ----------
+        event : textual.events.Click
+            The click; ``event.x, event.y`` are cells of the widget.
+        """
         if self._rgb is None or self.shown_window is None or self._picture_size is None:
             return
         ph, pw = self._picture_size

@@ -267,7 +267,7 @@ def test_quick_second_click_arrives_as_double_click_and_still_counts():
 def test_keys_of_the_queue_and_digits_without_a_class_say_why_nothing_happened():
     session = EditorSession(coin_state(), backend=MemoryBackend(), title="t")
     session.on_key(ord("a"))  # accept is a queue key: the editor saves with Enter
-    assert session.message.startswith("a works in the queue (accept") and not session.done
+    assert session.message.startswith("a is a key of the queue (accept") and not session.done
     session.on_key(ord("7"))
     assert session.message.startswith("no class 7 in this project")
     assert "2 weed" in session.message
