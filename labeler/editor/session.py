@@ -516,6 +516,17 @@ class EditorSession:
                 s.zoom_at((row, col), _ZOOM_STEP if delta > 0 else 1.0 / _ZOOM_STEP)
 
     # -------------------------------------------------------------- drawing
+    def legend(self) -> list[tuple[str, tuple[int, int, int] | None]]:
+        """The class legend under the view: ``("digit name", BGR or None)`` per class with
+        a digit key (None: the class has no overlay colour, e.g. soil)."""
+        colours, has = self.state.schema.lut_rgb()
+        return [
+            (f"{c.index} {c.name}",
+             tuple(int(v) for v in colours[c.index][::-1]) if has[c.index] else None)
+            for c in self.state.schema.classes
+            if c.index <= 9
+        ]
+
     def status_lines(self) -> tuple[str, str, str]:
         """The three lines of the status strip."""
         s = self.state
@@ -551,6 +562,7 @@ class EditorSession:
                 ]
             top = max(s.view_shape[0] // 2 - 30, 0)
             panel(view, lines, top=top, left=8, line_px=20, scale=0.5)
-        strip = status_strip(self.status_lines(), cols=view.shape[1])
+        strip = status_strip(self.status_lines(), cols=view.shape[1], legend=self.legend(),
+                             heat=s.show_heat)
         return np.vstack([view, strip])
 

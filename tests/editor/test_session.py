@@ -291,3 +291,28 @@ def test_settling_session_asks_and_only_y_saves():
     session.on_key(13)
     session.on_key(ord("y"))
     assert session.done and session.outcome.state == "settled" and len(backend.saved) == 1
+
+
+def test_status_strip_shows_the_class_colours_and_the_heat_scale():
+    from labeler.classes import hex_to_rgb
+    from labeler.editor.panels import LEGEND_SWATCH, legend_line, status_strip
+
+    session = EditorSession(coin_state(), backend=MemoryBackend(), title="t")
+    legend = session.legend()
+    # the Okabe & Ito (2008) palette of the label schema: crop #0072B2, weed #E69F00,
+    # symptom #CC79A7 (BGR here); soil has no overlay colour
+    assert legend == [("0 soil", None), ("1 crop", hex_to_rgb("#0072B2")[::-1]),
+                      ("2 weed", hex_to_rgb("#E69F00")[::-1]),
+                      ("3 symptom", hex_to_rgb("#CC79A7")[::-1])]
+    strip = np.full((STATUS_ROWS, 500, 3), 24, np.uint8)
+    corners = legend_line(strip, legend, baseline=70, heat=False)
+    for (top, left), (_label, colour) in zip(corners[1:], legend[1:], strict=True):
+        swatch = strip[top : top + LEGEND_SWATCH, left : left + LEGEND_SWATCH]
+        assert (swatch == colour).all()
+    assert (strip[corners[0][0] + 2, corners[0][1] + 2] == 24).all()  # hollow: soil
+    plain = status_strip(["a", "b", "c"], cols=500, legend=legend)
+    with_heat = status_strip(["a", "b", "c"], cols=500, legend=legend, heat=True)
+    assert plain.shape == (STATUS_ROWS, 500, 3)
+    assert (plain[:58] == with_heat[:58]).all() and (plain != with_heat).any()
+    frame = session.frame()
+    assert (frame[-STATUS_ROWS:] != 24).any()
