@@ -274,7 +274,7 @@ def build_parser() -> argparse.ArgumentParser:
         help="open a tile in the mask editor",
         description="Open a tile in the mask editor window (needs a display). Enter saves the "
         "mask, recorded as 'accepted' when the proposal is kept, 'amended' when changed "
-        "('settled' with --settle); p saves the weak label alone (state 'weak'). The state "
+        "('settled' with --settle, after a y to confirm); k saves the weak label alone (state 'weak'). The state "
         "recorded is printed. A draft is autosaved; a save after someone else's is refused "
         "and kept as a draft.",
     )

@@ -23,7 +23,10 @@ from labeler.project import Project
 from labeler.workflow.annotating import next_tile
 from labeler.workflow.editing import StoreBackend, begin_edit, end_edit
 
-__all__ = ["TileEdit", "open_tile_edit", "edit_tile"]
+__all__ = ["CONSENSUS_TITLE", "TileEdit", "open_tile_edit", "edit_tile"]
+
+#: Title of the editable pane when settling: it starts from the STAPLE consensus.
+CONSENSUS_TITLE = "consensus (STAPLE)"
 
 
 @dataclass
@@ -39,13 +42,16 @@ class TileEdit:
     title : str
         Window title.
     compare_with : str or None
-        Whose mask is shown beside the edit (settling), or None.
+        Whose mask is shown first beside the edit (settling), or None.
+    settling : bool
+        True when a reviewer settles a contested tile (a save asks first).
     """
 
     state: EditorState
     backend: StoreBackend
     title: str
     compare_with: str | None = None
+    settling: bool = False
 
 
 def open_tile_edit(
@@ -62,8 +68,9 @@ def open_tile_edit(
     annotator : str
         Who edits (the reviewer when settling).
     settle : bool
-        Settle a contested tile: start from the consensus, the first annotator's mask
-        beside it.
+        Settle a contested tile: the edit starts from the STAPLE consensus (its pane
+        titled :data:`CONSENSUS_TITLE`), every annotator's mask beside it under their
+        name, the window as wide as the panes.
 
     Returns
     -------
@@ -75,6 +82,7 @@ def open_tile_edit(
         If ``settle`` is asked for a tile that is not contested, or without two masks.
     """
     start = begin_edit(project, tile_id, annotator, settle=settle)
+    panes = 1 + len(start.annotations)
     state = EditorState(
         start.image,
         start.proposal,
@@ -82,14 +90,20 @@ def open_tile_edit(
         mask=start.mask,
         uncertainty=start.uncertainty,
         opacity=project.settings.editor.opacity,
-        view_shape=fit_view_shape(start.mask.shape),
+        view_shape=fit_view_shape(start.mask.shape, panes=panes),
     )
-    if start.compare is not None:
+    if start.annotations:
+        state.set_compare_all(
+            [m for _name, m in start.annotations],
+            labels=[name for name, _m in start.annotations],
+            edit_label=CONSENSUS_TITLE,
+        )
+    elif start.compare is not None:
         state.set_compare(start.compare, label=start.compare_label)
     title = (f"labeler edit - {start.image_name} - tile {tile_id} at row {start.row} "
              f"col {start.col}")
     return TileEdit(state=state, backend=start.backend, title=title,
-                    compare_with=start.compare_label)
+                    compare_with=start.compare_label, settling=settle)
 
 
 def edit_tile(
@@ -147,6 +161,7 @@ def edit_tile(
             autosave_seconds=project.settings.editor.autosave_seconds,
             heartbeat_seconds=project.settings.holds.heartbeat_seconds,
             gui=gui,
+            settling=edit.settling,
         )
     finally:
         end_edit(project, tile_id, annotator)

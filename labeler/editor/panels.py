@@ -12,11 +12,15 @@ from collections.abc import Sequence
 import cv2
 import numpy as np
 
-__all__ = ["STATUS_ROWS", "TEXT_COLOUR", "ACCENT_COLOUR", "text", "panel", "table_panel",
-           "status_strip"]
+__all__ = ["STATUS_ROWS", "TEXT_COLOUR", "ACCENT_COLOUR", "LEGEND_SWATCH", "text", "panel",
+           "table_panel", "status_strip", "legend_line"]
 
-#: Height in pixels of the status strip under the view.
-STATUS_ROWS = 58
+#: Height in pixels of the status strip under the view (three lines and the legend).
+STATUS_ROWS = 76
+#: Side in pixels of a class colour swatch in the legend line.
+LEGEND_SWATCH = 10
+#: Width in pixels of the heat map's colour scale in the legend line.
+_SCALE_PX = 100
 #: BGR of ordinary text.
 TEXT_COLOUR = (235, 235, 235)
 #: BGR of keys in the help table and of the status strip's message line.
@@ -112,14 +116,63 @@ def table_panel(img: np.ndarray, rows: Sequence[tuple[str, str]], *, top: int,
         x += kw + vw + 28
 
 
-def status_strip(lines: Sequence[str], *, cols: int) -> np.ndarray:
-    """The strip under the view: up to three lines, the last in the accent colour.
+def legend_line(strip: np.ndarray, legend: Sequence[tuple[str, tuple[int, int, int] | None]],
+                *, baseline: int, heat: bool = False) -> list[tuple[int, int]]:
+    """Draw the class legend (a swatch and "digit name" per class) and, with ``heat``, the
+    heat map's colour scale, along one line of the strip, in place.
+
+    Parameters
+    ----------
+    strip : ndarray, shape (rows, cols, 3), uint8, BGR
+    legend : sequence of (str, (int, int, int) or None)
+        Label and BGR colour of each class; None draws a hollow swatch (no overlay).
+    baseline : int
+        Pixel row of the text baseline.
+    heat : bool
+        Also draw the scale of the uncertainty heat map: OpenCV's INFERNO colour map from
+        the tile's lowest uncertainty (left, "sure") to its highest (right, "unsure").
+
+    Returns
+    -------
+    list of (int, int)
+        ``(row, col)`` of the top-left corner of each swatch, in ``legend`` order.
+    """
+    x, corners = 6, []
+    top = baseline - LEGEND_SWATCH + 1
+    for label, colour in legend:
+        corners.append((top, x))
+        if colour is None:
+            cv2.rectangle(strip, (x, top), (x + LEGEND_SWATCH - 1, baseline), TEXT_COLOUR, 1)
+        else:
+            strip[top : baseline + 1, x : x + LEGEND_SWATCH] = colour
+        text(strip, label, (x + LEGEND_SWATCH + 4, baseline), scale=0.42)
+        x += LEGEND_SWATCH + 4 + cv2.getTextSize(label, _FONT, 0.42, 1)[0][0] + 14
+    if heat:
+        text(strip, "heat map: sure", (x, baseline), scale=0.42)
+        x += cv2.getTextSize("heat map: sure", _FONT, 0.42, 1)[0][0] + 6
+        ramp = np.round(np.linspace(0, 255, _SCALE_PX)).astype(np.uint8)[None, :]
+        bar = cv2.applyColorMap(ramp, cv2.COLORMAP_INFERNO)  # (1, _SCALE_PX, 3) BGR
+        end = min(x + _SCALE_PX, strip.shape[1])
+        strip[top : baseline + 1, x:end] = bar[:, : end - x]
+        text(strip, "unsure", (end + 6, baseline), scale=0.42)
+    return corners
+
+
+def status_strip(lines: Sequence[str], *, cols: int,
+                 legend: Sequence[tuple[str, tuple[int, int, int] | None]] = (),
+                 heat: bool = False) -> np.ndarray:
+    """The strip under the view: up to three lines (the last in the accent colour), then
+    the class legend and, with ``heat``, the heat map's scale (:func:`legend_line`).
 
     Parameters
     ----------
     lines : sequence of str
     cols : int
         Width in pixels (the view's).
+    legend : sequence of (str, (int, int, int) or None)
+        The classes' labels and BGR colours; () leaves the fourth line empty.
+    heat : bool
+        The heat map is on: draw its scale.
 
     Returns
     -------
@@ -129,4 +182,6 @@ def status_strip(lines: Sequence[str], *, cols: int) -> np.ndarray:
     for i, line in enumerate(lines):
         colour = ACCENT_COLOUR if i == 2 else TEXT_COLOUR
         text(strip, line, (6, 16 + 18 * i), scale=0.42, colour=colour)
+    if legend or heat:
+        legend_line(strip, legend, baseline=16 + 18 * 3, heat=heat)
     return strip

@@ -28,12 +28,59 @@ from labeler.editor.history import Box
 from labeler.editor.view import PANE_GAP, Viewport
 from labeler.masks.overlay import blend_palette
 
-__all__ = ["Marks", "Renderer", "check_uncertainty"]
+__all__ = ["Marks", "Renderer", "check_uncertainty", "pane_title", "TITLE_ROWS"]
 
 _BACKDROP = (38, 38, 38)  # BGR of view pixels outside the tile
 _GAP_COLOUR = (200, 200, 200)  # BGR of the gap between the two panes
 _WEAK_NO_COLOUR = (225, 225, 225)  # weak label of a class without overlay (soil)
 _WHITE = (255, 255, 255)
+
+
+#: Height in view pixels of the dark box behind a pane's title.
+TITLE_ROWS = 20
+_TITLE_SCALE = 0.45
+
+
+def pane_title(frame: np.ndarray, text: str, *, left: int, width: int) -> None:
+    """Write a pane's title at the pane's top-left corner on a dark box, in place.
+
+    Parameters
+    ----------
+    frame : ndarray, shape (rows, cols, 3), uint8, BGR
+        The view.
+    text : str
+        The title; cut with "..." when it is wider than the pane.
+    left : int
+        First view column of the pane.
+    width : int
+        Width of the pane in view pixels.
+    """
+    font = cv2.FONT_HERSHEY_SIMPLEX
+    shown = text
+    while shown and cv2.getTextSize(shown, font, _TITLE_SCALE, 1)[0][0] > width - 12:
+        shown = shown[:-4] + "..." if len(shown) > 4 else ""
+    if shown:
+        tw = cv2.getTextSize(shown, font, _TITLE_SCALE, 1)[0][0]
+        frame[:TITLE_ROWS, left : left + min(tw + 12, width)] = (24, 24, 24)
+        cv2.putText(frame, shown, (left + 6, TITLE_ROWS - 6), font, _TITLE_SCALE, _WHITE, 1,
+                    cv2.LINE_AA)
+
+
+def _as_panes(compare, compare_label) -> tuple[tuple[np.ndarray, ...], tuple[str, ...]]:
+    """``compare`` and its titles as two tuples (one mask or several)."""
+    if compare is None:
+        return (), ()
+    if isinstance(compare, np.ndarray) and compare.ndim == 2:
+        others: tuple[np.ndarray, ...] = (compare,)
+    else:
+        others = tuple(compare)
+    labels = (compare_label,) if isinstance(compare_label, str) else tuple(compare_label)
+    if len(labels) != len(others):
+        raise ValueError(
+            f"compare_label: expected one title per compared mask ({len(others)}), "
+            f"got {len(labels)}"
+        )
+    return others, labels
 
 
 @dataclass(frozen=True)
@@ -115,7 +162,7 @@ class Renderer:
         self._show_overlay = True
         self._base: np.ndarray | None = None  # image or heat blend, BGR, tile size
         self._comp: np.ndarray | None = None  # composite of this edit, tile size
-        self._comp_other: np.ndarray | None = None  # composite of the compared mask
+        self._comp_other: list[np.ndarray] | None = None  # composites of compared masks
         self._view: np.ndarray | None = None
         self._maps: tuple[np.ndarray, np.ndarray] | None = None
         self._drawn: tuple | None = None  # (transform, view_shape, split) of _view
@@ -191,7 +238,7 @@ class Renderer:
         self._dirty.append(box)
 
     def compare_changed(self) -> None:
-        """The compared mask was set or removed: compose it afresh next frame."""
+        """The compared masks were set or removed: compose them afresh next frame."""
         self._comp_other = None
 
     # -------------------------------------------------------------- composing
@@ -258,9 +305,9 @@ class Renderer:
         view[vr[0] : vr[-1] + 1, col_off + vc[0] : col_off + vc[-1] + 1] = block
 
     def _refresh(self, mask: np.ndarray, weak: np.ndarray, viewport: Viewport,
-                 compare: np.ndarray | None) -> None:
+                 compare: Sequence[np.ndarray]) -> None:
         h, w = self._shape
-        drawn = (viewport.transform, viewport.view_shape, viewport.split)
+        drawn = (viewport.transform, viewport.view_shape, viewport.panes)
         full_view = self._base is None or self._view is None or drawn != self._drawn
         if self._base is None:
             self._base = self._build_base()
@@ -268,9 +315,12 @@ class Renderer:
             self._compose(mask, weak, self._comp, 0, h, 0, w)
             self._comp_other = None
             self._dirty.clear()
-        if compare is not None and self._comp_other is None:
-            self._comp_other = np.empty_like(self._base)
-            self._compose(compare, None, self._comp_other, 0, h, 0, w)
+        if compare and self._comp_other is None:
+            self._comp_other = []
+            for other in compare:
+                comp = np.empty_like(self._base)
+                self._compose(other, None, comp, 0, h, 0, w)
+                self._comp_other.append(comp)
             full_view = True
         dirty, self._dirty = self._dirty, []
         for r0, r1, c0, c1 in dirty:
@@ -288,9 +338,10 @@ class Renderer:
             vh, vw = viewport.view_shape
             self._view = np.empty((vh, vw, 3), np.uint8)
             self._view[:] = _BACKDROP
+            offsets = viewport.pane_offsets
             self._gather(self._comp, self._view, 0, 0, h, 0, w)
-            if compare is not None:
-                self._gather(self._comp_other, self._view, pw + PANE_GAP, 0, h, 0, w)
+            for off, comp in zip(offsets[1:], self._comp_other or (), strict=False):
+                self._gather(comp, self._view, off, 0, h, 0, w)
             self._drawn = drawn
 
     # -------------------------------------------------------------- the frame
@@ -300,8 +351,9 @@ class Renderer:
         weak_label: np.ndarray,
         *,
         viewport: Viewport,
-        compare: np.ndarray | None = None,
-        compare_label: str = "",
+        compare: np.ndarray | Sequence[np.ndarray] | None = None,
+        compare_label: str | Sequence[str] = "",
+        edit_label: str = "this edit",
         marks: Marks | None = None,
     ) -> np.ndarray:
         """The view as a BGR image: tile, overlay, outlines, weak label, then the marks.
@@ -315,10 +367,13 @@ class Renderer:
             Class index where marked, 255 elsewhere.
         viewport : Viewport
             View size, transform and split.
-        compare : ndarray, shape (H, W), uint8, optional
-            The mask of the right pane; give it exactly when ``viewport.split``.
-        compare_label : str
-            Caption of the right pane.
+        compare : ndarray, shape (H, W), uint8, or sequence of them, optional
+            The masks of the panes right of the edit, left to right; shown when
+            ``viewport.split`` (the viewport has ``1 + len(compare)`` panes then).
+        compare_label : str or sequence of str
+            Title of each of those panes (one string for one mask).
+        edit_label : str
+            Title of the edit's pane when the view is split.
         marks : Marks, optional
             Polygon, box and brush cursor of the gesture in progress (default none).
 
@@ -327,18 +382,18 @@ class Renderer:
         frame : ndarray, shape (rows, cols, 3), uint8, BGR
             A new array of ``viewport.view_shape`` the caller may draw on.
         """
-        self._refresh(mask, weak_label, viewport, compare if viewport.split else None)
+        others, labels = _as_panes(compare, compare_label)
+        self._refresh(mask, weak_label, viewport, others if viewport.split else ())
         frame = self._view.copy()
         marks = Marks() if marks is None else marks
         t = viewport.transform
         if viewport.split:
             pw = viewport.pane_shape[1]
-            frame[:, pw : pw + PANE_GAP] = _GAP_COLOUR
-            for off, text in ((0, "this edit"), (pw + PANE_GAP, compare_label)):
-                (tw, th), _ = cv2.getTextSize(text, cv2.FONT_HERSHEY_SIMPLEX, 0.45, 1)
-                cv2.rectangle(frame, (off, 0), (off + tw + 12, th + 10), (24, 24, 24), -1)
-                cv2.putText(frame, text, (off + 6, th + 4), cv2.FONT_HERSHEY_SIMPLEX, 0.45,
-                            _WHITE, 1, cv2.LINE_AA)
+            offsets = viewport.pane_offsets
+            for off in offsets[1:]:
+                frame[:, off - PANE_GAP : off] = _GAP_COLOUR
+            for off, text in zip(offsets, (edit_label, *labels), strict=False):
+                pane_title(frame, text, left=off, width=pw)
         if len(marks.polygon):
             vr, vc = t.tile_to_view(*np.asarray(marks.polygon).T)
             pts = np.stack([vc, vr], axis=1).round().astype(np.int32)  # OpenCV draws x, y

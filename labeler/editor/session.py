@@ -12,6 +12,11 @@ Saving
     counters; the backend decides and records the annotation state (in a project, the
     workflow does) and returns it, and the session reports that state, never its own.
 
+Settling
+    A session opened with ``settling`` (a reviewer deciding a contested tile) asks before
+    it saves: Enter draws the question "settle this tile with this mask?" in the window,
+    and only ``y`` saves; ``n`` or Esc goes back to editing.
+
 Never losing work:
     * every ``autosave_seconds`` a draft is written through the backend when the mask or
       the weak label changed since the last draft;
@@ -34,10 +39,18 @@ import cv2
 import numpy as np
 
 from labeler.editor.backend import EditorBackend
-from labeler.editor.keys import ANSWER_NO, ANSWER_YES, class_for, command_for, help_rows
+from labeler.editor.keys import (
+    ANSWER_NO,
+    ANSWER_YES,
+    class_for,
+    command_for,
+    elsewhere_for,
+    help_rows,
+)
 from labeler.editor.panels import STATUS_ROWS, panel, status_strip, table_panel
 from labeler.editor.state import EditorState
 from labeler.errors import ConflictError, LabelerError
+from labeler.keymap import class_keys
 from labeler.states import KIND_FULL, KIND_WEAK
 
 __all__ = ["EditorOutcome", "EditorSession"]
@@ -101,6 +114,8 @@ class EditorSession:
         Seconds between renewals of the tile's hold (the store's lease) while open (> 0).
     clock : callable
         Seconds (default ``time.monotonic``).
+    settling : bool
+        A reviewer settles a contested tile: a save asks for confirmation first.
     """
 
     def __init__(
@@ -112,6 +127,7 @@ class EditorSession:
         autosave_seconds: float = 5.0,
         heartbeat_seconds: float = 60.0,
         clock: Callable[[], float] = time.monotonic,
+        settling: bool = False,
     ) -> None:
         if not heartbeat_seconds > 0:
             raise ValueError(
@@ -131,9 +147,10 @@ class EditorSession:
         self._clock = clock
         self.done = False
         self.outcome: EditorOutcome | None = None
-        self.question: str | None = None  # "discard" or "restore"
+        self.settling = bool(settling)
+        self.question: str | None = None  # "discard", "restore" or "settle"
         self.show_help = False
-        self.message = "h: keys and mouse"
+        self.message = "?: keys and mouse"
         self.blocked = False  # a save was refused as a conflict
         self._pending_draft = None
         self._left_down = False
@@ -278,6 +295,14 @@ class EditorSession:
             self.message = f"saved as {state}"
         self._finish("saved", kind=kind, state=state)
 
+    def _refine(self) -> None:
+        """The refine key: the mask follows the weak label; a message says what happened."""
+        if self.state.refine():
+            self.message = (f"refined from your marks (snap to superpixels "
+                            f"{'on' if self.state.snap else 'off'}); u undoes it")
+        elif not self.state.notice:
+            self.message = "refine changed nothing: the mask already follows your marks"
+
     def _relearn(self) -> None:
         """The relearn key: re-fit the model on the marks; errors become a message."""
         try:
@@ -328,18 +353,35 @@ class EditorSession:
             return
         command = command_for(code)
         if command is None:
+            self._unbound(code)
             return
         s.notice = ""
         self._run(command)
         if s.notice:
             self.message = s.notice
 
+    def _unbound(self, code: int) -> None:
+        """Say why a key did nothing: a digit without a class, or a key of the queue."""
+        if ord("0") <= code <= ord("9"):
+            self.message = (f"no class {code - ord('0')} in this project; the digits are "
+                            f"{class_keys(self.state.schema)}")
+            return
+        row = elsewhere_for(code)
+        if row is not None:
+            self.message = (f"{row.key} is a key of the queue ({row.queue.split(';')[0]}); "
+                            "in the editor ? lists the keys")
+
     def _answer(self, code: int) -> None:
         yes, no = code in ANSWER_YES, code in ANSWER_NO
         if not (yes or no):
             return
         question, self.question = self.question, None
-        if question == "discard":
+        if question == "settle":
+            if yes:
+                self._save(weak_label_only=False)
+            else:
+                self.message = "not settled; go on editing (Enter asks again)"
+        elif question == "discard":
             if yes:
                 try:
                     self.backend.discard_draft()
@@ -373,7 +415,7 @@ class EditorSession:
             return
         pointer = s.cursor or (s.view_shape[0] / 2.0, s.view_shape[1] / 2.0)
         simple: dict[str, Callable[[], object]] = {
-            "refine": s.refine,
+            "refine": self._refine,
             "relearn": self._relearn,
             "undo": s.undo,
             "redo": s.redo,
@@ -388,7 +430,11 @@ class EditorSession:
         if command in simple:
             simple[command]()
         elif command == "save":
-            self._save(weak_label_only=False)
+            if self.settling and not self.blocked:
+                self.question = "settle"
+                self.message = "settle? y settles, n goes back"
+            else:
+                self._save(weak_label_only=False)
         elif command == "save-weak-label":
             self._save(weak_label_only=True)
         elif command == "leave":
@@ -406,10 +452,18 @@ class EditorSession:
             s.opacity = s.opacity + _OPACITY_STEP
         elif command == "outlines":
             s.show_outlines = not s.show_outlines
+            self.message = f"region outlines {'on' if s.show_outlines else 'off'}"
         elif command == "heat":
             s.show_heat = not s.show_heat
+            if s.show_heat:
+                self.message = ("uncertainty heat map on: dark = the model is sure, "
+                                "bright yellow = least sure on this tile")
+            elif not s.notice:
+                self.message = "uncertainty heat map off"
         elif command == "overlay":
             s.show_overlay = not s.show_overlay
+            self.message = ("mask overlay on" if s.show_overlay
+                            else "bare tile: mask overlay off (b shows it again)")
         elif command == "help":
             self.show_help = not self.show_help
 
@@ -462,14 +516,26 @@ class EditorSession:
                 s.zoom_at((row, col), _ZOOM_STEP if delta > 0 else 1.0 / _ZOOM_STEP)
 
     # -------------------------------------------------------------- drawing
+    def legend(self) -> list[tuple[str, tuple[int, int, int] | None]]:
+        """The class legend under the view: ``("digit name", BGR or None)`` per class with
+        a digit key (None: the class has no overlay colour, e.g. soil)."""
+        colours, has = self.state.schema.lut_rgb()
+        return [
+            (f"{c.index} {c.name}",
+             tuple(int(v) for v in colours[c.index][::-1]) if has[c.index] else None)
+            for c in self.state.schema.classes
+            if c.index <= 9
+        ]
+
     def status_lines(self) -> tuple[str, str, str]:
         """The three lines of the status strip."""
         s = self.state
         line1 = (f"{self.title} | class {s.active_class} {s.active_name} | tool {s.tool} | "
                  f"radius {s.radius:.1f} | zoom {s.transform.zoom:.2f}")
         work = "unsaved changes" if self.has_work else "no changes"
+        enter = "Enter settle (asks first)" if self.settling else "Enter save"
         line2 = (f"{work} | actions {s.actions} | {s.seconds:.0f} s | snap "
-                 f"{'on' if s.snap else 'off'} | Enter save, Esc leave, h keys")
+                 f"{'on' if s.snap else 'off'} | {enter}, Esc leave, ? keys")
         return line1, line2, self.message
 
     def frame(self) -> np.ndarray:
@@ -481,6 +547,12 @@ class EditorSession:
         if self.question is not None:
             if self.question == "discard":
                 lines = ["Unsaved work on this tile.", "Throw it away?  y = discard,  n = back"]
+            elif self.question == "settle":
+                lines = [
+                    f"Settle this tile with the mask of the pane '{s.pane_titles[0]}'?",
+                    "It becomes the tile's decided mask (state settled).",
+                    "y = settle,  n = back to editing",
+                ]
             else:
                 d = self._pending_draft
                 lines = [
@@ -490,6 +562,7 @@ class EditorSession:
                 ]
             top = max(s.view_shape[0] // 2 - 30, 0)
             panel(view, lines, top=top, left=8, line_px=20, scale=0.5)
-        strip = status_strip(self.status_lines(), cols=view.shape[1])
+        strip = status_strip(self.status_lines(), cols=view.shape[1], legend=self.legend(),
+                             heat=s.show_heat)
         return np.vstack([view, strip])
 

@@ -148,8 +148,10 @@ class EditorState(EditingTools):
         self._revision = 0
         self._changed_cache: tuple[int, bool] | None = None
         self._weak_cache: tuple[int, bool] | None = None
-        self._compare: np.ndarray | None = None
-        self._compare_label = ""
+        self._compare: tuple[np.ndarray, ...] = ()
+        self._compare_labels: tuple[str, ...] = ()
+        self._edit_label = "this edit"
+        self._edit_label_revision: int | None = None  # "edited" is added after it
         self.notice = ""
         self.snap = False
         self.learner: Callable[[np.ndarray], np.ndarray | None] | None = None
@@ -426,7 +428,7 @@ class EditorState(EditingTools):
 
     @property
     def pane_shape(self) -> tuple[int, int]:
-        """Size of one pane: the whole view, or half of it side by side."""
+        """Size of one pane: the whole view, or its share side by side."""
         return self._viewport.pane_shape
 
     @property
@@ -455,40 +457,86 @@ class EditorState(EditingTools):
         self._viewport.pan(d_rows, d_cols)
 
     def pane_of(self, view_point: tuple[float, float]) -> tuple[int, float, float]:
-        """``(pane, row, col)``: pane 0 (left or only), 1 (right) or -1 (the gap)."""
+        """``(pane, row, col)``: pane 0 (the edit), 1, 2, ... (compared masks) or -1
+        (a gap)."""
         return self._viewport.pane_of(view_point)
 
     # ------------------------------------------------------------------ compare
     @property
     def comparing(self) -> bool:
-        """True when the second mask is shown beside this edit."""
+        """True when the compared masks are shown beside this edit."""
         return self._viewport.split
 
     @property
     def compare_mask(self) -> np.ndarray | None:
-        """A copy of the second mask, or None."""
-        return None if self._compare is None else self._compare.copy()
+        """A copy of the first compared mask, or None."""
+        return self._compare[0].copy() if self._compare else None
+
+    @property
+    def compare_masks(self) -> tuple[np.ndarray, ...]:
+        """Copies of every compared mask, left to right."""
+        return tuple(m.copy() for m in self._compare)
+
+    @property
+    def pane_titles(self) -> tuple[str, ...]:
+        """Titles of the panes, left to right: this edit's, then each compared mask's."""
+        edit = self._edit_label
+        if self._edit_label_revision is not None and self._revision != self._edit_label_revision:
+            edit = f"{edit}, edited"
+        return (edit, *self._compare_labels)
 
     def set_compare(self, other: np.ndarray, *, label: str = "other") -> None:
         """Show ``other`` (H, W) uint8 beside the current mask, same zoom and pan."""
-        self._compare = self._checked(other, "other").copy()
-        self._compare_label = str(label)
+        self.set_compare_all([self._checked(other, "other")], labels=[label])
+
+    def set_compare_all(
+        self,
+        others: Sequence[np.ndarray],
+        *,
+        labels: Sequence[str],
+        edit_label: str | None = None,
+    ) -> None:
+        """Show every mask of ``others`` beside the current mask, same zoom and pan.
+
+        Parameters
+        ----------
+        others : sequence of ndarray, shape (H, W), uint8
+            The masks, left to right after this edit's pane (at least one).
+        labels : sequence of str
+            One title per mask (e.g. who saved it).
+        edit_label : str, optional
+            Title of this edit's pane (default "this edit"); once the mask changes it
+            reads "<edit_label>, edited".
+        """
+        masks = tuple(self._checked(m, f"others[{k}]").copy() for k, m in enumerate(others))
+        titles = tuple(str(t) for t in labels)
+        if not masks or len(titles) != len(masks):
+            raise ValueError(
+                f"others, labels: expected one title per mask and at least one mask, got "
+                f"{len(masks)} masks and {len(titles)} titles"
+            )
+        self._compare, self._compare_labels = masks, titles
+        if edit_label is None:
+            self._edit_label, self._edit_label_revision = "this edit", None
+        else:
+            self._edit_label, self._edit_label_revision = str(edit_label), self._revision
         self._renderer.compare_changed()
-        self._viewport.set_split(True)
+        self._viewport.set_panes(1 + len(masks))
 
     def toggle_compare(self) -> bool:
-        """Switch the side-by-side view on or off (when there is a second mask)."""
-        if self._compare is None:
+        """Switch the side-by-side view on or off (when there are masks to compare)."""
+        if not self._compare:
             self.notice = "no second mask to compare with"
             return False
-        self._viewport.set_split(not self._viewport.split)
+        self._viewport.set_panes(1 if self._viewport.split else 1 + len(self._compare))
         return True
 
     def clear_compare(self) -> None:
-        """Forget the second mask and show one pane."""
-        self._compare = None
+        """Forget the compared masks and show one pane."""
+        self._compare, self._compare_labels = (), ()
+        self._edit_label, self._edit_label_revision = "this edit", None
         self._renderer.compare_changed()
-        self._viewport.set_split(False)
+        self._viewport.set_panes(1)
 
     # ------------------------------------------------------------------ rendering
     def render(self) -> np.ndarray:
@@ -509,5 +557,5 @@ class EditorState(EditingTools):
         )
         return self._renderer.render(
             self._mask, self._weak, viewport=self._viewport, compare=self._compare,
-            compare_label=self._compare_label, marks=marks,
+            compare_label=self._compare_labels, edit_label=self.pane_titles[0], marks=marks,
         )

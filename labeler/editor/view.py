@@ -6,10 +6,11 @@ Coordinates
     of the rendered view, in view pixels. :class:`ViewTransform` converts between them.
 
 Panes
-    The view shows one pane, or two side by side (this edit on the left, a second mask on
-    the right) separated by :data:`PANE_GAP` view pixels. Both panes share one
-    transform. :class:`Viewport` holds the view size, the transform and whether the view
-    is split, and answers which pane a view point falls in.
+    The view shows one pane, or several side by side (this edit on the left, the masks
+    compared with it to its right: a second mask, or every annotator's mask when a
+    reviewer settles a tile) separated by :data:`PANE_GAP` view pixels. All panes share
+    one transform. :class:`Viewport` holds the view size, the transform and the number of
+    panes, and answers which pane a view point falls in.
 
 Nothing here draws or edits a mask.
 """
@@ -144,9 +145,14 @@ def fit_view_shape(
     *,
     max_shape: tuple[int, int] = (900, 1200),
     max_zoom: int = 8,
+    panes: int = 1,
 ) -> tuple[int, int]:
     """A view size for a tile: the largest whole zoom (1..``max_zoom``) that fits in
     ``max_shape``, or the tile scaled down to fit when it is larger than that.
+
+    With ``panes`` > 1 the view holds that many copies of the tile side by side,
+    :data:`PANE_GAP` apart, each at that zoom: the view is exactly as wide as the panes,
+    so no backdrop bands are left beside or above them.
 
     Parameters
     ----------
@@ -156,23 +162,30 @@ def fit_view_shape(
         Largest ``(rows, cols)`` of the view (leave room for the status strip).
     max_zoom : int
         Largest whole zoom.
+    panes : int
+        Panes side by side (1: the edit alone).
 
     Returns
     -------
     (rows, cols) : (int, int)
-        At least 8 x 8.
+        At least 8 x 8 per pane.
     """
     h, w = int(tile_shape[0]), int(tile_shape[1])
     mr, mc = int(max_shape[0]), int(max_shape[1])
-    if min(h, w, mr, mc) < 1 or max_zoom < 1:
+    n = int(panes)
+    if n < 1:
+        raise ValueError(f"panes: expected 1 or more panes side by side, got {panes}")
+    pane_cols = (mc - (n - 1) * PANE_GAP) // n
+    if min(h, w, mr, pane_cols) < 1 or max_zoom < 1:
         raise ValueError(
             f"tile_shape, max_shape, max_zoom: expected positive sizes, got {tile_shape}, "
-            f"{max_shape}, {max_zoom}"
+            f"{max_shape}, {max_zoom} (for {n} panes of at most {pane_cols} columns)"
         )
-    scale = min(mr / h, mc / w)
+    scale = min(mr / h, pane_cols / w)
     if scale >= 1:
         scale = float(min(int(scale), int(max_zoom)))
-    return max(int(h * scale), 8), max(int(w * scale), 8)
+    rows, cols = max(int(h * scale), 8), max(int(w * scale), 8)
+    return rows, n * cols + (n - 1) * PANE_GAP
 
 
 def check_view_shape(view_shape: tuple[int, int]) -> tuple[int, int]:
@@ -203,7 +216,7 @@ class Viewport:
     def __init__(self, tile_shape: tuple[int, int], view_shape: tuple[int, int]) -> None:
         self._tile_shape = (int(tile_shape[0]), int(tile_shape[1]))
         self._view_shape = check_view_shape(view_shape)
-        self._split = False
+        self._panes = 1
         self.transform = ViewTransform.fit(self._tile_shape, self.pane_shape)
 
     @property
@@ -213,23 +226,26 @@ class Viewport:
 
     @property
     def split(self) -> bool:
-        """True when the view shows two panes side by side."""
-        return self._split
+        """True when the view shows more than one pane side by side."""
+        return self._panes > 1
+
+    @property
+    def panes(self) -> int:
+        """Number of panes side by side (1: the edit alone)."""
+        return self._panes
 
     @property
     def pane_shape(self) -> tuple[int, int]:
-        """Size of one pane: the whole view, or half of it (less the gap) when split."""
+        """Size of one pane: the whole view, or its share (less the gaps) when split."""
         vh, vw = self._view_shape
-        if self._split:
-            return vh, max((vw - PANE_GAP) // 2, 1)
-        return vh, vw
+        n = self._panes
+        return vh, max((vw - (n - 1) * PANE_GAP) // n, 1)
 
     @property
     def pane_offsets(self) -> tuple[int, ...]:
-        """First view column of each pane: ``(0,)`` or ``(0, pane width + gap)``."""
-        if self._split:
-            return 0, self.pane_shape[1] + PANE_GAP
-        return (0,)
+        """First view column of each pane: ``(0,)``, ``(0, pane width + gap, ...)``."""
+        step = self.pane_shape[1] + PANE_GAP
+        return tuple(k * step for k in range(self._panes))
 
     def resize(self, view_shape: tuple[int, int]) -> None:
         """Change the view size and fit the tile into it."""
@@ -238,7 +254,14 @@ class Viewport:
 
     def set_split(self, split: bool) -> None:
         """Show one pane or two, and fit the tile into a pane."""
-        self._split = bool(split)
+        self.set_panes(2 if split else 1)
+
+    def set_panes(self, panes: int) -> None:
+        """Show ``panes`` panes side by side (at least 1), and fit the tile into a pane."""
+        n = int(panes)
+        if n < 1:
+            raise ValueError(f"panes: expected 1 or more panes side by side, got {panes}")
+        self._panes = n
         self.fit()
 
     def fit(self) -> None:
@@ -260,15 +283,17 @@ class Viewport:
         Returns
         -------
         (pane, row, col) : (int, float, float)
-            ``pane`` is 0 (the left or only pane), 1 (the right pane) or -1 (the gap);
-            ``row, col`` are relative to the pane's top-left corner.
+            ``pane`` is 0 (the left or only pane), 1, 2, ... (the panes to its right) or
+            -1 (a gap); ``row, col`` are relative to the pane's top-left corner. Points
+            left of the view count to pane 0, points right of it to the last pane.
         """
         vr, vc = float(view_point[0]), float(view_point[1])
-        if not self._split:
+        if self._panes == 1:
             return 0, vr, vc
         pw = self.pane_shape[1]
-        if vc < pw:
-            return 0, vr, vc
-        if vc >= pw + PANE_GAP:
-            return 1, vr, vc - pw - PANE_GAP
+        step = pw + PANE_GAP
+        k = min(max(int(math.floor(vc / step)), 0), self._panes - 1)
+        within = vc - k * step
+        if within < pw or k == self._panes - 1 or vc < 0:
+            return k, vr, within
         return -1, vr, vc

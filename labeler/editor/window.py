@@ -167,6 +167,7 @@ def run_editor(
     poll_ms: int = 15,
     gui: Gui | None = None,
     clock: Callable[[], float] = time.monotonic,
+    settling: bool = False,
 ) -> EditorOutcome:
     """Open the editor window for one tile and return when it closes.
 
@@ -190,6 +191,9 @@ def run_editor(
         Window to use; default an OpenCV HighGUI window (needs a display).
     clock : callable
         Seconds for autosave timing.
+    settling : bool
+        A reviewer settles a contested tile: Enter asks before it saves
+        (:class:`~labeler.editor.session.EditorSession`).
 
     Returns
     -------
@@ -210,7 +214,8 @@ def run_editor(
         gui = HighGuiWindow(title)
     session = EditorSession(state, backend=backend, title=title,
                             autosave_seconds=autosave_seconds,
-                            heartbeat_seconds=heartbeat_seconds, clock=clock)
+                            heartbeat_seconds=heartbeat_seconds, clock=clock,
+                            settling=settling)
     try:
         gui.open(session.frame_shape, session.on_mouse)
         session.start()

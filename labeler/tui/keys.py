@@ -1,10 +1,16 @@
-"""The keys of the terminal queue, in one table: footer bindings and the help screen."""
+"""The keys of the terminal queue: footer bindings and the help screen.
+
+Generated from the key map the editor shares (:data:`labeler.keymap.KEYMAP`), so a
+letter means the same in the queue and in the editor window.
+"""
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
 from textual.binding import Binding
+
+from labeler.keymap import KEYMAP
 
 __all__ = [
     "HEADER_ICON",
@@ -37,43 +43,28 @@ class Key:
         return self.display or self.key
 
 
+def _keys(screen: str) -> tuple[Key, ...]:
+    """The keys of one screen, from the shared key map."""
+    return tuple(
+        Key(row.textual_key, p.action, p.label, row.queue, shown=row.footer,
+            display=row.key if row.key != row.textual_key else "")
+        for row in KEYMAP
+        for p in row.places
+        if p.screen == screen
+    )
+
+
 #: Keys that work on every screen.
-APP_KEYS: tuple[Key, ...] = (
-    Key("g", "agreement", "agreement",
-        "open the agreement screen: annotator pairs, classes and contested tiles"),
-    Key("m", "models", "models",
-        "open the model screen: every model version with its validation IoU per class"),
-    Key("question_mark", "help", "help", "show this list of keys", display="?"),
-    Key("q", "quit", "quit", "leave the queue; every saved mask is already in the store"),
-)
+APP_KEYS: tuple[Key, ...] = _keys("app")
 
 #: Keys of the queue screen.
-QUEUE_KEYS: tuple[Key, ...] = (
-    Key("e", "edit", "edit",
-        "open the selected tile in the mask editor window (needs a display)"),
-    Key("a", "accept", "accept",
-        "keep the proposal shown in the preview, unchanged, as your mask, and move on"),
-    Key("p", "park", "park",
-        "set the selected tile aside, with an optional reason; on a parked tile, bring it back"),
-    Key("n", "next", "next", "jump to the next tile you may take"),
-    Key("r", "repick", "re-pick", "ask the picker for a new queue order (runs in the background)"),
-    Key("t", "retrain", "retrain",
-        "train the model on the saved masks (runs in the background), then show its IoU"),
-    Key("slash", "find", "find", "type a tile id in the search box and press Enter",
-        shown=False, display="/"),
-)
+QUEUE_KEYS: tuple[Key, ...] = _keys("queue")
 
-#: Keys of the agreement screen.
-AGREEMENT_KEYS: tuple[Key, ...] = (
-    Key("s", "settle", "settle",
-        "open the selected contested tile in the editor with both masks, to decide it"),
-    Key("u", "update", "update", "compute the figures again from the store"),
-)
+#: Keys of the agreement screen (besides the way back).
+AGREEMENT_KEYS: tuple[Key, ...] = tuple(k for k in _keys("agreement") if k.action != "back")
 
 #: Keys of the agreement and model screens.
-SUBSCREEN_KEYS: tuple[Key, ...] = (
-    Key("escape", "back", "back", "return to the queue", display="Esc"),
-)
+SUBSCREEN_KEYS: tuple[Key, ...] = tuple(k for k in _keys("models") if k.action == "back")
 
 
 def bindings(keys: tuple[Key, ...]) -> list[Binding]:

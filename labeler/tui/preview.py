@@ -6,6 +6,10 @@ lower pixel. A picture of ``h`` x ``w`` pixels therefore takes ``ceil(h / 2)`` r
 ``w`` cells, and since a terminal cell is about twice as tall as it is wide, each
 pixel comes out roughly square.
 
+Zoom (:func:`zoom_picture`): from zoom 2 on, the preview shows the part of the tile
+around a chosen point, enlarged by whole-pixel repetition once a tile pixel gets a preview
+pixel or more -- the tile at full resolution, as far as a terminal cell grid can show it.
+
 Pure numpy in, Rich :class:`~rich.text.Text` out: nothing here needs a running app, so
 the renderer is tested on exact little arrays.
 """
@@ -30,6 +34,9 @@ __all__ = [
     "fit_picture",
     "tile_picture",
     "half_block_text",
+    "ZOOM_LEVELS",
+    "zoom_window",
+    "zoom_picture",
 ]
 
 #: Upper half block: foreground = upper pixel, background = lower pixel.
@@ -256,3 +263,101 @@ def half_block_text(rgb: np.ndarray) -> Text:
                 )
             text.append(HALF_BLOCK, style)
     return text
+
+
+#: Zoom levels of the preview: 1 fits the whole tile; each level doubles the magnification.
+ZOOM_LEVELS = (1, 2, 4, 8, 16)
+
+
+def zoom_window(
+    shape: tuple[int, int],
+    *,
+    zoom: int,
+    centre: tuple[float, float],
+    cols: int,
+    rows: int,
+) -> tuple[tuple[int, int, int, int], float]:
+    """The part of a tile the zoomed preview shows, and its magnification.
+
+    At zoom 1 the whole tile fits ``cols`` x ``2 * rows`` pixels (magnification
+    ``m1 = min(cols / W, 2 * rows / H)``); zoom ``k`` magnifies by ``k * m1`` and shows
+    the part of the tile around ``centre`` that fits, moved inside the tile when the
+    centre is near an edge.
+
+    Parameters
+    ----------
+    shape : (int, int)
+        ``(H, W)`` of the tile, at least 1 each.
+    zoom : int
+        At least 1.
+    centre : (float, float)
+        Tile ``(row, col)`` to keep in the middle.
+    cols, rows : int
+        Cells available (each one pixel across and two down).
+
+    Returns
+    -------
+    ((r0, r1, c0, c1), magnification) : ((int, int, int, int), float)
+        Rows ``r0:r1`` and columns ``c0:c1`` of the tile shown, and preview pixels per
+        tile pixel.
+
+    Raises
+    ------
+    ValueError
+        If ``zoom`` is below 1 or a size is below 1.
+    """
+    h, w = (int(v) for v in shape)
+    if h < 1 or w < 1 or cols < 1 or rows < 1:
+        raise ValueError(
+            f"shape, cols, rows: expected sizes of at least 1, got {shape}, cols={cols}, "
+            f"rows={rows}"
+        )
+    if int(zoom) < 1:
+        raise ValueError(f"zoom: expected a level of 1 or more, got {zoom}")
+    mag = int(zoom) * min(cols / w, 2 * rows / h)
+    win_h = min(h, max(1, math.floor(2 * rows / mag + 1e-9)))
+    win_w = min(w, max(1, math.floor(cols / mag + 1e-9)))
+    r0 = int(round(float(centre[0]) + 0.5 - win_h / 2))
+    c0 = int(round(float(centre[1]) + 0.5 - win_w / 2))
+    r0 = min(max(r0, 0), h - win_h)
+    c0 = min(max(c0, 0), w - win_w)
+    return (r0, r0 + win_h, c0, c0 + win_w), mag
+
+
+def zoom_picture(
+    picture: np.ndarray,
+    *,
+    zoom: int,
+    centre: tuple[float, float],
+    cols: int,
+    rows: int,
+) -> tuple[np.ndarray, tuple[int, int, int, int]]:
+    """The zoomed preview: the part of ``picture`` :func:`zoom_window` gives, sized to fit.
+
+    A part shown smaller than the cells is enlarged by repeating pixels (each tile pixel
+    a block of whole preview pixels: nothing is smoothed, so thin leaves and lesions stay
+    as sharp as in the tile); a part larger is shrunk by averaging blocks
+    (:func:`box_downsample`), as at zoom 1.
+
+    Parameters
+    ----------
+    picture : ndarray, shape (H, W, 3), uint8
+        The tile with its overlay.
+    zoom, centre, cols, rows
+        As for :func:`zoom_window`.
+
+    Returns
+    -------
+    (ndarray, (r0, r1, c0, c1))
+        The preview pixels, shape (h, w, 3) uint8 with ``h <= 2 * rows`` and
+        ``w <= cols``, and the tile rows and columns they show.
+    """
+    img = _check_rgb(picture, "picture")
+    (r0, r1, c0, c1), mag = zoom_window(img.shape[:2], zoom=zoom, centre=centre, cols=cols,
+                                        rows=rows)
+    part = img[r0:r1, c0:c1]
+    if mag < 1:
+        return fit_picture(part, cols=cols, rows=rows), (r0, r1, c0, c1)
+    k = max(1, math.floor(mag + 1e-9))
+    k = min(k, max(1, (2 * rows) // part.shape[0]), max(1, cols // part.shape[1]))
+    return np.repeat(np.repeat(part, k, axis=0), k, axis=1), (r0, r1, c0, c1)

@@ -3,6 +3,11 @@
 Every store or model call runs in a worker thread; results come back to the interface
 through ``App.call_from_thread``. The screen decides nothing itself: accepting, parking,
 the next tile, the queue order and retraining are :mod:`labeler.workflow` functions.
+
+Holds are shown live: every :attr:`QueueScreen.holds_every` seconds the screen reads who
+holds which tile (:func:`labeler.workflow.views.holders`, one light query) and, when that
+differs from the rows shown, reads the rows again, so a tile another annotator opens (or
+saves, or gives back) changes its state and "who" cells within that time.
 """
 
 from __future__ import annotations
@@ -33,6 +38,7 @@ from labeler.tui.rows import (
 )
 from labeler.tui.widgets import TilePreview, WorkBar, palette_legend
 from labeler.workflow.annotating import QueueRow
+from labeler.workflow.views import holders
 
 __all__ = ["QueueScreen"]
 
@@ -41,6 +47,9 @@ class QueueScreen(Screen):
     """Annotators work through the tiles here; managers watch the states change."""
 
     BINDINGS = bindings(QUEUE_KEYS)
+
+    #: Seconds between reads of the holds (the live "who" and state cells).
+    holds_every: float = 2.0
 
     def __init__(self) -> None:
         super().__init__()
@@ -54,6 +63,8 @@ class QueueScreen(Screen):
         self._preview_tile: int | None = None
         self._annotators: tuple[str, ...] = ()
         self._saving: set[int] = set()  # tiles with a save or park still in flight
+        self.hold_checks = 0  # completed reads of the holds (tests wait on it)
+        self._holds_timer = None
 
     # -- layout -------------------------------------------------------------------------
     @property
@@ -93,6 +104,7 @@ class QueueScreen(Screen):
         self.columns = tuple(QUEUE_COLUMNS)
         table.focus()
         self.reload()
+        self._holds_timer = self.set_interval(self.holds_every, self._check_holds, name="holds")
 
     def on_resize(self) -> None:
         """Fit the columns to the new width."""
@@ -106,7 +118,14 @@ class QueueScreen(Screen):
         if tuple(QUEUE_COLUMNS[k] for k in keep) != self.columns:
             self._refill()
 
+    def on_screen_suspend(self) -> None:
+        # another screen on top: no need to watch the holds until the queue shows again
+        if self._holds_timer is not None:
+            self._holds_timer.pause()
+
     def on_screen_resume(self) -> None:
+        if self._holds_timer is not None:
+            self._holds_timer.resume()
         # back from the agreement or model screen: a reviewer may have settled tiles there
         if self.loads:
             self.reload()
@@ -202,6 +221,40 @@ class QueueScreen(Screen):
             )
         elif force_preview or tile != self._preview_tile:
             self._show_preview(tile)
+
+    # -- holds, live ----------------------------------------------------------------------
+    def shown_holds(self) -> dict[int, str]:
+        """Who holds which tile according to the rows read last.
+
+        Returns
+        -------
+        dict of int to str
+            Tile id -> holder, for the tiles the rows say are held.
+        """
+        return {r.tile_id: r.held_by for r in self.rows if r.held_by}
+
+    def _check_holds(self) -> None:
+        if self.loads and self.app.is_running:
+            self._read_holds()
+
+    @work(thread=True, exclusive=True, group="holds", exit_on_error=False)
+    def _read_holds(self) -> None:
+        worker = get_current_worker()
+        try:
+            now = holders(self.project)
+        except Exception as exc:  # noqa: BLE001 - a busy or gone database: try next time
+            self.app.call_from_thread(self._holds_read, None, repr(exc))
+            return
+        if not worker.is_cancelled:
+            self.app.call_from_thread(self._holds_read, now, "")
+
+    def _holds_read(self, now: dict[int, str] | None, problem: str) -> None:
+        self.hold_checks += 1
+        if now is None:
+            self.log.warning(f"reading the holds failed: {problem}")
+            return
+        if now != self.shown_holds():
+            self.reload()
 
     def _update_status(self) -> None:
         counts: dict[str, int] = {}
@@ -304,11 +357,28 @@ class QueueScreen(Screen):
         if not worker.is_cancelled:
             self.app.call_from_thread(self._preview_ready, tile_id, picture, caption)
 
+    # -- zoom -----------------------------------------------------------------------------
+    def action_zoom_in(self) -> None:
+        self.query_one(TilePreview).zoom_by(+1)
+
+    def action_zoom_out(self) -> None:
+        self.query_one(TilePreview).zoom_by(-1)
+
+    def action_whole(self) -> None:
+        self.query_one(TilePreview).set_zoom(1)
+
+    @on(TilePreview.Zoomed)
+    def _zoomed(self) -> None:
+        self.query_one("#side").border_subtitle = self.query_one(TilePreview).zoom_note
+
     def _preview_ready(self, tile_id: int, picture, caption: str) -> None:
         if tile_id != self._preview_tile:
             return
         self.query_one("#preview-caption", Label).update(caption)
-        self.query_one(TilePreview).show(tile_id, picture)
+        preview = self.query_one(TilePreview)
+        preview.show(tile_id, picture)
+        if preview.zoom != 1:
+            preview.set_zoom(preview.zoom)  # the new tile's middle, and its note
 
     def _preview_failed(self, tile_id: int, message: str) -> None:
         if tile_id != self._preview_tile:

@@ -4,13 +4,15 @@ from __future__ import annotations
 
 import numpy as np
 from rich.text import Text
+from textual import events
 from textual.app import ComposeResult
 from textual.containers import Horizontal
+from textual.message import Message
 from textual.widget import Widget
 from textual.widgets import Label, ProgressBar
 
 from labeler.classes import ClassSchema
-from labeler.tui.preview import fit_picture, half_block_text
+from labeler.tui.preview import ZOOM_LEVELS, fit_picture, half_block_text, zoom_picture
 
 __all__ = ["TilePreview", "WorkBar", "palette_legend"]
 
@@ -47,14 +49,103 @@ class TilePreview(Widget):
     :meth:`show` takes the full-resolution picture (the tile with the overlay already
     blended, :func:`labeler.tui.preview.overlay`, done in a worker); every render fits it
     to the widget's current content size, so resizing the terminal redraws it.
+
+    Zoom: at :attr:`zoom` 1 the whole tile is shown; :meth:`zoom_by` steps through
+    :data:`~labeler.tui.preview.ZOOM_LEVELS`, showing the part of the tile round
+    :attr:`centre` (:func:`~labeler.tui.preview.zoom_picture`); a click on the picture
+    centres it there (and zooms to 2 from 1). The zoom stays when another tile is shown;
+    the centre goes back to the tile's middle. Each change posts :class:`Zoomed`.
     """
+
+    class Zoomed(Message):
+        """The zoom or its centre changed (:attr:`TilePreview.zoom_note` says how)."""
 
     def __init__(self, **kwargs) -> None:
         super().__init__(**kwargs)
         self.tile_id: int | None = None
         self._rgb: np.ndarray | None = None
         self._message = "no tile selected"
-        self._cache: tuple[tuple[int, int], Text] | None = None
+        self._cache: tuple[tuple, Text] | None = None
+        self.zoom = 1
+        self.centre: tuple[float, float] | None = None  # tile (row, col); None: the middle
+        #: Tile rows and columns shown by the last render, ``(r0, r1, c0, c1)``.
+        self.shown_window: tuple[int, int, int, int] | None = None
+        self._picture_size: tuple[int, int] | None = None
+
+    @property
+    def zoom_note(self) -> str:
+        """What the preview shows: ``""`` for the whole tile, else the zoom and the part."""
+        if self.zoom == 1 or self.shown_window is None:
+            return ""
+        r0, r1, c0, c1 = self.shown_window
+        return f"zoom x{self.zoom}: rows {r0}-{r1 - 1}, cols {c0}-{c1 - 1}"
+
+    def zoom_by(self, steps: int) -> int:
+        """Move ``steps`` zoom levels in (positive) or out (negative).
+
+        Parameters
+        ----------
+        steps : int
+            Levels of :data:`~labeler.tui.preview.ZOOM_LEVELS` to move; the ends hold.
+
+        Returns
+        -------
+        int
+            The zoom level now.
+        """
+        levels = list(ZOOM_LEVELS)
+        k = min(max(levels.index(self.zoom) + int(steps), 0), len(levels) - 1)
+        self.set_zoom(levels[k])
+        return self.zoom
+
+    def set_zoom(self, level: int, *, centre: tuple[float, float] | None = None) -> None:
+        """Show zoom ``level``, round ``centre`` if given.
+
+        Parameters
+        ----------
+        level : int
+            One of :data:`~labeler.tui.preview.ZOOM_LEVELS` (1: the whole tile).
+        centre : (float, float), optional
+            Tile ``(row, col)`` to keep in the middle (default: the one set before, or the
+            tile's middle).
+
+        Raises
+        ------
+        ValueError
+            If ``level`` is not a zoom level.
+        """
+        if level not in ZOOM_LEVELS:
+            raise ValueError(
+                f"level: expected one of {', '.join(map(str, ZOOM_LEVELS))}, got {level}"
+            )
+        self.zoom = int(level)
+        if centre is not None:
+            self.centre = (float(centre[0]), float(centre[1]))
+        if self.zoom == 1:
+            self.centre = None
+        self._cache = None
+        self.refresh()
+        self.render()  # sets shown_window now, so the note is current
+        self.post_message(self.Zoomed())
+
+    def on_click(self, event: events.Click) -> None:
+        """Centre the zoom on the clicked point of the tile (zoom 2 from the whole tile).
+
+        Parameters
+        ----------
+        event : textual.events.Click
+            The click; ``event.x, event.y`` are cells of the widget.
+        """
+        if self._rgb is None or self.shown_window is None or self._picture_size is None:
+            return
+        ph, pw = self._picture_size
+        x, y = event.x, event.y
+        if not (0 <= x < pw and 0 <= 2 * y < ph):
+            return
+        r0, r1, c0, c1 = self.shown_window
+        row = r0 + (2 * y + 1) * (r1 - r0) / ph - 0.5  # the cell's middle, tile index units
+        col = c0 + (x + 0.5) * (c1 - c0) / pw - 0.5
+        self.set_zoom(max(self.zoom, 2), centre=(row, col))
 
     @property
     def picture_shape(self) -> tuple[int, int] | None:
@@ -75,6 +166,8 @@ class TilePreview(Widget):
         picture : ndarray, shape (H, W, 3), uint8
             Its RGB picture with the overlay blended in; fitted to the widget when drawn.
         """
+        if tile_id != self.tile_id:
+            self.centre = None
         self.tile_id = tile_id
         self._rgb = picture
         self._cache = None
@@ -100,10 +193,21 @@ class TilePreview(Widget):
         if self._rgb is None:
             return Text(self._message)
         size = (max(1, self.content_size.width), max(1, self.content_size.height))
-        if self._cache is not None and self._cache[0] == size:
+        key = (size, self.zoom, self.centre)
+        if self._cache is not None and self._cache[0] == key:
             return self._cache[1]
-        text = half_block_text(fit_picture(self._rgb, cols=size[0], rows=size[1]))
-        self._cache = (size, text)
+        h, w = self._rgb.shape[:2]
+        if self.zoom == 1:
+            picture = fit_picture(self._rgb, cols=size[0], rows=size[1])
+            self.shown_window = (0, h, 0, w)
+        else:
+            centre = self.centre if self.centre is not None else ((h - 1) / 2, (w - 1) / 2)
+            picture, self.shown_window = zoom_picture(
+                self._rgb, zoom=self.zoom, centre=centre, cols=size[0], rows=size[1]
+            )
+        self._picture_size = picture.shape[:2]
+        text = half_block_text(picture)
+        self._cache = (key, text)
         return text
 
 

@@ -230,6 +230,9 @@ class EditStart:
         Who made ``compare``.
     backend : StoreBackend
         Where the edit saves.
+    annotations : tuple of (str, ndarray)
+        Settling: every annotator's newest full mask, ``(name, (H, W) uint8)``, in the
+        store's order of savers; () otherwise.
     """
 
     tile_id: int
@@ -243,6 +246,7 @@ class EditStart:
     compare: np.ndarray | None
     compare_label: str | None
     backend: StoreBackend
+    annotations: tuple[tuple[str, np.ndarray], ...] = ()
 
 
 def begin_edit(
@@ -253,7 +257,7 @@ def begin_edit(
     The edit starts from the annotator's own newest mask, else the newest proposal,
     else all soil. On an overlap tile an annotator never sees another's mask. With
     ``settle`` (a reviewer deciding a contested tile) it starts from the STAPLE
-    consensus of the annotators' masks, with the first annotator's mask to compare.
+    consensus of the annotators' masks, with every annotator's mask to compare.
 
     Parameters
     ----------
@@ -285,6 +289,7 @@ def begin_edit(
     base = proposal.mask() if proposal is not None else np.zeros(tile.shape, np.uint8)
     compare = None
     compare_label = None
+    annotations: tuple[tuple[str, np.ndarray], ...] = ()
     if settle:
         if tile.state != CONTESTED and tile.state != SETTLED:
             raise LabelerError(
@@ -301,6 +306,7 @@ def begin_edit(
         start = result.consensus.copy()
         start[start == UNLABELLED] = masks[0][start == UNLABELLED]
         compare, compare_label = masks[0], savers[0]
+        annotations = tuple((name, m) for name, m in zip(savers, masks, strict=True))
         parent = store.lineage_head(tile_id, annotator, settling=True)
     else:
         own = store.visible_annotation(tile_id, annotator)
@@ -331,6 +337,7 @@ def begin_edit(
         compare=compare,
         compare_label=compare_label,
         backend=backend,
+        annotations=annotations,
     )
 
 

@@ -35,7 +35,25 @@ __all__ = [
     "tile_places",
     "SaveBasis",
     "save_basis",
+    "holders",
 ]
+
+
+def holders(project: Project) -> dict[int, str]:
+    """Who holds which tile now (one light read, for a view that refreshes itself).
+
+    Parameters
+    ----------
+    project : Project
+        The open project.
+
+    Returns
+    -------
+    dict of int to str
+        Tile id -> the annotator holding it; tiles nobody holds are absent. A hold
+        whose lease lapsed stays listed until tiles are next handed out.
+    """
+    return {tile_id: who for tile_id, who, _left in project.store.current_holds()}
 
 
 def annotators(project: Project) -> list[str]:

@@ -1,4 +1,4 @@
-"""The key and mouse table: one source for the window, the help overlay and the README."""
+"""The editor's keys and mouse: from the shared key map, for the window and the help overlay."""
 
 from __future__ import annotations
 
@@ -30,13 +30,14 @@ def test_help_rows_list_classes_keys_and_mouse():
     rows = help_rows(DEFAULT_SCHEMA)
     assert rows[0] == ("0-9", "active class (0 soil, 1 crop, 2 weed, 3 symptom)")
     assert len(rows) == 1 + len(BINDINGS) + len(MOUSE)
-    assert ("h", "this help: on / off") in rows
+    assert ("?", "show the keys: on / off") in rows
 
 
-def test_readme_table_comes_from_the_key_table():
+def test_readme_mouse_table_comes_from_the_key_table():
     table = keys_markdown(DEFAULT_SCHEMA)
     for needle in ("`Enter`", "`Esc`", "`+` or `=`", "right or middle drag", "2 weed"):
         assert needle in table
     assert "licensed agronomic advice" in keys_markdown()
     readme = (Path(__file__).resolve().parents[2] / "README.md").read_text(encoding="utf-8")
-    assert table in readme  # the README's editor keys are this table, word for word
+    mouse = table[table.index("| mouse | does |"):]
+    assert mouse in readme  # the README's mouse table and cautions, word for word

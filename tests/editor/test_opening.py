@@ -8,7 +8,7 @@ import pytest
 
 from labeler.editor.opening import edit_tile, open_tile_edit
 from labeler.editor.panels import STATUS_ROWS
-from labeler.editor.view import ViewTransform, fit_view_shape
+from labeler.editor.view import PANE_GAP, ViewTransform, fit_view_shape
 from labeler.masks.edits import stroke_mask
 from labeler.workflow import save_tile_mask
 from tests.editor import xdrive
@@ -31,7 +31,7 @@ def _scripted(monkeypatch, steps):
     [
         ([13], "saved as accepted (full mask)", "full"),
         ([ord("2"), ord("d"), *drag_steps(STROKE), 13], "saved as amended (full mask)", "full"),
-        ([ord("3"), ord("s"), *drag_steps(STROKE), ord("p")], "saved as weak (weak label)",
+        ([ord("3"), ord("s"), *drag_steps(STROKE), ord("k")], "saved as weak (weak label)",
          "scribble"),
     ],
     ids=["unchanged", "stroke", "weak_label"],
@@ -100,21 +100,60 @@ def test_open_tile_edit_starts_from_the_proposal(project):  # noqa: F811
     assert not edit.state.show_heat and "no uncertainty map" in edit.state.notice
 
 
-def test_settling_saves_settled_and_the_outcome_says_so(overlap_project):  # noqa: F811
-    proj = overlap_project
+def _contested(proj):
+    """Tile 0 of ``proj`` saved by ines (left half crop) and tomas (top half weed)."""
     tile = proj.store.tiles()[0]
     a = np.zeros(tile.shape, np.uint8)
-    a[:, :128] = 1
+    a[:, : tile.shape[1] // 2] = 1
     b = np.zeros(tile.shape, np.uint8)
-    b[:128, :] = 2
+    b[: tile.shape[0] // 2, :] = 2
     save_tile_mask(proj, tile.id, "ines", a, parent_version=None)
     save_tile_mask(proj, tile.id, "tomas", b, parent_version=None)
     assert proj.store.tile(tile.id).state == "contested"
+    return tile, a, b
+
+
+def test_settle_view_starts_from_the_consensus_with_every_mask_beside_it(overlap_project):  # noqa: F811
+    from labeler.agreement import staple
+    from labeler.editor.opening import CONSENSUS_TITLE
+
+    proj = overlap_project
+    tile, a, b = _contested(proj)
     edit = open_tile_edit(proj, tile.id, "rev", settle=True)
-    assert edit.compare_with == "ines" and edit.state.comparing
-    np.testing.assert_array_equal(edit.state.compare_mask, a)
+    s = edit.state
+    assert edit.settling and edit.compare_with == "ines" and s.comparing
+    assert s.pane_titles == (CONSENSUS_TITLE, "ines", "tomas")
+    np.testing.assert_array_equal(s.compare_masks[0], a)
+    np.testing.assert_array_equal(s.compare_masks[1], b)
+    # the editable pane starts from the STAPLE consensus (Warfield, Zou & Wells 2004)
+    expected = staple(np.stack([a, b]), n_classes=proj.settings.classes.n_values).consensus
+    np.testing.assert_array_equal(s.mask[expected != 255], expected[expected != 255])
+    h, w = tile.shape
+    assert (s.mask[h // 2 :, w // 2 :] == 0).all()  # where both say soil, so does any consensus
+    # three panes, each exactly one zoomed tile: the window has no backdrop bands
+    assert s.view_shape == fit_view_shape(tile.shape, panes=3)
+    zoom = s.transform.zoom
+    assert zoom == int(zoom) >= 1 and s.pane_shape == (h * zoom, w * zoom)
+    assert s.view_shape[1] == 3 * w * zoom + 2 * PANE_GAP
     proj.store.release(tile.id, "rev")
-    _tile_id, outcome = edit_tile(proj, tile.id, "rev", settle=True, gui=ScriptGui([13]))
+
+
+def test_settling_asks_before_it_saves(overlap_project):  # noqa: F811
+    proj = overlap_project
+    tile, _a, _b = _contested(proj)
+    # Enter asks; n goes back to editing; Esc then asks to drop the work; y drops it
+    gui = ScriptGui([13, ord("n"), 27, ord("y")])
+    _tile_id, outcome = edit_tile(proj, tile.id, "rev", settle=True, gui=gui)
+    assert outcome.reason == "discarded" and not outcome.saved
+    assert proj.store.tile(tile.id).state == "contested"
+    assert proj.store.latest_annotation(tile.id, annotator="rev") is None
+    # the question is drawn in the window: the frame after Enter differs from the one before
+    before, asking = gui.frames[0], gui.frames[1]
+    rows = slice(before.shape[0] // 2 - 40, before.shape[0] // 2 + 40)
+    assert (before[rows] != asking[rows]).any()
+    # Enter, then y: settled
+    gui = ScriptGui([13, ord("y")])
+    _tile_id, outcome = edit_tile(proj, tile.id, "rev", settle=True, gui=gui)
     assert outcome.state == "settled"
     assert proj.store.latest_annotation(tile.id).state == "settled"
     assert proj.store.tile(tile.id).state == "settled"
@@ -167,3 +206,40 @@ def test_xvfb_cli_edit_saves_amended_exactly_where_the_stroke_went(display, proj
     assert (mask[stroke] == WEED).all()
     assert saved.actions >= 1 and store.tile(tile.id).state == "amended"
     assert store.tile(tile.id).held_by is None
+
+
+@pytest.mark.display
+def test_xvfb_settle_window_fits_three_panes_and_asks_before_settling(  # noqa: F811
+        display, overlap_project, tmp_path):  # noqa: F811
+    proj = overlap_project
+    tile, _a, _b = _contested(proj)
+    image = proj.store.image(tile.image_id)
+    view = fit_view_shape(tile.shape, panes=3)
+    title = f"labeler edit - {image.name} - tile {tile.id} at row {tile.row} col {tile.col}"
+    child = xdrive.launch_cli(
+        display, tmp_path / "settle",
+        ["edit", str(proj.root), str(tile.id), "--settle", "--annotator", "rev"],
+    )
+    # the window is exactly three panes wide (plus the status strip below)
+    xdrive.wait_window(child, title, size=(view[1], view[0] + STATUS_ROWS))
+    step = (view[1] - 2 * PANE_GAP) // 3 + PANE_GAP
+
+    def shown(name):
+        return xdrive.screenshot(display, name)[1][: view[0], : view[1]]
+
+    def titled():  # white title letters at the corner of each of the three panes
+        frame = shown("settle-three-panes")
+        return all((frame[2:18, off + 6 : off + 40] > 200).any() for off in (0, step, 2 * step))
+
+    xdrive.wait_for(titled, timeout=10, what="the three titled panes", interval=0.1)
+    first = shown("settle-three-panes")
+    assert not (first[20:] == 38).all(axis=2).any()  # no backdrop below the pane titles
+    xdrive.press_keys(child, "Return")
+    xdrive.wait_for(lambda: (shown("settle-question") != first).any(), timeout=10,
+                    what="the settle question drawn", interval=0.1)
+    assert child.process.poll() is None  # Enter alone settles nothing
+    assert proj.store.tile(tile.id).state == "contested"
+    xdrive.press_keys(child, "y")
+    assert xdrive.stop_child(child) == 0, child.log_tail()
+    assert f"tile {tile.id}: saved as settled (full mask);" in child.log_tail()
+    assert proj.store.tile(tile.id).state == "settled"

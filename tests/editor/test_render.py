@@ -203,3 +203,60 @@ def test_renderer_heat_map_stays_off_without_a_map():
     assert r.show_heat
     with pytest.raises(ValueError, match=r"uncertainty: expected a finite 2-D \(h, w\) map"):
         check_uncertainty(np.array([[np.inf]]))
+
+
+def test_settle_view_shows_every_mask_in_its_own_titled_pane():
+    from labeler.editor.render import TITLE_ROWS
+
+    # an 8 x 8 tile in three 64 x 64 panes: this edit, then two annotators' masks
+    s = make_state(zoo_square(), view_shape=(64, 3 * 64 + 2 * PANE_GAP), opacity=1.0)
+    s.show_outlines = False
+    ana = np.full((8, 8), 2, np.uint8)  # all weed
+    bo = np.full((8, 8), 1, np.uint8)  # all crop
+    s.set_compare_all([ana, bo], labels=["ana", "bo"], edit_label="consensus (STAPLE)")
+    assert s.comparing and s.pane_shape == (64, 64)
+    assert s.pane_titles == ("consensus (STAPLE)", "ana", "bo")
+    frame = s.render()
+    step = 64 + PANE_GAP
+    below_title = TITLE_ROWS + 4
+    assert tuple(frame[40, step + 40]) == WEED_BGR
+    assert tuple(frame[40, 2 * step + 40]) == CROP_BGR
+    assert tuple(frame[below_title, 2 * step + 60]) == CROP_BGR
+    assert tuple(frame[3 * 8 + 4, 3 * 8 + 4]) == CROP_BGR  # the edit: zoo square is crop
+    # the gaps are drawn, and each title sits on a dark box at its pane's corner
+    assert (frame[:, 64:step] == 200).all() and (frame[:, step + 64 : 2 * step] == 200).all()
+    for off in (0, step, 2 * step):
+        box = frame[:TITLE_ROWS, off : off + 8]
+        assert (box.max(axis=2) <= 24).mean() > 0.5  # dark, with white letters further right
+        assert (frame[2:TITLE_ROWS - 2, off + 6 : off + 30] > 200).any()  # some white text
+    # no backdrop below the titles: every view pixel shows a tile pixel or a gap
+    backdrop = (frame[TITLE_ROWS:] == 38).all(axis=2)  # _BACKDROP of labeler.editor.render
+    assert not backdrop.any()
+    # clicks in the annotators' panes never edit; once the edit changes its title says so
+    s.tool = "brush"
+    s.press((40, 2 * step + 40))
+    s.release((40, 2 * step + 40))
+    np.testing.assert_array_equal(s.mask, zoo_square())
+    assert s.pane_titles[0] == "consensus (STAPLE)"
+    s.press((4, 4))
+    s.release((4, 4))
+    assert s.pane_titles[0] == "consensus (STAPLE), edited"
+    # Tab shows the edit alone, then all three again
+    assert s.toggle_compare() and not s.comparing and s.pane_shape == (64, 200)
+    assert s.toggle_compare() and s.pane_shape == (64, 64)
+    with pytest.raises(ValueError, match="expected one title per mask"):
+        s.set_compare_all([ana], labels=["ana", "bo"])
+    with pytest.raises(ValueError, match=r"others\[0\]: expected a uint8 array"):
+        s.set_compare_all([np.zeros((4, 4), np.uint8)], labels=["x"])
+
+
+def test_pane_title_is_cut_to_the_pane():
+    from labeler.editor.render import TITLE_ROWS, pane_title
+
+    frame = np.full((32, 60, 3), 100, np.uint8)
+    pane_title(frame, "a very long annotator name that cannot fit", left=0, width=40)
+    assert (frame[:, 40:] == 100).all()  # nothing drawn right of the pane
+    assert (frame[:TITLE_ROWS, :40] != 100).any()
+    untouched = np.full((32, 60, 3), 100, np.uint8)
+    pane_title(untouched, "abcdefgh", left=0, width=5)  # no room for any letter
+    assert (untouched == 100).all()

@@ -59,7 +59,7 @@ def test_enter_without_edits_sends_the_unchanged_mask():
 
 def test_weak_label_save_sends_the_weak_label_alone():
     backend = MemoryBackend(state="weak")
-    steps = [ord("3"), ord("s"), *drag_steps([(40, 40), (80, 40)]), ord("p")]
+    steps = [ord("3"), ord("s"), *drag_steps([(40, 40), (80, 40)]), ord("k")]
     outcome = run_editor(coin_state(), backend=backend, title="t", gui=ScriptGui(steps))
     (saved,) = backend.saved
     assert outcome.kind == "scribble" and saved.kind == "scribble" and outcome.state == "weak"
@@ -71,7 +71,7 @@ def test_weak_label_save_sends_the_weak_label_alone():
 def test_weak_label_save_without_marks_saves_nothing():
     backend = MemoryBackend()
     session = EditorSession(coin_state(), backend=backend, title="t")
-    session.on_key(ord("p"))
+    session.on_key(ord("k"))
     assert backend.saved == [] and not session.done and "no weak label" in session.message
 
 
@@ -237,13 +237,13 @@ def test_an_error_in_the_mouse_callback_is_raised_in_the_loop():
         session.raise_pending()
 
 
-def test_help_overlay_toggles_on_h():
+def test_help_overlay_toggles_on_question_mark():
     session = EditorSession(coin_state(), backend=MemoryBackend(), title="t")
     plain = session.frame()
-    session.on_key(ord("h"))
+    session.on_key(ord("?"))
     shown = session.frame()
     assert session.show_help and (plain != shown).any()
-    session.on_key(ord("h"))
+    session.on_key(ord("?"))
     np.testing.assert_array_equal(session.frame(), plain)
 
 
@@ -262,3 +262,57 @@ def test_quick_second_click_arrives_as_double_click_and_still_counts():
     assert len(state.polygon_vertices) == 4
     session.on_key(ord(" "))
     assert state.changed and state.actions == 5
+
+
+def test_keys_of_the_queue_and_digits_without_a_class_say_why_nothing_happened():
+    session = EditorSession(coin_state(), backend=MemoryBackend(), title="t")
+    session.on_key(ord("a"))  # accept is a queue key: the editor saves with Enter
+    assert session.message.startswith("a is a key of the queue (accept") and not session.done
+    session.on_key(ord("7"))
+    assert session.message.startswith("no class 7 in this project")
+    assert "2 weed" in session.message
+    session.on_key(ord("b"))
+    assert not session.state.show_overlay and session.message.startswith("bare tile")
+    session.on_key(ord("b"))
+    assert session.state.show_overlay and session.message == "mask overlay on"
+    session.on_key(ord("l"))
+    assert session.message == "region outlines off"
+
+
+def test_settling_session_asks_and_only_y_saves():
+    backend = MemoryBackend(state="settled")
+    session = EditorSession(coin_state(), backend=backend, title="t", settling=True)
+    session.on_key(13)
+    assert session.question == "settle" and backend.saved == []
+    session.on_key(13)  # a second Enter is no answer: still asking, nothing saved
+    assert session.question == "settle" and backend.saved == []
+    session.on_key(ord("n"))
+    assert session.question is None and backend.saved == [] and not session.done
+    session.on_key(13)
+    session.on_key(ord("y"))
+    assert session.done and session.outcome.state == "settled" and len(backend.saved) == 1
+
+
+def test_status_strip_shows_the_class_colours_and_the_heat_scale():
+    from labeler.classes import hex_to_rgb
+    from labeler.editor.panels import LEGEND_SWATCH, legend_line, status_strip
+
+    session = EditorSession(coin_state(), backend=MemoryBackend(), title="t")
+    legend = session.legend()
+    # the Okabe & Ito (2008) palette of the label schema: crop #0072B2, weed #E69F00,
+    # symptom #CC79A7 (BGR here); soil has no overlay colour
+    assert legend == [("0 soil", None), ("1 crop", hex_to_rgb("#0072B2")[::-1]),
+                      ("2 weed", hex_to_rgb("#E69F00")[::-1]),
+                      ("3 symptom", hex_to_rgb("#CC79A7")[::-1])]
+    strip = np.full((STATUS_ROWS, 500, 3), 24, np.uint8)
+    corners = legend_line(strip, legend, baseline=70, heat=False)
+    for (top, left), (_label, colour) in zip(corners[1:], legend[1:], strict=True):
+        swatch = strip[top : top + LEGEND_SWATCH, left : left + LEGEND_SWATCH]
+        assert (swatch == colour).all()
+    assert (strip[corners[0][0] + 2, corners[0][1] + 2] == 24).all()  # hollow: soil
+    plain = status_strip(["a", "b", "c"], cols=500, legend=legend)
+    with_heat = status_strip(["a", "b", "c"], cols=500, legend=legend, heat=True)
+    assert plain.shape == (STATUS_ROWS, 500, 3)
+    assert (plain[:58] == with_heat[:58]).all() and (plain != with_heat).any()
+    frame = session.frame()
+    assert (frame[-STATUS_ROWS:] != 24).any()

@@ -112,3 +112,37 @@ def test_viewport_resize_refits_and_checks_the_size():
         ViewTransform(0.0)
     with pytest.raises(ValueError, match="tile_shape, view_shape: expected sizes"):
         ViewTransform.fit((0, 8), (8, 8))
+
+
+def test_fit_view_shape_for_panes_side_by_side_leaves_no_bands():
+    # 256 px tiles, 3 panes in 1200 columns: (1200 - 2 * gap) // 3 = 397 columns a pane,
+    # whole zoom 1; the view is exactly three tiles and two gaps wide
+    assert fit_view_shape((256, 256), panes=3) == (256, 3 * 256 + 2 * PANE_GAP)
+    # 64 px tiles, 2 panes: zoom min(900 // 64, 598 // 64) = 9 capped at 8
+    assert fit_view_shape((64, 64), panes=2) == (512, 2 * 512 + PANE_GAP)
+    assert fit_view_shape((64, 64), panes=1) == fit_view_shape((64, 64))
+    with pytest.raises(ValueError, match="panes: expected 1 or more"):
+        fit_view_shape((64, 64), panes=0)
+    # each pane of the fitted view shows the whole tile and nothing beside it
+    vp = Viewport((256, 256), fit_view_shape((256, 256), panes=3))
+    vp.set_panes(3)
+    assert vp.pane_shape == (256, 256)
+    assert vp.transform == ViewTransform(1.0, 0.0, 0.0)
+
+
+def test_viewport_three_panes_find_the_pane():
+    vp = Viewport((8, 8), (64, 3 * 64 + 2 * PANE_GAP))
+    vp.set_panes(3)
+    step = 64 + PANE_GAP
+    assert vp.split and vp.panes == 3 and vp.pane_shape == (64, 64)
+    assert vp.pane_offsets == (0, step, 2 * step)
+    assert vp.pane_of((5, 10)) == (0, 5.0, 10.0)
+    assert vp.pane_of((5, 64 + 1)) == (-1, 5.0, 65.0)  # in the first gap
+    assert vp.pane_of((5, step + 3)) == (1, 5.0, 3.0)
+    assert vp.pane_of((5, 2 * step + 63)) == (2, 5.0, 63.0)
+    assert vp.pane_of((5, 3 * step + 20))[0] == 2  # right of the view: the last pane
+    assert vp.pane_of((5, -3)) == (0, 5.0, -3.0)
+    with pytest.raises(ValueError, match="panes: expected 1 or more"):
+        vp.set_panes(0)
+    vp.set_split(False)
+    assert vp.panes == 1 and vp.pane_offsets == (0,)

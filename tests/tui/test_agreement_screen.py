@@ -59,6 +59,7 @@ async def test_agreement_figures_and_screenshot(overlap_project, artefacts):
         contested = _rows(screen.query_one("#contested-table", DataTable))
         assert [r[0] for r in contested] == [str(tile.id)]
         assert contested[0][4] == "alice bruno"
+        await idle(pilot)  # the tables painted before the screenshot
         path = app.save_screenshot(filename="agreement.svg", path=str(artefacts))
         await pilot.press("escape")
         await idle(pilot)

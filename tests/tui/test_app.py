@@ -86,7 +86,7 @@ async def test_worker_error_becomes_a_notification(project):
     app = QueueApp(project, annotator="ana")
     async with app.run_test(size=SIZE, notifications=True) as pilot:
         await idle(pilot)
-        await pilot.press("r")
+        await pilot.press("f5")  # compute again: re-pick
         await idle(pilot)
         with pytest.raises(LabelerError) as info:
             workflow.pick_tiles(project)
@@ -192,7 +192,7 @@ async def test_empty_project_screens(project):
         screen = app.screen
         assert screen.query_one("#pair-table", DataTable).row_count == 0
         assert "no annotator pair yet" in str(screen.query_one("#agreement-note").render())
-        await pilot.press("s")
+        await pilot.press("e")  # on the agreement screen: open to settle
         assert app.notices[-1].message == "no contested tile to settle"
         await pilot.press("escape", "m")
         await idle(pilot)

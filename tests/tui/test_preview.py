@@ -181,3 +181,43 @@ def test_overlay_without_mask_is_a_copy_and_fit_picture_checks_input():
         fit_picture(np.zeros((4, 4), np.uint8), cols=2, rows=2)
     with pytest.raises(ValueError, match="mask: expected shape \\(6, 4\\) like rgb"):
         overlay(rgb, np.zeros((5, 4), np.uint8), schema=DEFAULT_SCHEMA)
+
+
+def test_zoom_window_hand_worked():
+    from labeler.tui.preview import zoom_window
+
+    # a 16 x 16 tile in 8 cells x 4 rows (8 x 8 preview pixels): zoom 1 = half size
+    assert zoom_window((16, 16), zoom=1, centre=(7.5, 7.5), cols=8, rows=4) == (
+        (0, 16, 0, 16), 0.5)
+    # zoom 2: one preview pixel per tile pixel, the middle 8 x 8 part
+    assert zoom_window((16, 16), zoom=2, centre=(7.5, 7.5), cols=8, rows=4) == (
+        (4, 12, 4, 12), 1.0)
+    # zoom 4: two preview pixels per tile pixel, 4 x 4 round the centre, kept inside
+    assert zoom_window((16, 16), zoom=4, centre=(0, 15), cols=8, rows=4) == (
+        (0, 4, 12, 16), 2.0)
+    assert zoom_window((16, 16), zoom=4, centre=(9.5, 5.5), cols=8, rows=4)[0] == (8, 12, 4, 8)
+    with pytest.raises(ValueError, match="zoom: expected a level of 1 or more"):
+        zoom_window((16, 16), zoom=0, centre=(0, 0), cols=8, rows=4)
+    with pytest.raises(ValueError, match="expected sizes of at least 1"):
+        zoom_window((16, 16), zoom=2, centre=(0, 0), cols=0, rows=4)
+
+
+def test_zoom_picture_repeats_whole_pixels_like_a_slow_loop():
+    from labeler.tui.preview import zoom_picture, zoom_window
+
+    rng = np.random.default_rng(7)
+    tile = rng.integers(0, 256, size=(16, 12, 3), dtype=np.uint8)
+    for zoom in (2, 4, 8):
+        out, (r0, r1, c0, c1) = zoom_picture(tile, zoom=zoom, centre=(5.0, 6.0), cols=12, rows=8)
+        assert (r0, r1, c0, c1) == zoom_window((16, 12), zoom=zoom, centre=(5.0, 6.0), cols=12,
+                                               rows=8)[0]
+        assert out.shape[0] <= 16 and out.shape[1] <= 12
+        k = out.shape[0] // (r1 - r0)
+        assert k >= 1 and out.shape == ((r1 - r0) * k, (c1 - c0) * k, 3)
+        for i in range(out.shape[0]):  # slow reference: each tile pixel a k x k block
+            for j in range(out.shape[1]):
+                assert (out[i, j] == tile[r0 + i // k, c0 + j // k]).all()
+    # zoom 1 is the fitted whole tile
+    whole, window = zoom_picture(tile, zoom=1, centre=(0, 0), cols=6, rows=4)
+    assert window == (0, 16, 0, 12)
+    np.testing.assert_array_equal(whole, fit_picture(tile, cols=6, rows=4))

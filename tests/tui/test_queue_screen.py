@@ -171,7 +171,7 @@ async def test_repick_updates_the_order(project):
         await idle(pilot)
         assert project.store.latest_pick() == []
         assert app.screen.table_order() == [t.id for t in project.store.tiles()]
-        await pilot.press("r")
+        await pilot.press("f5")  # compute again: re-pick
         await idle(pilot)
         order = [i.tile_id for i in project.store.latest_pick()]
         assert len(order) == 6
@@ -310,3 +310,95 @@ async def test_the_columns_fit_80_columns(project):
     async with wide.run_test(size=SIZE) as pilot:
         await idle(pilot)
         assert len(wide.screen.columns) > len(shown)  # a wide terminal shows more
+
+
+async def _until(pilot, condition, *, what: str, timeout: float = 15.0) -> None:
+    """Let the app run until ``condition()`` holds (fails after ``timeout`` seconds)."""
+    import asyncio
+
+    loop = asyncio.get_running_loop()
+    end = loop.time() + timeout
+    while not condition():
+        if loop.time() > end:
+            raise AssertionError(f"waited {timeout} s for {what}")
+        await pilot.pause(0.05)
+
+
+async def test_holds_show_live_when_another_connection_takes_one(project, monkeypatch):
+    from labeler.project import open_project
+    from labeler.tui.queue_screen import QueueScreen
+
+    fake_proposals(project)
+    monkeypatch.setattr(QueueScreen, "holds_every", 0.2)
+    tile = project.store.tiles()[2].id
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        screen = app.screen
+
+        def cell(column: str) -> str:
+            row = screen.query_one("#queue", DataTable).get_row(str(tile))
+            return str(row[screen.columns.index(column)])
+
+        assert (cell("state"), cell("who")) == ("proposed", "")
+        loads = screen.loads
+        # bo opens the tile from another connection to the same project (another laptop)
+        other = open_project(project.root)
+        try:
+            other.store.hold(tile, "bo")
+            await _until(pilot, lambda: cell("who") == "bo (open)", what="bo's hold shown")
+            assert cell("state") == "held" and screen.loads > loads
+            await idle(pilot)
+            checks, loads = screen.hold_checks, screen.loads
+            await _until(pilot, lambda: screen.hold_checks >= checks + 2, what="two more reads")
+            assert screen.loads == loads  # the holds did not change: the rows are not read again
+            other.store.release(tile, "bo")
+            await _until(pilot, lambda: cell("who") == "", what="bo's hold gone")
+            assert cell("state") == "proposed"
+        finally:
+            other.close()
+
+
+async def test_preview_zooms_to_full_resolution_and_centres_on_a_click(project):
+    from labeler.tui.preview import overlay, zoom_picture
+
+    fake_proposals(project)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        screen = app.screen
+        preview = screen.query_one(TilePreview)
+        tile = project.store.tile(preview.tile_id)
+        image = project.store.image(tile.image_id)
+        with open_image(project.image_path(image)) as reader:
+            rgb = reader.read(tile.window)
+        picture = overlay(rgb, project.store.latest_proposal(tile.id).mask(),
+                          schema=project.settings.classes, opacity=0.45)
+        size = preview.content_size
+        h, w = tile.shape
+        assert preview.zoom == 1 and preview.shown_window == (0, h, 0, w)
+        await pilot.press("plus", "plus", "plus")  # zoom 8
+        await idle(pilot)
+        assert preview.zoom == 8
+        expected, window = zoom_picture(picture, zoom=8, centre=((h - 1) / 2, (w - 1) / 2),
+                                        cols=size.width, rows=size.height)
+        assert preview.shown_window == window
+        r0, r1, c0, c1 = window
+        # at zoom 8 a tile pixel gets at least one preview pixel: full resolution, or more
+        assert expected.shape[0] >= r1 - r0 and expected.shape[1] >= c1 - c0
+        assert preview.render().plain == half_block_text(expected).plain
+        assert screen.query_one("#side").border_subtitle == (
+            f"zoom x8: rows {r0}-{r1 - 1}, cols {c0}-{c1 - 1}")
+        # a click in the picture's top-left cell centres the zoom on that tile pixel
+        await pilot.click(TilePreview, offset=(0, 0))
+        await idle(pilot)
+        assert preview.centre is not None
+        assert preview.centre[0] < (r0 + r1) / 2 and preview.centre[1] < (c0 + c1) / 2
+        assert preview.shown_window[0] <= r0 and preview.shown_window[2] <= c0
+        await pilot.press("minus")
+        await idle(pilot)
+        assert preview.zoom == 4
+        await pilot.press("w")
+        await idle(pilot)
+        assert preview.zoom == 1 and preview.shown_window == (0, h, 0, w)
+        assert screen.query_one("#side").border_subtitle == ""
