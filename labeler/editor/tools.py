@@ -11,6 +11,13 @@ Erase
     newest on-tile re-fit): it takes back hand edits locally. To mark soil, paint with
     class 0 (soil).
 
+Fill
+    A fill click takes the connected same-class region under the click on its side of the
+    plant/soil split (vegetation by ExG - ExR), cut at strong colour edges; a region
+    larger than ``FILL_MAX_SHARE`` (half) of the tile is refused, with a notice that names
+    its size. ``fill_at(point, fill_all=True)`` takes the whole connected same-class region
+    instead. The notice says what each fill took.
+
 Relearn (learning from the marks on this tile)
     The marks are the weak label and every pixel corrected by hand (where the mask differs
     from the model's layer), with their classes. :meth:`EditingTools.relearn` hands them
