@@ -23,7 +23,7 @@ from labeler.masks.colour_regions import (
     DEFAULT_PLANT_EDGE_THRESHOLD,
     split_regions,
 )
-from labeler.masks.vegetation import vegetation_mask
+from labeler.masks.vegetation import sharpen_split, vegetation_mask
 
 __all__ = [
     "Patch",
@@ -283,7 +283,9 @@ def region_at(
     vegetation pixel keeps to the connected vegetation under it, a click on soil to the
     connected soil; inside that side the region is cut further at strong colour edges
     (:func:`labeler.masks.colour_regions.split_regions`, the click a seed point), so two
-    touching plants of different hue stay apart. Neighbours are 4-connected by default, so
+    touching plants of different hue stay apart; pixels at the split that look like the
+    other side (blended leaf edges, :func:`labeler.masks.vegetation.sharpen_split`) are
+    left out. Neighbours are 4-connected by default, so
     two plants that touch only at a corner stay separate; ``connectivity=8`` joins
     diagonal neighbours too. The size cap of the fill tool (:data:`FILL_MAX_SHARE`) is
     the caller's.
@@ -354,6 +356,9 @@ def region_at(
         )
         region = np.zeros_like(region)
         region[ps, qs] = regions == regions[r - ps.start, c - qs.start]
+        # pixels blended of leaf and soil at the split go to the side they look like
+        region &= sharpen_split(img, veg) == veg[r, c]
+        region[r, c] = True
         rs, cs = _bounds(region)
     return Patch(rs.start, cs.start, region[rs, cs].copy())
 

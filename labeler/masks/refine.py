@@ -11,9 +11,12 @@ current mask's classes, so the new boundary joins the old mask smoothly.
 Refinement stops at the plant/soil split and at strong colour edges: the band is cut into
 colour regions that never cross the vegetation/soil split
 (:func:`labeler.masks.colour_regions.split_regions`, vegetation by ExG - ExR), and a pixel
-may only take a class whose seeds (marks or rim) lie in its own region. A region seeded with one class takes it, a
-region seeded with several lets the random walker choose among them, and a region with
-no seed keeps the current mask. So one weed scribble stroke on a plant labels the plant and
+may only take a class whose seeds (marks or rim) lie in its own region. The band takes in
+the whole vegetation region under a mark (a scribble in a plant's core decides the plant),
+except the pixels at the split that look like soil
+(:func:`labeler.masks.vegetation.sharpen_split`), which keep the current mask. A region
+seeded with one class takes it, a region seeded with several lets the random walker
+choose among them, and a region with no seed keeps the current mask. So one weed scribble stroke on a plant labels the plant and
 never the soil beyond its edge, whether or not the result is snapped to superpixels.
 """
 
@@ -33,7 +36,7 @@ from labeler.masks.colour_regions import (
     DEFAULT_PLANT_EDGE_THRESHOLD,
     split_regions,
 )
-from labeler.masks.vegetation import vegetation_mask
+from labeler.masks.vegetation import sharpen_split, vegetation_mask
 
 __all__ = [
     "weak_label_band",
@@ -193,7 +196,11 @@ def refine_random_walker(
             img, vegetation=veg, edge_threshold=edge_threshold,
             plant_edge_threshold=plant_edge_threshold, sigma=edge_sigma,
         )
-        band |= _marked_plants(full_regions, veg, s != UNLABELLED, max_share=grow_max_share)
+        grow = _marked_plants(full_regions, veg, s != UNLABELLED, max_share=grow_max_share)
+        band |= grow
+        # pixels of a grown plant region at the split that look like soil (blended leaf
+        # edges) keep the current mask
+        keep = grow & ~sharpen_split(img, veg) & (s == UNLABELLED)
     rs, cs = _bbox(band, 1)
     b = band[rs, cs]
     sub_s = s[rs, cs]
@@ -236,6 +243,8 @@ def refine_random_walker(
         result = np.where(ok & (n_allowed > 0), snapped, result)
     result[seeded] = sub_s[seeded]
     out[rs, cs] = np.where(b, result, sub_m)
+    if full_regions is not None:
+        out[keep] = m[keep]
     return out
 
 
