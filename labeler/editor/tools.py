@@ -11,6 +11,13 @@ Erase
     newest on-tile re-fit): it takes back hand edits locally. To mark soil, paint with
     class 0 (soil).
 
+Fill
+    A fill click takes the connected same-class region under the click on its side of the
+    plant/soil split (vegetation by ExG - ExR), cut at strong colour edges; a region
+    larger than ``FILL_MAX_SHARE`` (half) of the tile is refused, with a notice that names
+    its size. ``fill_at(point, fill_all=True)`` takes the whole connected same-class region
+    instead. The notice says what each fill took.
+
 Relearn (learning from the marks on this tile)
     The marks are the weak label and every pixel corrected by hand (where the mask differs
     from the model's layer), with their classes. :meth:`EditingTools.relearn` hands them
@@ -36,7 +43,7 @@ import numpy as np
 
 from labeler.classes import UNLABELLED
 from labeler.editor.history import Box
-from labeler.masks.edits import Patch, polygon_patch, region_at, stroke_patch
+from labeler.masks.edits import FILL_MAX_SHARE, Patch, polygon_patch, region_at, stroke_patch
 from labeler.masks.refine import grabcut_box, refine_random_walker
 
 __all__ = ["STROKE_KINDS", "CLOSE_PX", "EditingTools"]
@@ -203,9 +210,15 @@ class EditingTools:
         self._mask[rs, cs][patch.mask] = self._active
         return self._record([("mask", (rs.start, rs.stop, cs.start, cs.stop))])
 
-    def fill_at(self, point: tuple[float, float]) -> bool:
-        """Give the connected same-class region under a tile point the active class, up to
-        the tile's strong colour edges (:func:`labeler.masks.edits.region_at`)."""
+    def fill_at(self, point: tuple[float, float], *, fill_all: bool = False) -> bool:
+        """Give the region under a tile point the active class (one action).
+
+        The region is the connected same-class region on the clicked side of the
+        plant/soil split, cut at strong colour edges
+        (:func:`labeler.masks.edits.region_at`); one larger than ``FILL_MAX_SHARE`` of
+        the tile is refused with a notice. ``fill_all`` takes the whole connected
+        same-class region instead, with no bound and no cap. The notice says what was done.
+        """
         self._finish_gesture()
         self.note_activity()
         self._count()
@@ -213,10 +226,21 @@ class EditingTools:
         if not (0 <= r < self._shape[0] and 0 <= c < self._shape[1]):
             return False
         patch = region_at(
-            self._mask, (r, c), connectivity=self.connectivity, image=self._image
+            self._mask, (r, c), connectivity=self.connectivity,
+            image=None if fill_all else self._image,
         )
+        n, total = int(patch.mask.sum()), self._shape[0] * self._shape[1]
+        if not fill_all and n > FILL_MAX_SHARE * total:
+            self.notice = (
+                f"fill refused: the region under the click is {n} px ({n / total:.0%} of the "
+                f"tile), more than the {FILL_MAX_SHARE:.0%} a fill may take; click inside one "
+                "plant, or use fill all"
+            )
+            return False
         rs, cs = patch.slices
         self._mask[rs, cs][patch.mask] = self._active
+        how = "whole same-class region" if fill_all else "bounded by the plant/soil split"
+        self.notice = f"filled {n} px ({n / total:.1%} of the tile) with class {self._active}, {how}"
         return self._record([("mask", (rs.start, rs.stop, cs.start, cs.stop))])
 
     def box(self, row0: int, col0: int, row1: int, col1: int, *, iterations: int = 5) -> bool:

@@ -28,6 +28,17 @@ Threshold
     regions, which keeps fill and refine smaller, never larger. Structures thinner than
     about three pixels may have no flat pixel of their own; a click on one still gets a
     region of its own from ``seed_points``.
+
+Plant/soil split
+    Colour edges alone do not close around plants in field imagery: a plant's leaf edges
+    inside it are as strong as a weak plant/soil boundary, so the regions split plants
+    and leak into soil. :func:`split_regions` first splits the tile into vegetation and
+    soil (a boolean vegetation mask from the caller, e.g. ExG - ExR > 0 by
+    :func:`labeler.masks.vegetation.vegetation_mask`, Woebbecke et al. 1995, Meyer &
+    Neto 2008) and cuts each side into colour regions on its own, so no region crosses the
+    split. Inside vegetation the threshold is ``plant_edge_threshold`` (default 12): on the
+    invented demo plots it kept each beet whole while separating touching plants as well as
+    or better than 16 and 24 (measured, not a published value).
 """
 
 from __future__ import annotations
@@ -42,14 +53,18 @@ from skimage.segmentation import watershed
 __all__ = [
     "DEFAULT_EDGE_THRESHOLD",
     "DEFAULT_EDGE_SIGMA",
+    "DEFAULT_PLANT_EDGE_THRESHOLD",
     "colour_gradient",
     "colour_regions",
+    "split_regions",
 ]
 
 #: Gradient (Delta E*ab per pixel) from which a pixel counts as a strong colour edge.
 DEFAULT_EDGE_THRESHOLD = 8.0
 #: Gaussian smoothing (pixels) before the colour gradient is taken.
 DEFAULT_EDGE_SIGMA = 1.0
+#: Gradient (Delta E*ab per pixel) that separates regions inside vegetation.
+DEFAULT_PLANT_EDGE_THRESHOLD = 12.0
 
 _STRUCTURES = {
     4: ndi.generate_binary_structure(2, 1),
@@ -179,6 +194,66 @@ def colour_regions(
         extra, _ = ndi.label(rest, structure=structure)
         regions[rest] = extra[rest] + n
     return regions
+
+
+def split_regions(
+    image: np.ndarray,
+    *,
+    vegetation: np.ndarray,
+    within: np.ndarray | None = None,
+    edge_threshold: float = DEFAULT_EDGE_THRESHOLD,
+    plant_edge_threshold: float = DEFAULT_PLANT_EDGE_THRESHOLD,
+    sigma: float = DEFAULT_EDGE_SIGMA,
+    connectivity: int = 4,
+    seed_points: Sequence[tuple[int, int]] = (),
+) -> np.ndarray:
+    """Colour regions that never cross the vegetation/soil split (see the module notes).
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W, 3), uint8
+        The RGB tile.
+    vegetation : ndarray, shape (H, W), bool
+        True on vegetation pixels, False on soil (and anything else that is not green).
+    within : ndarray, shape (H, W), bool, optional
+        Only these pixels are labelled (default: all).
+    edge_threshold : float
+        Strong-edge gradient on the soil side, Delta E*ab per pixel.
+    plant_edge_threshold : float
+        Strong-edge gradient on the vegetation side, Delta E*ab per pixel.
+    sigma, connectivity, seed_points
+        As for :func:`colour_regions`.
+
+    Returns
+    -------
+    regions : ndarray, shape (H, W), int32
+        Region ids 1..n on ``within``, 0 elsewhere; every region lies wholly on one side
+        of the split.
+    """
+    img = _check_image(image)
+    veg = np.asarray(vegetation)
+    if veg.shape != img.shape[:2] or veg.dtype != bool:
+        raise ValueError(
+            f"vegetation: expected a bool array of shape {img.shape[:2]} like image, got "
+            f"shape {veg.shape} dtype {veg.dtype}; pass vegetation_mask(image)"
+        )
+    inside = np.ones(veg.shape, bool) if within is None else np.asarray(within, bool)
+    if inside.shape != veg.shape:
+        raise ValueError(f"within: expected shape {veg.shape} like image, got {inside.shape}")
+    out = np.zeros(veg.shape, np.int32)
+    offset = 0
+    for side, threshold in ((veg, plant_edge_threshold), (~veg, edge_threshold)):
+        part = inside & side
+        if not part.any():
+            continue
+        regions = colour_regions(
+            img, within=part, edge_threshold=threshold, sigma=sigma,
+            connectivity=connectivity,
+            seed_points=seed_points,
+        )
+        out[part] = regions[part] + offset
+        offset = int(out.max())
+    return out
 
 
 def _grow(

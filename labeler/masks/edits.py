@@ -20,8 +20,10 @@ from scipy import ndimage as ndi
 from labeler.masks.colour_regions import (
     DEFAULT_EDGE_SIGMA,
     DEFAULT_EDGE_THRESHOLD,
-    colour_regions,
+    DEFAULT_PLANT_EDGE_THRESHOLD,
+    split_regions,
 )
+from labeler.masks.vegetation import sharpen_split, vegetation_mask
 
 __all__ = [
     "Patch",
@@ -30,7 +32,12 @@ __all__ = [
     "polygon_patch",
     "polygon_mask",
     "region_at",
+    "FILL_MAX_SHARE",
 ]
+
+#: Largest share of the tile a bounded fill may take; a larger region needs an explicit
+#: "fill all" (common practice, no source: a click should not repaint most of a tile).
+FILL_MAX_SHARE = 0.5
 
 _ON_EDGE = 1e-9
 
@@ -260,20 +267,28 @@ def region_at(
     *,
     connectivity: int = 4,
     image: np.ndarray | None = None,
+    vegetation: np.ndarray | None = None,
     edge_threshold: float = DEFAULT_EDGE_THRESHOLD,
+    plant_edge_threshold: float = DEFAULT_PLANT_EDGE_THRESHOLD,
     edge_sigma: float = DEFAULT_EDGE_SIGMA,
 ) -> Patch:
     """The connected region of equal class values that contains ``seed``, bounded by
-    the strong colour edges of ``image`` when it is given.
+    the plant/soil split and the strong colour edges of ``image`` when it is given.
 
     Used by the fill tool: a click reclasses a proposed plant, or labels a plant that
     the mask does not have yet. Without ``image`` the region is the whole connected
-    same-class region, which on an empty (all-soil) mask is the whole tile; with
-    ``image`` it is cut at strong colour edges (:func:`labeler.masks.colour_regions.
-    colour_regions` inside the same-class region, the click a seed point), so a click
-    on a plant takes the plant and a click on soil takes the soil around it, never the
-    plants. Neighbours are 4-connected by default, so two plants that touch only at a
-    corner stay separate; ``connectivity=8`` joins diagonal neighbours too.
+    same-class region, which on an empty (all-soil) mask is the whole tile. With
+    ``image`` the tile is first split into vegetation and soil (``vegetation``, by default
+    ExG - ExR > 0, :func:`labeler.masks.vegetation.vegetation_mask`): a click on a
+    vegetation pixel keeps to the connected vegetation under it, a click on soil to the
+    connected soil; inside that side the region is cut further at strong colour edges
+    (:func:`labeler.masks.colour_regions.split_regions`, the click a seed point), so two
+    touching plants of different hue stay apart; pixels at the split that look like the
+    other side (blended leaf edges, :func:`labeler.masks.vegetation.sharpen_split`) are
+    left out. Neighbours are 4-connected by default, so
+    two plants that touch only at a corner stay separate; ``connectivity=8`` joins
+    diagonal neighbours too. The size cap of the fill tool (:data:`FILL_MAX_SHARE`) is
+    the caller's.
 
     Parameters
     ----------
@@ -284,9 +299,14 @@ def region_at(
     connectivity : {4, 8}
         Neighbourhood of the flood.
     image : ndarray, shape (H, W, 3), uint8, optional
-        The RGB tile whose colour edges bound the region.
+        The RGB tile whose vegetation and colour edges bound the region.
+    vegetation : ndarray, shape (H, W), bool, optional
+        The vegetation/soil split of ``image`` (e.g. with the project's cold-start
+        settings); computed with the defaults of ``vegetation_mask`` when omitted.
     edge_threshold : float
-        Colour gradient (Delta E*ab per pixel) that counts as a strong edge.
+        Colour gradient (Delta E*ab per pixel) that counts as a strong edge in soil.
+    plant_edge_threshold : float
+        Colour gradient that counts as a strong edge inside vegetation.
     edge_sigma : float
         Gaussian smoothing before the colour gradient, pixels.
 
@@ -305,6 +325,7 @@ def region_at(
         raise ValueError(
             f"seed: expected a pixel inside the mask of shape {m.shape}, got ({r}, {c})"
         )
+    same = m == m[r, c]
     if image is not None:
         img = np.asarray(image)
         if img.shape[:2] != m.shape:
@@ -312,7 +333,14 @@ def region_at(
                 f"image: expected the tile of the mask, shape {m.shape} (H, W) plus 3 "
                 f"colours, got shape {img.shape}; pass the image of the same tile"
             )
-    labels, _ = ndi.label(m == m[r, c], structure=_STRUCTURES[connectivity])
+        veg = vegetation_mask(img) if vegetation is None else np.asarray(vegetation)
+        if veg.shape != m.shape or veg.dtype != bool:
+            raise ValueError(
+                f"vegetation: expected a bool array of shape {m.shape} like the mask, got "
+                f"shape {veg.shape} dtype {veg.dtype}; pass vegetation_mask(image)"
+            )
+        same &= veg == veg[r, c]  # a fill never crosses the plant/soil split
+    labels, _ = ndi.label(same, structure=_STRUCTURES[connectivity])
     region = labels == labels[r, c]
     rs, cs = _bounds(region)
     if image is not None:
@@ -320,13 +348,17 @@ def region_at(
         pad = int(np.ceil(4 * max(edge_sigma, 0.0))) + 1
         ps = slice(max(rs.start - pad, 0), min(rs.stop + pad, m.shape[0]))
         qs = slice(max(cs.start - pad, 0), min(cs.stop + pad, m.shape[1]))
-        regions = colour_regions(
-            img[ps, qs], within=region[ps, qs], edge_threshold=edge_threshold,
+        regions = split_regions(
+            img[ps, qs], vegetation=veg[ps, qs], within=region[ps, qs],
+            edge_threshold=edge_threshold, plant_edge_threshold=plant_edge_threshold,
             sigma=edge_sigma, connectivity=connectivity,
             seed_points=[(r - ps.start, c - qs.start)],
         )
         region = np.zeros_like(region)
         region[ps, qs] = regions == regions[r - ps.start, c - qs.start]
+        # pixels blended of leaf and soil at the split go to the side they look like
+        region &= sharpen_split(img, veg) == veg[r, c]
+        region[r, c] = True
         rs, cs = _bounds(region)
     return Patch(rs.start, cs.start, region[rs, cs].copy())
 

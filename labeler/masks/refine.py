@@ -8,11 +8,15 @@ Refinement is local: only a band of ``band_px`` pixels around the weak label's m
 decided again; outside it the mask is kept, and the band's outer rim acts as seeds carrying the
 current mask's classes, so the new boundary joins the old mask smoothly.
 
-Refinement stops at strong colour edges: the band is cut into colour regions
-(:mod:`labeler.masks.colour_regions`), and a pixel may only take a class whose seeds
-(marks or rim) lie in its own region. A region seeded with one class takes it, a
-region seeded with several lets the random walker choose among them, and a region with
-no seed keeps the current mask. So one weed scribble stroke on a plant labels the plant and
+Refinement stops at the plant/soil split and at strong colour edges: the band is cut into
+colour regions that never cross the vegetation/soil split
+(:func:`labeler.masks.colour_regions.split_regions`, vegetation by ExG - ExR), and a pixel
+may only take a class whose seeds (marks or rim) lie in its own region. The band takes in
+the whole vegetation region under a mark (a scribble in a plant's core decides the plant),
+except the pixels at the split that look like soil
+(:func:`labeler.masks.vegetation.sharpen_split`), which keep the current mask. A region
+seeded with one class takes it, a region seeded with several lets the random walker
+choose among them, and a region with no seed keeps the current mask. So one weed scribble stroke on a plant labels the plant and
 never the soil beyond its edge, whether or not the result is snapped to superpixels.
 """
 
@@ -29,8 +33,10 @@ from labeler.classes import UNLABELLED
 from labeler.masks.colour_regions import (
     DEFAULT_EDGE_SIGMA,
     DEFAULT_EDGE_THRESHOLD,
-    colour_regions,
+    DEFAULT_PLANT_EDGE_THRESHOLD,
+    split_regions,
 )
+from labeler.masks.vegetation import sharpen_split, vegetation_mask
 
 __all__ = [
     "weak_label_band",
@@ -110,7 +116,10 @@ def refine_random_walker(
     n_segments: int = 400,
     compactness: float = 10.0,
     edge_threshold: float | None = DEFAULT_EDGE_THRESHOLD,
+    plant_edge_threshold: float = DEFAULT_PLANT_EDGE_THRESHOLD,
     edge_sigma: float = DEFAULT_EDGE_SIGMA,
+    vegetation: np.ndarray | None = None,
+    grow_max_share: float = 0.25,
 ) -> np.ndarray:
     """Turn a weak label plus the current mask into a full mask by random walker.
 
@@ -146,10 +155,20 @@ def refine_random_walker(
     n_segments, compactness
         SLIC options when ``snap`` is true.
     edge_threshold : float or None
-        Colour gradient (Delta E*ab per pixel) that bounds the colour regions; ``None``
-        treats the band as one region (the plain random walker).
+        Colour gradient (Delta E*ab per pixel) that bounds the colour regions in soil;
+        ``None`` treats the band as one region (the plain random walker, no split).
+    plant_edge_threshold : float
+        Colour gradient that bounds the colour regions inside vegetation.
     edge_sigma : float
         Gaussian smoothing before the colour gradient, pixels.
+    vegetation : ndarray, shape (H, W), bool, optional
+        The vegetation/soil split of ``image``; by default
+        :func:`labeler.masks.vegetation.vegetation_mask` of the whole tile.
+    grow_max_share : float
+        The band also takes in every vegetation region (of the split) that holds a mark,
+        so a scribble in a plant's core decides the whole plant, not only the part within
+        ``band_px``; regions larger than this share of the tile (a closed canopy) are not
+        taken in. Ignored when ``edge_threshold`` is None.
 
     Returns
     -------
@@ -165,6 +184,23 @@ def refine_random_walker(
     band = weak_label_band(s, band_px=band_px)
     if not band.any():
         return out
+    full_regions = None
+    if edge_threshold is not None:
+        veg = vegetation_mask(img) if vegetation is None else np.asarray(vegetation)
+        if veg.shape != img.shape[:2] or veg.dtype != bool:
+            raise ValueError(
+                f"vegetation: expected a bool array of shape {img.shape[:2]} like image, "
+                f"got shape {veg.shape} dtype {veg.dtype}; pass vegetation_mask(image)"
+            )
+        full_regions = split_regions(
+            img, vegetation=veg, edge_threshold=edge_threshold,
+            plant_edge_threshold=plant_edge_threshold, sigma=edge_sigma,
+        )
+        grow = _marked_plants(full_regions, veg, s != UNLABELLED, max_share=grow_max_share)
+        band |= grow
+        # pixels of a grown plant region at the split that look like soil (blended leaf
+        # edges) keep the current mask
+        keep = grow & ~sharpen_split(img, veg) & (s == UNLABELLED)
     rs, cs = _bbox(band, 1)
     b = band[rs, cs]
     sub_s = s[rs, cs]
@@ -178,10 +214,10 @@ def refine_random_walker(
     seed_class = np.full(b.shape, -1, np.int32)  # index into classes; -1: no seed
     seed_class[rim_ok] = lut[sub_m[rim_ok]]
     seed_class[seeded] = lut[sub_s[seeded]]
-    if edge_threshold is None:
+    if full_regions is None:
         regions = np.ones(b.shape, np.int32)
     else:
-        regions = colour_regions(img[rs, cs], edge_threshold=edge_threshold, sigma=edge_sigma)
+        regions = full_regions[rs, cs]
     # allowed[region, k]: class k has a seed inside the region
     allowed = np.zeros((int(regions.max()) + 1, len(classes)), bool)
     has_seed = seed_class >= 0
@@ -207,7 +243,24 @@ def refine_random_walker(
         result = np.where(ok & (n_allowed > 0), snapped, result)
     result[seeded] = sub_s[seeded]
     out[rs, cs] = np.where(b, result, sub_m)
+    if full_regions is not None:
+        out[keep] = m[keep]
     return out
+
+
+def _marked_plants(
+    regions: np.ndarray, vegetation: np.ndarray, marked: np.ndarray, *, max_share: float
+) -> np.ndarray:
+    """Vegetation regions holding a marked pixel, each at most ``max_share`` of the tile."""
+    if not np.isfinite(max_share) or not 0 <= max_share <= 1:
+        raise ValueError(f"grow_max_share: expected a share in 0..1, got {max_share}")
+    ids = np.unique(regions[marked & vegetation])
+    ids = ids[ids > 0]
+    if ids.size == 0:
+        return np.zeros(regions.shape, bool)
+    sizes = np.bincount(regions.ravel(), minlength=int(regions.max()) + 1)
+    ids = ids[sizes[ids] <= max_share * regions.size]
+    return np.isin(regions, ids)
 
 
 def _walker_probabilities(

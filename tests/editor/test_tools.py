@@ -41,7 +41,9 @@ def test_erase_puts_the_proposal_back_not_soil():
 
 
 def test_fill_reclasses_one_connected_region():
-    s = make_state(zoo_two_touching(), active_class=3)
+    # a flat grey tile: neither the plant/soil split nor a colour edge cuts the region
+    flat = np.full((8, 8, 3), 128, np.uint8)
+    s = EditorState(flat, zoo_two_touching(), active_class=3, view_shape=(64, 64))
     assert s.fill_at((3, 2))
     expected = zoo_two_touching()
     expected[expected == 1] = 3
@@ -72,6 +74,41 @@ def test_fill_on_an_empty_mask_stops_at_the_plant_edge():
     expected = np.zeros((12, 12), np.uint8)
     expected[3:8, 4:9] = 1
     np.testing.assert_array_equal(s.mask, expected)
+
+
+def _disc_scene(n=64, radius=10):
+    """A leaf-green disc on brown loam (the colours of tests/masks/scenes.py), no noise."""
+    r, c = np.indices((n, n))
+    plant = (r - n // 2) ** 2 + (c - n // 2) ** 2 <= radius**2
+    rgb = np.empty((n, n, 3), np.uint8)
+    rgb[:] = (150, 110, 70)
+    rgb[plant] = (50, 160, 60)
+    return rgb, plant
+
+
+def test_fill_on_soil_of_an_empty_mask_is_refused_with_a_notice():
+    # soil minus one disc is about 92 % of the tile: more than FILL_MAX_SHARE (one half)
+    rgb, plant = _disc_scene()
+    s = EditorState(rgb, np.zeros((64, 64), np.uint8), active_class=2, view_shape=(64, 64))
+    assert not s.fill_at((2, 2))
+    assert (s.mask == 0).all() and s.actions == 1
+    assert "fill refused" in s.notice and f"{int((~plant).sum())} px" in s.notice
+
+
+def test_fill_all_takes_the_whole_same_class_region():
+    rgb, _ = _disc_scene()
+    s = EditorState(rgb, np.zeros((64, 64), np.uint8), active_class=2, view_shape=(64, 64))
+    assert s.fill_at((2, 2), fill_all=True)
+    assert (s.mask == 2).all()
+    assert "filled 4096 px (100.0% of the tile)" in s.notice
+
+
+def test_fill_on_the_disc_takes_the_disc_and_says_so():
+    rgb, plant = _disc_scene()
+    s = EditorState(rgb, np.zeros((64, 64), np.uint8), active_class=1, view_shape=(64, 64))
+    assert s.fill_at((32, 32))
+    np.testing.assert_array_equal(s.mask == 1, plant)
+    assert s.notice.startswith(f"filled {int(plant.sum())} px")
 
 
 def test_polygon_fills_with_the_active_class():

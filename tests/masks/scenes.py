@@ -11,10 +11,13 @@ from collections.abc import Sequence
 import numpy as np
 from scipy import ndimage as ndi
 
-__all__ = ["SOIL_RGB", "LEAF_RGB", "plant_scene", "disc"]
+__all__ = ["SOIL_RGB", "LEAF_RGB", "YELLOW_LEAF_RGB", "plant_scene", "disc", "two_hue_scene"]
 
 SOIL_RGB = (150, 110, 70)
 LEAF_RGB = (50, 160, 60)
+#: A yellow-green leaf, 40.6 Delta E*ab from LEAF_RGB (CIE 1976, computed with
+#: ``skimage.color.rgb2lab``); both are vegetation by ExG - ExR > 0, the loam is not.
+YELLOW_LEAF_RGB = (170, 200, 30)
 
 
 def disc(shape: tuple[int, int], centre: tuple[float, float], radius: float) -> np.ndarray:
@@ -47,3 +50,13 @@ def plant_scene(
     rng = np.random.default_rng(seed)
     image += rng.normal(0.0, noise_sd, image.shape)
     return np.clip(np.rint(image), 0, 255).astype(np.uint8)
+
+
+def two_hue_scene() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Two discs of radius 9 touching along a short arc on 48 x 48 soil: ``LEAF_RGB`` on
+    the left, ``YELLOW_LEAF_RGB`` on the right. Returns ``(image, left, right)``."""
+    left, right = disc((48, 48), (24, 16), 9), disc((48, 48), (24, 33), 9)
+    right &= ~left  # the discs overlap by a sliver: they touch along a short arc
+    image = plant_scene((48, 48), [left, right])
+    image[right] = plant_scene((48, 48), [right], leaf_rgb=YELLOW_LEAF_RGB)[right]
+    return image, left, right

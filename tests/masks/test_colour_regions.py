@@ -7,7 +7,7 @@ import pytest
 from scipy import ndimage as ndi
 from skimage.color import deltaE_cie76, rgb2lab
 
-from labeler.masks.colour_regions import colour_gradient, colour_regions
+from labeler.masks.colour_regions import colour_gradient, colour_regions, split_regions
 from tests.masks.scenes import LEAF_RGB, SOIL_RGB, disc, plant_scene
 
 
@@ -185,3 +185,36 @@ def test_edge_pixels_go_to_the_nearest_colour_side_like_a_slow_loop():
                         best, best_d = regions[q], d
             expected[r, c] = best
     np.testing.assert_array_equal(got, expected)
+
+
+# ------------------------------------------------------------------ the plant/soil split
+def test_no_split_region_crosses_the_split_like_a_slow_check():
+    rng = np.random.default_rng(11)
+    for _ in range(5):
+        image = rng.integers(0, 256, size=(14, 15, 3), dtype=np.uint8)
+        veg = rng.random((14, 15)) < 0.4
+        regions = split_regions(image, vegetation=veg)
+        assert (regions > 0).all()
+        # slow loop: every region's pixels lie on one side of the split
+        for k in np.unique(regions):
+            sides = {bool(veg[r, c]) for r, c in zip(*np.nonzero(regions == k), strict=True)}
+            assert len(sides) == 1
+
+
+def test_split_of_a_disc_scene_is_the_disc_and_the_soil():
+    plant = disc((40, 40), (20, 20), 8)
+    image = plant_scene((40, 40), [plant])
+    regions = split_regions(image, vegetation=plant)
+    assert len(np.unique(regions[plant])) == 1 and len(np.unique(regions[~plant])) == 1
+    assert regions[plant][0] != regions[~plant][0]
+    within = np.zeros((40, 40), bool)
+    within[:20] = True
+    assert (split_regions(image, vegetation=plant, within=within)[~within] == 0).all()
+
+
+def test_split_regions_errors():
+    image = np.zeros((4, 4, 3), np.uint8)
+    with pytest.raises(ValueError, match=r"vegetation: expected a bool array of shape \(4, 4\)"):
+        split_regions(image, vegetation=np.zeros((4, 4), np.uint8))
+    with pytest.raises(ValueError, match=r"within: expected shape \(4, 4\)"):
+        split_regions(image, vegetation=np.zeros((4, 4), bool), within=np.ones((3, 4), bool))

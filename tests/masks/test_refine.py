@@ -14,7 +14,7 @@ from labeler.masks.refine import (
     snap_to_superpixels,
     weak_label_band,
 )
-from tests.masks.scenes import disc, plant_scene
+from tests.masks.scenes import disc, plant_scene, two_hue_scene
 
 
 def _iou(a: np.ndarray, b: np.ndarray) -> float:
@@ -296,3 +296,49 @@ def test_without_edge_threshold_refine_is_the_plain_random_walker():
     out = refine_random_walker(image, mask, weak_label, edge_threshold=None)
     band = weak_label_band(weak_label, band_px=24)
     np.testing.assert_array_equal(out, np.where(band, 2, 255).astype(np.uint8))
+
+
+# ------------------------------------------------------------------ the plant/soil split
+# Exact answers on hand-made scenes (common practice, no source): a scribble in a plant's
+# core labels that plant, however narrow the band, and never the soil or a touching
+# plant of another hue.
+def _core_scribble(shape, centre, cls=1):
+    s = np.full(shape, 255, np.uint8)
+    s[centre[0], centre[1] - 2 : centre[1] + 3] = cls
+    return s
+
+
+@pytest.mark.parametrize("snap", [False, True])
+def test_scribble_in_a_disc_core_takes_exactly_the_disc(snap):
+    plant = disc((48, 48), (24, 16), 9)
+    image = plant_scene((48, 48), [plant])
+    empty = np.zeros((48, 48), np.uint8)
+    out = refine_random_walker(image, empty, _core_scribble((48, 48), (24, 16)), band_px=3,
+                               snap=snap, n_segments=100)
+    np.testing.assert_array_equal(out == 1, plant)
+    assert (out[~plant] == 0).all()
+
+
+def test_scribble_in_one_of_two_touching_discs_stays_within_it():
+    image, left, right = two_hue_scene()
+    empty = np.zeros((48, 48), np.uint8)
+    out = refine_random_walker(image, empty, _core_scribble((48, 48), (24, 14), cls=2),
+                               band_px=24)
+    np.testing.assert_array_equal(out == 2, left)
+
+
+def test_without_growth_only_the_band_is_decided():
+    plant = disc((48, 48), (24, 16), 9)
+    image = plant_scene((48, 48), [plant])
+    weak_label = _core_scribble((48, 48), (24, 16))
+    out = refine_random_walker(image, np.zeros((48, 48), np.uint8), weak_label, band_px=3,
+                               grow_max_share=0.0)
+    band = weak_label_band(weak_label, band_px=3)
+    # the rim inside the disc seeds soil, so the walker splits the band: never beyond it
+    assert not ((out == 1) & ~band).any() and (out[weak_label == 1] == 1).all()
+    assert (out == 1).sum() < plant.sum()
+    with pytest.raises(ValueError, match=r"grow_max_share: expected a share in 0\.\.1"):
+        refine_random_walker(image, np.zeros((48, 48), np.uint8), weak_label, grow_max_share=2)
+    with pytest.raises(ValueError, match=r"vegetation: expected a bool array of shape \(48, 48\)"):
+        refine_random_walker(image, np.zeros((48, 48), np.uint8), weak_label,
+                             vegetation=np.zeros((4, 4), bool))

@@ -8,6 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 from PIL import Image
+from scipy import ndimage as ndi
 from skimage.filters import threshold_otsu
 from sklearn.metrics import roc_auc_score
 
@@ -18,9 +19,11 @@ from labeler.masks.vegetation import (
     excess_red,
     exg_minus_exr,
     otsu_threshold,
+    sharpen_split,
     vegetation_mask,
 )
 from tests.common import PEANUT, require_dataset
+from tests.masks.scenes import disc, plant_scene
 
 # Pixel values recomputed by hand from the published formulas:
 # ExG = 2g - r - b (Woebbecke et al. 1995, Trans. ASAE 38(1)); ExR = 1.4 r - g and
@@ -224,3 +227,48 @@ def test_errors_name_the_parameter():
         vegetation_mask(img, threshold="mean")
     with pytest.raises(ValueError, match="min_object_px: expected a pixel count >= 0"):
         vegetation_mask(img, min_object_px=-1)
+
+
+# ------------------------------------------------------------------ sharpening the split
+# Hand-made scenes with exact answers (common practice, no source): a split that runs a
+# pixel or two outside a flat plant, or inside it, is pulled back onto the plant's edge.
+@pytest.mark.parametrize("grow", [1, 2, -1, -2])
+def test_a_split_off_by_one_or_two_pixels_is_pulled_onto_the_plant_edge(grow):
+    plant = disc((48, 48), (24, 24), 10)
+    image = plant_scene((48, 48), [plant])
+    if grow > 0:
+        split = ndi.binary_dilation(plant, iterations=grow)
+    else:
+        split = ndi.binary_erosion(plant, iterations=-grow)
+    np.testing.assert_array_equal(sharpen_split(image, split), plant)
+
+
+def test_sharpening_changes_nothing_farther_than_rings_and_handles_one_side():
+    rng = np.random.default_rng(5)
+    image = rng.integers(0, 256, size=(20, 20, 3), dtype=np.uint8)
+    split = np.zeros((20, 20), bool)
+    split[:, :10] = True
+    got = sharpen_split(image, split, rings=2)
+    np.testing.assert_array_equal(got[:, :8], True)
+    np.testing.assert_array_equal(got[:, 12:], False)
+    for same in (np.zeros((20, 20), bool), np.ones((20, 20), bool)):
+        np.testing.assert_array_equal(sharpen_split(image, same), same)
+
+
+def test_blurred_disc_split_comes_closer_to_the_disc():
+    plant = disc((64, 64), (32, 32), 10)
+    image = plant_scene((64, 64), [plant], blur_sigma=1.0)
+    veg = vegetation_mask(image)
+    # ExG - ExR > 0 takes the blended ring outside the disc: 43 px here, 9 after
+    assert (veg != plant).sum() > 4 * (sharpen_split(image, veg) != plant).sum()
+
+
+def test_sharpen_split_errors():
+    image = np.zeros((4, 4, 3), np.uint8)
+    veg = np.zeros((4, 4), bool)
+    with pytest.raises(ValueError, match=r"vegetation: expected a bool array of shape \(4, 4\)"):
+        sharpen_split(image, veg.astype(np.uint8))
+    with pytest.raises(ValueError, match="rings: expected a band of at least 1 pixel"):
+        sharpen_split(image, veg, rings=0)
+    with pytest.raises(ValueError, match="sigma: expected a positive scale"):
+        sharpen_split(image, veg, sigma=0)
