@@ -139,7 +139,9 @@ KEYMAP: tuple[KeyRow, ...] = (
     _tool("d", "brush", "drag to paint the active class"),
     _tool("x", "erase", "drag to put the proposal back under the stroke"),
     _tool("v", "polygon", "click vertices; space, or a click on the first vertex, fills it"),
-    _tool("f", "fill", "click a region: its 4-connected part up to colour edges takes the class"),
+    _tool("f", "fill", "click inside a plant or a soil patch: its connected part on that "
+          "side of the plant/soil split, up to colour edges, takes the class (at most half "
+          "the tile); shift-click takes the whole connected same-class region"),
     _tool("o", "box", "drag a box round one plant: GrabCut finds it, in the active class"),
     _tool("s", "scribble", "drag marks of the active class into the weak label (for refine)"),
     KeyRow("r", editor="refine: weak label + mask -> mask near the marks", command="refine"),

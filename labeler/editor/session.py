@@ -495,7 +495,7 @@ class EditorSession:
             if self.question is None and in_view:
                 s.notice = ""
                 self._left_down = True
-                s.press((row, col))
+                s.press((row, col), fill_all=bool(flags & cv2.EVENT_FLAG_SHIFTKEY))
                 if s.notice:
                     self.message = s.notice
         elif event == cv2.EVENT_LBUTTONUP:

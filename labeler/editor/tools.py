@@ -363,9 +363,10 @@ class EditingTools:
         tr, tc = self.transform.view_to_tile(pr, pc)
         return float(tr), float(tc)
 
-    def press(self, view_point: tuple[float, float]) -> None:
+    def press(self, view_point: tuple[float, float], *, fill_all: bool = False) -> None:
         """Left button pressed at a view point: start what the tool does (clicks outside
-        the left pane do nothing)."""
+        the left pane do nothing); ``fill_all`` (a shift-click) makes a fill take the whole
+        connected same-class region."""
         self.hover(view_point)
         p = self._tile_point(view_point)
         if p is None:
@@ -381,7 +382,7 @@ class EditingTools:
                     return
             self.polygon_add(p)
         elif self._tool == "fill":
-            self.fill_at(p)
+            self.fill_at(p, fill_all=fill_all)
         elif self._tool == "box":
             self.note_activity()
             self._box_start = self._box_end = p

@@ -103,6 +103,17 @@ def test_fill_all_takes_the_whole_same_class_region():
     assert "filled 4096 px (100.0% of the tile)" in s.notice
 
 
+def test_a_press_with_the_fill_tool_fills_bounded_or_whole_when_asked():
+    # the editor passes a shift-click as fill_all (keymap row "f")
+    rgb, plant = _disc_scene()
+    s = EditorState(rgb, np.zeros((64, 64), np.uint8), active_class=2, view_shape=(64, 64))
+    s.tool = "fill"
+    s.press((2.0, 2.0))
+    assert (s.mask == 0).all() and "fill refused" in s.notice
+    s.press((2.0, 2.0), fill_all=True)
+    assert (s.mask == 2).all()
+
+
 def test_fill_on_the_disc_takes_the_disc_and_says_so():
     rgb, plant = _disc_scene()
     s = EditorState(rgb, np.zeros((64, 64), np.uint8), active_class=1, view_shape=(64, 64))
