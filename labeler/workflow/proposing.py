@@ -268,7 +268,7 @@ def propose(
     else:
         mv = _cold_start_version(project)  # made when its first proposals are stored
     mv_id = None if mv is None else mv.id
-    latest = store.latest_proposals()
+    latest = store.latest_proposal_versions()  # {tile id: model version id}, no masks
     images = store.images()
     todo = {}
     up_to_date = 0
@@ -278,7 +278,7 @@ def propose(
         tiles = [
             t
             for t in all_tiles
-            if latest.get(t.id) is None or latest[t.id].model_version_id != mv_id
+            if latest.get(t.id) is None or latest[t.id] != mv_id
         ]
         up_to_date += len(all_tiles) - len(tiles)
         if only_open:
