@@ -258,6 +258,7 @@ def propose_tiles(
     images: Sequence[np.ndarray] | None = None,
     batch_size: int = 16,
     progress: Callable[[int, int], None] | None = None,
+    dropout_weights: dict | None = None,
 ) -> list[TileProposal]:
     """Proposed masks and MC-dropout uncertainty for tiles whose features are known.
 
@@ -287,6 +288,11 @@ def propose_tiles(
         Tiles per pass.
     progress : callable, optional
         ``progress(done, total)`` after each batch.
+    dropout_weights : dict, optional
+        A dict the caller keeps across calls with the same ``head``: the per-pixel
+        classifier weights of the T dropout passes are made once per grid size, seed and
+        T and reused (they depend on nothing else, so the proposals are the same as
+        without it). Default: made again in every call.
 
     Returns
     -------
@@ -331,7 +337,7 @@ def propose_tiles(
         shapes.append((size, tuple(tuple(np.shape(a)) for a in f)))
     head.eval()
     p = head.config.dropout
-    pass_weights: dict[tuple[int, int], torch.Tensor] = {}
+    pass_weights: dict = {} if dropout_weights is None else dropout_weights
     weight = head.classifier.weight.detach()[:, :, 0, 0]
     results: list[TileProposal | None] = [None] * n
     groups: dict[tuple, list[int]] = {}
@@ -343,7 +349,8 @@ def propose_tiles(
             h4, w4 = level_shapes[0][-2:]
             per_pixel = None
             if mc_samples > 1 and p > 0:
-                if (h4, w4) not in pass_weights:
+                wkey = (h4, w4, int(seed), mc_samples, float(p), id(head.classifier.weight))
+                if wkey not in pass_weights:
                     # one generator per grid size: masks depend on the seed and size only
                     generator = torch.Generator().manual_seed(
                         (int(seed) * 1_000_003 + h4 * 1009 + w4) % (2**63)
@@ -351,8 +358,8 @@ def propose_tiles(
                     masks = _dropout_masks(
                         mc_samples, h4, w4, head.config.width, p=p, generator=generator
                     )
-                    pass_weights[(h4, w4)] = _masked_weights(masks, weight)
-                per_pixel = pass_weights[(h4, w4)]
+                    pass_weights[wkey] = _masked_weights(masks, weight)
+                per_pixel = pass_weights[wkey]
             for start in range(0, len(members), batch_size):
                 idx = members[start : start + batch_size]
                 levels = features_to_tensors([features[i] for i in idx])

@@ -22,13 +22,15 @@ from labeler.states import HELD, PROPOSED, SAVED_STATES, UNSEEN
 from labeler.store import schema as t
 from labeler.store.base import as_utc, clock
 from labeler.store.holds import checked_move
-from labeler.store.images import ImagesMixin
+from labeler.store.images import ImagesMixin, _tile_query, _tile_row
 from labeler.store.records import PickItem, ProposalRecord, npy_bytes
 
 __all__ = ["NewProposal", "ProposalsMixin", "PICK_EVENT"]
 
 #: Event kind of a stored pick (the code existing databases hold).
 PICK_EVENT = "ranked"
+#: Ids per ``IN (...)`` list of one query (below SQLite's variable limit).
+_IDS_PER_QUERY = 500
 
 
 @dataclass(frozen=True)
@@ -137,7 +139,7 @@ class ProposalsMixin(ImagesMixin):
         """
         if not items:
             return []
-        tiles = {tr.id: tr for tr in self.tiles()}
+        tiles = self._tiles_by_id({p.tile_id for p in items})
         rows = []
         for p in items:
             tile = tiles.get(p.tile_id)
@@ -164,9 +166,12 @@ class ProposalsMixin(ImagesMixin):
             stamp = clock(conn)
             for r in rows:
                 r["created_at"] = stamp
-                ids.append(
-                    int(conn.execute(t.proposals.insert().values(**r)).inserted_primary_key[0])
-                )
+            # one statement for all rows; the ids come back in the rows' order
+            inserted = conn.execute(
+                t.proposals.insert().returning(t.proposals.c.id, sort_by_parameter_order=True),
+                rows,
+            )
+            ids = [int(i) for i in inserted.scalars()]
             tile_ids = [r["tile_id"] for r in rows]
             first_time = t.tiles.c.id.in_(tile_ids) & (t.tiles.c.state == UNSEEN)
             for tile_id in conn.execute(sa.select(t.tiles.c.id).where(first_time)).scalars():
@@ -178,6 +183,39 @@ class ProposalsMixin(ImagesMixin):
                 conn, "proposed", detail={"model_version": model_version_id, "tiles": len(rows)}
             )
         return ids
+
+    def _tiles_by_id(self, tile_ids) -> dict:
+        """The tiles of some ids (``{id: TileRecord}``), read in a few queries."""
+        wanted = sorted(tile_ids)
+        out = {}
+        with self._read() as conn:
+            for start in range(0, len(wanted), _IDS_PER_QUERY):
+                part = wanted[start : start + _IDS_PER_QUERY]
+                for r in conn.execute(_tile_query().where(t.tiles.c.id.in_(part))):
+                    out[r.id] = _tile_row(r)
+        return out
+
+    def latest_proposal_versions(self) -> dict[int, int]:
+        """The model version of the newest proposal of every tile that has one.
+
+        Reads two integers per tile and no mask: what ``labeler propose`` needs to tell
+        which tiles are up to date (:meth:`latest_proposals` reads every mask too).
+
+        Returns
+        -------
+        dict of int to int
+            ``{tile id: model version id}``.
+        """
+        newest = (
+            sa.select(sa.func.max(t.proposals.c.id).label("pid"))
+            .group_by(t.proposals.c.tile_id)
+            .subquery()
+        )
+        q = sa.select(t.proposals.c.tile_id, t.proposals.c.model_version_id).join(
+            newest, t.proposals.c.id == newest.c.pid
+        )
+        with self._read() as conn:
+            return {int(tid): int(mv) for tid, mv in conn.execute(q)}
 
     def latest_proposal(self, tile_id: int) -> ProposalRecord | None:
         """The newest proposal of a tile.

@@ -17,8 +17,11 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from typing import TYPE_CHECKING
 
+import numpy as np
+
 from labeler.errors import LabelerError
 from labeler.imagery.read import ImageReader
+from labeler.imagery.tiling import Window
 from labeler.project import Project
 from labeler.store.records import ImageRecord, ModelVersionRecord, TileRecord
 
@@ -97,9 +100,40 @@ def encoder_and_cache(
             find_encoder_version(project, encoder)
         except LabelerError:
             encoder = None
-    model = load_encoder_version(project, encoder)
+    key = _encoder_key(project, encoder, find_encoder_version(project, encoder))
+    model = _LAST_ENCODER.get(key)
+    if model is None:
+        model = load_encoder_version(project, encoder)
+        _LAST_ENCODER.clear()  # one encoder kept, the last one loaded
+        _LAST_ENCODER[key] = model
     cache = FeatureCache(project.cache_dir / "features", encoder_version=model.version)
     return model, cache
+
+
+#: The last encoder :func:`encoder_and_cache` built, by :func:`_encoder_key`: a retrain
+#: and the renewal of the proposals that follows it in one process build it once.
+_LAST_ENCODER: dict[tuple, Lite0Encoder] = {}
+
+
+def _encoder_key(project: Project, which: str | None, record) -> tuple:
+    """What identifies a loaded encoder: the project, the version asked for, and the
+    weights file of an adapted version (path, size, modification time: a file replaced
+    since is loaded and checked again)."""
+    if record is None:  # the installed ImageNet encoder, by name, by version or by default
+        from labeler.workflow.encoders import IMAGENET
+
+        installed = (str(project.root), IMAGENET, None)
+        held = _LAST_ENCODER.get(installed)
+        if which in (None, IMAGENET) or (held is not None and held.version == which):
+            return installed
+        return (str(project.root), which, None)
+    try:
+        path = project.resolve(record.checkpoint or "", what=f"weights of encoder {record.name}")
+        st = path.stat()
+        stamp = (str(path), st.st_size, st.st_mtime_ns)
+    except (OSError, LabelerError):
+        stamp = None  # load_encoder_version names the problem
+    return (str(project.root), which, record.id, record.encoder_version, stamp)
 
 
 def head_encoder(model: ModelVersionRecord) -> str | None:
@@ -128,6 +162,7 @@ def tile_features(
     tiles: Sequence[TileRecord],
     *,
     progress: Callable[[int, int], None] | None = None,
+    block: tuple[np.ndarray, Window] | None = None,
 ) -> list:
     """The encoder features of ``tiles`` of one image, from the cache or computed.
 
@@ -145,18 +180,54 @@ def tile_features(
         Tiles of ``image``.
     progress : callable, optional
         ``progress(done, total)`` over the tiles that are encoded (not cached).
+    block : (ndarray, Window), optional
+        Pixels ``(h, w, 3)`` uint8 already read of a window that holds every tile: the
+        tiles are cut from them instead of read again (overlapping tiles share pixels).
 
     Returns
     -------
     list of tuple of 4 ndarray
         Per tile, in order, its four float16 feature maps at strides 4, 8, 16 and 32,
         each of shape (C, ceil(H / stride), ceil(W / stride)).
+
+    Raises
+    ------
+    ValueError
+        If ``block`` does not hold a tile.
     """
     keys = [tile_key(image, t) for t in tiles]
     windows = {k: t.window for k, t in zip(keys, tiles, strict=True)}
+    if block is None:
+        pixels = reader.read
+    else:
+        rgb, win = block
+        if tuple(rgb.shape[:2]) != (win.height, win.width):
+            raise ValueError(
+                f"block: pixels of shape {rgb.shape} do not match the window {win.as_tuple()}"
+            )
+        for t in tiles:
+            w = t.window
+            if not (
+                win.row <= w.row
+                and win.col <= w.col
+                and w.row + w.height <= win.row + win.height
+                and w.col + w.width <= win.col + win.width
+            ):
+                raise ValueError(
+                    f"block: window {win.as_tuple()} does not hold tile {t.id} {w.as_tuple()}"
+                )
+
+        def pixels(w: Window) -> np.ndarray:
+            return np.ascontiguousarray(
+                rgb[
+                    w.row - win.row : w.row - win.row + w.height,
+                    w.col - win.col : w.col - win.col + w.width,
+                ]
+            )
+
     return cache.get_or_compute(
         keys,
-        lambda ks: [reader.read(windows[k]) for k in ks],
+        lambda ks: [pixels(windows[k]) for k in ks],
         encoder,
         tile_shapes=[t.shape for t in tiles],
         progress=progress,

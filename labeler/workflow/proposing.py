@@ -129,6 +129,7 @@ def _block_proposals(
     head,
     tail=None,
     settings: Settings,
+    dropout_weights: dict | None = None,
 ) -> list[NewProposal]:
     """Proposals of the tiles of one block.
 
@@ -148,6 +149,8 @@ def _block_proposals(
         The encoder stages fine-tuned with the head (:func:`load_head`), or None.
     settings : Settings
         The project's settings (cold start, model, classes).
+    dropout_weights : dict, optional
+        Kept across the blocks of one run (``propose_tiles``'s ``dropout_weights``).
 
     Returns
     -------
@@ -187,6 +190,7 @@ def _block_proposals(
             mc_samples=settings.model.mc_samples,
             seed=settings.model.seed,
             images=pixels,
+            dropout_weights=dropout_weights,
         )
         for t, p, f in zip(members, props, feats, strict=True):
             items.append(
@@ -268,18 +272,14 @@ def propose(
     else:
         mv = _cold_start_version(project)  # made when its first proposals are stored
     mv_id = None if mv is None else mv.id
-    latest = store.latest_proposals()
+    latest = store.latest_proposal_versions()  # {tile id: model version id}, no masks
     images = store.images()
     todo = {}
     up_to_date = 0
     left_alone = 0
     for im in images:
         all_tiles = store.tiles(image_id=im.id)
-        tiles = [
-            t
-            for t in all_tiles
-            if latest.get(t.id) is None or latest[t.id].model_version_id != mv_id
-        ]
+        tiles = [t for t in all_tiles if latest.get(t.id) is None or latest[t.id] != mv_id]
         up_to_date += len(all_tiles) - len(tiles)
         if only_open:
             open_tiles = [
@@ -293,6 +293,7 @@ def propose(
     total = sum(len(v) for v in todo.values())
     done = 0
     proposed = 0
+    dropout_weights: dict = {}  # the head's MC-dropout weights per grid size, made once
     for im in images:
         tiles = todo.get(im.id)
         if not tiles:
@@ -304,6 +305,7 @@ def propose(
                     f"stored {im.shape}; the image file was changed after it was added"
                 )
             for block, members in _blocks(tiles, im):
+                rgb = reader.read(block)  # once: the tiles are cut from it
                 feats = tile_features(
                     cache,
                     encoder,
@@ -313,16 +315,19 @@ def propose(
                     progress=lambda d, t, base=done, name=im.name: progress(
                         base + d, total, f"{name}: encoding"
                     ),
+                    block=(rgb, block),
                 )
                 items = _block_proposals(
-                    reader.read(block),
+                    rgb,
                     block,
                     members,
                     feats,
                     head=head,
                     tail=tail,
                     settings=settings,
+                    dropout_weights=dropout_weights,
                 )
+                del rgb
                 del feats  # one block's features at a time
                 if mv is None:
                     mv = _new_cold_start_version(project)

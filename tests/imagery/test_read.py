@@ -226,3 +226,32 @@ def test_pillow_size_alarm_becomes_our_own_message(tmp_path, monkeypatch):
     Image.fromarray(np.zeros((30, 30), np.uint8)).save(tmp_path / "refused.png")  # 900 px
     with pytest.raises(InputError, match=r"refused\.png: 900 pixels is too large to decode whole"):
         read_image(tmp_path / "refused.png")
+
+
+def test_tiff_windows_are_read_with_a_small_gdal_block_cache(tmp_path, rgb):
+    """GDAL keeps decoded blocks in a process-wide cache of 5 % of the machine's memory by
+    default: reading every window of a big orthomosaic once made peak memory grow with the
+    image. Each window is read under the project's cap instead."""
+    from rasterio.env import getenv
+
+    from labeler.imagery.read import TIFF_BLOCK_CACHE_MB
+
+    path = write_geotiff(
+        tmp_path / "plot.tif", rgb, transform=Affine(1, 0, 0, 0, -1, 0), crs="EPSG:32631"
+    )
+    seen = []
+    with open_image(path) as reader:
+        real = reader._ds
+
+        class Spy:  # the dataset, noting GDAL's cache setting at each read
+            def __getattr__(self, name):
+                return getattr(real, name)
+
+            def read(self, **kwargs):
+                seen.append(getenv().get("GDAL_CACHEMAX"))
+                return real.read(**kwargs)
+
+        reader._ds = Spy()
+        np.testing.assert_array_equal(reader.read(Window(1, 2, 3, 4)), rgb[1:4, 2:6])
+        reader._ds = real
+    assert seen == [TIFF_BLOCK_CACHE_MB] and 0 < TIFF_BLOCK_CACHE_MB <= 256

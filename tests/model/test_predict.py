@@ -178,6 +178,26 @@ def test_proposals_do_not_depend_on_batching(head):
     )
 
 
+def test_dropout_weights_kept_across_calls_give_the_same_proposals(head):
+    """Reusing the passes' weights between calls (as propose does block by block) is exact:
+    the same proposals as calls that each make their own; another seed gets its own."""
+    feats = _features(6, seed=5) + _features(2, size=32, seed=6)
+    kept: dict = {}
+    for i in range(0, 8, 3):
+        fresh = propose_tiles(head, feats[i : i + 3], mc_samples=4, seed=3)
+        reused = propose_tiles(head, feats[i : i + 3], mc_samples=4, seed=3, dropout_weights=kept)
+        for a, b in zip(fresh, reused, strict=True):
+            np.testing.assert_array_equal(a.mask, b.mask)
+            np.testing.assert_array_equal(a.uncertainty, b.uncertainty)
+            assert (a.mean_entropy, a.mean_bald) == (b.mean_entropy, b.mean_bald)
+    assert len(kept) == 2  # two grid sizes, made once each
+    other = propose_tiles(head, feats[:1], mc_samples=4, seed=4, dropout_weights=kept)
+    np.testing.assert_array_equal(
+        other[0].uncertainty, propose_tiles(head, feats[:1], mc_samples=4, seed=4)[0].uncertainty
+    )
+    assert len(kept) == 3
+
+
 def test_seed_makes_proposals_repeatable(head):
     feats = _features(2, seed=4)
     a = propose_tiles(head, feats, mc_samples=4, seed=11)

@@ -140,3 +140,33 @@ def test_only_open_skips_saved_and_held_tiles_inside_the_write(store):
         d.id: new.id,
     }
     assert store.add_proposals(new.id, [NewProposal(b.id, _mask(b, 3))], only_open=True) == []
+
+
+def test_many_proposals_in_one_call_keep_their_order_and_versions(store):
+    """Ids come back in the items' order; the light version query agrees with the full one."""
+    tiles = store.tiles()[:3]
+    old = store.add_model_version(kind="cold_start", name="vegetation-rows")
+    new = store.add_model_version(kind="cold_start", name="vegetation-rows-2")
+    assert store.latest_proposal_versions() == {}
+    first = store.add_proposals(old.id, [NewProposal(t.id, _mask(t, 0)) for t in tiles])
+    # reversed order, one tile left out: ids follow the items, newest per tile wins
+    second = store.add_proposals(
+        new.id, [NewProposal(t.id, _mask(t, k + 1)) for k, t in enumerate(tiles[:2][::-1])]
+    )
+    assert len(first) == 3 and len(second) == 2 and min(second) > max(first)
+    assert [store.proposal(pid).tile_id for pid in first] == [t.id for t in tiles]
+    assert [store.proposal(pid).tile_id for pid in second] == [tiles[1].id, tiles[0].id]
+    assert store.latest_proposal(tiles[1].id).mask()[0, 0] == 1
+    versions = store.latest_proposal_versions()
+    assert versions == {tiles[0].id: new.id, tiles[1].id: new.id, tiles[2].id: old.id}
+    assert versions == {k: p.model_version_id for k, p in store.latest_proposals().items()}
+
+
+def test_proposal_of_an_unknown_tile_writes_nothing(store):
+    tile = store.tiles()[0]
+    mv = store.add_model_version(kind="cold_start", name="vegetation-rows")
+    with pytest.raises(NotFoundError, match="tile 999999 is not in this project"):
+        store.add_proposals(
+            mv.id, [NewProposal(tile.id, _mask(tile, 0)), NewProposal(999999, _mask(tile, 0))]
+        )
+    assert store.latest_proposal_versions() == {}
