@@ -3,7 +3,7 @@
 Layout (``width`` = FPN channels, ``K`` = classes)::
 
     encoder features (strides 4, 8, 16, 32)
-      -> torchvision FeaturePyramidNetwork (width channels on every level)
+      -> feature pyramid (width channels on every level; :mod:`labeler.model.pyramid`)
       -> sum of the four levels, bilinearly resized to stride 4, ReLU
       -> 1x1 convolution width -> width, ReLU                       ("trunk", deterministic)
       -> dropout (element-wise, p = ``dropout``) -> 1x1 convolution width -> K  ("classifier")
@@ -32,10 +32,10 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 from torch import nn
-from torchvision.ops import FeaturePyramidNetwork
 
 from labeler.classes import UNLABELLED
 from labeler.model.encoder import FEATURE_CHANNELS
+from labeler.model.pyramid import FeaturePyramid
 from labeler.model.refine import RefineConfig, Refiner
 
 __all__ = ["HeadConfig", "ProposalHead", "features_to_tensors", "class_lut", "REFINE_CHANNELS"]
@@ -187,7 +187,7 @@ class ProposalHead(nn.Module):
         super().__init__()
         self.config = config or HeadConfig()
         w = self.config.width
-        self.fpn = FeaturePyramidNetwork(list(self.config.in_channels), w)
+        self.fpn = FeaturePyramid(list(self.config.in_channels), w)
         self.mix = nn.Conv2d(w, w, 1)
         self.dropout = nn.Dropout(self.config.dropout)
         self.classifier = nn.Conv2d(w, self.config.n_classes, 1)
