@@ -197,6 +197,8 @@ def main() -> None:
     if unknown:
         parser.error(f"--commands: unknown {', '.join(sorted(unknown))}; known: {', '.join(COMMANDS)}")
 
+    if args.workdir is not None:
+        args.workdir.mkdir(parents=True, exist_ok=True)
     base = Path(tempfile.mkdtemp(prefix="labeler-bigimage-", dir=args.workdir))
     out: dict = {"size": [args.size, args.size], "limit_mb": LIMIT_MB}
     failures: dict[str, str] = {}
