@@ -205,3 +205,33 @@ def test_retrain_records_the_encoder_and_propose_reads_the_heads_encoder(tiny):
     versions = {p.name for p in (tiny.cache_dir / "features").iterdir()}
     assert first.encoder.encoder_version in versions
     assert second.encoder.encoder_version not in versions
+
+
+def test_retrain_on_an_older_encoder_version_and_propose_follows_it(tiny, capsys):
+    from labeler.cli import main
+
+    newest = adapt(tiny, minutes=1.0, max_steps=2, batch_size=2, view_size=64, method="image")
+    truth = make_plot("long-acre", seed=11, height=128, width=192).truth
+    for t in tiny.store.tiles()[:3]:
+        save_tile_mask(tiny, t.id, "survey", truth[t.window.slices], parent_version=None)
+    imagenet = load_encoder_version(tiny, "imagenet").version
+    head = retrain(tiny, encoder="imagenet").model_version
+    assert head.encoder_version == imagenet != newest.encoder.encoder_version
+    _, meta = load_checkpoint(tiny.root / head.checkpoint)
+    assert meta.encoder_version == imagenet
+    status = project_status(tiny)
+    assert status.proposing_head == head.name and status.newest_encoder == "encoder-1"
+    result = propose(tiny)
+    assert result.mode == "head" and result.model_version.id == head.id
+    versions = {p.name for p in (tiny.cache_dir / "features").iterdir()}
+    assert imagenet in versions and newest.encoder.encoder_version not in versions
+    with pytest.raises(LabelerError, match=r"encoder 'encoder-7': no such encoder version"):
+        retrain(tiny, encoder="encoder-7")
+    # the command line picks a version by name; the head then records that version
+    root = str(tiny.root)
+    tiny.close()
+    assert main(["retrain", root, "--encoder", "encoder-1"]) == 0
+    assert "trained head-2" in capsys.readouterr().out
+    with open_project(root) as again:
+        head2 = again.store.latest_model_version(kind="head")
+        assert head2.encoder_version == newest.encoder.encoder_version
