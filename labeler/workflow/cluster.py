@@ -11,7 +11,7 @@ makes the same proposals there as here.
 What goes over the network: to a worker, per chunk, the image's path and record, the
 tiles' windows, the settings, the head checkpoint's path and the encoder version (a few
 KB); once per worker, when the head reads an adapted encoder version (``labeler adapt``;
-the cold start reads the newest), that version's weights file (about 14 MB, scattered
+the cold start reads the newest), that version's weights file (about 19 MB, scattered
 to every worker before the chunks; the worker checks the weights against the version's
 digest and loads them once); back, per tile, the mask as PNG bytes, the float16
 uncertainty maps (3 x 64 x 64 for a 256-pixel tile, 24 KB), the 320-float embedding and
