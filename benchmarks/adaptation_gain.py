@@ -197,7 +197,8 @@ def _miou(head, tail, heldout, *, n_classes: int, mc_samples: int) -> float:
 
 
 def _curves(
-    pool, heldout, *, encoder, finetune, shares, seeds, classes, settings, mc_samples
+    pool, heldout, *, encoder, finetune, shares, seeds, classes, settings, mc_samples,
+    steps=None,
 ):
     from labeler.model.train import train_head
 
@@ -214,6 +215,7 @@ def _curves(
                 settings=settings,
                 mode="features",
                 finetune_stages=finetune,
+                steps=steps,
             )
             miou = _miou(res.head, res.tail, heldout, n_classes=len(classes), mc_samples=mc_samples)
             out.setdefault(f"{share:g}", []).append(round(float(miou), 4))
@@ -295,6 +297,7 @@ def run_dataset(name: str, args, work: Path) -> dict:
         values[start] = _curves(
             p, h, encoder=enc, finetune=finetune, shares=args.shares, seeds=args.seeds,
             classes=classes, settings=settings, mc_samples=args.mc_samples,
+            steps=args.head_steps,
         )
         spread[start] = feature_spread(h.features)
         seconds[start] = round(time.monotonic() - t0, 1)
@@ -309,6 +312,7 @@ def run_dataset(name: str, args, work: Path) -> dict:
         "adapt_max_steps": args.adapt_steps,
         "adapt_runs": detail,
         "finetune_stages": args.finetune_stages,
+        "head_steps": args.head_steps,  # None: the project's default step budget
         "feature_spread": spread,
         "head_seconds": seconds,
         "adapted_finetuned_from": best_adapted,
@@ -320,6 +324,7 @@ def run_dataset(name: str, args, work: Path) -> dict:
             args.quick
             or args.minutes < 10
             or args.adapt_steps is not None
+            or args.head_steps is not None
             or len(args.seeds) < 3
             or len(args.shares) < 3
             or set(wanted) != set(STARTS)
@@ -382,6 +387,10 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument(
         "--finetune-stages", type=int, choices=(2, 4), default=2,
         help="encoder stages the fine-tuned starts train with the head (default: %(default)s)",
+    )
+    parser.add_argument(
+        "--head-steps", type=int, default=None,
+        help="optimiser steps of every head (default: the project's step budget)",
     )
     parser.add_argument("--mc-samples", type=int, default=2, help="dropout passes when measuring")
     parser.add_argument("--peanut-pool-images", type=int, default=16)
