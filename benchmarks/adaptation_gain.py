@@ -50,7 +50,7 @@ import numpy as np
 from benchmarks.datasets import PEANUT
 from benchmarks.label_efficiency.loading import DEMO, load_demo, load_peanut
 
-__all__ = ["STARTS", "main", "label_rows", "summarise"]
+__all__ = ["STARTS", "main", "label_rows", "summarise", "feature_spread"]
 
 REPO = Path(__file__).resolve().parents[1]
 #: Every encoder start, in plot order.
@@ -120,12 +120,14 @@ def _later_visits(plots: list[str], folder: Path) -> list[Path]:
     return out
 
 
-def _adapt_runs(dataset, files, *, work: Path, names, minutes, revisit_files, overlap, seed):
+def _adapt_runs(
+    dataset, files, *, work: Path, names, minutes, revisit_files, overlap, seed, max_steps=None
+):
     """Run ``labeler adapt`` for each adapted start named; weights and minutes per run."""
     from labeler.workflow import adapt
     from labeler.workflow.encoders import load_encoder_version
 
-    runs, took = {}, {}
+    runs, took, detail = {}, {}, {}
     variants = [(m, r) for r in (False, True) for m in ("dense", "image")]
     for method, with_later in variants:
         name = f"adapted_{method}" + ("_revisits" if with_later else "")
@@ -137,16 +139,40 @@ def _adapt_runs(dataset, files, *, work: Path, names, minutes, revisit_files, ov
         )
         try:
             started = time.monotonic()
-            out = adapt(project, minutes=minutes, method=method, seed=seed)
+            out = adapt(project, minutes=minutes, method=method, seed=seed, max_steps=max_steps)
             took[name] = round((time.monotonic() - started) / 60.0, 2)
             runs[name] = load_encoder_version(project, out.encoder.name)
+            detail[name] = {
+                "steps": out.steps,
+                "tiles": out.tiles,
+                "revisit_pairs": out.revisit_pairs,
+                "seconds": round(out.seconds, 1),
+                "stopped": out.stopped,
+                "first_loss": round(out.first_loss, 4),
+                "last_loss": round(out.last_loss, 4),
+            }
             _say(
                 f"{dataset}: {name}: {out.steps} steps, loss {out.first_loss:.3f} -> "
                 f"{out.last_loss:.3f}, {out.revisit_pairs} revisit pairs, {took[name]} min"
             )
         finally:
             project.close()
-    return runs, took
+    return runs, took, detail
+
+
+def feature_spread(features) -> float:
+    """Collapse check: mean over channels of the standard deviation, across tiles, of the
+    L2-normalised pooled deepest features (0 for a collapsed encoder; about
+    ``1 / sqrt(channels)`` for evenly spread ones; common practice, no source).
+
+    Parameters
+    ----------
+    features : sequence of tuples of arrays
+        Per tile the feature maps, the deepest last, each (C, h, w).
+    """
+    pooled = np.stack([np.asarray(f[-1], np.float32).mean(axis=(1, 2)) for f in features])
+    unit = pooled / np.maximum(np.linalg.norm(pooled, axis=1, keepdims=True), 1e-12)
+    return round(float(unit.std(axis=0).mean()), 5)
 
 
 # -- heads -------------------------------------------------------------------------------------
@@ -170,7 +196,10 @@ def _miou(head, tail, heldout, *, n_classes: int, mc_samples: int) -> float:
     return mean_iou(cm)
 
 
-def _curves(pool, heldout, *, encoder, finetune, shares, seeds, classes, settings, mc_samples):
+def _curves(
+    pool, heldout, *, encoder, finetune, shares, seeds, classes, settings, mc_samples,
+    steps=None,
+):
     from labeler.model.train import train_head
 
     out: dict[str, list[float]] = {}
@@ -185,7 +214,8 @@ def _curves(pool, heldout, *, encoder, finetune, shares, seeds, classes, setting
                 encoder=encoder,
                 settings=settings,
                 mode="features",
-                finetune_stages=2 if finetune else 0,
+                finetune_stages=finetune,
+                steps=steps,
             )
             miou = _miou(res.head, res.tail, heldout, n_classes=len(classes), mc_samples=mc_samples)
             out.setdefault(f"{share:g}", []).append(round(float(miou), 4))
@@ -210,6 +240,7 @@ def run_dataset(name: str, args, work: Path) -> dict:
     from labeler.model.encoder import load_encoder
     from labeler.settings import ModelSettings
 
+    load_start = round(os.getloadavg()[0], 2)
     settings = ModelSettings(mc_samples=args.mc_samples)
     cache_root = work / "features"
     imagenet = load_encoder()
@@ -240,21 +271,25 @@ def run_dataset(name: str, args, work: Path) -> dict:
     values: dict[str, dict[str, list[float]]] = {}
     encoders: dict = {}
     took: dict = {}
+    detail: dict = {}
+    spread: dict = {}
+    seconds: dict = {}
     for start in wanted:
         if start.startswith("adapted") and not took and runs:
             # the starts without adaptation come first in STARTS: a fault shows early
-            encoders, took = _adapt_runs(
+            encoders, took, detail = _adapt_runs(
                 name, files, work=work, names=runs, minutes=args.minutes,
-                revisit_files=later, overlap=overlap, seed=0,
+                revisit_files=later, overlap=overlap, seed=0, max_steps=args.adapt_steps,
             )
+        tuned = args.finetune_stages
         if start == "random":
-            enc, finetune = _random_encoder(0), False
+            enc, finetune = _random_encoder(0), 0
         elif start.startswith("imagenet"):
-            enc, finetune = imagenet, start.endswith("finetuned")
+            enc, finetune = imagenet, tuned if start.endswith("finetuned") else 0
         elif start == "adapted_finetuned":
-            enc, finetune = encoders.get(best_adapted), True
+            enc, finetune = encoders.get(best_adapted), tuned
         else:
-            enc, finetune = encoders.get(start), False
+            enc, finetune = encoders.get(start), 0
         if enc is None:
             continue  # e.g. revisit starts on a data set without revisits
         p, h, _ = load(enc) if enc is not imagenet else (pool, heldout, info)
@@ -262,8 +297,11 @@ def run_dataset(name: str, args, work: Path) -> dict:
         values[start] = _curves(
             p, h, encoder=enc, finetune=finetune, shares=args.shares, seeds=args.seeds,
             classes=classes, settings=settings, mc_samples=args.mc_samples,
+            steps=args.head_steps,
         )
-        _say(f"{name}: {start}: {values[start]} ({time.monotonic() - t0:.0f} s)")
+        spread[start] = feature_spread(h.features)
+        seconds[start] = round(time.monotonic() - t0, 1)
+        _say(f"{name}: {start}: {values[start]} ({seconds[start]:.0f} s)")
     mean, sd = summarise(values)
     return {
         "dataset": name,
@@ -271,13 +309,27 @@ def run_dataset(name: str, args, work: Path) -> dict:
         "miou_sd": sd,
         "adapt_minutes": took,
         "adapt_budget_minutes": args.minutes,
+        "adapt_max_steps": args.adapt_steps,
+        "adapt_runs": detail,
+        "finetune_stages": args.finetune_stages,
+        "head_steps": args.head_steps,  # None: the project's default step budget
+        "feature_spread": spread,
+        "head_seconds": seconds,
         "adapted_finetuned_from": best_adapted,
         "shares": [float(s) for s in args.shares],
         "seeds": list(args.seeds),
         "pool_tiles": len(pool),
         "heldout_tiles": len(heldout),
-        "reduced": bool(args.quick or args.minutes < 10 or len(args.seeds) < 3),
-        "load_average_1min": round(os.getloadavg()[0], 2),
+        "reduced": bool(
+            args.quick
+            or args.minutes < 10
+            or args.adapt_steps is not None
+            or args.head_steps is not None
+            or len(args.seeds) < 3
+            or len(args.shares) < 3
+            or set(wanted) != set(STARTS)
+        ),
+        "load_average_1min": [load_start, round(os.getloadavg()[0], 2)],  # at start, at end
     }
 
 
@@ -328,6 +380,18 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--minutes", type=float, default=10.0, help="adaptation budget per run")
     parser.add_argument("--starts", default=",".join(STARTS), help="comma list of encoder starts")
     parser.add_argument("--no-revisits", dest="revisits", action="store_false")
+    parser.add_argument(
+        "--adapt-steps", type=int, default=None,
+        help="also stop each adaptation after this many optimiser steps (default: time only)",
+    )
+    parser.add_argument(
+        "--finetune-stages", type=int, choices=(2, 4), default=2,
+        help="encoder stages the fine-tuned starts train with the head (default: %(default)s)",
+    )
+    parser.add_argument(
+        "--head-steps", type=int, default=None,
+        help="optimiser steps of every head (default: the project's step budget)",
+    )
     parser.add_argument("--mc-samples", type=int, default=2, help="dropout passes when measuring")
     parser.add_argument("--peanut-pool-images", type=int, default=16)
     parser.add_argument("--peanut-heldout-images", type=int, default=6)

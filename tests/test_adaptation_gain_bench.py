@@ -11,7 +11,7 @@ import statistics
 import numpy as np
 import pytest
 
-from benchmarks.adaptation_gain import STARTS, label_rows, main, plot, summarise
+from benchmarks.adaptation_gain import STARTS, feature_spread, label_rows, main, plot, summarise
 
 
 def test_label_rows_share_least_and_seed():
@@ -50,3 +50,16 @@ def test_unknown_start_is_a_usage_error(capsys):
     assert info.value.code == 2
     assert "--starts: unknown ['moco']" in capsys.readouterr().err
     assert STARTS[0] == "random" and "adapted_finetuned" in STARTS
+
+
+def test_feature_spread_is_zero_for_a_collapsed_encoder():
+    # pooled deepest features (1, 0) and (0, 3): unit vectors (1, 0) and (0, 1); the
+    # population std across the two tiles is 0.5 in each channel (worked by hand)
+    spread_out = [
+        (np.zeros((4, 2, 2)), np.array([[[1.0, 1.0]], [[0.0, 0.0]]])),
+        (np.zeros((4, 2, 2)), np.array([[[0.0, 0.0]], [[3.0, 3.0]]])),
+    ]
+    assert feature_spread(spread_out) == 0.5
+    # every tile mapped to the same direction (a collapse), whatever the length
+    collapsed = [(np.array([[[2.0]], [[2.0]]]),), (np.array([[[5.0]], [[5.0]]]),)]
+    assert feature_spread(collapsed) == 0.0

@@ -193,6 +193,13 @@ def build_parser() -> argparse.ArgumentParser:
         "queue.",
     )
     p.add_argument("dir", metavar="DIR", help="project folder")
+    p.add_argument(
+        "--encoder",
+        default=None,
+        metavar="VERSION",
+        help="encoder version to train the head on: 'imagenet', a name such as encoder-2 "
+        "('labeler status' lists them) or a version string; default the newest",
+    )
     p.set_defaults(func=cmd_retrain)
 
     p = sub.add_parser(

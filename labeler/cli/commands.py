@@ -550,7 +550,7 @@ def cmd_retrain(args) -> int:
 
     with open_project(args.dir) as project:
         with _Bar("training") as bar:
-            result = retrain(project, progress=bar)
+            result = retrain(project, encoder=args.encoder, progress=bar)
         with _Bar("renewing proposals") as bar:
             renewed = renew_proposals(project, progress=bar)
     mv = result.model_version

@@ -15,9 +15,10 @@ views, as in VICRegL.
 
 Small CPU batches. Batch normalisation is kept in evaluation mode: its running
 statistics stay those of the pretrained weights (statistics of eight tiles are noise),
-while its scale and shift still learn; the projectors have no batch normalisation. All
-learning rates rise linearly over the first ``warmup_steps`` steps, so random projectors
-do not jolt the pretrained encoder (common practice, no source).
+while its scale and shift still learn; the projectors have no batch normalisation. The
+projectors first learn alone for ``projector_steps`` steps (the encoder held), then all
+learning rates rise linearly over ``warmup_steps`` steps, so random projectors do not
+jolt the pretrained encoder (see :class:`AdaptConfig`).
 
 Time and interruption. The run stops before a step that would overrun ``seconds`` (the
 next step's time is predicted from the last ones) or after ``max_steps``; both count
@@ -94,8 +95,16 @@ class AdaptConfig:
     heads_learning_rate : float
         AdamW learning rate of the projectors.
     weight_decay : float
+    projector_steps : int
+        First steps in which only the projectors learn: the encoder runs without
+        gradients (a step costs about a third), so that freshly drawn projectors do not
+        pass random gradients into the pretrained encoder (linear probing before
+        fine-tuning, Kumar et al., ICLR 2022, "Fine-tuning can distort pretrained
+        features"). Without them, 40 dense steps on the demo tiles shrank the spread of
+        the pooled deepest features by a third and lowered a linear probe's mIoU.
     warmup_steps : int
-        Steps over which all learning rates rise linearly from zero.
+        Steps over which all learning rates rise linearly from zero (the encoder's
+        counted from the end of ``projector_steps``).
     temperature : float
         NT-Xent temperature (method "image").
     alpha : float
@@ -119,6 +128,7 @@ class AdaptConfig:
     learning_rate: float = 1e-4
     heads_learning_rate: float = 1e-3
     weight_decay: float = 1e-4
+    projector_steps: int = 10
     warmup_steps: int = 20
     temperature: float = 0.5
     alpha: float = 0.5
@@ -143,6 +153,8 @@ class AdaptConfig:
             )
         if self.warmup_steps < 0:
             raise ValueError(f"warmup_steps: expected 0 or more, got {self.warmup_steps}")
+        if self.projector_steps < 0:
+            raise ValueError(f"projector_steps: expected 0 or more, got {self.projector_steps}")
 
     def as_dict(self) -> dict[str, object]:
         """Plain data (tuples as lists) for a checkpoint."""
@@ -390,14 +402,16 @@ def adapt_encoder(
                     stopped = "time"
                     break
                 t0 = time.monotonic()
-                warm = min(1.0, (step + 1) / config.warmup_steps) if config.warmup_steps else 1.0
-                for g, lr in zip(optimizer.param_groups, base_lrs, strict=True):
-                    g["lr"] = lr * warm
+                held = step < config.projector_steps  # the projectors learn alone
+                for g, lr, first in zip(
+                    optimizer.param_groups, base_lrs, (config.projector_steps, 0), strict=True
+                ):
+                    g["lr"] = lr * _warm(step - first, config.warmup_steps)
                 items = draw_batch(len(tiles), len(revisits), config, rng=rng)
                 va, vb, pairs = view_batch(
                     items, tiles, revisits, plants=plants, config=config, size=size, rng=rng
                 )
-                loss = objective(va, vb, pairs)
+                loss = objective(va, vb, pairs, encoder_grad=not held)
                 optimizer.zero_grad(set_to_none=True)
                 loss.backward()
                 updating = True  # from here until the step is booked, no save on interrupt
@@ -430,6 +444,13 @@ def adapt_encoder(
         stopped=stopped,
         resumed_from=resumed_from,
     )
+
+
+def _warm(step: int, warmup_steps: int) -> float:
+    """Learning-rate factor of 0-based ``step`` of a linear warm-up (0 before it starts)."""
+    if step < 0:
+        return 0.0
+    return min(1.0, (step + 1) / warmup_steps) if warmup_steps else 1.0
 
 
 def _check_settings(path, stored: dict, wanted: dict) -> None:

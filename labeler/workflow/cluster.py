@@ -10,10 +10,15 @@ makes the same proposals there as here.
 
 What goes over the network: to a worker, per chunk, the image's path and record, the
 tiles' windows, the settings, the head checkpoint's path and the encoder version (a few
-KB); back, per tile, the mask as PNG bytes, the float16 uncertainty maps (3 x 64 x 64
-for a 256-pixel tile, 24 KB), the 320-float embedding and the tile's scalars. Pixels
-and features never travel: each worker reads the image windows from the shared image
-root and keeps its own feature cache (``cluster.worker_cache``).
+KB); once per worker, when the head reads an adapted encoder version (``labeler adapt``;
+the cold start reads the newest), that version's weights file (about 19 MB, scattered
+to every worker before the chunks; the worker checks the weights against the version's
+digest and loads them once); back, per tile, the mask as PNG bytes, the float16
+uncertainty maps (3 x 64 x 64 for a 256-pixel tile, 24 KB), the 320-float embedding and
+the tile's scalars. Pixels and features never travel: each worker reads the image
+windows from the shared image root and keeps its own feature cache
+(``cluster.worker_cache``, keyed by encoder version). Heads with fine-tuned encoder
+stages (``model.finetune_stages``) are proposed on this machine only.
 
 This machine alone writes to the store: the results are written in batches as they
 arrive (one transaction per :data:`WRITE_BATCH_TILES` tiles or :data:`WRITE_BATCH_SECONDS`),
@@ -116,7 +121,7 @@ def connect(address: str, *, timeout: float):
         raise unreachable from None
 
 
-def run_propose_chunk(chunk: ProposeChunk) -> ChunkResult:
+def run_propose_chunk(chunk: ProposeChunk, *, encoder_weights: bytes | None = None) -> ChunkResult:
     """The task a worker runs: :func:`~labeler.workflow.chunks.propose_chunk`.
 
     With ``threads`` 0 (``cluster.worker_threads`` unset) the worker machine's cores are
@@ -125,6 +130,8 @@ def run_propose_chunk(chunk: ProposeChunk) -> ChunkResult:
     Parameters
     ----------
     chunk : ProposeChunk
+    encoder_weights : bytes, optional
+        The adapted encoder's weights file (sent once to every worker), or None.
 
     Returns
     -------
@@ -138,30 +145,58 @@ def run_propose_chunk(chunk: ProposeChunk) -> ChunkResult:
         except ValueError:  # not on a worker
             per_task = 1
         chunk = replace(chunk, threads=max(1, available_cores() // max(1, per_task)))
-    return propose_chunk(chunk)
+    return propose_chunk(chunk, encoder_weights=encoder_weights)
 
 
-def _head_and_version(project: Project) -> tuple[ModelVersionRecord | None, str | None, str]:
-    """The newest head (version, checkpoint path) and the installed encoder's version.
+def _encoder_weights(project: Project, record: ModelVersionRecord) -> bytes:
+    """The weights file of an adapted encoder version, as bytes for the workers."""
+    path = project.resolve(record.checkpoint or "", what=f"weights of encoder {record.name}")
+    try:
+        return path.read_bytes()
+    except OSError as exc:
+        raise LabelerError(f"{path}: cannot read the weights of encoder {record.name} ({exc})") from None
 
-    The same checks as the local ``propose``: the checkpoint loads and was trained on the
-    installed encoder.
+
+def _head_and_version(
+    project: Project,
+) -> tuple[ModelVersionRecord | None, str | None, str, bytes | None]:
+    """The newest head (version, checkpoint path), its encoder version and, for an
+    adapted encoder version, that version's weights (sent to the workers).
+
+    The encoder is the one the local ``propose`` reads: the head's own, or for the cold
+    start the newest. The same checks as the local ``propose``: the checkpoint loads and
+    was trained on that encoder version. Heads with fine-tuned encoder stages
+    (``model.finetune_stages``) are refused: their tuned stages are not sent.
     """
     from labeler.model.encoder import encoder_version
+    from labeler.workflow.encoders import find_encoder_version
+    from labeler.workflow.features import head_encoder, read_checkpoint
 
-    version = encoder_version()  # the workers load the encoder, this machine need not
     head_mv = project.store.latest_model_version(kind="head")
+    try:
+        record = find_encoder_version(project, None if head_mv is None else head_encoder(head_mv))
+    except LabelerError:
+        if head_mv is None:
+            raise
+        record = None  # a head of an unknown encoder: the check below names it
+    weights = None if record is None else _encoder_weights(project, record)
+    # the workers load the encoder, this machine need not
+    version = encoder_version() if record is None else record.encoder_version
     if head_mv is None:
-        return None, None, version
-    from labeler.workflow.features import read_checkpoint
-
+        return None, None, version, weights
     _, meta, path = read_checkpoint(project, head_mv)
+    if meta.encoder_tail:
+        raise LabelerError(
+            f"model {head_mv.name} carries fine-tuned encoder stages (model.finetune_stages), "
+            "which the cluster path does not send to the workers; propose on this machine "
+            "(leave out --cluster), or retrain with model.finetune_stages = 0"
+        )
     if meta.encoder_version != version:
         raise LabelerError(
-            f"model {head_mv.name} was trained on encoder {meta.encoder_version}, the installed "
-            f"encoder is {version}; run 'labeler retrain'"
+            f"model {head_mv.name} was trained on encoder {meta.encoder_version}, the project's "
+            f"encoder for it is {version}; run 'labeler retrain'"
         )
-    return head_mv, str(path.resolve()), version
+    return head_mv, str(path.resolve()), version, weights
 
 
 def _chunks(
@@ -321,7 +356,7 @@ def _propose_with(
     client, project: Project, *, progress: Progress, task, missing_only: bool
 ) -> ProposeResult:
     """:func:`propose_on_cluster` with a connected client."""
-    head_mv, head_path, encoder_version = _head_and_version(project)
+    head_mv, head_path, encoder_version, weights = _head_and_version(project)
     mv = head_mv if head_mv is not None else _cold_start_version(project)
     chunks, up_to_date = _chunks(
         project,
@@ -336,7 +371,10 @@ def _propose_with(
     if chunks:
         distributed = _distributed()
         progress(0, total, f"sending {len(chunks)} chunks")
-        futures = client.map(task, chunks, pure=False)
+        extra = {}
+        if weights is not None:  # sent once to every worker, not once per chunk
+            extra["encoder_weights"] = client.scatter(weights, broadcast=True)
+        futures = client.map(task, chunks, pure=False, **extra)
         by_future = dict(zip(futures, chunks, strict=True))
         del futures
         finished = distributed.as_completed(list(by_future), loop=client.loop)

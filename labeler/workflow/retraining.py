@@ -181,7 +181,9 @@ def _read_tiles(
     return pixels, [tile_key(it.image, it.tile) for it in items]
 
 
-def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainResult:
+def retrain(
+    project: Project, *, encoder: str | None = None, progress: Progress = no_progress
+) -> RetrainResult:
     """Train a new head on every saved mask and record it as a model version.
 
     The head's checkpoint (with the fine-tuned encoder stages, if any) is kept in the
@@ -192,6 +194,11 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
     ----------
     project : Project
         An open project.
+    encoder : str, optional
+        The encoder version to train on (:func:`labeler.workflow.encoders.find_encoder_version`:
+        ``"imagenet"``, a name such as ``"encoder-2"``, or a version string); default the
+        newest adapted version, else ImageNet-1k. The head records it, and ``propose``
+        reads the tiles through the same version.
     progress : Progress
         Called as ``progress(done, total, label)``: over the tiles read, over the turned
         tiles encoded (only those the cache lacks), then over the optimiser steps (with
@@ -207,7 +214,8 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
     ------
     LabelerError
         When there are fewer labelled tiles than the ``model.min_labelled_tiles``
-        setting (the message says how many more are needed).
+        setting (the message says how many more are needed), or ``encoder`` names no
+        encoder version of the project.
     """
     from labeler.model.checkpoint import checkpoint_bytes, keep_weights_file
     from labeler.model.fit import fit_head
@@ -222,7 +230,7 @@ def retrain(project: Project, *, progress: Progress = no_progress) -> RetrainRes
             f"retrain needs at least {need} labelled tiles (the model.min_labelled_tiles setting), found "
             f"{len(items)}; accept or correct {need - len(items)} more tiles first"
         )
-    encoder, cache = encoder_and_cache(project)
+    encoder, cache = encoder_and_cache(project, encoder=encoder)
     pixels, keys = _read_tiles(project, items, progress)
     ready = [time.perf_counter()]  # when training began: after the last tile was encoded
 

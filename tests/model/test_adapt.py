@@ -48,7 +48,9 @@ def first_last(losses, k):
     return float(np.mean(losses[:k])), float(np.mean(losses[-k:]))
 
 
-SMALL = AdaptConfig(batch_size=4, view_size=64, dense_strides=(8, 16), warmup_steps=5)
+SMALL = AdaptConfig(
+    batch_size=4, view_size=64, dense_strides=(8, 16), warmup_steps=5, projector_steps=0
+)
 
 
 @pytest.fixture(scope="module")
@@ -273,6 +275,8 @@ def test_errors(tiles, tmp_path):
         AdaptConfig(alpha=2.0)
     with pytest.raises(ValueError, match="revisit_share: expected a share"):
         AdaptConfig(revisit_share=-0.1)
+    with pytest.raises(ValueError, match="projector_steps: expected 0 or more"):
+        AdaptConfig(projector_steps=-1)
     bad = tmp_path / "bad.pt"
     bad.write_bytes(b"not a checkpoint")
     with pytest.raises(ValueError, match="bad.pt: refused, not a plain-data adaptation checkpoint"):
@@ -289,3 +293,24 @@ def test_draw_batch_mixes_tiles_and_revisits():
     # too few tiles: revisit pairs fill the batch
     assert sorted(k for k, _ in draw_batch(1, 9, config, rng=rng)) == ["pair"] * 7 + ["tile"]
     assert len(draw_batch(2, 1, config, rng=rng)) == 3
+
+
+def test_projectors_learn_alone_first_then_the_encoder_warms_up(tiles):
+    from labeler.model.adapt import _warm
+
+    # the linear warm-up factor, by hand: nothing before its start, then 1/3, 2/3, 1
+    assert [_warm(k, 3) for k in (-2, -1, 0, 1, 2, 3)] == [0.0, 0.0, 1 / 3, 2 / 3, 1.0, 1.0]
+    assert _warm(0, 0) == 1.0
+    encoder = TinyEncoder()
+    before = {k: v.clone() for k, v in encoder.state_dict().items()}
+    config = AdaptConfig(
+        batch_size=4, view_size=64, dense_strides=(8, 16), warmup_steps=2, projector_steps=3
+    )
+    held = adapt_encoder(encoder, tiles, config=config, seconds=300, max_steps=3, seed=0)
+    assert held.steps == 3
+    for k, v in held.encoder_state.items():  # three steps of the projectors alone
+        assert torch.equal(v, before[k]), k
+    moved = adapt_encoder(TinyEncoder(), tiles, config=config, seconds=300, max_steps=4, seed=0)
+    assert not torch.equal(
+        moved.encoder_state["stages.1.0.weight"], before["stages.1.0.weight"]
+    )  # the fourth step trains the encoder

@@ -92,3 +92,39 @@ def test_weights_of_another_network_do_not_load(tmp_path):
     )
     with pytest.raises(ValueError, match="encoder version lite0-x-ssl-y: the weights do not fit"):
         trainable_encoder(load_encoder_weights(path))
+
+
+def test_weights_sent_as_bytes_load_and_damaged_ones_are_refused(nudged, tmp_path):
+    from labeler.model.adapted import inference_encoder_from_bytes
+
+    root, state = nudged
+    version = adapted_version(root, state)
+    good = save_encoder_weights(
+        tmp_path / "e.pt", state, version=version, base_version=root
+    ).read_bytes()
+    encoder = inference_encoder_from_bytes(good, source="encoder x")
+    assert encoder.version == version
+    x = torch.full((1, 3, 64, 64), 100.0)
+    reference = inference_encoder(load_encoder_weights(tmp_path / "e.pt"))
+    with torch.no_grad():
+        for a, b in zip(encoder(x), reference(x), strict=True):
+            assert torch.equal(a, b)
+    # a version name whose digest is not that of the weights it carries
+    wrong = save_encoder_weights(
+        tmp_path / "w.pt", trainable_encoder().state_dict(), version=version, base_version=root
+    ).read_bytes()
+    with pytest.raises(ValueError, match=r"encoder x: the weights do not match their version"):
+        inference_encoder_from_bytes(wrong, source="encoder x")
+    # adapted from another ImageNet encoder than the installed one
+    other = "lite0-000000000000-r0"
+    moved = save_encoder_weights(
+        tmp_path / "o.pt", state, version=adapted_version(other, state), base_version=other
+    ).read_bytes()
+    with pytest.raises(ValueError, match=r"encoder x: adapted from encoder lite0-000000000000-r0"):
+        inference_encoder_from_bytes(moved, source="encoder x")
+    buf = io.BytesIO()
+    torch.save({"format": "something else"}, buf)
+    with pytest.raises(ValueError, match=r"encoder x: not a labeler encoder file"):
+        inference_encoder_from_bytes(buf.getvalue(), source="encoder x")
+    with pytest.raises(ValueError, match=r"encoder x: refused, not plain-data encoder weights"):
+        inference_encoder_from_bytes(b"not a torch file", source="encoder x")

@@ -340,3 +340,62 @@ def test_without_the_cluster_extra_the_fix_is_named(monkeypatch):
         LabelerError, match=r"--cluster needs Dask.*pip install 'labeler\[cluster\]'"
     ):
         cluster_module.connect("tcp://127.0.0.1:8786", timeout=1)
+
+
+def add_adapted_encoder_and_head(project) -> str:
+    """An adapted encoder version (the ImageNet weights, seeded small changes) and a tiny
+    head trained on it, stored as the newest versions; returns the encoder version."""
+    import torch
+
+    from labeler.model.adapted import trainable_encoder
+    from labeler.model.checkpoint import save_checkpoint
+    from labeler.model.head import HeadConfig, ProposalHead
+    from labeler.workflow.encoders import save_encoder_version
+
+    base = trainable_encoder()
+    generator = torch.Generator().manual_seed(3)
+    state = {
+        k: v + 0.05 * v.std() * torch.randn(v.shape, generator=generator)
+        if v.is_floating_point() and v.numel() > 1 and "running_var" not in k
+        else v
+        for k, v in base.state_dict().items()
+    }
+    record = save_encoder_version(
+        project, state, base_version=base.version, root_version=base.version, details={}
+    )
+    torch.manual_seed(5)
+    head = ProposalHead(HeadConfig(width=8, refine_channels=4)).eval()
+    save_checkpoint(
+        project.root / "models" / "tiny-adapted.pt",
+        head,
+        encoder_version=record.encoder_version,
+        val_iou=[0.5] * 4,
+    )
+    project.store.add_model_version(
+        kind="head",
+        name="tiny-adapted",
+        encoder_version=record.encoder_version,
+        checkpoint="models/tiny-adapted.pt",
+    )
+    return record.encoder_version
+
+
+def test_a_head_on_an_adapted_encoder_is_proposed_on_the_cluster_as_here(
+    tmp_path, images, cluster
+):
+    local = make_project(tmp_path / "local", images[:2], cache=tmp_path / "cache-local")
+    remote = make_project(tmp_path / "remote", images[:2], cache=tmp_path / "cache-remote")
+    try:
+        version = add_adapted_encoder_and_head(local)
+        assert add_adapted_encoder_and_head(remote) == version and "-ssl-" in version
+        want = propose(local)
+        assert (want.mode, want.proposed) == ("head", 12)
+        got = propose(remote, cluster=cluster)
+        assert (got.mode, got.proposed, got.cache_misses) == ("head", 12, 12)
+        same_as(stored(remote), stored(local))
+        # the workers cached the features under the adapted version, never the ImageNet one
+        assert {p.name for p in (tmp_path / "cache-remote").iterdir() if p.is_dir()} == {version}
+    finally:
+        local.close()
+        remote.close()
+
