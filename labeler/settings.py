@@ -24,15 +24,16 @@ Sections and options (defaults in brackets):
     ``min_object_px`` [24] vegetation specks smaller than this are dropped.
 ``[model]``
     ``mc_samples`` [8] MC-dropout passes for uncertainty; ``seed`` [0]; ``epochs`` [40]
-    upper bound, early stopping decides; ``batch_size`` [8]; ``min_labelled_tiles`` [3]
-    fewest labelled tiles ``retrain`` accepts; ``val_share`` [0.2] held-out slice for early
-    stopping; ``threads`` [0] torch threads (0 = the free cores); ``augment`` ["auto"]
+    upper bound, the step budget decides; ``batch_size`` [4] tiles per optimiser step;
+    ``min_labelled_tiles`` [3] fewest labelled tiles ``retrain`` accepts; ``val_share``
+    [0.2] held-out slice whose IoU ``retrain`` reports; ``threads`` [0] torch threads (0 = the free cores); ``augment`` ["auto"]
     how ``retrain`` augments: ``"turns"`` the flips and quarter turns of each labelled
     tile, encoded once and cached (exact, fast), ``"images"`` flips, turns and
     colour-jitters the tiles and passes them through the encoder every step (slow),
     ``"features"`` turns the cached features (approximate), ``"auto"`` turns;
-    ``patience`` [10] epochs without a lower validation loss before training stops (a
-    few labelled tiles give a noisy validation loss); ``finetune_stages`` [0] encoder
+    ``patience`` [10] epochs without a lower validation loss before training stops, when
+    early stopping is asked for (``retrain`` keeps the state at the end of the step
+    budget: a few labelled tiles give too noisy a validation loss to choose by); ``finetune_stages`` [0] encoder
     stages trained with the head on the project's labels: 0 (frozen encoder), 2 or 4
     (the last stages, at a tenth of the head's learning rate; a new encoder version).
 ``[picker]``
@@ -181,7 +182,7 @@ class ModelSettings(Checked):
     mc_samples: int = 8
     seed: int = 0
     epochs: int = 40
-    batch_size: int = 8
+    batch_size: int = 4
     min_labelled_tiles: int = 3
     val_share: float = 0.2
     threads: int = 0
@@ -534,11 +535,11 @@ min_object_px = 24
 mc_samples = 8
 seed = 0
 epochs = 40
-batch_size = 8
+batch_size = 4
 min_labelled_tiles = 3
 val_share = 0.2
 augment = "auto"          # "auto", "turns" (exact, cached), "images" (slow) or "features"
-patience = 10             # epochs without a lower validation loss before stopping
+patience = 10             # early stopping only; retrain keeps the state at the budget's end
 finetune_stages = 0       # encoder stages trained with the head: 0, 2 or 4
 
 [picker]

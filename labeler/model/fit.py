@@ -70,7 +70,8 @@ def fit_head(
         Passed on to :func:`~labeler.model.train.train_head` (``steps``, ``crop``,
         ``finetune_stages``, ...); ``crop`` defaults to
         :data:`~labeler.model.crop.CROP_SIZE` (the full-resolution losses on a random
-        128 x 128 window of each batch).
+        128 x 128 window of each batch) and ``keep`` to ``"last"`` (the state at the end
+        of the step budget; the validation slice is only reported).
 
     Returns
     -------
@@ -88,6 +89,7 @@ def fit_head(
         codes = choose_turns(turns_per_tile(len(masks)), rng)
     turned = turned_features(cache, encoder, keys, images, codes, progress=encode_progress)
     options.setdefault("crop", CROP_SIZE)
+    options.setdefault("keep", "last")
     given = {"turned": turned} if use_turns else {"features": [t[0] for t in turned]}
     return train_head(
         masks,

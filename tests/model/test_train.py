@@ -160,6 +160,27 @@ def test_without_validation_every_epoch_runs_and_the_last_is_kept(tiles, monkeyp
         torch.testing.assert_close(res.head.state_dict()[name], value, rtol=0, atol=0)
 
 
+def test_keep_last_runs_every_epoch_and_keeps_the_last_state(tiles, monkeypatch):
+    images, masks, feats = tiles
+    # the same scripted losses as above: patience 1 would stop at epoch 3 and keep epoch 2
+    losses = [1.0, 0.8, 0.9, 0.85, 0.7, 0.75, 0.76, 0.77, 0.6, 0.5]
+    states = _scripted_validation(monkeypatch, losses[:6] + [0.9])
+    s = ModelSettings(epochs=7, batch_size=2, val_share=0.34, seed=0)
+    res = fit(
+        masks,
+        class_indices=(0, 1),
+        features=feats,
+        settings=s,
+        mode="features",
+        patience=1,
+        keep="last",
+    )
+    assert len(res.history) == len(states) == 7 and res.best_epoch == 7
+    assert [h["val_loss"] for h in res.history] == losses[:6] + [0.9]
+    for name, value in states[-1].items():
+        torch.testing.assert_close(res.head.state_dict()[name], value, rtol=0, atol=0)
+
+
 def test_real_validation_losses_follow_the_rule(tiles):
     images, masks, feats = tiles
     s = ModelSettings(epochs=12, batch_size=2, val_share=0.34, seed=0)
@@ -204,6 +225,7 @@ def test_learns_the_invented_disk_scene(tiles):
         ),
         ({"mode": "images"}, "mode: 'images' needs both images and encoder"),
         ({"patience": 0}, "patience: expected at least 1 epoch, got 0"),
+        ({"keep": "first"}, "keep: expected 'best' or 'last', got 'first'"),
         ({"min_steps_per_epoch": 0}, "min_steps_per_epoch: expected at least 1, got 0"),
         ({"class_indices": (0, 2)}, r"masks: tile 0 holds values \[1\] that are not head classes"),
     ],
