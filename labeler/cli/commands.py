@@ -556,7 +556,7 @@ def cmd_retrain(args) -> int:
     mv = result.model_version
     print(
         f"trained {mv.name} on {result.n_full} full masks and {result.n_weak} weak labels "
-        f"({result.n_train} training, {result.n_val} validation tiles; best epoch {result.best_epoch})"
+        f"({result.n_train} training, {result.n_val} validation tiles; weights of epoch {result.best_epoch} kept)"
     )
     print(f"validation IoU: {format_iou(mv.val_iou, miou=mv.miou)}")
     tuned = f"; encoder stages tuned: {result.tuned_stages}" if result.tuned_stages else ""

@@ -91,5 +91,5 @@ def model_details(version: ModelVersionRecord) -> str:
     if version.encoder_version:
         text += f", encoder {version.encoder_version}"
     if d.get("best_epoch") is not None:
-        text += f", best epoch {d['best_epoch']}"
+        text += f", weights of epoch {d['best_epoch']}"
     return text
