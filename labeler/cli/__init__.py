@@ -1,6 +1,6 @@
 """The ``labeler`` command: parses arguments, calls :mod:`labeler.workflow`, prints.
 
-:mod:`labeler.cli.arguments` builds the parser, :mod:`labeler.cli.commands` holds one
+:mod:`labeler.cli.arguments` builds the parser, :mod:`labeler.cli.commands` (and :mod:`labeler.cli.team`) hold one
 function per command, :mod:`labeler.cli.boundary` turns whatever goes wrong into one line.
 Exit codes: 0 success; 1 an error (one clear line on stderr; the traceback only with
 ``labeler --debug``); 2 a usage error; 130 interrupted.

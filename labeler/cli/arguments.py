@@ -13,16 +13,13 @@ from labeler.cli.commands import (
     cmd_edit,
     cmd_export,
     cmd_import,
-    cmd_init,
-    cmd_join,
     cmd_pick,
     cmd_propose,
     cmd_queue,
-    cmd_release,
     cmd_retrain,
     cmd_status,
-    cmd_upgrade,
 )
+from labeler.cli.team import cmd_init, cmd_join, cmd_release, cmd_upgrade
 from labeler.settings import STRATEGIES
 
 __all__ = ["EPILOG", "build_parser"]
