@@ -18,7 +18,12 @@ from labeler.errors import LabelerError
 from labeler.imagery.read import open_image
 from labeler.project import Project
 from labeler.store.records import ModelVersionRecord
-from labeler.workflow.features import encoder_and_cache, read_checkpoint, tile_features
+from labeler.workflow.features import (
+    encoder_and_cache,
+    head_encoder,
+    read_checkpoint,
+    tile_features,
+)
 
 __all__ = ["newest_head", "TileRelearner", "tile_relearner"]
 
@@ -80,6 +85,8 @@ class TileRelearner:
 def tile_relearner(project: Project, tile_id: int) -> TileRelearner | None:
     """The on-tile re-fit of ``tile_id`` with the newest head, or None without a head.
 
+    The tile's features come from the encoder version the head was trained on.
+
     Parameters
     ----------
     project : Project
@@ -96,7 +103,14 @@ def tile_relearner(project: Project, tile_id: int) -> TileRelearner | None:
     LabelerError
         As :func:`newest_head`.
     """
-    encoder, cache = encoder_and_cache(project)
+    latest = project.store.latest_model_version(kind="head")
+    if latest is None:
+        return None
+    # the head's own encoder version, as propose reads it: a newer adapted encoder
+    # (labeler adapt) or a head trained with --encoder on an older one still works here
+    encoder, cache = encoder_and_cache(
+        project, encoder=head_encoder(latest), unknown_is_default=True
+    )
     found = newest_head(project, encoder_version=encoder.version)
     if found is None:
         return None

@@ -70,3 +70,26 @@ def overlap_project(tmp_path, project_store):
     p = _small_project(tmp_path, "[agreement]\noverlap_share = 1.0\nthreshold = 0.6\n")
     yield p
     p.close()
+
+
+def adapted_encoder_version(project, *, seed: int = 3):
+    """An adapted encoder version stored in ``project``: the ImageNet weights with seeded
+    small changes (common practice, no source: a stand-in for ``labeler adapt``'s output).
+    Returns its model version record."""
+    import torch
+
+    from labeler.model.adapted import trainable_encoder
+    from labeler.workflow.encoders import save_encoder_version
+
+    base = trainable_encoder()
+    generator = torch.Generator().manual_seed(seed)
+    state = {
+        k: v + 0.05 * v.std() * torch.randn(v.shape, generator=generator)
+        if v.is_floating_point() and v.numel() > 1 and "running_var" not in k
+        else v
+        for k, v in base.state_dict().items()
+    }
+    return save_encoder_version(
+        project, state, base_version=base.version, root_version=base.version, details={}
+    )
+

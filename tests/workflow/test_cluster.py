@@ -347,22 +347,11 @@ def add_adapted_encoder_and_head(project) -> str:
     head trained on it, stored as the newest versions; returns the encoder version."""
     import torch
 
-    from labeler.model.adapted import trainable_encoder
     from labeler.model.checkpoint import save_checkpoint
     from labeler.model.head import HeadConfig, ProposalHead
-    from labeler.workflow.encoders import save_encoder_version
+    from tests.workflow.conftest import adapted_encoder_version
 
-    base = trainable_encoder()
-    generator = torch.Generator().manual_seed(3)
-    state = {
-        k: v + 0.05 * v.std() * torch.randn(v.shape, generator=generator)
-        if v.is_floating_point() and v.numel() > 1 and "running_var" not in k
-        else v
-        for k, v in base.state_dict().items()
-    }
-    record = save_encoder_version(
-        project, state, base_version=base.version, root_version=base.version, details={}
-    )
+    record = adapted_encoder_version(project)
     torch.manual_seed(5)
     head = ProposalHead(HeadConfig(width=8, refine_channels=4)).eval()
     save_checkpoint(

@@ -17,7 +17,7 @@ from labeler.states import KIND_FULL, KIND_WEAK
 from labeler.workflow import save_tile_mask
 from labeler.workflow.editing import StoreBackend
 from labeler.workflow.retraining import labelled_tiles, retrain
-from tests.workflow.conftest import _small_project
+from tests.workflow.conftest import _small_project, adapted_encoder_version
 
 
 @pytest.fixture
@@ -81,3 +81,22 @@ def test_relearn_with_the_newest_head_and_the_hints_in_the_next_retrain(quick_pr
     assert kinds[t.id] == KIND_WEAK and list(kinds.values()).count(KIND_FULL) == 3
     second = retrain(project)
     assert second.n_weak == 1 and second.n_full == 3
+
+
+def test_relearn_reads_the_heads_own_encoder_when_a_newer_one_was_adapted(quick_project):
+    # a head trained on the ImageNet encoder, then a newer adapted encoder version: the
+    # re-fit still uses the head's encoder (before, it refused with "run labeler retrain")
+    project = quick_project
+    tiles = project.store.tiles()
+    rng = np.random.default_rng(6)
+    for t in tiles[:3]:
+        save_tile_mask(project, t.id, "ines", rng.integers(0, 3, t.shape).astype(np.uint8),
+                       parent_version=None)
+    first = retrain(project)
+    adapted = adapted_encoder_version(project)
+    assert adapted.encoder_version != first.model_version.encoder_version
+    t = tiles[4]
+    backend = StoreBackend(project, t.id, "ines", parent_version=None, proposal_id=None)
+    out = backend.relearn(_weak(t.shape, np.s_[10:14, 10:60], 2))
+    assert out.shape == t.shape and out.dtype == np.uint8
+    assert backend._relearner.model == first.model_version.name
