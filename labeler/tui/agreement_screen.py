@@ -82,10 +82,8 @@ class AgreementScreen(Screen):
     def _apply(self, summary, contested) -> None:
         schema = self.app.project.settings.classes
         self.summary, self.contested = summary, list(contested)
-        pairs = self.query_one("#pair-table", DataTable)
-        pairs.clear()
-        for cells in agreement_cells(summary, schema=schema):
-            pairs.add_row(*cells)
+        _fill(self.query_one("#pair-table", DataTable), AGREEMENT_COLUMNS,
+              list(agreement_cells(summary, schema=schema)))
         note = self.query_one("#agreement-note", Static)
         if summary.pairs:
             ov = summary.overall
@@ -99,10 +97,9 @@ class AgreementScreen(Screen):
                 "no annotator pair yet: agreement needs two annotators' masks of the same "
                 "tiles (overlap tiles)"
             )
-        table = self.query_one("#contested-table", DataTable)
-        table.clear()
-        for row in self.contested:
-            table.add_row(*contested_cells(row), key=str(row.tile_id))
+        _fill(self.query_one("#contested-table", DataTable), CONTESTED_COLUMNS,
+              [contested_cells(row) for row in self.contested],
+              keys=[str(row.tile_id) for row in self.contested])
         self.loads += 1
 
     def selected_contested(self) -> int | None:
@@ -136,3 +133,16 @@ class AgreementScreen(Screen):
     @on(Button.Pressed, "#back")
     def _back_pressed(self) -> None:
         self.action_back()
+
+
+def _fill(table: DataTable, headers, rows, *, keys=None) -> None:
+    """Put ``rows`` in ``table`` under ``headers`` with each column as wide as its widest
+    cell: explicit widths, so a table filled from a worker never shows cells cut to the
+    header's width while its automatic widths wait for an idle frame."""
+    rows = [tuple(str(c) for c in r) for r in rows]
+    widths = [max([len(str(h))] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
+    table.clear(columns=True)
+    for header, width in zip(headers, widths, strict=True):
+        table.add_column(header, width=width)
+    for i, cells in enumerate(rows):
+        table.add_row(*cells, key=None if keys is None else keys[i])
