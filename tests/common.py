@@ -19,6 +19,7 @@ __all__ = [
     "PEANUT",
     "SOYBEAN",
     "require_dataset",
+    "start_together",
     "zoo_empty",
     "zoo_full",
     "zoo_square",
@@ -49,6 +50,21 @@ def require_dataset(folder: Path) -> Path:
             "the open datasets (README, 'Data and licences')"
         )
     return folder
+
+
+def start_together(procs, *, timeout: float) -> list[tuple[str, str]]:
+    """Line child processes up by pipes, then let them go at once (no sleeps).
+
+    Each child prints ``ready`` when it is set up and waits for ``go`` on its stdin;
+    returns each one's ``(stdout, stderr)`` after it ends (``timeout`` seconds each).
+    """
+    for p in procs:
+        line = p.stdout.readline()
+        assert line == "ready\n", (line, p.stderr.read())
+    for p in procs:
+        p.stdin.write("go\n")
+        p.stdin.flush()
+    return [p.communicate(timeout=timeout) for p in procs]
 
 
 def zoo_empty(shape: tuple[int, int] = (8, 8)) -> np.ndarray:

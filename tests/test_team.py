@@ -15,7 +15,7 @@ import pytest
 from labeler.cli import main
 from labeler.errors import ConflictError, LabelerError
 from labeler.project import init_project, join_project, open_project
-from tests.common import REPO
+from tests.common import REPO, start_together
 
 
 @pytest.fixture
@@ -177,13 +177,7 @@ def _together(jobs):
             ))
             for script, args in jobs
         ]
-        for p in procs:
-            line = p.stdout.readline()
-            assert line == "ready\n", (line, p.stderr.read())
-        for p in procs:
-            p.stdin.write("go\n")
-            p.stdin.flush()
-        outs = [p.communicate(timeout=600) for p in procs]
+        outs = start_together(procs, timeout=600)
     assert [p.returncode for p in procs] == [0] * len(procs), outs
     return [[line.split() for line in out.splitlines()] for out, _ in outs]
 

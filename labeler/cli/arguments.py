@@ -59,13 +59,7 @@ def build_parser() -> argparse.ArgumentParser:
         help="keep the project in this database (postgresql+psycopg://user@server/db, "
         "empty) so a team can share it; default labeler.db in DIR",
     )
-    p.add_argument(
-        "--image-root",
-        dest="image_root",
-        metavar="FOLDER",
-        help="the team's shared image folder as this machine mounts it (store.image_root): "
-        "added images are kept there under their SHA-256 and found by every machine",
-    )
+    _add_image_root(p)
     p.set_defaults(func=cmd_init)
 
     p = sub.add_parser(
@@ -79,13 +73,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument(
         "--store", dest="store_url", metavar="URL", required=True, help="the project's database URL"
     )
-    p.add_argument(
-        "--image-root",
-        dest="image_root",
-        metavar="FOLDER",
-        help="the team's shared image folder as this machine mounts it (store.image_root): "
-        "added images are kept there under their SHA-256 and found by every machine",
-    )
+    _add_image_root(p)
     p.set_defaults(func=cmd_join)
 
     p = sub.add_parser(
@@ -441,4 +429,15 @@ def _cluster_option(p: argparse.ArgumentParser) -> None:
         help="send the work to the workers of a running Dask scheduler, e.g. "
         "tcp://10.0.0.5:8786 (default: the cluster.address setting; none: work here); "
         "needs pip install 'labeler[cluster]'",
+    )
+
+
+def _add_image_root(p: argparse.ArgumentParser) -> None:
+    """The ``--image-root`` option of ``init`` and ``join``."""
+    p.add_argument(
+        "--image-root",
+        dest="image_root",
+        metavar="FOLDER",
+        help="the team's shared image folder as this machine mounts it (store.image_root): "
+        "added images are kept there under their SHA-256 and found by every machine",
     )

@@ -159,6 +159,11 @@ def load_encoder_weights(path: str | os.PathLike[str]) -> EncoderWeights:
         fix="run 'labeler adapt' again to write a new one",
         version_fix="run 'labeler adapt' again",
     )
+    return _encoder_weights(obj, source=str(p))
+
+
+def _encoder_weights(obj: dict, *, source: str) -> EncoderWeights:
+    """The :class:`EncoderWeights` of a read encoder file; ``source`` names it in errors."""
     try:
         return EncoderWeights(
             version=str(obj["version"]),
@@ -167,7 +172,7 @@ def load_encoder_weights(path: str | os.PathLike[str]) -> EncoderWeights:
             details=dict(obj.get("details") or {}),
         )
     except (KeyError, TypeError, ValueError) as exc:
-        raise ValueError(f"{p}: damaged encoder file ({type(exc).__name__}: {exc})") from None
+        raise ValueError(f"{source}: damaged encoder file ({type(exc).__name__}: {exc})") from None
 
 
 def encoder_weights_from_bytes(data: bytes, *, source: str) -> EncoderWeights:
@@ -210,15 +215,7 @@ def encoder_weights_from_bytes(data: bytes, *, source: str) -> EncoderWeights:
             f"{source}: encoder file format {obj.get('format_version')!r}, this labeler reads "
             f"{_FORMAT_VERSION}; install the same labeler version everywhere"
         )
-    try:
-        weights = EncoderWeights(
-            version=str(obj["version"]),
-            base_version=str(obj["base_version"]),
-            state_dict=dict(obj["state_dict"]),
-            details=dict(obj.get("details") or {}),
-        )
-    except (KeyError, TypeError, ValueError) as exc:
-        raise ValueError(f"{source}: damaged encoder file ({type(exc).__name__}: {exc})") from None
+    weights = _encoder_weights(obj, source=source)
     digest = adapted_version(weights.version, weights.state_dict)
     if digest != weights.version:
         raise ValueError(

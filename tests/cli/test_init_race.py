@@ -15,7 +15,7 @@ import sqlalchemy as sa
 
 from labeler.store import Store
 from tests.cli.conftest import one_error_line
-from tests.common import REPO
+from tests.common import REPO, start_together
 
 INIT = textwrap.dedent(
     """
@@ -47,13 +47,8 @@ def test_two_inits_on_one_empty_database_make_one_project(store_url, tmp_path):
             ))
             for folder in folders
         ]
-        for p in procs:  # both imported and waiting before either starts
-            line = p.stdout.readline()
-            assert line == "ready\n", (line, p.stderr.read())
-        for p in procs:
-            p.stdin.write("go\n")
-            p.stdin.flush()
-        outs = [p.communicate(timeout=120) for p in procs]
+        # both imported and waiting before either starts
+        outs = start_together(procs, timeout=120)
     codes = [p.returncode for p in procs]
     assert sorted(codes) == [0, 1], outs
     loser = codes.index(1)

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 from labeler.store import Store
-from tests.common import REPO
+from tests.common import REPO, start_together
 from tests.store.conftest import make_store
 
 WRITER = textwrap.dedent(
@@ -126,13 +126,7 @@ def test_two_processes_same_parent_exactly_one_wins(store_url):
             for name, v in (("ines", 1), ("tomas", 2))
         ]
         # both have read their parent (none) before either may save: lined up by pipes
-        for p in procs:
-            line = p.stdout.readline()
-            assert line == "ready\n", (line, p.stderr.read())
-        for p in procs:
-            p.stdin.write("go\n")
-            p.stdin.flush()
-        outs = [p.communicate(timeout=60) for p in procs]
+        outs = start_together(procs, timeout=60)
     assert [p.returncode for p in procs] == [0, 0], outs
     results = [o[0].split()[0] for o in outs]
     assert sorted(results) == ["conflict", "saved"], outs
