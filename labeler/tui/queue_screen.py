@@ -35,6 +35,7 @@ from labeler.tui.rows import (
     fit_columns,
     preview_caption,
     queue_cells,
+    ranking_notes,
 )
 from labeler.tui.widgets import TilePreview, WorkBar, palette_legend
 from labeler.workflow.annotating import QueueRow
@@ -113,8 +114,7 @@ class QueueScreen(Screen):
 
     def _refit(self) -> None:
         table = self.query_one("#queue", DataTable)
-        cells = [queue_cells(r, schema=self.schema) for r in self.shown_rows]
-        keep = fit_columns(cells, width=table.size.width - 2)
+        keep = fit_columns(self._cells(), width=table.size.width - 2)
         if tuple(QUEUE_COLUMNS[k] for k in keep) != self.columns:
             self._refill()
 
@@ -193,11 +193,19 @@ class QueueScreen(Screen):
         self.loads += 1
         self._refill(select=select, force_preview=True)
 
+    def _cells(self) -> list[tuple[str, ...]]:
+        """Cell texts of the shown rows ("ranked by" judged on the whole queue)."""
+        notes = ranking_notes(self.rows)
+        return [
+            queue_cells(r, schema=self.schema, ranked_by=notes.get(r.tile_id))
+            for r in self.shown_rows
+        ]
+
     def _refill(self, *, select: int | None = None, force_preview: bool = False) -> None:
         table = self.query_one("#queue", DataTable)
         keep = select if select is not None else self.selected_tile()
         self.shown_rows = filter_rows(self.rows, self.row_filter, schema=self.schema)
-        cells = [queue_cells(r, schema=self.schema) for r in self.shown_rows]
+        cells = self._cells()
         shown = fit_columns(cells, width=table.size.width - 2)  # less the scroll bar
         columns = tuple(QUEUE_COLUMNS[k] for k in shown)
         if columns != self.columns:  # narrower or wider than before: other columns

@@ -26,6 +26,8 @@ __all__ = [
     "format_number",
     "format_who",
     "queue_cells",
+    "DISAGREE",
+    "ranking_notes",
     "DROP_ORDER",
     "fit_columns",
     "preview_caption",
@@ -40,12 +42,12 @@ QUEUE_COLUMNS = (
     "who",
     "predicted",
     "agreement",
-    "score",
+    "ranked by",
     "reason",
 )
 
 #: Columns left out first when the table is too narrow; tile, state and reason always stay.
-DROP_ORDER = ("agreement", "predicted", "image", "who", "score", "rank")
+DROP_ORDER = ("agreement", "predicted", "image", "who", "ranked by", "rank")
 #: Columns of a table cell beyond its text (one space each side).
 CELL_PADDING = 2
 
@@ -285,7 +287,60 @@ def format_who(row: QueueRow) -> str:
     return " ".join(parts)
 
 
-def queue_cells(row: QueueRow, *, schema: ClassSchema) -> tuple[str, ...]:
+#: The picker's reason for a contested tile (contested tiles come first in the queue).
+DISAGREE = "annotators disagree"
+
+
+def _falls(scores: Sequence[float]) -> bool:
+    """True if ``scores`` never rise from one to the next (NaN counts as a rise)."""
+    return all(b <= a for a, b in zip(scores, scores[1:]))
+
+
+def ranking_notes(rows: Iterable[QueueRow]) -> dict[int, str]:
+    """What each picked tile's rank follows: the "ranked by" cell of the queue.
+
+    The picker's queue has three parts, in this order: contested tiles (reason
+    :data:`DISAGREE`, ranked by their disagreement ``1 - agreement``), the batch, and the
+    other candidates. A part whose scores fall (or stay equal) from rank to rank is ranked
+    by its score, and the cell is that score. A part whose scores rise somewhere was
+    ranked by the order of picking -- a spread batch picks each tile unlike the tiles
+    picked before it, weighing its score by that distance -- and each cell starts with
+    the tile's place in that order: ``"pick 2 · 25.480"``. Contested tiles read
+    ``"disagree 0.420"``. So no cell claims an order its figures do not follow.
+
+    Parameters
+    ----------
+    rows : iterable of QueueRow
+        The whole queue (not a filtered part of it: the parts are judged on every rank).
+
+    Returns
+    -------
+    dict of int to str
+        Tile id -> cell text, for the tiles with a rank and a score.
+    """
+    ranked = sorted((r for r in rows if r.rank is not None and r.score is not None),
+                    key=lambda r: r.rank)
+    parts: dict[str, list[QueueRow]] = {"contested": [], "batch": [], "rest": []}
+    for r in ranked:
+        part = "contested" if r.reason == DISAGREE else ("batch" if r.in_batch else "rest")
+        parts[part].append(r)
+    notes: dict[int, str] = {}
+    for part, members in parts.items():
+        by_score = _falls([float(r.score) for r in members])
+        for place, r in enumerate(members, start=1):
+            figure = format_number(r.score)
+            if part == "contested":
+                notes[r.tile_id] = f"disagree {figure}"
+            elif by_score:
+                notes[r.tile_id] = figure
+            else:
+                notes[r.tile_id] = f"pick {place} \u00b7 {figure}"
+    return notes
+
+
+def queue_cells(
+    row: QueueRow, *, schema: ClassSchema, ranked_by: str | None = None
+) -> tuple[str, ...]:
     """The texts of one table row, in :data:`QUEUE_COLUMNS` order.
 
     The rank is counted from 1 (``"-"``: not picked yet); the agreement column is empty
@@ -298,11 +353,14 @@ def queue_cells(row: QueueRow, *, schema: ClassSchema) -> tuple[str, ...]:
         One tile of the queue.
     schema : ClassSchema
         The project's classes (for the predicted class shares).
+    ranked_by : str, optional
+        The "ranked by" cell (:func:`ranking_notes` over the whole queue); default: the
+        picker's score alone.
 
     Returns
     -------
     tuple of str
-        Rank, tile, image, state, who, class shares, agreement, score, reason.
+        Rank, tile, image, state, who, class shares, agreement, ranked by, reason.
     """
     agreement = format_number(row.agreement) if row.overlap else ""
     if row.overlap and row.agreement is None:
@@ -315,7 +373,7 @@ def queue_cells(row: QueueRow, *, schema: ClassSchema) -> tuple[str, ...]:
         format_who(row),
         format_shares(row.class_fractions, schema=schema),
         agreement,
-        format_number(row.score),
+        format_number(row.score) if ranked_by is None else ranked_by,
         row.reason or "",
     )
 

@@ -402,3 +402,26 @@ async def test_preview_zooms_to_full_resolution_and_centres_on_a_click(project):
         await idle(pilot)
         assert preview.zoom == 1 and preview.shown_window == (0, h, 0, w)
         assert screen.query_one("#side").border_subtitle == ""
+
+
+async def test_ranked_by_column_shows_what_the_rank_follows(project):
+    from labeler.tui.rows import ranking_notes
+
+    fake_proposals(project)
+    pick_tiles(project, seed=0)
+    app = QueueApp(project, annotator="ana")
+    async with app.run_test(size=SIZE) as pilot:
+        await idle(pilot)
+        screen = app.screen
+        table = screen.query_one("#queue", DataTable)
+        col = screen.columns.index("ranked by")
+        shown = [str(table.get_row_at(i)[col]) for i in range(table.row_count)]
+        rows = queue_rows(project)
+        notes = ranking_notes(rows)
+        assert shown == [notes.get(r.tile_id, "-") for r in rows]
+        # the plain figures of each part of the queue never rise with rank
+        for part in (True, False):
+            texts = [notes[r.tile_id] for r in rows if r.rank is not None and r.in_batch == part]
+            if texts and not texts[0].startswith(("pick", "disagree")):
+                values = [float(t) for t in texts]
+                assert values == sorted(values, reverse=True)

@@ -15,17 +15,19 @@ from labeler.tui.rows import (
     keep_row,
     preview_caption,
     queue_cells,
+    ranking_notes,
 )
 from labeler.workflow.annotating import QueueRow
 from labeler.workflow.views import TileView
 
 
 def _row(tile_id, *, state="proposed", fractions=(0.52, 0.41, 0.07, 0.0), held_by=None,
-         saved_by=(), overlap=False, agreement=None, rank=0, score=0.5, reason="uncertain"):
+         saved_by=(), overlap=False, agreement=None, rank=0, score=0.5, reason="uncertain",
+         in_batch=True):
     return QueueRow(
         rank=rank, tile_id=tile_id, image="north-strip", row=0, col=224, score=score,
         reason=reason, class_fractions=fractions, state=state, held_by=held_by,
-        saved_by=tuple(saved_by), overlap=overlap, agreement=agreement, in_batch=True,
+        saved_by=tuple(saved_by), overlap=overlap, agreement=agreement, in_batch=in_batch,
     )
 
 
@@ -121,11 +123,65 @@ def test_fit_columns_drops_the_least_needed_first():
 
     row = ("12", "345", "brackenlow-north", "contested", "ana bo", "crop 40% weed 3%",
            "0.412", "17.07", "unlike labelled tiles")
-    # by hand: needs are max(heading, cell) + 2 = 6, 6, 18, 11, 8, 18, 11, 7, 23 = 108
-    assert fit_columns([row], width=108) == tuple(range(9))
-    assert fit_columns([row], width=107) == (0, 1, 2, 3, 4, 5, 7, 8)  # agreement goes
-    assert fit_columns([row], width=96) == (0, 1, 2, 3, 4, 7, 8)  # then predicted (97)
+    # by hand: needs are max(heading, cell) + 2 = 6, 6, 18, 11, 8, 18, 11, 11, 23 = 112
+    # ("ranked by" is wider than its cell here)
+    assert fit_columns([row], width=112) == tuple(range(9))
+    assert fit_columns([row], width=111) == (0, 1, 2, 3, 4, 5, 7, 8)  # agreement goes
+    assert fit_columns([row], width=100) == (0, 1, 2, 3, 4, 7, 8)  # then predicted (101)
     assert fit_columns([row], width=0) == tuple(range(9))  # not laid out yet
     # the narrowest: tile, state and reason stay whatever the width
     assert fit_columns([row], width=10) == (1, 3, 8)
     assert DROP_ORDER[0] == "agreement" and CELL_PADDING == 2
+
+
+def test_ranking_notes_say_what_each_part_of_the_queue_is_ranked_by():
+    # hand-made queue of the three parts the picker writes: two contested tiles (score
+    # 1 - agreement, falling), a spread batch whose scores rise at rank 4 (17.07 then
+    # 25.48, as a weighted spread pick can order them), and candidates after the batch by
+    # score; a tile outside the pick has no note
+    rows = [
+        _row(11, rank=0, score=0.7, reason="annotators disagree"),
+        _row(12, rank=1, score=0.45, reason="annotators disagree"),
+        _row(13, rank=2, score=17.07, reason="rare class"),
+        _row(14, rank=3, score=25.48, reason="unlike labelled tiles"),
+        _row(15, rank=4, score=9.5, in_batch=False),
+        _row(16, rank=5, score=9.5, in_batch=False),
+        _row(17, rank=None, score=None, reason=None, in_batch=False),
+    ]
+    notes = ranking_notes(reversed(rows))  # the order given does not matter: ranks do
+    assert notes == {
+        11: "disagree 0.700",
+        12: "disagree 0.450",
+        13: "pick 1 \u00b7 17.070",
+        14: "pick 2 \u00b7 25.480",
+        15: "9.500",
+        16: "9.500",  # ties fall "or stay equal": still ranked by score
+    }
+    cells = queue_cells(rows[3], schema=DEFAULT_SCHEMA, ranked_by=notes[14])
+    assert cells[QUEUE_COLUMNS.index("ranked by")] == "pick 2 \u00b7 25.480"
+    assert queue_cells(rows[6], schema=DEFAULT_SCHEMA)[QUEUE_COLUMNS.index("ranked by")] == "-"
+
+
+def test_ranking_notes_of_a_batch_ranked_by_its_score_are_the_scores():
+    rows = [_row(i, rank=i, score=s) for i, s in enumerate((0.91, 0.9, 0.9, 0.2))]
+    assert ranking_notes(rows) == {0: "0.910", 1: "0.900", 2: "0.900", 3: "0.200"}
+
+
+def test_ranking_notes_never_show_plain_scores_that_rise_with_rank():
+    # property over many random queues: within each part, the plain-number cells fall
+    rng = np.random.default_rng(3)
+    for _ in range(200):
+        n = int(rng.integers(1, 9))
+        scores = rng.choice([0.1, 0.5, 2.0, 7.5], size=n)
+        batch = rng.random(n) < 0.5
+        rows = [_row(i, rank=i, score=float(s), in_batch=bool(b))
+                for i, (s, b) in enumerate(zip(scores, batch, strict=True))]
+        notes = ranking_notes(rows)
+        for part in (True, False):
+            texts = [notes[r.tile_id] for r in rows if r.in_batch == part]
+            if texts and not texts[0].startswith("pick"):
+                values = [float(t) for t in texts]
+                assert values == sorted(values, reverse=True)
+            else:
+                assert [t.split(" ")[1] for t in texts] == [str(k) for k in
+                                                            range(1, len(texts) + 1)]
