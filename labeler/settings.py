@@ -51,6 +51,8 @@ Sections and options (defaults in brackets):
     a split block, in tiles.
 ``[editor]``
     ``autosave_seconds`` [5]; ``opacity`` [0.45].
+``[preview]``
+    ``graphics`` ["auto"] preview pictures: kitty, sixel, off (half blocks), auto (by TERM).
 ``[holds]``
     ``lease_minutes`` [30] a hold lapses after this long without a heartbeat from its
     editor (by the database's clock); ``heartbeat_seconds`` [60] how often an open
@@ -108,6 +110,7 @@ __all__ = [
     "AgreementSettings",
     "ExportSettings",
     "EditorSettings",
+    "PreviewSettings",
     "ClusterSettings",
     "Settings",
     "STRATEGIES",
@@ -246,6 +249,15 @@ class EditorSettings(Checked):
 
 
 @dataclass(frozen=True)
+class PreviewSettings(Checked):
+    _section = "preview"
+    graphics: str = "auto"
+
+    def _check(self) -> None:
+        check_choice("preview", "graphics", self.graphics, ("auto", "kitty", "sixel", "off"))
+
+
+@dataclass(frozen=True)
 class ClusterSettings(Checked):
     _section = "cluster"
     address: str = ""
@@ -269,6 +281,7 @@ _SECTIONS = {
     "agreement": AgreementSettings,
     "export": ExportSettings,
     "editor": EditorSettings,
+    "preview": PreviewSettings,
     "holds": HoldSettings,
     "cluster": ClusterSettings,
 }
@@ -291,6 +304,7 @@ class Settings:
     agreement: AgreementSettings = field(default_factory=AgreementSettings)
     export: ExportSettings = field(default_factory=ExportSettings)
     editor: EditorSettings = field(default_factory=EditorSettings)
+    preview: PreviewSettings = field(default_factory=PreviewSettings)
     holds: HoldSettings = field(default_factory=HoldSettings)
     cluster: ClusterSettings = field(default_factory=ClusterSettings)
     classes: ClassSchema = DEFAULT_SCHEMA
@@ -564,6 +578,9 @@ block_tiles = 4           # side of a train/val block, in tiles
 [editor]
 autosave_seconds = 5
 opacity = 0.45
+
+[preview]
+graphics = "auto"         # "kitty", "sixel", "off" (half blocks) or "auto" (from TERM)
 
 [holds]
 lease_minutes = 30        # a hold lapses after this long without a sign from its editor

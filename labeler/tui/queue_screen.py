@@ -104,6 +104,8 @@ class QueueScreen(Screen):
         table.add_columns(*QUEUE_COLUMNS)
         self.columns = tuple(QUEUE_COLUMNS)
         table.focus()
+        note = self.query_one(TilePreview).pick_graphics(self.project.settings.preview.graphics)
+        self.query_one("#side").border_title = note
         self.reload()
         self._holds_timer = self.set_interval(self.holds_every, self._check_holds, name="holds")
 
@@ -122,10 +124,12 @@ class QueueScreen(Screen):
         # another screen on top: no need to watch the holds until the queue shows again
         if self._holds_timer is not None:
             self._holds_timer.pause()
+        self.query_one(TilePreview).refresh()  # half blocks under a dialog
 
     def on_screen_resume(self) -> None:
         if self._holds_timer is not None:
             self._holds_timer.resume()
+        self.query_one(TilePreview).refresh()  # the picture again, if a protocol draws it
         # back from the agreement or model screen: a reviewer may have settled tiles there
         if self.loads:
             self.reload()

@@ -293,7 +293,7 @@ DISAGREE = "annotators disagree"
 
 def _falls(scores: Sequence[float]) -> bool:
     """True if ``scores`` never rise from one to the next (NaN counts as a rise)."""
-    return all(b <= a for a, b in zip(scores, scores[1:]))
+    return all(b <= a for a, b in zip(scores[:-1], scores[1:], strict=True))
 
 
 def ranking_notes(rows: Iterable[QueueRow]) -> dict[int, str]:

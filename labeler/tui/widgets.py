@@ -2,17 +2,39 @@
 
 from __future__ import annotations
 
+import math
+import os
+import sys
+from collections.abc import Mapping
+
 import numpy as np
+from rich.segment import Segment
 from rich.text import Text
 from textual import events
 from textual.app import ComposeResult
 from textual.containers import Horizontal
 from textual.message import Message
+from textual.strip import Strip
 from textual.widget import Widget
 from textual.widgets import Label, ProgressBar
 
 from labeler.classes import ClassSchema
-from labeler.tui.preview import ZOOM_LEVELS, fit_picture, half_block_text, zoom_picture
+from labeler.tui.graphics import (
+    cell_pixels,
+    choose_graphics,
+    fit_cells,
+    kitty_lines,
+    resize_nearest,
+    sixel_lines,
+)
+from labeler.tui.preview import (
+    ZOOM_LEVELS,
+    box_downsample,
+    fit_picture,
+    half_block_text,
+    zoom_picture,
+    zoom_window,
+)
 
 __all__ = ["TilePreview", "WorkBar", "palette_legend"]
 
@@ -43,8 +65,19 @@ def palette_legend(schema: ClassSchema) -> Text:
     return text
 
 
+#: Id of the preview's picture in a kitty-protocol terminal ("Lab" as 24-bit colour).
+PREVIEW_IMAGE_ID = 0x4C6162
+#: Cell size assumed where the terminal does not report it (pixels, width x height).
+ASSUMED_CELL_PX = (10, 20)
+
+
 class TilePreview(Widget):
-    """The selected tile with its mask overlay, drawn with half blocks, fitted to the widget.
+    """The selected tile with its mask overlay, fitted to the widget.
+
+    Drawn with half blocks (two pixels a cell) unless :meth:`use_graphics` chose a
+    picture protocol: then the tile's own pixels go to the terminal (kitty protocol or
+    sixels, :mod:`labeler.tui.graphics`) while this screen is the one on top; under a
+    dialog the half blocks come back.
 
     :meth:`show` takes the full-resolution picture (the tile with the overlay already
     blended, :func:`labeler.tui.preview.overlay`, done in a worker); every render fits it
@@ -71,6 +104,95 @@ class TilePreview(Widget):
         #: Tile rows and columns shown by the last render, ``(r0, r1, c0, c1)``.
         self.shown_window: tuple[int, int, int, int] | None = None
         self._picture_size: tuple[int, int] | None = None
+        #: Picture protocol: "off" (half blocks), "kitty" or "sixel".
+        self.graphics = "off"
+        self.cell_px: tuple[int, int] | None = None
+        self._graphics_cache: tuple[tuple, list[Strip]] | None = None
+        self._shown = 0  # counts the pictures shown (part of the graphics cache key)
+
+    def use_graphics(self, mode: str, *, cell_px: tuple[int, int] | None = None) -> None:
+        """Draw with ``mode`` from now on.
+
+        Parameters
+        ----------
+        mode : {"off", "kitty", "sixel"}
+            The protocol (:func:`labeler.tui.graphics.choose_graphics` decides it).
+        cell_px : (int, int), optional
+            ``(width, height)`` of a cell in pixels; sixels need it, kitty pictures are
+            sent at least :data:`ASSUMED_CELL_PX` per cell without it.
+
+        Raises
+        ------
+        ValueError
+            If ``mode`` is unknown, or sixels are asked for without ``cell_px``.
+        """
+        if mode not in ("off", "kitty", "sixel"):
+            raise ValueError(f"mode: expected off, kitty or sixel, got {mode!r}")
+        if mode == "sixel" and cell_px is None:
+            raise ValueError("cell_px: sixels need the cell size in pixels, got None")
+        self.graphics = mode
+        self.cell_px = cell_px
+        self._graphics_cache = None
+        self._cache = None
+        self.refresh()
+
+    def pick_graphics(
+        self,
+        setting: str,
+        environ: Mapping[str, str] | None = None,
+        *,
+        headless: bool | None = None,
+        truecolor: bool | None = None,
+        cell_px: tuple[int, int] | None = None,
+    ) -> str:
+        """Choose and use the protocol for ``setting`` and ``environ`` (no terminal query).
+
+        Parameters
+        ----------
+        setting : str
+            ``preview.graphics``.
+        environ : mapping of str to str, optional
+            The environment (default: the app's ``environ`` if it has one, else
+            ``os.environ``).
+        headless : bool, optional
+            No terminal: half blocks whatever the rest says (default: the app's
+            ``is_headless``, true under Pilot).
+        truecolor : bool, optional
+            The app writes 24-bit colours (default: from the app's console).
+        cell_px : (int, int), optional
+            Cell size in pixels; default: the kernel's window size of standard output
+            (:func:`~labeler.tui.graphics.cell_pixels`), unless headless.
+
+        Returns
+        -------
+        str
+            The note of :func:`~labeler.tui.graphics.choose_graphics`.
+        """
+        if environ is None:
+            environ = getattr(self.app, "environ", None)
+            environ = os.environ if environ is None else environ
+        headless = self.app.is_headless if headless is None else headless
+        if truecolor is None:
+            truecolor = self.app.console.color_system == "truecolor"
+        if cell_px is None and not headless and sys.__stdout__ is not None:
+            try:
+                cell_px = cell_pixels(sys.__stdout__.fileno())
+            except (OSError, ValueError):  # no file descriptor (captured output)
+                cell_px = None
+        mode, note = choose_graphics(setting, environ, headless=headless, cell_px=cell_px,
+                                     truecolor=truecolor)
+        self.use_graphics(mode, cell_px=cell_px if mode == "sixel" else None)
+        return note
+
+    @property
+    def drawing_graphics(self) -> bool:
+        """True while the picture goes to the terminal by protocol (not half blocks)."""
+        if self.graphics == "off" or self._rgb is None:
+            return False
+        try:
+            return bool(self.screen.is_active)
+        except Exception:  # noqa: BLE001 - not mounted on a screen
+            return False
 
     @property
     def zoom_note(self) -> str:
@@ -170,6 +292,7 @@ class TilePreview(Widget):
             self.centre = None
         self.tile_id = tile_id
         self._rgb = picture
+        self._shown += 1
         self._cache = None
         self.refresh()
 
@@ -189,10 +312,22 @@ class TilePreview(Widget):
         self._cache = None
         self.refresh()
 
+    def _window(self, size: tuple[int, int]) -> tuple[int, int, int, int]:
+        h, w = self._rgb.shape[:2]
+        if self.zoom == 1:
+            return (0, h, 0, w)
+        centre = self.centre if self.centre is not None else ((h - 1) / 2, (w - 1) / 2)
+        window, _ = zoom_window((h, w), zoom=self.zoom, centre=centre, cols=size[0],
+                                rows=size[1])
+        return window
+
     def render(self) -> Text:
         if self._rgb is None:
             return Text(self._message)
         size = (max(1, self.content_size.width), max(1, self.content_size.height))
+        if self.drawing_graphics:
+            self._graphics_strips(size)
+            return Text("")
         key = (size, self.zoom, self.centre)
         if self._cache is not None and self._cache[0] == key:
             return self._cache[1]
@@ -209,6 +344,48 @@ class TilePreview(Widget):
         text = half_block_text(picture)
         self._cache = (key, text)
         return text
+
+    def _graphics_strips(self, size: tuple[int, int]) -> list[Strip]:
+        """The preview's lines in the chosen protocol (cached per size, zoom and place)."""
+        region = self.content_region
+        key = (size, self.zoom, self.centre, self.graphics, self.cell_px, region.x, region.y,
+               self._shown)
+        if self._graphics_cache is not None and self._graphics_cache[0] == key:
+            return self._graphics_cache[1]
+        r0, r1, c0, c1 = self.shown_window = self._window(size)
+        part = self._rgb[r0:r1, c0:c1]
+        cell = self.cell_px or ASSUMED_CELL_PX
+        down, across = fit_cells(part.shape[:2], cols=size[0], rows=size[1], cell_px=cell)
+        self._picture_size = (2 * down, across)  # as half blocks: clicks map the same way
+        style = self.rich_style
+        box_h, box_w = down * cell[1], across * cell[0]
+        if self.graphics == "kitty":
+            k = max(1, math.floor(min(box_h / part.shape[0], box_w / part.shape[1])))
+            picture = np.repeat(np.repeat(part, k, axis=0), k, axis=1) if k > 1 else part
+            lines = kitty_lines(np.ascontiguousarray(picture), image_id=PREVIEW_IMAGE_ID,
+                                cells=(down, across), width=size[0], height=size[1],
+                                style=style)
+        else:
+            scale = min(box_h / part.shape[0], box_w / part.shape[1])
+            out = (max(1, math.floor(part.shape[0] * scale + 1e-9)),
+                   max(1, math.floor(part.shape[1] * scale + 1e-9)))
+            picture = (resize_nearest(part, out) if scale >= 1
+                       else box_downsample(np.ascontiguousarray(part), out))
+            lines = sixel_lines(picture, origin=(region.x, region.y), cell_px=cell,
+                                width=size[0], height=size[1], style=style)
+        strips = [Strip(segs, size[0]) for segs in lines]
+        self._graphics_cache = (key, strips)
+        return strips
+
+    def render_line(self, y: int) -> Strip:
+        """Line ``y``: the protocol's line while :attr:`drawing_graphics`, else half blocks."""
+        if self.drawing_graphics:
+            size = (max(1, self.content_size.width), max(1, self.content_size.height))
+            strips = self._graphics_strips(size)
+            if 0 <= y < len(strips):
+                return strips[y]
+            return Strip([Segment(" " * size[0], self.rich_style)], size[0])
+        return super().render_line(y)
 
 
 class WorkBar(Horizontal):

@@ -1,0 +1,206 @@
+"""DEC sixel graphics: a picture as a palette and bands six pixels high.
+
+Source: Digital Equipment Corporation, "VT330/VT340 Programmer Reference Manual, Volume 2:
+Graphics Programming" (EK-VT3XX-GP), chapter 14 "Sixel Graphics" (the same rules are in
+DEC STD 070). A sixel picture is a device control string::
+
+    ESC P P1 ; P2 ; P3 q  "Pan;Pad;Ph;Pv  #Pc;Pu;Px;Py;Pz ...  data  ESC \\
+
+``P2 = 1``: pixels left at 0 keep their colour on the screen; the raster attributes
+``"1;1;W;H`` give square pixels and the picture size; ``#Pc;2;R;G;B`` defines colour
+register ``Pc`` in RGB percentages (0..100). Data come in bands six pixel rows high:
+for one colour, each column of the band is one character ``63 + bits`` (bit 0 the top
+row); ``#Pc`` selects the colour, ``$`` returns to the band's start for the next
+colour, ``-`` moves to the next band, ``!Pn c`` repeats character ``c`` ``Pn`` times.
+
+:func:`median_cut` reduces a picture to at most 256 colours (Heckbert, "Color image
+quantization for frame buffer display", SIGGRAPH 1982: split the box of colours with
+the widest channel range at its median, weighting each colour by its pixel count).
+Pure numpy; no terminal is queried.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["MAX_COLOURS", "median_cut", "sixel_percent", "sixel_encode", "sixel_picture"]
+
+#: Colour registers a sixel picture uses at most (the usual 256 of current terminals).
+MAX_COLOURS = 256
+
+
+def _check_rgb(rgb: object) -> np.ndarray:
+    img = np.asarray(rgb)
+    if img.dtype != np.uint8 or img.ndim != 3 or img.shape[2] != 3 or 0 in img.shape:
+        raise ValueError(
+            f"rgb: expected a non-empty uint8 (H, W, 3) array, got dtype {img.dtype} "
+            f"shape {img.shape}"
+        )
+    return img
+
+
+def median_cut(rgb: np.ndarray, *, colours: int = MAX_COLOURS) -> tuple[np.ndarray, np.ndarray]:
+    """A palette of at most ``colours`` colours for ``rgb`` and each pixel's entry.
+
+    A picture with ``colours`` distinct colours or fewer keeps them exactly (palette in
+    ascending order of ``(r, g, b)``). Otherwise boxes of distinct colours are split,
+    the box whose widest channel spans the most first, at the weighted median of that
+    channel, until there are ``colours`` boxes; each box's entry is the pixel-weighted
+    mean of its colours, rounded half up, and every pixel takes its box's entry.
+
+    Parameters
+    ----------
+    rgb : ndarray, shape (H, W, 3), uint8
+    colours : int
+        Largest palette, 1..256.
+
+    Returns
+    -------
+    palette : ndarray, shape (n, 3), uint8
+        ``n <= colours``.
+    index : ndarray, shape (H, W), int64
+        Palette entry of each pixel.
+
+    Raises
+    ------
+    ValueError
+        If ``rgb`` is not (H, W, 3) uint8 or ``colours`` is out of range.
+    """
+    img = _check_rgb(rgb)
+    if not 1 <= colours <= MAX_COLOURS:
+        raise ValueError(f"colours: expected 1..{MAX_COLOURS}, got {colours}")
+    h, w = img.shape[:2]
+    uniq, inverse, counts = np.unique(
+        img.reshape(-1, 3), axis=0, return_inverse=True, return_counts=True
+    )
+    inverse = inverse.reshape(-1)
+    if len(uniq) <= colours:
+        return uniq.astype(np.uint8), inverse.reshape(h, w).astype(np.int64)
+    boxes = [np.arange(len(uniq))]
+    while len(boxes) < colours:
+        spans = [np.ptp(uniq[b], axis=0) if len(b) > 1 else np.zeros(3, np.int64) for b in boxes]
+        widest = [int(s.max()) for s in spans]
+        k = int(np.argmax(widest))
+        if widest[k] == 0:
+            break  # every box holds one colour
+        box = boxes[k]
+        channel = int(np.argmax(spans[k]))
+        order = box[np.argsort(uniq[box, channel], kind="stable")]
+        cum = np.cumsum(counts[order])
+        cut = int(np.searchsorted(cum, cum[-1] / 2.0)) + 1
+        cut = min(max(cut, 1), len(order) - 1)
+        boxes[k : k + 1] = [order[:cut], order[cut:]]
+    palette = np.empty((len(boxes), 3), np.uint8)
+    box_of = np.empty(len(uniq), np.int64)
+    for n, b in enumerate(boxes):
+        weight = counts[b].astype(np.int64)
+        total = int(weight.sum())
+        sums = (uniq[b].astype(np.int64) * weight[:, None]).sum(axis=0)
+        palette[n] = (2 * sums + total) // (2 * total)
+        box_of[b] = n
+    return palette, box_of[inverse].reshape(h, w)
+
+
+def sixel_percent(value: int) -> int:
+    """An 8-bit channel value as the sixel colour's percentage, rounded half up.
+
+    Parameters
+    ----------
+    value : int
+        0..255.
+
+    Returns
+    -------
+    int
+        ``round_half_up(value * 100 / 255)``, 0..100.
+    """
+    return (int(value) * 200 + 255) // 510
+
+
+def _run_length(chars: np.ndarray) -> str:
+    """Sixel characters with runs of four or more written ``!<n><c>``."""
+    out = []
+    n = len(chars)
+    start = 0
+    while start < n:
+        end = start + 1
+        while end < n and chars[end] == chars[start]:
+            end += 1
+        run, ch = end - start, chr(int(chars[start]))
+        out.append(f"!{run}{ch}" if run >= 4 else ch * run)
+        start = end
+    return "".join(out)
+
+
+def sixel_encode(index: np.ndarray, palette: np.ndarray) -> str:
+    """The device control string that draws a palette picture as sixels.
+
+    Colour registers are the palette entries' numbers; only the entries the picture
+    uses are defined. In each band the colours come in ascending register order,
+    separated by ``$``; each colour's characters stop at its last set pixel; bands are
+    separated by ``-``. Runs of four or more equal characters are written ``!<n><c>``.
+
+    Parameters
+    ----------
+    index : ndarray, shape (H, W), integer
+        Palette entry of each pixel, 0..n-1.
+    palette : ndarray, shape (n, 3), uint8
+        The colours, n <= 256.
+
+    Returns
+    -------
+    str
+        ``ESC P 0;1;0 q "1;1;W;H #c;2;r;g;b ... <bands> ESC \\``.
+
+    Raises
+    ------
+    ValueError
+        If the shapes or entries do not fit.
+    """
+    idx = np.asarray(index)
+    pal = np.asarray(palette)
+    if idx.ndim != 2 or 0 in idx.shape or not np.issubdtype(idx.dtype, np.integer):
+        raise ValueError(f"index: expected a non-empty (H, W) integer array, got {idx.shape}")
+    if pal.ndim != 2 or pal.shape[1] != 3 or not 1 <= len(pal) <= MAX_COLOURS:
+        raise ValueError(f"palette: expected (n, 3) colours, 1 <= n <= 256, got {pal.shape}")
+    if idx.min() < 0 or idx.max() >= len(pal):
+        raise ValueError(
+            f"index: expected entries 0..{len(pal) - 1} of the palette, got "
+            f"{int(idx.min())}..{int(idx.max())}"
+        )
+    h, w = idx.shape
+    parts = ["\x1bP0;1;0q", f'"1;1;{w};{h}']
+    for c in np.unique(idx):
+        r, g, b = (sixel_percent(v) for v in pal[c])
+        parts.append(f"#{int(c)};2;{r};{g};{b}")
+    weights = (1 << np.arange(6, dtype=np.int64))[:, None]
+    for top in range(0, h, 6):
+        band = idx[top : top + 6]
+        layers = []
+        for c in np.unique(band):
+            bits = ((band == c) * weights[: len(band)]).sum(axis=0)
+            last = int(np.flatnonzero(bits)[-1])
+            layers.append(f"#{int(c)}" + _run_length(bits[: last + 1] + 63))
+        parts.append("$".join(layers))
+        if top + 6 < h:
+            parts.append("-")
+    parts.append("\x1b\\")
+    return "".join(parts)
+
+
+def sixel_picture(rgb: np.ndarray, *, colours: int = MAX_COLOURS) -> str:
+    """:func:`median_cut` then :func:`sixel_encode`: an RGB picture as sixels.
+
+    Parameters
+    ----------
+    rgb : ndarray, shape (H, W, 3), uint8
+    colours : int
+        Largest palette, 1..256.
+
+    Returns
+    -------
+    str
+        The device control string.
+    """
+    palette, index = median_cut(rgb, colours=colours)
+    return sixel_encode(index, palette)
