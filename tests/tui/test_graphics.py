@@ -117,7 +117,7 @@ def test_kitty_lines_are_one_cell_per_placeholder_and_the_escape_ends_line_0():
     rgb = np.zeros((4, 6, 3), np.uint8)
     lines = kitty_lines(rgb, image_id=0x010203, cells=(2, 3), width=5, height=3)
     assert len(lines) == 3
-    for y, line in enumerate(lines):
+    for line in lines:
         cells = sum(cell_len(s.text) for s in line if not s.control)
         assert cells == 5
     first = lines[0]
