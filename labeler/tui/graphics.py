@@ -125,7 +125,7 @@ def choose_graphics(
             f"preview.graphics: expected one of {', '.join(GRAPHICS_MODES)}, got {setting!r}"
         )
     if headless:
-        return "off", "half blocks (no terminal)"
+        return "off", "half blocks (headless)"
     mode = detect_graphics(environ) if setting == "auto" else setting
     if mode == "sixel" and cell_px is None:
         return "off", "half blocks (sixels need the cell size, not reported here)"

@@ -281,7 +281,7 @@ def test_choose_graphics():
     # headless (Pilot) never gets pictures, whatever the setting and terminal say
     for setting in GRAPHICS_MODES:
         assert choose_graphics(setting, kitty, headless=True, cell_px=(10, 20)) == (
-            "off", "half blocks (no terminal)")
+            "off", "half blocks (headless)")
     assert choose_graphics("off", kitty, headless=False, cell_px=None) == (
         "off", "half blocks (preview.graphics = off)")
     assert choose_graphics("sixel", {}, headless=False, cell_px=(9, 18))[0] == "sixel"

@@ -35,7 +35,7 @@ async def test_headless_queue_draws_half_blocks_even_in_a_kitty_environment(proj
         await idle(pilot)
         preview = app.screen.query_one(TilePreview)
         assert preview.graphics == "off" and not preview.drawing_graphics
-        assert app.screen.query_one("#side").border_title == "half blocks (no terminal)"
+        assert app.screen.query_one("#side").border_title == "half blocks (headless)"
         assert HALF_BLOCK in preview.render().plain
         written = _screen_text(app)
         assert "\x1b_G" not in written and "\x1bP" not in written
