@@ -30,7 +30,7 @@ from rich.segment import ControlType, Segment
 from rich.style import Style
 
 from labeler.tui.graphics_kitty import MAX_CELLS, id_colour, kitty_transmit, placeholder_cell
-from labeler.tui.graphics_sixel import sixel_picture
+from labeler.tui.graphics_sixel import median_cut, sixel_encode
 
 __all__ = [
     "GRAPHICS_MODES",
@@ -280,7 +280,9 @@ def sixel_lines(
     Line ``y`` is ``width`` blank cells, then a zero-width control segment: save cursor
     (``ESC 7``), move to the line's first cell (``CSI row;col H``, 1-based screen
     position), the sixels of picture rows ``y * ch .. (y + 1) * ch``, restore cursor
-    (``ESC 8``). Every line draws its own part, so a line Textual paints again is drawn
+    (``ESC 8``). The palette is made once for the whole picture
+    (:func:`~labeler.tui.graphics_sixel.median_cut`); each line defines the colours it
+    uses. Every line draws its own part, so a line Textual paints again is drawn
     again whole.
 
     Parameters
@@ -303,12 +305,13 @@ def sixel_lines(
     """
     ch = int(cell_px[1])
     x0, y0 = origin
+    palette, index = median_cut(picture)  # one palette: no seams between the lines
     lines = []
     for y in range(height):
         segs = [Segment(" " * width, style)]
-        band = picture[y * ch : (y + 1) * ch]
+        band = index[y * ch : (y + 1) * ch]
         if band.shape[0]:
-            data = sixel_picture(np.ascontiguousarray(band))
+            data = sixel_encode(band, palette)
             move = f"\x1b7\x1b[{y0 + y + 1};{x0 + 1}H"
             segs.append(Segment(move + data + "\x1b8", None, _CONTROL))
         lines.append(segs)

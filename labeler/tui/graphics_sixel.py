@@ -43,10 +43,11 @@ def median_cut(rgb: np.ndarray, *, colours: int = MAX_COLOURS) -> tuple[np.ndarr
     """A palette of at most ``colours`` colours for ``rgb`` and each pixel's entry.
 
     A picture with ``colours`` distinct colours or fewer keeps them exactly (palette in
-    ascending order of ``(r, g, b)``). Otherwise boxes of distinct colours are split,
-    the box whose widest channel spans the most first, at the weighted median of that
-    channel, until there are ``colours`` boxes; each box's entry is the pixel-weighted
-    mean of its colours, rounded half up, and every pixel takes its box's entry.
+    ascending order of ``(r, g, b)``). Otherwise the colours, cut to 5 bits a channel,
+    are put in boxes that are split -- the box whose widest channel spans the most
+    first, at the pixel-weighted median of that channel -- until there are ``colours``
+    boxes; each box's entry is the mean of its pixels (full precision), rounded half
+    up, and every pixel takes its box's entry.
 
     Parameters
     ----------
@@ -70,35 +71,49 @@ def median_cut(rgb: np.ndarray, *, colours: int = MAX_COLOURS) -> tuple[np.ndarr
     if not 1 <= colours <= MAX_COLOURS:
         raise ValueError(f"colours: expected 1..{MAX_COLOURS}, got {colours}")
     h, w = img.shape[:2]
-    uniq, inverse, counts = np.unique(
-        img.reshape(-1, 3), axis=0, return_inverse=True, return_counts=True
-    )
-    inverse = inverse.reshape(-1)
-    if len(uniq) <= colours:
+    flat = img.reshape(-1, 3)
+    wide = flat.astype(np.int64)
+    codes = (wide[:, 0] << 16) | (wide[:, 1] << 8) | wide[:, 2]  # ascending as (r, g, b)
+    uniq_codes, inverse = np.unique(codes, return_inverse=True)
+    if len(uniq_codes) <= colours:
+        uniq = np.stack([uniq_codes >> 16, (uniq_codes >> 8) & 255, uniq_codes & 255], 1)
         return uniq.astype(np.uint8), inverse.reshape(h, w).astype(np.int64)
+    # boxes are cut over colours of 5 bits a channel (at most 32768 of them); the entries
+    # are the means of the full-precision pixels of each box
+    coarse = wide >> 3
+    coarse_codes = (coarse[:, 0] << 10) | (coarse[:, 1] << 5) | coarse[:, 2]
+    counts = np.bincount(coarse_codes, minlength=1 << 15)
+    present = np.flatnonzero(counts)
+    position = np.zeros(1 << 15, np.int64)
+    position[present] = np.arange(len(present))
+    inverse = position[coarse_codes]
+    counts = counts[present]
+    uniq = np.stack([present >> 10, (present >> 5) & 31, present & 31], 1)
     boxes = [np.arange(len(uniq))]
+    spans = [np.ptp(uniq, axis=0)]
     while len(boxes) < colours:
-        spans = [np.ptp(uniq[b], axis=0) if len(b) > 1 else np.zeros(3, np.int64) for b in boxes]
-        widest = [int(s.max()) for s in spans]
-        k = int(np.argmax(widest))
-        if widest[k] == 0:
+        k = int(np.argmax([int(sp.max()) for sp in spans]))
+        if int(spans[k].max()) == 0:
             break  # every box holds one colour
-        box = boxes[k]
-        channel = int(np.argmax(spans[k]))
+        box, channel = boxes[k], int(np.argmax(spans[k]))
         order = box[np.argsort(uniq[box, channel], kind="stable")]
         cum = np.cumsum(counts[order])
         cut = int(np.searchsorted(cum, cum[-1] / 2.0)) + 1
         cut = min(max(cut, 1), len(order) - 1)
-        boxes[k : k + 1] = [order[:cut], order[cut:]]
-    palette = np.empty((len(boxes), 3), np.uint8)
+        halves = [order[:cut], order[cut:]]
+        boxes[k : k + 1] = halves
+        spans[k : k + 1] = [np.ptp(uniq[half], axis=0) for half in halves]
     box_of = np.empty(len(uniq), np.int64)
     for n, b in enumerate(boxes):
-        weight = counts[b].astype(np.int64)
-        total = int(weight.sum())
-        sums = (uniq[b].astype(np.int64) * weight[:, None]).sum(axis=0)
-        palette[n] = (2 * sums + total) // (2 * total)
         box_of[b] = n
-    return palette, box_of[inverse].reshape(h, w)
+    index = box_of[inverse]
+    total = np.bincount(index, minlength=len(boxes))
+    palette = np.empty((len(boxes), 3), np.uint8)
+    for c in range(3):
+        sums = np.bincount(index, weights=flat[:, c].astype(np.float64), minlength=len(boxes))
+        sums = np.rint(sums).astype(np.int64)  # whole numbers, exact below 2**53
+        palette[:, c] = (2 * sums + total) // (2 * total)
+    return palette, index.reshape(h, w)
 
 
 def sixel_percent(value: int) -> int:
@@ -119,17 +134,13 @@ def sixel_percent(value: int) -> int:
 
 def _run_length(chars: np.ndarray) -> str:
     """Sixel characters with runs of four or more written ``!<n><c>``."""
-    out = []
     n = len(chars)
-    start = 0
-    while start < n:
-        end = start + 1
-        while end < n and chars[end] == chars[start]:
-            end += 1
-        run, ch = end - start, chr(int(chars[start]))
-        out.append(f"!{run}{ch}" if run >= 4 else ch * run)
-        start = end
-    return "".join(out)
+    starts = np.flatnonzero(np.diff(chars, prepend=-1))
+    lengths = np.diff(np.append(starts, n))
+    return "".join(
+        f"!{run}{chr(ch)}" if run >= 4 else chr(ch) * run
+        for ch, run in zip(chars[starts].tolist(), lengths.tolist(), strict=True)
+    )
 
 
 def sixel_encode(index: np.ndarray, palette: np.ndarray) -> str:
@@ -173,14 +184,18 @@ def sixel_encode(index: np.ndarray, palette: np.ndarray) -> str:
     for c in np.unique(idx):
         r, g, b = (sixel_percent(v) for v in pal[c])
         parts.append(f"#{int(c)};2;{r};{g};{b}")
-    weights = (1 << np.arange(6, dtype=np.int64))[:, None]
+    n_colours = len(pal)
     for top in range(0, h, 6):
-        band = idx[top : top + 6]
+        band = idx[top : top + 6].astype(np.int64)
+        # bits[c, x]: the rows of column x in colour c, bit 0 the band's top row
+        key = (band * w + np.arange(w)).ravel()
+        weight = np.repeat(1 << np.arange(len(band)), w)
+        bits = np.bincount(key, weights=weight, minlength=n_colours * w)
+        bits = bits.astype(np.int64).reshape(n_colours, w)
         layers = []
-        for c in np.unique(band):
-            bits = ((band == c) * weights[: len(band)]).sum(axis=0)
-            last = int(np.flatnonzero(bits)[-1])
-            layers.append(f"#{int(c)}" + _run_length(bits[: last + 1] + 63))
+        for c in np.flatnonzero(bits.any(axis=1)):
+            last = int(np.flatnonzero(bits[c])[-1])
+            layers.append(f"#{int(c)}" + _run_length(bits[c, : last + 1] + 63))
         parts.append("$".join(layers))
         if top + 6 < h:
             parts.append("-")

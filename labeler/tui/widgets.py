@@ -181,7 +181,7 @@ class TilePreview(Widget):
                 cell_px = None
         mode, note = choose_graphics(setting, environ, headless=headless, cell_px=cell_px,
                                      truecolor=truecolor)
-        self.use_graphics(mode, cell_px=cell_px if mode == "sixel" else None)
+        self.use_graphics(mode, cell_px=cell_px if mode != "off" else None)
         return note
 
     @property

@@ -249,9 +249,12 @@ def test_sixel_lines_draw_each_band_at_its_own_line():
     assert [len(line) for line in lines] == [2, 2, 1]  # 5 pixel rows: two lines of 3
     first, second = lines[0][1], lines[1][1]
     assert first.control and second.control
-    # save cursor, move to screen row 3 (1-based) column 11, rows 0-2, restore cursor
-    assert first.text == "\x1b7\x1b[3;11H" + sixel_picture(rgb[0:3]) + "\x1b8"
-    assert second.text == "\x1b7\x1b[4;11H" + sixel_picture(rgb[3:5]) + "\x1b8"
+    # save cursor, move to screen row 3 (1-based) column 11, rows 0-2, restore cursor;
+    # one palette for the picture (0 = black, 1 = white), each line defining its own
+    black, white = "#0;2;0;0;0", "#1;2;100;100;100"
+    assert first.text == '\x1b7\x1b[3;11H\x1bP0;1;0q"1;1;4;3' + black + "#0!4F\x1b\\\x1b8"
+    # rows 0-2 black: bits 0-2 -> 63 + 7 = "F"; rows 3-4 white: bits 0-1 -> 63 + 3 = "B"
+    assert second.text == '\x1b7\x1b[4;11H\x1bP0;1;0q"1;1;4;2' + white + "#1!4B\x1b\\\x1b8"
 
 
 # -- choice, fitting -------------------------------------------------------------------------

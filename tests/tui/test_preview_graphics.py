@@ -12,7 +12,7 @@ from rich.console import Console
 from labeler.tui.app import QueueApp
 from labeler.tui.graphics import fit_cells, resize_nearest
 from labeler.tui.graphics_kitty import placeholder_cell
-from labeler.tui.graphics_sixel import sixel_picture
+from labeler.tui.graphics_sixel import median_cut, sixel_encode
 from labeler.tui.preview import HALF_BLOCK, box_downsample
 from labeler.tui.widgets import PREVIEW_IMAGE_ID, TilePreview
 from labeler.workflow import pick_tiles
@@ -112,10 +112,11 @@ async def test_sixel_terminal_gets_bands_at_the_preview_cells(project):
         scale = min(down * 20 / h, across * 10 / w)
         out = (int(h * scale + 1e-9), int(w * scale + 1e-9))
         picture = resize_nearest(rgb, out) if scale >= 1 else box_downsample(rgb, out)
-        assert band.text == move + sixel_picture(picture[:20]) + "\x1b8"
+        palette, index = median_cut(picture)
+        assert band.text == move + sixel_encode(index[:20], palette) + "\x1b8"
         last = list(preview.render_line(down - 1))[-1]
         assert last.text == (f"\x1b7\x1b[{region.y + down};{region.x + 1}H"
-                             + sixel_picture(picture[(down - 1) * 20:down * 20]) + "\x1b8")
+                             + sixel_encode(index[(down - 1) * 20:down * 20], palette) + "\x1b8")
 
 
 async def test_setting_off_keeps_half_blocks_in_a_kitty_terminal(project):
