@@ -19,9 +19,7 @@ Textual expects it.
 
 from __future__ import annotations
 
-import fcntl
 import struct
-import termios
 from collections.abc import Mapping
 
 import numpy as np
@@ -152,6 +150,11 @@ def cell_pixels(fd: int) -> tuple[int, int] | None:
     (int, int) or None
         None when ``fd`` is no terminal or the pixel size is not reported (0).
     """
+    try:
+        import fcntl
+        import termios
+    except ImportError:  # not a POSIX system: no window size in pixels to read
+        return None
     try:
         raw = fcntl.ioctl(fd, termios.TIOCGWINSZ, b"\0" * 8)
     except OSError:
