@@ -113,6 +113,7 @@ __all__ = [
     "STRATEGIES",
     "AUGMENT_MODES",
     "FINETUNE_STAGES",
+    "PRECISIONS",
     "RETIRED_OPTIONS",
     "RANGES",
     "Range",
@@ -132,6 +133,9 @@ AUGMENT_MODES = ("auto", "turns", "features", "images")
 #: Encoder stages ``retrain`` may train with the head (``model.finetune_stages``; see
 #: labeler.model.tail): none, the last two (6-7) or the last four (4-7).
 FINETUNE_STAGES = (0, 2, 4)
+#: Arithmetic of the encoder and the head when proposing (``model.precision``; see
+#: labeler.model.encoder.resolve_precision): bfloat16 where the CPU has it, or always float32.
+PRECISIONS = ("auto", "float32", "bfloat16")
 
 
 @dataclass(frozen=True)
@@ -189,10 +193,12 @@ class ModelSettings(Checked):
     augment: str = "auto"
     patience: int = 10
     finetune_stages: int = 0
+    precision: str = "auto"
 
     def _check(self) -> None:
         check_choice("model", "augment", self.augment, AUGMENT_MODES)
         check_choice("model", "finetune_stages", self.finetune_stages, FINETUNE_STAGES)
+        check_choice("model", "precision", self.precision, PRECISIONS)
 
 
 @dataclass(frozen=True)

@@ -180,6 +180,7 @@ def _block_proposals(
                 )
             )
     else:
+        from labeler.model.encoder import resolve_precision
         from labeler.model.predict import propose_tiles
 
         pixels = [_part(rgb, block, t.window) for t in members]
@@ -191,6 +192,7 @@ def _block_proposals(
             seed=settings.model.seed,
             images=pixels,
             dropout_weights=dropout_weights,
+            precision=resolve_precision(settings.model.precision),
         )
         for t, p, f in zip(members, props, feats, strict=True):
             items.append(
@@ -264,6 +266,7 @@ def propose(
         project,
         encoder=None if head_mv is None else head_encoder(head_mv),
         unknown_is_default=True,  # load_head then names the head's own problem
+        precision=settings.model.precision,
     )
     head = tail = None
     if head_mv is not None:

@@ -80,7 +80,7 @@ def test_missing_checkpoint_is_a_clear_error(one_plot):
 def test_head_proposals_are_refined_from_the_tile_pixels(one_plot):
     from labeler.imagery.read import read_image
     from labeler.model.checkpoint import load_checkpoint
-    from labeler.model.encoder import encode_tiles, load_encoder
+    from labeler.model.encoder import encode_tiles, load_encoder, resolve_precision
     from labeler.model.predict import propose_tiles
 
     project, truth = one_plot
@@ -97,10 +97,16 @@ def test_head_proposals_are_refined_from_the_tile_pixels(one_plot):
     # the stored mask is the refined one, made from the tile's own pixels
     tile = tiles[7]
     image = read_image(project.image_path(store.images()[0]))[tile.window.slices]
-    feats = encode_tiles(load_encoder(), [image])
     settings = project.settings.model
+    precision = resolve_precision(settings.precision)  # the model.precision setting
+    feats = encode_tiles(load_encoder(precision=precision), [image])
     want = propose_tiles(
-        head, feats, mc_samples=settings.mc_samples, seed=settings.seed, images=[image]
+        head,
+        feats,
+        mc_samples=settings.mc_samples,
+        seed=settings.seed,
+        images=[image],
+        precision=precision,
     )[0]
     assert want.refined
     stored = store.latest_proposal(tile.id)
