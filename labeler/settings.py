@@ -35,7 +35,9 @@ Sections and options (defaults in brackets):
     early stopping is asked for (``retrain`` keeps the state at the end of the step
     budget: a few labelled tiles give too noisy a validation loss to choose by); ``finetune_stages`` [0] encoder
     stages trained with the head on the project's labels: 0 (frozen encoder), 2 or 4
-    (the last stages, at a tenth of the head's learning rate; a new encoder version).
+    (the last stages, at a tenth of the head's learning rate; a new encoder version);
+    ``precision`` ["auto"] arithmetic of ``propose``: bfloat16 where the CPU has it
+    natively, else float32 (same weights and encoder version), or "float32"/"bfloat16".
 ``[picker]``
     ``strategy`` ["mixed"] one of random, entropy, margin, bald, coreset, mixed;
     ``k`` [20] tiles per batch; ``seed`` [0].
@@ -547,6 +549,7 @@ val_share = 0.2
 augment = "auto"          # "auto", "turns" (exact, cached), "images" (slow) or "features"
 patience = 10             # early stopping only; retrain keeps the state at the budget's end
 finetune_stages = 0       # encoder stages trained with the head: 0, 2 or 4
+precision = "auto"        # propose in bfloat16 where the CPU has it; "float32" turns it off
 
 [picker]
 strategy = "mixed"        # random, entropy, margin, bald, coreset, mixed
