@@ -183,6 +183,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--open-train", type=int, default=60, help="peanut training photos")
     ap.add_argument("--open-eval", type=int, default=30, help="peanut evaluation photos")
     ap.add_argument("--skip-open", action="store_true")
+    ap.add_argument("--skip-demo", action="store_true")
     args = ap.parse_args(argv)
     threads = configure_threads(args.threads)
     settings = ModelSettings(seed=args.seed)
@@ -191,7 +192,10 @@ def main(argv: list[str] | None = None) -> int:
     t0 = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="labeler-precision-") as tmp:
         encs = _encoders_and_caches(Path(tmp))
-        result.update(run_demo(encs, settings, args.seed))
+        if args.skip_demo:
+            reasons["demo"] = "--skip-demo"
+        else:
+            result.update(run_demo(encs, settings, args.seed))
         if args.skip_open:
             reasons["open"] = "--skip-open"
         elif not (PEANUT / "images").is_dir():

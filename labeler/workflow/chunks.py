@@ -225,7 +225,7 @@ def propose_chunk(chunk: ProposeChunk, *, encoder_weights: bytes | None = None) 
         reachable or changed size, or the head checkpoint cannot be loaded.
     """
     from labeler.model.cache import FeatureCache
-    from labeler.model.encoder import resolve_precision, with_precision
+    from labeler.model.encoder import precision_of, resolve_precision, with_precision
     from labeler.model.runtime import configure_threads
 
     configure_threads(chunk.threads)
@@ -246,7 +246,11 @@ def propose_chunk(chunk: ProposeChunk, *, encoder_weights: bytes | None = None) 
         if chunk.head_path is None
         else _load_head(chunk.head_path, encoder_version=encoder.version)
     )
-    cache = FeatureCache(worker_cache_folder(chunk.cache_folder), encoder_version=encoder.version)
+    cache = FeatureCache(
+        worker_cache_folder(chunk.cache_folder),
+        encoder_version=encoder.version,
+        precision=precision_of(encoder),
+    )
     path = chunk.image_path
     if not os.path.isfile(path):
         raise InputError(

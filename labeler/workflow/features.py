@@ -84,8 +84,9 @@ def encoder_and_cache(
         raising.
     precision : {"float32", "bfloat16", "auto"}
         Arithmetic of the encoder (:func:`labeler.model.encoder.resolve_precision`;
-        ``labeler propose`` passes the ``model.precision`` setting). The encoder version
-        and so the cache entries are the same in either: a head reads features of both.
+        ``labeler propose`` passes the ``model.precision`` setting; training keeps the
+        float32 default). The encoder version is the same in either; a float32 cache
+        reads float32 entries only, a bfloat16 one both (:mod:`labeler.model.cache`).
 
     Returns
     -------
@@ -123,7 +124,9 @@ def encoder_and_cache(
             model = copy.deepcopy(other)
         model = with_precision(model, arithmetic)
         _LAST_ENCODER[(key, arithmetic)] = model
-    cache = FeatureCache(project.cache_dir / "features", encoder_version=model.version)
+    cache = FeatureCache(
+        project.cache_dir / "features", encoder_version=model.version, precision=arithmetic
+    )
     return model, cache
 
 

@@ -11,6 +11,7 @@ the stride-4 grid). Training the head is :mod:`labeler.workflow.retraining`.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -214,6 +215,59 @@ def _block_proposals(
     return items
 
 
+class _BlockWriter:
+    """Writes each block's proposals to the store in a thread of its own.
+
+    The next block is read, encoded and proposed while the last one is written (PNG
+    encoding of the masks, the transaction): at most one block waits, so memory stays
+    one block's worth. A block's proposals are still stored in one transaction, in
+    block order; an error of a write is raised at the next :meth:`submit` or on leaving
+    the ``with`` block, and leaving it always waits for the write under way, so an
+    interrupted run keeps every block it finished.
+    """
+
+    def __init__(self, store, *, only_open: bool, progress: Progress, total: int) -> None:
+        self._store = store
+        self._only_open = only_open
+        self._progress = progress
+        self._total = total
+        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="labeler-proposals")
+        self._pending: tuple[Future, int, str] | None = None
+        self.proposed = 0
+        self.left_alone = 0
+        self.done = 0
+
+    def submit(self, model_version_id: int, items: list[NewProposal], *, label: str) -> None:
+        """Write ``items`` once the block before is written."""
+        self.wait()
+        future = self._pool.submit(
+            self._store.add_proposals, model_version_id, items, only_open=self._only_open
+        )
+        self._pending = (future, len(items), label)
+
+    def wait(self) -> None:
+        """Wait for the write under way (raising its error) and count it."""
+        if self._pending is None:
+            return
+        future, n, label = self._pending
+        self._pending = None
+        written = future.result()
+        self.proposed += len(written)
+        self.left_alone += n - len(written)
+        self.done += n
+        self._progress(self.done, self._total, label)
+
+    def __enter__(self) -> _BlockWriter:
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        try:
+            if exc_type is None:
+                self.wait()
+        finally:
+            self._pool.shutdown(wait=True)
+
+
 def propose(
     project: Project,
     *,
@@ -224,9 +278,10 @@ def propose(
     """Propose masks for every tile whose proposal is older than the newest model.
 
     Tiles are proposed block by block (:data:`ROW_BLOCK_PX`): only one block's pixels,
-    features and proposals are held at a time, and each block's proposals are stored in
-    one transaction as soon as they are made, so an interrupted run keeps the blocks it
-    finished. Unseen tiles become ``proposed``.
+    features and proposals are held at a time (and the proposals of the block before,
+    being written), and each block's proposals are stored in one transaction in a
+    writing thread while the next block is computed, so an interrupted run keeps the
+    blocks it finished. Unseen tiles become ``proposed``.
 
     Parameters
     ----------
@@ -294,51 +349,49 @@ def propose(
             todo[im.id] = tiles
     _check_image_files(project, [im for im in images if im.id in todo])
     total = sum(len(v) for v in todo.values())
-    done = 0
-    proposed = 0
+    started = 0  # tiles whose proposals are made (written or being written)
     dropout_weights: dict = {}  # the head's MC-dropout weights per grid size, made once
-    for im in images:
-        tiles = todo.get(im.id)
-        if not tiles:
-            continue
-        with open_image(project.image_path(im)) as reader:
-            if reader.info.shape != im.shape:
-                raise InputError(
-                    f"{project.image_path(im)}: size {reader.info.shape} differs from the "
-                    f"stored {im.shape}; the image file was changed after it was added"
-                )
-            for block, members in _blocks(tiles, im):
-                rgb = reader.read(block)  # once: the tiles are cut from it
-                feats = tile_features(
-                    cache,
-                    encoder,
-                    reader,
-                    im,
-                    members,
-                    progress=lambda d, t, base=done, name=im.name: progress(
-                        base + d, total, f"{name}: encoding"
-                    ),
-                    block=(rgb, block),
-                )
-                items = _block_proposals(
-                    rgb,
-                    block,
-                    members,
-                    feats,
-                    head=head,
-                    tail=tail,
-                    settings=settings,
-                    dropout_weights=dropout_weights,
-                )
-                del rgb
-                del feats  # one block's features at a time
-                if mv is None:
-                    mv = _new_cold_start_version(project)
-                written = store.add_proposals(mv.id, items, only_open=only_open)
-                proposed += len(written)
-                left_alone += len(items) - len(written)
-                done += len(members)
-                progress(done, total, f"{im.name}: proposed")
+    with _BlockWriter(store, only_open=only_open, progress=progress, total=total) as writer:
+        for im in images:
+            tiles = todo.get(im.id)
+            if not tiles:
+                continue
+            with open_image(project.image_path(im)) as reader:
+                if reader.info.shape != im.shape:
+                    raise InputError(
+                        f"{project.image_path(im)}: size {reader.info.shape} differs from the "
+                        f"stored {im.shape}; the image file was changed after it was added"
+                    )
+                for block, members in _blocks(tiles, im):
+                    rgb = reader.read(block)  # once: the tiles are cut from it
+                    feats = tile_features(
+                        cache,
+                        encoder,
+                        reader,
+                        im,
+                        members,
+                        progress=lambda d, t, base=started, name=im.name: progress(
+                            base + d, total, f"{name}: encoding"
+                        ),
+                        block=(rgb, block),
+                    )
+                    items = _block_proposals(
+                        rgb,
+                        block,
+                        members,
+                        feats,
+                        head=head,
+                        tail=tail,
+                        settings=settings,
+                        dropout_weights=dropout_weights,
+                    )
+                    del rgb
+                    del feats  # one block's features at a time
+                    if mv is None:
+                        mv = _new_cold_start_version(project)
+                    writer.submit(mv.id, items, label=f"{im.name}: proposed")
+                    started += len(members)
+    proposed, left_alone = writer.proposed, left_alone + writer.left_alone
     progress(total, total, "done")
     if mv is None:  # nothing to propose and the cold start never used: name it anyway
         mv = _new_cold_start_version(project)
