@@ -67,7 +67,7 @@ def _encoders_and_caches(root: Path) -> dict[str, tuple[object, FeatureCache]]:
     out = {}
     for p in PRECISIONS:
         enc = load_encoder(precision=p)
-        out[p] = (enc, FeatureCache(root / p, encoder_version=enc.version))
+        out[p] = (enc, FeatureCache(root / p, encoder_version=enc.version, precision=p))
     return out
 
 

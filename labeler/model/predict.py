@@ -28,6 +28,17 @@ by every tile of one size, so a tile's proposal depends on the seed and the tile
 not on which other tiles share its batch. ``mc_samples=1`` (or a head without dropout)
 runs one pass without dropout, and BALD is then 0.
 
+Cost: the T passes share the trunk (dropout acts only on the classifier's input, so the
+pyramid and the refinement run once per tile; the T masked 1x1 classifiers are one
+batched matrix product). Measured on 40 peanut tiles with a trained head (one thread),
+the pyramid took about 28 %, the T = 8 passes with the uncertainty maps 18 %, the
+refinement 45 % and the rest 10 % of the head's time: the passes do not dominate. With
+``precision="bfloat16"`` (:class:`labeler.model.fasthead.FastHead`) the pyramid and the
+refinement's convolutions run in bfloat16; the passes, the probabilities and every
+uncertainty measure stay float32 with the same T, so the maps mean what they meant (they
+move only by the bfloat16 rounding of the trunk features: at most 0.04 nats per cell and
+2e-4 nats in the tile mean on those tiles).
+
 The pooled embedding for the picker's core-set is the global average of the stride-32
 encoder features (320 values for EfficientNet-Lite0): it depends on the encoder only,
 so embeddings stay comparable across retrained heads.
