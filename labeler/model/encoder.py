@@ -31,7 +31,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from labeler.model.runtime import inference
+from labeler.model.runtime import available_cores, inference
 from labeler.model.weights import (
     map_state_dict,
     read_state_dict,
@@ -57,6 +57,7 @@ __all__ = [
     "resolve_precision",
     "with_precision",
     "precision_of",
+    "stages_can_overlap",
 ]
 
 #: Batch-norm epsilon of the TensorFlow-trained weights.
@@ -550,3 +551,12 @@ def encode_tiles(
             if progress is not None:
                 progress(i, total)
     return out
+
+
+def stages_can_overlap() -> bool:
+    """True when torch runs fewer intra-op threads than this process has cores.
+
+    Then a second stage (reading and encoding the next block of tiles while the head
+    proposes this one) has a core of its own instead of competing with torch's threads.
+    """
+    return torch.get_num_threads() < available_cores()

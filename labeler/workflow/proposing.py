@@ -274,6 +274,7 @@ def propose(
     progress: Progress = no_progress,
     only_open: bool = False,
     cluster: str | None = None,
+    overlap: bool | None = None,
 ) -> ProposeResult:
     """Propose masks for every tile whose proposal is older than the newest model.
 
@@ -296,6 +297,12 @@ def propose(
     cluster : str, optional
         Address of a Dask scheduler: the same work is done by its workers
         (:func:`labeler.workflow.cluster.propose_on_cluster`); None works here.
+    overlap : bool, optional
+        Read and encode the next block in a thread of its own while the head proposes
+        this one. None (the default): when torch runs fewer threads than this process
+        has cores (:func:`labeler.model.encoder.stages_can_overlap`), so the two stages
+        each get a core; the proposals are the same either way. Background renewal
+        passes False to leave its spare core to the queue and the editor.
 
     Returns
     -------
@@ -349,48 +356,68 @@ def propose(
             todo[im.id] = tiles
     _check_image_files(project, [im for im in images if im.id in todo])
     total = sum(len(v) for v in todo.values())
+    jobs = [
+        (im, block, members)
+        for im in images
+        if todo.get(im.id)
+        for block, members in _blocks(todo[im.id], im)
+    ]
+    if overlap is None:
+        from labeler.model.encoder import stages_can_overlap
+
+        overlap = stages_can_overlap()
     started = 0  # tiles whose proposals are made (written or being written)
     dropout_weights: dict = {}  # the head's MC-dropout weights per grid size, made once
-    with _BlockWriter(store, only_open=only_open, progress=progress, total=total) as writer:
-        for im in images:
-            tiles = todo.get(im.id)
-            if not tiles:
-                continue
-            with open_image(project.image_path(im)) as reader:
-                if reader.info.shape != im.shape:
-                    raise InputError(
-                        f"{project.image_path(im)}: size {reader.info.shape} differs from the "
-                        f"stored {im.shape}; the image file was changed after it was added"
-                    )
-                for block, members in _blocks(tiles, im):
-                    rgb = reader.read(block)  # once: the tiles are cut from it
-                    feats = tile_features(
-                        cache,
-                        encoder,
-                        reader,
-                        im,
-                        members,
-                        progress=lambda d, t, base=started, name=im.name: progress(
-                            base + d, total, f"{name}: encoding"
-                        ),
-                        block=(rgb, block),
-                    )
-                    items = _block_proposals(
-                        rgb,
-                        block,
-                        members,
-                        feats,
-                        head=head,
-                        tail=tail,
-                        settings=settings,
-                        dropout_weights=dropout_weights,
-                    )
-                    del rgb
-                    del feats  # one block's features at a time
-                    if mv is None:
-                        mv = _new_cold_start_version(project)
-                    writer.submit(mv.id, items, label=f"{im.name}: proposed")
-                    started += len(members)
+
+    def prepare(job, report=None) -> tuple[np.ndarray, list]:
+        """Read a block's pixels and its tiles' features (from the cache or encoded)."""
+        im, block, members = job
+        with open_image(project.image_path(im)) as reader:
+            if reader.info.shape != im.shape:
+                raise InputError(
+                    f"{project.image_path(im)}: size {reader.info.shape} differs from the "
+                    f"stored {im.shape}; the image file was changed after it was added"
+                )
+            rgb = reader.read(block)  # once: the tiles are cut from it
+            feats = tile_features(
+                cache, encoder, reader, im, members, progress=report, block=(rgb, block)
+            )
+        return rgb, feats
+
+    with (
+        _BlockWriter(store, only_open=only_open, progress=progress, total=total) as writer,
+        ThreadPoolExecutor(max_workers=1, thread_name_prefix="labeler-encode") as ahead_pool,
+    ):
+        ahead: Future | None = None
+        for k, job in enumerate(jobs):
+            im, block, members = job
+            if overlap:  # this block was encoded meanwhile; start encoding the next one
+                current = ahead if ahead is not None else ahead_pool.submit(prepare, job)
+                rgb, feats = current.result()
+                ahead = ahead_pool.submit(prepare, jobs[k + 1]) if k + 1 < len(jobs) else None
+            else:
+                rgb, feats = prepare(
+                    job,
+                    lambda d, t, base=started, name=im.name: progress(
+                        base + d, total, f"{name}: encoding"
+                    ),
+                )
+            items = _block_proposals(
+                rgb,
+                block,
+                members,
+                feats,
+                head=head,
+                tail=tail,
+                settings=settings,
+                dropout_weights=dropout_weights,
+            )
+            del rgb
+            del feats  # one block's features at a time (and the next one's, overlapping)
+            if mv is None:
+                mv = _new_cold_start_version(project)
+            writer.submit(mv.id, items, label=f"{im.name}: proposed")
+            started += len(members)
     proposed, left_alone = writer.proposed, left_alone + writer.left_alone
     progress(total, total, "done")
     if mv is None:  # nothing to propose and the cold start never used: name it anyway

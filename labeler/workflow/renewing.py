@@ -84,7 +84,8 @@ def renew_proposals(project: Project, *, progress: Progress = no_progress) -> Re
         loaded, an image file changed since it was added).
     """
     started = time.perf_counter()
-    proposals = propose(project, progress=progress, only_open=True)
+    # from the cache: nothing to encode, and the spare core stays the queue's and editor's
+    proposals = propose(project, progress=progress, only_open=True, overlap=False)
     picked, note = None, ""
     try:
         picked = pick_tiles(project)

@@ -275,3 +275,18 @@ def test_with_precision_refuses_a_training_encoder(encoder):
         with_precision(model, "bfloat16")
     with pytest.raises(ValueError, match="precision: expected 'float32' or 'bfloat16'"):
         with_precision(model, "int8")
+
+
+def test_stages_overlap_only_on_a_spare_core():
+    from labeler.model.encoder import stages_can_overlap
+    from labeler.model.runtime import available_cores
+
+    before = torch.get_num_threads()
+    try:
+        torch.set_num_threads(available_cores())
+        assert not stages_can_overlap()
+        if available_cores() >= 2:
+            torch.set_num_threads(1)
+            assert stages_can_overlap()
+    finally:
+        torch.set_num_threads(before)

@@ -130,3 +130,29 @@ def test_retrain_follows_the_augment_setting(one_plot):
         assert project.store.latest_model_version(kind="head").details["mode"] == "features"
     finally:
         project.close()
+
+
+def test_encoding_the_next_block_meanwhile_gives_the_same_proposals(
+    one_plot, tmp_path, monkeypatch
+):
+    import shutil
+
+    from labeler.workflow import proposing
+
+    monkeypatch.setattr(proposing, "ROW_BLOCK_PX", 256)  # many blocks: a real pipeline
+    project, truth = one_plot
+    for t in project.store.tiles()[:3]:
+        save_tile_mask(project, t.id, "survey", truth[t.window.slices], parent_version=None)
+    retrain(project)
+    shutil.copytree(project.root, tmp_path / "twin")  # the same store, head and cache
+    together = propose(project, overlap=True)  # next block encoded in a thread of its own
+    with open_project(tmp_path / "twin") as twin:
+        alone = propose(twin, overlap=False)
+        theirs = twin.store.latest_proposals()
+    assert together.proposed == alone.proposed == len(project.store.tiles())
+    assert together.cache_misses == alone.cache_misses > 0
+    ours = project.store.latest_proposals()
+    assert set(ours) == set(theirs)
+    for tile_id, p in ours.items():
+        np.testing.assert_array_equal(p.mask(), theirs[tile_id].mask())
+        np.testing.assert_array_equal(p.uncertainty(), theirs[tile_id].uncertainty())
