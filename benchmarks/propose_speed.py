@@ -5,8 +5,9 @@ Prints ONE JSON line:
 - ``encoder_tiles_per_s``: the optimised encoder path as ``labeler propose`` runs it
   (``encode_tiles``: batch-norm folded into the convolutions, channels-last memory,
   ``torch.inference_mode``, batches of ``--batch`` tiles, float16 features out);
-- ``encoder_bf16_tiles_per_s``: the same path with ``precision="bfloat16"`` (opt-in;
-  fast only on CPUs with AVX512-BF16/AMX);
+- ``encoder_bf16_tiles_per_s``: the same path with ``precision="bfloat16"`` (what
+  ``labeler propose`` runs by default on CPUs with AVX512-BF16 or AMX,
+  ``model.precision = "auto"``; ``default_precision`` says which this machine gets);
 - ``baseline_tiles_per_s``: the same network and weights in NCHW float32 eager mode,
   batch norms unfolded, one tile at a time under ``torch.no_grad`` (measured in the
   same run, rounds interleaved with the optimised path);
@@ -16,6 +17,8 @@ Prints ONE JSON line:
   ``propose_tiles`` on features already computed and the tiles' pixels, with a refining
   head (FPN once, the dropout classifier ``mc_samples`` times for the entropy/margin/BALD
   maps, the full-resolution refinement once per tile for the mask);
+- ``head_bf16_tiles_per_s``: the same with the head's pyramid and refinement in
+  bfloat16 (``propose_tiles(precision="bfloat16")``; uncertainty arithmetic float32);
 - ``head_coarse_tiles_per_s``: the same head without pixels (coarse-only path: bilinear
   mask from the stride-4 mean probabilities, as before the refinement existed);
 - ``head_guided_tiles_per_s``: a head without refinement given the pixels (colour-guided
@@ -45,7 +48,12 @@ import torch
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from labeler.model.encoder import encode_tiles, load_encoder, to_input  # noqa: E402
+from labeler.model.encoder import (  # noqa: E402
+    encode_tiles,
+    load_encoder,
+    resolve_precision,
+    to_input,
+)
 from labeler.model.head import REFINE_CHANNELS, HeadConfig, ProposalHead  # noqa: E402
 from labeler.model.predict import propose_tiles  # noqa: E402
 from labeler.model.runtime import configure_threads  # noqa: E402
@@ -104,12 +112,26 @@ def main(argv: list[str] | None = None) -> int:
             h, head_features, mc_samples=args.mc_samples, batch_size=args.head_batch, images=images
         )
 
-    base_t, fast_t, bf16_t, head_t, coarse_t, guided_t = [], [], [], [], [], []
+    def heads_bf16() -> None:
+        propose_tiles(
+            head,
+            head_features,
+            mc_samples=args.mc_samples,
+            batch_size=args.head_batch,
+            images=head_images,
+            precision="bfloat16",
+            dropout_weights=kept,
+        )
+
+    kept: dict = {}  # the head's bfloat16 copy, made once as in one propose run
+    heads_bf16()
+    base_t, fast_t, bf16_t, head_t, coarse_t, guided_t, hb_t = [], [], [], [], [], [], []
     for _ in range(args.rounds):
         base_t.append(_timed(lambda: _baseline_pass(baseline, tiles[: args.baseline_tiles])))
         fast_t.append(_timed(lambda: encode_tiles(fast, tiles, batch_size=args.batch)))
         bf16_t.append(_timed(lambda: encode_tiles(fast_bf16, tiles, batch_size=args.batch)))
         head_t.append(_timed(lambda: heads(head, head_images)))
+        hb_t.append(_timed(heads_bf16))
         coarse_t.append(_timed(lambda: heads(head, None)))
         guided_t.append(_timed(lambda: heads(plain_head, head_images)))
     baseline_rate = args.baseline_tiles / min(base_t)
@@ -121,10 +143,12 @@ def main(argv: list[str] | None = None) -> int:
         "speedup": round(encoder_rate / baseline_rate, 2),
         "bf16_speedup": round(args.tiles / min(bf16_t) / baseline_rate, 2),
         "head_tiles_per_s": round(args.head_tiles / min(head_t), 1),
+        "head_bf16_tiles_per_s": round(args.head_tiles / min(hb_t), 1),
         "head_coarse_tiles_per_s": round(args.head_tiles / min(coarse_t), 1),
         "refine_cost_ratio": round(min(head_t) / min(coarse_t), 2),
         "head_guided_tiles_per_s": round(args.head_tiles / min(guided_t), 1),
         "peak_rss_mb": 0.0,
+        "default_precision": resolve_precision("auto"),
         "threads": threads,
         "batch": args.batch,
         "mc_samples": args.mc_samples,

@@ -35,7 +35,9 @@ Sections and options (defaults in brackets):
     early stopping is asked for (``retrain`` keeps the state at the end of the step
     budget: a few labelled tiles give too noisy a validation loss to choose by); ``finetune_stages`` [0] encoder
     stages trained with the head on the project's labels: 0 (frozen encoder), 2 or 4
-    (the last stages, at a tenth of the head's learning rate; a new encoder version).
+    (the last stages, at a tenth of the head's learning rate; a new encoder version);
+    ``precision`` ["auto"] arithmetic of ``propose``: bfloat16 where the CPU has it
+    natively, else float32 (same weights and encoder version), or "float32"/"bfloat16".
 ``[picker]``
     ``strategy`` ["mixed"] one of random, entropy, margin, bald, coreset, mixed;
     ``k`` [20] tiles per batch; ``seed`` [0].
@@ -116,6 +118,7 @@ __all__ = [
     "STRATEGIES",
     "AUGMENT_MODES",
     "FINETUNE_STAGES",
+    "PRECISIONS",
     "RETIRED_OPTIONS",
     "RANGES",
     "Range",
@@ -135,6 +138,9 @@ AUGMENT_MODES = ("auto", "turns", "features", "images")
 #: Encoder stages ``retrain`` may train with the head (``model.finetune_stages``; see
 #: labeler.model.tail): none, the last two (6-7) or the last four (4-7).
 FINETUNE_STAGES = (0, 2, 4)
+#: Arithmetic of the encoder and the head when proposing (``model.precision``; see
+#: labeler.model.encoder.resolve_precision): bfloat16 where the CPU has it, or always float32.
+PRECISIONS = ("auto", "float32", "bfloat16")
 
 
 @dataclass(frozen=True)
@@ -192,10 +198,12 @@ class ModelSettings(Checked):
     augment: str = "auto"
     patience: int = 10
     finetune_stages: int = 0
+    precision: str = "auto"
 
     def _check(self) -> None:
         check_choice("model", "augment", self.augment, AUGMENT_MODES)
         check_choice("model", "finetune_stages", self.finetune_stages, FINETUNE_STAGES)
+        check_choice("model", "precision", self.precision, PRECISIONS)
 
 
 @dataclass(frozen=True)
@@ -555,6 +563,7 @@ val_share = 0.2
 augment = "auto"          # "auto", "turns" (exact, cached), "images" (slow) or "features"
 patience = 10             # early stopping only; retrain keeps the state at the budget's end
 finetune_stages = 0       # encoder stages trained with the head: 0, 2 or 4
+precision = "auto"        # propose in bfloat16 where the CPU has it; "float32" turns it off
 
 [picker]
 strategy = "mixed"        # random, entropy, margin, bald, coreset, mixed

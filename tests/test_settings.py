@@ -59,6 +59,7 @@ def test_custom_classes(tmp_path):
         ('[picker]\nstrategy = "greedy"\n', "picker.strategy: expected one of"),
         ('[model]\naugment = "rotate"\n', "model.augment: expected one of auto, turns, features, images"),
         ("[model]\npatience = 0\n", "model.patience: expected a whole number at least 1, got 0"),
+        ('[model]\nprecision = "int8"\n', "model.precision: expected one of auto, float32, bfloat16"),
         ("[tiles]\nsize = 64\noverlap = 64\n", "tiles.overlap"),
         ("[picker]\nk = true\n", "picker.k: expected a whole number at least 1, got True"),
         ('[editor]\nopacity = "half"\n', "editor.opacity: expected a number"),

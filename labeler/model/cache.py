@@ -9,7 +9,8 @@ One file per tile, in a format of our own:
     8 bytes   magic ``b"LBLFEAT1"``
     4 bytes   header length n (unsigned, little-endian)
     n bytes   UTF-8 JSON header: key, encoder version, tile shape, level shapes, dtype,
-              payload length and SHA-256 of the payload
+              payload length, SHA-256 of the payload and the precision of the
+              encoder that made it ("float32" when absent)
     payload   the four float16 arrays (C, h, w), C order, one after the other
 
 Files are written atomically (temporary file + ``os.replace``). An entry is used only
@@ -17,6 +18,13 @@ when every check passes: magic, header, key, encoder version, tile and level sha
 payload length and checksum. Anything else (a stale entry of another version, key or
 shape, a truncated or bit-flipped file) is recomputed and rewritten, never trusted.
 The cache holds derivable data: deleting the folder at any time only costs time.
+
+Precision (``model.precision``) is a runtime setting of the same encoder weights, so
+entries of both precisions share one version folder. A cache opened for float32 (what
+training opens) uses float32 entries only and recomputes the others in float32, so heads
+are always trained on float32 features; a cache opened for bfloat16 (proposing) uses
+entries of either: a head proposes from bfloat16 features with the mIoU of float32 ones
+to 0.0002 on the demo plots (``benchmarks/precision_quality.py``).
 """
 
 from __future__ import annotations
@@ -30,9 +38,16 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 
 import numpy as np
+import torch
 
 from labeler.fileio import atomic_write_bytes
-from labeler.model.encoder import FEATURE_CHANNELS, encode_tiles, feature_shapes
+from labeler.model.encoder import (
+    FEATURE_CHANNELS,
+    PRECISIONS,
+    encode_tiles,
+    feature_shapes,
+    precision_of,
+)
 
 __all__ = ["FeatureCache", "MAGIC"]
 
@@ -52,6 +67,9 @@ class FeatureCache:
         Cache root (``<project>/cache/features``); created on first write.
     encoder_version : str
         The encoder's ``version`` (letters, digits, ``.``, ``_``, ``-``).
+    precision : {"float32", "bfloat16"}
+        Arithmetic of the encoder that fills the cache (recorded in each entry). A
+        float32 cache reads float32 entries only; a bfloat16 one reads both.
 
     Attributes
     ----------
@@ -59,14 +77,24 @@ class FeatureCache:
         Entries served from disk and entries (re)computed since creation.
     """
 
-    def __init__(self, folder: str | os.PathLike[str], *, encoder_version: str) -> None:
+    def __init__(
+        self,
+        folder: str | os.PathLike[str],
+        *,
+        encoder_version: str,
+        precision: str = "float32",
+    ) -> None:
         if not isinstance(encoder_version, str) or not _VERSION_RE.match(encoder_version):
             raise ValueError(
                 "encoder_version: expected 1-128 letters, digits, '.', '_' or '-' "
                 f"(it names a folder), got {encoder_version!r}"
             )
+        if precision not in PRECISIONS:
+            raise ValueError(f"precision: expected 'float32' or 'bfloat16', got {precision!r}")
         self.folder = Path(folder)
         self.encoder_version = encoder_version
+        self.precision = precision
+        self._readable = {"float32"} if precision == "float32" else set(PRECISIONS)
         self.hits = 0
         self.misses = 0
 
@@ -118,6 +146,7 @@ class FeatureCache:
                 and all(len(s) == 3 for s in shapes)
                 and shapes == [tuple(s) for s in feature_shapes(*stored_tile)]
                 and (tile_shape is None or stored_tile == tuple(tile_shape))
+                and header.get("precision", "float32") in self._readable
             )
             length = int(header["payload_bytes"])
             checksum = str(header["sha256"])
@@ -167,6 +196,7 @@ class FeatureCache:
                 "dtype": "float16",
                 "payload_bytes": len(payload),
                 "sha256": hashlib.sha256(payload).hexdigest(),
+                "precision": self.precision,
             },
             sort_keys=True,
         ).encode("utf-8")
@@ -219,6 +249,11 @@ class FeatureCache:
             raise ValueError(
                 f"encoder: its version {version!r} differs from the cache's "
                 f"{self.encoder_version!r}; open FeatureCache(..., encoder_version=encoder.version)"
+            )
+        if isinstance(encoder, torch.nn.Module) and precision_of(encoder) != self.precision:
+            raise ValueError(
+                f"encoder: it runs in {precision_of(encoder)}, the cache records "
+                f"{self.precision}; open FeatureCache(..., precision=precision_of(encoder))"
             )
         if tile_shapes is not None and len(tile_shapes) != len(keys):
             raise ValueError(

@@ -31,7 +31,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from labeler.model.runtime import inference
+from labeler.model.runtime import available_cores, inference
 from labeler.model.weights import (
     map_state_dict,
     read_state_dict,
@@ -53,6 +53,11 @@ __all__ = [
     "to_input",
     "encode_tiles",
     "feature_shapes",
+    "PRECISIONS",
+    "resolve_precision",
+    "with_precision",
+    "precision_of",
+    "stages_can_overlap",
 ]
 
 #: Batch-norm epsilon of the TensorFlow-trained weights.
@@ -64,6 +69,10 @@ FEATURE_STRIDES = (4, 8, 16, 32)
 FEATURE_CHANNELS = (24, 40, 112, 320)
 #: Revision of this implementation; part of the encoder version (cache keys).
 _CODE_REVISION = "r1"
+#: Arithmetic an inference encoder may run in (:func:`with_precision`).
+PRECISIONS = ("float32", "bfloat16")
+#: CPU flags (Linux ``/proc/cpuinfo``) of native bfloat16 arithmetic: AVX512-BF16, AMX-BF16.
+_BF16_FLAGS = ("avx512_bf16", "amx_bf16")
 
 
 @dataclass(frozen=True)
@@ -318,17 +327,19 @@ def load_encoder(
     channels_last : bool
         Keep weights in channels-last memory order (faster on CPU).
     precision : {"float32", "bfloat16"}
-        Arithmetic of the convolutions. ``"bfloat16"`` is about 1.5 x faster on CPUs with
-        AVX512-BF16 or AMX (and much slower on others); its features differ from float32
-        by about 5 % (relative L2) and the ImageNet checks still hold. The encoder version
-        carries a ``-bf16`` suffix, so the two never share cache entries.
+        Arithmetic of the convolutions (:func:`with_precision`). ``"bfloat16"`` is about
+        1.5-2 x faster on CPUs with AVX512-BF16 or AMX (and much slower on others); its
+        features differ from float32 by about 5 % (relative L2) and the ImageNet checks
+        still hold. The precision is a way of running the same weights, not another
+        encoder: the ``version`` is the same, so a head trained on either reads features
+        of either, and the feature cache keeps one entry per tile.
 
     Raises
     ------
     WeightsMismatchError
         If the file's keys or shapes do not match (the message names them).
     """
-    if precision not in ("float32", "bfloat16"):
+    if precision not in PRECISIONS:
         raise ValueError(f"precision: expected 'float32' or 'bfloat16', got {precision!r}")
     file = weights_path() if path is None else path
     model = Lite0Encoder()
@@ -341,10 +352,98 @@ def load_encoder(
         model = fold_batchnorm(model)
     if channels_last:
         model = model.to(memory_format=torch.channels_last)
-    if precision == "bfloat16":
-        model = model.to(torch.bfloat16)
-        model.version += "-bf16"
-    return model.freeze()
+    return with_precision(model, precision).freeze()
+
+
+def _cpu_flags() -> set[str]:
+    """Flags of the first CPU in ``/proc/cpuinfo`` (Linux); empty where there is none."""
+    try:
+        with open("/proc/cpuinfo", encoding="ascii", errors="replace") as fh:
+            for line in fh:
+                if line.startswith("flags"):
+                    return set(line.split(":", 1)[1].split())
+    except OSError:
+        pass
+    return set()
+
+
+def resolve_precision(setting: str = "auto", *, flags: set[str] | None = None) -> str:
+    """The arithmetic to run inference in, from the ``model.precision`` setting.
+
+    Parameters
+    ----------
+    setting : {"auto", "float32", "bfloat16"}
+        ``"auto"`` (the default): bfloat16 when the CPU computes it natively
+        (AVX512-BF16 or AMX-BF16), float32 otherwise (emulated bfloat16 is slower than
+        float32); the other two are used as they are.
+    flags : set of str, optional
+        CPU flags to judge by; default those of this machine's ``/proc/cpuinfo`` (none
+        outside Linux, so ``"auto"`` is float32 there).
+
+    Returns
+    -------
+    str
+        ``"float32"`` or ``"bfloat16"``.
+
+    Raises
+    ------
+    ValueError
+        For any other setting.
+    """
+    if setting in PRECISIONS:
+        return setting
+    if setting != "auto":
+        raise ValueError(
+            f"precision: expected 'auto', 'float32' or 'bfloat16', got {setting!r}; "
+            "set model.precision"
+        )
+    have = _cpu_flags() if flags is None else flags
+    return "bfloat16" if any(f in have for f in _BF16_FLAGS) else "float32"
+
+
+def precision_of(module: nn.Module) -> str:
+    """``"bfloat16"`` when the module's first parameter is bfloat16, else ``"float32"``."""
+    for p in module.parameters():
+        return "bfloat16" if p.dtype == torch.bfloat16 else "float32"
+    return "float32"
+
+
+def with_precision(encoder: Lite0Encoder, precision: str) -> Lite0Encoder:
+    """The inference ``encoder`` converted to run in ``precision`` (in place; returned).
+
+    The input normalisation runs in float32 and is cast once; the feature maps come out
+    in ``precision`` (:func:`encode_tiles` stores them as float16 either way). The
+    ``version`` is kept: precision is a runtime setting of the same weights. Measured on
+    the demo plots, a head trained on float32 features proposes from bfloat16 features
+    with the same mIoU to 0.0005 (README, "Measured"), so cached features of either
+    precision serve heads of either.
+
+    Parameters
+    ----------
+    encoder : Lite0Encoder
+        A frozen inference encoder (batch norms folded or not).
+    precision : {"float32", "bfloat16"}
+
+    Returns
+    -------
+    Lite0Encoder
+
+    Raises
+    ------
+    ValueError
+        For another precision, or an encoder being trained (``frozen`` False).
+    """
+    if precision not in PRECISIONS:
+        raise ValueError(f"precision: expected 'float32' or 'bfloat16', got {precision!r}")
+    if not getattr(encoder, "frozen", True):
+        raise ValueError(
+            "encoder: expected a frozen inference encoder, got one being trained; "
+            "training runs in float32"
+        )
+    dtype = torch.bfloat16 if precision == "bfloat16" else torch.float32
+    if precision_of(encoder) != precision:
+        encoder.to(dtype)
+    return encoder
 
 
 def encoder_version(path: str | os.PathLike[str] | None = None) -> str:
@@ -452,3 +551,12 @@ def encode_tiles(
             if progress is not None:
                 progress(i, total)
     return out
+
+
+def stages_can_overlap() -> bool:
+    """True when torch runs fewer intra-op threads than this process has cores.
+
+    Then a second stage (reading and encoding the next block of tiles while the head
+    proposes this one) has a core of its own instead of competing with torch's threads.
+    """
+    return torch.get_num_threads() < available_cores()

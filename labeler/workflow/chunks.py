@@ -225,6 +225,7 @@ def propose_chunk(chunk: ProposeChunk, *, encoder_weights: bytes | None = None) 
         reachable or changed size, or the head checkpoint cannot be loaded.
     """
     from labeler.model.cache import FeatureCache
+    from labeler.model.encoder import precision_of, resolve_precision, with_precision
     from labeler.model.runtime import configure_threads
 
     configure_threads(chunk.threads)
@@ -233,6 +234,8 @@ def propose_chunk(chunk: ProposeChunk, *, encoder_weights: bytes | None = None) 
         if encoder_weights is None
         else _adapted_encoder(chunk.encoder_version, encoder_weights)
     )
+    # the model.precision setting, judged by this worker's CPU (the version is the same)
+    with_precision(encoder, resolve_precision(chunk.settings.model.precision))
     if encoder.version != chunk.encoder_version:
         raise LabelerError(
             f"this worker's encoder is {encoder.version}, the client's {chunk.encoder_version}; "
@@ -243,7 +246,11 @@ def propose_chunk(chunk: ProposeChunk, *, encoder_weights: bytes | None = None) 
         if chunk.head_path is None
         else _load_head(chunk.head_path, encoder_version=encoder.version)
     )
-    cache = FeatureCache(worker_cache_folder(chunk.cache_folder), encoder_version=encoder.version)
+    cache = FeatureCache(
+        worker_cache_folder(chunk.cache_folder),
+        encoder_version=encoder.version,
+        precision=precision_of(encoder),
+    )
     path = chunk.image_path
     if not os.path.isfile(path):
         raise InputError(

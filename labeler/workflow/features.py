@@ -14,6 +14,7 @@ when a function here is called.
 
 from __future__ import annotations
 
+import copy
 from collections.abc import Callable, Sequence
 from typing import TYPE_CHECKING
 
@@ -59,7 +60,11 @@ def tile_key(image: ImageRecord, tile: TileRecord) -> str:
 
 
 def encoder_and_cache(
-    project: Project, *, encoder: str | None = None, unknown_is_default: bool = False
+    project: Project,
+    *,
+    encoder: str | None = None,
+    unknown_is_default: bool = False,
+    precision: str = "float32",
 ) -> tuple[Lite0Encoder, FeatureCache]:
     """The encoder of a version and the project's feature cache for it.
 
@@ -77,6 +82,11 @@ def encoder_and_cache(
         Use the default when ``encoder`` names no version of the project (a head of
         an unknown encoder: :func:`load_head` then names the mismatch) instead of
         raising.
+    precision : {"float32", "bfloat16", "auto"}
+        Arithmetic of the encoder (:func:`labeler.model.encoder.resolve_precision`;
+        ``labeler propose`` passes the ``model.precision`` setting; training keeps the
+        float32 default). The encoder version is the same in either; a float32 cache
+        reads float32 entries only, a bfloat16 one both (:mod:`labeler.model.cache`).
 
     Returns
     -------
@@ -100,18 +110,28 @@ def encoder_and_cache(
             find_encoder_version(project, encoder)
         except LabelerError:
             encoder = None
+    from labeler.model.encoder import resolve_precision, with_precision
+
+    arithmetic = resolve_precision(precision)
     key = _encoder_key(project, encoder, find_encoder_version(project, encoder))
-    model = _LAST_ENCODER.get(key)
+    model = _LAST_ENCODER.get((key, arithmetic))
     if model is None:
-        model = load_encoder_version(project, encoder)
-        _LAST_ENCODER.clear()  # one encoder kept, the last one loaded
-        _LAST_ENCODER[key] = model
-    cache = FeatureCache(project.cache_dir / "features", encoder_version=model.version)
+        other = next((m for (k, _), m in _LAST_ENCODER.items() if k == key), None)
+        if other is None:
+            model = load_encoder_version(project, encoder)
+            _LAST_ENCODER.clear()  # one encoder kept (in up to two precisions)
+        else:  # the same weights in the other precision: a converted copy, not a reload
+            model = copy.deepcopy(other)
+        model = with_precision(model, arithmetic)
+        _LAST_ENCODER[(key, arithmetic)] = model
+    cache = FeatureCache(
+        project.cache_dir / "features", encoder_version=model.version, precision=arithmetic
+    )
     return model, cache
 
 
-#: The last encoder :func:`encoder_and_cache` built, by :func:`_encoder_key`: a retrain
-#: and the renewal of the proposals that follows it in one process build it once.
+#: The last encoder :func:`encoder_and_cache` built, by :func:`_encoder_key` and precision:
+#: a retrain and the renewal of the proposals that follows it in one process build it once.
 _LAST_ENCODER: dict[tuple, Lite0Encoder] = {}
 
 
@@ -123,7 +143,7 @@ def _encoder_key(project: Project, which: str | None, record) -> tuple:
         from labeler.workflow.encoders import IMAGENET
 
         installed = (str(project.root), IMAGENET, None)
-        held = _LAST_ENCODER.get(installed)
+        held = next((m for (k, _), m in _LAST_ENCODER.items() if k == installed), None)
         if which in (None, IMAGENET) or (held is not None and held.version == which):
             return installed
         return (str(project.root), which, None)

@@ -11,6 +11,7 @@ the stride-4 grid). Training the head is :mod:`labeler.workflow.retraining`.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -180,6 +181,7 @@ def _block_proposals(
                 )
             )
     else:
+        from labeler.model.encoder import resolve_precision
         from labeler.model.predict import propose_tiles
 
         pixels = [_part(rgb, block, t.window) for t in members]
@@ -191,6 +193,7 @@ def _block_proposals(
             seed=settings.model.seed,
             images=pixels,
             dropout_weights=dropout_weights,
+            precision=resolve_precision(settings.model.precision),
         )
         for t, p, f in zip(members, props, feats, strict=True):
             items.append(
@@ -212,19 +215,74 @@ def _block_proposals(
     return items
 
 
+class _BlockWriter:
+    """Writes each block's proposals to the store in a thread of its own.
+
+    The next block is read, encoded and proposed while the last one is written (PNG
+    encoding of the masks, the transaction): at most one block waits, so memory stays
+    one block's worth. A block's proposals are still stored in one transaction, in
+    block order; an error of a write is raised at the next :meth:`submit` or on leaving
+    the ``with`` block, and leaving it always waits for the write under way, so an
+    interrupted run keeps every block it finished.
+    """
+
+    def __init__(self, store, *, only_open: bool, progress: Progress, total: int) -> None:
+        self._store = store
+        self._only_open = only_open
+        self._progress = progress
+        self._total = total
+        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="labeler-proposals")
+        self._pending: tuple[Future, int, str] | None = None
+        self.proposed = 0
+        self.left_alone = 0
+        self.done = 0
+
+    def submit(self, model_version_id: int, items: list[NewProposal], *, label: str) -> None:
+        """Write ``items`` once the block before is written."""
+        self.wait()
+        future = self._pool.submit(
+            self._store.add_proposals, model_version_id, items, only_open=self._only_open
+        )
+        self._pending = (future, len(items), label)
+
+    def wait(self) -> None:
+        """Wait for the write under way (raising its error) and count it."""
+        if self._pending is None:
+            return
+        future, n, label = self._pending
+        self._pending = None
+        written = future.result()
+        self.proposed += len(written)
+        self.left_alone += n - len(written)
+        self.done += n
+        self._progress(self.done, self._total, label)
+
+    def __enter__(self) -> _BlockWriter:
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        try:
+            if exc_type is None:
+                self.wait()
+        finally:
+            self._pool.shutdown(wait=True)
+
+
 def propose(
     project: Project,
     *,
     progress: Progress = no_progress,
     only_open: bool = False,
     cluster: str | None = None,
+    overlap: bool | None = None,
 ) -> ProposeResult:
     """Propose masks for every tile whose proposal is older than the newest model.
 
     Tiles are proposed block by block (:data:`ROW_BLOCK_PX`): only one block's pixels,
-    features and proposals are held at a time, and each block's proposals are stored in
-    one transaction as soon as they are made, so an interrupted run keeps the blocks it
-    finished. Unseen tiles become ``proposed``.
+    features and proposals are held at a time (and the proposals of the block before,
+    being written), and each block's proposals are stored in one transaction in a
+    writing thread while the next block is computed, so an interrupted run keeps the
+    blocks it finished. Unseen tiles become ``proposed``.
 
     Parameters
     ----------
@@ -239,6 +297,12 @@ def propose(
     cluster : str, optional
         Address of a Dask scheduler: the same work is done by its workers
         (:func:`labeler.workflow.cluster.propose_on_cluster`); None works here.
+    overlap : bool, optional
+        Read and encode the next block in a thread of its own while the head proposes
+        this one. None (the default): when torch runs fewer threads than this process
+        has cores (:func:`labeler.model.encoder.stages_can_overlap`), so the two stages
+        each get a core; the proposals are the same either way. Background renewal
+        passes False to leave its spare core to the queue and the editor.
 
     Returns
     -------
@@ -264,6 +328,7 @@ def propose(
         project,
         encoder=None if head_mv is None else head_encoder(head_mv),
         unknown_is_default=True,  # load_head then names the head's own problem
+        precision=settings.model.precision,
     )
     head = tail = None
     if head_mv is not None:
@@ -291,51 +356,69 @@ def propose(
             todo[im.id] = tiles
     _check_image_files(project, [im for im in images if im.id in todo])
     total = sum(len(v) for v in todo.values())
-    done = 0
-    proposed = 0
+    jobs = [
+        (im, block, members)
+        for im in images
+        if todo.get(im.id)
+        for block, members in _blocks(todo[im.id], im)
+    ]
+    if overlap is None:
+        from labeler.model.encoder import stages_can_overlap
+
+        overlap = stages_can_overlap()
+    started = 0  # tiles whose proposals are made (written or being written)
     dropout_weights: dict = {}  # the head's MC-dropout weights per grid size, made once
-    for im in images:
-        tiles = todo.get(im.id)
-        if not tiles:
-            continue
+
+    def prepare(job, report=None) -> tuple[np.ndarray, list]:
+        """Read a block's pixels and its tiles' features (from the cache or encoded)."""
+        im, block, members = job
         with open_image(project.image_path(im)) as reader:
             if reader.info.shape != im.shape:
                 raise InputError(
                     f"{project.image_path(im)}: size {reader.info.shape} differs from the "
                     f"stored {im.shape}; the image file was changed after it was added"
                 )
-            for block, members in _blocks(tiles, im):
-                rgb = reader.read(block)  # once: the tiles are cut from it
-                feats = tile_features(
-                    cache,
-                    encoder,
-                    reader,
-                    im,
-                    members,
-                    progress=lambda d, t, base=done, name=im.name: progress(
+            rgb = reader.read(block)  # once: the tiles are cut from it
+            feats = tile_features(
+                cache, encoder, reader, im, members, progress=report, block=(rgb, block)
+            )
+        return rgb, feats
+
+    with (
+        _BlockWriter(store, only_open=only_open, progress=progress, total=total) as writer,
+        ThreadPoolExecutor(max_workers=1, thread_name_prefix="labeler-encode") as ahead_pool,
+    ):
+        ahead: Future | None = None
+        for k, job in enumerate(jobs):
+            im, block, members = job
+            if overlap:  # this block was encoded meanwhile; start encoding the next one
+                current = ahead if ahead is not None else ahead_pool.submit(prepare, job)
+                rgb, feats = current.result()
+                ahead = ahead_pool.submit(prepare, jobs[k + 1]) if k + 1 < len(jobs) else None
+            else:
+                rgb, feats = prepare(
+                    job,
+                    lambda d, t, base=started, name=im.name: progress(
                         base + d, total, f"{name}: encoding"
                     ),
-                    block=(rgb, block),
                 )
-                items = _block_proposals(
-                    rgb,
-                    block,
-                    members,
-                    feats,
-                    head=head,
-                    tail=tail,
-                    settings=settings,
-                    dropout_weights=dropout_weights,
-                )
-                del rgb
-                del feats  # one block's features at a time
-                if mv is None:
-                    mv = _new_cold_start_version(project)
-                written = store.add_proposals(mv.id, items, only_open=only_open)
-                proposed += len(written)
-                left_alone += len(items) - len(written)
-                done += len(members)
-                progress(done, total, f"{im.name}: proposed")
+            items = _block_proposals(
+                rgb,
+                block,
+                members,
+                feats,
+                head=head,
+                tail=tail,
+                settings=settings,
+                dropout_weights=dropout_weights,
+            )
+            del rgb
+            del feats  # one block's features at a time (and the next one's, overlapping)
+            if mv is None:
+                mv = _new_cold_start_version(project)
+            writer.submit(mv.id, items, label=f"{im.name}: proposed")
+            started += len(members)
+    proposed, left_alone = writer.proposed, left_alone + writer.left_alone
     progress(total, total, "done")
     if mv is None:  # nothing to propose and the cold start never used: name it anyway
         mv = _new_cold_start_version(project)

@@ -34,6 +34,9 @@ __all__ = ["BACKGROUND_NICE", "RenewResult", "renew_proposals", "background_work
 #: Nice increment of a background worker thread (common practice, no source).
 BACKGROUND_NICE = 10
 
+#: Set in a thread while it runs :func:`background_work` (no second stage then).
+_IN_BACKGROUND = threading.local()
+
 
 @dataclass(frozen=True)
 class RenewResult:
@@ -84,7 +87,10 @@ def renew_proposals(project: Project, *, progress: Progress = no_progress) -> Re
         loaded, an image file changed since it was added).
     """
     started = time.perf_counter()
-    proposals = propose(project, progress=progress, only_open=True)
+    # reading the next block's pixels and cached features overlaps the head on this one,
+    # but not in the background of the queue: its spare core stays the queue's and editor's
+    overlap = False if getattr(_IN_BACKGROUND, "active", False) else None
+    proposals = propose(project, progress=progress, only_open=True, overlap=overlap)
     picked, note = None, ""
     try:
         picked = pick_tiles(project)
@@ -127,5 +133,10 @@ def background_work(*, nice: int = BACKGROUND_NICE) -> Iterator[None]:
 
     if nice:
         _lower_thread_priority(nice)
-    with thread_cap(spare=1):
-        yield
+    was = getattr(_IN_BACKGROUND, "active", False)
+    _IN_BACKGROUND.active = True
+    try:
+        with thread_cap(spare=1):
+            yield
+    finally:
+        _IN_BACKGROUND.active = was

@@ -216,3 +216,57 @@ def test_real_encoder_round_trip(tmp_path, encoder):
         # float16 storage: relative rounding 2**-11 (IEEE 754 half precision)
         ref = direct[lvl][1].numpy()
         np.testing.assert_allclose(out[1][lvl].astype(np.float32), ref, rtol=2**-10, atol=1e-3)
+
+
+def test_precision_is_recorded_and_a_float32_cache_reads_float32_only(tmp_path, pooling_encoder):
+    tiles = _tiles(2)
+    keys = list(tiles)
+    low = FeatureCache(tmp_path, encoder_version=pooling_encoder.version, precision="bfloat16")
+    low.get_or_compute(keys, Loader(tiles), pooling_encoder)
+    assert low.misses == 2
+    # a bfloat16 reader (proposing) uses the entries of either precision
+    again = FeatureCache(tmp_path, encoder_version=pooling_encoder.version, precision="bfloat16")
+    again.get_or_compute(keys, Loader(tiles), pooling_encoder)
+    assert again.hits == 2 and again.misses == 0
+    # a float32 reader (training) recomputes them in float32 and rewrites them
+    exact = FeatureCache(tmp_path, encoder_version=pooling_encoder.version)
+    load = Loader(tiles)
+    exact.get_or_compute(keys, load, pooling_encoder)
+    assert load.asked == keys and exact.misses == 2
+    # now float32 entries: both readers use them
+    for precision in ("float32", "bfloat16"):
+        c = FeatureCache(tmp_path, encoder_version=pooling_encoder.version, precision=precision)
+        c.get_or_compute(keys, Loader(tiles), pooling_encoder)
+        assert c.hits == 2, precision
+
+
+def test_entry_without_precision_reads_as_float32(tmp_path, pooling_encoder):
+    import json
+    import struct
+
+    tiles = _tiles(1)
+    (key,) = tiles
+    cache = FeatureCache(tmp_path, encoder_version=pooling_encoder.version, precision="bfloat16")
+    cache.get_or_compute([key], Loader(tiles), pooling_encoder)
+    path = cache.path_for(key)
+    data = path.read_bytes()
+    (n,) = struct.unpack("<I", data[len(MAGIC) : len(MAGIC) + 4])
+    header = json.loads(data[len(MAGIC) + 4 : len(MAGIC) + 4 + n])
+    del header["precision"]  # as written before the precision was recorded
+    blob = json.dumps(header, sort_keys=True).encode()
+    path.write_bytes(MAGIC + struct.pack("<I", len(blob)) + blob + data[len(MAGIC) + 4 + n :])
+    exact = FeatureCache(tmp_path, encoder_version=pooling_encoder.version)
+    assert exact.load(key) is not None
+
+
+def test_precision_mismatch_is_refused(tmp_path, encoder):
+    import copy
+
+    from labeler.model.encoder import with_precision
+
+    low = with_precision(copy.deepcopy(encoder), "bfloat16")
+    cache = FeatureCache(tmp_path, encoder_version=encoder.version)
+    with pytest.raises(ValueError, match="encoder: it runs in bfloat16, the cache records float32"):
+        cache.get_or_compute(["k"], lambda ks: [np.zeros((8, 8, 3), np.uint8)], low)
+    with pytest.raises(ValueError, match="precision: expected 'float32' or 'bfloat16', got 'half'"):
+        FeatureCache(tmp_path, encoder_version=encoder.version, precision="half")

@@ -15,10 +15,14 @@ from labeler.model.encoder import (
     _fold_one,
     _same_padding,
     encode_tiles,
+    encoder_version,
     feature_shapes,
     fold_batchnorm,
     load_encoder,
+    precision_of,
+    resolve_precision,
     to_input,
+    with_precision,
 )
 
 # ImageNet-1k class indices, published with the dataset (ILSVRC 2012 synset order):
@@ -214,7 +218,9 @@ def test_encode_tiles_rejects_zero_batch(encoder):
 
 def test_bfloat16_encoder_still_classifies(photos):
     fast = load_encoder(precision="bfloat16")
-    assert fast.version.endswith("-r1-bf16")
+    # precision is a way of running the same weights: the version (cache key) is the same
+    assert fast.version == load_encoder().version == encoder_version()
+    assert precision_of(fast) == "bfloat16"
     probs = fast.classify(photos).softmax(dim=1).numpy()
     assert probs[0].argmax() in CAT_CLASSES and probs[0, list(CAT_CLASSES)].sum() > 0.6
     assert probs[1].argmax() in COFFEE_CLASSES and probs[1, 967] > 0.6
@@ -225,3 +231,62 @@ def test_bfloat16_encoder_still_classifies(photos):
 def test_unknown_precision_is_refused():
     with pytest.raises(ValueError, match="precision: expected 'float32' or 'bfloat16', got 'int4'"):
         load_encoder(precision="int4")
+
+
+@pytest.mark.parametrize(
+    ("setting", "flags", "want"),
+    [
+        ("auto", {"avx512f", "avx512_bf16"}, "bfloat16"),
+        ("auto", {"amx_bf16", "amx_tile"}, "bfloat16"),
+        ("auto", {"avx512f", "avx2"}, "float32"),  # emulated bfloat16 is slower
+        ("auto", set(), "float32"),
+        ("float32", {"avx512_bf16"}, "float32"),
+        ("bfloat16", set(), "bfloat16"),
+    ],
+)
+def test_resolve_precision_follows_the_setting_and_the_cpu(setting, flags, want):
+    # the CPU flag names are the Linux kernel's (arch/x86/include/asm/cpufeatures.h)
+    assert resolve_precision(setting, flags=flags) == want
+
+
+def test_resolve_precision_refuses_other_settings():
+    with pytest.raises(ValueError, match="precision: expected 'auto', 'float32' or 'bfloat16'"):
+        resolve_precision("float16", flags=set())
+
+
+def test_with_precision_converts_in_place_and_back(encoder):
+    model = fold_batchnorm(encoder)
+    tile = np.random.default_rng(3).integers(0, 256, (64, 64, 3), dtype=np.uint8)
+    want = encode_tiles(model, [tile])[0]
+    assert with_precision(model, "bfloat16") is model and precision_of(model) == "bfloat16"
+    low = encode_tiles(model, [tile])[0]
+    with_precision(model, "float32")
+    again = encode_tiles(model, [tile])[0]
+    for a, b, c in zip(want, low, again, strict=True):
+        # back in float32 the weights are the bfloat16-rounded ones: close, not equal
+        rel = np.linalg.norm(a.astype(np.float32) - b) / np.linalg.norm(a.astype(np.float32))
+        assert rel < 0.2  # bfloat16 keeps 8 bits of mantissa; common practice, no source
+        assert c.dtype == np.float16 and c.shape == a.shape
+
+
+def test_with_precision_refuses_a_training_encoder(encoder):
+    model = fold_batchnorm(encoder).unfreeze()
+    with pytest.raises(ValueError, match="encoder: expected a frozen inference encoder"):
+        with_precision(model, "bfloat16")
+    with pytest.raises(ValueError, match="precision: expected 'float32' or 'bfloat16'"):
+        with_precision(model, "int8")
+
+
+def test_stages_overlap_only_on_a_spare_core():
+    from labeler.model.encoder import stages_can_overlap
+    from labeler.model.runtime import available_cores
+
+    before = torch.get_num_threads()
+    try:
+        torch.set_num_threads(available_cores())
+        assert not stages_can_overlap()
+        if available_cores() >= 2:
+            torch.set_num_threads(1)
+            assert stages_can_overlap()
+    finally:
+        torch.set_num_threads(before)

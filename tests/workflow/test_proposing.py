@@ -80,7 +80,7 @@ def test_missing_checkpoint_is_a_clear_error(one_plot):
 def test_head_proposals_are_refined_from_the_tile_pixels(one_plot):
     from labeler.imagery.read import read_image
     from labeler.model.checkpoint import load_checkpoint
-    from labeler.model.encoder import encode_tiles, load_encoder
+    from labeler.model.encoder import encode_tiles, load_encoder, resolve_precision
     from labeler.model.predict import propose_tiles
 
     project, truth = one_plot
@@ -97,10 +97,16 @@ def test_head_proposals_are_refined_from_the_tile_pixels(one_plot):
     # the stored mask is the refined one, made from the tile's own pixels
     tile = tiles[7]
     image = read_image(project.image_path(store.images()[0]))[tile.window.slices]
-    feats = encode_tiles(load_encoder(), [image])
     settings = project.settings.model
+    precision = resolve_precision(settings.precision)  # the model.precision setting
+    feats = encode_tiles(load_encoder(precision=precision), [image])
     want = propose_tiles(
-        head, feats, mc_samples=settings.mc_samples, seed=settings.seed, images=[image]
+        head,
+        feats,
+        mc_samples=settings.mc_samples,
+        seed=settings.seed,
+        images=[image],
+        precision=precision,
     )[0]
     assert want.refined
     stored = store.latest_proposal(tile.id)
@@ -124,3 +130,29 @@ def test_retrain_follows_the_augment_setting(one_plot):
         assert project.store.latest_model_version(kind="head").details["mode"] == "features"
     finally:
         project.close()
+
+
+def test_encoding_the_next_block_meanwhile_gives_the_same_proposals(
+    one_plot, tmp_path, monkeypatch
+):
+    import shutil
+
+    from labeler.workflow import proposing
+
+    monkeypatch.setattr(proposing, "ROW_BLOCK_PX", 256)  # many blocks: a real pipeline
+    project, truth = one_plot
+    for t in project.store.tiles()[:3]:
+        save_tile_mask(project, t.id, "survey", truth[t.window.slices], parent_version=None)
+    retrain(project)
+    shutil.copytree(project.root, tmp_path / "twin")  # the same store, head and cache
+    together = propose(project, overlap=True)  # next block encoded in a thread of its own
+    with open_project(tmp_path / "twin") as twin:
+        alone = propose(twin, overlap=False)
+        theirs = twin.store.latest_proposals()
+    assert together.proposed == alone.proposed == len(project.store.tiles())
+    assert together.cache_misses == alone.cache_misses > 0
+    ours = project.store.latest_proposals()
+    assert set(ours) == set(theirs)
+    for tile_id, p in ours.items():
+        np.testing.assert_array_equal(p.mask(), theirs[tile_id].mask())
+        np.testing.assert_array_equal(p.uncertainty(), theirs[tile_id].uncertainty())

@@ -104,3 +104,29 @@ def test_background_work_caps_torch_threads_and_restores_them():
     cap = max(1, available_cores() - 1)  # the free cores (at most all of them) less one
     assert seen["inside"] <= cap and seen["configured"] <= cap
     assert torch.get_num_threads() == before
+
+
+def test_renewal_overlaps_its_stages_only_in_the_foreground(monkeypatch):
+    import threading
+
+    from labeler.workflow import renewing
+
+    asked = []
+
+    def fake_propose(project, **kwargs):
+        asked.append(kwargs["overlap"])
+        return "proposals"
+
+    monkeypatch.setattr(renewing, "propose", fake_propose)
+    monkeypatch.setattr(renewing, "pick_tiles", lambda project: None)
+    renewing.renew_proposals(object())  # a command: overlap when a core is spare
+
+    def job():
+        with background_work(nice=0):  # the queue's worker: its spare core stays free
+            renewing.renew_proposals(object())
+        renewing.renew_proposals(object())  # after it, the thread is foreground again
+
+    worker = threading.Thread(target=job)
+    worker.start()
+    worker.join()
+    assert asked == [None, False, None]

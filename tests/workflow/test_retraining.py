@@ -96,7 +96,7 @@ def test_the_command_says_how_long_it_took(three_tiles, capsys):
 def test_a_tuned_encoder_version_round_trips_through_the_store(tuned):
     from labeler.model.cache import FeatureCache
     from labeler.model.checkpoint import load_checkpoint
-    from labeler.model.encoder import load_encoder
+    from labeler.model.encoder import load_encoder, resolve_precision
     from labeler.model.predict import propose_tiles
     from labeler.model.tail import tail_features, tail_from_state
     from labeler.workflow.features import tile_key
@@ -115,7 +115,10 @@ def test_a_tuned_encoder_version_round_trips_through_the_store(tuned):
     assert propose(project).proposed == 20
     tile = store.tiles()[7]
     image = store.images()[0]
-    base = FeatureCache(project.cache_dir / "features", encoder_version=encoder.version)
+    precision = resolve_precision(project.settings.model.precision)  # what propose ran in
+    base = FeatureCache(
+        project.cache_dir / "features", encoder_version=encoder.version, precision=precision
+    )
     feats = base.load(tile_key(image, tile), tile_shape=tile.shape)
     from labeler.imagery.read import read_image
 
@@ -127,6 +130,7 @@ def test_a_tuned_encoder_version_round_trips_through_the_store(tuned):
         mc_samples=settings.mc_samples,
         seed=settings.seed,
         images=[pixels],
+        precision=precision,  # as propose runs the head
     )[0]
     stored = store.latest_proposal(tile.id)
     np.testing.assert_array_equal(stored.mask(), want.mask)
