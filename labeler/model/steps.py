@@ -19,9 +19,8 @@ from collections.abc import Callable
 import numpy as np
 import torch
 import torch.nn.functional as F
-from torchvision.transforms import v2
 
-from labeler.model.augment import feature_batch, image_batch, turned_batch
+from labeler.model.augment import feature_batch, turned_batch
 from labeler.model.crop import crop_logits, draw_crop
 from labeler.model.head import ProposalHead
 from labeler.model.loss import cell_cross_entropy, partial_cross_entropy
@@ -115,7 +114,7 @@ def batch_loss(
                 align_corners=False,
             )
         if refines and jitter is not None:
-            pixels = torch.stack([jitter(p) for p in pixels])
+            pixels = jitter(pixels)
         refined = head.refine(z, pixel_input(pixels)) if refines else None
     if not cells:
         loss = partial_cross_entropy(coarse, target, weight)
@@ -137,8 +136,8 @@ def train_epoch(
     max_steps: int,
     aux_weight: float,
     crop: int,
-    augment: v2.Transform,
-    jitter: v2.Transform | None,
+    augment: Callable | None,
+    jitter: Callable[[torch.Tensor], torch.Tensor] | None,
     encoder: Callable | None,
     tail: EncoderTail | None,
     scheduler: torch.optim.lr_scheduler.LRScheduler | None = None,
@@ -174,6 +173,8 @@ def train_epoch(
                 images=data.images,
             )
         else:
+            from labeler.model.augment_images import image_batch  # torchvision: images mode only
+
             levels, target, pixels = image_batch(batch, data.images, data.masks, augment, encoder)
         loss = batch_loss(
             head,

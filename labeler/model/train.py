@@ -79,7 +79,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import torch
 
-from labeler.model.augment import colour_jitter, image_augmentation
+from labeler.model.augment import colour_jitter
 from labeler.model.budget import step_budget, validation_sample
 from labeler.model.head import REFINE_CHANNELS, HeadConfig, ProposalHead
 from labeler.model.loss import class_weights
@@ -372,7 +372,11 @@ def train_head(
     val_groups = data.groups_of(validation_sample(data.val_ids, rng))
     weights = class_weights(data.class_counts)
     weight_t = torch.as_tensor(weights, dtype=torch.float32)
-    augment = image_augmentation()
+    augment = None
+    if data.mode == "images":
+        from labeler.model.augment_images import image_augmentation  # needs torchvision
+
+        augment = image_augmentation()
     jitter = colour_jitter() if cfg.refines else None
 
     with torch.random.fork_rng(devices=[]):
