@@ -9,11 +9,12 @@ the CPU time this process used in between:
 
     busy = (delta busy jiffies / CLK_TCK - delta own CPU seconds) / delta wall seconds
 
-The busy jiffies are the ``user``, ``system``, ``irq``, ``softirq`` and ``steal`` columns
-of the ``cpu`` line (proc(5), "/proc/stat"); ``nice`` (time of processes of lowered
-priority) counts only when this process has a lowered priority itself, because the
-scheduler gives a normal-priority process most of a core that a niced one shares
-(common practice, no source). ``idle`` and ``iowait`` never count. On systems without
+The busy jiffies are the ``user``, ``nice``, ``system``, ``irq``, ``softirq`` and
+``steal`` columns of the ``cpu`` line (proc(5), "/proc/stat"); ``idle`` and ``iowait``
+never count. Processes of lowered priority count in full: torch's threads wait for each
+other at every operation, so one thread that a niced process delays now and then holds
+up all of them (measured on the 2-core development machine: a 2-thread retrain beside a
+niced test run took 165 s, a 1-thread one 50 s). On systems without
 ``/proc/stat`` :func:`busy_cores` returns None and the caller falls back to the load
 average (:func:`labeler.model.runtime.free_cores`).
 """
@@ -28,7 +29,7 @@ from typing import NamedTuple
 __all__ = ["CpuTimes", "parse_cpu_line", "busy_between", "busy_cores", "SAMPLE_SECONDS"]
 
 #: Seconds between the two readings of :func:`busy_cores`.
-SAMPLE_SECONDS = 0.15
+SAMPLE_SECONDS = 0.25
 
 #: The ``/proc/stat`` file (a module attribute so tests can point it elsewhere).
 PROC_STAT = Path("/proc/stat")
@@ -42,7 +43,7 @@ class CpuTimes(NamedTuple):
 
     #: User, system, irq, softirq and steal time.
     busy: int
-    #: User time of processes with a lowered priority.
+    #: User time of processes with a lowered priority (busy too).
     nice: int
 
 
@@ -87,7 +88,6 @@ def busy_between(
     own_seconds: float,
     wall_seconds: float,
     clock_ticks: int,
-    count_nice: bool,
 ) -> float:
     """Cores kept busy by other work between two readings.
 
@@ -101,8 +101,6 @@ def busy_between(
         Seconds between the readings (> 0).
     clock_ticks : int
         Jiffies per second (``os.sysconf("SC_CLK_TCK")``).
-    count_nice : bool
-        Count the time of niced processes as busy.
 
     Returns
     -------
@@ -119,9 +117,7 @@ def busy_between(
             f"wall_seconds, clock_ticks: expected positive values, got {wall_seconds} and "
             f"{clock_ticks}"
         )
-    jiffies = after.busy - before.busy
-    if count_nice:
-        jiffies += after.nice - before.nice
+    jiffies = after.busy - before.busy + after.nice - before.nice
     return max(0.0, (jiffies / clock_ticks - own_seconds) / wall_seconds)
 
 
@@ -161,12 +157,4 @@ def busy_cores(*, seconds: float = SAMPLE_SECONDS, stat: Path | None = None) -> 
         own_seconds=own1 - own0,
         wall_seconds=wall1 - wall0,
         clock_ticks=ticks,
-        count_nice=_niced(),
     )
-
-
-def _niced() -> bool:
-    try:
-        return os.nice(0) > 0
-    except (AttributeError, OSError):
-        return False

@@ -32,24 +32,17 @@ def test_parse_cpu_line_rejects_non_numbers():
 
 
 def test_busy_between_subtracts_own_time():
-    # worked by hand: 100 ticks/s, 0.5 s apart; 120 busy jiffies = 1.2 CPU-seconds, of
-    # which this process used 0.7: others kept 0.5 CPU-seconds busy in 0.5 s = 1 core.
+    # worked by hand: 100 ticks/s, 0.5 s apart; 80 busy + 40 nice jiffies = 1.2
+    # CPU-seconds, of which this process used 0.7: others kept 0.5 CPU-seconds busy in
+    # 0.5 s = 1 core.
     got = busy_between(
         CpuTimes(1000, 50),
-        CpuTimes(1120, 90),
+        CpuTimes(1080, 90),
         own_seconds=0.7,
         wall_seconds=0.5,
         clock_ticks=100,
-        count_nice=False,
     )
     assert got == pytest.approx(1.0, abs=1e-12)
-
-
-def test_busy_between_counts_nice_only_when_asked():
-    kwargs = dict(own_seconds=0.0, wall_seconds=1.0, clock_ticks=100)
-    before, after = CpuTimes(0, 0), CpuTimes(0, 150)
-    assert busy_between(before, after, count_nice=False, **kwargs) == 0.0
-    assert busy_between(before, after, count_nice=True, **kwargs) == pytest.approx(1.5)
 
 
 def test_busy_between_is_never_negative():
@@ -60,7 +53,6 @@ def test_busy_between_is_never_negative():
         own_seconds=0.2,
         wall_seconds=0.1,
         clock_ticks=100,
-        count_nice=False,
     )
     assert got == 0.0
 
@@ -73,7 +65,6 @@ def test_busy_between_rejects_a_zero_interval():
             own_seconds=0.0,
             wall_seconds=0.0,
             clock_ticks=100,
-            count_nice=False,
         )
 
 
