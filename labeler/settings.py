@@ -35,7 +35,11 @@ Sections and options (defaults in brackets):
     early stopping is asked for (``retrain`` keeps the state at the end of the step
     budget: a few labelled tiles give too noisy a validation loss to choose by); ``finetune_stages`` [0] encoder
     stages trained with the head on the project's labels: 0 (frozen encoder), 2 or 4
-    (the last stages, at a tenth of the head's learning rate; a new encoder version).
+    (the last stages, at a tenth of the head's learning rate; a new encoder version);
+    ``train_precision`` ["auto"] arithmetic of the training steps' convolutions:
+    ``"bfloat16"`` (about 1.4 x faster steps on CPUs with native bfloat16, same proposal
+    quality on the demo plots), ``"float32"``, or ``"auto"``: bfloat16 where the CPU has
+    it natively, else float32. Weights, losses and proposals stay float32.
 ``[picker]``
     ``strategy`` ["mixed"] one of random, entropy, margin, bald, coreset, mixed;
     ``k`` [20] tiles per batch; ``seed`` [0].
@@ -116,6 +120,7 @@ __all__ = [
     "STRATEGIES",
     "AUGMENT_MODES",
     "FINETUNE_STAGES",
+    "TRAIN_PRECISIONS",
     "RETIRED_OPTIONS",
     "RANGES",
     "Range",
@@ -135,6 +140,9 @@ AUGMENT_MODES = ("auto", "turns", "features", "images")
 #: Encoder stages ``retrain`` may train with the head (``model.finetune_stages``; see
 #: labeler.model.tail): none, the last two (6-7) or the last four (4-7).
 FINETUNE_STAGES = (0, 2, 4)
+#: Arithmetic of head training's convolutions (``model.train_precision``; see
+#: labeler.model.steps): bfloat16 where the CPU has it natively ("auto"), or as named.
+TRAIN_PRECISIONS = ("auto", "float32", "bfloat16")
 
 
 @dataclass(frozen=True)
@@ -192,10 +200,12 @@ class ModelSettings(Checked):
     augment: str = "auto"
     patience: int = 10
     finetune_stages: int = 0
+    train_precision: str = "auto"
 
     def _check(self) -> None:
         check_choice("model", "augment", self.augment, AUGMENT_MODES)
         check_choice("model", "finetune_stages", self.finetune_stages, FINETUNE_STAGES)
+        check_choice("model", "train_precision", self.train_precision, TRAIN_PRECISIONS)
 
 
 @dataclass(frozen=True)
@@ -555,6 +565,7 @@ val_share = 0.2
 augment = "auto"          # "auto", "turns" (exact, cached), "images" (slow) or "features"
 patience = 10             # early stopping only; retrain keeps the state at the budget's end
 finetune_stages = 0       # encoder stages trained with the head: 0, 2 or 4
+train_precision = "auto"  # "auto" (bfloat16 where the CPU has it), "float32" or "bfloat16"
 
 [picker]
 strategy = "mixed"        # random, entropy, margin, bald, coreset, mixed

@@ -21,7 +21,15 @@ import torch
 
 from labeler.model import cpuload
 
-__all__ = ["configure_threads", "available_cores", "free_cores", "inference", "thread_cap"]
+__all__ = [
+    "configure_threads",
+    "available_cores",
+    "free_cores",
+    "inference",
+    "thread_cap",
+    "native_bfloat16",
+    "training_precision",
+]
 
 #: Seconds a reading of the busy cores stays valid (a command asks several times).
 BUSY_READING_SECONDS = 10.0
@@ -154,3 +162,39 @@ def thread_cap(*, spare: int = 1) -> Iterator[int]:
         _CAP[0] = old_cap
         if torch.get_num_threads() != before:
             torch.set_num_threads(before)
+
+
+def native_bfloat16() -> bool:
+    """True when this CPU does bfloat16 arithmetic natively (oneDNN's own check: AVX-512
+    with the BF16 extension, or AMX); elsewhere bfloat16 is emulated and slower."""
+    try:
+        return bool(torch.ops.mkldnn._is_mkldnn_bf16_supported())
+    except (AttributeError, RuntimeError):  # a build without oneDNN
+        return False
+
+
+def training_precision(setting: str) -> str:
+    """The arithmetic of head training for the ``model.train_precision`` setting.
+
+    Parameters
+    ----------
+    setting : {"auto", "float32", "bfloat16"}
+        ``"auto"`` is ``"bfloat16"`` where :func:`native_bfloat16` holds, else ``"float32"``.
+
+    Returns
+    -------
+    {"float32", "bfloat16"}
+
+    Raises
+    ------
+    ValueError
+        For any other setting.
+    """
+    if setting == "auto":
+        return "bfloat16" if native_bfloat16() else "float32"
+    if setting not in ("float32", "bfloat16"):
+        raise ValueError(
+            f"train_precision: expected 'auto', 'float32' or 'bfloat16', got {setting!r}; "
+            "set model.train_precision in labeler.toml"
+        )
+    return setting

@@ -147,6 +147,8 @@ class TrainResult:
     steps, budget : int
         Optimiser steps made, and the most that were allowed (the step budget, or the
         steps of ``model.epochs`` epochs if fewer).
+    precision : str
+        Arithmetic of the training steps' convolutions.
     """
 
     head: ProposalHead
@@ -160,6 +162,7 @@ class TrainResult:
     tail: EncoderTail | None = None
     steps: int = 0
     budget: int = 0
+    precision: str = "float32"
 
 
 # -- the steps of train_head ----------------------------------------------------------------------
@@ -176,7 +179,10 @@ def _check_options(
     schedule: str,
     coarse_loss: str,
     keep: str = "best",
+    precision: str = "float32",
 ) -> None:
+    if precision not in ("float32", "bfloat16"):
+        raise ValueError(f"precision: expected 'float32' or 'bfloat16', got {precision!r}")
     if keep not in ("best", "last"):
         raise ValueError(f"keep: expected 'best' or 'last', got {keep!r}")
     if cfg.class_indices != idx:
@@ -250,6 +256,7 @@ def train_head(
     image_mode_max_tiles: int = IMAGE_MODE_MAX_TILES,
     min_steps_per_epoch: int = MIN_STEPS_PER_EPOCH,
     aux_weight: float = AUX_WEIGHT,
+    precision: str = "float32",
     progress: ProgressFn | None = None,
 ) -> TrainResult:
     """Train a proposal head on labelled tiles.
@@ -316,6 +323,9 @@ def train_head(
         made at least this many optimiser steps.
     aux_weight : float
         Weight of the coarse logits' loss beside the refined logits' (refining heads).
+    precision : {"float32", "bfloat16"}
+        Arithmetic of the training steps' convolutions (:func:`labeler.model.steps.batch_loss`);
+        weights, losses and validation stay float32.
     progress : callable, optional
         ``progress(step, total_steps, metrics)`` after each epoch (metrics as in history;
         ``total_steps`` is the most steps allowed, early stopping may end sooner).
@@ -352,6 +362,7 @@ def train_head(
         schedule=schedule,
         coarse_loss=coarse_loss,
         keep=keep,
+        precision=precision,
     )
     rng = np.random.default_rng(s.seed)  # the split, then every epoch's shuffles and turns
     data = prepare_training_set(
@@ -408,6 +419,7 @@ def train_head(
                 tail=tail,
                 scheduler=scheduler,
                 coarse_loss=coarse_loss,
+                precision=precision,
             )
             done += made
             if tail is not None:
@@ -459,4 +471,5 @@ def train_head(
         tail=tail,
         steps=done,
         budget=budget,
+        precision=precision,
     )

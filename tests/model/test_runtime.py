@@ -88,3 +88,26 @@ def test_inference_context_disables_grad():
         y = w * 2
     assert not y.requires_grad
     assert torch.is_inference(y)
+
+
+@pytest.mark.parametrize(
+    ("setting", "native", "want"),
+    [
+        ("auto", True, "bfloat16"),
+        ("auto", False, "float32"),
+        ("float32", True, "float32"),
+        ("bfloat16", False, "bfloat16"),  # asked for by name: honoured even if emulated
+    ],
+)
+def test_training_precision_follows_the_setting_and_the_cpu(monkeypatch, setting, native, want):
+    monkeypatch.setattr(runtime, "native_bfloat16", lambda: native)
+    assert runtime.training_precision(setting) == want
+
+
+def test_training_precision_rejects_other_names():
+    with pytest.raises(ValueError, match=r"train_precision: expected 'auto', 'float32' or "):
+        runtime.training_precision("float16")
+
+
+def test_native_bfloat16_is_a_bool():
+    assert runtime.native_bfloat16() in (True, False)
