@@ -181,6 +181,19 @@ def test_keep_last_runs_every_epoch_and_keeps_the_last_state(tiles, monkeypatch)
         torch.testing.assert_close(res.head.state_dict()[name], value, rtol=0, atol=0)
 
 
+def test_keep_last_validates_at_spaced_epochs_and_the_last(tiles, monkeypatch):
+    images, masks, feats = tiles
+    states = _scripted_validation(monkeypatch, [float(k) for k in range(20)])
+    s = ModelSettings(epochs=20, batch_size=2, val_share=0.34, seed=0)
+    res = fit(masks, class_indices=(0, 1), features=feats, settings=s, mode="features", keep="last")
+    # worked by hand: 20 epochs of one step, at most 8 reported validations -> every
+    # ceil(20 / 8) = 3rd epoch (3, 6, ..., 18) and the last (20)
+    validated = [int(h["epoch"]) for h in res.history if not math.isnan(h["val_loss"])]
+    assert validated == [3, 6, 9, 12, 15, 18, 20] and len(states) == 7
+    assert len(res.history) == 20 and res.best_epoch == 20
+    assert res.val_iou == pytest.approx([0.6, 0.6])  # the last epoch's scripted matrix
+
+
 def test_real_validation_losses_follow_the_rule(tiles):
     images, masks, feats = tiles
     s = ModelSettings(epochs=12, batch_size=2, val_share=0.34, seed=0)
