@@ -11,18 +11,28 @@ proposal, then times on :class:`labeler.editor.state.EditorState`:
 * ``refine_ms``: one random-walker refine on a 256 tile with a weak label of 5 scribble
   strokes (target <= 300 ms);
 * ``undo_ms``: undo of one brush stroke (target <= 5 ms), and ``undo_render_ms`` with the
-  following render.
+  following render;
+* with ``--beside-retrain``: ``brush_window_frame_beside_retrain_ms`` (and its 90th
+  percentile), the brush frame above timed over and over while another process retrains
+  the demo plots' 12-tile project (``benchmarks/retrain_speed.py``) in the background as
+  the terminal queue does (``labeler.workflow.background_work``: lowered priority, torch
+  threads capped at the free cores less one), with ``brush_window_frame_ms`` of the same
+  run beside it (target <= 16 ms while background work runs), ``background_retrain_s``
+  and ``frames_beside_retrain``.
 
 Prints one JSON line of medians (and 90th percentiles). The tile is synthetic: it measures
 speed only, not segmentation quality.
 
-Run: ``.venv/bin/python benchmarks/editor_latency.py``
+Run: ``.venv/bin/python benchmarks/editor_latency.py [--beside-retrain]``
 """
 
 from __future__ import annotations
 
+import argparse
 import json
+import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -96,15 +106,15 @@ def time_brush_render(size: int) -> tuple[float, float]:
     return _stats(samples)
 
 
-def time_brush_frame() -> tuple[float, float]:
-    """Brush segment plus the whole window image (view, status strip) the window shows."""
+def brush_frames(repeats: int = REPEATS_BRUSH) -> list[float]:
+    """Seconds of each brush segment plus the whole window image (view, status strip)."""
     image, proposal = field_tile(256)
     state = EditorState(image, proposal, radius=6, active_class=2, view_shape=VIEW)
     session = EditorSession(state, backend=MemoryBackend(), title="benchmark tile")
     session.frame()
     samples = []
     state.stroke_start((128.0, 20.0))
-    for i in range(REPEATS_BRUSH):
+    for i in range(repeats):
         point = (128.0 + 40 * np.sin(i / 15), 20.0 + (i % 200))
         t0 = time.perf_counter()
         state.stroke_to(point)
@@ -112,7 +122,60 @@ def time_brush_frame() -> tuple[float, float]:
         samples.append(time.perf_counter() - t0)
     state.stroke_end()
     assert frame.shape[1] == VIEW[1]
-    return _stats(samples)
+    return samples
+
+
+def time_brush_frame() -> tuple[float, float]:
+    """Median and 90th percentile of :func:`brush_frames`."""
+    return _stats(brush_frames())
+
+
+#: The background retrain's process: what the terminal queue's retrain key runs.
+_BACKGROUND = """
+import sys, time
+from labeler.project import open_project
+from labeler.workflow import background_work, retrain
+project = open_project(sys.argv[1])
+with background_work():
+    print("started", flush=True)
+    t0 = time.perf_counter()
+    retrain(project)
+    print(f"done {time.perf_counter() - t0:.2f}", flush=True)
+"""
+
+
+def time_frames_beside_retrain() -> dict[str, float | int]:
+    """Brush frames timed while another process retrains the demo project in the background."""
+    from benchmarks.retrain_speed import build_demo
+
+    root = Path(__file__).resolve().parents[1]
+    with tempfile.TemporaryDirectory(prefix="labeler-frames-") as tmp:
+        project, _ = build_demo(Path(tmp) / "demo-12", 0)
+        child = subprocess.Popen(
+            [sys.executable, "-c", _BACKGROUND, str(project)],
+            cwd=root,
+            stdout=subprocess.PIPE,
+            text=True,
+        )
+        assert child.stdout is not None
+        first = child.stdout.readline().strip()  # the child says when its work begins
+        if first != "started":
+            child.kill()
+            raise RuntimeError(f"background retrain did not start: {first!r}")
+        samples: list[float] = []
+        while child.poll() is None:
+            samples += brush_frames(50)
+        out = child.stdout.read().split()
+        child.wait()
+    if child.returncode != 0 or len(out) < 2 or out[0] != "done":
+        raise RuntimeError(f"background retrain failed (exit {child.returncode}): {out!r}")
+    median, p90 = _stats(samples)
+    return {
+        "brush_window_frame_beside_retrain_ms": median,
+        "brush_window_frame_beside_retrain_p90_ms": p90,
+        "frames_beside_retrain": len(samples),
+        "background_retrain_s": float(out[1]),
+    }
 
 
 def time_refine() -> tuple[float, float]:
@@ -158,7 +221,15 @@ def time_undo() -> tuple[tuple[float, float], tuple[float, float]]:
     return _stats(undo), _stats(undo_render)
 
 
-def main() -> int:
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument(
+        "--beside-retrain",
+        action="store_true",
+        help="also time the brush frame while a background retrain runs (builds the demo project)",
+    )
+    args = ap.parse_args(argv)
+    beside = time_frames_beside_retrain() if args.beside_retrain else {}
     brush, brush_p90 = time_brush_render(256)
     brush_big, brush_big_p90 = time_brush_render(1024)
     frame_ms, frame_p90 = time_brush_frame()
@@ -181,6 +252,7 @@ def main() -> int:
         "view": list(VIEW),
         "targets_ms": TARGETS_MS,
         "within_targets": bool(brush <= 16.0 and refine <= 300.0 and undo <= 5.0),
+        **beside,
     }
     print(json.dumps(figures))
     return 0

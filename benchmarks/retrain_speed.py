@@ -45,6 +45,7 @@ it is absent the peanut keys are null with a reason.
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
 import re
@@ -122,9 +123,22 @@ def build_demo(root: Path, seed: int) -> tuple[Path, dict[int, np.ndarray]]:
     return root, truth_of
 
 
+def distinct_photos() -> list[Path]:
+    """The peanut photos, each content once (the data set holds a few byte-identical
+    copies under two names, e.g. 0203 and 0205; a project keeps one image per content)."""
+    seen: set[str] = set()
+    out = []
+    for photo in sorted((PEANUT / "images").glob("*.jpg")):
+        digest = hashlib.sha256(photo.read_bytes()).hexdigest()
+        if digest not in seen:
+            seen.add(digest)
+            out.append(photo)
+    return out
+
+
 def build_peanut(root: Path, n_tiles: int, seed: int) -> Path:
     """A project of peanut photos with the truth of ``n_tiles`` tiles saved."""
-    photos = sorted((PEANUT / "images").glob("*.jpg"))
+    photos = distinct_photos()
     order = np.random.default_rng(seed).permutation(len(photos))
     per_photo = len(tile_grid(720, 960, size=256, overlap=32))
     chosen = [photos[i] for i in order[: -(-n_tiles // per_photo)]]
@@ -192,7 +206,7 @@ def timed_propose_on_new_photos(
     reports them: the new tiles, and any other tile whose newest proposal is older than
     the head, such as the saved tiles the renewal after the retrain leaves alone) and the
     new tiles."""
-    photos = sorted((PEANUT / "images").glob("*.jpg"))
+    photos = distinct_photos()
     with open_project(root) as project:
         held = {im.name for im in project.store.images()}
         new = [p for p in photos if p.name not in held]

@@ -57,7 +57,14 @@ def test_custom_classes(tmp_path):
         ('[model]\nmc_samples = "many"\n', "model.mc_samples: expected a whole number"),
         ("[model]\nmc_samples = 0\n", "at least 1"),
         ('[picker]\nstrategy = "greedy"\n', "picker.strategy: expected one of"),
-        ('[model]\naugment = "rotate"\n', "model.augment: expected one of auto, turns, features, images"),
+        (
+            '[model]\naugment = "rotate"\n',
+            "model.augment: expected one of auto, turns, features, images",
+        ),
+        (
+            '[model]\ntrain_precision = "half"\n',
+            "model.train_precision: expected one of auto, float32, bfloat16",
+        ),
         ("[model]\npatience = 0\n", "model.patience: expected a whole number at least 1, got 0"),
         ('[model]\nprecision = "int8"\n', "model.precision: expected one of auto, float32, bfloat16"),
         ("[tiles]\nsize = 64\noverlap = 64\n", "tiles.overlap"),

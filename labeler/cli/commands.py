@@ -293,11 +293,27 @@ def cmd_pick(args) -> int:
         f"picked from {len(result.items)} tiles with strategy {result.strategy}; "
         f"the next batch of {result.k}:"
     )
+    scores = [t.score for t in result.batch]
+    by_score = all(b <= a for a, b in zip(scores[:-1], scores[1:], strict=True))
     rows = [
-        (t.rank + 1, t.tile_id, t.image, f"{t.row},{t.col}", f"{t.score:.4f}", t.reason)
+        (
+            t.rank + 1,
+            t.tile_id,
+            t.image,
+            f"{t.row},{t.col}",
+            f"{t.score:.4f}" if by_score else f"pick {t.rank + 1} \u00b7 {t.score:.4f}",
+            t.reason,
+        )
         for t in result.batch
     ]
-    print(_table(["rank", "tile", "image", "row,col", "score", "why"], rows))
+    column = "score" if by_score else "ranked by"
+    print(_table(["rank", "tile", "image", "row,col", column, "why"], rows))
+    if not by_score:
+        print(
+            "the ranks follow the order of picking: each tile was picked unlike the tiles "
+            "picked before it, its score weighed by that distance, so a later pick may "
+            "score higher"
+        )
     if result.without_proposal:
         print(
             f"{result.without_proposal} tiles have no proposal yet and are left out "

@@ -15,16 +15,14 @@
     multiples of 32 are not transformed (:func:`can_turn`: feature cells would not line
     up with the pixels). The pixels also get :func:`colour_jitter`, each tile its own
     draw; features and masks never do. Fast: no encoder pass at all.
-``"images"`` mode (:func:`image_batch`)
-    Runs ``torchvision.transforms.v2`` on the images and masks jointly
-    (:func:`image_augmentation`: flips, quarter turns, colour jitter; masks are
-    ``tv_tensors.Mask`` so they are never interpolated and never colour-jittered) and
-    passes the augmented batch through the frozen encoder. Truer augmentation, but one
-    encoder pass per tile per epoch.
+``"images"`` mode
+    In :mod:`labeler.model.augment_images` (it needs torchvision, whose import a
+    retrain on cached features does not pay).
 
-Random draws: ``turned_batch`` and ``feature_batch`` draw their flip/turn from the numpy generator it is given;
-the torchvision transforms (and the jitter) draw from torch's global generator, which
-:func:`labeler.model.train.train_head` seeds inside a forked RNG state.
+Random draws: ``turned_batch`` and ``feature_batch`` draw their flip/turn from the numpy
+generator they are given; the jitter (:mod:`labeler.model.jitter`, one draw per tile)
+draws from torch's global generator, which :func:`labeler.model.train.train_head` seeds
+inside a forked RNG state.
 """
 
 from __future__ import annotations
@@ -33,63 +31,17 @@ from collections.abc import Callable, Mapping, Sequence
 
 import numpy as np
 import torch
-from torchvision import tv_tensors
-from torchvision.transforms import v2
 
 from labeler.model.head import features_to_tensors
+from labeler.model.jitter import ColourJitter
 
-__all__ = [
-    "RandomQuarterTurn",
-    "colour_jitter",
-    "image_augmentation",
-    "dihedral",
-    "can_turn",
-    "feature_batch",
-    "image_batch",
-    "turned_batch",
-]
+__all__ = ["colour_jitter", "dihedral", "can_turn", "feature_batch", "turned_batch"]
 
 
-class RandomQuarterTurn(v2.Transform):
-    """Turn image and mask together by 0, 90, 180 or 270 degrees (exact, no resampling).
-
-    Non-square inputs are turned by 0 or 180 degrees only, so shapes never change.
-    """
-
-    def make_params(self, flat_inputs: list) -> dict[str, int]:
-        return {"k": int(torch.randint(0, 4, ()).item())}
-
-    def transform(self, inpt, params: dict[str, int]):
-        k = params["k"]
-        if inpt.shape[-2] != inpt.shape[-1]:
-            k = 2 * (k // 2)
-        if k == 0:
-            return inpt
-        out = torch.rot90(inpt, k, dims=(-2, -1))
-        if isinstance(inpt, tv_tensors.TVTensor):
-            return tv_tensors.wrap(out, like=inpt)
-        return out
-
-
-def colour_jitter() -> v2.ColorJitter:
-    """Colour jitter of the training images: brightness, contrast and saturation +-20 %,
-    hue +-0.03 (common practice, no source)."""
-    return v2.ColorJitter(brightness=0.2, contrast=0.2, saturation=0.2, hue=0.03)
-
-
-def image_augmentation() -> v2.Compose:
-    """The joint image/mask augmentation of ``"images"`` mode.
-
-    Flips (p 0.5 each), quarter turns, and :func:`colour_jitter`, which only touches images.
-    """
-    return v2.Compose(
-        [
-            v2.RandomHorizontalFlip(p=0.5),
-            v2.RandomVerticalFlip(p=0.5),
-            RandomQuarterTurn(),
-            colour_jitter(),
-        ]
-    )
+def colour_jitter() -> ColourJitter:
+    """Colour jitter of the training pixels: brightness, contrast and saturation +-20 %,
+    hue +-0.03 of a turn (common practice, no source; :mod:`labeler.model.jitter`)."""
+    return ColourJitter(brightness=0.2, contrast=0.2, saturation=0.2, hue=0.03)
 
 
 def dihedral(x: torch.Tensor, code: int) -> torch.Tensor:
@@ -128,7 +80,7 @@ def feature_batch(
     rng: np.random.Generator,
     *,
     images: Sequence[np.ndarray] | None = None,
-    jitter: v2.Transform | None = None,
+    jitter: Callable[[torch.Tensor], torch.Tensor] | None = None,
 ) -> tuple[list[torch.Tensor], torch.Tensor, torch.Tensor | None]:
     """Cached features, masks and pixels of a batch, one random flip/turn for all of them.
 
@@ -147,7 +99,7 @@ def feature_batch(
         the shape (none when :func:`can_turn` refuses the shape).
     images : sequence of ndarray, each (H, W, 3) uint8, optional
         The tiles' pixels (for a refining head).
-    jitter : torchvision transform, optional
+    jitter : callable, optional
         Applied to each tile's pixels on its own (never to features or masks).
 
     Returns
@@ -171,52 +123,8 @@ def feature_batch(
         if pixels is not None:
             pixels = dihedral(pixels, code)
     if pixels is not None and jitter is not None:
-        pixels = torch.stack([jitter(p) for p in pixels])
+        pixels = jitter(pixels)
     return levels, target, pixels
-
-
-def image_batch(
-    batch: list[int],
-    images: Sequence[np.ndarray],
-    channel_masks: Sequence[np.ndarray],
-    augment: v2.Transform,
-    encoder: Callable,
-) -> tuple[list[torch.Tensor], torch.Tensor, torch.Tensor]:
-    """Jointly augmented images and masks of a batch, through the frozen encoder.
-
-    Parameters
-    ----------
-    batch : list of int
-        Tile numbers of the batch; all of one shape.
-    images : sequence of ndarray, each (H, W, 3) uint8
-        The tiles' pixels per tile number.
-    channel_masks : sequence of ndarray, each (H, W) uint8
-        Truth per tile number as head channels, 255 unlabelled.
-    augment : torchvision transform
-        Joint image/mask transform (:func:`image_augmentation`).
-    encoder : callable
-        Frozen encoder: float batch ``(B, 3, H, W)`` in 0..255 to four feature maps.
-
-    Returns
-    -------
-    levels : list of 4 Tensor, each (B, C_i, h_i, w_i) float32, channels-last
-    target : Tensor, shape (B, H, W), uint8
-    pixels : Tensor, shape (B, 3, H, W), uint8
-        The augmented images (what the encoder saw).
-    """
-    ims, tgs = [], []
-    for i in batch:
-        im = tv_tensors.Image(torch.from_numpy(np.asarray(images[i])).permute(2, 0, 1))
-        mk = tv_tensors.Mask(torch.from_numpy(channel_masks[i]))
-        im, mk = augment(im, mk)
-        ims.append(im.as_subclass(torch.Tensor))
-        tgs.append(mk.as_subclass(torch.Tensor))
-    x = torch.stack(ims).to(torch.float32).contiguous(memory_format=torch.channels_last)
-    with torch.no_grad():
-        levels = [
-            t.to(torch.float32).contiguous(memory_format=torch.channels_last) for t in encoder(x)
-        ]
-    return levels, torch.stack(tgs), torch.stack(ims)
 
 
 def turned_batch(
@@ -226,7 +134,7 @@ def turned_batch(
     rng: np.random.Generator,
     *,
     images: Sequence[np.ndarray] | None = None,
-    jitter: v2.Transform | None = None,
+    jitter: Callable[[torch.Tensor], torch.Tensor] | None = None,
 ) -> tuple[list[torch.Tensor], torch.Tensor, torch.Tensor | None]:
     """Features of one cached turn of the batch's tiles, with masks and pixels turned alike.
 
@@ -242,7 +150,7 @@ def turned_batch(
         Draws the turn among the codes of the batch's first tile.
     images : sequence of ndarray, each (H, W, 3) uint8, optional
         The tiles' pixels (unturned), for a refining head.
-    jitter : torchvision transform, optional
+    jitter : callable, optional
         Applied to each tile's turned pixels on its own.
 
     Returns
@@ -261,5 +169,5 @@ def turned_batch(
         pixels = torch.from_numpy(np.stack([np.asarray(images[i]) for i in batch]))
         pixels = dihedral(pixels.permute(0, 3, 1, 2), code)
         if jitter is not None:
-            pixels = torch.stack([jitter(p) for p in pixels])
+            pixels = jitter(pixels)
     return levels, target.contiguous(), pixels

@@ -136,6 +136,6 @@ def crop_logits(
         return up, None
     part = pixels[:, :, 4 * a : 4 * b, 4 * c : 4 * d]
     if jitter is not None:
-        part = torch.stack([jitter(p) for p in part])
+        part = jitter(part)
     refined = head.refine(zc, pixel_input(part))[:, :, rows, cols]
     return up, refined

@@ -17,6 +17,7 @@ import numpy as np
 
 from labeler.model.cache import FeatureCache
 from labeler.model.crop import CROP_SIZE
+from labeler.model.encoder import resolve_precision
 from labeler.model.train import ProgressFn, TrainResult, train_head
 from labeler.model.turned import choose_turns, turned_features, turns_per_tile
 from labeler.settings import ModelSettings
@@ -70,8 +71,10 @@ def fit_head(
         Passed on to :func:`~labeler.model.train.train_head` (``steps``, ``crop``,
         ``finetune_stages``, ...); ``crop`` defaults to
         :data:`~labeler.model.crop.CROP_SIZE` (the full-resolution losses on a random
-        128 x 128 window of each batch) and ``keep`` to ``"last"`` (the state at the end
-        of the step budget; the validation slice is only reported).
+        128 x 128 window of each batch), ``keep`` to ``"last"`` (the state at the end
+        of the step budget; the validation slice is only reported) and ``precision`` to
+        the ``model.train_precision`` setting (the rule of
+        :func:`labeler.model.encoder.resolve_precision`).
 
     Returns
     -------
@@ -90,6 +93,7 @@ def fit_head(
     turned = turned_features(cache, encoder, keys, images, codes, progress=encode_progress)
     options.setdefault("crop", CROP_SIZE)
     options.setdefault("keep", "last")
+    options.setdefault("precision", resolve_precision(settings.train_precision))
     given = {"turned": turned} if use_turns else {"features": [t[0] for t in turned]}
     return train_head(
         masks,

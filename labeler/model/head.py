@@ -6,7 +6,8 @@ Layout (``width`` = FPN channels, ``K`` = classes)::
       -> feature pyramid (width channels on every level; :mod:`labeler.model.pyramid`)
       -> sum of the four levels, bilinearly resized to stride 4, ReLU
       -> 1x1 convolution width -> width, ReLU                       ("trunk", deterministic)
-      -> dropout (element-wise, p = ``dropout``) -> 1x1 convolution width -> K  ("classifier")
+      -> dropout (element-wise, p = ``dropout``; :mod:`labeler.model.dropout`)
+      -> 1x1 convolution width -> K  ("classifier")
       -> logits at stride 4, bilinearly upsampled to the tile size
 
 With ``refine_channels`` > 0 the head also holds a :class:`~labeler.model.refine.Refiner`:
@@ -34,6 +35,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from labeler.classes import UNLABELLED
+from labeler.model.dropout import ElementDropout
 from labeler.model.encoder import FEATURE_CHANNELS
 from labeler.model.pyramid import FeaturePyramid
 from labeler.model.refine import RefineConfig, Refiner
@@ -189,7 +191,7 @@ class ProposalHead(nn.Module):
         w = self.config.width
         self.fpn = FeaturePyramid(list(self.config.in_channels), w)
         self.mix = nn.Conv2d(w, w, 1)
-        self.dropout = nn.Dropout(self.config.dropout)
+        self.dropout = ElementDropout(self.config.dropout)
         self.classifier = nn.Conv2d(w, self.config.n_classes, 1)
         self.refiner: Refiner | None = None
         if self.config.refines:

@@ -1,8 +1,9 @@
 """CPU runtime settings of the model room: torch threads and the inference context.
 
 Everything runs on the CPU. ``configure_threads`` applies the ``model.threads`` setting
-(0 = one thread per free core: the cores this process may use less those the 1-minute
-load average says are busy, at least one; more threads than free cores make every
+(0 = one thread per free core: the cores this process may use less those other work
+keeps busy right now (:mod:`labeler.model.cpuload`; the 1-minute load average where the
+kernel's counters cannot be read), at least one; more threads than free cores make every
 thread wait for the others, which once turned a 6-tile retrain on a loaded 2-core machine
 from seconds into minutes); ``inference`` is the context every prediction runs under
 (``torch.inference_mode``: no autograd bookkeeping at all).
@@ -11,13 +12,27 @@ from seconds into minutes); ``inference`` is the context every prediction runs u
 from __future__ import annotations
 
 import contextlib
+import math
 import os
+import time
 from collections.abc import Iterator
 
 import torch
 
-__all__ = ["configure_threads", "available_cores", "free_cores", "inference", "thread_cap"]
+from labeler.model import cpuload
 
+__all__ = [
+    "configure_threads",
+    "available_cores",
+    "free_cores",
+    "inference",
+    "thread_cap",
+]
+
+#: Seconds a reading of the busy cores stays valid (a command asks several times).
+BUSY_READING_SECONDS = 10.0
+#: The last reading: ``(perf_counter time, busy cores)``.
+_BUSY: list[tuple[float, float]] = []
 #: Most torch threads while background work runs (:func:`thread_cap`); None: no cap.
 _CAP: list[int | None] = [None]
 
@@ -36,8 +51,12 @@ def free_cores(*, load: float | None = None) -> int:
     Parameters
     ----------
     load : float, optional
-        Load average to use; default the 1-minute load average of the system. A core
-        counts as busy for every whole unit of load (``floor(load)``).
+        Busy cores to assume (a load figure); default the cores other processes keep
+        busy now (:func:`labeler.model.cpuload.busy_cores`, read at most every
+        :data:`BUSY_READING_SECONDS`), or the 1-minute load average where that cannot be
+        read. A core counts as busy for every whole unit of a given ``load``
+        (``floor(load)``) and for every half unit or more of a measured one (rounded:
+        a core another process holds half the time would make every thread wait).
 
     Returns
     -------
@@ -46,6 +65,9 @@ def free_cores(*, load: float | None = None) -> int:
     """
     cores = available_cores()
     if load is None:
+        busy = _busy_now()
+        if busy is not None:
+            return max(1, min(cores, cores - math.floor(busy + 0.5)))
         try:
             load = os.getloadavg()[0]
         except (AttributeError, OSError):  # not every OS has a load average
@@ -53,6 +75,17 @@ def free_cores(*, load: float | None = None) -> int:
     if not load >= 0:  # NaN or negative: no information
         return cores
     return max(1, min(cores, cores - int(load)))
+
+
+def _busy_now() -> float | None:
+    now = time.perf_counter()
+    if _BUSY and now - _BUSY[0][0] < BUSY_READING_SECONDS:
+        return _BUSY[0][1]
+    busy = cpuload.busy_cores()
+    _BUSY.clear()
+    if busy is not None:
+        _BUSY.append((time.perf_counter(), busy))
+    return busy
 
 
 def configure_threads(threads: int = 0) -> int:
@@ -127,3 +160,4 @@ def thread_cap(*, spare: int = 1) -> Iterator[int]:
         _CAP[0] = old_cap
         if torch.get_num_threads() != before:
             torch.set_num_threads(before)
+

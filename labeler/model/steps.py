@@ -19,9 +19,8 @@ from collections.abc import Callable
 import numpy as np
 import torch
 import torch.nn.functional as F
-from torchvision.transforms import v2
 
-from labeler.model.augment import feature_batch, image_batch, turned_batch
+from labeler.model.augment import feature_batch, turned_batch
 from labeler.model.crop import crop_logits, draw_crop
 from labeler.model.head import ProposalHead
 from labeler.model.loss import cell_cross_entropy, partial_cross_entropy
@@ -79,6 +78,7 @@ def batch_loss(
     tail: EncoderTail | None = None,
     coarse_loss: str = "cells",
     jitter: Callable[[torch.Tensor], torch.Tensor] | None = None,
+    precision: str = "float32",
 ) -> torch.Tensor | None:
     """Loss of one batch: coarse logits alone, or refined plus ``aux_weight`` x coarse.
 
@@ -88,14 +88,46 @@ def batch_loss(
     refined logits, and the coarse ones with ``"pixels"``) are taken on one random window
     of the batch (:mod:`labeler.model.crop`); the trunk always sees the whole tiles.
     ``jitter`` (colour jitter per tile) acts on the pixels the refinement reads: the
-    window and its margin, or the whole tiles without a window.
+    window and its margin, or the whole tiles without a window. ``precision="bfloat16"``
+    runs the forward pass under CPU autocast in bfloat16 (the losses, the weights and
+    their updates stay float32).
     """
+    with torch.autocast("cpu", dtype=torch.bfloat16, enabled=precision == "bfloat16"):
+        return _batch_loss(
+            head,
+            levels,
+            target,
+            pixels,
+            weight,
+            aux_weight=aux_weight,
+            crop=crop,
+            rng=rng,
+            tail=tail,
+            coarse_loss=coarse_loss,
+            jitter=jitter,
+        )
+
+
+def _batch_loss(
+    head: ProposalHead,
+    levels: list[torch.Tensor],
+    target: torch.Tensor,
+    pixels: torch.Tensor | None,
+    weight: torch.Tensor,
+    *,
+    aux_weight: float,
+    crop: int,
+    rng: np.random.Generator,
+    tail: EncoderTail | None,
+    coarse_loss: str,
+    jitter: Callable[[torch.Tensor], torch.Tensor] | None,
+) -> torch.Tensor | None:
     target = target.to(torch.long)
     if tail is not None:
         levels = tail(levels)
     z = head.trunk(levels)
     cells = coarse_loss == "cells"
-    loss = cell_cross_entropy(head.classify(z), target, weight) if cells else None
+    loss = cell_cross_entropy(head.classify(z).float(), target, weight) if cells else None
     refines = head.config.refines and pixels is not None
     window = draw_crop(tuple(target.shape[-2:]), crop, rng) if crop else None
     coarse = refined = None
@@ -115,13 +147,13 @@ def batch_loss(
                 align_corners=False,
             )
         if refines and jitter is not None:
-            pixels = torch.stack([jitter(p) for p in pixels])
+            pixels = jitter(pixels)
         refined = head.refine(z, pixel_input(pixels)) if refines else None
     if not cells:
-        loss = partial_cross_entropy(coarse, target, weight)
+        loss = partial_cross_entropy(coarse.float(), target, weight)
     if loss is None or refined is None:
         return loss
-    fine = partial_cross_entropy(refined, target, weight)
+    fine = partial_cross_entropy(refined.float(), target, weight)
     return aux_weight * loss if fine is None else fine + aux_weight * loss
 
 
@@ -137,14 +169,15 @@ def train_epoch(
     max_steps: int,
     aux_weight: float,
     crop: int,
-    augment: v2.Transform,
-    jitter: v2.Transform | None,
+    augment: Callable | None,
+    jitter: Callable[[torch.Tensor], torch.Tensor] | None,
     encoder: Callable | None,
     tail: EncoderTail | None,
     scheduler: torch.optim.lr_scheduler.LRScheduler | None = None,
     coarse_loss: str = "cells",
+    precision: str = "float32",
 ) -> tuple[float, int]:
-    """One epoch of at most ``max_steps`` optimiser steps.
+    """One epoch of at most ``max_steps`` optimiser steps (``precision`` as in :func:`batch_loss`).
 
     Returns
     -------
@@ -174,6 +207,8 @@ def train_epoch(
                 images=data.images,
             )
         else:
+            from labeler.model.augment_images import image_batch  # torchvision: images mode only
+
             levels, target, pixels = image_batch(batch, data.images, data.masks, augment, encoder)
         loss = batch_loss(
             head,
@@ -187,6 +222,7 @@ def train_epoch(
             tail=tail,
             coarse_loss=coarse_loss,
             jitter=None if data.mode == "images" else jitter,  # images mode jitters in augment
+            precision=precision,
         )
         steps += 1  # a batch without labelled pixels still spends its step
         if loss is None:

@@ -34,7 +34,10 @@ stopping: training stops after ``patience`` epochs without a lower validation lo
 the best state is kept (:mod:`labeler.model.validation`). With ``keep="last"`` (what
 :func:`labeler.model.fit.fit_head`, hence ``labeler retrain``, asks for) training runs
 to the end of the budget, where the cosine schedule has brought the learning rate to
-zero, and keeps that state; the validation figures are only reported. On the demo plots
+zero, and keeps that state; the validation figures are only reported, so the slice is
+scored after at most :data:`REPORTED_VALIDATIONS` evenly spaced epochs and the last one
+(the other epochs' history holds NaN): a 200-tile label set would otherwise score its
+32-tile sample after each of its 40 epochs. On the demo plots
 the slice of two tiles that 12 labelled tiles give is too noisy to choose an epoch by:
 keeping the last state scored 0.711 and 0.701 mIoU (seeds 0 and 1) against 0.710 and
 0.690 for the state early stopping chose (450 steps, ``benchmarks/proposal_quality.py``
@@ -79,7 +82,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import torch
 
-from labeler.model.augment import colour_jitter, image_augmentation
+from labeler.model.augment import colour_jitter
 from labeler.model.budget import step_budget, validation_sample
 from labeler.model.head import REFINE_CHANNELS, HeadConfig, ProposalHead
 from labeler.model.loss import class_weights
@@ -98,6 +101,7 @@ __all__ = [
     "AUX_WEIGHT",
     "TRAIN_WIDTH",
     "TRAIN_LR",
+    "REPORTED_VALIDATIONS",
 ]
 
 #: Weight of the coarse (stride-4) auxiliary loss when the head refines.
@@ -109,6 +113,9 @@ TRAIN_WIDTH = 48
 #: Peak AdamW learning rate of the head (3e-3 left the head short of converged within
 #: the step budget; :mod:`labeler.model.budget` has the table).
 TRAIN_LR = 6e-3
+
+#: Most validations of a ``keep="last"`` training besides the last epoch's (only reported).
+REPORTED_VALIDATIONS = 8
 
 #: Fewest optimiser steps per epoch: small label sets are passed over several times.
 MIN_STEPS_PER_EPOCH = 16
@@ -147,6 +154,8 @@ class TrainResult:
     steps, budget : int
         Optimiser steps made, and the most that were allowed (the step budget, or the
         steps of ``model.epochs`` epochs if fewer).
+    precision : str
+        Arithmetic of the training steps' convolutions.
     """
 
     head: ProposalHead
@@ -160,6 +169,7 @@ class TrainResult:
     tail: EncoderTail | None = None
     steps: int = 0
     budget: int = 0
+    precision: str = "float32"
 
 
 # -- the steps of train_head ----------------------------------------------------------------------
@@ -176,7 +186,10 @@ def _check_options(
     schedule: str,
     coarse_loss: str,
     keep: str = "best",
+    precision: str = "float32",
 ) -> None:
+    if precision not in ("float32", "bfloat16"):
+        raise ValueError(f"precision: expected 'float32' or 'bfloat16', got {precision!r}")
     if keep not in ("best", "last"):
         raise ValueError(f"keep: expected 'best' or 'last', got {keep!r}")
     if cfg.class_indices != idx:
@@ -250,6 +263,7 @@ def train_head(
     image_mode_max_tiles: int = IMAGE_MODE_MAX_TILES,
     min_steps_per_epoch: int = MIN_STEPS_PER_EPOCH,
     aux_weight: float = AUX_WEIGHT,
+    precision: str = "float32",
     progress: ProgressFn | None = None,
 ) -> TrainResult:
     """Train a proposal head on labelled tiles.
@@ -316,6 +330,9 @@ def train_head(
         made at least this many optimiser steps.
     aux_weight : float
         Weight of the coarse logits' loss beside the refined logits' (refining heads).
+    precision : {"float32", "bfloat16"}
+        Arithmetic of the training steps' convolutions (:func:`labeler.model.steps.batch_loss`);
+        weights, losses and validation stay float32.
     progress : callable, optional
         ``progress(step, total_steps, metrics)`` after each epoch (metrics as in history;
         ``total_steps`` is the most steps allowed, early stopping may end sooner).
@@ -352,6 +369,7 @@ def train_head(
         schedule=schedule,
         coarse_loss=coarse_loss,
         keep=keep,
+        precision=precision,
     )
     rng = np.random.default_rng(s.seed)  # the split, then every epoch's shuffles and turns
     data = prepare_training_set(
@@ -368,11 +386,18 @@ def train_head(
         rng=rng,
     )
     budget = step_budget(len(data.train_ids)) if steps is None else int(steps)
-    budget = min(budget, s.epochs * _epoch_steps(data.groups, s.batch_size, min_steps_per_epoch))
+    epoch_steps = _epoch_steps(data.groups, s.batch_size, min_steps_per_epoch)
+    budget = min(budget, s.epochs * epoch_steps)
+    planned = min(s.epochs, -(-budget // epoch_steps)) if epoch_steps else s.epochs
+    every = 1 if keep == "best" else max(1, -(-planned // REPORTED_VALIDATIONS))
     val_groups = data.groups_of(validation_sample(data.val_ids, rng))
     weights = class_weights(data.class_counts)
     weight_t = torch.as_tensor(weights, dtype=torch.float32)
-    augment = image_augmentation()
+    augment = None
+    if data.mode == "images":
+        from labeler.model.augment_images import image_augmentation  # needs torchvision
+
+        augment = image_augmentation()
     jitter = colour_jitter() if cfg.refines else None
 
     with torch.random.fork_rng(devices=[]):
@@ -404,13 +429,23 @@ def train_head(
                 tail=tail,
                 scheduler=scheduler,
                 coarse_loss=coarse_loss,
+                precision=precision,
             )
             done += made
             if tail is not None:
                 tail.eval()
-            val_loss, cm = validate(
-                head, data.features, data.masks, val_groups, weight_t, cfg, images=images, tail=tail
-            )
+            val_loss, cm = math.nan, None
+            if epoch % every == 0 or done >= budget or epoch >= s.epochs:
+                val_loss, cm = validate(
+                    head,
+                    data.features,
+                    data.masks,
+                    val_groups,
+                    weight_t,
+                    cfg,
+                    images=images,
+                    tail=tail,
+                )
             iou = iou_from(cm)
             metrics = {
                 "epoch": float(epoch),
@@ -455,4 +490,5 @@ def train_head(
         tail=tail,
         steps=done,
         budget=budget,
+        precision=precision,
     )

@@ -14,7 +14,9 @@ of the turned tile for every step and never runs the encoder again.
 The number of turns kept per tile falls as the label set grows
 (:func:`turns_per_tile`): a dozen tiles get all eight, a thousand get one or two, so
 the features held in memory stay near :data:`MAX_VIEWS` tile views (about 0.4 MB each
-for a 256 x 256 tile in float16). Which turns a tile keeps is drawn once from the
+for a 256 x 256 tile in float16), and the first retrain of a large label set encodes at
+most that many views less the tiles themselves (800: a 200-tile set keeps 4 turns per
+tile, 600 encoder passes where 8 turns took 1 400). Which turns a tile keeps is drawn once from the
 training seed (:func:`choose_turns`).
 """
 
@@ -39,7 +41,7 @@ __all__ = [
 #: Symmetries of the square.
 N_TURNS = 8
 #: Tile views (tile x turn) whose features training keeps in memory, about.
-MAX_VIEWS = 1600
+MAX_VIEWS = 800
 
 Features = tuple[np.ndarray, ...]
 
@@ -88,8 +90,8 @@ def turns_per_tile(n_tiles: int, *, max_views: int = MAX_VIEWS) -> int:
     Returns
     -------
     int
-        ``max_views // n_tiles`` clipped to 1..8: 8 up to 200 tiles (with the default
-        ``max_views`` 1600), 1 from 1 600 tiles on.
+        ``max_views // n_tiles`` clipped to 1..8: 8 up to 100 tiles (with the default
+        ``max_views`` 800), 4 for 200, 2 for 400, 1 from 401 tiles on.
     """
     if n_tiles < 0 or max_views < 1:
         raise ValueError(

@@ -28,53 +28,8 @@ stage:
 ========================  ===========================================================
 """
 
-from labeler.workflow.adapting import AdaptOutcome, adapt
-from labeler.workflow.adding import AddResult, add_images, capture_dates, set_capture_date
-from labeler.workflow.agreeing import (
-    agreement_summary,
-    compared_images,
-    contested_tiles,
-    write_agreement,
-)
-from labeler.workflow.annotating import (
-    QueueRow,
-    accept_tile,
-    after_save,
-    next_tile,
-    park_tile,
-    queue_rows,
-    save_state,
-    save_tile_mask,
-    unpark_tile,
-    weak_label_tile_state,
-)
-from labeler.workflow.editing import (
-    EditStart,
-    StoreBackend,
-    begin_edit,
-    end_edit,
-    release_tile,
-)
-from labeler.workflow.effort import VersionEffort, effort_by_model
-from labeler.workflow.encoders import encoder_versions
-from labeler.workflow.exporting import ExportResult, export_project
-from labeler.workflow.importing import ImportResult, import_masks
-from labeler.workflow.picking import PickedTile, PickResult, pick_tiles
-from labeler.workflow.progress import Progress, no_progress
-from labeler.workflow.proposing import ProposeResult, propose
-from labeler.workflow.renewing import RenewResult, background_work, renew_proposals
-from labeler.workflow.retraining import LabelledTile, RetrainResult, labelled_tiles, retrain
-from labeler.workflow.status import ProjectStatus, project_status
-from labeler.workflow.views import (
-    SaveBasis,
-    TilePlace,
-    TileView,
-    annotators,
-    model_versions,
-    save_basis,
-    tile_places,
-    tile_view,
-)
+import importlib
+from typing import Any
 
 __all__ = [
     "VersionEffort",
@@ -134,3 +89,78 @@ __all__ = [
     "SaveBasis",
     "save_basis",
 ]
+
+
+#: The module of each public name; imported on first use (PEP 562), so a command
+#: loads only the stages it runs (importing every stage took about a second).
+_WHERE = {
+    "AdaptOutcome": "adapting",
+    "adapt": "adapting",
+    "AddResult": "adding",
+    "add_images": "adding",
+    "capture_dates": "adding",
+    "set_capture_date": "adding",
+    "agreement_summary": "agreeing",
+    "compared_images": "agreeing",
+    "contested_tiles": "agreeing",
+    "write_agreement": "agreeing",
+    "QueueRow": "annotating",
+    "accept_tile": "annotating",
+    "after_save": "annotating",
+    "next_tile": "annotating",
+    "park_tile": "annotating",
+    "queue_rows": "annotating",
+    "save_state": "annotating",
+    "save_tile_mask": "annotating",
+    "unpark_tile": "annotating",
+    "weak_label_tile_state": "annotating",
+    "EditStart": "editing",
+    "StoreBackend": "editing",
+    "begin_edit": "editing",
+    "end_edit": "editing",
+    "release_tile": "editing",
+    "VersionEffort": "effort",
+    "effort_by_model": "effort",
+    "encoder_versions": "encoders",
+    "ExportResult": "exporting",
+    "export_project": "exporting",
+    "ImportResult": "importing",
+    "import_masks": "importing",
+    "PickResult": "picking",
+    "PickedTile": "picking",
+    "pick_tiles": "picking",
+    "Progress": "progress",
+    "no_progress": "progress",
+    "ProposeResult": "proposing",
+    "propose": "proposing",
+    "RenewResult": "renewing",
+    "background_work": "renewing",
+    "renew_proposals": "renewing",
+    "LabelledTile": "retraining",
+    "RetrainResult": "retraining",
+    "labelled_tiles": "retraining",
+    "retrain": "retraining",
+    "ProjectStatus": "status",
+    "project_status": "status",
+    "SaveBasis": "views",
+    "TilePlace": "views",
+    "TileView": "views",
+    "annotators": "views",
+    "model_versions": "views",
+    "save_basis": "views",
+    "tile_places": "views",
+    "tile_view": "views",
+}
+
+
+def __getattr__(name: str) -> Any:
+    module = _WHERE.get(name)
+    if module is None:
+        raise AttributeError(f"module 'labeler.workflow' has no attribute {name!r}")
+    value = getattr(importlib.import_module(f"labeler.workflow.{module}"), name)
+    globals()[name] = value  # later look-ups skip this function
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_WHERE))

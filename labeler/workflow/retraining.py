@@ -93,7 +93,9 @@ def labelled_tiles(project: Project) -> list[LabelledTile]:
             ann = None
         if t.state == SETTLED:
             settled = [
-                a for a in store.annotation_history(t.id) if a.state == SETTLED and a.kind == KIND_FULL
+                a
+                for a in store.annotation_history(t.id)
+                if a.state == SETTLED and a.kind == KIND_FULL
             ]
             ann = settled[-1] if settled else ann
         kind = KIND_FULL
@@ -300,6 +302,7 @@ def retrain(
             "refine_channels": result.head.config.refine_channels,
             "base_encoder_version": encoder.version,
             "tuned_stages": tail.stages if tail is not None else 0,
+            "train_precision": result.precision,
             "seconds": round(seconds, 2),
         },
     )

@@ -2,17 +2,8 @@
 
 import numpy as np
 import torch
-from torchvision import tv_tensors
 
-from labeler.model.augment import (
-    RandomQuarterTurn,
-    can_turn,
-    colour_jitter,
-    dihedral,
-    feature_batch,
-    image_augmentation,
-    image_batch,
-)
+from labeler.model.augment import can_turn, colour_jitter, dihedral, feature_batch
 from tests.common import zoo_four_classes
 
 
@@ -31,38 +22,6 @@ def test_dihedral_matches_numpy():
 def test_can_turn_needs_sides_that_are_multiples_of_32():
     assert can_turn((64, 64)) and can_turn((96, 32))
     assert not can_turn((48, 64)) and not can_turn((64, 30))
-
-
-def test_augmentation_moves_image_and_mask_together_without_interpolation():
-    torch.manual_seed(0)
-    rng = np.random.default_rng(1)
-    mask = np.kron(zoo_four_classes(), np.ones((2, 2), np.uint8))  # 16 x 16, four quadrants
-    mask[0, 0] = 255
-    image = np.zeros((3, 16, 16), np.uint8)
-    image[1] = mask * 40  # green channel encodes the class
-    image[0] = rng.integers(0, 50, (16, 16))
-    aug = image_augmentation()
-    for _ in range(12):
-        im, mk = aug(
-            tv_tensors.Image(torch.from_numpy(image)), tv_tensors.Mask(torch.from_numpy(mask))
-        )
-        assert isinstance(mk, tv_tensors.Mask) and mk.dtype == torch.uint8
-        m = mk.numpy()
-        # the mask is only moved: same multiset of values, no interpolated values
-        np.testing.assert_array_equal(np.sort(m.ravel()), np.sort(mask.ravel()))
-        # it moved exactly like the image: one of the 8 flips/turns of the original
-        options = [np.rot90(mask, k) for k in range(4)] + [
-            np.fliplr(np.rot90(mask, k)) for k in range(4)
-        ]
-        assert any(np.array_equal(m, o) for o in options)
-
-
-def test_quarter_turn_keeps_non_square_shapes():
-    torch.manual_seed(3)
-    turn = RandomQuarterTurn()
-    mask = tv_tensors.Mask(torch.arange(6, dtype=torch.uint8).reshape(2, 3))
-    for _ in range(8):
-        assert tuple(turn(mask).shape) == (2, 3)
 
 
 def _zoo_tile():
@@ -107,27 +66,3 @@ def test_feature_batches_without_images_have_no_pixels():
         [0], feats, masks, {0: (32, 32)}, np.random.default_rng(0)
     )
     assert pixels is None and len(levels) == 4 and tuple(target.shape) == (1, 32, 32)
-
-
-def test_image_batches_pass_the_augmented_image_to_the_encoder():
-    masks, image, _ = _zoo_tile()
-    seen = []
-
-    def encoder(x):  # records its input; one level per stride, each the input's mean
-        seen.append(x.clone())
-        return tuple(x.mean(dim=1, keepdim=True)[..., ::s, ::s] for s in (4, 8, 16, 32))
-
-    torch.manual_seed(2)
-    levels, target, pixels = image_batch([0, 0], [image], masks, image_augmentation(), encoder)
-    assert pixels.dtype == torch.uint8 and tuple(pixels.shape) == (2, 3, 32, 32)
-    torch.testing.assert_close(seen[0], pixels.to(torch.float32), rtol=0, atol=0)
-    assert [tuple(t.shape) for t in levels] == [
-        (2, 1, 8, 8),
-        (2, 1, 4, 4),
-        (2, 1, 2, 2),
-        (2, 1, 1, 1),
-    ]
-    for b in range(2):  # each mask is one of the 8 flips/turns of the zoo mask
-        options = [np.rot90(masks[0], k) for k in range(4)]
-        options += [np.fliplr(o) for o in options]
-        assert any(np.array_equal(target[b].numpy(), o) for o in options)

@@ -64,12 +64,12 @@ def test_turn_keys_keep_the_tile_itself_under_its_own_key():
 
 @pytest.mark.parametrize(
     ("n", "want"),
-    # worked by hand: MAX_VIEWS // n clipped to 1..8 (1600 // 12 = 133 -> 8,
-    # 1600 // 200 = 8, 1600 // 201 = 7, 1600 // 1000 = 1)
-    [(0, 8), (12, 8), (200, 8), (201, 7), (400, 4), (1000, 1), (5000, 1)],
+    # worked by hand: MAX_VIEWS // n clipped to 1..8 (800 // 12 = 66 -> 8,
+    # 800 // 100 = 8, 800 // 101 = 7, 800 // 200 = 4, 800 // 1000 = 0 -> 1)
+    [(0, 8), (12, 8), (100, 8), (101, 7), (200, 4), (400, 2), (1000, 1), (5000, 1)],
 )
 def test_turns_per_tile_fall_as_the_label_set_grows(n, want):
-    assert MAX_VIEWS == 1600
+    assert MAX_VIEWS == 800
     assert turns_per_tile(n) == want
 
 

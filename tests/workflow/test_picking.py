@@ -48,6 +48,50 @@ def test_cli_pick_prints_the_batch_with_reasons(project, capsys):
     assert out.count("uncertain") == 2  # margin orders by uncertainty: each batch tile says so
 
 
+def test_cli_pick_says_when_ranks_follow_the_order_of_picking(project, capsys, monkeypatch):
+    from labeler.cli import main
+    from labeler.workflow import picking
+
+    def scripted(project, **kwargs):  # a spread batch: the second pick scores higher
+        batch = [
+            picking.PickedTile(
+                rank=0,
+                tile_id=7,
+                image="a.tif",
+                row=0,
+                col=0,
+                score=17.065,
+                reason="unlike labelled tiles",
+            ),
+            picking.PickedTile(
+                rank=1,
+                tile_id=9,
+                image="a.tif",
+                row=0,
+                col=224,
+                score=25.478,
+                reason="unlike labelled tiles",
+            ),
+        ]
+        return picking.PickResult("coreset", "coreset", 2, [], 0, batch=batch)
+
+    monkeypatch.setattr(picking, "pick_tiles", scripted)
+    monkeypatch.setattr("labeler.workflow.pick_tiles", scripted, raising=False)
+    assert main(["pick", str(project.root), "--k", "2"]) == 0
+    out = capsys.readouterr().out
+    assert "ranked by" in out and "pick 1 \u00b7 17.0650" in out and "pick 2 \u00b7 25.4780" in out
+    assert "the ranks follow the order of picking" in out
+
+
+def test_cli_pick_shows_plain_scores_when_they_fall_with_rank(project, capsys):
+    from labeler.cli import main
+
+    fake_proposals(project)
+    assert main(["pick", str(project.root), "--strategy", "margin", "--k", "2"]) == 0
+    out = capsys.readouterr().out
+    assert "ranked by" not in out and "order of picking" not in out and " score " in out
+
+
 def test_cli_pick_rejects_bad_k(project):
     from labeler.cli import main
 
