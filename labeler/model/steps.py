@@ -93,68 +93,39 @@ def batch_loss(
     their updates stay float32).
     """
     with torch.autocast("cpu", dtype=torch.bfloat16, enabled=precision == "bfloat16"):
-        return _batch_loss(
-            head,
-            levels,
-            target,
-            pixels,
-            weight,
-            aux_weight=aux_weight,
-            crop=crop,
-            rng=rng,
-            tail=tail,
-            coarse_loss=coarse_loss,
-            jitter=jitter,
-        )
-
-
-def _batch_loss(
-    head: ProposalHead,
-    levels: list[torch.Tensor],
-    target: torch.Tensor,
-    pixels: torch.Tensor | None,
-    weight: torch.Tensor,
-    *,
-    aux_weight: float,
-    crop: int,
-    rng: np.random.Generator,
-    tail: EncoderTail | None,
-    coarse_loss: str,
-    jitter: Callable[[torch.Tensor], torch.Tensor] | None,
-) -> torch.Tensor | None:
-    target = target.to(torch.long)
-    if tail is not None:
-        levels = tail(levels)
-    z = head.trunk(levels)
-    cells = coarse_loss == "cells"
-    loss = cell_cross_entropy(head.classify(z).float(), target, weight) if cells else None
-    refines = head.config.refines and pixels is not None
-    window = draw_crop(tuple(target.shape[-2:]), crop, rng) if crop else None
-    coarse = refined = None
-    if window is not None:
-        coarse, refined = crop_logits(
-            head, z, pixels if refines else None, window, coarse=not cells, jitter=jitter
-        )
-        target = target[
-            :, window.row : window.row + window.height, window.col : window.col + window.width
-        ]
-    else:
-        if not cells:
-            coarse = F.interpolate(
-                head.classify(z),
-                size=tuple(target.shape[-2:]),
-                mode="bilinear",
-                align_corners=False,
+        target = target.to(torch.long)
+        if tail is not None:
+            levels = tail(levels)
+        z = head.trunk(levels)
+        cells = coarse_loss == "cells"
+        loss = cell_cross_entropy(head.classify(z).float(), target, weight) if cells else None
+        refines = head.config.refines and pixels is not None
+        window = draw_crop(tuple(target.shape[-2:]), crop, rng) if crop else None
+        coarse = refined = None
+        if window is not None:
+            coarse, refined = crop_logits(
+                head, z, pixels if refines else None, window, coarse=not cells, jitter=jitter
             )
-        if refines and jitter is not None:
-            pixels = jitter(pixels)
-        refined = head.refine(z, pixel_input(pixels)) if refines else None
-    if not cells:
-        loss = partial_cross_entropy(coarse.float(), target, weight)
-    if loss is None or refined is None:
-        return loss
-    fine = partial_cross_entropy(refined.float(), target, weight)
-    return aux_weight * loss if fine is None else fine + aux_weight * loss
+            target = target[
+                :, window.row : window.row + window.height, window.col : window.col + window.width
+            ]
+        else:
+            if not cells:
+                coarse = F.interpolate(
+                    head.classify(z),
+                    size=tuple(target.shape[-2:]),
+                    mode="bilinear",
+                    align_corners=False,
+                )
+            if refines and jitter is not None:
+                pixels = jitter(pixels)
+            refined = head.refine(z, pixel_input(pixels)) if refines else None
+        if not cells:
+            loss = partial_cross_entropy(coarse.float(), target, weight)
+        if loss is None or refined is None:
+            return loss
+        fine = partial_cross_entropy(refined.float(), target, weight)
+        return aux_weight * loss if fine is None else fine + aux_weight * loss
 
 
 def train_epoch(

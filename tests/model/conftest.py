@@ -65,3 +65,15 @@ def disk_tiles(
         images.append(np.clip(im, 0, 255).astype(np.uint8))
         masks.append(m)
     return images, masks
+
+
+def random_features(n: int, size: int = 64, seed: int = 0) -> list[tuple[np.ndarray, ...]]:
+    """``n`` tiles of seeded standard-normal float16 features at the encoder's four strides."""
+    rng = np.random.default_rng(seed)
+    return [
+        tuple(
+            rng.standard_normal((c, -(-size // s), -(-size // s))).astype(np.float16)
+            for c, s in zip((24, 40, 112, 320), (4, 8, 16, 32), strict=True)
+        )
+        for _ in range(n)
+    ]

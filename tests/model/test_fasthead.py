@@ -14,17 +14,7 @@ from labeler.model.fasthead import (
 from labeler.model.head import HeadConfig, ProposalHead, features_to_tensors
 from labeler.model.predict import propose_tiles
 from labeler.model.refine import pixel_input
-
-
-def _features(n, size=64, seed=0):
-    rng = np.random.default_rng(seed)
-    return [
-        tuple(
-            rng.standard_normal((c, -(-size // s), -(-size // s))).astype(np.float16)
-            for c, s in zip((24, 40, 112, 320), (4, 8, 16, 32), strict=True)
-        )
-        for _ in range(n)
-    ]
+from tests.model.conftest import random_features as _features
 
 
 def _tiles(n, size=64, seed=1):

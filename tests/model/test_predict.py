@@ -21,17 +21,7 @@ from labeler.model.predict import (
 )
 from labeler.model.refine import pixel_input
 from labeler.picker import pixel_bald, pixel_entropy, pixel_least_confidence, pixel_margin
-
-
-def _features(n, size=64, seed=0):
-    rng = np.random.default_rng(seed)
-    return [
-        tuple(
-            rng.standard_normal((c, -(-size // s), -(-size // s))).astype(np.float16)
-            for c, s in zip((24, 40, 112, 320), (4, 8, 16, 32), strict=True)
-        )
-        for _ in range(n)
-    ]
+from tests.model.conftest import random_features as _features
 
 
 @pytest.fixture(scope="module")
