@@ -8,6 +8,7 @@ each disk is known, so the checks count pixels against it.
 
 import numpy as np
 import pytest
+import torch
 
 from labeler.model.ontile import OnTileOptions, TileLearner
 from labeler.model.predict import propose_tiles
@@ -60,6 +61,68 @@ def test_marks_that_agree_with_the_proposal_change_little(trained):
     assert (learner.fit(marks) == base).mean() >= 0.99
 
 
+def _like_marks_loop(feats, head_arg, head_top, head_sure, where, target, arg, k):
+    """Slow reference of the look-alike rule: pixel by pixel, prototype by prototype."""
+    d, n = feats.shape
+    unit = [feats[:, i] / max(np.linalg.norm(feats[:, i]), 1e-6) for i in range(n)]
+    marked = set(where.tolist())
+    protos = []
+    for c in range(k):
+        sel = [w for w, t in zip(where.tolist(), target.tolist(), strict=True) if t == c]
+        if sel:
+            protos.append((np.mean([unit[i] for i in sel], axis=0), c))
+        sel = [i for i in range(n)
+               if i not in marked and head_arg[i] == c and head_top[i] >= head_sure]
+        if len(sel) >= 5:
+            protos.append((np.mean([unit[i] for i in sel], axis=0), -1))
+    out = np.zeros(n, bool)
+    for i in range(n):
+        sims = [float(p @ unit[i]) / max(np.linalg.norm(p), 1e-6) for p, _ in protos]
+        out[i] = protos[int(np.argmax(sims))][1] == arg[i]
+    return out
+
+
+def test_the_look_alike_rule_matches_a_slow_loop(trained):
+    head, feats, tile, truth = trained
+    learner = TileLearner(head, feats, image=tile)
+    rng = np.random.default_rng(3)
+    n = SIZE * SIZE
+    where = torch.from_numpy(np.sort(rng.choice(n, 40, replace=False)))
+    target = torch.from_numpy(rng.integers(0, 3, 40))
+    arg = torch.from_numpy(rng.integers(0, 3, n))
+    got = learner._like_marks(where, target, arg)
+    want = _like_marks_loop(learner._feats.numpy(), learner._head_arg.numpy(),
+                            learner._head_top.numpy(), learner.options.head_sure,
+                            where.numpy(), target.numpy(), arg.numpy(), 3)
+    # cosine ties between prototypes could differ in the last bit; on seeded random
+    # marks there are none, so the two agree exactly
+    np.testing.assert_array_equal(got, want)
+
+
+def test_marked_pixels_take_their_mark_and_the_rule_moves_less_than_the_whole_fit(trained):
+    head, feats, tile, truth = trained
+    learner = TileLearner(head, feats, image=tile)
+    base = learner.proposal()
+    crop = disk(16, 16, 9)
+    marks = np.full(truth.shape, 255, np.uint8)
+    marks[14:17, 12:20] = 2  # an annotator's slip: weed marked on the green crop
+    marks[2:5, 30:60] = 0  # and soil confirmed
+    after = learner.fit(marks)
+    np.testing.assert_array_equal(after[marks != 255], marks[marks != 255])
+    unmarked = marks == 255
+    where, target = learner._targets(marks)
+    whole = np.asarray((0, 1, 2), np.uint8)[learner._fit(where, target).argmax(dim=0).numpy()]
+    whole = whole.reshape(truth.shape)
+    # the slip's fit taken whole moves 161 unmarked pixels away from the head (72 % of
+    # the crop disk turns weed); the rule moves 59, all of them on the green the slip
+    # named, and the soil stays soil
+    moved_whole = int((whole[unmarked] != base[unmarked]).sum())
+    moved = int((after[unmarked] != base[unmarked]).sum())
+    assert moved <= moved_whole // 2
+    assert (after[crop] == 1).mean() > (whole[crop] == 1).mean()
+    assert (after[unmarked & (truth == 0)] == 0).mean() >= 0.98
+
+
 @pytest.mark.parametrize(
     ("marks", "match"),
     [
@@ -91,6 +154,10 @@ def test_pixels_of_another_tile_are_refused(trained):
         ({"lr": 0.0}, "lr: expected a positive learning rate"),
         ({"prior_weight": -1.0}, "prior_weight: expected a finite number >= 0"),
         ({"prior_weight": float("nan")}, "prior_weight: expected a finite number >= 0"),
+        ({"head_sure": 0.0}, r"head_sure: expected a probability in \(0, 1\]"),
+        ({"head_sure": 1.5}, r"head_sure: expected a probability in \(0, 1\]"),
+        ({"fit_sure": 1.0}, r"fit_sure: expected a probability in \[0, 1\)"),
+        ({"fit_sure": -0.1}, r"fit_sure: expected a probability in \[0, 1\)"),
     ],
 )
 def test_bad_options_are_named(kwargs, match):
