@@ -133,6 +133,9 @@ class OnTileOptions:
     fit_sure : float
         An unmarked pixel takes the fit's class only where the fit gives that class at
         least this probability; in [0, 1).
+    look_alike : bool
+        Apply the look-alike rule; False takes the fit's class at every unmarked pixel
+        (the fit whole, for comparison).
     """
 
     steps: int = 100
@@ -143,6 +146,7 @@ class OnTileOptions:
     seed: int = 0
     head_sure: float = 0.7
     fit_sure: float = 0.9
+    look_alike: bool = True
 
     def __post_init__(self) -> None:
         if int(self.steps) != self.steps or self.steps < 1:
@@ -315,7 +319,10 @@ class TileLearner:
         with _one_thread():
             probs = self._fit(where, target)  # (K, H * W)
         top, arg = probs.max(dim=0)
-        take = (top >= self.options.fit_sure).numpy() & self._like_marks(where, target, arg)
+        if self.options.look_alike:
+            take = (top >= self.options.fit_sure).numpy() & self._like_marks(where, target, arg)
+        else:
+            take = np.ones(arg.shape, bool)
         out = self._first.reshape(-1).copy()
         fitted = np.asarray(self.class_indices, np.uint8)[arg.numpy()]
         out[take] = fitted[take]
