@@ -306,8 +306,16 @@ class EditorSession:
     def _relearn(self) -> None:
         """The relearn key: re-fit the model on the marks; errors become a message."""
         try:
+            before = self.state.mask
             if self.state.relearn():
-                self.message = "the model learnt from your marks and re-proposed the tile"
+                moved = int(np.count_nonzero(self.state.mask != before))
+                self.message = (
+                    "the model learnt from your marks and re-proposed the tile: "
+                    f"{moved} pixel{'s' if moved != 1 else ''} changed; u undoes it"
+                )
+            elif not self.state.notice:
+                self.message = ("the model learnt from your marks: nothing changed, the "
+                                "proposal already agrees with them")
         except (OSError, LabelerError) as exc:
             self.message = f"could not learn on this tile: {exc}"
 

@@ -114,6 +114,10 @@ def test_the_relearn_key_in_a_session_asks_the_backend():
     assert command_for(ord("i")) == "relearn"
     session.on_key(ord("i"))
     assert backend.relearned == 1 and "learnt from your marks" in session.message
+    # all 64 pixels of the 8 x 8 tile went from soil to the learner's answer
+    assert "64 pixels changed; u undoes it" in session.message
+    session.on_key(ord("i"))  # the same marks again: the same answer, nothing moves
+    assert "nothing changed, the proposal already agrees with them" in session.message
     marks = seen[0]
     assert set(np.unique(marks).tolist()) == {1, UNLABELLED}
     # everything not marked took the learner's answer
