@@ -266,7 +266,7 @@ class TileLearner:
         with torch.no_grad():
             self._prior = F.log_softmax(self._logits0[:, self._prior_at].t(), dim=1)
             # for the look-alike rule: the head's top class and probability per pixel,
-            # and each pixel's description at unit length
+            # and the inverse length of each pixel's description
             self._head_top, self._head_arg = torch.softmax(self._logits0, dim=0).max(dim=0)
             self._inv_norm = 1.0 / self._feats.norm(dim=0).clamp_min(1e-6)  # (H * W,)
         self.refined = image is not None and head.refiner is not None
