@@ -54,8 +54,9 @@ lint: $(STAMP)
 
 # every benchmark script (benchmarks/datasets.py is their shared helper, not a benchmark),
 # then the label-efficiency benchmark, a package run with -m (about 40 minutes), and the
-# annotation-effort benchmark, run with -m as it uses that package's loaders
-BENCH_SCRIPTS := $(filter-out benchmarks/datasets.py benchmarks/annotation_effort.py,$(wildcard benchmarks/*.py))
+# benchmarks that use that package's loaders, run with -m too
+BENCH_MODULES := adaptation_gain annotation_effort ontile_rule
+BENCH_SCRIPTS := $(filter-out benchmarks/datasets.py $(BENCH_MODULES:%=benchmarks/%.py),$(wildcard benchmarks/*.py))
 
 bench: $(STAMP)
 	@for b in $(BENCH_SCRIPTS); do echo "== $$b"; $(BIN)/python $$b || exit 1; done
@@ -63,6 +64,10 @@ bench: $(STAMP)
 	$(BIN)/python -m benchmarks.label_efficiency
 	@echo "== python -m benchmarks.annotation_effort --out docs"
 	$(BIN)/python -m benchmarks.annotation_effort --out docs
+	@echo "== python -m benchmarks.adaptation_gain --out docs"
+	$(BIN)/python -m benchmarks.adaptation_gain --out docs
+	@echo "== python -m benchmarks.ontile_rule"
+	$(BIN)/python -m benchmarks.ontile_rule
 
 clean-venv:
 	rm -rf $(VENV)
