@@ -132,15 +132,55 @@ def sixel_percent(value: int) -> int:
     return (int(value) * 200 + 255) // 510
 
 
-def _run_length(chars: np.ndarray) -> str:
-    """Sixel characters with runs of four or more written ``!<n><c>``."""
-    n = len(chars)
-    starts = np.flatnonzero(np.diff(chars, prepend=-1))
-    lengths = np.diff(np.append(starts, n))
-    return "".join(
-        f"!{run}{chr(ch)}" if run >= 4 else chr(ch) * run
-        for ch, run in zip(chars[starts].tolist(), lengths.tolist(), strict=True)
-    )
+def _run_length_rows(chars: np.ndarray, lengths: np.ndarray) -> list[str]:
+    """Rows of sixel characters, each cut to its length, with runs of four or more equal
+    characters written ``!<n><c>`` (vectorised over all rows at once).
+
+    Parameters
+    ----------
+    chars : ndarray, shape (m, w), int64
+        Sixel characters (63..126) of ``m`` rows.
+    lengths : ndarray, shape (m,), int64
+        Characters kept of each row, 1..w.
+
+    Returns
+    -------
+    list of str
+        The ``m`` encoded rows.
+    """
+    m, w = chars.shape
+    seq = chars[np.arange(w)[None, :] < lengths[:, None]]  # the rows, one after the other
+    row_of = np.repeat(np.arange(m), lengths)
+    n = len(seq)
+    new_run = np.ones(n, bool)
+    new_run[1:] = (seq[1:] != seq[:-1]) | (row_of[1:] != row_of[:-1])
+    starts = np.flatnonzero(new_run)
+    run = np.diff(np.append(starts, n))
+    ch = seq[starts]
+    long = run >= 4
+    digits = np.ones(len(run), np.int64)  # decimal digits of each run's count
+    for k in range(1, len(str(w))):
+        digits += run >= 10**k
+    size = np.where(long, digits + 2, run)  # "!", the digits, the character
+    at = np.concatenate([[0], np.cumsum(size)])
+    buf = np.empty(int(at[-1]), np.uint8)
+    short = ~long
+    if short.any():  # each short run written out: its character ``run`` times
+        r = run[short]
+        first = np.repeat(at[:-1][short], r)
+        within = np.arange(int(r.sum())) - np.repeat(np.cumsum(r) - r, r)
+        buf[first + within] = np.repeat(ch[short], r)
+    if long.any():
+        o, r, d = at[:-1][long], run[long], digits[long]
+        buf[o] = ord("!")
+        for k in range(int(d.max())):  # the k-th digit of each count that has one
+            has = k < d
+            buf[o[has] + 1 + k] = 48 + (r[has] // 10 ** (d[has] - 1 - k)) % 10
+        buf[o + 1 + d] = ch[long]
+    text = buf.tobytes().decode("ascii")
+    row_start = at[np.searchsorted(starts, np.concatenate([[0], np.cumsum(lengths)[:-1]]))]
+    row_end = np.append(row_start[1:], len(text))
+    return [text[a:b] for a, b in zip(row_start.tolist(), row_end.tolist(), strict=True)]
 
 
 def sixel_encode(index: np.ndarray, palette: np.ndarray) -> str:
@@ -192,11 +232,13 @@ def sixel_encode(index: np.ndarray, palette: np.ndarray) -> str:
         weight = np.repeat(1 << np.arange(len(band)), w)
         bits = np.bincount(key, weights=weight, minlength=n_colours * w)
         bits = bits.astype(np.int64).reshape(n_colours, w)
-        layers = []
-        for c in np.flatnonzero(bits.any(axis=1)):
-            last = int(np.flatnonzero(bits[c])[-1])
-            layers.append(f"#{int(c)}" + _run_length(bits[c, : last + 1] + 63))
-        parts.append("$".join(layers))
+        used = np.flatnonzero(bits.any(axis=1))
+        rows = bits[used]
+        # each colour's characters stop at its last set pixel
+        lengths = w - np.argmax(rows[:, ::-1] != 0, axis=1)
+        encoded = _run_length_rows(rows + 63, lengths)
+        parts.append("$".join(f"#{int(c)}{e}" for c, e in zip(used.tolist(), encoded,
+                                                               strict=True)))
         if top + 6 < h:
             parts.append("-")
     parts.append("\x1b\\")

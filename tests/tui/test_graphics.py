@@ -210,6 +210,52 @@ def test_sixel_round_trip_through_a_slow_reader():
         assert rgb == tuple(sixel_percent(v) for v in palette[c])
 
 
+def _sixel_encode_loop(index, palette):
+    """Slow reference of :func:`sixel_encode`: band by band, colour by colour, run by run."""
+    h, w = index.shape
+    parts = ["\x1bP0;1;0q", f'"1;1;{w};{h}']
+    for c in sorted(set(index.ravel().tolist())):
+        r, g, b = (sixel_percent(v) for v in palette[c])
+        parts.append(f"#{c};2;{r};{g};{b}")
+    for top in range(0, h, 6):
+        band = index[top : top + 6]
+        layers = []
+        for c in sorted(set(band.ravel().tolist())):
+            chars = [63 + sum(1 << y for y in range(len(band)) if band[y, x] == c)
+                     for x in range(w)]
+            while chars[-1] == 63:
+                chars.pop()
+            out, x = "", 0
+            while x < len(chars):
+                run = 1
+                while x + run < len(chars) and chars[x + run] == chars[x]:
+                    run += 1
+                out += f"!{run}{chr(chars[x])}" if run >= 4 else chr(chars[x]) * run
+                x += run
+            layers.append(f"#{c}{out}")
+        parts.append("$".join(layers))
+        if top + 6 < h:
+            parts.append("-")
+    parts.append("\x1b\\")
+    return "".join(parts)
+
+
+@pytest.mark.parametrize(("shape", "n_colours", "seed"),
+                         [((13, 7), 5, 0), ((1, 1), 1, 1), ((6, 1), 3, 2), ((7, 40), 256, 3),
+                          ((12, 1203), 2, 4), ((5, 150), 4, 5)])
+def test_sixel_encode_matches_a_slow_loop(shape, n_colours, seed):
+    rng = np.random.default_rng(seed)
+    palette = rng.integers(0, 256, (n_colours, 3)).astype(np.uint8)
+    # runs of every length, long ones (1 203 wide: counts of four digits) among them
+    index = np.repeat(rng.integers(0, n_colours, (shape[0], shape[1] // 3 + 1)),
+                      rng.integers(1, 7), axis=1)[:, : shape[1]]
+    if index.shape[1] < shape[1]:
+        index = np.pad(index, ((0, 0), (0, shape[1] - index.shape[1])), mode="edge")
+    if shape == (12, 1203):
+        index[:, 100:1150] = 1  # one run of 1 050 per row
+    assert sixel_encode(index, palette) == _sixel_encode_loop(index, palette)
+
+
 def test_median_cut_keeps_few_colours_exactly():
     rng = np.random.default_rng(2)
     colours = rng.integers(0, 256, size=(7, 3), dtype=np.uint8)
