@@ -347,9 +347,10 @@ class TileLearner:
             if sel.numel():
                 protos.append((feats[:, sel] * inv[sel]).mean(dim=1))
                 of_marks.append(c)
-            sel = unmarked & (self._head_arg == c) & (self._head_top >= self.options.head_sure)
-            if int(sel.sum()) >= 5:
-                protos.append((feats[:, sel] * inv[sel]).mean(dim=1))
+            sure = unmarked & (self._head_arg == c) & (self._head_top >= self.options.head_sure)
+            n = int(sure.sum())
+            if n >= 5:  # the mean unit description as one product (no copy of the pixels)
+                protos.append(feats @ (sure * inv) / n)
                 of_marks.append(-1)
         p = torch.stack(protos)
         p = p / p.norm(dim=1, keepdim=True).clamp_min(1e-6)
