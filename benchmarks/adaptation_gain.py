@@ -346,12 +346,14 @@ def plot(results: list[dict], path: Path) -> Path:
 
     fig, axes = plt.subplots(1, len(results), figsize=(6 * len(results), 4.2), squeeze=False)
     for ax, res in zip(axes[0], results, strict=True):
-        for start, by_share in res["miou"].items():
+        n = len(res["miou"])
+        for i, (start, by_share) in enumerate(res["miou"].items()):
             xs = sorted(by_share, key=float)
             ys = [by_share[x] for x in xs]
             err = [res["miou_sd"][start][x] or 0.0 for x in xs]
-            ax.errorbar([100 * float(x) for x in xs], ys, yerr=err, marker="o", capsize=3,
-                        label=start)
+            dodge = 0.3 * (i - (n - 1) / 2)  # percentage points: error bars side by side
+            ax.errorbar([100 * float(x) + dodge for x in xs], ys, yerr=err, marker="o",
+                        capsize=3, label=start)
         ax.set_title(f"{res['dataset']} (adaptation budget {res['adapt_budget_minutes']:g} min)")
         ax.set_xlabel("pool tiles labelled (%)")
         ax.set_ylabel("held-out mIoU")

@@ -137,7 +137,9 @@ def _read_tiles(
 def _footprint(image: ImageRecord, captured: date | None) -> Footprint | None:
     if image.transform is None:
         return None
-    return Footprint(image.id, Affine(*image.transform[:6]), image.crs, image.height, image.width, captured)
+    return Footprint(
+        image.id, Affine(*image.transform[:6]), image.crs, image.height, image.width, captured
+    )
 
 
 def revisit_crops(
@@ -188,7 +190,10 @@ def revisit_crops(
             crop_b = reader.read(p.window_b)
         mapping = pixel_mapping(a, b, near=p.window_a)
         out.append(
-            (crop_a, align_revisit(crop_b, window_a=p.window_a, window_b=p.window_b, mapping=mapping))
+            (
+                crop_a,
+                align_revisit(crop_b, window_a=p.window_a, window_b=p.window_b, mapping=mapping),
+            )
         )
     return out
 
@@ -263,6 +268,7 @@ def adapt(
         resumes.
     """
     from labeler.model.adapt import AdaptConfig, AdaptProgress, adapt_encoder
+    from labeler.model.runtime import free_cores
 
     started = time.monotonic()
     if method not in ADAPT_METHODS:
@@ -296,7 +302,9 @@ def adapt(
             f"minutes: {minutes} min is used up by reading the tiles; give a longer budget"
         )
     ckpt = adapt_checkpoint_path(project, method=method, base_version=encoder.version)
-    threads = project.settings.model.threads or None
+    # model.threads 0 means the free cores, as for encoding: all of torch's threads on a
+    # busy machine wait for each other at every operation of every step
+    threads = project.settings.model.threads or free_cores()
 
     def report(p: AdaptProgress) -> None:
         total = p.elapsed + p.remaining
