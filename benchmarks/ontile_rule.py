@@ -5,8 +5,10 @@ options). One JSON line on standard output.
 
 What is measured
     A head is trained as ``labeler retrain`` trains it (the project's defaults) on
-    ``--share`` of the demo pool, picked by ``coreset`` on the encoder embeddings as the
-    product's first pick (:mod:`benchmarks.annotation_effort`). On ``--tiles`` held-out
+    ``--share`` of the pool of ``--dataset`` (the demo plots, or the peanut photos read in
+    place from the open-dataset folder, Tran & Phan 2023, CC BY-SA 4.0), picked by
+    ``coreset`` on the encoder embeddings as the product's first pick
+    (:mod:`benchmarks.annotation_effort`). On ``--tiles`` held-out
     tiles (a seeded sample) a simulated annotator then makes ``--clicks`` corrections,
     each a disk of the truth class at the interior point of the largest error region
     (:func:`labeler.demo.clicks.next_click`, the protocol of Xu et al. 2016, "Deep
@@ -117,6 +119,7 @@ def main(argv: list[str] | None = None) -> int:
     """Command line: train, run the sessions, print one JSON line."""
     ap = argparse.ArgumentParser(prog="python -m benchmarks.ontile_rule",
                                  description=__doc__.split("\n")[0])
+    ap.add_argument("--dataset", choices=("demo", "peanut"), default="demo")
     ap.add_argument("--share", type=float, default=0.10, help="share of the pool labelled")
     ap.add_argument("--tiles", type=int, default=12, help="held-out tiles measured")
     ap.add_argument("--clicks", type=int, default=5, help="corrections per tile")
@@ -139,7 +142,11 @@ def main(argv: list[str] | None = None) -> int:
     oracle = OnTileOptions(steps=300, max_marks=4096, prior_weight=0.0, look_alike=False)
     with tempfile.TemporaryDirectory() as tmp:
         cache = FeatureCache(Path(tmp), encoder_version=encoder.version)
-        (pool, heldout), classes = _load("demo", encoder=encoder, cache=cache)
+        try:
+            (pool, heldout), classes = _load(args.dataset, encoder=encoder, cache=cache)
+        except FileNotFoundError as exc:
+            print(json.dumps({"dataset": args.dataset, "skipped": str(exc)}), flush=True)
+            return 0
         (count,) = picked_counts(len(pool), (args.share,), least=3)
         (head,) = _heads_in_picker_order(pool, [count], class_indices=classes,
                                          encoder=encoder, mc_samples=8,
@@ -167,7 +174,7 @@ def main(argv: list[str] | None = None) -> int:
     worse = int(np.sum(np.asarray(gains["look_alike_rule"])
                        < np.asarray(gains["marks_only"]) - 1e-9))
     line = {
-        "dataset": "demo", "share": args.share, "labelled_tiles": count,
+        "dataset": args.dataset, "share": args.share, "labelled_tiles": count,
         "tiles": len(rows), "clicks": args.clicks,
         "iou_gain": {w: round(float(np.mean(v)), 4) for w, v in gains.items()},
         "rule_worse_than_marks_tiles": worse,
