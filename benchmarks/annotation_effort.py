@@ -26,7 +26,10 @@ What is measured
     (:func:`labeler.demo.effort.region_fix_bound`): when it stays below 0.90, region-by-
     region correction cannot reach NoC@90 within the cap however good the tools, and only
     actions that fix many regions at once (refine, the on-tile re-fit) or better proposals
-    can. The annotator has no noise habits here: the truth is the target.
+    can; ``iou_start_per_class`` (cold start and proposals) is the mean IoU of each class
+    in the starting masks over the tiles that hold it (:func:`start_class_ious`), which
+    shows the classes that keep the tile IoU down. The annotator has no noise habits here:
+    the truth is the target.
 
 Starting points
     ``empty`` (all soil), ``cold`` (the vegetation-index cold start of
@@ -75,8 +78,8 @@ import numpy as np
 from benchmarks.label_efficiency.simulate import _pick, _pool_scores
 from benchmarks.label_efficiency.tiles import TileSet
 
-__all__ = ["SHARES", "GUIDED_MODES", "summarise_runs", "picked_counts", "measure", "plot",
-           "markdown_table", "main"]
+__all__ = ["SHARES", "GUIDED_MODES", "summarise_runs", "start_class_ious", "picked_counts",
+           "measure", "plot", "markdown_table", "main"]
 
 #: Shares of the pool labelled before each retraining.
 SHARES = (0.05, 0.10, 0.20)
@@ -120,6 +123,33 @@ def summarise_runs(runs: Sequence, *, bounds: Sequence[float] | None = None) -> 
     if bounds is not None:
         out["iou_20_regions_fixed"] = round(float(np.mean(bounds)), 3)
     return out
+
+
+def start_class_ious(truths: Sequence[np.ndarray], starts: Sequence[np.ndarray | None], *,
+                     n_classes: int) -> dict[str, float]:
+    """Mean IoU of each class in the starting masks, over the tiles whose truth holds it.
+
+    Parameters
+    ----------
+    truths : sequence of ndarray, shape (H, W), uint8
+    starts : sequence of ndarray, shape (H, W), uint8, or None (an empty mask: all soil)
+    n_classes : int
+
+    Returns
+    -------
+    dict
+        Class index (as a string) -> mean per-tile IoU (:func:`labeler.metrics.iou_per_class`),
+        rounded to 3 places; classes no truth holds are left out.
+    """
+    from labeler.metrics import confusion_matrix, iou_per_class
+
+    per_class: dict[int, list[float]] = {}
+    for truth, start in zip(truths, starts, strict=True):
+        mask = np.zeros_like(truth) if start is None else start
+        iou = iou_per_class(confusion_matrix(truth, mask, n_classes=n_classes))
+        for c in np.unique(truth[truth != 255]).tolist():
+            per_class.setdefault(int(c), []).append(float(iou[c]))
+    return {str(c): round(float(np.mean(v)), 3) for c, v in sorted(per_class.items())}
 
 
 def picked_counts(n_pool: int, shares: Sequence[float], *, least: int) -> list[int]:
@@ -237,11 +267,16 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
                                  if s is None else s, n_classes=k, n_regions=_CAP)
                 for r, s in zip(rows, starts, strict=True)]
 
+    def class_ious(starts):
+        return start_class_ious([heldout.masks[r] for r in rows], starts,
+                                n_classes=max(class_indices) + 1)
+
     line: dict = {"dataset": name}
     empty = [None] * len(rows)
     line["noc90_empty"] = summarise_runs(runs(empty), bounds=bounds(empty))
     cold = [cold_start_proposal(heldout.images[r]) for r in rows]
     line["noc90_cold"] = summarise_runs(runs(cold), bounds=bounds(cold))
+    line["noc90_cold"]["iou_start_per_class"] = class_ious(cold)
     after, guided, accepted = {}, {}, {}
     modes: dict[str, dict] = {m: {} for m in GUIDED_MODES}
     fit_seconds: list[float] = []
@@ -254,6 +289,7 @@ def measure(name: str, pool: TileSet, heldout: TileSet, *, class_indices, encode
                               mc_samples=mc_samples, seed=0)
         starts = [p.mask for p in props]
         plain = summarise_runs(runs(starts), bounds=bounds(starts))
+        plain["iou_start_per_class"] = class_ious(starts)
         after[key] = plain
         accepted[key] = round(plain["accepted"] / plain["tiles"], 3)
         learners = []

@@ -75,3 +75,19 @@ def test_plot_writes_a_png(tmp_path):
     plot([_line("demo"), _line("peanut")], path)
     with Image.open(path) as im:
         assert im.format == "PNG" and im.size == (1200, 750)  # 6 x 7.5 in per dataset at 100 dpi
+
+
+def test_start_class_ious_average_each_class_over_the_tiles_that_hold_it():
+    import numpy as np
+
+    from benchmarks.annotation_effort import start_class_ious
+
+    a = np.array([[0, 0, 1, 1]], np.uint8)  # soil and crop
+    b = np.array([[0, 2, 2, 255]], np.uint8)  # soil and weed; 255 never counts
+    start_a = np.array([[0, 1, 1, 1]], np.uint8)  # soil 1/2, crop 2/3
+    start_b = np.array([[0, 0, 2, 1]], np.uint8)  # soil 1/2, weed 1/2
+    got = start_class_ious([a, b], [start_a, start_b], n_classes=3)
+    # hand count: soil (1/2 + 1/2) / 2; crop 2/3 (tile a only); weed 1/2 (tile b only)
+    assert got == {"0": 0.5, "1": round(2 / 3, 3), "2": 0.5}
+    # None is an empty start (all soil): crop IoU 0, soil 2/4
+    assert start_class_ious([a], [None], n_classes=3) == {"0": 0.5, "1": 0.0}
