@@ -63,15 +63,14 @@ def disk_correction(truth: np.ndarray, mask: np.ndarray) -> np.ndarray | None:
         The class where the disk falls inside that class of the truth, 255 elsewhere;
         None when the mask equals the truth.
     """
-    from labeler.demo.clicks import next_click
+    from labeler.demo.clicks import footprint, next_click
 
     click = next_click(truth, mask)
     if click is None:
         return None
-    rr, cc = np.ogrid[: truth.shape[0], : truth.shape[1]]
-    r = max(click.depth_px - 0.5, 0.5)
-    inside = ((rr - click.point[0]) ** 2 + (cc - click.point[1]) ** 2 <= r * r)
-    inside &= truth == click.cls
+    point = (float(click.point[0]), float(click.point[1]))
+    radius = max(click.depth_px - 0.5, 0.5)  # what the editor's brush paints there
+    inside = footprint([point], radius, truth.shape) & (truth == click.cls)
     out = np.full(truth.shape, 255, np.uint8)
     out[inside] = click.cls
     return out

@@ -39,6 +39,13 @@ SMALL = (
 )
 
 
+def _short_adapt(project, **options):
+    """A run of two steps of two 64-pixel pairs, projectors trained with the encoder from
+    the first step (the tests' usual small run); ``options`` override or add to these."""
+    small = dict(minutes=1.0, max_steps=2, batch_size=2, view_size=64, projector_steps=0)
+    return adapt(project, **{**small, **options})
+
+
 def _tiny_project(tmp_path, *, second_date=False):
     """Two tiny demo frames (128 x 192, six 64-pixel tiles each); optionally the first
     frame again on a later date, shifted by a few pixels."""
@@ -107,15 +114,7 @@ def test_short_run_lowers_the_loss_and_writes_a_loadable_version(tiny):
 def test_newest_version_is_the_default_and_the_cache_is_kept_per_version(tiny):
     first, cache0 = encoder_and_cache(tiny)
     assert "-ssl-" not in first.version  # no adapted version yet: ImageNet-1k
-    out = adapt(
-        tiny,
-        minutes=1.0,
-        max_steps=2,
-        batch_size=2,
-        view_size=64,
-        method="image",
-        projector_steps=0,
-    )
+    out = _short_adapt(tiny, method="image")
     newest, cache1 = encoder_and_cache(tiny)
     assert newest.version == out.encoder.encoder_version
     assert cache1.encoder_version == newest.version != cache0.encoder_version
@@ -143,20 +142,11 @@ def test_interrupt_then_resume_continues_from_the_checkpoint(tiny):
             raise KeyboardInterrupt
 
     with pytest.raises(KeyboardInterrupt):
-        adapt(
-            tiny,
-            minutes=1.0,
-            max_steps=6,
-            batch_size=2,
-            view_size=64,
-            checkpoint_minutes=60,
-            projector_steps=0,
-            progress=stop_at_3,
-        )
+        _short_adapt(tiny, max_steps=6, checkpoint_minutes=60, progress=stop_at_3)
     imagenet = load_encoder_version(tiny, "imagenet")
     ckpt = adapt_checkpoint_path(tiny, method="dense", base_version=imagenet.version)
     assert ckpt.is_file() and encoder_versions(tiny) == []
-    out = adapt(tiny, minutes=1.0, max_steps=6, batch_size=2, view_size=64, projector_steps=0)
+    out = _short_adapt(tiny, max_steps=6)
     assert out.resumed_from == 3 and out.steps == 6 and len(out.losses) == 6
     assert not ckpt.exists()
 
@@ -178,15 +168,7 @@ def test_threads_zero_means_the_free_cores_not_all_of_torchs(tmp_path, monkeypat
 
     try:
         with open_project(project.root) as p:
-            adapt(
-                p,
-                minutes=1.0,
-                max_steps=2,
-                batch_size=2,
-                view_size=64,
-                projector_steps=0,
-                progress=during_steps,
-            )
+            _short_adapt(p, progress=during_steps)
         assert seen and set(seen) == {1}
         assert torch.get_num_threads() == 2  # restored after the run
     finally:
@@ -205,7 +187,7 @@ def test_errors(tiny, tmp_path):
         match=r"made 2 steps, all of them among the first 3 .*"
         r"the encoder did not change and no version was kept",
     ):
-        adapt(tiny, minutes=1.0, max_steps=2, batch_size=2, view_size=64, projector_steps=3)
+        _short_adapt(tiny, projector_steps=3)
     assert encoder_versions(tiny) == []
     empty = tmp_path / "empty"
     init_project(empty).close()
@@ -226,9 +208,7 @@ def test_capture_dates_and_revisit_pairs(tmp_path):
         # the later frame was cut from the same pixels shifted by (3, 5): aligned, they agree
         a, b = max(pairs, key=lambda p: p[0].size)
         assert np.abs(a.astype(int) - b.astype(int))[:-4, :-6].max() == 0
-        out = adapt(
-            project, minutes=1.0, max_steps=2, batch_size=4, view_size=64, projector_steps=0
-        )
+        out = _short_adapt(project, batch_size=4)
         assert out.revisit_pairs == 6 and out.tiles == 18
         # --date on an image already present records the new date
         (again,) = add_images(project, [tmp_path / "mill-piece.tif"], captured=date(2027, 6, 1))
@@ -239,15 +219,7 @@ def test_capture_dates_and_revisit_pairs(tmp_path):
 
 
 def test_retrain_records_the_encoder_and_propose_reads_the_heads_encoder(tiny):
-    first = adapt(
-        tiny,
-        minutes=1.0,
-        max_steps=2,
-        batch_size=2,
-        view_size=64,
-        method="image",
-        projector_steps=0,
-    )
+    first = _short_adapt(tiny, method="image")
     truth = make_plot("long-acre", seed=11, height=128, width=192).truth
     for t in tiny.store.tiles()[:3]:
         save_tile_mask(tiny, t.id, "survey", truth[t.window.slices], parent_version=None)
@@ -257,15 +229,7 @@ def test_retrain_records_the_encoder_and_propose_reads_the_heads_encoder(tiny):
     _, meta = load_checkpoint(tiny.root / head.checkpoint)
     assert meta.encoder_version == first.encoder.encoder_version  # in the checkpoint too
     # a newer encoder does not change what the head reads
-    second = adapt(
-        tiny,
-        minutes=1.0,
-        max_steps=2,
-        batch_size=2,
-        view_size=64,
-        method="image",
-        projector_steps=0,
-    )
+    second = _short_adapt(tiny, method="image")
     assert (
         second.encoder.name == "encoder-2" and second.base_version == first.encoder.encoder_version
     )
@@ -285,15 +249,7 @@ def test_retrain_records_the_encoder_and_propose_reads_the_heads_encoder(tiny):
 def test_retrain_on_an_older_encoder_version_and_propose_follows_it(tiny, capsys):
     from labeler.cli import main
 
-    newest = adapt(
-        tiny,
-        minutes=1.0,
-        max_steps=2,
-        batch_size=2,
-        view_size=64,
-        method="image",
-        projector_steps=0,
-    )
+    newest = _short_adapt(tiny, method="image")
     truth = make_plot("long-acre", seed=11, height=128, width=192).truth
     for t in tiny.store.tiles()[:3]:
         save_tile_mask(tiny, t.id, "survey", truth[t.window.slices], parent_version=None)
