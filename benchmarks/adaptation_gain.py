@@ -392,7 +392,8 @@ def main(argv: list[str] | None = None) -> int:
     )
     parser.add_argument(
         "--head-steps", type=int, default=None,
-        help="optimiser steps of every head (default: the project's step budget)",
+        help="most optimiser steps of every head; model.epochs and early stopping can end it "
+        "sooner (default: the project's step budget)",
     )
     parser.add_argument("--mc-samples", type=int, default=2, help="dropout passes when measuring")
     parser.add_argument("--peanut-pool-images", type=int, default=16)
