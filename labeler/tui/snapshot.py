@@ -15,7 +15,7 @@ import sys
 from collections.abc import Sequence
 from pathlib import Path
 
-from textual.worker import WorkerState
+from textual.worker import WorkerCancelled, WorkerState
 
 from labeler.errors import LabelerError
 from labeler.fileio import atomic_write_bytes, atomic_write_text
@@ -31,7 +31,9 @@ async def wait_idle(pilot, *, timeout: float = 60.0) -> None:
     """Wait until no worker of the app is pending or running and the screen has updated.
 
     Workers start other workers (a save reloads the queue, which loads the preview), so
-    this waits in rounds until a round finds nothing left to do.
+    this waits in rounds until a round finds nothing left to do. A worker cancelled while
+    waited for (an exclusive worker replaced by a newer one of its group) counts as
+    finished.
 
     Parameters
     ----------
@@ -58,9 +60,17 @@ async def wait_idle(pilot, *, timeout: float = 60.0) -> None:
             await pilot.pause()
             if not busy():
                 return
-        if loop.time() > end:
+        left = end - loop.time()
+        if left <= 0:
             raise TimeoutError(f"workers still busy after {timeout} s: {busy()}")
-        await app.workers.wait_for_complete()
+        try:
+            await asyncio.wait_for(app.workers.wait_for_complete(busy()), timeout=left)
+        except WorkerCancelled:
+            # an exclusive worker gave way to a newer one of its group while we waited:
+            # it is finished, the next round waits for the newer one
+            continue
+        except TimeoutError:
+            raise TimeoutError(f"workers still busy after {timeout} s: {busy()}") from None
 
 
 def save_screenshot(
