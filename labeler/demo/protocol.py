@@ -2,7 +2,7 @@
 
 It stands in for a person at the mask editor: it works only through the editor's own
 operations (:class:`labeler.editor.state.EditorState`: ``active_class``, ``radius``,
-``fill_at``, ``scribble``, ``refine``, ``paint``, ``undo``, ``mask``) and never writes a
+``fill_at``, ``scribble``, ``refine``, ``box``, ``paint``, ``undo``, ``mask``) and never writes a
 mask itself, so what it measures is the effort the editor asks of a person.
 
 Where it acts
@@ -23,6 +23,10 @@ What it does there (the policy)
     * **scribble** + refine (two actions): a scribble of the target class through the
       interior point along the error region's long axis, kept inside the target class,
       then refine (:func:`labeler.masks.refine.refine_random_walker`, as the editor runs it).
+    * **box** (one action): a box dragged around the error region (its bounding box
+      grown by ``box_margin_px``), which the editor fills by GrabCut
+      (:func:`labeler.masks.refine.grabcut_box`): how a person takes a whole missed weed
+      or a whole wrongly classed plant in one gesture.
     * **brush** (one action): the best of a stroke along the error region's long axis
       (:func:`labeler.demo.clicks.stroke_line`) and one traced along its middle
       (:func:`labeler.demo.clicks.traced_line`, how a person fixes a thin sliver along a
@@ -80,7 +84,7 @@ from labeler.demo.clicks import (
 from labeler.demo.effort import NOC_CAP, NOC_THRESHOLD, noc_at, tile_iou
 from labeler.editor.state import EditorState
 from labeler.masks.edits import region_at
-from labeler.masks.refine import refine_random_walker
+from labeler.masks.refine import grabcut_box, refine_random_walker
 
 __all__ = [
     "TOOLS",
@@ -93,7 +97,7 @@ __all__ = [
 ]
 
 #: The tools the simulated annotator may use, in their default order.
-TOOLS = ("fill", "scribble", "brush")
+TOOLS = ("fill", "box", "scribble", "brush")
 #: When the model re-fits on the tile's marks (see the module notes).
 RELEARN_MODES = ("off", "scribble", "key")
 _SOIL = 0
@@ -176,6 +180,8 @@ class ProtocolOptions:
         Radius of a scribble stroke (at most the interior depth less half a pixel).
     stroke_length_px : float
         Longest stroke, along the error region's axis or traced along its middle.
+    box_margin_px : int
+        Pixels a box reaches beyond the error region's bounding box on every side.
     snap : bool
         Refine with superpixel snapping.
     relearn : {"off", "scribble", "key"}
@@ -189,6 +195,7 @@ class ProtocolOptions:
     fill_precision: float = 0.9
     scribble_radius_px: float = 1.5
     stroke_length_px: float = 48.0
+    box_margin_px: int = 2
     snap: bool = False
     relearn: str = "off"
 
@@ -217,6 +224,11 @@ class ProtocolOptions:
         if self.stroke_length_px < 0:
             raise ValueError(
                 f"stroke_length_px: expected at least 0, got {self.stroke_length_px}"
+            )
+        if int(self.box_margin_px) != self.box_margin_px or self.box_margin_px < 0:
+            raise ValueError(
+                f"box_margin_px: expected a whole number of pixels, at least 0, got "
+                f"{self.box_margin_px}"
             )
 
 
@@ -288,6 +300,7 @@ class _Session:
         self.steps: list[ProtocolStep] = []
         self.key_failures = 0
         self._brush_plan: tuple[float, list[tuple[float, float]], float] = (0.0, [], 0.5)
+        self._box_plan: tuple[int, int, int, int] | None = None
 
     def iou(self) -> float:
         return tile_iou(self.target, self.state.mask, n_classes=self.n_classes)
@@ -350,7 +363,7 @@ class _Session:
     def _order(self, click: ErrorClick, allowed: np.ndarray) -> list[str]:
         """The tools to try at the click, the most IoU per action first (see the notes).
 
-        Fill, brush and scribble + refine are foreseen on copies of the layers, as a
+        Fill, box, brush and scribble + refine are foreseen on copies of the layers, as a
         person who knows the tools foresees what each does; a tool that would not raise
         the IoU is left out. With ``relearn="scribble"`` the scribble's re-fit cannot be
         foreseen, so the scribble comes first.
@@ -364,6 +377,8 @@ class _Session:
                                    image=state.image).full(state.shape)
                 if allowed[region].mean() >= opts.fill_precision:
                     rates[tool] = self._gain(region, click.cls)
+            elif tool == "box":
+                rates[tool] = self._plan_box(click)
             elif tool == "brush":
                 rates[tool] = self._brush_plan[0]
             elif opts.relearn == "scribble" and self.key_failures < 2:
@@ -392,6 +407,26 @@ class _Session:
                 if gain > best[0]:
                     best = (gain, points, radius)
         return best
+
+    def _plan_box(self, click: ErrorClick) -> float:
+        """The box around the click's error region, kept in ``_box_plan``; its IoU gain.
+
+        The box is the region's bounding box grown by ``box_margin_px`` and clipped to the
+        tile; it is not planned (gain 0) when it would cover the whole tile or be smaller
+        than 2 x 2 pixels, as the editor refuses such boxes.
+        """
+        self._box_plan = None
+        h, w = self.state.shape
+        rows = np.flatnonzero(click.region.any(axis=1))
+        cols = np.flatnonzero(click.region.any(axis=0))
+        m = int(self.options.box_margin_px)
+        r0, r1 = max(int(rows[0]) - m, 0), min(int(rows[-1]) + 1 + m, h)
+        c0, c1 = max(int(cols[0]) - m, 0), min(int(cols[-1]) + 1 + m, w)
+        if r1 - r0 < 2 or c1 - c0 < 2 or (r0, c0, r1, c1) == (0, 0, h, w):
+            return 0.0
+        self._box_plan = (r0, c0, r1, c1)
+        foreground = grabcut_box(self.state.image, self._box_plan)
+        return self._gain(foreground, click.cls)
 
     def _scribble_points(self, click: ErrorClick, allowed: np.ndarray):
         radius = min(self.options.scribble_radius_px, max(click.depth_px - 0.5, 0.5))
@@ -435,6 +470,13 @@ class _Session:
             if allowed[preview].mean() < opts.fill_precision:
                 return None
             changed = state.fill_at(click.point)
+            self.note()
+            return self.undo_if_worse(before, changed)
+        if tool == "box":
+            if self._box_plan is None:
+                return None
+            r0, c0, r1, c1 = self._box_plan
+            changed = state.box(r0, c0, r1, c1)
             self.note()
             return self.undo_if_worse(before, changed)
         if tool == "scribble":

@@ -113,9 +113,45 @@ def test_fill_reaches_iou_1_in_one_action_per_object():
     assert [(s.tool, s.kept) for s in run.steps] == [("fill", True)] * 2
 
 
+def _weed_disc():
+    """24 x 24: a weed disc of radius 6 (skimage ``disk(6)``, 113 px) centred at (12, 11),
+    flat leaf colour on flat soil, no noise."""
+    truth = np.zeros((24, 24), np.uint8)
+    truth[6:19, 5:18] = 2 * disk(6)
+    return plant_scene((24, 24), [truth > 0], noise_sd=0), truth
+
+
+def test_a_box_around_a_missed_weed_takes_it_in_one_action():
+    image, truth = _weed_disc()
+    assert (truth == 2).sum() == 113
+    box = run_protocol(image, truth, options=ProtocolOptions(tools=("box",), target_iou=1.0))
+    # GrabCut in the disc's bounding box grown by 2 px separates the flat leaf colour from
+    # the flat soil colour exactly (OpenCV's cv2.grabCut as the oracle of the editor's box)
+    assert [(s.tool, s.actions, s.kept) for s in box.steps] == [("box", 1, True)]
+    np.testing.assert_array_equal(box.mask, truth)
+    # the brush, whose footprint never leaves the disc, needs strokes round its rim
+    brush = run_protocol(image, truth, options=ProtocolOptions(tools=("brush",),
+                                                              target_iou=1.0))
+    assert brush.actions > 1 and brush.ious[-1] == 1.0
+    both = run_protocol(image, truth, options=ProtocolOptions(tools=("brush", "box"),
+                                                             target_iou=1.0))
+    assert [(s.tool, s.actions) for s in both.steps] == [("box", 1)]  # most per action first
+
+
+def test_a_box_that_would_cover_the_whole_tile_is_not_drawn():
+    # the error region is the whole tile: its box would leave GrabCut no background,
+    # which the editor refuses, so the annotator does not drag it and brushes instead
+    truth = np.full((8, 8), 2, np.uint8)
+    image = plant_scene((8, 8), [truth > 0], noise_sd=0)
+    run = run_protocol(image, truth, options=ProtocolOptions(tools=("box", "brush"),
+                                                            max_actions=2))
+    assert run.steps and all(s.tool == "brush" for s in run.steps)
+
+
 def test_any_tool_order_reaches_iou_1_from_an_empty_mask():
     image, truth = _two_objects()
-    for tools in (("fill", "scribble", "brush"), ("fill", "brush"), ("scribble", "brush")):
+    for tools in (("fill", "box", "scribble", "brush"), ("fill", "brush"), ("scribble", "brush"),
+                  ("box", "brush")):
         run = run_protocol(image, truth, options=ProtocolOptions(tools=tools, target_iou=1.0))
         np.testing.assert_array_equal(run.mask, truth)
         assert run.ious[-1] == 1.0 and run.actions <= 20
@@ -249,11 +285,13 @@ def test_noiseless_annotators_agree_fully_and_a_seed_repeats_a_run():
     [
         ({"target_iou": 0.0}, r"target_iou: expected an IoU in \(0, 1\]"),
         ({"max_actions": 0}, "max_actions: expected at least 1"),
-        ({"tools": ("lasso",)}, "tools: expected one or more of fill, scribble, brush"),
+        ({"tools": ("lasso",)}, "tools: expected one or more of fill, box, scribble, brush"),
         ({"tools": ()}, "tools: expected one or more"),
         ({"fill_precision": 0.0}, "fill_precision: expected a share"),
         ({"scribble_radius_px": 0.2}, "scribble_radius_px: expected at least 0.5"),
         ({"stroke_length_px": -1}, "stroke_length_px: expected at least 0"),
+        ({"box_margin_px": -1}, "box_margin_px: expected a whole number of pixels, at least 0"),
+        ({"box_margin_px": 1.5}, "box_margin_px: expected a whole number of pixels"),
     ],
 )
 def test_option_errors(kwargs, match):
