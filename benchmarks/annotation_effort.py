@@ -13,9 +13,9 @@ and the machine's load under ``run``; figures of a reduced run are not the produ
 What is measured
     The simulated annotator of :mod:`labeler.demo.protocol` (the interactive protocol of
     Xu et al. 2016, "Deep Interactive Object Selection", CVPR: each action at the interior
-    point of the largest error region; of fill, box (GrabCut), scribble + refine and brush, the one that
-    raises the IoU most per action, foreseen on copies of the editor's layers, then used
-    through the editor's own operations) corrects held-out tiles until their IoU with the
+    point of the largest error region; of fill, box (GrabCut), scribble + refine and brush,
+    the one that raises the IoU most per action, foreseen on copies of the editor's layers,
+    then used through the editor's own operations) corrects held-out tiles until their IoU with the
     truth reaches 0.90 or 20 actions (:mod:`labeler.demo.effort`; tile IoU: the per-class
     IoU averaged over the classes in the tile's truth). NoC@90 is the mean number of
     actions per tile (a tile that never reaches 0.90 counts 20); ``capped`` counts those

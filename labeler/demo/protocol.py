@@ -2,8 +2,8 @@
 
 It stands in for a person at the mask editor: it works only through the editor's own
 operations (:class:`labeler.editor.state.EditorState`: ``active_class``, ``radius``,
-``fill_at``, ``scribble``, ``refine``, ``box``, ``paint``, ``undo``, ``mask``) and never writes a
-mask itself, so what it measures is the effort the editor asks of a person.
+``fill_at``, ``scribble``, ``refine``, ``box``, ``paint``, ``undo``, ``mask``) and never
+writes a mask itself, so what it measures is the effort the editor asks of a person.
 
 Where it acts
     As in the interactive segmentation protocol of Xu et al. (2016, "Deep Interactive

@@ -125,8 +125,8 @@ def test_a_box_around_a_missed_weed_takes_it_in_one_action():
     image, truth = _weed_disc()
     assert (truth == 2).sum() == 113
     box = run_protocol(image, truth, options=ProtocolOptions(tools=("box",), target_iou=1.0))
-    # GrabCut in the disc's bounding box grown by 2 px separates the flat leaf colour from
-    # the flat soil colour exactly (OpenCV's cv2.grabCut as the oracle of the editor's box)
+    # by hand: the box is the disc's bounding box grown by 2 px (rows 4-20, cols 3-19);
+    # in it only two flat colours meet, so GrabCut's foreground is the disc exactly
     assert [(s.tool, s.actions, s.kept) for s in box.steps] == [("box", 1, True)]
     np.testing.assert_array_equal(box.mask, truth)
     # the brush, whose footprint never leaves the disc, needs strokes round its rim
