@@ -83,7 +83,7 @@ from labeler.demo.clicks import (
 )
 from labeler.demo.effort import NOC_CAP, NOC_THRESHOLD, noc_at, tile_iou
 from labeler.editor.state import EditorState
-from labeler.masks.edits import region_at
+from labeler.masks.edits import region_at, region_bounds
 from labeler.masks.refine import grabcut_box, refine_random_walker
 
 __all__ = [
@@ -417,11 +417,8 @@ class _Session:
         """
         self._box_plan = None
         h, w = self.state.shape
-        rows = np.flatnonzero(click.region.any(axis=1))
-        cols = np.flatnonzero(click.region.any(axis=0))
-        m = int(self.options.box_margin_px)
-        r0, r1 = max(int(rows[0]) - m, 0), min(int(rows[-1]) + 1 + m, h)
-        c0, c1 = max(int(cols[0]) - m, 0), min(int(cols[-1]) + 1 + m, w)
+        rs, cs = region_bounds(click.region, pad=int(self.options.box_margin_px))
+        r0, r1, c0, c1 = rs.start, rs.stop, cs.start, cs.stop
         if r1 - r0 < 2 or c1 - c0 < 2 or (r0, c0, r1, c1) == (0, 0, h, w):
             return 0.0
         self._box_plan = (r0, c0, r1, c1)

@@ -32,6 +32,7 @@ __all__ = [
     "polygon_patch",
     "polygon_mask",
     "region_at",
+    "region_bounds",
     "FILL_MAX_SHARE",
 ]
 
@@ -342,7 +343,7 @@ def region_at(
         same &= veg == veg[r, c]  # a fill never crosses the plant/soil split
     labels, _ = ndi.label(same, structure=_STRUCTURES[connectivity])
     region = labels == labels[r, c]
-    rs, cs = _bounds(region)
+    rs, cs = region_bounds(region)
     if image is not None:
         # the gradient needs a few pixels of context around the region
         pad = int(np.ceil(4 * max(edge_sigma, 0.0))) + 1
@@ -359,11 +360,29 @@ def region_at(
         # pixels blended of leaf and soil at the split go to the side they look like
         region &= sharpen_split(img, veg) == veg[r, c]
         region[r, c] = True
-        rs, cs = _bounds(region)
+        rs, cs = region_bounds(region)
     return Patch(rs.start, cs.start, region[rs, cs].copy())
 
 
-def _bounds(region: np.ndarray) -> tuple[slice, slice]:
+def region_bounds(region: np.ndarray, *, pad: int = 0) -> tuple[slice, slice]:
+    """Row and column slices of a region's bounding box, grown by ``pad`` and clipped.
+
+    Parameters
+    ----------
+    region : ndarray, shape (H, W), bool
+        At least one pixel True.
+    pad : int
+        Pixels added on every side before clipping to the array.
+
+    Returns
+    -------
+    rows, cols : slice
+        Half-open ranges within ``0..H`` and ``0..W``.
+    """
     rows = np.flatnonzero(region.any(axis=1))
     cols = np.flatnonzero(region.any(axis=0))
-    return slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1)
+    h, w = region.shape
+    return (
+        slice(max(int(rows[0]) - pad, 0), min(int(rows[-1]) + pad + 1, h)),
+        slice(max(int(cols[0]) - pad, 0), min(int(cols[-1]) + pad + 1, w)),
+    )

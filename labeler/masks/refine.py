@@ -36,6 +36,7 @@ from labeler.masks.colour_regions import (
     DEFAULT_PLANT_EDGE_THRESHOLD,
     split_regions,
 )
+from labeler.masks.edits import region_bounds
 from labeler.masks.vegetation import sharpen_split, vegetation_mask
 
 __all__ = [
@@ -92,16 +93,6 @@ def weak_label_band(weak_label: np.ndarray, *, band_px: float) -> np.ndarray:
     if not have.any():
         return np.zeros(s.shape, bool)
     return ndi.distance_transform_edt(~have) <= band_px
-
-
-def _bbox(sel: np.ndarray, pad: int) -> tuple[slice, slice]:
-    rows = np.flatnonzero(sel.any(axis=1))
-    cols = np.flatnonzero(sel.any(axis=0))
-    h, w = sel.shape
-    return (
-        slice(max(int(rows[0]) - pad, 0), min(int(rows[-1]) + pad + 1, h)),
-        slice(max(int(cols[0]) - pad, 0), min(int(cols[-1]) + pad + 1, w)),
-    )
 
 
 def refine_random_walker(
@@ -201,7 +192,7 @@ def refine_random_walker(
         # pixels of a grown plant region at the split that look like soil (blended leaf
         # edges) keep the current mask
         keep = grow & ~sharpen_split(img, veg) & (s == UNLABELLED)
-    rs, cs = _bbox(band, 1)
+    rs, cs = region_bounds(band, pad=1)
     b = band[rs, cs]
     sub_s = s[rs, cs]
     sub_m = m[rs, cs]

@@ -21,6 +21,7 @@ from labeler.masks.edits import (
     polygon_mask,
     polygon_patch,
     region_at,
+    region_bounds,
     stroke_mask,
     stroke_patch,
 )
@@ -402,3 +403,11 @@ def test_fill_on_peanut_plants_stays_on_the_plant_not_the_tile():
         got = region_at(empty, seed, image=image, vegetation=veg).full(plants.shape)
         assert got.mean() <= 0.15
         assert plants[got].mean() >= 0.85
+
+
+def test_region_bounds_grow_by_the_pad_and_stop_at_the_array_edge():
+    region = np.zeros((6, 7), bool)
+    region[1, 2] = region[3, 5] = True  # by hand: rows 1..3, cols 2..5
+    assert region_bounds(region) == (slice(1, 4), slice(2, 6))
+    assert region_bounds(region, pad=1) == (slice(0, 5), slice(1, 7))
+    assert region_bounds(region, pad=3) == (slice(0, 6), slice(0, 7))  # clipped
